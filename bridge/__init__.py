@@ -1,0 +1,26 @@
+"""dlco-bridge: single-breath DLCO results from lab exports to FHIR R4 and HL7 v2.
+
+Not a medical device. It normalises, recomputes and flags; local policy and licensed
+practice decide what is used clinically.
+"""
+
+from bridge.errors import BridgeError, InputError
+from bridge.model import Finding, Outcome, Quantity, Session, Severity
+from bridge.pipeline import Limits, process
+from bridge.resources import load_tables
+
+__version__ = "0.1.0"
+
+__all__ = [
+    "BridgeError",
+    "Finding",
+    "InputError",
+    "Limits",
+    "Outcome",
+    "Quantity",
+    "Session",
+    "Severity",
+    "__version__",
+    "load_tables",
+    "process",
+]

@@ -1,0 +1,361 @@
+"""Consistency and plausibility rules: a normalised session and its derivations -> findings.
+
+Owns: every rule that can say "this record disagrees with itself, with the gas data, with
+plausible physiology or with its units". Findings are collected, never raised. Each code is
+stable and documented in docs/findings.md; messages are sentences a person can act on.
+Quantities are in canonical (traditional) units here; messages say the unit.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable, Iterator
+
+from bridge.derive import age_in_years, gas_conditions, hb_factor
+from bridge.mapping import Tables
+from bridge.model import Derived, Finding, Quantity, Session, Severity
+
+# Relative difference tolerated between a reported and a recomputed value (rounding of the
+# lab's printout plus our assumptions about room temperature and gas handling).
+KCO_TOLERANCE = 0.03  # common practice: two or three significant digits of rounding
+MANOEUVRE_TOLERANCE = 0.05  # recomputation from gas data
+RESULT_TOLERANCE = 0.10  # reported mean vs mean of the manoeuvres we would report
+ADJUSTMENT_TOLERANCE = 0.02
+HB_NOTE_THRESHOLD = 0.05  # mention the Hb adjustment when it moves DLCO by more than 5 %  # common practice
+BREATH_HOLD_TARGET_S = (8.0, 12.0)  # source: ATS/ERS 2005 Table 6 (10 +/- 2 s)
+COHB_BASELINE_PERCENT = 2.0  # reference subjects assumed at 2 %  # from memory (2005 form)
+LOW_PRESSURE_MMHG = 700.0  # flag the altitude adjustment below this PB (about 700 m)  # common practice
+
+Rule = Callable[[Session, Derived, Tables], Iterator[Finding]]
+
+
+def _finding(code: str, severity: Severity, path: str, message: str) -> Finding:
+    return Finding(code=code, severity=severity, path=path, message=message)
+
+
+def _rel(a: float, b: float) -> float:
+    return abs(a - b) / max(abs(b), 1e-12)
+
+
+def _near_factor(ratio: float, factor: float, tolerance: float) -> bool:
+    """True when ``ratio`` is about ``factor`` or ``1/factor``."""
+    if ratio <= 0:
+        return False
+    return abs(abs(math.log(ratio)) - math.log(factor)) <= math.log(1.0 + tolerance)
+
+
+def check_kco(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    kco, computed = session.results.kco, derived.kco
+    if kco is None or computed is None:
+        return
+    if _rel(kco.value, computed.value) > KCO_TOLERANCE:
+        ratio = kco.value / computed.value
+        if _near_factor(ratio, tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance):
+            return  # reported by check_unit_mislabel with the evidence
+        yield _finding(
+            "KCO_INCONSISTENT",
+            Severity.WARNING,
+            "results.kco",
+            f"KCO {kco.value:.3g} mL/min/mmHg/L differs by {100 * _rel(kco.value, computed.value):.0f} % "
+            f"from DLCO/VA = {computed.value:.3g}; check which of DLCO, VA or KCO is wrong.",
+        )
+
+
+def check_unit_mislabel(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    """A DLCO or KCO about 2.987 times off what the rest of the record implies.
+
+    DLCO vs KCO x VA disagreeing by the factor says one of the two carries the wrong unit;
+    independent evidence (the gas data, the lab's predicted value, plausible ranges) says which.
+    """
+    factor = tables.units.traditional_per_si
+    tolerance = tables.plausibility.mislabel_tolerance
+    r = session.results
+    mutual = None
+    if r.dlco is not None and r.kco is not None and r.va is not None and r.va.value > 0:
+        implied = r.kco.value * r.va.value
+        if _near_factor(r.dlco.value / implied, factor, tolerance):
+            mutual = f"DLCO is {r.dlco.value / implied:.3g}x KCO x VA"
+    suspects = {}
+    for path, value in (("results.dlco", r.dlco), ("results.kco", r.kco)):
+        if value is not None:
+            suspects[path] = (
+                value,
+                list(_mislabel_evidence(session, derived, tables, path, value, factor, tolerance)),
+            )
+    accused = [p for p, (_, evidence) in suspects.items() if evidence]
+    if mutual is not None and len(accused) != 1:
+        yield _finding(
+            "UNIT_MISLABEL_PROBABLE",
+            Severity.ERROR,
+            "results",
+            f"{mutual} (expected 1): DLCO or KCO carries the wrong unit (SI and traditional swapped?); "
+            "nothing else in the record says which.",
+        )
+        return
+    for path in accused:
+        value, evidence = suspects[path]
+        texts = ([mutual] if mutual else []) + [text for text, _ in evidence]
+        if mutual is None and not any(strong for _, strong in evidence) and len(evidence) < 2:
+            continue
+        stated = value.original.unit if value.original else value.unit
+        yield _finding(
+            "UNIT_MISLABEL_PROBABLE",
+            Severity.ERROR,
+            path,
+            f"{path} is labelled {stated!r} but looks {factor:g}x off (SI and traditional units swapped?): "
+            + "; ".join(texts)
+            + ".",
+        )
+
+
+def _mislabel_evidence(
+    session: Session, derived: Derived, tables: Tables, path: str, value: Quantity, factor: float, tol: float
+) -> Iterator[tuple[str, bool]]:
+    """Evidence independent of the DLCO-KCO-VA triangle: (text, is it strong on its own)."""
+    r = session.results
+    if path == "results.dlco" and derived.dlco_from_manoeuvres is not None:
+        gas = derived.dlco_from_manoeuvres.value
+        if _near_factor(value.value / gas, factor, tol):
+            yield f"the manoeuvre gas data give {gas:.3g} mL/min/mmHg", True
+    predicted = getattr(r.predicted, path.split(".")[1], None) if r.predicted else None
+    if isinstance(predicted, Quantity) and predicted.value > 0:
+        percent = 100 * value.value / predicted.value
+        percents = (percent / factor, percent * factor)
+        if not 30 <= percent <= 160 and any(40 <= p <= 140 for p in percents):
+            yield f"it is {percent:.0f} % of the lab's own predicted value", False
+    bound = tables.plausibility.bounds.get(path)
+    relabelled = (value.value / factor, value.value * factor)
+    if (
+        bound is not None
+        and not bound.low <= value.value <= bound.high
+        and any(bound.low <= v <= bound.high for v in relabelled)
+    ):
+        yield (
+            f"{value.value:.3g} is outside the plausible {bound.low:g}-{bound.high:g} {bound.unit}",
+            False,
+        )
+
+
+def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    """Device-reported and session-reported DLCO and VA against the gas data."""
+    for assessment, manoeuvre in zip(derived.manoeuvres, session.manoeuvres, strict=True):
+        i = assessment.index
+        pairs = (
+            ("dlco", manoeuvre.reported.dlco, assessment.dlco),
+            ("va", manoeuvre.reported.va, assessment.va),
+        )
+        for name, reported, computed in pairs:
+            if reported is None or computed is None:
+                continue
+            if _rel(reported.value, computed.value) > MANOEUVRE_TOLERANCE:
+                yield _finding(
+                    f"MANOEUVRE_{name.upper()}_MISMATCH",
+                    Severity.WARNING,
+                    f"manoeuvres[{i}].reported.{name}",
+                    f"manoeuvre {i + 1}: the device reports {name.upper()} "
+                    f"{reported.value:.3g} {reported.unit} "
+                    f"but its gas data give {computed.value:.3g} "
+                    f"({100 * _rel(reported.value, computed.value):.0f} % apart).",
+                )
+    for name, reported, computed in (
+        ("dlco", session.results.dlco, derived.dlco_from_manoeuvres),
+        ("va", session.results.va, derived.va_from_manoeuvres),
+    ):
+        if reported is None or computed is None:
+            continue
+        ratio = reported.value / computed.value
+        mislabel = _near_factor(
+            ratio, tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance
+        )
+        if _rel(reported.value, computed.value) > RESULT_TOLERANCE and not (name == "dlco" and mislabel):
+            yield _finding(
+                f"RESULT_{name.upper()}_MISMATCH",
+                Severity.WARNING,
+                f"results.{name}",
+                f"reported {name.upper()} {reported.value:.3g} {reported.unit} differs from "
+                f"{computed.value:.3g} recomputed from the acceptable manoeuvres.",
+            )
+
+
+def check_bounds(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    for path, bound in tables.plausibility.bounds.items():
+        for where, quantity in _resolve(session, path):
+            value = tables.units.convert(quantity.value, quantity.unit, bound.unit)
+            if not bound.low <= value <= bound.high:
+                yield _finding(
+                    "OUT_OF_RANGE",
+                    Severity.WARNING,
+                    where,
+                    f"{where} = {value:.4g} {bound.unit} is outside the plausible range "
+                    f"{bound.low:g}-{bound.high:g} {bound.unit}.",
+                )
+
+
+def _resolve(session: Session, path: str) -> Iterator[tuple[str, Quantity]]:
+    """Quantities at a bounds path; ``manoeuvres[]`` expands to every manoeuvre."""
+    head, _, rest = path.partition(".")
+    if head == "manoeuvres[]":
+        for i, manoeuvre in enumerate(session.manoeuvres):
+            value = getattr(manoeuvre, rest, None)
+            if isinstance(value, Quantity):
+                yield f"manoeuvres[{i}].{rest}", value
+        return
+    node: object = session
+    for part in path.split("."):
+        node = getattr(node, part, None)
+    if isinstance(node, Quantity):
+        yield path, node
+
+
+def check_breath_hold(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    low, high = BREATH_HOLD_TARGET_S
+    for i, manoeuvre in enumerate(session.manoeuvres):
+        bht = manoeuvre.breath_hold_time.value
+        if not low <= bht <= high:
+            yield _finding(
+                "BREATH_HOLD_OUT_OF_TARGET",
+                Severity.WARNING,
+                f"manoeuvres[{i}].breath_hold_time",
+                f"manoeuvre {i + 1}: breath-hold {bht:.1f} s is outside {low:g}-{high:g} s; "
+                "the result may still be usable but the deviation must be noted.",
+            )
+
+
+def check_haemoglobin(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    reported = session.results.dlco_hb_adjusted
+    hb = session.conditions.hemoglobin
+    if reported is not None and hb is None:
+        yield _finding(
+            "HB_ADJUSTED_WITHOUT_HB",
+            Severity.WARNING,
+            "results.dlco_hb_adjusted",
+            "a haemoglobin-adjusted DLCO is reported without the haemoglobin it was adjusted for; "
+            "the standard requires Hb whenever it is used.",
+        )
+        return
+    if hb is None:
+        return
+    factor = hb_factor(session)
+    if factor is None:
+        yield _finding(
+            "HB_ADJUSTMENT_NOT_COMPUTED",
+            Severity.INFO,
+            "patient.sex",
+            f"sex is {session.patient.sex.value!r}: the haemoglobin adjustment depends on it "
+            "and was not recomputed.",
+        )
+        return
+    measured = session.results.dlco
+    if measured is not None and derived.dlco_hb_adjusted is not None and abs(factor - 1) > HB_NOTE_THRESHOLD:
+        yield _finding(
+            "HB_ADJUSTMENT",
+            Severity.INFO,
+            "conditions.hemoglobin",
+            f"Hb {hb.value:.1f} g/dL: DLCO adjusted to standard Hb is {derived.dlco_hb_adjusted.value:.1f} "
+            f"mL/min/mmHg (factor {factor:.3f}, age {age_in_years(session):.0f} y).",
+        )
+    if reported is None or measured is None or abs(factor - 1) <= ADJUSTMENT_TOLERANCE:
+        return
+    expected, inverted = measured.value * factor, measured.value / factor
+    if _rel(reported.value, inverted) <= ADJUSTMENT_TOLERANCE:
+        yield _finding(
+            "HB_ADJUSTMENT_WRONG_DIRECTION",
+            Severity.ERROR,
+            "results.dlco_hb_adjusted",
+            f"Hb-adjusted DLCO {reported.value:.3g} equals measured / factor; adjusting the measured value "
+            f"to standard Hb gives {expected:.3g} (the factor was applied the wrong way round).",
+        )
+    elif _rel(reported.value, expected) > ADJUSTMENT_TOLERANCE:
+        yield _finding(
+            "HB_ADJUSTMENT_MISMATCH",
+            Severity.WARNING,
+            "results.dlco_hb_adjusted",
+            f"Hb-adjusted DLCO {reported.value:.3g} differs from {expected:.3g} (Cotes adjustment of the "
+            f"measured {measured.value:.3g} at Hb {hb.value:.1f} g/dL).",
+        )
+
+
+def check_carboxyhaemoglobin(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    cohb = session.conditions.carboxyhemoglobin
+    if cohb is None or cohb.value <= COHB_BASELINE_PERCENT or derived.dlco_cohb_adjusted is None:
+        return
+    yield _finding(
+        "COHB_RAISED",
+        Severity.WARNING,
+        "conditions.carboxyhemoglobin",
+        f"COHb {cohb.value:.1f} % lowers measured DLCO (about 1-2 % per 1 % COHb); adjusted for the "
+        f"anaemia effect DLCO would be {derived.dlco_cohb_adjusted.value:.1f} mL/min/mmHg.",
+    )
+
+
+def check_pressure(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    gas = gas_conditions(session)
+    if session.manoeuvres and gas.pb_assumed and session.conditions.altitude is None:
+        yield _finding(
+            "PRESSURE_ASSUMED",
+            Severity.INFO,
+            "conditions.barometric_pressure",
+            "no barometric pressure or altitude given: 760 mmHg was assumed to recompute the manoeuvres.",
+        )
+    adjusted = derived.dlco_pressure_adjusted
+    if adjusted is not None and gas.pb_mmhg < LOW_PRESSURE_MMHG:
+        yield _finding(
+            "PRESSURE_ADJUSTMENT",
+            Severity.INFO,
+            "conditions.barometric_pressure",
+            f"measured at PB {gas.pb_mmhg:.0f} mmHg: DLCO adjusted to sea level (PIO2 150 mmHg) is "
+            f"{adjusted.value:.1f} mL/min/mmHg; compare that with predicted values.",
+        )
+
+
+def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    if not session.manoeuvres:
+        return
+    for assessment in derived.manoeuvres:
+        if assessment.grade == "F":
+            yield _finding(
+                "MANOEUVRE_NOT_ACCEPTABLE",
+                Severity.WARNING,
+                f"manoeuvres[{assessment.index}]",
+                f"manoeuvre {assessment.index + 1} is grade F: "
+                + "; ".join(assessment.grade_reasons or ("no DLCO",)),
+            )
+    grade = derived.session_grade
+    if grade == "F":
+        yield _finding("NO_ACCEPTABLE_MANOEUVRE", Severity.ERROR, "manoeuvres", "no manoeuvre is acceptable.")
+    elif grade is not None and grade != tables.grades.acceptable_grades[0]:
+        yield _finding(
+            "QUALITY_BELOW_A",
+            Severity.WARNING,
+            "manoeuvres",
+            f"session quality grade {grade}: interpret the result with caution.",
+        )
+    dlcos = [a.dlco.value for a in derived.manoeuvres if a.dlco is not None and a.grade != "F"]
+    if len(dlcos) >= 2 and max(dlcos) - min(dlcos) > tables.grades.max_dlco_difference:
+        yield _finding(
+            "NOT_REPEATABLE",
+            Severity.WARNING,
+            "manoeuvres",
+            f"acceptable manoeuvres span {max(dlcos) - min(dlcos):.1f} mL/min/mmHg, more than the "
+            f"{tables.grades.max_dlco_difference:g} the standard allows.",
+        )
+
+
+DEFAULT_RULES: tuple[Rule, ...] = (
+    check_unit_mislabel,
+    check_kco,
+    check_recomputed,
+    check_bounds,
+    check_breath_hold,
+    check_haemoglobin,
+    check_carboxyhaemoglobin,
+    check_pressure,
+    check_quality,
+)
+
+
+def run_checks(
+    session: Session, derived: Derived, tables: Tables, rules: tuple[Rule, ...] = DEFAULT_RULES
+) -> tuple[Finding, ...]:
+    """Every finding of every rule, in rule order."""
+    return tuple(finding for rule in rules for finding in rule(session, derived, tables))

@@ -1,0 +1,215 @@
+"""Derivation: the values the bridge recomputes from a normalised session.
+
+Owns: turning the record's quantities into the plain numbers ``physiology`` and ``quality``
+work on, and their answers back into quantities (canonical units, see ``bridge.model``):
+KCO, Hb-, COHb- and pressure-adjusted DLCO, per-manoeuvre VA and DLCO from the gas data,
+grades and the reported mean. Inputs must be normalised first. Pure.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+from bridge import physiology as phys
+from bridge.mapping import Tables
+from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex
+from bridge.quality import Grade, ManoeuvreFacts, grade_manoeuvres, select_reported
+
+DLCO_UNIT = "mL/min/mm[Hg]"
+KCO_UNIT = "mL/min/mm[Hg]/L"
+# Room temperature assumed for ATPD gas when the export does not say.  # common practice
+DEFAULT_ROOM_TEMPERATURE_C = 23.0
+
+
+@dataclass(frozen=True, slots=True)
+class GasConditions:
+    """The ambient conditions the equations need, and whether they were assumed."""
+
+    pb_mmhg: float
+    pb_assumed: bool
+    room_temperature_c: float
+    temperature_assumed: bool
+
+
+def age_in_years(session: Session) -> float:
+    """Age on the day of the test, in decimal years."""
+    days = (session.performed_at.date() - session.patient.birth_date).days
+    return days / 365.25
+
+
+def gas_conditions(session: Session) -> GasConditions:
+    c = session.conditions
+    if c.barometric_pressure is not None:
+        pb, pb_assumed = c.barometric_pressure.value, False
+    elif c.altitude is not None:
+        pb, pb_assumed = phys.barometric_pressure_from_altitude_mmhg(c.altitude.value), True
+    else:
+        pb, pb_assumed = phys.STANDARD_PB_MMHG, True
+    if c.room_temperature is not None:
+        return GasConditions(pb, pb_assumed, c.room_temperature.value, False)
+    return GasConditions(pb, pb_assumed, DEFAULT_ROOM_TEMPERATURE_C, True)
+
+
+def derive(session: Session, tables: Tables) -> Derived:
+    """Everything recomputable from a normalised session."""
+    age = age_in_years(session)
+    gas = gas_conditions(session)
+    computed = [_recompute(session, m, gas) for m in session.manoeuvres]
+    grades = _grades(session, computed, tables)
+    assessments = tuple(
+        ManoeuvreAssessment(
+            index=i,
+            va=_q(va, "L", 2) if va is not None else None,
+            dlco=_q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
+            grade=g.grade,
+            grade_reasons=g.reasons,
+        )
+        for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
+    )
+    selection = _selection(computed, grades, tables)
+    measured = session.results.dlco
+    return Derived(
+        age_years=round(age, 2),
+        kco=_kco(session),
+        dlco_hb_adjusted=_hb_adjusted(session),
+        dlco_pressure_adjusted=_scaled(measured, _pressure_factor(session, gas)),
+        dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
+        dlco_from_manoeuvres=_mean_of(computed, selection, 1, DLCO_UNIT),
+        va_from_manoeuvres=_mean_of(computed, selection, 0, "L"),
+        manoeuvres=assessments,
+        session_grade=selection[1] if session.manoeuvres else None,
+        dlco_percent_predicted=_percent(session.results.dlco, _pred(session, "dlco")),
+        kco_percent_predicted=_percent(session.results.kco, _pred(session, "kco")),
+        va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
+    )
+
+
+def _q(value: float, unit: str, decimals: int) -> Quantity:
+    return Quantity(value=value, unit=unit, decimals=decimals)
+
+
+def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[float | None, float | None]:
+    """(VA BTPS in L, DLCO in mL/min/mmHg) from one manoeuvre's gas data; None where impossible."""
+    if m.inspired_tracer_fraction <= 0 or m.alveolar_tracer_fraction <= 0:
+        return None, None
+    vi = m.inspired_volume.value
+    if session.method.inspired_volume_condition == "BTPS":
+        vi = phys.atpd_from_btps_l(vi, gas.pb_mmhg, gas.room_temperature_c)
+    va = phys.alveolar_volume_btps_l(
+        vi,
+        m.inspired_tracer_fraction,
+        m.alveolar_tracer_fraction,
+        gas.pb_mmhg,
+        gas.room_temperature_c,
+        instrument_dead_space_l=m.instrument_dead_space.value if m.instrument_dead_space else 0.0,
+        anatomic_dead_space_l=m.anatomic_dead_space.value if m.anatomic_dead_space else 0.0,
+        handling=session.method.sample_gas,
+        fa_co2=session.conditions.alveolar_co2_fraction or phys.DEFAULT_ALVEOLAR_CO2_FRACTION,
+    )
+    fa_co0 = phys.initial_alveolar_co_fraction(
+        m.inspired_co_fraction, m.inspired_tracer_fraction, m.alveolar_tracer_fraction
+    )
+    if va <= 0 or m.alveolar_co_fraction <= 0 or fa_co0 <= m.alveolar_co_fraction:
+        return (va if va > 0 else None), None
+    dlco = phys.dlco_single_breath(
+        phys.stpd_from_btps_l(va, gas.pb_mmhg),
+        m.breath_hold_time.value,
+        gas.pb_mmhg,
+        fa_co0,
+        m.alveolar_co_fraction,
+    )
+    return va, dlco
+
+
+def _grades(
+    session: Session, computed: Sequence[tuple[float | None, float | None]], tables: Tables
+) -> tuple[Grade, ...]:
+    if not session.manoeuvres:
+        return ()
+    capacities = [m.vital_capacity.value for m in session.manoeuvres if m.vital_capacity]
+    # Without a measured VC the largest inspired volume stands in for it.  # common practice
+    largest_vc = max(capacities or [m.inspired_volume.value for m in session.manoeuvres])
+    facts = [
+        ManoeuvreFacts(
+            inspired_volume_l=m.inspired_volume.value,
+            breath_hold_s=m.breath_hold_time.value,
+            sample_collection_s=m.sample_collection_time.value if m.sample_collection_time else None,
+            va_l=va,
+        )
+        for m, (va, _) in zip(session.manoeuvres, computed, strict=True)
+    ]
+    return grade_manoeuvres(facts, largest_vc, tables.grades)
+
+
+def _selection(
+    computed: Sequence[tuple[float | None, float | None]], grades: Sequence[Grade], tables: Tables
+) -> tuple[tuple[int, ...], str]:
+    usable = [i for i, (_, dlco) in enumerate(computed) if dlco is not None]
+    dlcos = [dlco if dlco is not None else 0.0 for _, dlco in computed]
+    masked = [g if i in usable else Grade("F", ("no DLCO from gas data",)) for i, g in enumerate(grades)]
+    chosen = select_reported(masked, dlcos, tables.grades)
+    return chosen.indices, chosen.session_grade
+
+
+def _mean_of(
+    computed: Sequence[tuple[float | None, float | None]],
+    selection: tuple[tuple[int, ...], str],
+    slot: int,
+    unit: str,
+) -> Quantity | None:
+    values = [computed[i][slot] for i in selection[0]]
+    present = [v for v in values if v is not None]
+    if not present:
+        return None
+    return _q(sum(present) / len(present), unit, 2)
+
+
+def _kco(session: Session) -> Quantity | None:
+    r = session.results
+    if r.dlco is None or r.va is None or r.va.value <= 0:
+        return None
+    return _q(phys.transfer_coefficient(r.dlco.value, r.va.value), KCO_UNIT, 3)
+
+
+def _hb_adjusted(session: Session) -> Quantity | None:
+    return _scaled(session.results.dlco, hb_factor(session))
+
+
+def hb_factor(session: Session) -> float | None:
+    """The Cotes factor for this session, or None when Hb or a usable sex is missing."""
+    hb = session.conditions.hemoglobin
+    if hb is None or hb.value <= 0 or session.patient.sex not in (Sex.MALE, Sex.FEMALE):
+        return None
+    return phys.hb_adjustment_factor(hb.value, session.patient.sex is Sex.MALE, age_in_years(session))
+
+
+def _pressure_factor(session: Session, gas: GasConditions) -> float | None:
+    if session.conditions.barometric_pressure is None and session.conditions.altitude is None:
+        return None
+    fio2 = session.conditions.inspired_o2_fraction or phys.FIO2_AIR
+    return phys.pressure_adjustment_factor(gas.pb_mmhg, fio2)
+
+
+def _cohb_factor(session: Session) -> float | None:
+    cohb = session.conditions.carboxyhemoglobin
+    if cohb is None or not 0 <= cohb.value < phys.COHB_FULL_PERCENT:
+        return None
+    return phys.cohb_adjustment_factor(cohb.value)
+
+
+def _scaled(quantity: Quantity | None, factor: float | None) -> Quantity | None:
+    if quantity is None or factor is None:
+        return None
+    return _q(quantity.value * factor, quantity.unit, max(quantity.decimals or 0, 1))
+
+
+def _pred(session: Session, name: str) -> Quantity | None:
+    predicted = session.results.predicted
+    return getattr(predicted, name) if predicted is not None else None
+
+
+def _percent(measured: Quantity | None, predicted: Quantity | None) -> Quantity | None:
+    if measured is None or predicted is None or predicted.value <= 0:
+        return None
+    return _q(100.0 * measured.value / predicted.value, "%", 0)

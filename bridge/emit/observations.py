@@ -1,0 +1,199 @@
+"""What is emitted, independent of the standard: one :class:`ResultItem` per quantity.
+
+Owns: choosing which quantities of an outcome become observations, their code, their value
+in the destination's units (the lab's own digits when it reported in those units), the
+reference range (lower limit of normal), the abnormal flag, what a derived value was derived
+from, and the notes (findings, adjustments). Both the FHIR and the HL7 v2 emitters render this
+list, so the two outputs always carry the same content. Pure.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from datetime import datetime
+from typing import Literal
+
+from bridge.mapping import Code, Tables
+from bridge.model import Finding, Outcome, Quantity, Severity
+from bridge.normalise import express
+from bridge.units import UnitSystem
+
+PatientReference = Literal["conditional-create", "identifier"]
+
+
+@dataclass(frozen=True, slots=True)
+class EmitContext:
+    """Everything an emitter needs that is not in the record: time, identity, site settings.
+
+    The shell builds it (it reads the clock and the configuration); emitters never do.
+    """
+
+    now: datetime
+    units: UnitSystem = "traditional"
+    sending_application: str = "DLCO-BRIDGE"
+    sending_facility: str = "PFT-LAB"
+    receiving_application: str = "RECORDS"
+    receiving_facility: str = "HOSPITAL"
+    local_code_system: str | None = None  # FHIR URI for local codes; None: codes.toml default
+    identifier_system: str = "urn:dlco-bridge:observation-id"
+    patient_reference: PatientReference = "identifier"
+    correction: bool = False  # new content for a test id that was already sent
+    processing_id: str = "P"  # HL7 MSH-11: P production, T training, D debugging
+
+
+Flag = Literal["L", "H", "N"]
+
+
+@dataclass(frozen=True, slots=True)
+class ResultItem:
+    """One quantity to emit, in the destination's units."""
+
+    key: str  # stable key, e.g. "dlco"; also part of the observation identifier
+    code: Code
+    quantity: Quantity
+    low: Quantity | None = None  # lower limit of normal, same unit
+    flag: Flag | None = None
+    derived_from: tuple[str, ...] = ()
+    computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
+    notes: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True, slots=True)
+class ReportContent:
+    """Everything an emitter renders for one outcome."""
+
+    items: tuple[ResultItem, ...]
+    notes: tuple[str, ...] = field(default=())
+
+
+def _finding_note(finding: Finding) -> str:
+    return f"{finding.severity.value.upper()} {finding.code} ({finding.path}): {finding.message}"
+
+
+def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> ReportContent:
+    """The items and notes to emit for one outcome, in ``units``."""
+    s, d = outcome.session, outcome.derived
+    r, c = s.results, s.conditions
+    pred = r.predicted
+    lln = pred.lower_limits if pred is not None else None
+    cat = tables.units
+
+    def show(q: Quantity | None) -> Quantity | None:
+        if q is None:
+            return None
+        dimension = cat.units[q.unit].dimension
+        return express(q, cat.display_unit(dimension, units), cat)
+
+    by_path: dict[str, list[str]] = {}
+    for finding in outcome.findings:
+        if finding.severity is not Severity.INFO:
+            by_path.setdefault(finding.path, []).append(_finding_note(finding))
+
+    items: list[ResultItem] = []
+
+    def add(
+        key: str,
+        q: Quantity | None,
+        *,
+        low: Quantity | None = None,
+        derived_from: tuple[str, ...] = (),
+        computed: bool = False,
+        path: str = "",
+        notes: tuple[str, ...] = (),
+    ) -> None:
+        shown = show(q)
+        if shown is None:
+            return
+        low_shown = show(low)
+        flag: Flag | None = None
+        if low_shown is not None:
+            flag = "L" if shown.value < low_shown.value else "N"
+        extra = tuple(by_path.get(path, ())) if path else ()
+        items.append(
+            ResultItem(
+                key, tables.codes.codes[key], shown, low_shown, flag, derived_from, computed, notes + extra
+            )
+        )
+
+    computed_note = ("computed by dlco-bridge from the reported values",)
+    add("dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco")
+    add("va", r.va, low=lln.va if lln else None, path="results.va")
+    if r.kco is not None:
+        add("kco", r.kco, low=lln.kco if lln else None, path="results.kco")
+    else:
+        add(
+            "kco",
+            d.kco,
+            low=lln.kco if lln else None,
+            derived_from=("dlco", "va"),
+            computed=True,
+            notes=computed_note,
+        )
+    if r.dlco_hb_adjusted is not None:
+        add(
+            "dlco_hb_adjusted",
+            r.dlco_hb_adjusted,
+            derived_from=("dlco", "hemoglobin"),
+            path="results.dlco_hb_adjusted",
+        )
+    add(
+        "dlco_pressure_adjusted",
+        d.dlco_pressure_adjusted,
+        derived_from=("dlco", "barometric_pressure"),
+        computed=True,
+        notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), computed by dlco-bridge",),
+    )
+    if pred is not None:
+        add("dlco_predicted", pred.dlco)
+        add("kco_predicted", pred.kco)
+        add("va_predicted", pred.va)
+    add(
+        "dlco_percent_predicted",
+        d.dlco_percent_predicted,
+        derived_from=("dlco", "dlco_predicted"),
+        computed=True,
+    )
+    add(
+        "kco_percent_predicted", d.kco_percent_predicted, derived_from=("kco", "kco_predicted"), computed=True
+    )
+    add("va_percent_predicted", d.va_percent_predicted, derived_from=("va", "va_predicted"), computed=True)
+    add("tlc", r.tlc)
+    add("hemoglobin", c.hemoglobin, path="conditions.hemoglobin")
+    add("carboxyhemoglobin", c.carboxyhemoglobin, path="conditions.carboxyhemoglobin")
+    add("barometric_pressure", c.barometric_pressure)
+    present = {item.key for item in items}
+    items = [_keep_present_sources(item, present) for item in items]
+    return ReportContent(tuple(items), _report_notes(outcome))
+
+
+def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
+    kept = tuple(key for key in item.derived_from if key in present)
+    if kept == item.derived_from:
+        return item
+    return ResultItem(
+        item.key, item.code, item.quantity, item.low, item.flag, kept, item.computed_here, item.notes
+    )
+
+
+def _report_notes(outcome: Outcome) -> tuple[str, ...]:
+    """Report-level notes: quality grade, reference set, and every finding."""
+    notes: list[str] = []
+    d, s = outcome.derived, outcome.session
+    if d.session_grade is not None:
+        notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres).")
+    pred = s.results.predicted
+    if pred is not None and pred.reference_set:
+        notes.append(f"Reference values: {pred.reference_set}.")
+    notes.extend(_finding_note(f) for f in outcome.findings)
+    return tuple(notes)
+
+
+def observation_identifier(outcome: Outcome, key: str) -> str:
+    """Stable identifier value of one observation: lab + test id + quantity key."""
+    return f"{outcome.session.lab.name}|{outcome.session.test_id}|{key}"
+
+
+def code_system_uri(code: Code, tables: Tables, context: EmitContext) -> str:
+    if code.system == "local" and context.local_code_system:
+        return context.local_code_system
+    return tables.codes.systems[code.system]

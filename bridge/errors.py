@@ -1,0 +1,132 @@
+"""The one exception tree of dlco-bridge.
+
+Each branch maps to exactly one action in the shell::
+
+    BridgeError
+    ├── InputError            quarantine the input, never retry
+    │   ├── UnreadableInput   bytes that are not text / JSON / HL7 / over the size limit
+    │   ├── UnknownFormat     no reader or field map claims the input
+    │   ├── MissingField      a required field is absent
+    │   ├── InvalidField      a field is present but has the wrong type or value
+    │   ├── UnitError         a unit that is unknown or of the wrong dimension
+    │   └── BlockedByFinding  a finding configured as blocking stops emission
+    ├── MappingError          a field map or code table is broken: fatal at start-up
+    ├── ConfigError           the settings are broken: fatal at start-up
+    ├── DeliveryError         retry with back-off
+    │   ├── ConnectFailed
+    │   ├── DeliveryTimeout
+    │   └── Rejected          the receiver said no (NAK, HTTP 4xx): dead-letter, no retry
+    └── LedgerError           the state database is unusable: fatal
+
+Clinical or data-quality problems are never exceptions: they are ``Finding`` values
+(see ``bridge.model``). Exceptions carry structured fields so that callers and reports use
+``exc.field`` rather than parsing the message.
+"""
+
+from __future__ import annotations
+
+
+class BridgeError(Exception):
+    """Root of every error dlco-bridge raises on purpose."""
+
+
+class InputError(BridgeError):
+    """The input cannot be turned into a record; it is quarantined with this reason.
+
+    ``source`` names the file (or message), ``field`` the path inside it, ``expected`` says
+    what would have been accepted. ``str()`` is the one-line form ``source: field: expected``.
+    """
+
+    def __init__(self, field: str, expected: str, source: str = "") -> None:
+        self.field = field
+        self.expected = expected
+        self.source = source
+        super().__init__(self.line())
+
+    def line(self) -> str:
+        parts = [p for p in (self.source, self.field, self.expected) if p]
+        return ": ".join(parts)
+
+    def with_source(self, source: str) -> InputError:
+        """The same error, naming the input it came from."""
+        clone = type(self).__new__(type(self))
+        clone.__dict__.update(self.__dict__)
+        clone.source = source
+        Exception.__init__(clone, clone.line())
+        return clone
+
+    def __str__(self) -> str:
+        return self.line()
+
+
+class UnreadableInput(InputError):
+    """Not decodable: not UTF-8, not JSON, empty, or larger than the configured limit."""
+
+
+class UnknownFormat(InputError):
+    """No reader recognises the input."""
+
+
+class MissingField(InputError):
+    """A required field is absent."""
+
+
+class InvalidField(InputError):
+    """A field has the wrong type or an impossible value."""
+
+
+class UnitError(InputError):
+    """A unit that is not in the catalogue, or of the wrong dimension for its field."""
+
+    def __init__(self, field: str, unit: str, expected: str, source: str = "") -> None:
+        self.unit = unit
+        super().__init__(field, f"unit {unit!r} {expected}", source)
+
+
+class BlockedByFinding(InputError):
+    """A finding that local configuration marks as blocking; nothing is emitted."""
+
+
+class MappingError(BridgeError):
+    """A field map or code table in ``mappings/`` is invalid."""
+
+    def __init__(self, table: str, where: str, expected: str) -> None:
+        self.table = table
+        self.where = where
+        self.expected = expected
+        super().__init__(f"{table}: {where}: {expected}")
+
+
+class ConfigError(BridgeError):
+    """The settings are invalid; ``key`` names the setting at fault."""
+
+    def __init__(self, key: str, expected: str, source: str = "") -> None:
+        self.key = key
+        self.expected = expected
+        self.source = source
+        super().__init__(": ".join(p for p in (source, key, expected) if p))
+
+
+class DeliveryError(BridgeError):
+    """A message could not be delivered this time; the outbox retries it."""
+
+    def __init__(self, destination: str, detail: str) -> None:
+        self.destination = destination
+        self.detail = detail
+        super().__init__(f"{destination}: {detail}")
+
+
+class ConnectFailed(DeliveryError):
+    """The receiver could not be reached."""
+
+
+class DeliveryTimeout(DeliveryError):
+    """The receiver did not answer in time."""
+
+
+class Rejected(DeliveryError):
+    """The receiver answered no (MLLP AE/AR, HTTP 4xx): dead-letter, never retried."""
+
+
+class LedgerError(BridgeError):
+    """The state database cannot be used (locked by another service, corrupt, wrong schema)."""

@@ -1,0 +1,239 @@
+"""The canonical record: one single-breath DLCO test session of one patient.
+
+Owns the shape of the data every reader produces and every emitter consumes. Every quantity
+is a :class:`Quantity` (value + unit, with the value and unit it arrived with). Models are
+frozen; steps return new values with ``model_copy(update=...)``. Imports only the stdlib and
+pydantic: no I/O, no clock.
+
+Each quantity field declares its *dimension* and *canonical unit* with a :class:`Measure`
+annotation; ``bridge.normalise`` reads these to convert every quantity to the canonical unit.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from datetime import date
+from enum import StrEnum
+from typing import Annotated, Literal
+
+from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
+
+
+class Frozen(BaseModel):
+    """Base for every record model: immutable, strict about unknown keys."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+@dataclass(frozen=True, slots=True)
+class Measure:
+    """Annotation on a quantity field: which dimension it has and the unit it is kept in."""
+
+    dimension: str
+    canonical_unit: str
+    signed: bool = False  # may the value be negative (altitude below sea level, temperature)
+
+
+class Original(Frozen):
+    """The value and unit exactly as the source wrote them (the value as text keeps its digits)."""
+
+    value: str
+    unit: str
+
+
+class Quantity(Frozen):
+    """A value with its UCUM unit.
+
+    ``decimals`` is the number of digits after the decimal point the source reported, so that
+    7.460 is emitted as 7.460; ``None`` for values computed here. ``original`` is set by
+    normalisation when the source spelled or scaled the quantity differently.
+    """
+
+    value: float = Field(allow_inf_nan=False)
+    unit: str = Field(min_length=1)
+    decimals: int | None = Field(default=None, ge=0, le=12)
+    original: Original | None = None
+
+
+# Annotated quantity kinds: the dimension and the unit the core keeps each one in.
+# The core computes in traditional units because the equations of the standards are written so.
+DiffusingCapacity = Annotated[Quantity, Measure("diffusing_capacity", "mL/min/mm[Hg]")]
+TransferCoefficient = Annotated[Quantity, Measure("transfer_coefficient", "mL/min/mm[Hg]/L")]
+Volume = Annotated[Quantity, Measure("volume", "L")]
+Duration = Annotated[Quantity, Measure("time", "s")]
+Pressure = Annotated[Quantity, Measure("pressure", "mm[Hg]")]
+Altitude = Annotated[Quantity, Measure("length", "m", signed=True)]
+BodyHeight = Annotated[Quantity, Measure("length", "cm")]
+BodyWeight = Annotated[Quantity, Measure("mass", "kg")]
+Haemoglobin = Annotated[Quantity, Measure("mass_concentration", "g/dL")]
+Percentage = Annotated[Quantity, Measure("fraction", "%")]
+Temperature = Annotated[Quantity, Measure("temperature", "Cel", signed=True)]
+
+GasFraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
+
+
+class Sex(StrEnum):
+    FEMALE = "female"
+    MALE = "male"
+    OTHER = "other"
+    UNKNOWN = "unknown"
+
+
+class Lab(Frozen):
+    name: str = Field(min_length=1)
+    site: str | None = None
+
+
+class Patient(Frozen):
+    id: str = Field(min_length=1)
+    id_system: str = Field(min_length=1)
+    family: str | None = None
+    given: str | None = None
+    sex: Sex
+    birth_date: date
+    height: BodyHeight
+    weight: BodyWeight | None = None
+
+
+class SampleGasHandling(StrEnum):
+    """How the analyser treats water vapour and CO2 in the alveolar sample (S05 Table 5)."""
+
+    H2O_REMOVED = "h2o_removed"
+    H2O_AND_CO2_REMOVED = "h2o_and_co2_removed"
+    ROOM_EQUILIBRATED = "room_equilibrated"
+    HEATED_WET = "heated_wet"
+
+
+class Method(Frozen):
+    """Device-neutral description of how the test was done."""
+
+    analyser: Literal["classical", "rapid"] = "classical"
+    tracer_gas: str | None = None
+    sample_gas: SampleGasHandling = SampleGasHandling.H2O_REMOVED
+    inspired_volume_condition: Literal["ATPD", "BTPS"] = "ATPD"
+
+
+class Conditions(Frozen):
+    barometric_pressure: Pressure | None = None
+    altitude: Altitude | None = None
+    hemoglobin: Haemoglobin | None = None
+    carboxyhemoglobin: Percentage | None = None
+    room_temperature: Temperature | None = None
+    inspired_o2_fraction: GasFraction | None = None
+    alveolar_co2_fraction: GasFraction | None = None
+
+
+class ManoeuvreReport(Frozen):
+    """What the device itself computed for one manoeuvre."""
+
+    dlco: DiffusingCapacity | None = None
+    va: Volume | None = None
+
+
+class Manoeuvre(Frozen):
+    inspired_volume: Volume
+    vital_capacity: Volume | None = None
+    breath_hold_time: Duration
+    sample_collection_time: Duration | None = None
+    inspired_co_fraction: GasFraction
+    inspired_tracer_fraction: GasFraction
+    alveolar_co_fraction: GasFraction
+    alveolar_tracer_fraction: GasFraction
+    instrument_dead_space: Volume | None = None
+    anatomic_dead_space: Volume | None = None
+    reported: ManoeuvreReport = ManoeuvreReport()
+
+
+class ReferenceLimits(Frozen):
+    dlco: DiffusingCapacity | None = None
+    kco: TransferCoefficient | None = None
+    va: Volume | None = None
+
+
+class Predicted(Frozen):
+    """Predicted values as the lab reported them, and the reference set they came from."""
+
+    reference_set: str | None = None
+    dlco: DiffusingCapacity | None = None
+    kco: TransferCoefficient | None = None
+    va: Volume | None = None
+    lower_limits: ReferenceLimits | None = None
+
+
+class Results(Frozen):
+    dlco: DiffusingCapacity | None = None
+    va: Volume | None = None
+    kco: TransferCoefficient | None = None
+    dlco_hb_adjusted: DiffusingCapacity | None = None
+    tlc: Volume | None = None
+    predicted: Predicted | None = None
+
+
+class Session(Frozen):
+    """One DLCO test session: the hub every reader produces and every emitter consumes."""
+
+    format: Literal["dlco-result/1"]
+    test_id: str = Field(min_length=1, max_length=64)
+    performed_at: AwareDatetime
+    lab: Lab
+    patient: Patient
+    method: Method = Method()
+    conditions: Conditions = Conditions()
+    manoeuvres: tuple[Manoeuvre, ...] = ()
+    results: Results = Results()
+
+
+class Severity(StrEnum):
+    INFO = "info"
+    WARNING = "warning"
+    ERROR = "error"
+
+
+class Finding(Frozen):
+    """A data-quality or consistency observation: collected, never raised.
+
+    ``code`` is stable (documented in docs/findings.md), ``path`` points into the record,
+    ``message`` is a sentence a person can act on.
+    """
+
+    code: str
+    severity: Severity
+    path: str
+    message: str
+
+
+class ManoeuvreAssessment(Frozen):
+    """What the bridge recomputed for one manoeuvre."""
+
+    index: int
+    va: Quantity | None = None
+    dlco: Quantity | None = None
+    grade: str
+    grade_reasons: tuple[str, ...] = ()
+
+
+class Derived(Frozen):
+    """Values the bridge recomputed from the record, in canonical units."""
+
+    age_years: float
+    kco: Quantity | None = None
+    dlco_hb_adjusted: Quantity | None = None
+    dlco_pressure_adjusted: Quantity | None = None
+    dlco_cohb_adjusted: Quantity | None = None
+    dlco_from_manoeuvres: Quantity | None = None
+    va_from_manoeuvres: Quantity | None = None
+    manoeuvres: tuple[ManoeuvreAssessment, ...] = ()
+    session_grade: str | None = None
+    dlco_percent_predicted: Quantity | None = None
+    kco_percent_predicted: Quantity | None = None
+    va_percent_predicted: Quantity | None = None
+
+
+class Outcome(Frozen):
+    """The result of the pure pipeline for one input."""
+
+    source: str
+    source_sha256: str
+    session: Session
+    derived: Derived
+    findings: tuple[Finding, ...] = ()

@@ -1,0 +1,136 @@
+"""Normalisation: every quantity of a session to its canonical UCUM unit, originals kept.
+
+Owns: walking the record by the :class:`bridge.model.Measure` annotations, resolving unit
+spellings through the catalogue, converting, and refusing what cannot be a value of its field
+(unknown unit, wrong dimension, negative volume). Idempotent: normalising twice changes nothing.
+Also owns :func:`express`, the inverse step emitters use to show a quantity in a chosen unit.
+"""
+
+from __future__ import annotations
+
+from functools import cache
+from typing import Annotated, Any, get_args, get_origin
+
+from pydantic import BaseModel
+
+from bridge.errors import InvalidField, UnitError
+from bridge.model import Measure, Original, Quantity, Session
+from bridge.units import UnitCatalogue, decimals_after_conversion
+
+# A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.
+_Step = tuple[str, Measure | type[BaseModel], bool]
+
+
+def normalise(session: Session, catalogue: UnitCatalogue) -> Session:
+    """The session with every quantity in its canonical unit (see ``bridge.model``)."""
+    return _normalise_model(session, catalogue, "")
+
+
+def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
+    """One quantity in its canonical unit; the original value and unit are kept."""
+    unit = catalogue.resolve(quantity.unit)
+    if unit is None:
+        raise UnitError(f"{path}.unit", quantity.unit, f"is not a known unit for {_dimension(measure)}")
+    if unit.dimension != measure.dimension:
+        expected = f"is a {unit.dimension.replace('_', ' ')} unit; expected one for {_dimension(measure)}"
+        raise UnitError(f"{path}.unit", quantity.unit, expected)
+    if quantity.value < 0 and not measure.signed:
+        raise InvalidField(f"{path}.value", f"a value >= 0, got {quantity.value:g}")
+    if quantity.unit == measure.canonical_unit and quantity.original is not None:
+        return quantity  # already normalised
+    original = quantity.original or Original(value=format_value(quantity), unit=quantity.unit)
+    value = catalogue.convert(quantity.value, unit.code, measure.canonical_unit)
+    decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
+    if unit.code == measure.canonical_unit:
+        decimals = quantity.decimals
+    return Quantity(value=value, unit=measure.canonical_unit, decimals=decimals, original=original)
+
+
+def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity:
+    """The quantity shown in ``unit``; the lab's own digits when it reported in that unit."""
+    if quantity.unit == unit:
+        return quantity
+    original = quantity.original
+    if original is not None:
+        source = catalogue.resolve(original.unit)
+        if source is not None and source.code == unit:
+            return Quantity(value=float(original.value), unit=unit, decimals=_decimals_in(original.value))
+    value = catalogue.convert(quantity.value, quantity.unit, unit)
+    decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
+    return Quantity(value=value, unit=unit, decimals=decimals, original=original)
+
+
+def format_value(quantity: Quantity) -> str:
+    """The value as text with the reported number of decimals (6 significant digits if unknown)."""
+    if quantity.decimals is None:
+        return format(quantity.value, ".6g")
+    return f"{quantity.value:.{quantity.decimals}f}"
+
+
+def _decimals_in(text: str) -> int:
+    _, _, fraction = text.partition(".")
+    return len(fraction)
+
+
+def _dimension(measure: Measure) -> str:
+    return measure.dimension.replace("_", " ") + f" (e.g. {measure.canonical_unit})"
+
+
+def _normalise_model(obj: BaseModel, catalogue: UnitCatalogue, path: str) -> Any:
+    updates: dict[str, Any] = {}
+    for name, kind, is_tuple in _plan(type(obj)):
+        value = getattr(obj, name)
+        if value is None:
+            continue
+        where = f"{path}.{name}" if path else name
+        if isinstance(kind, Measure):
+            new = normalise_quantity(value, kind, catalogue, where)
+        elif is_tuple:
+            new = tuple(_normalise_model(item, catalogue, f"{where}[{i}]") for i, item in enumerate(value))
+        else:
+            new = _normalise_model(value, catalogue, where)
+        if new != value:
+            updates[name] = new
+    return obj.model_copy(update=updates) if updates else obj
+
+
+@cache
+def _plan(cls: type[BaseModel]) -> tuple[_Step, ...]:
+    """Which fields of a model hold quantities or nested models (computed once per class)."""
+    steps: list[_Step] = []
+    for name, info in cls.model_fields.items():
+        measure = _measure(info.metadata, info.annotation)
+        if measure is not None:
+            steps.append((name, measure, False))
+            continue
+        nested, is_tuple = _nested_model(info.annotation)
+        if nested is not None:
+            steps.append((name, nested, is_tuple))
+    return tuple(steps)
+
+
+def _measure(metadata: list[Any], annotation: Any) -> Measure | None:
+    """The Measure of a field, also when it sits inside ``Optional[Annotated[...]]``."""
+    for item in metadata:
+        if isinstance(item, Measure):
+            return item
+    for arg in get_args(annotation):
+        if get_origin(arg) is Annotated:
+            found = _measure(list(arg.__metadata__), None)
+            if found is not None:
+                return found
+    return None
+
+
+def _nested_model(annotation: Any) -> tuple[type[BaseModel] | None, bool]:
+    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+        return (annotation, False) if annotation is not Quantity else (None, False)
+    args = get_args(annotation)
+    if get_origin(annotation) is tuple and args:
+        inner, _ = _nested_model(args[0])
+        return inner, True
+    for arg in args:  # Optional[Model]
+        inner, is_tuple = _nested_model(arg)
+        if inner is not None:
+            return inner, is_tuple
+    return None, False

@@ -1,0 +1,175 @@
+"""Manoeuvre quality grades, repeatability, and which manoeuvres make the reported value.
+
+Owns: applying the grade table (``mappings/quality_grades.toml``, parsed here from text) to
+the facts of each manoeuvre, and the 2017 reporting rule: the mean of two or more repeatable
+grade-A manoeuvres; one grade A alone; otherwise the mean of the best-graded acceptable ones
+with a caution. Pure: plain numbers in, grades and indices out.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+
+from bridge.errors import MappingError
+
+FAIL_GRADE = "F"
+
+
+@dataclass(frozen=True, slots=True)
+class GradeRule:
+    grade: str
+    vi_vc_min_percent: float
+    sample_collection_max_s: float
+    breath_hold_s: tuple[float, float] | None = None
+    vi_vc_min_percent_if_va_close: float | None = None
+    va_close_ml: float = 0.0
+    va_close_percent: float = 0.0
+
+
+@dataclass(frozen=True, slots=True)
+class GradeTable:
+    rules: tuple[GradeRule, ...]
+    max_dlco_difference: float  # mL/min/mmHg
+    acceptable_grades: tuple[str, ...]
+
+    @classmethod
+    def from_toml(cls, text: str, name: str = "quality_grades.toml") -> GradeTable:
+        try:
+            data = tomllib.loads(text)
+            rules = tuple(_rule(entry) for entry in data["grade"])
+            repeat = data["repeatability"]
+            return cls(
+                rules,
+                float(repeat["max_dlco_difference_ml_min_mmhg"]),
+                tuple(repeat["acceptable_grades"]),
+            )
+        except (tomllib.TOMLDecodeError, KeyError, TypeError, ValueError) as exc:
+            raise MappingError(
+                name, "grade table", f"grades and repeatability as documented ({exc})"
+            ) from exc
+
+
+def _rule(entry: Mapping[str, object]) -> GradeRule:
+    bht = entry.get("breath_hold_s")
+    return GradeRule(
+        grade=str(entry["grade"]),
+        vi_vc_min_percent=float(entry["vi_vc_min_percent"]),  # type: ignore[arg-type]
+        sample_collection_max_s=float(entry["sample_collection_max_s"]),  # type: ignore[arg-type]
+        breath_hold_s=(float(bht[0]), float(bht[1])) if isinstance(bht, list) else None,
+        vi_vc_min_percent_if_va_close=_optional_float(entry.get("vi_vc_min_percent_if_va_close")),
+        va_close_ml=float(entry.get("va_close_ml", 0.0)),  # type: ignore[arg-type]
+        va_close_percent=float(entry.get("va_close_percent", 0.0)),  # type: ignore[arg-type]
+    )
+
+
+def _optional_float(value: object) -> float | None:
+    return float(value) if isinstance(value, int | float) else None
+
+
+@dataclass(frozen=True, slots=True)
+class ManoeuvreFacts:
+    """What grading needs to know of one manoeuvre (volumes in L, times in s)."""
+
+    inspired_volume_l: float
+    breath_hold_s: float
+    sample_collection_s: float | None
+    va_l: float | None
+
+
+@dataclass(frozen=True, slots=True)
+class Grade:
+    grade: str
+    reasons: tuple[str, ...]
+
+
+def grade_manoeuvres(
+    manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float, table: GradeTable
+) -> tuple[Grade, ...]:
+    """Grade every manoeuvre of a session; VI/VC is against the session's largest VC."""
+    first = [_grade(m, largest_vc_l, table, close_va=False) for m in manoeuvres]
+    acceptable = [i for i, g in enumerate(first) if g.grade in table.acceptable_grades]
+    result = []
+    for i, facts in enumerate(manoeuvres):
+        others = [manoeuvres[j].va_l for j in acceptable if j != i]
+        close = any(_va_close(facts.va_l, other, table.rules[0]) for other in others)
+        result.append(_grade(facts, largest_vc_l, table, close_va=close) if close else first[i])
+    return tuple(result)
+
+
+def _grade(facts: ManoeuvreFacts, largest_vc_l: float, table: GradeTable, close_va: bool) -> Grade:
+    vi_vc = 100.0 * facts.inspired_volume_l / largest_vc_l
+    missed: list[str] = []
+    for rule in table.rules:
+        missed = _misses(rule, facts, vi_vc, close_va)
+        if not missed:
+            return Grade(rule.grade, ())
+    return Grade(FAIL_GRADE, tuple(missed))
+
+
+def _misses(rule: GradeRule, facts: ManoeuvreFacts, vi_vc: float, close_va: bool) -> list[str]:
+    misses = []
+    floor = rule.vi_vc_min_percent
+    if close_va and rule.vi_vc_min_percent_if_va_close is not None:
+        floor = rule.vi_vc_min_percent_if_va_close
+    if vi_vc < floor:
+        misses.append(f"VI/VC {vi_vc:.0f} % is below {floor:.0f} %")
+    if rule.breath_hold_s is not None:
+        low, high = rule.breath_hold_s
+        if not low <= facts.breath_hold_s <= high:
+            misses.append(f"breath-hold {facts.breath_hold_s:.1f} s is outside {low:g}-{high:g} s")
+    sample = facts.sample_collection_s
+    if sample is not None and sample > rule.sample_collection_max_s:
+        misses.append(f"sample collection {sample:.1f} s is over {rule.sample_collection_max_s:g} s")
+    return misses
+
+
+def _va_close(va: float | None, other: float | None, rule: GradeRule) -> bool:
+    if va is None or other is None or rule.vi_vc_min_percent_if_va_close is None:
+        return False
+    diff = abs(va - other)
+    return diff * 1000.0 <= rule.va_close_ml or diff <= rule.va_close_percent / 100.0 * max(va, other)
+
+
+@dataclass(frozen=True, slots=True)
+class Selection:
+    """Which manoeuvres make the reported value, the session grade, and any caution."""
+
+    indices: tuple[int, ...]
+    session_grade: str
+    repeatable: bool
+    caution: str | None
+
+
+def select_reported(grades: Sequence[Grade], dlcos: Sequence[float], table: GradeTable) -> Selection:
+    """Apply the 2017 reporting rule to graded manoeuvres and their DLCO (mL/min/mmHg)."""
+    rank = {grade: i for i, grade in enumerate(table.acceptable_grades)}
+    best = table.acceptable_grades[0]
+    top = [i for i, g in enumerate(grades) if g.grade == best]
+    if len(top) >= 2:
+        pair = _repeatable_subset(top, dlcos, table.max_dlco_difference)
+        if pair:
+            return Selection(pair, best, True, None)
+        caution = f"grade-{best} manoeuvres differ by more than {table.max_dlco_difference:g} mL/min/mmHg"
+        return Selection(tuple(top), best, False, caution)
+    if len(top) == 1:
+        return Selection(tuple(top), best, False, None)
+    usable = sorted((i for i, g in enumerate(grades) if g.grade in rank), key=lambda i: rank[grades[i].grade])
+    if not usable:
+        return Selection((), FAIL_GRADE, False, "no acceptable manoeuvre")
+    chosen = tuple(sorted(usable[:2]))
+    worst = max((grades[i].grade for i in chosen), key=lambda g: rank[g])
+    repeatable = len(chosen) == 2 and abs(dlcos[chosen[0]] - dlcos[chosen[1]]) <= table.max_dlco_difference
+    return Selection(chosen, worst, repeatable, f"no grade-{best} manoeuvre; best grade {worst}")
+
+
+def _repeatable_subset(indices: Sequence[int], dlcos: Sequence[float], limit: float) -> tuple[int, ...]:
+    """The largest group of manoeuvres whose DLCO values lie within ``limit`` of each other."""
+    ordered = sorted(indices, key=lambda i: dlcos[i])
+    best: tuple[int, ...] = ()
+    for start in range(len(ordered)):
+        group = [i for i in ordered[start:] if dlcos[i] - dlcos[ordered[start]] <= limit]
+        if len(group) > len(best):
+            best = tuple(sorted(group))
+    return best if len(best) >= 2 else ()

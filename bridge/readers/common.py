@@ -1,0 +1,88 @@
+"""Helpers shared by the readers: decoding bytes and turning validation errors into one line."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from pydantic import ValidationError
+
+from bridge.errors import InputError, InvalidField, MissingField, UnreadableInput
+
+
+def decode_text(data: bytes, source: str) -> str:
+    """UTF-8 text of an input (a byte-order mark is dropped); empty input is an error."""
+    if not data.strip():
+        raise UnreadableInput("(file)", "a non-empty export, got an empty file", source)
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError as exc:
+        raise UnreadableInput(
+            f"byte {exc.start}", "UTF-8 text (the file is in another encoding)", source
+        ) from exc
+
+
+def field_path(loc: tuple[int | str, ...]) -> str:
+    """``('manoeuvres', 0, 'inspired_volume', 'unit')`` -> ``manoeuvres[0].inspired_volume.unit``."""
+    path = ""
+    for part in loc:
+        if isinstance(part, int):
+            path += f"[{part}]"
+        else:
+            path += f".{part}" if path else part
+    return path or "(top level)"
+
+
+_EXPECTATIONS = {
+    "missing": "a value (the field is required)",
+    "float_type": "a number",
+    "float_parsing": "a number",
+    "finite_number": "a finite number",
+    "int_type": "a whole number",
+    "string_type": "text",
+    "bool_type": "true or false",
+    "date_type": "a date YYYY-MM-DD",
+    "date_from_datetime_parsing": "a date YYYY-MM-DD",
+    "date_parsing": "a date YYYY-MM-DD",
+    "datetime_type": "an ISO 8601 date-time with offset",
+    "datetime_parsing": "an ISO 8601 date-time with offset",
+    "datetime_from_date_parsing": "an ISO 8601 date-time with offset",
+    "timezone_aware": "a date-time with a UTC offset (e.g. 2026-03-02T09:15:00+01:00)",
+    "extra_forbidden": "no such field (check the spelling against docs/format.md)",
+    "model_type": "an object",
+    "dict_type": "an object",
+    "tuple_type": "a list",
+    "list_type": "a list",
+    "string_too_short": "non-empty text",
+}
+
+
+def first_validation_error(exc: ValidationError, source: str) -> InputError:
+    """One InputError for the first problem pydantic found (the count of others is appended)."""
+    errors = exc.errors(include_url=False)
+    first = errors[0]
+    path = field_path(tuple(first["loc"]))
+    expected = _expectation(first)
+    if len(errors) > 1:
+        expected += f" (+{len(errors) - 1} more problems)"
+    if first["type"] == "missing":
+        return MissingField(path, expected, source)
+    return InvalidField(path, expected, source)
+
+
+def _expectation(error: Any) -> str:
+    kind = error["type"]
+    ctx = error.get("ctx") or {}
+    got = _shown(error.get("input"))
+    if kind in ("greater_than_equal", "greater_than"):
+        return f"a value >= {ctx.get('ge', ctx.get('gt'))}, got {got}"
+    if kind in ("less_than_equal", "less_than"):
+        return f"a value <= {ctx.get('le', ctx.get('lt'))}, got {got}"
+    if kind in ("enum", "literal_error"):
+        return f"one of {ctx.get('expected')}, got {got}"
+    base = _EXPECTATIONS.get(kind, error["msg"])
+    return base if kind in ("missing", "extra_forbidden") else f"{base}, got {got}"
+
+
+def _shown(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."

@@ -1,0 +1,63 @@
+"""Reader for the neutral export format ``dlco-result/1`` (JSON), documented in docs/format.md.
+
+Owns: bytes -> :class:`bridge.model.Session` with units as the source wrote them (``normalise``
+resolves them). Numbers are parsed as decimals first so that the digits a lab reported
+(7.460) are kept. Every failure is one :class:`bridge.errors.InputError` naming the field.
+"""
+
+from __future__ import annotations
+
+import json
+from decimal import Decimal
+from typing import Any
+
+from pydantic import ValidationError
+
+from bridge.errors import InvalidField, MissingField, UnreadableInput
+from bridge.model import Session
+from bridge.readers.common import decode_text, first_validation_error
+
+FORMAT = "dlco-result/1"
+
+
+def read_export(data: bytes, source: str = "") -> Session:
+    """Parse one ``dlco-result/1`` document into a session (units not yet normalised)."""
+    text = decode_text(data, source)
+    try:
+        tree = json.loads(text, parse_float=Decimal)
+    except json.JSONDecodeError as exc:
+        where = f"line {exc.lineno} column {exc.colno}"
+        raise UnreadableInput(where, f"valid JSON ({exc.msg})", source) from exc
+    if not isinstance(tree, dict):
+        raise InvalidField("(top level)", "a JSON object", source)
+    if tree.get("format") != FORMAT:
+        got = tree.get("format")
+        if got is None:
+            raise MissingField("format", f'"{FORMAT}"', source)
+        raise InvalidField("format", f'"{FORMAT}", got {got!r}', source)
+    try:
+        return Session.model_validate(_with_decimals(tree))
+    except ValidationError as exc:
+        raise first_validation_error(exc, source) from None
+
+
+def _with_decimals(node: Any) -> Any:
+    """Turn parsed decimals into floats, recording reported decimals on quantity objects."""
+    if isinstance(node, dict):
+        out = {key: _with_decimals(value) for key, value in node.items()}
+        value = node.get("value")
+        if "unit" in node and isinstance(value, Decimal | int) and not isinstance(value, bool):
+            out.setdefault("decimals", _decimals_of(value))
+        return out
+    if isinstance(node, list):
+        return [_with_decimals(item) for item in node]
+    if isinstance(node, Decimal):
+        return float(node)
+    return node
+
+
+def _decimals_of(value: Decimal | int) -> int:
+    if isinstance(value, int):
+        return 0
+    exponent = value.as_tuple().exponent
+    return -exponent if isinstance(exponent, int) and exponent < 0 else 0

@@ -1,0 +1,43 @@
+"""Loading the tables in ``mappings/`` from disk (shell).
+
+Owns: finding the mappings folder (the installed copy inside the package, or the source
+tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.mapping.Tables`.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from bridge.errors import MappingError
+from bridge.mapping import CodeTable, Plausibility, Tables
+from bridge.quality import GradeTable
+from bridge.units import TRADITIONAL_PER_SI, UnitCatalogue
+
+_PACKAGE_DIR = Path(__file__).resolve().parent
+
+
+def mappings_dir() -> Path:
+    """The folder holding the bundled tables (wheel: bridge/mappings; source tree: mappings/)."""
+    for candidate in (_PACKAGE_DIR / "mappings", _PACKAGE_DIR.parent / "mappings"):
+        if (candidate / "units.toml").is_file():
+            return candidate
+    raise MappingError("mappings", str(_PACKAGE_DIR), "a mappings folder with units.toml")
+
+
+def _text(folder: Path, name: str) -> str:
+    try:
+        return (folder / name).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise MappingError(name, str(folder), f"a readable file ({exc.strerror})") from exc
+
+
+def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIONAL_PER_SI) -> Tables:
+    """Parse every table the core needs."""
+    folder = folder or mappings_dir()
+    units = UnitCatalogue.from_toml(_text(folder, "units.toml"), traditional_per_si)
+    return Tables(
+        units=units,
+        grades=GradeTable.from_toml(_text(folder, "quality_grades.toml")),
+        plausibility=Plausibility.from_toml(_text(folder, "plausibility.toml"), units),
+        codes=CodeTable.from_toml(_text(folder, "codes.toml")),
+    )
