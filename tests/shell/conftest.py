@@ -7,13 +7,14 @@ patched: the transports under test talk to them over real sockets. All data is i
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import json
 import shutil
 import ssl
 import subprocess
 import threading
 import time
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
@@ -43,8 +44,7 @@ def oru(control_id: str, patient: str = "TEST-0001") -> bytes:
 def ack(code: str, control_id: str, text: str = "") -> bytes:
     """An ACK in ER7 answering ``control_id`` with MSA-1 ``code``."""
     segments = (
-        "MSH|^~\\&|RECEIVER|TESTWARD|DLCO-BRIDGE|TESTLAB|20240102030406||"
-        f"ACK^R01^ACK|A-{control_id}|P|2.5.1",
+        f"MSH|^~\\&|RECEIVER|TESTWARD|DLCO-BRIDGE|TESTLAB|20240102030406||ACK^R01^ACK|A-{control_id}|P|2.5.1",
         f"MSA|{code}|{control_id}|{text}",
     )
     return ("\r".join(segments) + "\r").encode("ascii")
@@ -121,16 +121,18 @@ class MllpReceiver:
         return asyncio.run_coroutine_threadsafe(coro, self._loop).result(timeout=2)
 
     async def _listen(self) -> asyncio.Server:
-        return await start_hl7_server(
-            self._handle, LOOPBACK, self.port, ssl=self.ssl_context
-        )
+        return await start_hl7_server(self._handle, LOOPBACK, self.port, ssl=self.ssl_context)
 
     async def _close(self) -> None:
         if self._server is not None:
             self._server.close()
-        for writer in list(self._writers):
+        writers, self._writers = list(self._writers), set()
+        for writer in writers:
             writer.close()
-        self._writers.clear()
+        for writer in writers:
+            # Wait until the FIN is out, so the client sees the link as closed.
+            with contextlib.suppress(ConnectionError):
+                await writer.wait_closed()
 
     async def _handle(self, reader: HL7StreamReader, writer: HL7StreamWriter) -> None:
         self.connections += 1
@@ -188,11 +190,17 @@ def _self_signed(folder: Path, name: str) -> CertPair:
 
 
 @pytest.fixture
-def tls_pair(tmp_path: Path) -> CertPair:
-    """A self-signed server certificate; skipped where no openssl tool is installed."""
+def make_cert(tmp_path: Path) -> Callable[[str], CertPair]:
+    """Makes self-signed certificates; skipped where no openssl tool is installed."""
     if shutil.which("openssl") is None:
         pytest.skip("needs the openssl command to make a throw-away certificate")
-    return _self_signed(tmp_path, "test-receiver")
+    return lambda name: _self_signed(tmp_path, name)
+
+
+@pytest.fixture
+def tls_pair(make_cert: Callable[[str], CertPair]) -> CertPair:
+    """A self-signed certificate for the TLS receiver."""
+    return make_cert("test-receiver")
 
 
 @pytest.fixture
@@ -239,16 +247,11 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
             if endpoint.mode == "unavailable":
                 return self._answer(503, _outcome("the store is restarting"))
             bundle = json.loads(body)
-            is_transaction = (
-                bundle.get("resourceType") == "Bundle"
-                and bundle.get("type") == "transaction"
-            )
+            is_transaction = bundle.get("resourceType") == "Bundle" and bundle.get("type") == "transaction"
             if endpoint.mode == "reject" or not is_transaction:
                 return self._answer(400, _outcome("Observation.code: unknown code"))
             endpoint.bundles.append(bundle)
-            entries = [
-                {"response": {"status": "201 Created"}} for _ in bundle.get("entry", [])
-            ]
+            entries = [{"response": {"status": "201 Created"}} for _ in bundle.get("entry", [])]
             self._answer(
                 200,
                 {
@@ -307,12 +310,12 @@ def bundle(test_id: str = "T-0001") -> bytes:
 
 
 @pytest.fixture
-def make_oru() -> Any:
+def make_oru() -> Callable[..., bytes]:
     """Build an invented ORU^R01 for a control id (see ``oru``)."""
     return oru
 
 
 @pytest.fixture
-def make_bundle() -> Any:
+def make_bundle() -> Callable[..., bytes]:
     """Build an invented transaction Bundle for a test id (see ``bundle``)."""
     return bundle

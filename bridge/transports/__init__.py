@@ -1,0 +1,29 @@
+"""Delivery transports: one narrow seam (``Transport.deliver``), several implementations.
+
+Each transport turns an ``OutgoingMessage`` into a ``DeliveryReceipt`` or raises a
+``DeliveryError`` subclass; none of them knows the ledger or retries by itself.
+"""
+
+from bridge.transports.base import (
+    FHIR_JSON,
+    HL7_V2_ER7,
+    DeliveryReceipt,
+    OutgoingMessage,
+    TlsOptions,
+    Transport,
+)
+from bridge.transports.file import FileTransport
+from bridge.transports.memory import InMemoryTransport
+from bridge.transports.mllp import MllpTransport
+
+__all__ = [
+    "FHIR_JSON",
+    "HL7_V2_ER7",
+    "DeliveryReceipt",
+    "FileTransport",
+    "InMemoryTransport",
+    "MllpTransport",
+    "OutgoingMessage",
+    "TlsOptions",
+    "Transport",
+]

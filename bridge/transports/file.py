@@ -1,0 +1,84 @@
+"""``FileTransport``: drop each message as a file in a folder another system collects.
+
+Owns the atomic write: a temporary file in the same folder, fsync, ``os.replace``, fsync
+of the folder. A reader of the folder never sees half a message, and delivering the same
+message again overwrites the same name, so a retry cannot make a second copy.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+from bridge.errors import DeliveryError
+from bridge.transports.base import (
+    FHIR_JSON,
+    HL7_V2_ER7,
+    DeliveryReceipt,
+    OutgoingMessage,
+)
+
+EXTENSIONS = {FHIR_JSON: ".bundle.json", HL7_V2_ER7: ".oru.hl7"}
+DEFAULT_EXTENSION = ".msg"
+
+# Anything outside this set could walk out of the folder or trip a collector's parser.
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
+
+
+def file_name(message: OutgoingMessage) -> str:
+    """The stable file name of a message: its id made safe, plus the type's extension."""
+    stem = _UNSAFE.sub("_", message.message_id).lstrip(".") or "_"
+    return stem + EXTENSIONS.get(message.content_type, DEFAULT_EXTENSION)
+
+
+@contextmanager
+def _translated(destination: str) -> Iterator[None]:
+    """Every file-system error is retryable: the operator frees space or fixes rights."""
+    try:
+        yield
+    except OSError as exc:
+        raise DeliveryError(destination, f"cannot write: {exc.strerror or exc}") from exc
+
+
+class FileTransport:
+    """Writes each message to ``folder`` under :func:`file_name`."""
+
+    def __init__(self, folder: Path) -> None:
+        self.folder = folder
+
+    def deliver(self, message: OutgoingMessage) -> DeliveryReceipt:
+        target = self.folder / file_name(message)
+        with _translated(message.destination):
+            self.folder.mkdir(parents=True, exist_ok=True)
+            _write_atomically(target, message.payload)
+        return DeliveryReceipt("written", target.name)
+
+    def close(self) -> None:
+        """Nothing is held open between messages."""
+
+
+def _write_atomically(target: Path, data: bytes) -> None:
+    handle, temporary = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(data)
+            stream.flush()
+            os.fsync(stream.fileno())
+        os.replace(temporary, target)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+    _sync_folder(target.parent)
+
+
+def _sync_folder(folder: Path) -> None:
+    """Make the rename itself durable (the new directory entry)."""
+    descriptor = os.open(folder, os.O_RDONLY)
+    try:
+        os.fsync(descriptor)
+    finally:
+        os.close(descriptor)

@@ -1,0 +1,311 @@
+"""MLLP delivery of HL7 v2 messages: framing, ACK parsing, one persistent connection.
+
+Owns the MLLP framing (constants, :func:`frame`, :class:`FrameReader`; pure, so a future
+receiver and the tests use the same code), ACK parsing (:func:`parse_ack`) and the client
+(:class:`MllpTransport`). It must not touch the ledger or decide about retries: it
+returns a receipt or raises a ``DeliveryError`` subclass, and the delivery loop decides.
+
+One connection is kept open and reused for every message, as receivers expect; it is
+dropped after any failure or out-of-step answer and opened again for the next message.
+"""
+
+from __future__ import annotations
+
+import re
+import select
+import socket
+import ssl
+import time
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass
+
+from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
+from bridge.transports.base import (
+    DeliveryReceipt,
+    OutgoingMessage,
+    TlsOptions,
+    client_tls_context,
+)
+
+# source: HL7 v2 MLLP (minimal lower layer protocol) release 2 — <VT> message <FS><CR>
+START_BLOCK = b"\x0b"
+END_BLOCK = b"\x1c"
+CARRIAGE_RETURN = b"\x0d"
+_TRAILER = END_BLOCK + CARRIAGE_RETURN
+
+# source: HL7 v2.5.1 ch. 2, table 0008 (acknowledgment codes), MSA-1
+ACCEPTED = frozenset({"AA", "CA"})
+REFUSED = frozenset({"AE", "AR", "CE", "CR"})
+
+DEFAULT_CONNECT_TIMEOUT = 10.0
+DEFAULT_READ_TIMEOUT = 30.0
+MAX_ACK_BYTES = 1 << 20  # an ACK is a few hundred bytes; anything huge is not one
+_CHUNK = 65536
+
+
+def frame(payload: bytes) -> bytes:
+    """Wrap one message in an MLLP block."""
+    return START_BLOCK + payload + _TRAILER
+
+
+class FrameReader:
+    """Collects bytes from a stream and hands back each complete MLLP block's content.
+
+    Bytes outside a block (noise between frames) are dropped and counted in ``dropped``;
+    ``pending`` is the size of the incomplete block held, for the caller's size limit.
+    """
+
+    def __init__(self) -> None:
+        self._buffer = bytearray()
+        self.dropped = 0
+
+    @property
+    def pending(self) -> int:
+        return len(self._buffer)
+
+    def feed(self, data: bytes) -> list[bytes]:
+        """Add ``data``; return the contents of the blocks it completed, in order."""
+        self._buffer += data
+        frames: list[bytes] = []
+        while True:
+            start = self._buffer.find(START_BLOCK)
+            if start < 0:
+                self.dropped += len(self._buffer)
+                self._buffer.clear()
+                return frames
+            self.dropped += start
+            del self._buffer[:start]
+            end = self._buffer.find(_TRAILER, 1)
+            if end < 0:
+                return frames
+            frames.append(bytes(self._buffer[1:end]))
+            del self._buffer[: end + len(_TRAILER)]
+
+
+@dataclass(frozen=True, slots=True)
+class Ack:
+    """The parts of an ACK the sender acts on."""
+
+    code: str  # MSA-1
+    control_id: str  # MSA-2: the MSH-10 of the message it answers
+    text: str  # MSA-3 and the ERR segments' messages, joined
+
+
+def _segments(text: str) -> list[str]:
+    # source: HL7 v2.5.1 ch. 2 says <CR> ends a segment; tolerating LF is common practice
+    return [s for s in re.split(r"\r\n|\r|\n", text) if s]
+
+
+def _fields(segment: str, separator: str) -> list[str]:
+    return segment.split(separator)
+
+
+def _field(fields: list[str], index: int) -> str:
+    return fields[index] if index < len(fields) else ""
+
+
+def control_id(payload: bytes) -> str | None:
+    """MSH-10 of an ER7 message, or None when the payload does not start with MSH."""
+    text = payload.decode("utf-8", errors="replace")
+    if not text.startswith("MSH") or len(text) < 4:
+        return None
+    separator = text[3]
+    # MSH-1 is the separator itself, so MSH-n is split index n-1.
+    value = _field(_fields(_segments(text)[0], separator), 9)
+    return value or None
+
+
+def _err_text(fields: list[str], component: str) -> str:
+    """ERR-8 (user message) if given, else the text of ERR-3, else ERR-1 (v2.3 style)."""
+    # source: HL7 v2.5.1 ch. 2 ERR segment (ERR-3 HL7 error code CWE, ERR-8 user message)
+    user_message = _field(fields, 8)
+    if user_message:
+        return user_message
+    error_code = _field(fields, 3).split(component)
+    if len(error_code) > 1 and error_code[1]:
+        return error_code[1]
+    return error_code[0] or _field(fields, 1)
+
+
+def parse_ack(data: bytes) -> Ack | None:
+    """The MSA (and ERR) of an ACK block, or None when it is not a readable ACK."""
+    text = data.decode("utf-8", errors="replace")
+    segments = _segments(text)
+    if not segments or not segments[0].startswith("MSH") or len(segments[0]) < 5:
+        return None
+    separator, component = segments[0][3], segments[0][4]
+    msa = next((s for s in segments if s.startswith("MSA" + separator)), None)
+    if msa is None:
+        return None
+    fields = _fields(msa, separator)
+    code, answered = _field(fields, 1), _field(fields, 2)
+    if not code:
+        return None
+    errors = [
+        _err_text(_fields(s, separator), component) for s in segments if s.startswith("ERR" + separator)
+    ]
+    details = [t for t in (_field(fields, 3), *errors) if t]
+    return Ack(code, answered, "; ".join(details))
+
+
+def judge(ack: Ack | None, sent_control_id: str, destination: str) -> DeliveryReceipt:
+    """Turn an ACK into a receipt, or the DeliveryError it amounts to."""
+    if ack is None:
+        raise DeliveryError(destination, "answer is not a readable HL7 ACK")
+    if ack.control_id != sent_control_id:
+        raise DeliveryError(
+            destination,
+            f"ACK is for control id {ack.control_id!r}, sent {sent_control_id!r}",
+        )
+    if ack.code in ACCEPTED:
+        return DeliveryReceipt(ack.code, ack.text)
+    if ack.code in REFUSED:
+        raise Rejected(destination, f"{ack.code} {ack.text}".strip())
+    raise DeliveryError(destination, f"ACK has unknown MSA-1 code {ack.code!r}")
+
+
+class MllpTransport:
+    """Sends ER7 messages over one kept-open MLLP connection and reads each ACK.
+
+    Not thread-safe: one delivery thread owns one transport.
+    """
+
+    def __init__(
+        self,
+        host: str,
+        port: int,
+        *,
+        connect_timeout: float = DEFAULT_CONNECT_TIMEOUT,
+        read_timeout: float = DEFAULT_READ_TIMEOUT,
+        tls: TlsOptions | None = None,
+        max_ack_bytes: int = MAX_ACK_BYTES,
+    ) -> None:
+        self.host = host
+        self.port = port
+        self.connect_timeout = connect_timeout
+        self.read_timeout = read_timeout
+        self.max_ack_bytes = max_ack_bytes
+        self.connections_opened = 0
+        self._context = None if tls is None else client_tls_context(tls)
+        self._server_hostname = (tls and tls.server_hostname) or host
+        self._sock: socket.socket | None = None
+
+    def deliver(self, message: OutgoingMessage) -> DeliveryReceipt:
+        destination = message.destination
+        sent = control_id(message.payload)
+        if sent is None:
+            raise Rejected(destination, "payload is not an HL7 v2 message (no MSH-10)")
+        with self._guarded(destination, connecting=True):
+            sock = self._connection()
+        with self._guarded(destination, connecting=False):
+            sock.settimeout(self.read_timeout)  # bounds the send; the read has a deadline
+            sock.sendall(frame(message.payload))
+            answer = self._read_ack(sock, destination)
+            return judge(parse_ack(answer), sent, destination)
+
+    def close(self) -> None:
+        if self._sock is not None:
+            sock, self._sock = self._sock, None
+            _quietly_close(sock)
+
+    @contextmanager
+    def _guarded(self, destination: str, *, connecting: bool) -> Iterator[None]:
+        """The one translation of socket and TLS errors; any failure drops the connection.
+
+        A refusal (AE/AR) leaves the stream in step, so the connection is kept for it.
+        """
+        try:
+            yield
+        except Rejected:
+            raise
+        except DeliveryError:
+            self.close()
+            raise
+        except TimeoutError as exc:
+            self.close()
+            if connecting:
+                raise ConnectFailed(destination, "connect timed out") from exc
+            raise DeliveryTimeout(destination, "no ACK in time") from exc
+        except ssl.SSLCertVerificationError as exc:
+            self.close()
+            raise ConnectFailed(destination, f"certificate not trusted: {exc.verify_message}") from exc
+        except (OSError, ssl.SSLError) as exc:
+            self.close()
+            kind = ConnectFailed if connecting else DeliveryError
+            raise kind(destination, _describe(exc)) from exc
+
+    def _connection(self) -> socket.socket:
+        if self._sock is not None and _is_stale(self._sock):
+            self.close()
+        if self._sock is None:
+            self._sock = self._open()
+        return self._sock
+
+    def _open(self) -> socket.socket:
+        sock = socket.create_connection((self.host, self.port), timeout=self.connect_timeout)
+        try:
+            sock.setsockopt(socket.SOL_SOCKET, socket.SO_KEEPALIVE, 1)
+            if self._context is not None:
+                sock = self._context.wrap_socket(sock, server_hostname=self._server_hostname)
+        except BaseException:
+            sock.close()
+            raise
+        self.connections_opened += 1
+        return sock
+
+    def _read_ack(self, sock: socket.socket, destination: str) -> bytes:
+        """The first complete block, within ``read_timeout`` for the whole answer."""
+        reader = FrameReader()
+        deadline = time.monotonic() + self.read_timeout
+        while True:
+            remaining = deadline - time.monotonic()
+            if remaining <= 0:
+                raise DeliveryTimeout(destination, "no ACK in time")
+            sock.settimeout(remaining)
+            chunk = sock.recv(_CHUNK)
+            if not chunk:
+                raise DeliveryError(destination, "receiver closed before the ACK")
+            frames = reader.feed(chunk)
+            if frames:
+                if len(frames) > 1 or reader.pending:
+                    # More than one answer: the stream is out of step; start afresh.
+                    self.close()
+                return frames[0]
+            if reader.pending > self.max_ack_bytes:
+                raise DeliveryError(destination, "answer too large to be an ACK")
+
+
+def _is_stale(sock: socket.socket) -> bool:
+    """Whether a kept connection was closed by the peer (or has unexpected bytes).
+
+    Checked before reuse so that a receiver's idle timeout costs a reconnect, not a
+    failed attempt: sending on a closed connection could look like a lost ACK.
+    """
+    try:
+        readable, _, _ = select.select([sock], [], [], 0)
+    except (OSError, ValueError):
+        return True
+    if not readable:
+        return False
+    try:
+        sock.settimeout(0.0)
+        sock.recv(1)  # b"": closed by the peer; any byte: a stray answer
+    except (BlockingIOError, ssl.SSLWantReadError):
+        return False  # only TLS housekeeping (a session ticket) was waiting
+    except OSError:
+        pass
+    return True
+
+
+def _describe(exc: BaseException) -> str:
+    if isinstance(exc, OSError) and exc.strerror:
+        return exc.strerror
+    return str(exc) or type(exc).__name__
+
+
+def _quietly_close(sock: socket.socket) -> None:
+    try:
+        sock.close()
+    except OSError:
+        pass
