@@ -12,6 +12,7 @@ from bridge.transports.base import (
     TlsOptions,
     Transport,
 )
+from bridge.transports.fhir_rest import FhirRestTransport
 from bridge.transports.file import FileTransport
 from bridge.transports.memory import InMemoryTransport
 from bridge.transports.mllp import MllpTransport
@@ -20,6 +21,7 @@ __all__ = [
     "FHIR_JSON",
     "HL7_V2_ER7",
     "DeliveryReceipt",
+    "FhirRestTransport",
     "FileTransport",
     "InMemoryTransport",
     "MllpTransport",

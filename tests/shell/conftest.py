@@ -221,7 +221,7 @@ def tls_receiver(tls_pair: CertPair) -> Iterator[MllpReceiver]:
 class FhirEndpoint:
     """What the endpoint answers next, and what it was sent."""
 
-    mode: str = "ok"  # ok | reject | unavailable | slow
+    mode: str = "ok"  # ok | reject | unavailable | throttled | slow
     delay: float = 0.0
     bundles: list[dict[str, Any]] = field(default_factory=list)
     authorizations: list[str] = field(default_factory=list)
@@ -246,6 +246,8 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
                 time.sleep(endpoint.delay)
             if endpoint.mode == "unavailable":
                 return self._answer(503, _outcome("the store is restarting"))
+            if endpoint.mode == "throttled":
+                return self._answer(429, _outcome("too many requests"))
             bundle = json.loads(body)
             is_transaction = bundle.get("resourceType") == "Bundle" and bundle.get("type") == "transaction"
             if endpoint.mode == "reject" or not is_transaction:
@@ -263,11 +265,13 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
 
         def _answer(self, status: int, document: dict[str, Any]) -> None:
             data = json.dumps(document).encode("utf-8")
-            self.send_response(status)
-            self.send_header("Content-Type", "application/fhir+json")
-            self.send_header("Content-Length", str(len(data)))
-            self.end_headers()
-            self.wfile.write(data)
+            # A client that timed out has gone; that is the point of the slow mode.
+            with contextlib.suppress(BrokenPipeError, ConnectionResetError):
+                self.send_response(status)
+                self.send_header("Content-Type", "application/fhir+json")
+                self.send_header("Content-Length", str(len(data)))
+                self.end_headers()
+                self.wfile.write(data)
 
         def log_message(self, format: str, *args: Any) -> None:  # noqa: A002
             """Keep the test output quiet."""
