@@ -17,7 +17,7 @@ import socket
 import ssl
 import time
 from collections.abc import Iterator
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
@@ -305,7 +305,5 @@ def _describe(exc: BaseException) -> str:
 
 
 def _quietly_close(sock: socket.socket) -> None:
-    try:
+    with suppress(OSError):
         sock.close()
-    except OSError:
-        pass

@@ -87,6 +87,7 @@ class MllpReceiver:
     text: str = ""
     delay: float = 0.0
     ack_control_id: str | None = None  # answer with this MSA-2 instead of the MSH-10
+    refuse: dict[str, str] = field(default_factory=dict)  # MSH-10 -> AE text
     received: list[str] = field(default_factory=list)
     connections: int = 0
     port: int = 0
@@ -121,7 +122,10 @@ class MllpReceiver:
         return asyncio.run_coroutine_threadsafe(coro, self._loop).result(timeout=2)
 
     async def _listen(self) -> asyncio.Server:
-        return await start_hl7_server(self._handle, LOOPBACK, self.port, ssl=self.ssl_context)
+        server: asyncio.Server = await start_hl7_server(
+            self._handle, LOOPBACK, self.port, ssl=self.ssl_context
+        )
+        return server
 
     async def _close(self) -> None:
         if self._server is not None:
@@ -145,7 +149,11 @@ class MllpReceiver:
                 if self.delay:
                     await asyncio.sleep(self.delay)
                 answered = self.ack_control_id or control_id
-                writer.writeblock(ack(self.answer, answered, self.text))
+                if control_id in self.refuse:
+                    reply = ack("AE", answered, self.refuse[control_id])
+                else:
+                    reply = ack(self.answer, answered, self.text)
+                writer.writeblock(reply)
                 await writer.drain()
         except (asyncio.IncompleteReadError, ConnectionError, hl7.ParseException):
             pass
@@ -238,7 +246,7 @@ def _outcome(text: str) -> dict[str, Any]:
 
 def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
     class Handler(BaseHTTPRequestHandler):
-        def do_POST(self) -> None:  # noqa: N802 - the name http.server dispatches to
+        def do_POST(self) -> None:  # the name http.server dispatches to
             body = self.rfile.read(int(self.headers.get("Content-Length", "0")))
             endpoint.authorizations.append(self.headers.get("Authorization", ""))
             endpoint.content_types.append(self.headers.get("Content-Type", ""))
@@ -273,7 +281,7 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
                 self.end_headers()
                 self.wfile.write(data)
 
-        def log_message(self, format: str, *args: Any) -> None:  # noqa: A002
+        def log_message(self, format: str, *args: Any) -> None:
             """Keep the test output quiet."""
 
     return Handler

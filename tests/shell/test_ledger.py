@@ -1,5 +1,7 @@
 """The ledger: schema, durability, outbox order, summary and the service lock."""
 
+# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
+
 from __future__ import annotations
 
 import sqlite3
@@ -8,6 +10,7 @@ import sys
 from collections.abc import Iterator, Sequence
 from contextlib import closing
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import pytest
 
@@ -20,6 +23,9 @@ from bridge.ledger import (
     NewMessage,
     ServiceLock,
 )
+
+if TYPE_CHECKING:
+    from conftest import Clock
 
 HL7 = "x-application/hl7-v2+er7"
 
@@ -42,9 +48,7 @@ def message(
 
 
 def enqueue(ledger: Ledger, sha: str, *messages: NewMessage) -> list[int]:
-    return ledger.record_input_and_enqueue(
-        NewInput(sha, f"{sha}.json", "T-1"), messages
-    )
+    return ledger.record_input_and_enqueue(NewInput(sha, f"{sha}.json", "T-1"), messages)
 
 
 def raw(path: Path) -> closing[sqlite3.Connection]:
@@ -87,13 +91,11 @@ def test_newer_schema_is_refused(tmp_path: Path) -> None:
         Ledger.open(path)
 
 
-def test_seen_and_last_for_test(ledger: Ledger, clock) -> None:
+def test_seen_and_last_for_test(ledger: Ledger, clock: Clock) -> None:
     """Inputs are found by hash, and the latest accepted one per test id."""
     ledger.record_input_and_enqueue(NewInput("a" * 64, "first.json", "T-9"), [])
     clock.advance(10)
-    ledger.record_input_and_enqueue(
-        NewInput("b" * 64, "again.json", "T-9", state="correction"), []
-    )
+    ledger.record_input_and_enqueue(NewInput("b" * 64, "again.json", "T-9", state="correction"), [])
     clock.advance(10)
     ledger.record_quarantine("c" * 64, "broken.json", "patient.birth_date: a date")
 
@@ -131,8 +133,7 @@ def test_enqueue_is_all_or_nothing(ledger: Ledger) -> None:
         enqueue(ledger, "a" * 64, message("M1"), broken)
     with raw(ledger.path) as conn:
         counts = [
-            conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0]
-            for table in ("inputs", "outbox")
+            conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0] for table in ("inputs", "outbox")
         ]
 
     assert [0, 0] == counts
@@ -156,17 +157,13 @@ class PeekingMessages(Sequence[NewMessage]):
     def __iter__(self) -> Iterator[NewMessage]:
         for item in self.items:
             with raw(self.path) as conn:
-                self.seen_outside.append(
-                    conn.execute("SELECT count(*) FROM outbox").fetchone()[0]
-                )
+                self.seen_outside.append(conn.execute("SELECT count(*) FROM outbox").fetchone()[0])
             yield item
 
 
 def test_enqueue_is_invisible_until_committed(ledger: Ledger) -> None:
     """Another connection sees no message mid-transaction, and all of them after."""
-    peeking = PeekingMessages(
-        ledger.path, [message("M1"), message("M2"), message("M3")]
-    )
+    peeking = PeekingMessages(ledger.path, [message("M1"), message("M2"), message("M3")])
 
     ledger.record_input_and_enqueue(NewInput("a" * 64, "a.json", "T-1"), peeking)
     with raw(ledger.path) as conn:
@@ -189,9 +186,7 @@ def test_commit_survives_immediate_process_death(tmp_path: Path) -> None:
         "os._exit(9)\n"
     )
     root = Path(__file__).resolve().parents[2]
-    subprocess.run(
-        [sys.executable, "-c", script, str(path)], cwd=root, check=False, timeout=10
-    )
+    subprocess.run([sys.executable, "-c", script, str(path)], cwd=root, check=False, timeout=10)
 
     with Ledger.open(path) as reopened:
         row = reopened.next_due("ward", now=float("inf"))
@@ -199,22 +194,18 @@ def test_commit_survives_immediate_process_death(tmp_path: Path) -> None:
     assert row is not None and "M1" == row.message_id
 
 
-def test_next_due_is_fifo_per_destination(ledger: Ledger, clock) -> None:
+def test_next_due_is_fifo_per_destination(ledger: Ledger, clock: Clock) -> None:
     """The oldest pending message of a destination goes first."""
-    enqueue(
-        ledger, "a" * 64, message("M1"), message("M2"), message("X", destination="o")
-    )
+    enqueue(ledger, "a" * 64, message("M1"), message("M2"), message("X", destination="o"))
 
     row = ledger.next_due("ward", clock.now)
 
     assert row is not None and "M1" == row.message_id
 
 
-def test_backing_off_patient_blocks_only_that_patient(ledger: Ledger, clock) -> None:
+def test_backing_off_patient_blocks_only_that_patient(ledger: Ledger, clock: Clock) -> None:
     """A newer message for the same patient waits; another patient's message goes."""
-    ids = enqueue(
-        ledger, "a" * 64, message("A1", "p1"), message("A2", "p1"), message("B1", "p2")
-    )
+    ids = enqueue(ledger, "a" * 64, message("A1", "p1"), message("A2", "p1"), message("B1", "p2"))
     ledger.mark_retry(ids[0], "connection refused", next_attempt_at=clock.now + 60)
 
     now_due = ledger.next_due("ward", clock.now)
@@ -224,7 +215,7 @@ def test_backing_off_patient_blocks_only_that_patient(ledger: Ledger, clock) -> 
     assert later_due is not None and "A1" == later_due.message_id
 
 
-def test_marks_and_history(ledger: Ledger, clock) -> None:
+def test_marks_and_history(ledger: Ledger, clock: Clock) -> None:
     """Each outcome updates the row and leaves one line in the attempt history."""
     (row_id,) = enqueue(ledger, "a" * 64, message("M1"))
     ledger.mark_retry(row_id, "timed out", next_attempt_at=clock.now + 2)
@@ -253,7 +244,7 @@ def test_marking_a_finished_row_fails(ledger: Ledger) -> None:
         ledger.mark_rejected(row_id, "late")
 
 
-def test_summary_counts_are_true(ledger: Ledger, clock) -> None:
+def test_summary_counts_are_true(ledger: Ledger, clock: Clock) -> None:
     """Summary counts inputs by state and outbox rows by destination and state."""
     ids = enqueue(
         ledger,
@@ -263,9 +254,7 @@ def test_summary_counts_are_true(ledger: Ledger, clock) -> None:
         message("M3"),
         message("F1", destination="fhir"),
     )
-    ledger.record_input_and_enqueue(
-        NewInput("b" * 64, "b.json", "T-1", state="duplicate"), []
-    )
+    ledger.record_input_and_enqueue(NewInput("b" * 64, "b.json", "T-1", state="duplicate"), [])
     ledger.record_quarantine("c" * 64, "c.json", "unknown format")
     ledger.mark_delivered(ids[0], "AA")
     ledger.mark_rejected(ids[1], "AE: unknown code")
@@ -281,14 +270,12 @@ def test_summary_counts_are_true(ledger: Ledger, clock) -> None:
     )
     assert {
         "fhir": DestinationSummary(pending=1, oldest_pending_age=30.0),
-        "ward": DestinationSummary(
-            pending=1, delivered=1, rejected=1, oldest_pending_age=30.0
-        ),
+        "ward": DestinationSummary(pending=1, delivered=1, rejected=1, oldest_pending_age=30.0),
     } == summary.destinations
     assert (2, 1, 1) == (summary.pending, summary.delivered, summary.rejected)
 
 
-def test_requeue_rejected(ledger: Ledger, clock) -> None:
+def test_requeue_rejected(ledger: Ledger, clock: Clock) -> None:
     """resend puts every dead-lettered message back in the queue, due now."""
     ids = enqueue(ledger, "a" * 64, message("M1"), message("M2"), message("M3"))
     ledger.mark_rejected(ids[0], "AE")
@@ -304,7 +291,7 @@ def test_requeue_rejected(ledger: Ledger, clock) -> None:
     assert row is not None and (ids[0], clock.now) == (row.id, row.next_attempt_at)
 
 
-def test_requeue_one_delivered_message(ledger: Ledger, clock) -> None:
+def test_requeue_one_delivered_message(ledger: Ledger, clock: Clock) -> None:
     """resend of one delivered message makes it pending again."""
     (row_id,) = enqueue(ledger, "a" * 64, message("M1"))
     ledger.mark_delivered(row_id, "AA")
@@ -319,13 +306,10 @@ def test_requeue_one_delivered_message(ledger: Ledger, clock) -> None:
 
 def test_second_service_lock_is_refused(tmp_path: Path) -> None:
     """A second service on the same state folder refuses to start."""
-    with ServiceLock.acquire(tmp_path):
-        with pytest.raises(LedgerError) as caught:
-            ServiceLock.acquire(tmp_path)
+    with ServiceLock.acquire(tmp_path), pytest.raises(LedgerError) as caught:
+        ServiceLock.acquire(tmp_path)
 
-    assert f"another dlco-bridge service holds {tmp_path / 'service.lock'}" == str(
-        caught.value
-    )
+    assert f"another dlco-bridge service holds {tmp_path / 'service.lock'}" == str(caught.value)
 
 
 def test_service_lock_is_free_after_release(tmp_path: Path) -> None:

@@ -1,5 +1,7 @@
 """MLLP: framing, ACK parsing, and the client against python-hl7's asyncio receiver."""
 
+# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
+
 from __future__ import annotations
 
 from collections.abc import Callable

@@ -1,0 +1,104 @@
+"""The delivery policy: take due outbox rows, hand them to transports, record the outcome.
+
+Owns the mapping from outcome to ledger state: a receipt marks the row delivered,
+``Rejected`` dead-letters it (the other messages go on), any other ``DeliveryError``
+schedules a retry with capped, jittered back-off, for as long as it takes. It must not
+sleep, read the clock or draw random numbers itself (``now`` and ``rand`` are passed in),
+and it must not catch what is not a ``DeliveryError``: a ``LedgerError`` or a bug stops
+the service loudly rather than losing track of a message.
+
+Each call of :func:`deliver_one` finishes one message completely (sent, answered and
+recorded), so a service that checks its stop flag between calls never leaves a message
+half-done.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass
+from typing import Literal
+
+from bridge.backoff import DEFAULT_BASE, DEFAULT_CAP, next_delay
+from bridge.errors import DeliveryError, Rejected
+from bridge.ledger import Ledger, OutboxRow
+from bridge.transports.base import OutgoingMessage, Transport
+
+Outcome = Literal["delivered", "rejected", "retry"]
+
+
+@dataclass(frozen=True, slots=True)
+class Backoff:
+    """Retry delays in seconds: the first ceiling, and the cap it doubles up to."""
+
+    base: float = DEFAULT_BASE
+    cap: float = DEFAULT_CAP
+
+
+def to_outgoing(row: OutboxRow) -> OutgoingMessage:
+    """The transport's view of an outbox row."""
+    return OutgoingMessage(
+        destination=row.destination,
+        message_id=row.message_id,
+        payload=row.payload,
+        content_type=row.content_type,
+        test_id=row.test_id,
+    )
+
+
+def deliver_one(
+    ledger: Ledger,
+    destination: str,
+    transport: Transport,
+    now: Callable[[], float],
+    rand: Callable[[], float],
+    backoff: Backoff = Backoff(),
+) -> Outcome | None:
+    """Send the next due message of ``destination``; None when nothing is due."""
+    row = ledger.next_due(destination, now())
+    if row is None:
+        return None
+    try:
+        receipt = transport.deliver(to_outgoing(row))
+    except Rejected as exc:
+        ledger.mark_rejected(row.id, exc.detail)
+        return "rejected"
+    except DeliveryError as exc:
+        delay = next_delay(row.attempts + 1, backoff.base, backoff.cap, rand=rand)
+        ledger.mark_retry(row.id, f"{type(exc).__name__}: {exc.detail}", now() + delay)
+        return "retry"
+    ledger.mark_delivered(row.id, receipt.line())
+    return "delivered"
+
+
+def _never() -> bool:
+    return False
+
+
+def deliver_due(
+    ledger: Ledger,
+    transports: Mapping[str, Transport],
+    now: Callable[[], float],
+    rand: Callable[[], float],
+    *,
+    backoff: Backoff = Backoff(),
+    should_stop: Callable[[], bool] = _never,
+) -> int:
+    """Deliver what is due, one message per destination in turn; return how many finished.
+
+    "Finished" counts messages delivered or dead-lettered. A destination leaves the round
+    when nothing more is due or an attempt failed: the failed message now waits for its
+    back-off, and the link is likely down for the others too. ``should_stop`` is checked
+    before every message.
+    """
+    active = list(transports)
+    finished = 0
+    while active:
+        for destination in list(active):
+            if should_stop():
+                return finished
+            outcome = deliver_one(ledger, destination, transports[destination], now, rand, backoff)
+            if outcome is None or outcome == "retry":
+                active.remove(destination)
+            else:
+                finished += 1
+    return finished
