@@ -1,0 +1,293 @@
+"""HL7 v2.5.1 ORU^R01 in ER7 text: one message per outcome, built with string joins.
+
+Owns: the segment layout (MSH, PID, ORC, OBR, NTE, one OBX per result item with its NTEs),
+escaping of data (HL7 v2.5.1 chapter 2.7), the stable message control id (MSH-10), and the
+length rules below. What is emitted (items, values, ranges, flags, notes) comes from
+:func:`bridge.emit.observations.build_content`, shared with the FHIR emitter.
+
+Must not: read the clock, draw random numbers, do I/O, or import hl7apy (about 50 ms per
+message; a string join takes well under a millisecond). hl7apy and python-hl7 check the
+output in the tests.
+
+Decisions:
+
+* Escaping: ``\\ | ^ & ~`` in data become ``\\E\\ \\F\\ \\S\\ \\T\\ \\R\\``. A line break in
+  free text (NTE-3, data type FT) becomes the formatting command ``\\.br\\``; in every other
+  field (ST, names, identifiers) line breaks and other control characters become one space,
+  because formatting commands are only allowed in FT fields.  # common practice
+* Lengths: the limits checked are those hl7apy STRICT enforces per data type (ST 199, IS 20,
+  NM 16 characters, measured on the escaped text) plus MSH-10 at most 20 (HL7 v2.5.1 MSH-10
+  length 20  # from memory). Free text (code display text, NTE comments) is truncated with a
+  trailing ``...``; identifiers, codes and names are never truncated: an over-long one raises
+  :class:`~bridge.errors.InvalidField` (record data), :class:`~bridge.errors.ConfigError`
+  (site settings) or :class:`~bridge.errors.MappingError` (code tables).
+* OBX-7 uses the v2.5.1 form ``>lower`` for a lower limit of normal with no upper limit
+  (# from memory: OBX-7 forms "lower-upper", "> lower", "< upper"). The LLN itself counts as
+  normal (flag N), which ``>`` states a hair too strictly; no ``>=`` form exists in 2.5.1.
+* OBX-6 is ``code^code^UCUM``: the UCUM code as identifier and as text.  # common practice
+  "UCUM" is not in hl7apy's copy of HL7 table 0396 (a table warning, not an error).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import re
+from collections.abc import Iterable
+from datetime import date, datetime
+from urllib.parse import urlsplit
+
+from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
+from bridge.errors import ConfigError, InvalidField, MappingError
+from bridge.mapping import Code, Tables
+from bridge.model import Outcome, Patient, Sex
+from bridge.normalise import format_value
+
+SEGMENT_SEPARATOR = "\r"
+FIELD_SEPARATOR = "|"
+ENCODING_CHARACTERS = "^~\\&"  # component, repetition, escape, subcomponent
+VERSION = "2.5.1"
+MESSAGE_TYPE = "ORU^R01^ORU_R01"
+CHARACTER_SET = "UNICODE UTF-8"  # HL7 table 0211; names may hold any Unicode letter
+
+CONTROL_ID_LENGTH = 20  # MSH-10 length in v2.5.1  # from memory
+ST_LENGTH = 199  # hl7apy base data type ST
+IS_LENGTH = 20  # hl7apy base data type IS (HD namespace ids)
+NM_LENGTH = 16  # hl7apy base data type NM
+FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
+ELLIPSIS = "..."
+
+CODING_SYSTEMS = {"loinc": "LN", "local": "L"}  # HL7 table 0396
+UNIT_SYSTEM = "UCUM"
+SEX_CODES = {Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"}  # HL7 table 0001
+COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
+SERVICE_SECTION = "PF"  # HL7 table 0074: pulmonary function
+
+_ESCAPES = str.maketrans({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"})
+_LINE_BREAK = re.compile(r"\r\n|\r|\n")
+_CONTROL = re.compile(r"[\x00-\x1f\x7f]")
+
+
+def to_oru(outcome: Outcome, tables: Tables, context: EmitContext) -> str:
+    """The ORU^R01 message for one outcome, segments separated by carriage returns."""
+    content = build_content(outcome, tables, context.units)
+    status = "C" if context.correction else "F"
+    segments = [
+        _msh(outcome, context),
+        _pid(outcome.session.patient),
+        _orc(outcome),
+        _obr(outcome, tables, context, status),
+        *_ntes(content.notes),
+        *_observations(outcome, content, status),
+    ]
+    return SEGMENT_SEPARATOR.join(segments) + SEGMENT_SEPARATOR
+
+
+def control_id(outcome: Outcome, context: EmitContext) -> str:
+    """MSH-10: the same for a resend of the same content, new for a correction or other units."""
+    flag = "correction" if context.correction else "original"
+    basis = f"{outcome.source_sha256}|{context.units}|{flag}"
+    return hashlib.sha256(basis.encode("utf-8")).hexdigest()[:CONTROL_ID_LENGTH]
+
+
+def escape(text: str) -> str:
+    """Data text for any field except FT: delimiters escaped, line breaks as spaces."""
+    return _CONTROL.sub(" ", _LINE_BREAK.sub(" ", text)).translate(_ESCAPES)
+
+
+def escape_formatted(text: str) -> str:
+    """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``."""
+    lines = _LINE_BREAK.split(text)
+    return "\\.br\\".join(_CONTROL.sub(" ", line).translate(_ESCAPES) for line in lines)
+
+
+def hl7_timestamp(moment: datetime) -> str:
+    """A TS value with seconds and the UTC offset, e.g. ``20260310120000+0000``."""
+    if moment.utcoffset() is None:
+        raise ValueError(f"an HL7 timestamp needs a time zone; got naive {moment.isoformat()}")
+    return moment.strftime("%Y%m%d%H%M%S%z")
+
+
+def hl7_date(day: date) -> str:
+    return day.strftime("%Y%m%d")
+
+
+# ---------- segments ----------
+
+
+def _msh(outcome: Outcome, context: EmitContext) -> str:
+    return _segment(
+        "MSH",
+        ENCODING_CHARACTERS,
+        _namespace_setting("sending_application", context.sending_application),
+        _namespace_setting("sending_facility", context.sending_facility),
+        _namespace_setting("receiving_application", context.receiving_application),
+        _namespace_setting("receiving_facility", context.receiving_facility),
+        hl7_timestamp(context.now),
+        "",
+        MESSAGE_TYPE,
+        control_id(outcome, context),
+        _namespace_setting("processing_id", context.processing_id),
+        VERSION,
+        "",
+        "",
+        "",
+        "",
+        "",
+        CHARACTER_SET,
+    )
+
+
+def _pid(patient: Patient) -> str:
+    identifier = _identifier("patient.id", patient.id)
+    name = _components(
+        _name_part("patient.family", patient.family), _name_part("patient.given", patient.given)
+    )
+    return _segment(
+        "PID",
+        "1",
+        "",
+        f"{identifier}^^^{_assigning_authority(patient.id_system)}",
+        "",
+        name,
+        "",
+        hl7_date(patient.birth_date),
+        SEX_CODES[patient.sex],
+    )
+
+
+def _orc(outcome: Outcome) -> str:
+    test_id = _identifier("test_id", outcome.session.test_id)
+    return _segment("ORC", "RE", test_id, test_id)
+
+
+def _obr(outcome: Outcome, tables: Tables, context: EmitContext, status: str) -> str:
+    test_id = _identifier("test_id", outcome.session.test_id)
+    fields = [""] * 25
+    fields[0] = "1"
+    fields[1] = test_id  # OBR-2 placer order number
+    fields[2] = test_id  # OBR-3 filler order number
+    fields[3] = _coded(tables.codes.panel, "panel")
+    fields[6] = hl7_timestamp(outcome.session.performed_at)  # OBR-7 observation date/time
+    fields[21] = hl7_timestamp(context.now)  # OBR-22 results report/status change
+    fields[23] = SERVICE_SECTION  # OBR-24
+    fields[24] = status  # OBR-25 result status (HL7 table 0123)
+    return _segment("OBR", *fields)
+
+
+def _observations(outcome: Outcome, content: ReportContent, status: str) -> Iterable[str]:
+    observed = hl7_timestamp(outcome.session.performed_at)
+    for set_id, item in enumerate(content.items, start=1):
+        yield _obx(set_id, item, status, observed)
+        yield from _ntes(item.notes)
+
+
+def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
+    value = format_value(item.quantity)
+    if len(value) > NM_LENGTH:
+        raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
+    unit = _code_text(item.quantity.unit, "unit", ST_LENGTH)
+    fields = [""] * 14
+    fields[0] = str(set_id)
+    fields[1] = "NM"
+    fields[2] = _coded(item.code, item.key)
+    fields[4] = value
+    fields[5] = _components(unit, unit, UNIT_SYSTEM)
+    fields[6] = f">{format_value(item.low)}" if item.low is not None else ""
+    fields[7] = item.flag or ""  # HL7 table 0078
+    fields[10] = status  # OBX-11 (HL7 table 0085)
+    fields[13] = observed  # OBX-14 date/time of the observation
+    return _segment("OBX", *fields)
+
+
+def _ntes(notes: Iterable[str]) -> list[str]:
+    return [
+        _segment("NTE", str(i), COMMENT_SOURCE, _free_text(note, FT_LENGTH, formatted=True))
+        for i, note in enumerate(notes, start=1)
+    ]
+
+
+# ---------- fields ----------
+
+
+def _segment(name: str, *fields: str) -> str:
+    return FIELD_SEPARATOR.join((name, *fields)).rstrip(FIELD_SEPARATOR)
+
+
+def _components(*parts: str) -> str:
+    return "^".join(parts).rstrip("^")
+
+
+def _coded(code: Code, key: str) -> str:
+    """CE: identifier^text^coding system (OBR-4, OBX-3)."""
+    identifier = _code_text(code.code, f"codes.{key}.code", ST_LENGTH)
+    return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
+
+
+def _code_text(text: str, where: str, limit: int) -> str:
+    escaped = escape(text)
+    if len(escaped) > limit:
+        raise MappingError("codes.toml", where, f"a code of at most {limit} characters for HL7")
+    return escaped
+
+
+def _identifier(field: str, value: str) -> str:
+    escaped = escape(value)
+    if len(escaped) > ST_LENGTH:
+        raise InvalidField(
+            field, f"at most {ST_LENGTH} characters once HL7-escaped (identifiers are never cut)"
+        )
+    return escaped
+
+
+def _name_part(field: str, value: str | None) -> str:
+    if value is None:
+        return ""
+    escaped = escape(value)
+    if len(escaped) > ST_LENGTH:
+        raise InvalidField(field, f"at most {ST_LENGTH} characters once HL7-escaped (names are never cut)")
+    return escaped
+
+
+def _namespace_setting(key: str, value: str) -> str:
+    escaped = escape(value)
+    if not escaped or len(escaped) > IS_LENGTH:
+        raise ConfigError(key, f"1 to {IS_LENGTH} characters for an HL7 namespace id, got {value!r}")
+    return escaped
+
+
+def _free_text(text: str, limit: int, *, formatted: bool = False) -> str:
+    """Escaped free text, cut at a character boundary with ``...`` when over ``limit``."""
+    render = escape_formatted if formatted else escape
+    escaped = render(text)
+    if len(escaped) <= limit:
+        return escaped
+    kept = text
+    while kept and len(render(kept)) + len(ELLIPSIS) > limit:
+        overshoot = len(render(kept)) + len(ELLIPSIS) - limit
+        kept = kept[:-overshoot] if overshoot < len(kept) else ""
+    return render(kept) + ELLIPSIS
+
+
+def _assigning_authority(system: str) -> str:
+    """HD with subcomponents: namespace id & universal id & universal id type (HL7 table 0301)."""
+    if system.startswith("urn:oid:"):
+        universal, kind = system.removeprefix("urn:oid:"), "ISO"
+    else:
+        universal, kind = system, "URI"
+    escaped = escape(universal)
+    if len(escaped) > ST_LENGTH:
+        raise InvalidField("patient.id_system", f"at most {ST_LENGTH} characters once HL7-escaped")
+    return "&".join((namespace_id(system), escaped, kind))
+
+
+def namespace_id(system: str) -> str:
+    """A short readable HD namespace id for an identifier system, e.g. ``FENWICK-HOLLOW``.
+
+    The host's first label for a URL, the whole text otherwise; letters, digits and hyphens,
+    upper case, at most 20 characters. The full system travels as the universal id.
+    """
+    parts = urlsplit(system)
+    host = (parts.hostname or "").removeprefix("www.")
+    label = host.split(".")[0] if host else system
+    cleaned = re.sub(r"[^A-Za-z0-9]+", "-", label).strip("-").upper()
+    return cleaned[:IS_LENGTH].rstrip("-") or "UNKNOWN"
