@@ -1,0 +1,161 @@
+"""Human and machine renderings of checked outcomes (the ``check`` command's output).
+
+Owns: turning an :class:`bridge.model.Outcome` into readable text or a JSON-ready dict, in SI
+or traditional units. Pure: returns strings and dicts; the CLI prints them.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+from pydantic import BaseModel
+
+from bridge.mapping import Tables
+from bridge.model import Outcome, Quantity, Severity
+from bridge.normalise import express, format_value
+from bridge.units import UnitSystem
+
+CAUTION = (
+    "dlco-bridge is not a medical device: it normalises, recomputes and flags data. "
+    "Local policy and licensed clinical practice decide whether and how results are used."
+)
+
+_RESULT_LABELS = (
+    ("dlco", "DLCO"),
+    ("va", "VA (BTPS)"),
+    ("kco", "KCO"),
+    ("dlco_hb_adjusted", "DLCO Hb-adjusted"),
+    ("tlc", "TLC single-breath"),
+)
+_CONDITION_LABELS = (
+    ("barometric_pressure", "barometric pressure"),
+    ("altitude", "altitude"),
+    ("hemoglobin", "haemoglobin"),
+    ("carboxyhemoglobin", "carboxyhaemoglobin"),
+    ("room_temperature", "room temperature"),
+)
+_DERIVED_LABELS = (
+    ("kco", "KCO = DLCO/VA"),
+    ("dlco_hb_adjusted", "DLCO adjusted to standard Hb"),
+    ("dlco_cohb_adjusted", "DLCO adjusted for COHb"),
+    ("dlco_pressure_adjusted", "DLCO adjusted to sea level"),
+    ("dlco_from_manoeuvres", "DLCO from manoeuvre gas data"),
+    ("va_from_manoeuvres", "VA from manoeuvre gas data"),
+    ("dlco_percent_predicted", "DLCO % predicted"),
+    ("kco_percent_predicted", "KCO % predicted"),
+    ("va_percent_predicted", "VA % predicted"),
+)
+
+
+def shown(quantity: Quantity, tables: Tables, units: UnitSystem) -> Quantity:
+    """The quantity in the unit its dimension is shown in for ``units``."""
+    dimension = tables.units.units[quantity.unit].dimension
+    return express(quantity, tables.units.display_unit(dimension, units), tables.units)
+
+
+def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
+    q = shown(quantity, tables, units)
+    text = f"{format_value(q)} {q.unit}"
+    original = quantity.original
+    if original is not None and (original.unit != q.unit or original.value != format_value(q)):
+        text += f"   (as sent: {original.value} {original.unit})"
+    return text
+
+
+def _row(label: str, quantity: Quantity | None, tables: Tables, units: UnitSystem) -> list[str]:
+    return [] if quantity is None else [f"    {label:<32}{_text(quantity, tables, units)}"]
+
+
+def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
+    """A readable report of one outcome: record, recomputed values, findings."""
+    s, d = outcome.session, outcome.derived
+    p = s.patient
+    lines = [
+        f"{outcome.source}  test {s.test_id}",
+        f"  patient {p.id} ({p.id_system})  {p.sex.value}  born {p.birth_date}  "
+        f"age {d.age_years:.1f} y  height {format_value(p.height)} cm",
+        f"  performed {s.performed_at.isoformat()}  {s.lab.name}"
+        + (f" / {s.lab.site}" if s.lab.site else ""),
+        f"  results ({units} units)",
+    ]
+    for name, label in _RESULT_LABELS:
+        lines += _row(label, getattr(s.results, name), tables, units)
+    pred = s.results.predicted
+    if pred is not None:
+        lines.append(f"  predicted ({pred.reference_set or 'reference set not stated'})")
+        for name, label in (("dlco", "DLCO"), ("kco", "KCO"), ("va", "VA")):
+            lines += _row(label, getattr(pred, name), tables, units)
+            if pred.lower_limits is not None:
+                lines += _row(f"{label} LLN", getattr(pred.lower_limits, name), tables, units)
+    lines.append("  conditions")
+    for name, label in _CONDITION_LABELS:
+        lines += _row(label, getattr(s.conditions, name), tables, units)
+    lines.append("  recomputed by dlco-bridge")
+    for name, label in _DERIVED_LABELS:
+        lines += _row(label, getattr(d, name), tables, units)
+    for m in d.manoeuvres:
+        parts = [f"grade {m.grade}"]
+        if m.va is not None:
+            parts.append(f"VA {_text(m.va, tables, units)}")
+        if m.dlco is not None:
+            parts.append(f"DLCO {_text(m.dlco, tables, units)}")
+        lines.append(f"    manoeuvre {m.index + 1}: " + ", ".join(parts))
+    if d.session_grade is not None:
+        lines.append(f"    session quality grade {d.session_grade}")
+    lines.append(f"  findings ({len(outcome.findings)})")
+    for f in outcome.findings:
+        lines.append(f"    {f.severity.value.upper():<8}{f.code}  {f.path}")
+        lines.append(f"            {f.message}")
+    if not outcome.findings:
+        lines.append("    none")
+    return "\n".join(lines)
+
+
+def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem) -> dict[str, Any]:
+    """A JSON-ready dict of one outcome with quantities in ``units``."""
+
+    def convert(node: Any) -> Any:
+        if isinstance(node, Quantity):
+            q = shown(node, tables, units)
+            out: dict[str, Any] = {"value": float(format_value(q)), "unit": q.unit}
+            if node.original is not None:
+                out["original"] = node.original.model_dump()
+            return out
+        if isinstance(node, dict):
+            return {k: convert(v) for k, v in node.items() if v is not None}
+        if isinstance(node, list | tuple):
+            return [convert(v) for v in node]
+        return node
+
+    session = _shallow(outcome.session)
+    derived = _shallow(outcome.derived)
+    return {
+        "source": outcome.source,
+        "sha256": outcome.source_sha256,
+        "units": units,
+        "session": convert(session),
+        "derived": convert(derived),
+        "findings": [f.model_dump(mode="json") for f in outcome.findings],
+        "worst": _worst(outcome),
+    }
+
+
+def _shallow(model: Any) -> Any:
+    """Model -> dict keeping Quantity objects (so they can be shown in the chosen units)."""
+    if isinstance(model, Quantity):
+        return model
+    if isinstance(model, BaseModel):
+        return {name: _shallow(getattr(model, name)) for name in type(model).model_fields}
+    if isinstance(model, tuple):
+        return [_shallow(v) for v in model]
+    if hasattr(model, "isoformat"):
+        return model.isoformat()
+    if hasattr(model, "value") and isinstance(getattr(model, "value", None), str):
+        return model.value  # enums
+    return model
+
+
+def _worst(outcome: Outcome) -> str:
+    order = [Severity.INFO, Severity.WARNING, Severity.ERROR]
+    worst = max((order.index(f.severity) for f in outcome.findings), default=-1)
+    return order[worst].value if worst >= 0 else "none"

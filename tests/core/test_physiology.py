@@ -1,0 +1,137 @@
+"""The equations against the worked examples and published check values of DOMAIN.md."""
+
+from __future__ import annotations
+
+import math
+
+import pytest
+
+from bridge import physiology as phys
+from bridge.model import SampleGasHandling
+
+
+def test_synthetic_single_breath_dlco():
+    """FA,CO,0, VA STPD, DLCO and KCO reproduce the worked single-breath example."""
+    # source: DOMAIN.md section 9.2 worked example (classical equation of S05/S17, computed)
+    fa_co0 = phys.initial_alveolar_co_fraction(0.003, 0.003, 0.0024)
+    va_stpd = phys.stpd_from_btps_l(6.0, 760.0)
+    dlco = phys.dlco_single_breath(va_stpd, 10.0, 760.0, fa_co0, 0.0012)
+
+    assert fa_co0 == pytest.approx(0.0024)
+    assert math.log(fa_co0 / 0.0012) == pytest.approx(0.693147, abs=1e-6)
+    assert va_stpd == pytest.approx(4.9571, abs=1e-4)
+    assert dlco == pytest.approx(28.914, abs=1e-3)
+    assert dlco / 2.987 == pytest.approx(9.680, abs=1e-3)
+    assert phys.transfer_coefficient(dlco, 6.0) == pytest.approx(4.819, abs=1e-3)
+
+
+def _va(handling: SampleGasHandling, **kw: float) -> float:
+    return phys.alveolar_volume_btps_l(4.0, 0.10, 0.08, 750.0, 22.0, handling=handling, **kw)
+
+
+def test_va_gas_condition_factor_h2o_removed():
+    """VA BTPS = VI x FI/FA x PB/(PB-47) x 310/(273+T) when H2O is removed."""
+    # source: ATS/ERS 2005 DLCO standard (MacIntyre et al.), Table 5, row 1
+    expected = 4.0 * 0.10 / 0.08 * 750 / (750 - 47) * 310 / (273 + 22)
+
+    assert _va(SampleGasHandling.H2O_REMOVED) == pytest.approx(expected)
+
+
+def test_va_gas_condition_factor_h2o_and_co2_removed():
+    """With CO2 also removed the tracer ratio carries (1 + FA,CO2)."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5, row 2
+    expected = 4.0 * 0.10 * 1.05 / 0.08 * 750 / (750 - 47) * 310 / (273 + 22)
+
+    assert _va(SampleGasHandling.H2O_AND_CO2_REMOVED, fa_co2=0.05) == pytest.approx(expected)
+
+
+def test_va_gas_condition_factor_room_equilibrated():
+    """Room-equilibrated sample: (PB - PH2O,room)/(PB - 47) replaces PB/(PB - 47)."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5, row 3
+    ph2o_room = phys.water_vapour_pressure_mmhg(22.0)
+    expected = 4.0 * 0.10 / 0.08 * (750 - ph2o_room) / (750 - 47) * 310 / (273 + 22)
+
+    assert _va(SampleGasHandling.ROOM_EQUILIBRATED) == pytest.approx(expected)
+    # from memory: saturated water-vapour pressure at 22 degC is about 19.8 mmHg
+    assert ph2o_room == pytest.approx(19.8, abs=0.2)
+
+
+def test_va_gas_condition_factor_heated_wet_line():
+    """Heated wet line: S05 gives the STPD form; its BTPS equals STPD through the identity."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5, row 4 (STPD), identity DOMAIN.md section 1.2
+    stpd = 4.0 * 0.10 / 0.08 * (750 - 47) / 760 * 273 / (273 + 22)
+
+    assert phys.stpd_from_btps_l(_va(SampleGasHandling.HEATED_WET), 750.0) == pytest.approx(stpd)
+
+
+def test_dead_spaces_are_subtracted_from_inspired_volume():
+    """VA uses VI - VD,instrument - VD,anatomic."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5 (mass balance)
+    with_dead = phys.alveolar_volume_btps_l(
+        4.0, 0.1, 0.08, 760, 22, instrument_dead_space_l=0.1, anatomic_dead_space_l=0.15
+    )
+    without = phys.alveolar_volume_btps_l(3.75, 0.1, 0.08, 760, 22)
+
+    assert with_dead == pytest.approx(without)
+
+
+@pytest.mark.parametrize(
+    ("male", "age", "dlco", "hb", "adjusted", "multiplier"),
+    [
+        (True, 45, 20.0, 11.0, 22.695, 0.8812),
+        (True, 45, 25.0, 18.0, 23.056, 1.0843),
+        (False, 45, 20.0, 11.0, 21.797, 0.9176),
+        (False, 10, 15.0, 8.0, 19.169, 0.7825),
+    ],
+)
+def test_cotes_haemoglobin_adjustment(male, age, dlco, hb, adjusted, multiplier):
+    """Cotes adjustment of measured DLCO to standard Hb, and its predicted-side multiplier."""
+    # source: DOMAIN.md section 9.3 check values (Cotes form adopted by ATS/ERS)  # from memory constants
+    factor = phys.hb_adjustment_factor(hb, male, age)
+
+    assert dlco * factor == pytest.approx(adjusted, abs=1e-3)
+    assert 1 / factor == pytest.approx(multiplier, abs=1e-4)
+
+
+def test_cotes_factor_is_one_at_standard_haemoglobin():
+    """The factor is exactly 1 at 14.6 g/dL (men from 15 y) and 13.4 g/dL (women, children)."""
+    # source: Marrades et al. AJRCCM 1997 (standard Hb 14.6 men, 13.4 women); 0.7 x Hb_std = k
+    assert phys.hb_adjustment_factor(14.6, True, 40) == pytest.approx(1.0, abs=1e-12)
+    assert phys.hb_adjustment_factor(13.4, False, 40) == pytest.approx(1.0, abs=1e-12)
+    assert phys.hb_adjustment_factor(13.4, True, 14.9) == pytest.approx(1.0, abs=1e-12)
+
+
+@pytest.mark.parametrize(
+    ("pb", "pio2", "factor"), [(760, 149.23, 0.9976), (700, 136.67, 0.9587), (630, 122.02, 0.9133)]
+)
+def test_inspired_po2_adjustment(pb, pio2, factor):
+    """PIO2 = 0.2093 (PB - 47) and the factor 1 + 0.0031 (PIO2 - 150)."""
+    # source: DOMAIN.md section 9.5 check values  # from memory (equation form)
+    assert phys.inspired_po2_mmhg(pb) == pytest.approx(pio2, abs=0.01)
+    assert phys.pressure_adjustment_factor(pb) == pytest.approx(factor, abs=1e-4)
+
+
+def test_cohb_adjustment_textbook_example():
+    """COHb 10 %, measured 21.4: about 23.5 by the rule of thumb; 23.78 by 100/(100 - COHb)."""
+    # source: AccessMedicine textbook example (DOMAIN.md section 9.4): ~1 % DLCO per 1 % COHb -> 23.5
+    # from memory: the S17-style anaemia-effect form 100/(100 - COHb) gives 23.78
+    adjusted = 21.4 * phys.cohb_adjustment_factor(10.0)
+
+    assert adjusted == pytest.approx(23.78, abs=0.01)
+    assert adjusted == pytest.approx(23.5, rel=0.02)
+
+
+def test_standard_atmosphere_pressure():
+    """760 mmHg at sea level and about 609 mmHg at 1,800 m."""
+    # common practice: ICAO standard atmosphere (about 81.5 kPa at 1,800 m)
+    assert phys.barometric_pressure_from_altitude_mmhg(0) == pytest.approx(760)
+    assert phys.barometric_pressure_from_altitude_mmhg(1800) == pytest.approx(611.5, abs=2)
+
+
+def test_atpd_btps_round_trip():
+    """BTPS -> ATPD -> BTPS by the gas laws is the identity (consistency of the two factors)."""
+    # common practice: ideal-gas volume corrections
+    atpd = phys.atpd_from_btps_l(5.0, 740.0, 22.0)
+    back = atpd * 740.0 / (740.0 - 47) * 310 / (273 + 22)
+
+    assert back == pytest.approx(5.0)

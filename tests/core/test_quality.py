@@ -1,0 +1,74 @@
+"""Grades and the reporting rule of the 2017 standard (grade table kept as data)."""
+
+from __future__ import annotations
+
+from bridge.quality import Grade, ManoeuvreFacts, grade_manoeuvres, select_reported
+from bridge.resources import load_tables
+
+TABLE = load_tables().grades
+
+
+def _facts(
+    vi: float, bht: float = 10.0, sample: float | None = 3.0, va: float | None = None
+) -> ManoeuvreFacts:
+    return ManoeuvreFacts(inspired_volume_l=vi, breath_hold_s=bht, sample_collection_s=sample, va_l=va)
+
+
+def test_grades_follow_the_table():
+    """VI/VC 95/87/82 % with BHT 10 s grade A/B/C; BHT 13 s grade D; VI/VC 70 % grade F."""
+    # source: ATS 2017 standardized PFT report statement / ERS-ATS 2017 DLCO grade table (secondary rendering)
+    grades = grade_manoeuvres(
+        [_facts(4.75), _facts(4.35), _facts(4.10), _facts(4.5, bht=13.0), _facts(3.5)], 5.0, TABLE
+    )
+
+    assert [g.grade for g in grades] == ["A", "B", "C", "D", "F"]
+    assert "VI/VC 70 % is below 80 %" in grades[4].reasons[0]
+
+
+def test_grade_a_with_close_va_accepts_85_percent():
+    """VI/VC 87 % is grade A when VA is within 200 mL of another acceptable manoeuvre."""
+    # source: same grade table, grade A alternative criterion
+    grades = grade_manoeuvres([_facts(4.75, va=6.0), _facts(4.35, va=6.15)], 5.0, TABLE)
+
+    assert [g.grade for g in grades] == ["A", "A"]
+
+
+def test_sample_collection_time_limits_grade():
+    """Sample collection 4.5 s cannot be grade A or B but can be C."""
+    # source: same grade table (A, B <= 4 s; C <= 5 s)
+    assert grade_manoeuvres([_facts(4.9, sample=4.5)], 5.0, TABLE)[0].grade == "C"
+
+
+def test_two_repeatable_grade_a_are_averaged():
+    """Two grade-A manoeuvres within 2 mL/min/mmHg are reported together."""
+    # source: 2017 standard reporting rule (repeatability 2 mL/min/mmHg, secondary rendering)
+    chosen = select_reported([Grade("A", ()), Grade("A", ()), Grade("F", ())], [25.0, 26.5, 30.0], TABLE)
+
+    assert chosen.indices == (0, 1)
+    assert chosen.repeatable
+    assert chosen.session_grade == "A"
+
+
+def test_not_repeatable_grade_a_is_cautioned():
+    """Grade-A manoeuvres 4 mL/min/mmHg apart are not repeatable: a caution is given."""
+    chosen = select_reported([Grade("A", ()), Grade("A", ())], [25.0, 29.0], TABLE)
+
+    assert not chosen.repeatable
+    assert chosen.caution is not None
+
+
+def test_only_lower_grades_use_the_best_two_with_caution():
+    """Without grade A the two best-graded acceptable manoeuvres are used, with a caution."""
+    chosen = select_reported([Grade("C", ()), Grade("B", ()), Grade("D", ())], [25.0, 25.5, 24.0], TABLE)
+
+    assert chosen.indices == (0, 1)
+    assert chosen.session_grade == "C"
+    assert "no grade-A" in chosen.caution
+
+
+def test_nothing_acceptable_is_grade_f():
+    """Only grade-F manoeuvres: nothing is reported."""
+    chosen = select_reported([Grade("F", ())], [25.0], TABLE)
+
+    assert chosen.indices == ()
+    assert chosen.session_grade == "F"

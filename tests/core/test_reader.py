@@ -1,0 +1,136 @@
+"""The dlco-result/1 reader and the pipeline on bad input: one clear line, never a traceback."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from bridge.errors import InputError, MissingField, UnitError, UnreadableInput
+from bridge.mapping import Tables
+from bridge.pipeline import Limits, process
+
+GOOD = (Path(__file__).resolve().parents[2] / "samples" / "01-healthy-adult.json").read_bytes()
+
+
+def _doc() -> dict:
+    return json.loads(GOOD)
+
+
+def _bytes(doc: dict) -> bytes:
+    return json.dumps(doc).encode()
+
+
+def _error(data: bytes, tables: Tables, limits: Limits = Limits()) -> InputError:
+    with pytest.raises(InputError) as caught:
+        process(data, "lab/export.json", tables, limits)
+    return caught.value
+
+
+def _mutated(change) -> bytes:
+    doc = _doc()
+    change(doc)
+    return _bytes(doc)
+
+
+CASES = {
+    "malformed JSON": (b'{"format": "dlco-result/1",', "line 1 column 28", "valid JSON"),
+    "empty file": (b"", "(file)", "empty"),
+    "not UTF-8": ('{"x": "caf\u00e9"}'.encode("latin-1"), "byte 10", "UTF-8"),
+    "missing field": (_mutated(lambda d: d["patient"].pop("birth_date")), "patient.birth_date", "required"),
+    "wrong type": (
+        _mutated(lambda d: d["results"]["dlco"].update(value="high")),
+        "results.dlco.value",
+        "a number",
+    ),
+    "unknown unit": (
+        _mutated(lambda d: d["results"]["dlco"].update(unit="furlong")),
+        "results.dlco.unit",
+        "'furlong'",
+    ),
+    "wrong dimension": (
+        _mutated(lambda d: d["results"]["dlco"].update(unit="L")),
+        "results.dlco.unit",
+        "volume unit",
+    ),
+    "negative volume": (
+        _mutated(lambda d: d["results"]["va"].update(value=-1.2)),
+        "results.va.value",
+        ">= 0",
+    ),
+    "gas fraction above 1": (
+        _mutated(
+            lambda d: d.update(
+                manoeuvres=[
+                    {
+                        "inspired_volume": {"value": 4, "unit": "L"},
+                        "breath_hold_time": {"value": 10, "unit": "s"},
+                        "inspired_co_fraction": 3.0,
+                        "inspired_tracer_fraction": 0.003,
+                        "alveolar_co_fraction": 0.001,
+                        "alveolar_tracer_fraction": 0.002,
+                    }
+                ]
+            )
+        ),
+        "manoeuvres[0].inspired_co_fraction",
+        "<= 1",
+    ),
+    "date-time without offset": (
+        _mutated(lambda d: d.update(performed_at="2026-03-02T09:15:00")),
+        "performed_at",
+        "UTC offset",
+    ),
+    "unknown field": (
+        _mutated(lambda d: d["results"].update(dlco_pred=1)),
+        "results.dlco_pred",
+        "no such field",
+    ),
+    "wrong format tag": (_mutated(lambda d: d.update(format="other/2")), "format", "dlco-result/1"),
+    "top level not an object": (b"[1, 2]", "(top level)", "object"),
+}
+
+
+@pytest.mark.parametrize("case", sorted(CASES))
+def test_bad_input_gives_one_line_naming_file_and_field(tables: Tables, case):
+    """Each kind of bad input is one line: file, field, what was expected."""
+    data, field, expected_text = CASES[case]
+
+    error = _error(data, tables)
+    line = str(error)
+
+    assert "\n" not in line
+    assert line.startswith("lab/export.json: ")
+    assert field == error.field
+    assert expected_text in error.expected
+
+
+def test_file_over_the_size_limit(tables: Tables):
+    """An input over the configured limit is refused before parsing."""
+    error = _error(GOOD, tables, Limits(max_input_bytes=100))
+
+    assert isinstance(error, UnreadableInput)
+    assert f"at most 100 bytes, got {len(GOOD)}" == error.expected
+
+
+def test_error_classes_map_to_actions(tables: Tables):
+    """Missing fields and units get their own error class (callers branch on class, not text)."""
+    missing = _error(_mutated(lambda d: d.pop("test_id")), tables)
+    unit = _error(_mutated(lambda d: d["results"]["dlco"].update(unit="furlong")), tables)
+
+    assert isinstance(missing, MissingField)
+    assert isinstance(unit, UnitError)
+    assert unit.unit == "furlong"
+
+
+def test_reported_decimals_are_kept(tables: Tables):
+    """7.460 arrives with three decimals and keeps them as its original text."""
+    doc = _doc()
+    doc["results"]["dlco"] = {"value": 7.460, "unit": "mmol/min/kPa"}
+    raw = json.dumps(doc).replace("7.46,", "7.460,").encode()
+
+    outcome = process(raw, "x.json", tables)
+
+    assert outcome.session.results.dlco.original.value == "7.460"
+    assert outcome.session.results.dlco.original.value.partition(".")[2].__len__() == 3

@@ -1,0 +1,81 @@
+"""`dlco-bridge check` as an integration engineer runs it."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+from pathlib import Path
+
+from bridge.cli import main
+
+ROOT = Path(__file__).resolve().parent.parent
+SAMPLES = ROOT / "samples"
+
+
+def test_check_samples_reports_findings_and_the_bad_file(capsys):
+    """Every good sample is checked, the malformed one is one stderr line, exit code 2."""
+    code = main(["check", str(SAMPLES)])
+    out, err = capsys.readouterr()
+
+    assert code == 2
+    assert len(err.strip().splitlines()) == 1
+    assert "08-malformed.json: performed_at: " in err
+    assert "UNIT_MISLABEL_PROBABLE" in out
+    assert "HB_ADJUSTMENT_WRONG_DIRECTION" in out
+    assert "not a medical device" in out
+
+
+def test_check_good_file_exits_zero(capsys):
+    """A readable file exits 0 even with findings."""
+    code = main(["check", str(SAMPLES / "07-unit-mislabel.json")])
+
+    assert code == 0
+    assert "UNIT_MISLABEL_PROBABLE" in capsys.readouterr().out
+
+
+def test_check_units_si_shows_si(capsys):
+    """--units si shows DLCO in mmol/min/kPa with the lab's own digits."""
+    main(["check", "--units", "si", str(SAMPLES / "01-healthy-adult.json")])
+
+    assert "9.84 mmol/min/kPa" in capsys.readouterr().out
+
+
+def test_check_json_is_machine_readable(capsys):
+    """--json prints one JSON document with the caution, findings and errors."""
+    code = main(
+        ["check", "--json", str(SAMPLES / "07-unit-mislabel.json"), str(SAMPLES / "08-malformed.json")]
+    )
+    document = json.loads(capsys.readouterr().out)
+
+    assert code == 2
+    assert "not a medical device" in document["caution"]
+    assert document["files"][0]["worst"] == "error"
+    assert document["files"][0]["session"]["results"]["dlco"]["original"]["unit"] == "mmol/min/kPa"
+    assert "performed_at" in document["files"][1]["error"]
+
+
+def test_missing_file_is_one_line(capsys, tmp_path):
+    """A file that does not exist is a one-line error; the others are still checked."""
+    code = main(["check", str(tmp_path / "gone.json"), str(SAMPLES / "01-healthy-adult.json")])
+    out, err = capsys.readouterr()
+
+    assert code == 2
+    assert "gone.json: (file): a readable file" in err
+    assert "LOW-2026-0001" in out
+
+
+def test_units_from_environment(tmp_path):
+    """DLCO_BRIDGE_UNITS=si works like --units si (console script run as a subprocess)."""
+    env = {"DLCO_BRIDGE_UNITS": "si", "PATH": "/usr/bin:/bin"}
+    result = subprocess.run(
+        [sys.executable, "-m", "bridge", "check", str(SAMPLES / "01-healthy-adult.json")],
+        capture_output=True,
+        text=True,
+        env=env,
+        check=False,
+        cwd=ROOT,
+    )
+
+    assert result.returncode == 0, result.stderr
+    assert "results (si units)" in result.stdout
