@@ -16,9 +16,7 @@ DEFAULT_CAP = 300.0
 _MAX_EXPONENT = 62
 
 
-def ceiling(
-    attempt: int, base: float = DEFAULT_BASE, cap: float = DEFAULT_CAP
-) -> float:
+def ceiling(attempt: int, base: float = DEFAULT_BASE, cap: float = DEFAULT_CAP) -> float:
     """The largest delay allowed after failed attempt number ``attempt`` (1-based)."""
     exponent = min(max(attempt - 1, 0), _MAX_EXPONENT)
     return min(cap, base * 2.0**exponent)

@@ -226,9 +226,7 @@ def _translated(path: Path) -> Iterator[None]:
 class Ledger:
     """The SQLite state of one service; calls are serialised, threads may share it."""
 
-    def __init__(
-        self, conn: sqlite3.Connection, path: Path, now: Callable[[], float]
-    ) -> None:
+    def __init__(self, conn: sqlite3.Connection, path: Path, now: Callable[[], float]) -> None:
         self._conn = conn
         self._path = path
         self._now = now
@@ -286,9 +284,7 @@ class Ledger:
         )
         return None if row is None else _input(row)
 
-    def record_input_and_enqueue(
-        self, new: NewInput, messages: Sequence[NewMessage]
-    ) -> list[int]:
+    def record_input_and_enqueue(self, new: NewInput, messages: Sequence[NewMessage]) -> list[int]:
         """Record the input and enqueue its messages in one transaction; return row ids.
 
         Committed before it returns, so the caller may archive the input afterwards. A
@@ -318,9 +314,7 @@ class Ledger:
 
     def get(self, outbox_id: int) -> OutboxRow | None:
         """The outbox row with this id."""
-        row = self._one(
-            f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE id = ?", (outbox_id,)
-        )
+        row = self._one(f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE id = ?", (outbox_id,))
         return None if row is None else _outbox(row)
 
     def next_due(self, destination: str, now: float) -> OutboxRow | None:
@@ -339,9 +333,7 @@ class Ledger:
 
     def mark_rejected(self, outbox_id: int, reason: str) -> None:
         """The receiver refused the message: dead-letter it (no more retries)."""
-        self._finish(
-            outbox_id, "rejected", "state = 'rejected', last_error = :detail", reason
-        )
+        self._finish(outbox_id, "rejected", "state = 'rejected', last_error = :detail", reason)
 
     def mark_retry(self, outbox_id: int, error: str, next_attempt_at: float) -> None:
         """The attempt failed in a way worth retrying at ``next_attempt_at``."""
@@ -369,14 +361,10 @@ class Ledger:
         """Make every dead-lettered message pending again; return how many."""
         with self._write() as conn:
             now = self._now()
-            ids = [
-                int(r["id"])
-                for r in conn.execute("SELECT id FROM outbox WHERE state = 'rejected'")
-            ]
+            ids = [int(r["id"]) for r in conn.execute("SELECT id FROM outbox WHERE state = 'rejected'")]
             for outbox_id in ids:
                 conn.execute(
-                    "UPDATE outbox SET state = 'pending', next_attempt_at = ? "
-                    "WHERE id = ?",
+                    "UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ?",
                     (now, outbox_id),
                 )
                 _log_attempt(conn, outbox_id, now, "requeued", "")
@@ -386,23 +374,16 @@ class Ledger:
         """Every attempt and operator action on one outbox row, oldest first."""
         with self._lock, _translated(self._path):
             rows = self._conn.execute(
-                "SELECT outbox_id, at, outcome, detail FROM attempts "
-                "WHERE outbox_id = ? ORDER BY id",
+                "SELECT outbox_id, at, outcome, detail FROM attempts WHERE outbox_id = ? ORDER BY id",
                 (outbox_id,),
             ).fetchall()
-        return [
-            Attempt(r["outbox_id"], r["at"], r["outcome"], r["detail"]) for r in rows
-        ]
+        return [Attempt(r["outbox_id"], r["at"], r["outcome"], r["detail"]) for r in rows]
 
     def summary(self) -> LedgerSummary:
         """Inputs and outbox rows counted, and the age of the oldest pending message."""
         now = self._now()
         with self._lock, _translated(self._path):
-            inputs = dict(
-                self._conn.execute(
-                    "SELECT state, count(*) FROM inputs GROUP BY state"
-                ).fetchall()
-            )
+            inputs = dict(self._conn.execute("SELECT state, count(*) FROM inputs GROUP BY state").fetchall())
             rows = self._conn.execute(
                 "SELECT destination, state, count(*) AS n, min(created_at) AS oldest "
                 "FROM outbox GROUP BY destination, state"
@@ -510,9 +491,7 @@ def _connect(path: Path, read_only: bool) -> sqlite3.Connection:
         if not path.exists():
             raise LedgerError(f"no ledger at {path}")
         uri = f"{path.resolve().as_uri()}?mode=ro"
-        conn = sqlite3.connect(
-            uri, uri=True, isolation_level=None, check_same_thread=False
-        )
+        conn = sqlite3.connect(uri, uri=True, isolation_level=None, check_same_thread=False)
     else:
         path.parent.mkdir(parents=True, exist_ok=True)
         conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
@@ -536,9 +515,7 @@ def _version(conn: sqlite3.Connection) -> int:
 def _check_version(conn: sqlite3.Connection, path: Path) -> None:
     version = _version(conn)
     if version != SCHEMA_VERSION:
-        raise LedgerError(
-            f"{path}: schema v{version}, this dlco-bridge reads v{SCHEMA_VERSION}"
-        )
+        raise LedgerError(f"{path}: schema v{version}, this dlco-bridge reads v{SCHEMA_VERSION}")
 
 
 def _migrate(conn: sqlite3.Connection, path: Path) -> None:
@@ -547,10 +524,7 @@ def _migrate(conn: sqlite3.Connection, path: Path) -> None:
     try:
         version = _version(conn)
         if version > SCHEMA_VERSION:
-            raise LedgerError(
-                f"{path}: schema v{version} is newer than this dlco-bridge "
-                f"(v{SCHEMA_VERSION})"
-            )
+            raise LedgerError(f"{path}: schema v{version} is newer than this dlco-bridge (v{SCHEMA_VERSION})")
         for number, step in enumerate(MIGRATIONS[version:], start=version + 1):
             for statement in step:
                 conn.execute(statement)
@@ -581,16 +555,13 @@ def _enqueue(conn: sqlite3.Connection, message: NewMessage, now: float) -> int:
         ),
     )
     row = conn.execute(
-        "SELECT id FROM outbox WHERE destination = ? AND message_id = ? "
-        "AND content_sha256 = ?",
+        "SELECT id FROM outbox WHERE destination = ? AND message_id = ? AND content_sha256 = ?",
         (message.destination, message.message_id, content),
     ).fetchone()
     return int(row["id"])
 
 
-def _log_attempt(
-    conn: sqlite3.Connection, outbox_id: int, at: float, outcome: str, detail: str
-) -> None:
+def _log_attempt(conn: sqlite3.Connection, outbox_id: int, at: float, outcome: str, detail: str) -> None:
     conn.execute(
         "INSERT INTO attempts (outbox_id, at, outcome, detail) VALUES (?, ?, ?, ?)",
         (outbox_id, at, outcome, detail),
@@ -628,9 +599,7 @@ def _outbox(row: sqlite3.Row) -> OutboxRow:
     )
 
 
-def _by_destination(
-    rows: Sequence[sqlite3.Row], now: float
-) -> dict[str, DestinationSummary]:
+def _by_destination(rows: Sequence[sqlite3.Row], now: float) -> dict[str, DestinationSummary]:
     counts: dict[str, dict[str, float]] = {}
     for row in rows:
         entry = counts.setdefault(row["destination"], {})

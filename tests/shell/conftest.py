@@ -20,9 +20,9 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from typing import Any
 
-import hl7
+import hl7  # type: ignore[import-untyped]  # python-hl7 ships no type hints
 import pytest
-from hl7.mllp import HL7StreamReader, HL7StreamWriter, start_hl7_server
+from hl7.mllp import HL7StreamReader, HL7StreamWriter, start_hl7_server  # type: ignore[import-untyped]
 
 from bridge.ledger import Ledger
 

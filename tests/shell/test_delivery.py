@@ -18,7 +18,7 @@ from bridge.transports.memory import InMemoryTransport
 from bridge.transports.mllp import MllpTransport
 
 if TYPE_CHECKING:
-    from conftest import Clock, FhirEndpoint, MllpReceiver
+    from tests.shell.conftest import Clock, FhirEndpoint, MllpReceiver
 
 MakeOru = Callable[..., bytes]
 

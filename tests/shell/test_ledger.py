@@ -25,7 +25,7 @@ from bridge.ledger import (
 )
 
 if TYPE_CHECKING:
-    from conftest import Clock
+    from tests.shell.conftest import Clock
 
 HL7 = "x-application/hl7-v2+er7"
 

@@ -21,7 +21,7 @@ from bridge.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
 from bridge.transports.fhir_rest import FhirRestTransport, outcome_text
 
 if TYPE_CHECKING:
-    from conftest import FhirEndpoint
+    from tests.shell.conftest import FhirEndpoint
 
 MakeBundle = Callable[..., bytes]
 TOKEN = "invented-token-0000"

@@ -28,7 +28,7 @@ from bridge.transports.mllp import (
 )
 
 if TYPE_CHECKING:
-    from conftest import CertPair, MllpReceiver
+    from tests.shell.conftest import CertPair, MllpReceiver
 
 MakeOru = Callable[..., bytes]
 
