@@ -8,6 +8,7 @@ read, 2 when one could not be (one line per bad input on stderr), 1 on a usage o
 from __future__ import annotations
 
 import argparse
+import json
 import os
 import sys
 from collections.abc import Iterator, Sequence
@@ -22,6 +23,7 @@ from bridge.model import Outcome
 from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES, Limits, process
 from bridge.render import CAUTION, outcome_json, outcome_text
 from bridge.resources import load_tables
+from bridge.schema import export_schema
 from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 
 EXIT_OK = 0
@@ -68,6 +70,7 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("files", nargs="+", type=Path, help="export files or folders")
     check.add_argument("--json", action="store_true", help="machine-readable output")
     _add_common(check)
+    commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
     return parser
 
 
@@ -125,13 +128,18 @@ def cmd_check(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_BAD_INPUT if failed else EXIT_OK
 
 
-COMMANDS = {"check": cmd_check}
+def cmd_schema(args: argparse.Namespace, tables: Tables) -> int:
+    sys.stdout.write(json.dumps(export_schema(), indent=2, sort_keys=True) + "\n")
+    return EXIT_OK
+
+
+COMMANDS = {"check": cmd_check, "schema": cmd_schema}
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
-        tables = load_tables(traditional_per_si=args.factor)
+        tables = load_tables(traditional_per_si=getattr(args, "factor", TRADITIONAL_PER_SI))
         return COMMANDS[args.command](args, tables)
     except BridgeError as exc:
         print(f"dlco-bridge: {exc}", file=sys.stderr)
