@@ -1,0 +1,400 @@
+"""The HL7 v2.5.1 ORU^R01 emitter, checked against independent readers.
+
+Golden files: ``tests/golden/hl7/<sample>.oru.hl7`` hold the exact bytes ``to_oru`` gives for
+each good sample with :data:`GOLDEN_CONTEXT` (traditional units, now = 2026-03-10T12:00:00Z).
+They are compared byte for byte and rewritten only when the environment variable
+``DLCO_BRIDGE_REGEN_GOLDEN=1`` is set::
+
+    DLCO_BRIDGE_REGEN_GOLDEN=1 /work/venv/bin/pytest tests/emit/test_hl7v2.py -k golden
+
+Review the diff of a regeneration like any other change. All data is invented.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import time
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+
+import hl7
+import pytest
+from hl7apy.consts import VALIDATION_LEVEL
+from hl7apy.parser import parse_message
+from ucumvert import parse_ucum
+
+from bridge.emit.hl7v2 import control_id, escape, escape_formatted, namespace_id, to_oru
+from bridge.emit.observations import EmitContext, build_content
+from bridge.errors import ConfigError, InvalidField
+from bridge.mapping import Tables
+from bridge.model import Outcome
+from bridge.normalise import format_value
+from bridge.units import TRADITIONAL_PER_SI
+from tests.conftest import GOOD_SAMPLES
+
+NOW = datetime(2026, 3, 10, 12, 0, 0, tzinfo=UTC)
+GOLDEN_CONTEXT = EmitContext(now=NOW)
+GOLDEN_DIR = Path(__file__).resolve().parent.parent / "golden" / "hl7"
+STEMS = [p.stem for p in GOOD_SAMPLES]
+# hl7apy's copy of HL7 table 0396 lacks "UCUM", which OBX-6 uses by convention (DESIGN.md).
+ALLOWED_WARNING = "Warning: Value UCUM not in table HL70396 in element OBX_6.CE_3"
+DELIMITER_NAME = "Mac^Amp&Pipe|Tilde~Back\\slash"
+
+
+def _with_patient(outcome: Outcome, **update: str) -> Outcome:
+    patient = outcome.session.patient.model_copy(update=update)
+    return outcome.model_copy(update={"session": outcome.session.model_copy(update={"patient": patient})})
+
+
+def _strict(er7: str, report: Path) -> object:
+    """Parse with hl7apy STRICT and validate; every warning goes to ``report``."""
+    message = parse_message(er7, validation_level=VALIDATION_LEVEL.STRICT, find_groups=True)
+    assert message.validate(report_file=str(report))
+    return message
+
+
+def _warnings(report: Path) -> set[str]:
+    return {line for line in report.read_text().splitlines() if line} - {ALLOWED_WARNING}
+
+
+# ---------- hl7apy STRICT ----------
+
+
+@pytest.mark.parametrize("units", ["si", "traditional"])
+@pytest.mark.parametrize("stem", STEMS)
+def test_every_sample_validates_strict(stem, units, sample_outcomes, tables, tmp_path):
+    """Each good sample in both unit systems is a valid ORU_R01 with one OBSERVATION group per item."""
+    # source: HL7 v2.5.1 message structure ORU_R01 as encoded in hl7apy
+    outcome = sample_outcomes[stem]
+    report = tmp_path / "report.txt"
+    er7 = to_oru(outcome, tables, EmitContext(now=NOW, units=units))
+
+    message = _strict(er7, report)
+
+    order = message.oru_r01_patient_result.oru_r01_order_observation
+    assert len(build_content(outcome, tables, units).items) == len(order.oru_r01_observation)
+    assert set() == _warnings(report)
+
+
+def test_correction_validates_strict_and_marks_c(sample_outcomes, tables, tmp_path):
+    """A correction is valid ORU_R01 with OBR-25 and every OBX-11 = C."""
+    # source: HL7 v2.5.1 message structure ORU_R01 as encoded in hl7apy; tables 0123 and 0085
+    er7 = to_oru(sample_outcomes[STEMS[0]], tables, EmitContext(now=NOW, correction=True))
+
+    _strict(er7, tmp_path / "report.txt")
+
+    parsed = hl7.parse(er7)
+    assert "C" == str(parsed.segment("OBR")[25])
+    assert {"C"} == {str(obx[11]) for obx in parsed.segments("OBX")}
+
+
+def test_name_with_delimiters_validates_strict(sample_outcomes, tables, tmp_path):
+    """A patient name holding every delimiter still gives a valid message."""
+    # source: HL7 v2.5.1 message structure ORU_R01 as encoded in hl7apy
+    outcome = _with_patient(sample_outcomes[STEMS[0]], family=DELIMITER_NAME, given="Line\nBreak")
+    report = tmp_path / "report.txt"
+
+    _strict(to_oru(outcome, tables, GOLDEN_CONTEXT), report)
+
+    assert set() == _warnings(report)
+
+
+# ---------- python-hl7 round trip ----------
+
+
+@pytest.mark.parametrize("units", ["si", "traditional"])
+@pytest.mark.parametrize("stem", STEMS)
+def test_obx_round_trip_python_hl7(stem, units, sample_outcomes, tables):
+    """python-hl7 reads back each OBX's code, value, unit, range and flag as the result item."""
+    # source: independent parser python-hl7 (hl7.parse), HL7 v2.5.1 OBX field positions
+    outcome = sample_outcomes[stem]
+    items = build_content(outcome, tables, units).items
+    parsed = hl7.parse(to_oru(outcome, tables, EmitContext(now=NOW, units=units)))
+
+    read = [
+        (
+            parsed.unescape(str(obx[3][0][0])),
+            str(obx[5]),
+            parsed.unescape(str(obx[6][0][0])),
+            str(obx[7]),
+            str(obx[8]),
+        )
+        for obx in parsed.segments("OBX")
+    ]
+
+    expected = [
+        (
+            item.code.code,
+            format_value(item.quantity),
+            item.quantity.unit,
+            f">{format_value(item.low)}" if item.low else "",
+            item.flag or "",
+        )
+        for item in items
+    ]
+    assert expected == read
+
+
+def test_patient_name_with_delimiters_round_trips(sample_outcomes, tables):
+    """PID-5 family and given names holding ^ & | ~ \\ read back unchanged after unescaping."""
+    # source: independent parser python-hl7 (Message.extract_field unescapes); HL7 v2.5.1 ch. 2.7
+    outcome = _with_patient(sample_outcomes[STEMS[0]], family=DELIMITER_NAME, given="~^Given&|\\")
+    parsed = hl7.parse(to_oru(outcome, tables, GOLDEN_CONTEXT))
+
+    family = parsed.extract_field("PID", 1, 5, 1, 1)
+    given = parsed.extract_field("PID", 1, 5, 1, 2)
+
+    assert (DELIMITER_NAME, "~^Given&|\\") == (family, given)
+
+
+def test_patient_identifier_and_authority(sample_outcomes, tables):
+    """PID-3 carries the id and an HD assigning authority naming the identifier system."""
+    # source: HL7 v2.5.1 CX / HD data types (HD-3 from HL7 table 0301), read with python-hl7
+    outcome = sample_outcomes[STEMS[0]]
+    patient = outcome.session.patient
+    parsed = hl7.parse(to_oru(outcome, tables, GOLDEN_CONTEXT))
+
+    pid3 = parsed.segment("PID")[3][0]
+
+    assert patient.id == str(pid3[0])
+    assert [namespace_id(patient.id_system), patient.id_system, "URI"] == [str(s) for s in pid3[3]]
+
+
+# ---------- UCUM ----------
+
+
+@pytest.mark.parametrize("units", ["si", "traditional"])
+def test_obx_units_are_valid_ucum(units, sample_outcomes, tables):
+    """Every OBX-6 identifier parses as UCUM."""
+    # source: independent UCUM grammar in ucumvert (parse_ucum)
+    codes = set()
+    for outcome in sample_outcomes.values():
+        parsed = hl7.parse(to_oru(outcome, tables, EmitContext(now=NOW, units=units)))
+        codes |= {parsed.unescape(str(obx[6][0][0])) for obx in parsed.segments("OBX")}
+
+    for code in sorted(codes):
+        parse_ucum(code)  # raises InvalidUcumError on anything that is not UCUM
+    assert codes
+
+
+# ---------- MSH-10 ----------
+
+
+def test_control_id_is_stable_across_resends(sample_outcomes, tables):
+    """Two emissions of the same content at different times carry the same MSH-10."""
+    # common practice: a resend keeps its control id so the receiver can drop the duplicate
+    outcome = sample_outcomes[STEMS[0]]
+    first = hl7.parse(to_oru(outcome, tables, EmitContext(now=NOW)))
+    later = hl7.parse(to_oru(outcome, tables, EmitContext(now=NOW + timedelta(hours=5))))
+
+    assert str(first.segment("MSH")[10]) == str(later.segment("MSH")[10])
+    assert str(first.segment("MSH")[7]) != str(later.segment("MSH")[7])
+
+
+def test_control_id_changes_for_correction_and_units(sample_outcomes):
+    """A correction or other units give a new MSH-10; each is at most 20 characters."""
+    # source: HL7 v2.5.1 MSH-10 (ST, length 20)  # from memory
+    outcome = sample_outcomes[STEMS[0]]
+    ids = {
+        control_id(outcome, EmitContext(now=NOW)),
+        control_id(outcome, EmitContext(now=NOW, correction=True)),
+        control_id(outcome, EmitContext(now=NOW, units="si")),
+    }
+
+    assert 3 == len(ids)
+    assert all(len(i) <= 20 for i in ids)
+
+
+def test_control_id_differs_between_samples(sample_outcomes):
+    """Different content gives different control ids."""
+    # common practice: MSH-10 unique per message from one sender
+    ids = {control_id(o, GOLDEN_CONTEXT) for o in sample_outcomes.values()}
+
+    assert len(sample_outcomes) == len(ids)
+
+
+# ---------- units ----------
+
+
+def _decimals(text: str) -> int:
+    return len(text.partition(".")[2])
+
+
+@pytest.mark.parametrize("stem", STEMS)
+def test_si_dlco_is_traditional_over_factor(stem, sample_outcomes, tables):
+    """DLCO in SI equals traditional / 2.987 within the rounding of both texts; the LOINC is unchanged."""
+    # source: ERS/ATS conversion factor 2.987 (as used for the GLI 2017 TLCO equations)
+    outcome = sample_outcomes[stem]
+    si = hl7.parse(to_oru(outcome, tables, EmitContext(now=NOW, units="si")))
+    trad = hl7.parse(to_oru(outcome, tables, EmitContext(now=NOW, units="traditional")))
+    si_obx = next(obx for obx in si.segments("OBX") if str(obx[3][0][0]) == "19911-7")
+    trad_obx = next(obx for obx in trad.segments("OBX") if str(obx[3][0][0]) == "19911-7")
+    si_text, trad_text = str(si_obx[5]), str(trad_obx[5])
+
+    tolerance = 0.5 * 10 ** -_decimals(si_text) + 0.5 * 10 ** -_decimals(trad_text) / TRADITIONAL_PER_SI
+
+    assert abs(float(si_text) - float(trad_text) / TRADITIONAL_PER_SI) <= tolerance + 1e-9
+    assert str(si_obx[3]) == str(trad_obx[3])
+    assert ("mmol/min/kPa", "mL/min/mm[Hg]") == (str(si_obx[6][0][0]), str(trad_obx[6][0][0]))
+
+
+# ---------- segments and fields ----------
+
+
+def test_header_and_order_fields(sample_outcomes, tables):
+    """MSH, ORC and OBR carry the context, the test id, the panel code and PF."""
+    # source: HL7 v2.5.1 MSH/ORC/OBR field positions; tables 0074 (PF), 0119 (RE), 0103 (P)
+    outcome = sample_outcomes[STEMS[0]]
+    parsed = hl7.parse(to_oru(outcome, tables, GOLDEN_CONTEXT))
+    msh, orc, obr = parsed.segment("MSH"), parsed.segment("ORC"), parsed.segment("OBR")
+    test_id = outcome.session.test_id
+    performed = outcome.session.performed_at.strftime("%Y%m%d%H%M%S%z")
+
+    assert ["20260310120000+0000", "ORU^R01^ORU_R01", "P", "2.5.1"] == [
+        str(msh[7]),
+        str(msh[9]),
+        str(msh[11]),
+        str(msh[12]),
+    ]
+    assert ["RE", test_id, test_id] == [str(orc[1]), str(orc[2]), str(orc[3])]
+    assert [test_id, "81458-2^Pulmonary function test panel^LN", performed, "PF", "F"] == [
+        str(obr[3]),
+        str(obr[4]),
+        str(obr[7]),
+        str(obr[24]),
+        str(obr[25]),
+    ]
+    assert {performed} == {str(obx[14]) for obx in parsed.segments("OBX")}
+
+
+def test_local_codes_use_coding_system_l(sample_outcomes, tables):
+    """Codes without LOINC go out as code^display^L, LOINC ones as ^LN."""
+    # source: HL7 v2.5.1 table 0396 (LN, L)
+    parsed = hl7.parse(to_oru(sample_outcomes[STEMS[0]], tables, GOLDEN_CONTEXT))
+
+    systems = {str(obx[3][0][0]): str(obx[3][0][2]) for obx in parsed.segments("OBX")}
+
+    assert ("LN", "L") == (systems["19911-7"], systems["VA"])
+
+
+def test_notes_follow_obr_and_their_obx(sample_outcomes, tables):
+    """Report notes are NTEs after OBR; an item's notes are NTEs right after its OBX."""
+    # source: HL7 v2.5.1 ORU_R01 structure (NTE in ORDER_OBSERVATION and OBSERVATION groups)
+    outcome = sample_outcomes[STEMS[0]]
+    content = build_content(outcome, tables, "traditional")
+    names = [line[:3] for line in to_oru(outcome, tables, GOLDEN_CONTEXT).split("\r") if line]
+
+    expected = ["MSH", "PID", "ORC", "OBR", *["NTE"] * len(content.notes)]
+    for item in content.items:
+        expected += ["OBX", *["NTE"] * len(item.notes)]
+    assert expected == names
+
+
+def test_naive_now_is_refused(sample_outcomes, tables):
+    """A context time without a time zone cannot become an HL7 TS and is refused."""
+    # source: HL7 v2.5.1 TS/DTM with +/-ZZZZ offset
+    with pytest.raises(ValueError, match="time zone"):
+        to_oru(sample_outcomes[STEMS[0]], tables, EmitContext(now=datetime(2026, 3, 10, 12)))
+
+
+# ---------- escaping and lengths ----------
+
+
+def test_escape_each_delimiter():
+    """Each delimiter maps to its escape sequence and the escape character is escaped first."""
+    # source: HL7 v2.5.1 chapter 2.7 escape sequences
+    assert "a\\F\\b\\S\\c\\T\\d\\R\\e\\E\\f" == escape("a|b^c&d~e\\f")
+
+
+def test_line_breaks_become_spaces_or_br():
+    """Line breaks are a space in ST text and \\.br\\ in FT text; no raw CR survives."""
+    # source: HL7 v2.5.1 chapter 2.7 formatting commands (FT only)
+    assert ("one two three", "one\\.br\\two\\.br\\three") == (
+        escape("one\r\ntwo\nthree"),
+        escape_formatted("one\r\ntwo\nthree"),
+    )
+
+
+def test_multiline_note_stays_one_segment(sample_outcomes, tables, tmp_path):
+    """A note with line breaks is one NTE with \\.br\\ and the message still validates."""
+    # source: HL7 v2.5.1 ORU_R01 as encoded in hl7apy; chapter 2.7 \.br\
+    outcome = sample_outcomes[STEMS[0]]
+    session = outcome.session
+    results = session.results
+    predicted = results.predicted.model_copy(update={"reference_set": "Set A\nline two|x"})
+    session = session.model_copy(update={"results": results.model_copy(update={"predicted": predicted})})
+    er7 = to_oru(outcome.model_copy(update={"session": session}), tables, GOLDEN_CONTEXT)
+
+    _strict(er7, tmp_path / "report.txt")
+
+    assert "NTE|1|L|Reference values: Set A\\.br\\line two\\F\\x." in er7.split("\r")
+
+
+def test_over_long_identifier_is_refused(sample_outcomes, tables):
+    """A patient id longer than ST allows is an InvalidField, never cut."""
+    # source: hl7apy STRICT ST max length 199
+    outcome = _with_patient(sample_outcomes[STEMS[0]], id="9" * 200)
+
+    with pytest.raises(InvalidField) as caught:
+        to_oru(outcome, tables, GOLDEN_CONTEXT)
+
+    assert "patient.id" == caught.value.field
+
+
+def test_over_long_sending_application_is_a_config_error(sample_outcomes, tables):
+    """A sending application over 20 characters is a ConfigError naming the setting."""
+    # source: hl7apy STRICT IS max length 20 (HD namespace id)
+    context = EmitContext(now=NOW, sending_application="X" * 21)
+
+    with pytest.raises(ConfigError) as caught:
+        to_oru(sample_outcomes[STEMS[0]], tables, context)
+
+    assert "sending_application" == caught.value.key
+
+
+def test_namespace_id_is_short_and_readable():
+    """The HD namespace id comes from the URL host, upper case, at most 20 characters."""
+    # common practice: a short local namespace plus the full URI as universal id
+    assert ("FENWICK-HOLLOW", "A-VERY-LONG-HOST-NAM", "1-2-3-4") == (
+        namespace_id("https://fenwick-hollow.example/fictional-patient-id"),
+        namespace_id("https://www.a-very-long-host-name-indeed.example/x"),
+        namespace_id("1.2.3.4"),
+    )
+
+
+def test_emission_is_fast(sample_outcomes, tables):
+    """One message takes well under a millisecond on average (string joins, no hl7apy)."""
+    # common practice: the budget from the design brief, with slack for slow CI machines
+    outcome = sample_outcomes[STEMS[0]]
+    start = time.perf_counter()
+    for _ in range(200):
+        to_oru(outcome, tables, GOLDEN_CONTEXT)
+    per_message = (time.perf_counter() - start) / 200
+
+    assert per_message < 0.005
+
+
+# ---------- golden files ----------
+
+
+@pytest.mark.parametrize("stem", STEMS)
+def test_golden_oru(stem, sample_outcomes, tables: Tables):
+    """The ORU for each sample equals its golden file byte for byte."""
+    # source: this project's reviewed golden files (regenerate with DLCO_BRIDGE_REGEN_GOLDEN=1)
+    path = GOLDEN_DIR / f"{stem}.oru.hl7"
+    actual = to_oru(sample_outcomes[stem], tables, GOLDEN_CONTEXT).encode("utf-8")
+    if os.environ.get("DLCO_BRIDGE_REGEN_GOLDEN") == "1":
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_bytes(actual)
+
+    assert path.read_bytes() == actual
+
+
+def test_golden_files_have_no_line_feeds():
+    """Golden messages use CR between segments, never LF (no editor or checkout rewrote them)."""
+    # source: HL7 v2.5.1 chapter 2 segment terminator <CR>
+    files = sorted(GOLDEN_DIR.glob("*.oru.hl7"))
+
+    assert len(STEMS) == len(files)
+    assert [] == [f.name for f in files if re.search(rb"\n", f.read_bytes())]
