@@ -59,6 +59,7 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
             test_id         TEXT NOT NULL,
             patient_key     TEXT NOT NULL,
             content_sha256  TEXT NOT NULL,
+            input_sha256    TEXT NOT NULL,
             payload         BLOB NOT NULL CHECK (typeof(payload) = 'blob'),
             content_type    TEXT NOT NULL,
             state           TEXT NOT NULL DEFAULT 'pending'
@@ -72,6 +73,7 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
             UNIQUE (destination, message_id, content_sha256)
         )""",
         "CREATE INDEX outbox_due ON outbox (destination, state, patient_key, id)",
+        "CREATE INDEX outbox_by_input ON outbox (input_sha256, id)",
         """CREATE TABLE attempts (
             id          INTEGER PRIMARY KEY,
             outbox_id   INTEGER NOT NULL REFERENCES outbox (id),
@@ -140,6 +142,7 @@ class OutboxRow:
     test_id: str
     patient_key: str
     content_sha256: str
+    input_sha256: str
     payload: bytes
     content_type: str
     state: OutboxState
@@ -195,7 +198,7 @@ class LedgerSummary:
 
 
 _OUTBOX_COLUMNS = (
-    "id, destination, message_id, test_id, patient_key, content_sha256, payload, "
+    "id, destination, message_id, test_id, patient_key, content_sha256, input_sha256, payload, "
     "content_type, state, attempts, next_attempt_at, last_error, created_at, "
     "delivered_at, ack_text"
 )
@@ -289,16 +292,20 @@ class Ledger:
 
         Committed before it returns, so the caller may archive the input afterwards. A
         message already in the outbox (same destination, message id and content) is not
-        added again; its existing id is returned. Recording an input twice is a no-op.
+        added again; its existing id is returned. An input recorded before (a restart
+        after a crash between this call and the archiving) enqueues nothing new: the ids
+        of the messages it enqueued then come back.
         """
         now = self._now()
         with self._write() as conn:
-            conn.execute(
+            inserted = conn.execute(
                 "INSERT INTO inputs (sha256, source, test_id, first_seen, state, "
                 "reason) VALUES (?, ?, ?, ?, ?, ?) ON CONFLICT (sha256) DO NOTHING",
                 (new.sha256, new.source, new.test_id, now, new.state, new.reason),
-            )
-            return [_enqueue(conn, message, now) for message in messages]
+            ).rowcount
+            if not inserted:
+                return _ids_of_input(conn, new.sha256)
+            return [_enqueue(conn, message, new.sha256, now) for message in messages]
 
     def record_quarantine(self, sha256: str, source: str, reason: str) -> None:
         """Remember that this input was quarantined, and why."""
@@ -535,12 +542,19 @@ def _migrate(conn: sqlite3.Connection, path: Path) -> None:
     conn.execute("COMMIT")
 
 
-def _enqueue(conn: sqlite3.Connection, message: NewMessage, now: float) -> int:
+def _ids_of_input(conn: sqlite3.Connection, input_sha256: str) -> list[int]:
+    rows = conn.execute(
+        "SELECT id FROM outbox WHERE input_sha256 = ? ORDER BY id", (input_sha256,)
+    ).fetchall()
+    return [int(r["id"]) for r in rows]
+
+
+def _enqueue(conn: sqlite3.Connection, message: NewMessage, input_sha256: str, now: float) -> int:
     content = message.content_hash()
     conn.execute(
         "INSERT INTO outbox (destination, message_id, test_id, patient_key, "
-        "content_sha256, payload, content_type, next_attempt_at, created_at) "
-        "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) "
+        "content_sha256, input_sha256, payload, content_type, next_attempt_at, "
+        "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
         "ON CONFLICT (destination, message_id, content_sha256) DO NOTHING",
         (
             message.destination,
@@ -548,6 +562,7 @@ def _enqueue(conn: sqlite3.Connection, message: NewMessage, now: float) -> int:
             message.test_id,
             message.patient_key,
             content,
+            input_sha256,
             message.payload,
             message.content_type,
             now,
@@ -587,6 +602,7 @@ def _outbox(row: sqlite3.Row) -> OutboxRow:
         test_id=row["test_id"],
         patient_key=row["patient_key"],
         content_sha256=row["content_sha256"],
+        input_sha256=row["input_sha256"],
         payload=bytes(row["payload"]),
         content_type=row["content_type"],
         state=row["state"],

@@ -222,6 +222,24 @@ def tls_receiver(tls_pair: CertPair) -> Iterator[MllpReceiver]:
     receiver.shutdown()
 
 
+@pytest.fixture
+def client_pair(make_cert: Callable[[str], CertPair]) -> CertPair:
+    """A self-signed certificate the client presents in mutual TLS."""
+    return make_cert("test-sender")
+
+
+@pytest.fixture
+def mutual_tls_receiver(tls_pair: CertPair, client_pair: CertPair) -> Iterator[MllpReceiver]:
+    """An MLLP receiver behind TLS that accepts only the client certificate it trusts."""
+    context = ssl.create_default_context(ssl.Purpose.CLIENT_AUTH, cafile=str(client_pair.cert))
+    context.verify_mode = ssl.CERT_REQUIRED
+    context.load_cert_chain(tls_pair.cert, tls_pair.key)
+    receiver = MllpReceiver(ssl_context=context)
+    receiver.run()
+    yield receiver
+    receiver.shutdown()
+
+
 # ---- FHIR endpoint -------------------------------------------------------------------
 
 

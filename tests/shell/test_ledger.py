@@ -117,6 +117,15 @@ def test_duplicate_enqueue_is_ignored(ledger: Ledger) -> None:
     assert 2 == ledger.summary().pending
 
 
+def test_recording_an_input_again_enqueues_nothing(ledger: Ledger) -> None:
+    """A restart that re-reads an input it already recorded gets the old ids, no new rows."""
+    first = enqueue(ledger, "a" * 64, message("M1"), message("M2"))
+    again = enqueue(ledger, "a" * 64, message("M1", payload=b"MSH|re-emitted"))
+
+    assert first == again
+    assert 2 == ledger.summary().pending
+
+
 def test_same_message_id_new_content_is_a_new_row(ledger: Ledger) -> None:
     """A correction reuses the message id with new content and is enqueued."""
     first = enqueue(ledger, "a" * 64, message("M1", payload=b"MSH|one"))

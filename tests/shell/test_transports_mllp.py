@@ -253,6 +253,33 @@ def test_tls_refuses_an_untrusted_certificate(
     assert [] == tls_receiver.received
 
 
+def test_mutual_tls_presents_the_client_certificate(
+    mutual_tls_receiver: MllpReceiver, tls_pair: CertPair, client_pair: CertPair, make_oru: MakeOru
+) -> None:
+    """With a client certificate and key configured, a receiver requiring one accepts us."""
+    options = TlsOptions(ca_file=tls_pair.cert, cert_file=client_pair.cert, key_file=client_pair.key)
+    transport = client(mutual_tls_receiver, tls=options)
+
+    receipt = transport.deliver(outgoing(make_oru, "C-1"))
+    transport.close()
+
+    assert "AA" == receipt.code
+
+
+def test_mutual_tls_without_client_certificate_fails(
+    mutual_tls_receiver: MllpReceiver, tls_pair: CertPair, make_oru: MakeOru
+) -> None:
+    """Without the client certificate the receiver hangs up, which is retryable."""
+    transport = client(mutual_tls_receiver, tls=TlsOptions(ca_file=tls_pair.cert))
+
+    with pytest.raises(DeliveryError) as caught:
+        transport.deliver(outgoing(make_oru, "C-1"))
+    transport.close()
+
+    assert not isinstance(caught.value, Rejected)
+    assert [] == mutual_tls_receiver.received
+
+
 def test_unreadable_ca_file_is_a_config_error(tmp_path: Path) -> None:
     """A CA file that cannot be read fails at construction, as configuration."""
     with pytest.raises(ConfigError):
