@@ -17,6 +17,7 @@ written verbatim by :func:`bundle_json`, so a reported 7.460 stays 7.460.
 
 from __future__ import annotations
 
+import copy
 import uuid
 from collections.abc import Iterable, Mapping
 from datetime import datetime
@@ -141,7 +142,7 @@ def _observation(
         "status": _status(context),
         "category": [{"coding": [category]}, {"coding": [_PF]}],
         "code": _concept(item.code, tables, context),
-        "subject": subject,
+        "subject": copy.deepcopy(subject),
         "effectiveDateTime": _instant(session.performed_at),
         "issued": _instant(context.now),
         "performer": [_lab(outcome)],
@@ -201,7 +202,7 @@ def _report(
         "status": _status(context),
         "category": [{"coding": [_PF]}],
         "code": _concept(tables.codes.panel, tables, context),
-        "subject": subject,
+        "subject": copy.deepcopy(subject),
         "effectiveDateTime": _instant(session.performed_at),
         "issued": _instant(context.now),
         "performer": [_lab(outcome)],
