@@ -196,6 +196,9 @@ class MllpTransport:
         sent = control_id(message.payload)
         if sent is None:
             raise Rejected(destination, "payload is not an HL7 v2 message (no MSH-10)")
+        if START_BLOCK in message.payload or END_BLOCK in message.payload:
+            # Such a message would end its own block early; no retry can fix it.
+            raise Rejected(destination, "payload contains MLLP block characters")
         with self._guarded(destination, connecting=True):
             sock = self._connection()
         with self._guarded(destination, connecting=False):

@@ -1,7 +1,5 @@
 """The delivery policy: outcomes to ledger states, back-off, order, and graceful stop."""
 
-# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
-
 from __future__ import annotations
 
 from collections.abc import Callable

@@ -1,7 +1,5 @@
 """The ledger: schema, durability, outbox order, summary and the service lock."""
 
-# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
-
 from __future__ import annotations
 
 import sqlite3

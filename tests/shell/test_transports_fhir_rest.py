@@ -1,7 +1,5 @@
 """FHIR REST delivery against a small real HTTP endpoint on loopback."""
 
-# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
-
 from __future__ import annotations
 
 import socket

@@ -1,7 +1,5 @@
 """The file-drop transport: atomic, idempotent writes under a stable name."""
 
-# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
-
 from __future__ import annotations
 
 from pathlib import Path

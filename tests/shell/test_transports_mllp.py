@@ -1,7 +1,5 @@
 """MLLP: framing, ACK parsing, and the client against python-hl7's asyncio receiver."""
 
-# ruff: noqa: SIM300  # STYLE.md asks for `assert expected == actual`
-
 from __future__ import annotations
 
 from collections.abc import Callable
@@ -218,6 +216,18 @@ def test_payload_without_msh_is_rejected(mllp_receiver: MllpReceiver) -> None:
 
     with pytest.raises(Rejected):
         transport.deliver(message)
+
+    assert [] == mllp_receiver.received
+
+
+def test_payload_with_block_characters_is_rejected(mllp_receiver: MllpReceiver, make_oru: MakeOru) -> None:
+    """A payload holding <FS> would break its own frame, so it is never sent."""
+    # source: HL7 MLLP release 2 transport spec (content must not contain <VT> or <FS>)
+    payload = make_oru("C-1").replace(b"21.4", b"21\x1c4")
+    transport = client(mllp_receiver)
+
+    with pytest.raises(Rejected, match="block characters"):
+        transport.deliver(OutgoingMessage("ward", "C-1", payload, HL7_V2_ER7))
 
     assert [] == mllp_receiver.received
 
