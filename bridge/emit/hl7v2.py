@@ -24,6 +24,10 @@ Decisions:
 * OBX-7 uses the v2.5.1 form ``>lower`` for a lower limit of normal with no upper limit
   (# from memory: OBX-7 forms "lower-upper", "> lower", "< upper"). The LLN itself counts as
   normal (flag N), which ``>`` states a hair too strictly; no ``>=`` form exists in 2.5.1.
+* PID-5 is required in 2.5.1: a record without names gets ``^^^^^^U`` (name type
+  unspecified) rather than ``""``, which receivers read as "delete the stored name".
+* OBX-5 (NM) is never in exponent notation; values computed here with no reported digits
+  may come as ``1.2e-05`` from six significant digits and are written out in full.
 * OBX-6 is ``code^code^UCUM``: the UCUM code as identifier and as text.  # common practice
   "UCUM" is not in hl7apy's copy of HL7 table 0396 (a table warning, not an error).
 """
@@ -34,6 +38,7 @@ import hashlib
 import re
 from collections.abc import Iterable
 from datetime import date, datetime
+from decimal import Decimal
 from urllib.parse import urlsplit
 
 from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
@@ -61,6 +66,7 @@ UNIT_SYSTEM = "UCUM"
 SEX_CODES = {Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"}  # HL7 table 0001
 COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
 SERVICE_SECTION = "PF"  # HL7 table 0074: pulmonary function
+UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the record has no name
 
 _ESCAPES = str.maketrans({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"})
 _LINE_BREAK = re.compile(r"\r\n|\r|\n")
@@ -98,6 +104,13 @@ def escape_formatted(text: str) -> str:
     """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``."""
     lines = _LINE_BREAK.split(text)
     return "\\.br\\".join(_CONTROL.sub(" ", line).translate(_ESCAPES) for line in lines)
+
+
+def numeric_text(text: str) -> str:
+    """An NM value: plain decimal digits, never exponent notation (``1e-05`` -> ``0.00001``)."""
+    if "e" not in text.lower():
+        return text
+    return format(Decimal(text), "f")
 
 
 def hl7_timestamp(moment: datetime) -> str:
@@ -142,6 +155,8 @@ def _pid(patient: Patient) -> str:
     name = _components(
         _name_part("patient.family", patient.family), _name_part("patient.given", patient.given)
     )
+    if not name:
+        name = UNNAMED  # PID-5 is required; never "" (that means "delete" to many receivers)
     return _segment(
         "PID",
         "1",
@@ -182,7 +197,7 @@ def _observations(outcome: Outcome, content: ReportContent, status: str) -> Iter
 
 
 def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
-    value = format_value(item.quantity)
+    value = numeric_text(format_value(item.quantity))
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _code_text(item.quantity.unit, "unit", ST_LENGTH)
@@ -192,7 +207,7 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     fields[2] = _coded(item.code, item.key)
     fields[4] = value
     fields[5] = _components(unit, unit, UNIT_SYSTEM)
-    fields[6] = f">{format_value(item.low)}" if item.low is not None else ""
+    fields[6] = f">{numeric_text(format_value(item.low))}" if item.low is not None else ""
     fields[7] = item.flag or ""  # HL7 table 0078
     fields[10] = status  # OBX-11 (HL7 table 0085)
     fields[13] = observed  # OBX-14 date/time of the observation

@@ -24,7 +24,7 @@ from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.parser import parse_message
 from ucumvert import parse_ucum
 
-from bridge.emit.hl7v2 import control_id, escape, escape_formatted, namespace_id, to_oru
+from bridge.emit.hl7v2 import control_id, escape, escape_formatted, namespace_id, numeric_text, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.errors import ConfigError, InvalidField
 from bridge.mapping import Tables
@@ -42,7 +42,7 @@ ALLOWED_WARNING = "Warning: Value UCUM not in table HL70396 in element OBX_6.CE_
 DELIMITER_NAME = "Mac^Amp&Pipe|Tilde~Back\\slash"
 
 
-def _with_patient(outcome: Outcome, **update: str) -> Outcome:
+def _with_patient(outcome: Outcome, **update: str | None) -> Outcome:
     patient = outcome.session.patient.model_copy(update=update)
     return outcome.model_copy(update={"session": outcome.session.model_copy(update={"patient": patient})})
 
@@ -398,3 +398,22 @@ def test_golden_files_have_no_line_feeds():
 
     assert len(STEMS) == len(files)
     assert [] == [f.name for f in files if re.search(rb"\n", f.read_bytes())]
+
+
+def test_patient_without_names_validates_strict(sample_outcomes, tables, tmp_path):
+    """A record with no names gives PID-5 = name type U, never "", and still validates."""
+    # source: HL7 v2.5.1 PID-5 required, XPN-7 name type (HL7 table 0200) in hl7apy
+    outcome = _with_patient(sample_outcomes[STEMS[0]], family=None, given=None)
+    report = tmp_path / "report.txt"
+    er7 = to_oru(outcome, tables, GOLDEN_CONTEXT)
+
+    _strict(er7, report)
+
+    assert "^^^^^^U" == str(hl7.parse(er7).segment("PID")[5])
+    assert set() == _warnings(report)
+
+
+def test_numeric_text_never_uses_exponents():
+    """NM values are plain decimals: exponent notation is written out."""
+    # source: HL7 v2.5.1 NM data type (optional sign, digits, optional decimal point)
+    assert ["0.000012", "29.4", "-0.0035"] == [numeric_text(t) for t in ("1.2e-05", "29.4", "-3.5E-3")]
