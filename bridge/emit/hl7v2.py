@@ -276,10 +276,15 @@ def _free_text(text: str, limit: int, *, formatted: bool = False) -> str:
     escaped = render(text)
     if len(escaped) <= limit:
         return escaped
-    kept = text
-    while kept and len(render(kept)) + len(ELLIPSIS) > limit:
-        overshoot = len(render(kept)) + len(ELLIPSIS) - limit
-        kept = kept[:-overshoot] if overshoot < len(kept) else ""
+    # The escaped length grows with the kept prefix: find the longest prefix that fits.
+    low, high = 0, len(text)
+    while low < high:
+        middle = (low + high + 1) // 2
+        if len(render(text[:middle])) + len(ELLIPSIS) <= limit:
+            low = middle
+        else:
+            high = middle - 1
+    kept = text[:low]
     return render(kept) + ELLIPSIS
 
 

@@ -12,6 +12,7 @@ Review the diff of a regeneration like any other change. All data is invented.
 
 from __future__ import annotations
 
+import dataclasses
 import os
 import re
 import time
@@ -417,3 +418,17 @@ def test_numeric_text_never_uses_exponents():
     """NM values are plain decimals: exponent notation is written out."""
     # source: HL7 v2.5.1 NM data type (optional sign, digits, optional decimal point)
     assert ["0.000012", "29.4", "-0.0035"] == [numeric_text(t) for t in ("1.2e-05", "29.4", "-3.5E-3")]
+
+
+def test_over_long_display_text_is_cut_whole_escapes(sample_outcomes, tables, tmp_path):
+    """A code display over ST's length is cut with "..." and never inside an escape sequence."""
+    # source: hl7apy STRICT ST max length 199; HL7 v2.5.1 chapter 2.7 escape sequences
+    panel = dataclasses.replace(tables.codes.panel, display="a|" * 150)
+    long_tables = dataclasses.replace(tables, codes=dataclasses.replace(tables.codes, panel=panel))
+    er7 = to_oru(sample_outcomes[STEMS[0]], long_tables, GOLDEN_CONTEXT)
+
+    _strict(er7, tmp_path / "report.txt")
+
+    text = str(hl7.parse(er7).segment("OBR")[4][0][1])
+    assert (True, True) == (193 <= len(text) <= 199, text.endswith("..."))
+    assert set() == set(text.replace("a\\F\\", "")) - {"."}
