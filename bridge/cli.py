@@ -10,20 +10,29 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import shutil
 import sys
+import tempfile
 from collections.abc import Iterator, Sequence
+from datetime import UTC, datetime
 from pathlib import Path
 
 import orjson
 
 from bridge import __version__
-from bridge.errors import BridgeError, InputError, UnreadableInput
+from bridge.emit.observations import EmitContext
+from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, file_stem, gate, payloads
+from bridge.errors import BridgeError, ConfigError, InputError, UnreadableInput
+from bridge.fhirshow import describe_bundle
+from bridge.hl7show import describe_er7
 from bridge.mapping import Tables
-from bridge.model import Outcome
+from bridge.model import Outcome, Severity
 from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES, Limits, process
 from bridge.render import CAUTION, outcome_json, outcome_text
-from bridge.resources import load_tables
+from bridge.resources import load_tables, samples_dir
 from bridge.schema import export_schema
+from bridge.transports.base import OutgoingMessage
+from bridge.transports.file import FileTransport
 from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 
 EXIT_OK = 0
@@ -70,8 +79,39 @@ def build_parser() -> argparse.ArgumentParser:
     check.add_argument("files", nargs="+", type=Path, help="export files or folders")
     check.add_argument("--json", action="store_true", help="machine-readable output")
     _add_common(check)
+    convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
+    convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
+    convert.add_argument(
+        "--to", default=_env("TO", "fhir,hl7"), help="fhir, hl7 or both (env DLCO_BRIDGE_TO)"
+    )
+    convert.add_argument("--out", type=Path, default=Path(_env("OUT", "out")), help="output folder")
+    _add_common(convert)
+    _add_emit_options(convert)
+    demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
+    _add_common(demo)
+    _add_emit_options(demo)
+    show = commands.add_parser("show", help="an HL7 v2 message with field names, or a FHIR Bundle summarised")
+    show.add_argument("file", type=Path)
     commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
     return parser
+
+
+def _add_emit_options(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--sending-application", default=_env("SENDING_APPLICATION", "DLCO-BRIDGE"))
+    parser.add_argument("--sending-facility", default=_env("SENDING_FACILITY", "PFT-LAB"))
+    parser.add_argument("--receiving-application", default=_env("RECEIVING_APPLICATION", "RECORDS"))
+    parser.add_argument("--receiving-facility", default=_env("RECEIVING_FACILITY", "HOSPITAL"))
+    parser.add_argument(
+        "--patient-reference",
+        choices=("identifier", "conditional-create"),
+        default=_env("PATIENT_REFERENCE", "identifier"),
+        help="FHIR: refer to the patient by identifier, or create it if absent",
+    )
+    parser.add_argument(
+        "--block",
+        default=_env("BLOCK", ""),
+        help="finding codes that stop a file from being emitted, comma-separated (env DLCO_BRIDGE_BLOCK)",
+    )
 
 
 def expand(paths: Sequence[Path]) -> Iterator[Path]:
@@ -128,12 +168,136 @@ def cmd_check(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_BAD_INPUT if failed else EXIT_OK
 
 
+def emit_context(args: argparse.Namespace) -> EmitContext:
+    """The shell reads the clock; the emitters only receive it."""
+    return EmitContext(
+        now=datetime.now(UTC).replace(microsecond=0),
+        units=args.units,
+        sending_application=args.sending_application,
+        sending_facility=args.sending_facility,
+        receiving_application=args.receiving_application,
+        receiving_facility=args.receiving_facility,
+        patient_reference=args.patient_reference,
+    )
+
+
+def _kinds(text: str) -> tuple[OutputKind, ...]:
+    kinds = tuple(k.strip() for k in text.split(",") if k.strip())
+    unknown = [k for k in kinds if k not in OUTPUT_KINDS]
+    if unknown or not kinds:
+        raise ConfigError("--to", f"fhir, hl7 or fhir,hl7, got {text!r}")
+    return tuple(k for k in OUTPUT_KINDS if k in kinds)
+
+
+def convert_files(
+    paths: Sequence[Path], out: Path, args: argparse.Namespace, tables: Tables
+) -> list[tuple[Path, Outcome | InputError, list[Path]]]:
+    """Convert every input; each result is (input, outcome or error, files written)."""
+    kinds = _kinds(args.to)
+    blocking = {c.strip() for c in args.block.split(",") if c.strip()}
+    context = emit_context(args)
+    writer = FileTransport(out)
+    limits = Limits(max_input_bytes=args.max_bytes)
+    results: list[tuple[Path, Outcome | InputError, list[Path]]] = []
+    for path, result in run_inputs(paths, tables, limits):
+        if isinstance(result, InputError):
+            results.append((path, result, []))
+            continue
+        try:
+            gate(result, blocking)
+            built = payloads(result, tables, context, kinds)
+        except InputError as exc:
+            results.append((path, exc, []))
+            continue
+        written = []
+        for payload in built:
+            stem = file_stem(result.session.test_id)
+            receipt = writer.deliver(OutgoingMessage("convert", stem, payload.data, payload.content_type))
+            written.append(out / receipt.text)
+        results.append((path, result, written))
+    return results
+
+
+def cmd_convert(args: argparse.Namespace, tables: Tables) -> int:
+    failed = 0
+    for path, result, written in convert_files(args.files, args.out, args, tables):
+        if isinstance(result, InputError):
+            failed += 1
+            print(result.line(), file=sys.stderr)
+            continue
+        print(f"{path}: {', '.join(str(w) for w in written)}{_finding_summary(result)}")
+    print(CAUTION)
+    return EXIT_BAD_INPUT if failed else EXIT_OK
+
+
+def _finding_summary(outcome: Outcome) -> str:
+    if not outcome.findings:
+        return ""
+    codes = ", ".join(sorted({f.code for f in outcome.findings if f.severity is not Severity.INFO}))
+    return f"  [{len(outcome.findings)} findings{': ' + codes if codes else ''}]"
+
+
+def cmd_demo(args: argparse.Namespace, tables: Tables) -> int:
+    """The invented scenario end to end: samples -> check -> FHIR + HL7 in a temporary folder."""
+    source = samples_dir()
+    work = Path(tempfile.mkdtemp(prefix="dlco-bridge-demo-"))
+    inbox, out = work / "inbox", work / "out"
+    shutil.copytree(source, inbox)
+    args.to = "fhir,hl7"
+    # The demo shows the blocking gate too: a probable unit mislabel is refused, not emitted.
+    args.block = args.block or "UNIT_MISLABEL_PROBABLE"
+    print(f"dlco-bridge demo: invented scenario (fictional Fenwick Hollow health group) in {work}")
+    print(f"  {len(list(inbox.glob('*.json')))} lab exports copied to {inbox}\n")
+    converted = convert_files(sorted(inbox.glob("*.json")), out, args, tables)
+    for path, result, written in converted:
+        if isinstance(result, InputError):
+            print(f"  REFUSED  {path.name}\n           {result.line()}")
+            continue
+        flagged = any(f.severity is not Severity.INFO for f in result.findings)
+        status = "FLAGGED" if flagged else "OK"
+        names = " + ".join(w.name for w in written)
+        print(f"  {status:<8} {path.name} -> {names}")
+        for finding in result.findings:
+            label = "NOTE" if finding.severity is Severity.INFO else finding.severity.value.upper()
+            print(f"           {label} {finding.code}: {finding.message}")
+    good = sum(1 for _, r, _ in converted if not isinstance(r, InputError))
+    print(f"\n  {good} sessions converted, {len(converted) - good} refused; outputs in {out}")
+    print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7\n")
+    print(CAUTION)
+    return EXIT_OK
+
+
+def cmd_show(args: argparse.Namespace, tables: Tables) -> int:
+    try:
+        data = args.file.read_bytes()
+    except OSError as exc:
+        print(f"{args.file}: (file): a readable file ({exc.strerror})", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    text = data.decode("utf-8", errors="replace")
+    if text.lstrip().startswith("{"):
+        try:
+            bundle = json.loads(text)
+        except json.JSONDecodeError as exc:
+            print(f"{args.file}: line {exc.lineno}: valid JSON ({exc.msg})", file=sys.stderr)
+            return EXIT_BAD_INPUT
+        sys.stdout.write(describe_bundle(bundle))
+    else:
+        sys.stdout.write(describe_er7(text))
+    return EXIT_OK
+
+
 def cmd_schema(args: argparse.Namespace, tables: Tables) -> int:
     sys.stdout.write(json.dumps(export_schema(), indent=2, sort_keys=True) + "\n")
     return EXIT_OK
 
 
-COMMANDS = {"check": cmd_check, "schema": cmd_schema}
+COMMANDS = {
+    "check": cmd_check,
+    "convert": cmd_convert,
+    "demo": cmd_demo,
+    "show": cmd_show,
+    "schema": cmd_schema,
+}
 
 
 def main(argv: Sequence[str] | None = None) -> int:

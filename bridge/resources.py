@@ -24,6 +24,14 @@ def mappings_dir() -> Path:
     raise MappingError("mappings", str(_PACKAGE_DIR), "a mappings folder with units.toml")
 
 
+def samples_dir() -> Path:
+    """The bundled invented scenario (wheel: bridge/samples; source tree: samples/)."""
+    for candidate in (_PACKAGE_DIR / "samples", _PACKAGE_DIR.parent / "samples"):
+        if candidate.is_dir():
+            return candidate
+    raise MappingError("samples", str(_PACKAGE_DIR), "the bundled samples folder")
+
+
 def _text(folder: Path, name: str) -> str:
     try:
         return (folder / name).read_text(encoding="utf-8")

@@ -1,0 +1,66 @@
+"""The payloads one outcome becomes, per output kind, and the blocking-finding gate (pure).
+
+Owns: ``fhir`` -> transaction Bundle JSON, ``hl7`` -> ORU^R01 ER7 (CR-separated), their
+stable message ids and file stems, and refusing an outcome that carries a finding local
+configuration marks as blocking. Used by ``convert`` and by the watch-folder service.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Collection, Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+from bridge.emit.fhir import bundle_json
+from bridge.emit.hl7v2 import control_id, to_oru
+from bridge.emit.observations import EmitContext
+from bridge.errors import BlockedByFinding
+from bridge.mapping import Tables
+from bridge.model import Outcome
+
+OutputKind = Literal["fhir", "hl7"]
+OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
+FHIR_JSON = "application/fhir+json"
+HL7_V2_ER7 = "x-application/hl7-v2+er7"
+_UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
+
+
+@dataclass(frozen=True, slots=True)
+class Payload:
+    kind: OutputKind
+    message_id: str  # stable: the same content gives the same id
+    content_type: str
+    data: bytes
+
+
+def file_stem(test_id: str) -> str:
+    """A test id made safe as a file name (no path separators, no leading dot)."""
+    return _UNSAFE.sub("_", test_id).lstrip(".") or "_"
+
+
+def gate(outcome: Outcome, blocking: Collection[str]) -> None:
+    """Raise BlockedByFinding when the outcome carries a finding configured as blocking."""
+    hits = [f for f in outcome.findings if f.code in blocking]
+    if hits:
+        first = hits[0]
+        raise BlockedByFinding(
+            first.path,
+            f"not emitted: {first.code} is configured as blocking ({first.message})",
+            outcome.source,
+        )
+
+
+def payloads(
+    outcome: Outcome, tables: Tables, context: EmitContext, kinds: Sequence[OutputKind]
+) -> tuple[Payload, ...]:
+    """Every requested payload of one outcome."""
+    built = []
+    for kind in kinds:
+        if kind == "fhir":
+            stem = f"{file_stem(outcome.session.test_id)}"
+            built.append(Payload("fhir", stem, FHIR_JSON, bundle_json(outcome, tables, context)))
+        else:
+            er7 = to_oru(outcome, tables, context)
+            built.append(Payload("hl7", control_id(outcome, context), HL7_V2_ER7, er7.encode("utf-8")))
+    return tuple(built)

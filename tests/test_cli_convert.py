@@ -1,0 +1,125 @@
+"""`dlco-bridge convert`, `demo` and `show` as an integration engineer runs them."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import hl7
+
+from bridge.cli import main
+
+ROOT = Path(__file__).resolve().parent.parent
+SAMPLES = ROOT / "samples"
+
+
+def test_convert_writes_both_outputs_and_reports_the_bad_file(tmp_path, capsys):
+    """Good samples give <test_id>.bundle.json and .oru.hl7; the malformed one is one stderr line."""
+    code = main(["convert", str(SAMPLES), "--to", "fhir,hl7", "--out", str(tmp_path)])
+    _, err = capsys.readouterr()
+
+    assert 2 == code
+    assert ["08-malformed.json"] == [Path(line.split(":")[0]).name for line in err.strip().splitlines()]
+    bundles = sorted(p.name for p in tmp_path.glob("*.bundle.json"))
+    messages = sorted(p.name for p in tmp_path.glob("*.oru.hl7"))
+    assert 8 == len(bundles) == len(messages)
+    assert "LOW-2026-0001.bundle.json" in bundles
+    assert [] == [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary files left
+
+
+def test_converted_oru_is_cr_separated_and_parses(tmp_path):
+    """The ORU file is ER7 with segments separated by CR, readable by python-hl7."""
+    # source: HL7 v2.5.1 ch. 2 (segment terminator CR), parsed by the independent python-hl7
+    main(["convert", str(SAMPLES / "01-healthy-adult.json"), "--to", "hl7", "--out", str(tmp_path)])
+    text = (tmp_path / "LOW-2026-0001.oru.hl7").read_bytes().decode("utf-8")
+
+    assert "\n" not in text
+    message = hl7.parse(text)
+    assert "ORU^R01^ORU_R01" == str(message.segment("MSH")[9])
+
+
+def test_blocking_finding_refuses_the_file(tmp_path, capsys):
+    """With --block UNIT_MISLABEL_PROBABLE the mislabelled session is refused, nothing written."""
+    code = main(
+        [
+            "convert",
+            str(SAMPLES / "07-unit-mislabel.json"),
+            "--out",
+            str(tmp_path),
+            "--block",
+            "UNIT_MISLABEL_PROBABLE",
+        ]
+    )
+    _, err = capsys.readouterr()
+
+    assert 2 == code
+    assert "UNIT_MISLABEL_PROBABLE is configured as blocking" in err
+    assert [] == list(tmp_path.iterdir())
+
+
+def test_units_do_not_change_codes(tmp_path):
+    """SI and traditional Bundles carry the same LOINC codes and values in ratio 2.987."""
+    # source: GLI 2017 intercepts give the SI <-> traditional factor 2.987 (see test_units)
+    values = {}
+    for units in ("si", "traditional"):
+        out = tmp_path / units
+        main(
+            [
+                "convert",
+                str(SAMPLES / "01-healthy-adult.json"),
+                "--to",
+                "fhir",
+                "--units",
+                units,
+                "--out",
+                str(out),
+            ]
+        )
+        bundle = json.loads((out / "LOW-2026-0001.bundle.json").read_text())
+        dlco = next(
+            e["resource"]
+            for e in bundle["entry"]
+            if e["resource"]["resourceType"] == "Observation"
+            and e["resource"]["code"]["coding"][0]["code"] == "19911-7"
+        )
+        values[units] = dlco["valueQuantity"]["value"]
+
+    assert 9.84 == values["si"]
+    assert abs(values["traditional"] - 9.84 * 2.987) < 0.05
+
+
+def test_demo_runs_end_to_end(capsys):
+    """The demo converts the scenario, refuses the malformed and the mislabelled file, exits 0."""
+    code = main(["demo"])
+    out = capsys.readouterr().out
+
+    assert 0 == code
+    assert "7 sessions converted, 2 refused" in out
+    assert "HB_ADJUSTMENT_WRONG_DIRECTION" in out
+    assert "not a medical device" in out
+
+
+def test_show_names_hl7_fields(tmp_path, capsys):
+    """show on an ORU prints fields with their HL7 names."""
+    main(["convert", str(SAMPLES / "02-anaemic-patient.json"), "--to", "hl7,fhir", "--out", str(tmp_path)])
+    capsys.readouterr()
+
+    main(["show", str(tmp_path / "HC-26-0142.oru.hl7")])
+    out = capsys.readouterr().out
+
+    assert "PID-5" in out
+    assert "Patient Name" in out
+    assert "Fictive^Bryony" in out
+
+
+def test_show_summarises_a_bundle(tmp_path, capsys):
+    """show on a Bundle lists its Observations with code and value."""
+    main(["convert", str(SAMPLES / "02-anaemic-patient.json"), "--to", "fhir", "--out", str(tmp_path)])
+    capsys.readouterr()
+
+    main(["show", str(tmp_path / "HC-26-0142.bundle.json")])
+    out = capsys.readouterr().out
+
+    assert "Bundle type=transaction" in out
+    assert "19911-7" in out
+    assert "15.1 mL/min/mm[Hg]" in out
