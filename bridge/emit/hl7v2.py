@@ -200,7 +200,7 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     value = numeric_text(format_value(item.quantity))
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
-    unit = _code_text(item.quantity.unit, "unit", ST_LENGTH)
+    unit = _code_text(item.quantity.unit, "units.toml", f"unit of {item.key}")
     fields = [""] * 14
     fields[0] = str(set_id)
     fields[1] = "NM"
@@ -234,14 +234,14 @@ def _components(*parts: str) -> str:
 
 def _coded(code: Code, key: str) -> str:
     """CE: identifier^text^coding system (OBR-4, OBX-3)."""
-    identifier = _code_text(code.code, f"codes.{key}.code", ST_LENGTH)
+    identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")
     return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
 
 
-def _code_text(text: str, where: str, limit: int) -> str:
+def _code_text(text: str, table: str, where: str) -> str:
     escaped = escape(text)
-    if len(escaped) > limit:
-        raise MappingError("codes.toml", where, f"a code of at most {limit} characters for HL7")
+    if len(escaped) > ST_LENGTH:
+        raise MappingError(table, where, f"a code of at most {ST_LENGTH} characters for HL7")
     return escaped
 
 
