@@ -9,6 +9,7 @@ list, so the two outputs always carry the same content. Pure.
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Literal
@@ -163,7 +164,9 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     add("barometric_pressure", c.barometric_pressure)
     present = {item.key for item in items}
     items = [_keep_present_sources(item, present) for item in items]
-    return ReportContent(tuple(items), _report_notes(outcome))
+    carried = {note for item in items for note in item.notes}
+    attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
+    return ReportContent(tuple(items), _report_notes(outcome, attached))
 
 
 def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
@@ -175,8 +178,8 @@ def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
     )
 
 
-def _report_notes(outcome: Outcome) -> tuple[str, ...]:
-    """Report-level notes: quality grade, reference set, and every finding."""
+def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
+    """Report-level notes: quality grade, reference set, and the findings no item carries."""
     notes: list[str] = []
     d, s = outcome.derived, outcome.session
     if d.session_grade is not None:
@@ -184,13 +187,22 @@ def _report_notes(outcome: Outcome) -> tuple[str, ...]:
     pred = s.results.predicted
     if pred is not None and pred.reference_set:
         notes.append(f"Reference values: {pred.reference_set}.")
-    notes.extend(_finding_note(f) for f in outcome.findings)
+    notes.extend(_finding_note(f) for f in outcome.findings if f.path not in attached)
     return tuple(notes)
 
 
+def lab_slug(name: str) -> str:
+    """``Lowmarsh Respiratory Lab (fictional)`` -> ``lowmarsh-respiratory-lab-fictional``."""
+    return re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-") or "lab"
+
+
 def observation_identifier(outcome: Outcome, key: str) -> str:
-    """Stable identifier value of one observation: lab + test id + quantity key."""
-    return f"{outcome.session.lab.name}|{outcome.session.test_id}|{key}"
+    """Stable identifier value of one observation: lab + test id + quantity key.
+
+    Test ids are unique per lab only, so the lab is part of it; written as a slug so the
+    value needs no escaping in FHIR search URLs.
+    """
+    return f"{lab_slug(outcome.session.lab.name)}.{outcome.session.test_id}.{key}"
 
 
 def code_system_uri(code: Code, tables: Tables, context: EmitContext) -> str:

@@ -215,7 +215,7 @@ def test_ucum_codes_parse_with_an_independent_parser(fhir_bundles):
 def _codes_by_key(bundle: dict[str, Any]) -> dict[str, str]:
     observations = evaluate(bundle, "Bundle.entry.resource.ofType(Observation)", [])
     return {
-        o["identifier"][0]["value"].rsplit("|", 1)[1]: o["code"]["coding"][0]["code"] for o in observations
+        o["identifier"][0]["value"].rsplit(".", 1)[1]: o["code"]["coding"][0]["code"] for o in observations
     }
 
 
@@ -272,7 +272,7 @@ def test_categories_and_interpretation(fhir_outcomes, fhir_tables):
 
 def _observation(bundle: dict[str, Any], key: str) -> dict[str, Any]:
     for resource in _resources(bundle, "Observation"):
-        if resource["identifier"][0]["value"].endswith(f"|{key}"):
+        if resource["identifier"][0]["value"].endswith(f".{key}"):
             return resource
     raise AssertionError(f"no observation {key}")
 
@@ -481,9 +481,9 @@ def test_awkward_characters_survive(fhir_tables):
     Bundle.model_validate(bundle)
 
     assert patient["name"] == [{"family": 'Ó"Fíctïve|<b>', "given": ["Zoë 名"]}]
-    assert obs_entry["resource"]["identifier"][0]["value"] == 'Lab | Ω <fictional> & "test"|T|1,2$3\\4|dlco'
+    assert obs_entry["resource"]["identifier"][0]["value"] == "lab-fictional-test.T|1,2$3\\4.dlco"
     assert "|" not in token and "," not in token and "$" not in token
-    assert unquote(token) == 'Lab \\| Ω <fictional> & "test"\\|T\\|1\\,2\\$3\\\\4\\|dlco'
+    assert unquote(token) == "lab-fictional-test.T\\|1\\,2\\$3\\\\4.dlco"
 
 
 # ---------- NDJSON ----------
