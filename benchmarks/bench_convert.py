@@ -1,0 +1,482 @@
+"""Convert generated sessions to both outputs and compare the speed with a floor.
+
+Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--json]``.
+
+What it measures, all on one core in one process, with the same generated inputs:
+
+* **real**: ``process()`` then ``payloads(..., ("fhir", "hl7"))`` per session: the bytes a
+  ``convert`` run writes (FHIR transaction Bundle JSON and ORU^R01 ER7), without file I/O.
+* **floor**: the cheapest honest way to read the same JSON and write bytes of the same shape:
+  ``orjson.loads``, one plain dict per Observation (as many as the real Bundle has, with the
+  same keys), a DiagnosticReport and a Provenance dict, ``orjson.dumps`` with the same
+  indentation, and an ER7 message joined from strings with one OBX per Observation. No
+  validation, no unit handling, no derivation, no checks.
+
+It prints sessions/s for both, the ratio real/floor and whether the target
+(>= 2,000 sessions/s with both outputs) is met, then a per-stage breakdown on a subset and,
+unless ``--no-validators``, what validating the output with fhir.resources (R4B) and hl7apy
+(STRICT parse) would cost per session, as a ratio to our own build. This is a script, not a
+test: the figures depend on the machine, the ratio much less.
+
+Timing: ``time.perf_counter``, best of ``--repeat`` passes over all sessions after one untimed
+warm-up pass. The garbage collector stays enabled (as in the service) and ``gc.collect()`` runs
+before each pass. Generated data is invented: names, identifiers and labs are made up.
+"""
+
+from __future__ import annotations
+
+import argparse
+import copy
+import gc
+import hashlib
+import os
+import platform
+import random
+import statistics
+import sys
+import time
+from collections.abc import Callable, Sequence
+from datetime import UTC, datetime
+from typing import Any
+
+import orjson
+
+from bridge.checks import run_checks
+from bridge.derive import derive
+from bridge.emit.fhir import bundle_json
+from bridge.emit.hl7v2 import control_id, to_oru
+from bridge.emit.observations import EmitContext, build_content
+from bridge.emit.outputs import payloads
+from bridge.mapping import Tables
+from bridge.model import Outcome
+from bridge.normalise import normalise
+from bridge.pipeline import process
+from bridge.readers.json_export import read_export
+from bridge.resources import load_tables, samples_dir
+
+TARGET_PER_S = 2000
+TARGET_RATIO = 3.0  # "within about 3x of the floor"
+SEED = 20260310
+KINDS = ("fhir", "hl7")
+SUBSTAGE = "build_content (each emitter runs it)"  # part of FHIR and of HL7
+CONTEXT = EmitContext(now=datetime(2026, 3, 10, 12, tzinfo=UTC))
+TEMPLATES = (
+    "01-healthy-adult.json",
+    "02-anaemic-patient.json",
+    "03-high-altitude.json",
+    "04-raised-cohb.json",
+    "05-child.json",
+    "06-three-manoeuvres.json",
+    "07-unit-mislabel.json",
+    "09-legacy-hb-wrong-direction.json",
+)
+GIVEN = ("Alder", "Brisk", "Corin", "Dorran", "Elsin", "Ferelith", "Gorse", "Hollin", "Ives", "Juniper")
+FAMILY = ("Fictive", "Madeup", "Notreal", "Placeholder", "Sampleson", "Testwright")
+LABS = (
+    ("Lowmarsh Respiratory Physiology Lab (fictional)", "Fenwick Hollow General (fictional)"),
+    ("Highcairn Lung Function Unit (fictional)", "Highcairn Hill Clinic (fictional), 1800 m"),
+    ("Saltreach Breathing Lab (fictional)", None),
+)
+MMHG_PER_KPA = 2.987  # traditional per SI for DLCO (mL/min/mmHg per mmol/min/kPa)
+DLCO_SI = ("mmol/min/kPa", "mmol/(min.kPa)")
+DLCO_TRAD = ("mL/min/mmHg", "mL/min/mm[Hg]", "ml/min/mm Hg")
+KCO_SI = ("mmol/min/kPa/L", "mmol/(min.kPa.L)")
+KCO_TRAD = ("mL/min/mmHg/L", "mL/min/mm[Hg]/L")
+
+
+# ---------- generated sessions ----------
+
+
+def generate(count: int, seed: int = SEED) -> list[bytes]:
+    """``count`` varied ``dlco-result/1`` documents derived from the bundled samples."""
+    rng = random.Random(seed)
+    folder = samples_dir()
+    templates = [orjson.loads((folder / name).read_bytes()) for name in TEMPLATES]
+    three = next(t for t in templates if len(t.get("manoeuvres", ())) == 3)
+    return [orjson.dumps(_variant(rng, i, templates, three)) for i in range(count)]
+
+
+def _variant(rng: random.Random, i: int, templates: list[dict[str, Any]], three: dict[str, Any]) -> Any:
+    # about one session in five carries raw gas data for three manoeuvres
+    doc = copy.deepcopy(three if rng.random() < 0.2 else rng.choice(templates))
+    lab, site = rng.choice(LABS)
+    doc["test_id"] = f"GEN-{i:06d}"
+    doc["lab"] = {"name": lab} if site is None else {"name": lab, "site": site}
+    day, hour = 1 + rng.randrange(28), 7 + rng.randrange(10)
+    doc["performed_at"] = f"2026-02-{day:02d}T{hour:02d}:{rng.choice((0, 15, 30, 45)):02d}:00+01:00"
+    p = doc["patient"]
+    p["id"] = f"FICT-G{rng.randrange(10**6):06d}"
+    p["given"], p["family"] = rng.choice(GIVEN), rng.choice(FAMILY)
+    if rng.random() < 0.05:
+        p.pop("given")
+        p.pop("family")
+    p["sex"] = rng.choice(("female", "male"))
+    p["birth_date"] = f"{rng.randrange(1940, 2005)}-{1 + rng.randrange(12):02d}-{1 + rng.randrange(28):02d}"
+    p["height"] = {"value": rng.randrange(150, 195), "unit": "cm"}
+    _vary_conditions(rng, doc.setdefault("conditions", {}))
+    if "manoeuvres" in doc:
+        _vary_manoeuvres(rng, doc["manoeuvres"])
+    _vary_results(rng, doc["results"])
+    return doc
+
+
+def _vary_conditions(rng: random.Random, c: dict[str, Any]) -> None:
+    if "barometric_pressure" in c:
+        pb = c["barometric_pressure"]
+        pb["value"] = round(pb["value"] * rng.uniform(0.99, 1.01), 1)
+    hb = rng.uniform(9.0, 17.0)  # g/dL
+    roll = rng.random()
+    if roll < 0.15:
+        c.pop("hemoglobin", None)
+    elif roll < 0.55:
+        c["hemoglobin"] = {"value": round(hb * 10), "unit": "g/L"}
+    elif roll < 0.9:
+        c["hemoglobin"] = {"value": round(hb, 1), "unit": "g/dL"}
+    else:
+        c["hemoglobin"] = {"value": round(hb * 0.6206, 2), "unit": "mmol/L"}
+    if rng.random() < 0.25:
+        c["carboxyhemoglobin"] = {"value": round(rng.uniform(0.5, 9.0), 1), "unit": "%"}
+    else:
+        c.pop("carboxyhemoglobin", None)
+
+
+def _vary_manoeuvres(rng: random.Random, manoeuvres: list[dict[str, Any]]) -> None:
+    for m in manoeuvres:
+        for key in ("alveolar_co_fraction", "alveolar_tracer_fraction"):
+            m[key] = round(m[key] * rng.uniform(0.98, 1.02), 6)
+        m["breath_hold_time"]["value"] = round(m["breath_hold_time"]["value"] + rng.uniform(-0.3, 0.3), 1)
+
+
+def _vary_results(rng: random.Random, r: dict[str, Any]) -> None:
+    """Scale DLCO and VA, keep KCO = DLCO/VA, and write them in SI or traditional units."""
+    scale, va_scale = rng.uniform(0.6, 1.2), rng.uniform(0.85, 1.1)
+    traditional = rng.random() < 0.5
+    factor = {"dlco": scale, "va": va_scale, "kco": scale / va_scale, "dlco_hb_adjusted": scale}
+    for key, q in r.items():
+        if key in factor and isinstance(q, dict):
+            _set_unit(rng, key, q, traditional)
+            q["value"] = _rounded(q["value"] * factor[key], q["value"])
+    pred = r.get("predicted")
+    if pred is not None:
+        for key in ("dlco", "kco", "va"):
+            if key in pred:
+                _set_unit(rng, key, pred[key], traditional)
+        for key, q in pred.get("lower_limits", {}).items():
+            _set_unit(rng, key, q, traditional)
+
+
+def _set_unit(rng: random.Random, key: str, q: dict[str, Any], traditional: bool) -> None:
+    """Re-express a DLCO or KCO quantity in the other unit system (with a common spelling)."""
+    if key == "va":
+        return
+    is_si = q["unit"].startswith("mmol")
+    if traditional == (not is_si):
+        return
+    spellings = (
+        (DLCO_TRAD if traditional else DLCO_SI) if key != "kco" else (KCO_TRAD if traditional else KCO_SI)
+    )
+    q["unit"] = rng.choice(spellings)
+    q["value"] = q["value"] * MMHG_PER_KPA if traditional else q["value"] / MMHG_PER_KPA
+    q["value"] = round(q["value"], 1 if traditional and key != "kco" else 3 if key == "kco" else 2)
+
+
+def _rounded(value: float, like: float) -> float:
+    text = repr(like)
+    digits = len(text.split(".")[1]) if "." in text else 0
+    return round(value, max(digits, 1))
+
+
+# ---------- the floor: same JSON in, bytes of the same shape out ----------
+
+_CAT = "http://terminology.hl7.org/CodeSystem/observation-category"
+_UCUM = "http://unitsofmeasure.org"
+_INTERP = "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation"
+
+
+def floor_convert(data: bytes, observations: int) -> tuple[bytes, bytes]:
+    """Plain dicts and string joins: what any converter of this input must at least spend."""
+    doc = orjson.loads(data)
+    patient, lab = doc["patient"], doc["lab"]
+    test_id, when = doc["test_id"], doc["performed_at"]
+    quantities = [q for q in doc["results"].values() if isinstance(q, dict) and "unit" in q]
+    quantities += [q for q in doc.get("conditions", {}).values() if isinstance(q, dict)]
+    subject = {"type": "Patient", "identifier": {"system": patient["id_system"], "value": patient["id"]}}
+    entries = []
+    obx = []
+    for k in range(observations):
+        q = quantities[k % len(quantities)]
+        ident = f"{lab['name']}|{test_id}|q{k}"
+        value_q = {"value": q["value"], "unit": q["unit"], "system": _UCUM, "code": q["unit"]}
+        resource = {
+            "resourceType": "Observation",
+            "identifier": [{"system": "urn:dlco-bridge:observation-id", "value": ident}],
+            "status": "final",
+            "category": [{"coding": [{"system": _CAT, "code": "procedure", "display": "Procedure"}]}],
+            "code": {"coding": [{"system": "urn:x", "code": f"Q{k}", "display": "q"}], "text": "q"},
+            "subject": subject,
+            "effectiveDateTime": when,
+            "issued": "2026-03-10T12:00:00+00:00",
+            "performer": [{"type": "Organization", "display": lab["name"]}],
+            "valueQuantity": value_q,
+            "interpretation": [{"coding": [{"system": _INTERP, "code": "N", "display": "Normal"}]}],
+            "referenceRange": [{"low": value_q, "text": "LLN (5th percentile)"}],
+        }
+        url = f"urn:uuid:{k:08x}-0000-5000-8000-{len(ident):012x}"
+        entries.append({"fullUrl": url, "resource": resource, "request": {"method": "POST", "url": ident}})
+        obx.append(
+            "|".join(
+                ("OBX", str(k + 1), "NM", f"Q{k}^q^L", "", str(q["value"]), f"{q['unit']}^{q['unit']}^UCUM")
+            )
+            + f"|>{q['value']}|N|||F|||{when}"
+        )
+    refs = [{"reference": e["fullUrl"]} for e in entries]
+    entries.append(
+        {
+            "fullUrl": "urn:uuid:report",
+            "resource": {
+                "resourceType": "DiagnosticReport",
+                "status": "final",
+                "subject": subject,
+                "result": refs,
+            },
+            "request": {"method": "POST", "url": "DiagnosticReport"},
+        }
+    )
+    entries.append(
+        {
+            "fullUrl": "urn:uuid:provenance",
+            "resource": {"resourceType": "Provenance", "target": refs, "recorded": when},
+            "request": {"method": "POST", "url": "Provenance"},
+        }
+    )
+    bundle = orjson.dumps(
+        {"resourceType": "Bundle", "type": "transaction", "entry": entries}, option=orjson.OPT_INDENT_2
+    )
+    name = f"{patient.get('family', '')}^{patient.get('given', '')}"
+    segments = [
+        f"MSH|^~\\&|DLCO-BRIDGE|PFT-LAB|RECORDS|HOSPITAL|20260310120000+0000||ORU^R01^ORU_R01|{test_id}|P|2.5.1",
+        f"PID|1||{patient['id']}^^^X&{patient['id_system']}&URI||{name}||{patient['birth_date']}|M",
+        f"ORC|RE|{test_id}|{test_id}",
+        f"OBR|1|{test_id}|{test_id}|81458-2^Pulmonary function test panel^LN|||{when}||||||||||||||||PF|F",
+        *obx,
+    ]
+    return bundle, ("\r".join(segments) + "\r").encode("utf-8")
+
+
+# ---------- timing ----------
+
+
+def best_of(repeat: int, run: Callable[[], None]) -> tuple[float, list[float]]:
+    """Best wall time of ``repeat`` passes (gc enabled, collected before each pass)."""
+    times = []
+    for _ in range(repeat):
+        gc.collect()
+        start = time.perf_counter()
+        run()
+        times.append(time.perf_counter() - start)
+    return min(times), times
+
+
+def real_pass(inputs: Sequence[bytes], tables: Tables) -> Callable[[], None]:
+    def run() -> None:
+        for i, data in enumerate(inputs):
+            payloads(process(data, f"gen-{i}.json", tables), tables, CONTEXT, KINDS)
+
+    return run
+
+
+def floor_pass(inputs: Sequence[bytes], counts: Sequence[int]) -> Callable[[], None]:
+    def run() -> None:
+        for data, n in zip(inputs, counts, strict=True):
+            floor_convert(data, n)
+
+    return run
+
+
+def stage_breakdown(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]:
+    """Microseconds per session of each pipeline stage, stage by stage over ``inputs``."""
+    names = [f"gen-{i}.json" for i in range(len(inputs))]
+    us = 1e6 / len(inputs)
+    out: dict[str, float] = {}
+
+    def timed(label: str, func: Callable[[], Any]) -> Any:
+        gc.collect()
+        start = time.perf_counter()
+        result = func()
+        out[label] = (time.perf_counter() - start) * us
+        return result
+
+    sessions = timed(
+        "read+normalise",
+        lambda: [normalise(read_export(d, n), tables.units) for d, n in zip(inputs, names, strict=True)],
+    )
+    derived = timed("derive", lambda: [derive(s, tables) for s in sessions])
+    findings = timed(
+        "check", lambda: [run_checks(s, d, tables) for s, d in zip(sessions, derived, strict=True)]
+    )
+    outcomes = [
+        Outcome(
+            source=n,
+            source_sha256=hashlib.sha256(data).hexdigest(),
+            session=s,
+            derived=d,
+            findings=f,
+        )
+        for n, data, s, d, f in zip(names, inputs, sessions, derived, findings, strict=True)
+    ]
+    timed("FHIR (bundle_json)", lambda: [bundle_json(o, tables, CONTEXT) for o in outcomes])
+    timed(
+        "HL7 (to_oru+control_id)",
+        lambda: [(to_oru(o, tables, CONTEXT).encode(), control_id(o, CONTEXT)) for o in outcomes],
+    )
+    timed(SUBSTAGE, lambda: [build_content(o, tables, CONTEXT.units) for o in outcomes])
+    return out
+
+
+def validator_costs(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]:
+    """Milliseconds per session to validate our output with fhir.resources and hl7apy."""
+    from fhir.resources.R4B.bundle import Bundle
+    from hl7apy.consts import VALIDATION_LEVEL
+    from hl7apy.parser import parse_message
+
+    built = [
+        payloads(process(d, f"v-{i}.json", tables), tables, CONTEXT, KINDS) for i, d in enumerate(inputs)
+    ]
+    fhir_trees = [orjson.loads(p[0].data) for p in built]
+    er7 = [p[1].data.decode("utf-8") for p in built]
+    Bundle.model_validate(fhir_trees[0])  # first use builds the pydantic models: not counted
+    parse_message(er7[0], validation_level=VALIDATION_LEVEL.STRICT, find_groups=True)
+    ms = 1e3 / len(inputs)
+    start = time.perf_counter()
+    for tree in fhir_trees:
+        Bundle.model_validate(tree)
+    fhir_ms = (time.perf_counter() - start) * ms
+    start = time.perf_counter()
+    for text in er7:
+        parse_message(text, validation_level=VALIDATION_LEVEL.STRICT, find_groups=True)
+    hl7_ms = (time.perf_counter() - start) * ms
+    return {"fhir_resources_r4b_validate_ms": fhir_ms, "hl7apy_strict_parse_ms": hl7_ms}
+
+
+# ---------- report ----------
+
+
+def machine() -> dict[str, Any]:
+    return {
+        "python": platform.python_version(),
+        "implementation": platform.python_implementation(),
+        "machine": platform.machine(),
+        "nproc": os.cpu_count(),
+        "date": datetime.now(UTC).strftime("%Y-%m-%d"),
+    }
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sessions", type=int, default=10_000)
+    parser.add_argument("--repeat", type=int, default=3, help="timed passes; the best is reported")
+    parser.add_argument("--subset", type=int, default=1000, help="sessions in the per-stage breakdown")
+    parser.add_argument("--validators", type=int, default=50, help="sessions validated (0: skip)")
+    parser.add_argument("--json", action="store_true", help="print one machine-readable JSON line")
+    args = parser.parse_args(argv)
+    say = (lambda *a: None) if args.json else print
+
+    tables = load_tables()
+    say(f"generating {args.sessions} sessions (seed {SEED}) ...")
+    inputs = generate(args.sessions)
+
+    # untimed warm-up of the real path: also counts the Observations per session for the floor
+    counts: list[int] = []
+    real_bytes = 0
+    for i, data in enumerate(inputs):
+        fhir, hl7 = payloads(process(data, f"gen-{i}.json", tables), tables, CONTEXT, KINDS)
+        counts.append(hl7.data.count(b"\rOBX|"))
+        real_bytes += len(fhir.data) + len(hl7.data)
+    floor_bytes = sum(len(f) + len(h) for f, h in map(floor_convert, inputs, counts))
+
+    say(f"timing, best of {args.repeat} (gc enabled, collected before each pass) ...")
+    floor_best, floor_all = best_of(args.repeat, floor_pass(inputs, counts))
+    real_best, real_all = best_of(args.repeat, real_pass(inputs, tables))
+    n = len(inputs)
+    real_rate, floor_rate = n / real_best, n / floor_best
+    ratio = real_best / floor_best
+    subset = inputs[: min(args.subset, n)]
+    stages = stage_breakdown(subset, tables)
+    validators = validator_costs(inputs[: args.validators], tables) if args.validators else {}
+
+    result: dict[str, Any] = {
+        "sessions": n,
+        "repeat": args.repeat,
+        "gc": "enabled, collected before each pass",
+        "real_sessions_per_s": round(real_rate),
+        "floor_sessions_per_s": round(floor_rate),
+        "ratio_real_to_floor": round(ratio, 1),
+        "target_sessions_per_s": TARGET_PER_S,
+        "target_met": real_rate >= TARGET_PER_S,
+        "real_us_per_session": round(real_best / n * 1e6, 1),
+        "floor_us_per_session": round(floor_best / n * 1e6, 1),
+        "real_passes_s": [round(t, 3) for t in real_all],
+        "floor_passes_s": [round(t, 3) for t in floor_all],
+        "output_kb_per_session": {
+            "real": round(real_bytes / n / 1024, 1),
+            "floor": round(floor_bytes / n / 1024, 1),
+        },
+        "observations_per_session": round(statistics.mean(counts), 1),
+        "stages_us_per_session": {k: round(v, 1) for k, v in stages.items()},
+        "stage_subset": len(subset),
+        **machine(),
+    }
+    if validators:
+        build_us = stages["FHIR (bundle_json)"], stages["HL7 (to_oru+control_id)"]
+        result["validators_ms_per_session"] = {k: round(v, 2) for k, v in validators.items()}
+        result["validator_to_build_ratio"] = {
+            "fhir": round(validators["fhir_resources_r4b_validate_ms"] * 1e3 / build_us[0]),
+            "hl7": round(validators["hl7apy_strict_parse_ms"] * 1e3 / build_us[1]),
+        }
+        result["validator_sessions"] = args.validators
+
+    if args.json:
+        print(orjson.dumps(result).decode())
+        return 0
+    _print_report(result, stages, validators)
+    return 0
+
+
+def _print_report(result: dict[str, Any], stages: dict[str, float], validators: dict[str, float]) -> None:
+    met = "met" if result["target_met"] else "NOT met"
+    size = result["output_kb_per_session"]
+    real_us, floor_us = result["real_us_per_session"], result["floor_us_per_session"]
+    print()
+    print(f"machine: {result['nproc']} CPUs, Python {result['python']}, {result['date']}; one core used")
+    print(f"sessions: {result['sessions']}, {result['observations_per_session']} Observations/OBX each")
+    print(f"output per session: real {size['real']} kB, floor {size['floor']} kB")
+    print(
+        f"real  (process + FHIR + HL7):   {result['real_sessions_per_s']:6d} sessions/s ({real_us} µs each)"
+    )
+    print(
+        f"floor (orjson + dicts + joins): {result['floor_sessions_per_s']:6d} sessions/s ({floor_us} µs each)"
+    )
+    print(
+        f"ratio real/floor: {result['ratio_real_to_floor']}x; target {TARGET_PER_S} sessions/s "
+        f"(about {TARGET_RATIO:.0f}x the floor): {met}"
+    )
+    print()
+    print(f"per stage, {result['stage_subset']} sessions (µs per session):")
+    total = sum(v for k, v in stages.items() if k != SUBSTAGE)
+    for label, value in stages.items():
+        if label == SUBSTAGE:
+            print(f"    of which {label:37} {value:8.1f}")
+        else:
+            print(f"  {label:48} {value:8.1f}  {value / total:5.1%}")
+    print(f"  {'total':48} {total:8.1f}")
+    if validators:
+        ratios = result["validator_to_build_ratio"]
+        fhir_ms, hl7_ms = validators["fhir_resources_r4b_validate_ms"], validators["hl7apy_strict_parse_ms"]
+        print()
+        print(f"validators, {result['validator_sessions']} sessions (why they run in tests only):")
+        print(f"  fhir.resources R4B Bundle.model_validate: {fhir_ms:7.2f} ms, {ratios['fhir']}x FHIR build")
+        print(f"  hl7apy parse_message STRICT:              {hl7_ms:7.2f} ms, {ratios['hl7']}x HL7 build")
+
+
+if __name__ == "__main__":
+    sys.exit(main())
