@@ -11,28 +11,36 @@ import argparse
 import json
 import os
 import shutil
+import signal
 import sys
 import tempfile
 from collections.abc import Iterator, Sequence
+from dataclasses import asdict
 from datetime import UTC, datetime
 from pathlib import Path
 
 import orjson
 
 from bridge import __version__
+from bridge.config import Destination, load_settings
 from bridge.emit.observations import EmitContext
 from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, file_stem, gate, payloads
 from bridge.errors import BridgeError, ConfigError, InputError, UnreadableInput
 from bridge.fhirshow import describe_bundle
 from bridge.hl7show import describe_er7
+from bridge.ledger import Ledger, ServiceLock
+from bridge.logs import configure as configure_logging
 from bridge.mapping import Tables
 from bridge.model import Outcome, Severity
 from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES, Limits, process
 from bridge.render import CAUTION, outcome_json, outcome_text
 from bridge.resources import load_tables, samples_dir
 from bridge.schema import export_schema
-from bridge.transports.base import OutgoingMessage
+from bridge.service import Service
+from bridge.transports.base import OutgoingMessage, TlsOptions, Transport
+from bridge.transports.fhir_rest import FhirRestTransport
 from bridge.transports.file import FileTransport
+from bridge.transports.mllp import MllpTransport
 from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 
 EXIT_OK = 0
@@ -81,9 +89,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_common(check)
     convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
-    convert.add_argument(
-        "--to", default=_env("TO", "fhir,hl7"), help="fhir, hl7 or both (env DLCO_BRIDGE_TO)"
-    )
+    convert.add_argument("--to", default=_env("TO", "fhir,hl7"), help="fhir, hl7 or both (env DLCO_BRIDGE_TO)")
     convert.add_argument("--out", type=Path, default=Path(_env("OUT", "out")), help="output folder")
     _add_common(convert)
     _add_emit_options(convert)
@@ -93,6 +99,16 @@ def build_parser() -> argparse.ArgumentParser:
     show = commands.add_parser("show", help="an HL7 v2 message with field names, or a FHIR Bundle summarised")
     show.add_argument("file", type=Path)
     commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
+    watch = commands.add_parser("watch", help="run the watch-folder service")
+    watch.add_argument("--config", type=Path, default=Path(_env("CONFIG", "bridge.toml")))
+    status = commands.add_parser("status", help="what the service's ledger holds: pending, delivered, rejected")
+    status.add_argument("--config", type=Path, default=Path(_env("CONFIG", "bridge.toml")))
+    status.add_argument("--json", action="store_true")
+    resend = commands.add_parser("resend", help="queue an outbox message (or every rejected one) again")
+    resend.add_argument("--config", type=Path, default=Path(_env("CONFIG", "bridge.toml")))
+    which = resend.add_mutually_exclusive_group(required=True)
+    which.add_argument("id", nargs="?", type=int, help="outbox id (see status --json)")
+    which.add_argument("--rejected", action="store_true", help="every dead-lettered message")
     return parser
 
 
@@ -134,9 +150,7 @@ def read_input(path: Path, limits: Limits) -> bytes:
         raise UnreadableInput("(file)", f"a readable file ({exc.strerror})", str(path)) from exc
 
 
-def run_inputs(
-    paths: Sequence[Path], tables: Tables, limits: Limits
-) -> Iterator[tuple[Path, Outcome | InputError]]:
+def run_inputs(paths: Sequence[Path], tables: Tables, limits: Limits) -> Iterator[tuple[Path, Outcome | InputError]]:
     """Process every input; an InputError is returned in place of its outcome, never raised."""
     for path in expand(paths):
         try:
@@ -291,7 +305,78 @@ def cmd_schema(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_OK
 
 
+def build_transport(destination: Destination) -> Transport:
+    """The transport of one destination (the CLI is the only place transports are built)."""
+    tls = None
+    if destination.ca_file or destination.cert_file:
+        tls = TlsOptions(destination.ca_file, destination.cert_file, destination.key_file)
+    if destination.transport == "file":
+        assert destination.folder is not None  # checked by config
+        return FileTransport(destination.folder)
+    if destination.transport == "mllp":
+        return MllpTransport(
+            destination.host,
+            destination.port,
+            connect_timeout=destination.connect_timeout,
+            read_timeout=destination.read_timeout,
+            tls=tls,
+        )
+    return FhirRestTransport(
+        destination.base_url,
+        token=destination.token,
+        connect_timeout=destination.connect_timeout,
+        read_timeout=destination.read_timeout,
+        tls=tls,
+    )
+
+
+def cmd_watch(args: argparse.Namespace, tables: Tables) -> int:
+    settings = load_settings(args.config, os.environ)
+    tables = load_tables(traditional_per_si=settings.traditional_per_si)
+    configure_logging(settings.log_format)
+    with ServiceLock.acquire(settings.state), Ledger.open(settings.ledger_path) as ledger:
+        transports = {d.name: build_transport(d) for d in settings.destinations}
+        service = Service(settings, tables, ledger, transports)
+        for signum in (signal.SIGTERM, signal.SIGINT):
+            signal.signal(signum, lambda *_: service.request_stop())
+        service.run()
+    return EXIT_OK
+
+
+def cmd_status(args: argparse.Namespace, tables: Tables) -> int:
+    settings = load_settings(args.config, os.environ)
+    with Ledger.open(settings.ledger_path, read_only=True) as ledger:
+        summary = ledger.summary()
+    if args.json:
+        sys.stdout.write(orjson.dumps(asdict(summary), option=orjson.OPT_INDENT_2).decode() + "\n")
+        return EXIT_OK
+    print(f"ledger {settings.ledger_path}")
+    print(
+        f"  inputs: {summary.processed} processed, {summary.corrections} corrections, "
+        f"{summary.duplicates} duplicates, {summary.quarantined} quarantined"
+    )
+    for name, d in sorted(summary.destinations.items()):
+        oldest = f", oldest pending {d.oldest_pending_age:.0f} s" if d.oldest_pending_age else ""
+        print(f"  {name}: {d.pending} pending, {d.delivered} delivered, {d.rejected} rejected{oldest}")
+    return EXIT_OK
+
+
+def cmd_resend(args: argparse.Namespace, tables: Tables) -> int:
+    settings = load_settings(args.config, os.environ)
+    with Ledger.open(settings.ledger_path) as ledger:
+        if args.rejected:
+            count = ledger.requeue_rejected()
+            print(f"{count} rejected messages queued again")
+        else:
+            ledger.requeue(args.id)
+            print(f"message {args.id} queued again")
+    return EXIT_OK
+
+
 COMMANDS = {
+    "watch": cmd_watch,
+    "status": cmd_status,
+    "resend": cmd_resend,
     "check": cmd_check,
     "convert": cmd_convert,
     "demo": cmd_demo,

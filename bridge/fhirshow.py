@@ -34,9 +34,7 @@ def describe_bundle(bundle: dict[str, Any]) -> str:
             ids = ", ".join(f"{i.get('system')}|{i.get('value')}" for i in resource.get("identifier", []))
             lines.append(f"  Patient {ids}")
         elif kind == "Provenance":
-            sources = [
-                e.get("what", {}).get("identifier", {}).get("value", "-") for e in resource.get("entity", [])
-            ]
+            sources = [e.get("what", {}).get("identifier", {}).get("value", "-") for e in resource.get("entity", [])]
             lines.append(f"  Provenance recorded={resource.get('recorded', '-')} source={', '.join(sources)}")
         else:
             lines.append(f"  {kind}")
@@ -47,7 +45,7 @@ def describe_bundle(bundle: dict[str, Any]) -> str:
 def _code(resource: dict[str, Any]) -> str:
     codings = resource.get("code", {}).get("coding", [])
     if not codings:
-        return resource.get("code", {}).get("text", "-")
+        return str(resource.get("code", {}).get("text", "-"))
     first = codings[0]
     return f"{first.get('code', '-')} {first.get('display', '')}".strip()
 

@@ -83,6 +83,16 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
         )""",
         "CREATE INDEX attempts_by_row ON attempts (outbox_id, id)",
     ),
+    (
+        # The same content dropped again: an input row exists already (sha256 is its key),
+        # so each repeated drop is remembered here, for `status` and the audit trail.
+        """CREATE TABLE repeated_drops (
+            id      INTEGER PRIMARY KEY,
+            sha256  TEXT NOT NULL REFERENCES inputs (sha256),
+            source  TEXT NOT NULL,
+            at      REAL NOT NULL
+        )""",
+    ),
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 
@@ -317,6 +327,14 @@ class Ledger:
                 (sha256, source, self._now(), reason),
             )
 
+    def record_duplicate(self, sha256: str, source: str) -> None:
+        """Remember that content already recorded was dropped again (nothing is sent)."""
+        with self._write() as conn:
+            conn.execute(
+                "INSERT INTO repeated_drops (sha256, source, at) VALUES (?, ?, ?)",
+                (sha256, source, self._now()),
+            )
+
     # ---- outbox ----------------------------------------------------------------------
 
     def get(self, outbox_id: int) -> OutboxRow | None:
@@ -391,6 +409,7 @@ class Ledger:
         now = self._now()
         with self._lock, _translated(self._path):
             inputs = dict(self._conn.execute("SELECT state, count(*) FROM inputs GROUP BY state").fetchall())
+            repeated = self._conn.execute("SELECT count(*) FROM repeated_drops").fetchone()[0]
             rows = self._conn.execute(
                 "SELECT destination, state, count(*) AS n, min(created_at) AS oldest "
                 "FROM outbox GROUP BY destination, state"
@@ -398,7 +417,7 @@ class Ledger:
         return LedgerSummary(
             processed=inputs.get("processed", 0),
             corrections=inputs.get("correction", 0),
-            duplicates=inputs.get("duplicate", 0),
+            duplicates=inputs.get("duplicate", 0) + repeated,
             quarantined=inputs.get("quarantined", 0),
             destinations=_by_destination(rows, now),
         )
@@ -436,8 +455,7 @@ class Ledger:
         with self._write() as conn:
             now = self._now()
             cursor = conn.execute(
-                f"UPDATE outbox SET {assignments}, attempts = attempts + 1 "
-                "WHERE id = :id AND state = 'pending'",
+                f"UPDATE outbox SET {assignments}, attempts = attempts + 1 WHERE id = :id AND state = 'pending'",
                 {
                     "id": outbox_id,
                     "now": now,
@@ -543,9 +561,7 @@ def _migrate(conn: sqlite3.Connection, path: Path) -> None:
 
 
 def _ids_of_input(conn: sqlite3.Connection, input_sha256: str) -> list[int]:
-    rows = conn.execute(
-        "SELECT id FROM outbox WHERE input_sha256 = ? ORDER BY id", (input_sha256,)
-    ).fetchall()
+    rows = conn.execute("SELECT id FROM outbox WHERE input_sha256 = ? ORDER BY id", (input_sha256,)).fetchall()
     return [int(r["id"]) for r in rows]
 
 

@@ -23,7 +23,8 @@ _Step = tuple[str, Measure | type[BaseModel], bool]
 
 def normalise(session: Session, catalogue: UnitCatalogue) -> Session:
     """The session with every quantity in its canonical unit (see ``bridge.model``)."""
-    return _normalise_model(session, catalogue, "")
+    normalised: Session = _normalise_model(session, catalogue, "")
+    return normalised
 
 
 def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
@@ -83,6 +84,7 @@ def _normalise_model(obj: BaseModel, catalogue: UnitCatalogue, path: str) -> Any
         if value is None:
             continue
         where = f"{path}.{name}" if path else name
+        new: Any
         if isinstance(kind, Measure):
             new = normalise_quantity(value, kind, catalogue, where)
         elif is_tuple:

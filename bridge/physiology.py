@@ -162,4 +162,4 @@ def barometric_pressure_from_altitude_mmhg(altitude_m: float) -> float:
 
     P = 760 x (1 - 2.25577e-5 h)^5.25588  # common practice (ICAO standard atmosphere)
     """
-    return STANDARD_PB_MMHG * (1.0 - 2.25577e-5 * altitude_m) ** 5.25588
+    return float(STANDARD_PB_MMHG * (1.0 - 2.25577e-5 * altitude_m) ** 5.25588)

@@ -7,14 +7,13 @@ message again overwrites the same name, so a retry cannot make a second copy.
 
 from __future__ import annotations
 
-import os
 import re
-import tempfile
 from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
 from bridge.errors import DeliveryError
+from bridge.files import write_atomically
 from bridge.transports.base import (
     FHIR_JSON,
     HL7_V2_ER7,
@@ -54,31 +53,8 @@ class FileTransport:
         target = self.folder / file_name(message)
         with _translated(message.destination):
             self.folder.mkdir(parents=True, exist_ok=True)
-            _write_atomically(target, message.payload)
+            write_atomically(target, message.payload)
         return DeliveryReceipt("written", target.name)
 
     def close(self) -> None:
         """Nothing is held open between messages."""
-
-
-def _write_atomically(target: Path, data: bytes) -> None:
-    handle, temporary = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(handle, "wb") as stream:
-            stream.write(data)
-            stream.flush()
-            os.fsync(stream.fileno())
-        os.replace(temporary, target)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
-    _sync_folder(target.parent)
-
-
-def _sync_folder(folder: Path) -> None:
-    """Make the rename itself durable (the new directory entry)."""
-    descriptor = os.open(folder, os.O_RDONLY)
-    try:
-        os.fsync(descriptor)
-    finally:
-        os.close(descriptor)

@@ -1,0 +1,70 @@
+"""Durable file operations of the shell: atomic writes and moves that survive a crash.
+
+Owns: writing a file so that a reader never sees half of it (temporary file in the same
+folder, fsync, rename, fsync of the folder), and moving an input into the archive or the
+quarantine without losing it (rename; copy + fsync + unlink across file systems).
+"""
+
+from __future__ import annotations
+
+import errno
+import os
+import shutil
+import tempfile
+from pathlib import Path
+
+
+def write_atomically(target: Path, data: bytes) -> None:
+    """Write ``data`` to ``target``: all of it or, after a crash, none of it."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    handle, temporary = tempfile.mkstemp(dir=target.parent, prefix=f".{target.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(data)
+            stream.flush()
+            os.fsync(stream.fileno())
+        os.replace(temporary, target)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+    sync_folder(target.parent)
+
+
+def sync_folder(folder: Path) -> None:
+    """Make a rename in ``folder`` durable (its directory entry)."""
+    descriptor = os.open(folder, os.O_RDONLY)
+    try:
+        os.fsync(descriptor)
+    finally:
+        os.close(descriptor)
+
+
+def free_name(folder: Path, name: str, tag: str) -> Path:
+    """``folder/name``, or ``folder/name.<tag>`` (then numbered) when that is taken."""
+    candidate = folder / name
+    counter = 1
+    while candidate.exists():
+        suffix = tag if counter == 1 else f"{tag}-{counter}"
+        candidate = folder / f"{name}.{suffix}"
+        counter += 1
+    return candidate
+
+
+def move_durably(source: Path, target: Path) -> Path:
+    """Move ``source`` to ``target`` (a free path) and make the move durable."""
+    target.parent.mkdir(parents=True, exist_ok=True)
+    try:
+        os.replace(source, target)
+    except OSError as exc:
+        if exc.errno != errno.EXDEV:
+            raise
+        # Another file system: copy, make the copy durable, then drop the original.
+        temporary = target.with_name(f".{target.name}.tmp")
+        shutil.copyfile(source, temporary)
+        with temporary.open("rb") as stream:
+            os.fsync(stream.fileno())
+        os.replace(temporary, target)
+        source.unlink()
+    sync_folder(target.parent)
+    sync_folder(source.parent)
+    return target

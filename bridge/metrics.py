@@ -1,0 +1,187 @@
+"""Counters, delivery latency, and the loopback health/metrics endpoint (shell).
+
+Owns: thread-safe counters the service increments, the file-close-to-acknowledgement latency
+of each message (noted at enqueue, measured at delivery by :class:`MeteredTransport`), their
+Prometheus text rendering, and a tiny HTTP server on a loopback address serving
+``/healthz`` and ``/metrics``. No patient data is ever put in a label.
+"""
+
+from __future__ import annotations
+
+import threading
+from collections.abc import Callable, Mapping
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any
+
+from bridge.ledger import LedgerSummary
+from bridge.transports.base import DeliveryReceipt, OutgoingMessage, Transport
+
+# Latency buckets in seconds (Prometheus histogram "le" bounds).
+LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0)
+COUNTERS = ("files_seen", "files_processed", "files_quarantined", "files_duplicate", "corrections")
+
+
+class Metrics:
+    """What the service has done since it started, safe to update from several threads."""
+
+    def __init__(self, clock: Callable[[], float]) -> None:
+        self._clock = clock
+        self._lock = threading.Lock()
+        self.counts = dict.fromkeys(COUNTERS, 0)
+        self._started: dict[str, float] = {}  # message id -> when its input was complete
+        self._buckets: dict[str, list[int]] = {}
+        self._sums: dict[str, float] = {}
+        self._measured: dict[str, int] = {}
+        self._delivered: dict[str, int] = {}
+        self._heartbeats: dict[str, float] = {}
+        self.latencies: list[float] = []  # kept for benchmarks and tests; bounded below
+
+    def count(self, name: str) -> None:
+        with self._lock:
+            self.counts[name] += 1
+
+    def heartbeat(self, loop: str) -> None:
+        with self._lock:
+            self._heartbeats[loop] = self._clock()
+
+    def heartbeat_ages(self) -> dict[str, float]:
+        now = self._clock()
+        with self._lock:
+            return {loop: now - at for loop, at in self._heartbeats.items()}
+
+    def note_enqueued(self, message_id: str, input_complete_at: float) -> None:
+        with self._lock:
+            self._started[message_id] = input_complete_at
+
+    def note_delivered(self, destination: str, message_id: str) -> None:
+        now = self._clock()
+        with self._lock:
+            self._delivered[destination] = self._delivered.get(destination, 0) + 1
+            started = self._started.pop(message_id, None)
+            if started is None:
+                return  # enqueued before a restart: no start time to measure from
+            latency = max(0.0, now - started)
+            buckets = self._buckets.setdefault(destination, [0] * len(LATENCY_BUCKETS))
+            for i, bound in enumerate(LATENCY_BUCKETS):
+                if latency <= bound:
+                    buckets[i] += 1
+            self._sums[destination] = self._sums.get(destination, 0.0) + latency
+            self._measured[destination] = self._measured.get(destination, 0) + 1
+            self.latencies.append(latency)
+            del self.latencies[:-100_000]
+
+    def render(self, summary: LedgerSummary) -> str:
+        """Prometheus text exposition format (version 0.0.4)."""
+        lines: list[str] = []
+        with self._lock:
+            for name in COUNTERS:
+                metric = f"dlco_bridge_{name}_total"
+                lines += [f"# TYPE {metric} counter", f"{metric} {self.counts[name]}"]
+            lines += _per_destination("dlco_bridge_delivered_total", "counter", self._delivered)
+            lines.append("# TYPE dlco_bridge_delivery_latency_seconds histogram")
+            for destination, buckets in sorted(self._buckets.items()):
+                label = _label(destination)
+                for bound, count in zip(LATENCY_BUCKETS, buckets, strict=True):
+                    lines.append(f'dlco_bridge_delivery_latency_seconds_bucket{{{label},le="{bound}"}} {count}')
+                total = self._measured[destination]
+                lines.append(f'dlco_bridge_delivery_latency_seconds_bucket{{{label},le="+Inf"}} {total}')
+                lines.append(f"dlco_bridge_delivery_latency_seconds_sum{{{label}}} {self._sums[destination]:.6f}")
+                lines.append(f"dlco_bridge_delivery_latency_seconds_count{{{label}}} {total}")
+        depth = {name: d.pending for name, d in summary.destinations.items()}
+        rejected = {name: d.rejected for name, d in summary.destinations.items()}
+        oldest = {name: d.oldest_pending_age or 0.0 for name, d in summary.destinations.items()}
+        lines += _per_destination("dlco_bridge_outbox_depth", "gauge", depth)
+        lines += _per_destination("dlco_bridge_dead_letters", "gauge", rejected)
+        lines += _per_destination("dlco_bridge_oldest_pending_seconds", "gauge", oldest)
+        lines += [
+            "# TYPE dlco_bridge_inputs_quarantined gauge",
+            f"dlco_bridge_inputs_quarantined {summary.quarantined}",
+        ]
+        return "\n".join(lines) + "\n"
+
+    def snapshot(self) -> dict[str, Any]:
+        with self._lock:
+            return {"counts": dict(self.counts), "delivered": dict(self._delivered)}
+
+
+def _label(destination: str) -> str:
+    escaped = destination.replace("\\", "\\\\").replace('"', '\\"')
+    return f'destination="{escaped}"'
+
+
+def _per_destination(metric: str, kind: str, values: Mapping[str, float]) -> list[str]:
+    lines = [f"# TYPE {metric} {kind}"]
+    lines += [f"{metric}{{{_label(name)}}} {value:g}" for name, value in sorted(values.items())]
+    return lines
+
+
+class MeteredTransport:
+    """A transport that tells the metrics when a message was acknowledged."""
+
+    def __init__(self, inner: Transport, metrics: Metrics) -> None:
+        self.inner = inner
+        self.metrics = metrics
+
+    def deliver(self, message: OutgoingMessage) -> DeliveryReceipt:
+        receipt = self.inner.deliver(message)
+        self.metrics.note_delivered(message.destination, message.message_id)
+        return receipt
+
+    def close(self) -> None:
+        self.inner.close()
+
+
+class HealthServer:
+    """``/healthz`` and ``/metrics`` on a loopback address, in a daemon thread."""
+
+    def __init__(
+        self,
+        host: str,
+        port: int,
+        metrics: Metrics,
+        summary: Callable[[], LedgerSummary],
+        stale_after: float,
+    ) -> None:
+        handler = _handler(metrics, summary, stale_after)
+        self.server = ThreadingHTTPServer((host, port), handler)
+        self.thread = threading.Thread(target=self.server.serve_forever, name="health", daemon=True)
+
+    @property
+    def port(self) -> int:
+        return int(self.server.server_address[1])
+
+    def start(self) -> None:
+        self.thread.start()
+
+    def stop(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+
+
+def _handler(
+    metrics: Metrics, summary: Callable[[], LedgerSummary], stale_after: float
+) -> type[BaseHTTPRequestHandler]:
+    class Handler(BaseHTTPRequestHandler):
+        def do_GET(self) -> None:
+            if self.path == "/metrics":
+                self._send(200, metrics.render(summary()), "text/plain; version=0.0.4")
+            elif self.path == "/healthz":
+                ages = metrics.heartbeat_ages()
+                stale = sorted(loop for loop, age in ages.items() if age > stale_after)
+                body = "ok\n" if ages and not stale else f"stale: {', '.join(stale) or 'not started'}\n"
+                self._send(200 if ages and not stale else 503, body, "text/plain")
+            else:
+                self._send(404, "not found\n", "text/plain")
+
+        def _send(self, status: int, body: str, content_type: str) -> None:
+            data = body.encode()
+            self.send_response(status)
+            self.send_header("Content-Type", content_type)
+            self.send_header("Content-Length", str(len(data)))
+            self.end_headers()
+            self.wfile.write(data)
+
+        def log_message(self, format: str, *args: Any) -> None:
+            """Silence the default per-request stderr line."""
+
+    return Handler

@@ -1,0 +1,166 @@
+"""The watch-folder service: intake loop, delivery loop, health endpoint, graceful stop (shell).
+
+Owns: wiring :mod:`bridge.watcher` (intake), :mod:`bridge.delivery` (outbox to transports)
+and :mod:`bridge.metrics` (health, metrics) together, in two threads: intake must stay
+responsive while a receiver is slow or down, and delivery must go on while a burst of files
+arrives. A stop request (SIGTERM/SIGINT) lets the file and the message in flight finish.
+Transports and the ledger are built by the CLI and passed in.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import random
+import threading
+import time
+from collections.abc import Callable, Mapping
+from pathlib import Path
+
+from watchdog.observers import Observer
+
+from bridge.config import Settings
+from bridge.delivery import Backoff, deliver_due
+from bridge.ledger import Ledger
+from bridge.mapping import Tables
+from bridge.metrics import HealthServer, MeteredTransport, Metrics
+from bridge.transports.base import Transport
+from bridge.watcher import Intake, Readiness, is_candidate
+
+log = logging.getLogger("dlco_bridge.service")
+
+IDLE_WAIT_SECONDS = 0.25  # longest sleep of either loop when nothing wakes it
+
+
+class Service:
+    """One running bridge: call :meth:`run` (blocks until ``stop`` is set)."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        tables: Tables,
+        ledger: Ledger,
+        transports: Mapping[str, Transport],
+        clock: Callable[[], float] = time.time,
+        rand: Callable[[], float] = random.random,
+    ) -> None:
+        self.settings = settings
+        self.ledger = ledger
+        self.clock = clock
+        self.rand = rand
+        self.stop = threading.Event()
+        self.files_arrived = threading.Event()
+        self.messages_queued = threading.Event()
+        self.metrics = Metrics(clock)
+        self.transports = {name: MeteredTransport(t, self.metrics) for name, t in transports.items()}
+        self.readiness = Readiness(settings.inbox, settings.stable_seconds, clock, self.files_arrived)
+        self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set)
+        self.backoff = Backoff(settings.retry_base_seconds, settings.retry_cap_seconds)
+        self._unmovable: dict[str, tuple[int, int]] = {}
+        self.health: HealthServer | None = None
+
+    def run(self) -> None:
+        """Watch, process and deliver until :attr:`stop` is set; then finish what is in flight."""
+        for folder in (self.settings.inbox, self.settings.archive, self.settings.quarantine):
+            folder.mkdir(parents=True, exist_ok=True)
+        observer = Observer()
+        observer.schedule(self.readiness, str(self.settings.inbox), recursive=False)
+        observer.start()
+        self._start_health()
+        delivery = threading.Thread(target=self._delivery_loop, name="delivery", daemon=True)
+        delivery.start()
+        log.info("service started", extra={"event": "started", "inbox": str(self.settings.inbox)})
+        try:
+            self._intake_loop()
+        finally:
+            self.stop.set()
+            self.messages_queued.set()
+            delivery.join()
+            observer.stop()
+            observer.join(timeout=5)
+            if self.health is not None:
+                self.health.stop()
+            for transport in self.transports.values():
+                transport.close()
+            log.info("service stopped", extra={"event": "stopped"})
+
+    def request_stop(self) -> None:
+        """Ask the loops to stop after the file and message in flight (signal-safe)."""
+        self.stop.set()
+        self.files_arrived.set()
+        self.messages_queued.set()
+
+    def _start_health(self) -> None:
+        if not self.settings.metrics_port:
+            return
+        self.health = HealthServer(
+            self.settings.metrics_host,
+            self.settings.metrics_port,
+            self.metrics,
+            self.ledger.summary,
+            stale_after=max(30.0, 3 * self.settings.rescan_seconds),
+        )
+        self.health.start()
+
+    def _intake_loop(self) -> None:
+        next_scan = 0.0
+        while not self.stop.is_set():
+            self.metrics.heartbeat("intake")
+            now = self.clock()
+            if now >= next_scan or self.files_arrived.is_set():
+                self.files_arrived.clear()
+                self.scan_once()
+                next_scan = now + min(self.settings.rescan_seconds, max(self.settings.stable_seconds, 0.05))
+            self.files_arrived.wait(IDLE_WAIT_SECONDS)
+
+    def scan_once(self) -> int:
+        """Take every complete file in the inbox once; return how many were taken."""
+        names = [e.name for e in os.scandir(self.settings.inbox) if e.is_file() and is_candidate(Path(e.name))]
+        taken = 0
+        for path, complete_at in self.readiness.ready(n for n in names if not self._is_unmovable(n)):
+            if self.stop.is_set():
+                break
+            try:
+                self.intake.take(path, complete_at)
+            except OSError as exc:
+                # The file cannot be read or moved (permissions, a share gone): leave it,
+                # say so once, and look again when it changes.
+                self._remember_unmovable(path)
+                log.error("input left in place", extra={"event": "stuck", "file": path.name, "reason": str(exc)})
+            self.readiness.forget(path.name)
+            taken += 1
+        return taken
+
+    def _is_unmovable(self, name: str) -> bool:
+        seen = self._unmovable.get(name)
+        if seen is None:
+            return False
+        try:
+            stat = (self.settings.inbox / name).stat()
+        except OSError:
+            return True
+        if (stat.st_size, stat.st_mtime_ns) != seen:
+            del self._unmovable[name]
+            return False
+        return True
+
+    def _remember_unmovable(self, path: Path) -> None:
+        try:
+            stat = path.stat()
+        except OSError:
+            return
+        self._unmovable[path.name] = (stat.st_size, stat.st_mtime_ns)
+
+    def _delivery_loop(self) -> None:
+        while not self.stop.is_set():
+            self.metrics.heartbeat("delivery")
+            self.messages_queued.clear()
+            deliver_due(
+                self.ledger,
+                self.transports,
+                self.clock,
+                self.rand,
+                backoff=self.backoff,
+                should_stop=self.stop.is_set,
+            )
+            self.messages_queued.wait(IDLE_WAIT_SECONDS)

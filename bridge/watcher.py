@@ -1,0 +1,299 @@
+"""Intake of the watch-folder service: which inbox files are complete, and what becomes of each.
+
+Owns:
+- :class:`Readiness` -- a file is taken only when complete: closed after writing or renamed
+  in (inotify events through watchdog), or, for what events miss (network shares, a missed
+  event), size and modification time unchanged for ``stable_seconds`` on a periodic rescan;
+- :class:`Intake` -- one complete file: read, hash, process through the pure pipeline, enqueue
+  its messages in the ledger (committed first), then archive it; or quarantine it with
+  ``<name>.error.json`` saying why in the same words as ``check``. The same content dropped
+  again is archived as a duplicate and sends nothing; new content for a test id already sent
+  goes out as a correction.
+
+Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
+content the ledger knows only archives it, so a kill at any point loses nothing and sends
+nothing twice. Must not deliver (that is ``bridge.delivery``) or parse settings.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import logging
+import threading
+import time
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Literal
+
+import orjson
+from watchdog.events import (
+    FileClosedEvent,
+    FileCreatedEvent,
+    FileModifiedEvent,
+    FileMovedEvent,
+    FileSystemEvent,
+    FileSystemEventHandler,
+)
+
+from bridge.config import Destination, Settings
+from bridge.emit.observations import EmitContext
+from bridge.emit.outputs import gate, payloads
+from bridge.errors import InputError, UnreadableInput
+from bridge.files import free_name, move_durably, write_atomically
+from bridge.ledger import Ledger, NewInput, NewMessage
+from bridge.mapping import Tables
+from bridge.metrics import Metrics
+from bridge.model import Outcome
+from bridge.pipeline import Limits, process
+
+log = logging.getLogger("dlco_bridge.intake")
+
+# Names a writer uses while a file is still being written; never taken.
+_IN_PROGRESS_SUFFIXES = (".tmp", ".part", ".partial", ".crdownload", ".filepart")
+
+Result = Literal["processed", "correction", "duplicate", "quarantined", "vanished"]
+
+
+def is_candidate(path: Path) -> bool:
+    """A file the intake may take (not hidden, not a temporary name)."""
+    name = path.name
+    return not name.startswith(".") and not name.endswith(_IN_PROGRESS_SUFFIXES)
+
+
+class Readiness(FileSystemEventHandler):
+    """Tracks inbox files until they are complete; also the watchdog event handler."""
+
+    def __init__(self, inbox: Path, stable_seconds: float, clock: Callable[[], float], wake: threading.Event):
+        self.inbox = inbox
+        self.stable_seconds = stable_seconds
+        self.clock = clock
+        self.wake = wake
+        self._lock = threading.Lock()
+        self._closed: dict[str, float] = {}  # name -> when a close/move-in event said complete
+        self._watch: dict[str, tuple[int, int, float]] = {}  # name -> (size, mtime_ns, unchanged since)
+
+    # -- watchdog callbacks (observer thread) --
+    def on_closed(self, event: FileSystemEvent) -> None:
+        if isinstance(event, FileClosedEvent):
+            self._complete(Path(str(event.src_path)))
+
+    def on_moved(self, event: FileSystemEvent) -> None:
+        if isinstance(event, FileMovedEvent):
+            self._complete(Path(str(event.dest_path)))
+
+    def on_created(self, event: FileSystemEvent) -> None:
+        if isinstance(event, FileCreatedEvent):
+            self.wake.set()
+
+    def on_modified(self, event: FileSystemEvent) -> None:
+        if isinstance(event, FileModifiedEvent):
+            with self._lock:
+                self._closed.pop(Path(str(event.src_path)).name, None)
+
+    def _complete(self, path: Path) -> None:
+        if path.parent == self.inbox and is_candidate(path):
+            with self._lock:
+                self._closed[path.name] = self.clock()
+            self.wake.set()
+
+    # -- intake thread --
+    def ready(self, names: Iterable[str]) -> list[tuple[Path, float]]:
+        """The files of ``names`` (present in the inbox) that are complete, with since when."""
+        now = self.clock()
+        done: list[tuple[Path, float]] = []
+        for name in sorted(names):
+            path = self.inbox / name
+            try:
+                stat = path.stat()
+            except FileNotFoundError:
+                self.forget(name)
+                continue
+            with self._lock:
+                closed_at = self._closed.get(name)
+                seen = self._watch.get(name)
+                if seen is None or seen[:2] != (stat.st_size, stat.st_mtime_ns):
+                    self._watch[name] = (stat.st_size, stat.st_mtime_ns, now)
+                    stable = False
+                else:
+                    stable = now - seen[2] >= self.stable_seconds
+            if closed_at is not None:
+                done.append((path, closed_at))
+            elif stable:
+                done.append((path, now))
+        return done
+
+    def forget(self, name: str) -> None:
+        with self._lock:
+            self._closed.pop(name, None)
+            self._watch.pop(name, None)
+
+
+@dataclass(frozen=True, slots=True)
+class IntakeResult:
+    path: Path
+    result: Result
+    detail: str = ""
+
+
+class Intake:
+    """Turns one complete inbox file into ledger rows plus an archived (or quarantined) file."""
+
+    def __init__(
+        self,
+        settings: Settings,
+        tables: Tables,
+        ledger: Ledger,
+        metrics: Metrics,
+        clock: Callable[[], float] = time.time,
+        on_enqueued: Callable[[], None] = lambda: None,
+    ) -> None:
+        self.settings = settings
+        self.tables = tables
+        self.ledger = ledger
+        self.metrics = metrics
+        self.clock = clock
+        self.on_enqueued = on_enqueued
+        self.limits = Limits(max_input_bytes=settings.max_input_bytes)
+
+    def take(self, path: Path, complete_at: float) -> IntakeResult:
+        """Process one file completely; never raises for bad input."""
+        try:
+            data = self._read(path)
+        except FileNotFoundError:
+            log.info("input vanished before it was read", extra={"event": "vanished", "file": path.name})
+            return IntakeResult(path, "vanished")
+        except InputError as error:
+            return self._quarantine(path, _file_sha256(path), error)
+        self.metrics.count("files_seen")
+        sha = hashlib.sha256(data).hexdigest()
+        known = self.ledger.seen(sha)
+        if known is not None and known.state != "quarantined":
+            return self._duplicate(path, sha)
+        try:
+            outcome = process(data, path.name, self.tables, self.limits)
+            gate(outcome, self.settings.blocking)
+        except InputError as error:
+            return self._quarantine(path, sha, error)
+        return self._enqueue(path, outcome, complete_at)
+
+    def _read(self, path: Path) -> bytes:
+        size = path.stat().st_size
+        if size > self.limits.max_input_bytes:
+            raise UnreadableInput("(file)", f"at most {self.limits.max_input_bytes} bytes, got {size}", path.name)
+        return path.read_bytes()
+
+    def _enqueue(self, path: Path, outcome: Outcome, complete_at: float) -> IntakeResult:
+        session = outcome.session
+        previous = self.ledger.last_for_test(session.test_id)
+        correction = previous is not None and previous.sha256 != outcome.source_sha256
+        messages = [
+            message
+            for destination in self.settings.destinations
+            for message in self._messages(outcome, destination, correction)
+        ]
+        state: Literal["correction", "processed"] = "correction" if correction else "processed"
+        self.ledger.record_input_and_enqueue(
+            NewInput(outcome.source_sha256, path.name, session.test_id, state), messages
+        )
+        for message in messages:
+            self.metrics.note_enqueued(message.message_id, complete_at)
+        self.on_enqueued()
+        self._archive(path, "", outcome.source_sha256)
+        self.metrics.count("files_processed")
+        if correction:
+            self.metrics.count("corrections")
+        extra: dict[str, object] = {"event": state, "file": path.name, "sha256": outcome.source_sha256[:12]}
+        extra |= {"messages": len(messages), "findings": len(outcome.findings), **self._patient(outcome)}
+        log.info("input processed", extra=extra)
+        return IntakeResult(path, state)
+
+    def _messages(self, outcome: Outcome, destination: Destination, correction: bool) -> list[NewMessage]:
+        emit = self.settings.emit
+        context = EmitContext(
+            now=datetime.fromtimestamp(self.clock(), UTC).replace(microsecond=0),
+            units=destination.units,
+            sending_application=emit.sending_application,
+            sending_facility=emit.sending_facility,
+            receiving_application=emit.receiving_application,
+            receiving_facility=emit.receiving_facility,
+            local_code_system=emit.local_code_system,
+            identifier_system=emit.identifier_system,
+            patient_reference=emit.patient_reference,
+            correction=correction,
+            processing_id=emit.processing_id,
+        )
+        patient = outcome.session.patient
+        patient_key = hashlib.sha256(f"{patient.id_system}|{patient.id}".encode()).hexdigest()[:32]
+        return [
+            NewMessage(
+                destination=destination.name,
+                message_id=_message_id(payload.message_id, payload.kind, outcome, correction),
+                test_id=outcome.session.test_id,
+                patient_key=patient_key,
+                payload=payload.data,
+                content_type=payload.content_type,
+                # the input's hash, not the payload's: the payload carries a send-time stamp
+                content_sha256=outcome.source_sha256,
+            )
+            for payload in payloads(outcome, self.tables, context, (destination.payload,))
+        ]
+
+    def _patient(self, outcome: Outcome) -> dict[str, str]:
+        if not self.settings.log_patient_data:
+            return {}
+        return {"patient_id": outcome.session.patient.id}
+
+    def _duplicate(self, path: Path, sha: str) -> IntakeResult:
+        self.ledger.record_duplicate(sha, path.name)
+        self._archive(path, "duplicates", sha)
+        self.metrics.count("files_duplicate")
+        log.info("same content again: archived, nothing sent",
+                 extra={"event": "duplicate", "file": path.name, "sha256": sha[:12]})  # fmt: skip
+        return IntakeResult(path, "duplicate")
+
+    def _quarantine(self, path: Path, sha: str, error: InputError) -> IntakeResult:
+        error = error if error.source else error.with_source(path.name)
+        reason = error.line()
+        target = free_name(self.settings.quarantine, path.name, sha[:12])
+        report = {
+            "file": path.name,
+            "sha256": sha,
+            "reason": reason,
+            "error": type(error).__name__,
+            "field": error.field,
+            "expected": error.expected,
+            "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(),
+        }
+        write_atomically(
+            target.with_name(target.name + ".error.json"), orjson.dumps(report, option=orjson.OPT_INDENT_2)
+        )
+        self.ledger.record_quarantine(sha, path.name, reason)
+        with contextlib.suppress(FileNotFoundError):  # already gone: the error report stays
+            move_durably(path, target)
+        self.metrics.count("files_quarantined")
+        log.warning("input quarantined", extra={"event": "quarantined", "file": path.name, "reason": reason})
+        return IntakeResult(path, "quarantined", reason)
+
+    def _archive(self, path: Path, subfolder: str, sha: str) -> None:
+        """Into ``archive/YYYY-MM-DD/`` (UTC day); a name already there gets the hash appended."""
+        day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y-%m-%d")
+        folder = self.settings.archive / day / subfolder if subfolder else self.settings.archive / day
+        move_durably(path, free_name(folder, path.name, sha[:12]))
+
+
+def _file_sha256(path: Path) -> str:
+    try:
+        with path.open("rb") as stream:
+            return hashlib.file_digest(stream, "sha256").hexdigest()
+    except OSError:
+        return hashlib.sha256(b"").hexdigest()
+
+
+def _message_id(stem: str, kind: str, outcome: Outcome, correction: bool) -> str:
+    """Outbox id: HL7 uses MSH-10 (content-derived); FHIR uses the test id plus the content hash."""
+    if kind == "hl7":
+        return stem
+    return f"{stem}.{outcome.source_sha256[:12]}" + (".c" if correction else "")
