@@ -164,9 +164,7 @@ def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iter
         if reported is None or computed is None:
             continue
         ratio = reported.value / computed.value
-        mislabel = _near_factor(
-            ratio, tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance
-        )
+        mislabel = _near_factor(ratio, tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance)
         if _rel(reported.value, computed.value) > RESULT_TOLERANCE and not (name == "dlco" and mislabel):
             yield _finding(
                 f"RESULT_{name.upper()}_MISMATCH",
@@ -241,8 +239,7 @@ def check_haemoglobin(session: Session, derived: Derived, tables: Tables) -> Ite
             "HB_ADJUSTMENT_NOT_COMPUTED",
             Severity.INFO,
             "patient.sex",
-            f"sex is {session.patient.sex.value!r}: the haemoglobin adjustment depends on it "
-            "and was not recomputed.",
+            f"sex is {session.patient.sex.value!r}: the haemoglobin adjustment depends on it and was not recomputed.",
         )
         return
     measured = session.results.dlco
@@ -317,8 +314,7 @@ def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterato
                 "MANOEUVRE_NOT_ACCEPTABLE",
                 Severity.WARNING,
                 f"manoeuvres[{assessment.index}]",
-                f"manoeuvre {assessment.index + 1} is grade F: "
-                + "; ".join(assessment.grade_reasons or ("no DLCO",)),
+                f"manoeuvre {assessment.index + 1} is grade F: " + "; ".join(assessment.grade_reasons or ("no DLCO",)),
             )
     grade = derived.session_grade
     if grade == "F":

@@ -48,9 +48,7 @@ def unescape(value: str, encoding: str = "^~\\&") -> str:
     component, repetition = encoding[0:1] or "^", encoding[1:2] or "~"
     subcomponent = encoding[3:4] or "&"
     meaning = {"F": "|", "S": component, "T": subcomponent, "R": repetition, "E": escape_char, ".br": "\n"}
-    pattern = re.compile(
-        re.escape(escape_char) + r"([^" + re.escape(escape_char) + r"]*)" + re.escape(escape_char)
-    )
+    pattern = re.compile(re.escape(escape_char) + r"([^" + re.escape(escape_char) + r"]*)" + re.escape(escape_char))
 
     def replace(match: re.Match[str]) -> str:
         code = match.group(1)

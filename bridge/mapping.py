@@ -72,9 +72,7 @@ class CodeTable:
         systems = dict(data.get("systems", {}))
         if set(systems) != {"loinc", "local"}:
             raise MappingError(name, "systems", "exactly the keys loinc and local")
-        codes = {
-            key: _code(name, f"codes.{key}", entry, systems) for key, entry in data.get("codes", {}).items()
-        }
+        codes = {key: _code(name, f"codes.{key}", entry, systems) for key, entry in data.get("codes", {}).items()}
         return cls(codes, _code(name, "panel", data.get("panel", {}), systems), systems)
 
 

@@ -46,9 +46,7 @@ class GradeTable:
                 tuple(repeat["acceptable_grades"]),
             )
         except (tomllib.TOMLDecodeError, KeyError, TypeError, ValueError) as exc:
-            raise MappingError(
-                name, "grade table", f"grades and repeatability as documented ({exc})"
-            ) from exc
+            raise MappingError(name, "grade table", f"grades and repeatability as documented ({exc})") from exc
 
 
 def _rule(entry: Mapping[str, object]) -> GradeRule:
@@ -84,9 +82,7 @@ class Grade:
     reasons: tuple[str, ...]
 
 
-def grade_manoeuvres(
-    manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float, table: GradeTable
-) -> tuple[Grade, ...]:
+def grade_manoeuvres(manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float, table: GradeTable) -> tuple[Grade, ...]:
     """Grade every manoeuvre of a session; VI/VC is against the session's largest VC."""
     first = [_grade(m, largest_vc_l, table, close_va=False) for m in manoeuvres]
     acceptable = [i for i, g in enumerate(first) if g.grade in table.acceptable_grades]

@@ -74,8 +74,7 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
         f"{outcome.source}  test {s.test_id}",
         f"  patient {p.id} ({p.id_system})  {p.sex.value}  born {p.birth_date}  "
         f"age {d.age_years:.1f} y  height {format_value(p.height)} cm",
-        f"  performed {s.performed_at.isoformat()}  {s.lab.name}"
-        + (f" / {s.lab.site}" if s.lab.site else ""),
+        f"  performed {s.performed_at.isoformat()}  {s.lab.name}" + (f" / {s.lab.site}" if s.lab.site else ""),
         f"  results ({units} units)",
     ]
     for name, label in _RESULT_LABELS:

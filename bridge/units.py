@@ -112,9 +112,7 @@ class UnitCatalogue:
         return DISPLAY_UNITS[system].get(dimension, self.dimensions[dimension])
 
 
-def _unit_def(
-    name: str, code: str, entry: Mapping[str, object], dimensions: Mapping[str, str], k: float
-) -> UnitDef:
+def _unit_def(name: str, code: str, entry: Mapping[str, object], dimensions: Mapping[str, str], k: float) -> UnitDef:
     dimension = entry.get("dimension")
     if not isinstance(dimension, str) or dimension not in dimensions:
         raise MappingError(name, f"units.{code}.dimension", f"one of {sorted(dimensions)}")

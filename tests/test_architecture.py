@@ -85,13 +85,7 @@ def test_core_module_calls_no_io(path: Path):
     for node in ast.walk(tree):
         if isinstance(node, ast.Call):
             func = node.func
-            name = (
-                func.id
-                if isinstance(func, ast.Name)
-                else func.attr
-                if isinstance(func, ast.Attribute)
-                else ""
-            )
+            name = func.id if isinstance(func, ast.Name) else func.attr if isinstance(func, ast.Attribute) else ""
             if name in BANNED_CALLS:
                 calls.add(name)
 

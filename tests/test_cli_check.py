@@ -43,9 +43,7 @@ def test_check_units_si_shows_si(capsys):
 
 def test_check_json_is_machine_readable(capsys):
     """--json prints one JSON document with the caution, findings and errors."""
-    code = main(
-        ["check", "--json", str(SAMPLES / "07-unit-mislabel.json"), str(SAMPLES / "08-malformed.json")]
-    )
+    code = main(["check", "--json", str(SAMPLES / "07-unit-mislabel.json"), str(SAMPLES / "08-malformed.json")])
     document = json.loads(capsys.readouterr().out)
 
     assert code == 2

@@ -71,9 +71,7 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext) -> Resourc
     content = build_content(outcome, tables, context.units)
     entries: list[Resource] = []
     subject = _subject(outcome, context, entries)
-    full_urls = {
-        item.key: _full_url(context.identifier_system, _id(outcome, item.key)) for item in content.items
-    }
+    full_urls = {item.key: _full_url(context.identifier_system, _id(outcome, item.key)) for item in content.items}
     for item in content.items:
         resource = _observation(outcome, item, tables, context, subject, full_urls)
         entries.append(_entry(full_urls[item.key], resource, "Observation", context))
@@ -274,9 +272,7 @@ def _provenance_entry(outcome: Outcome, context: EmitContext, targets: list[str]
         "recorded": _instant(context.now),
         "agent": [
             {
-                "type": {
-                    "coding": [{"system": PARTICIPANT_TYPE, "code": "assembler", "display": "Assembler"}]
-                },
+                "type": {"coding": [{"system": PARTICIPANT_TYPE, "code": "assembler", "display": "Assembler"}]},
                 "who": {"type": "Device", "display": BRIDGE_NAME},
             }
         ],

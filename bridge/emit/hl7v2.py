@@ -152,9 +152,7 @@ def _msh(outcome: Outcome, context: EmitContext) -> str:
 
 def _pid(patient: Patient) -> str:
     identifier = _identifier("patient.id", patient.id)
-    name = _components(
-        _name_part("patient.family", patient.family), _name_part("patient.given", patient.given)
-    )
+    name = _components(_name_part("patient.family", patient.family), _name_part("patient.given", patient.given))
     if not name:
         name = UNNAMED  # PID-5 is required; never "" (that means "delete" to many receivers)
     return _segment(
@@ -248,9 +246,7 @@ def _code_text(text: str, table: str, where: str) -> str:
 def _identifier(field: str, value: str) -> str:
     escaped = escape(value)
     if len(escaped) > ST_LENGTH:
-        raise InvalidField(
-            field, f"at most {ST_LENGTH} characters once HL7-escaped (identifiers are never cut)"
-        )
+        raise InvalidField(field, f"at most {ST_LENGTH} characters once HL7-escaped (identifiers are never cut)")
     return escaped
 
 

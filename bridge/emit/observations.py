@@ -111,9 +111,7 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             flag = "L" if shown.value < low_shown.value else "N"
         extra = tuple(by_path.get(path, ())) if path else ()
         items.append(
-            ResultItem(
-                key, tables.codes.codes[key], shown, low_shown, flag, derived_from, computed, notes + extra
-            )
+            ResultItem(key, tables.codes.codes[key], shown, low_shown, flag, derived_from, computed, notes + extra)
         )
 
     computed_note = ("computed by dlco-bridge from the reported values",)
@@ -154,9 +152,7 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         derived_from=("dlco", "dlco_predicted"),
         computed=True,
     )
-    add(
-        "kco_percent_predicted", d.kco_percent_predicted, derived_from=("kco", "kco_predicted"), computed=True
-    )
+    add("kco_percent_predicted", d.kco_percent_predicted, derived_from=("kco", "kco_predicted"), computed=True)
     add("va_percent_predicted", d.va_percent_predicted, derived_from=("va", "va_predicted"), computed=True)
     add("tlc", r.tlc)
     add("hemoglobin", c.hemoglobin, path="conditions.hemoglobin")
@@ -173,9 +169,7 @@ def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
     kept = tuple(key for key in item.derived_from if key in present)
     if kept == item.derived_from:
         return item
-    return ResultItem(
-        item.key, item.code, item.quantity, item.low, item.flag, kept, item.computed_here, item.notes
-    )
+    return ResultItem(item.key, item.code, item.quantity, item.low, item.flag, kept, item.computed_here, item.notes)
 
 
 def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:

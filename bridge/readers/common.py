@@ -16,9 +16,7 @@ def decode_text(data: bytes, source: str) -> str:
     try:
         return data.decode("utf-8-sig")
     except UnicodeDecodeError as exc:
-        raise UnreadableInput(
-            f"byte {exc.start}", "UTF-8 text (the file is in another encoding)", source
-        ) from exc
+        raise UnreadableInput(f"byte {exc.start}", "UTF-8 text (the file is in another encoding)", source) from exc
 
 
 def field_path(loc: tuple[int | str, ...]) -> str:

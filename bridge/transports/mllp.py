@@ -142,9 +142,7 @@ def parse_ack(data: bytes) -> Ack | None:
     code, answered = _field(fields, 1), _field(fields, 2)
     if not code:
         return None
-    errors = [
-        _err_text(_fields(s, separator), component) for s in segments if s.startswith("ERR" + separator)
-    ]
+    errors = [_err_text(_fields(s, separator), component) for s in segments if s.startswith("ERR" + separator)]
     details = [t for t in (_field(fields, 3), *errors) if t]
     return Ack(code, answered, "; ".join(details))
 

@@ -84,9 +84,7 @@ def test_hb_adjusted_without_hb(tables: Tables):
 
 def test_hb_adjustment_mismatch(tables: Tables):
     """An Hb-adjusted DLCO matching neither direction is a mismatch."""
-    outcome = _variant(
-        "02-anaemic-patient", lambda d: d["results"]["dlco_hb_adjusted"].update(value=25.0), tables
-    )
+    outcome = _variant("02-anaemic-patient", lambda d: d["results"]["dlco_hb_adjusted"].update(value=25.0), tables)
 
     assert "HB_ADJUSTMENT_MISMATCH" in _codes(outcome)
 
@@ -145,9 +143,7 @@ def test_device_dlco_disagreeing_with_gas_data(tables: Tables):
         "06-three-manoeuvres", lambda d: d["manoeuvres"][0]["reported"]["dlco"].update(value=11.5), tables
     )
 
-    assert [f.path for f in outcome.findings if f.code == "MANOEUVRE_DLCO_MISMATCH"] == [
-        "manoeuvres[0].reported.dlco"
-    ]
+    assert [f.path for f in outcome.findings if f.code == "MANOEUVRE_DLCO_MISMATCH"] == ["manoeuvres[0].reported.dlco"]
 
 
 def test_out_of_range_value(tables: Tables):

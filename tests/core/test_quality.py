@@ -8,9 +8,7 @@ from bridge.resources import load_tables
 TABLE = load_tables().grades
 
 
-def _facts(
-    vi: float, bht: float = 10.0, sample: float | None = 3.0, va: float | None = None
-) -> ManoeuvreFacts:
+def _facts(vi: float, bht: float = 10.0, sample: float | None = 3.0, va: float | None = None) -> ManoeuvreFacts:
     return ManoeuvreFacts(inspired_volume_l=vi, breath_hold_s=bht, sample_collection_s=sample, va_l=va)
 
 

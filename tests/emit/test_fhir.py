@@ -188,8 +188,7 @@ def test_every_bundle_validates_with_fhir_resources_r4b(fhir_bundles):
     """fhir.resources (R4B pydantic models, independent of our code) accepts every Bundle."""
     # source: fhir.resources R4B models generated from the HL7 FHIR StructureDefinitions
     kinds = [
-        [entry.resource.get_resource_type() for entry in Bundle.model_validate(b).entry or []]
-        for b in fhir_bundles
+        [entry.resource.get_resource_type() for entry in Bundle.model_validate(b).entry or []] for b in fhir_bundles
     ]
 
     assert all(kind[-1] == "Provenance" and "DiagnosticReport" in kind for kind in kinds)
@@ -214,9 +213,7 @@ def test_ucum_codes_parse_with_an_independent_parser(fhir_bundles):
 
 def _codes_by_key(bundle: dict[str, Any]) -> dict[str, str]:
     observations = evaluate(bundle, "Bundle.entry.resource.ofType(Observation)", [])
-    return {
-        o["identifier"][0]["value"].rsplit(".", 1)[1]: o["code"]["coding"][0]["code"] for o in observations
-    }
+    return {o["identifier"][0]["value"].rsplit(".", 1)[1]: o["code"]["coding"][0]["code"] for o in observations}
 
 
 def test_every_observation_has_a_loinc_or_local_coding(fhir_bundles):
@@ -314,9 +311,7 @@ def test_same_input_gives_identical_bytes(fhir_outcomes, fhir_tables):
     """Emitting twice gives byte-identical Bundles."""
     outcome = fhir_outcomes["06-three-manoeuvres"]
 
-    assert bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT) == bundle_json(
-        outcome, fhir_tables, GOLDEN_CONTEXT
-    )
+    assert bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT) == bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT)
 
 
 def test_full_urls_are_uuid5_of_identifier(fhir_outcomes, fhir_tables):
@@ -410,8 +405,7 @@ def test_patient_conditional_create(fhir_outcomes, fhir_tables):
 
     assert entry["resource"]["resourceType"] == "Patient"
     assert (
-        (entry["request"]["ifNoneExist"])
-        == "identifier=https://fenwick-hollow.example/fictional-patient-id|FICT-1001"
+        (entry["request"]["ifNoneExist"]) == "identifier=https://fenwick-hollow.example/fictional-patient-id|FICT-1001"
     )
     assert {entry["fullUrl"]} == subjects
     assert (entry["resource"]["gender"], entry["resource"]["birthDate"]) == ("male", "1981-01-15")

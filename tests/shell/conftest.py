@@ -32,8 +32,7 @@ LOOPBACK = "127.0.0.1"
 def oru(control_id: str, patient: str = "TEST-0001") -> bytes:
     """A small, invented ORU^R01 in ER7 with the given MSH-10."""
     segments = (
-        "MSH|^~\\&|DLCO-BRIDGE|TESTLAB|RECEIVER|TESTWARD|20240102030405||"
-        f"ORU^R01^ORU_R01|{control_id}|P|2.5.1",
+        f"MSH|^~\\&|DLCO-BRIDGE|TESTLAB|RECEIVER|TESTWARD|20240102030405||ORU^R01^ORU_R01|{control_id}|P|2.5.1",
         f"PID|1||{patient}^^^TESTLAB^MR||Testpatient^Alpha||19700101|F",
         "OBR|1||T-1|19911-7^DLCO^LN",
         "OBX|1|NM|19911-7^DLCO^LN||21.4|mL/min/mm[Hg]^^UCUM|||||F",
@@ -122,9 +121,7 @@ class MllpReceiver:
         return asyncio.run_coroutine_threadsafe(coro, self._loop).result(timeout=2)
 
     async def _listen(self) -> asyncio.Server:
-        server: asyncio.Server = await start_hl7_server(
-            self._handle, LOOPBACK, self.port, ssl=self.ssl_context
-        )
+        server: asyncio.Server = await start_hl7_server(self._handle, LOOPBACK, self.port, ssl=self.ssl_context)
         return server
 
     async def _close(self) -> None:

@@ -192,9 +192,7 @@ def test_ae_dead_letters_with_receiver_text_and_next_goes(
     )
 
 
-def test_receiver_down_then_up_delivers_in_order(
-    ledger: Ledger, clock: Clock, mllp_receiver: MllpReceiver
-) -> None:
+def test_receiver_down_then_up_delivers_in_order(ledger: Ledger, clock: Clock, mllp_receiver: MllpReceiver) -> None:
     """Nothing is lost while the receiver is down; afterwards all arrive in order."""
     enqueue(ledger, hl7("C-1"), hl7("C-2"), hl7("C-3"))
     transport = mllp(mllp_receiver)
@@ -211,9 +209,7 @@ def test_receiver_down_then_up_delivers_in_order(
     assert 3 == ledger.summary().delivered
 
 
-def test_slow_receiver_is_retried_then_delivered(
-    ledger: Ledger, clock: Clock, mllp_receiver: MllpReceiver
-) -> None:
+def test_slow_receiver_is_retried_then_delivered(ledger: Ledger, clock: Clock, mllp_receiver: MllpReceiver) -> None:
     """A timed-out message is retried with the same control id and then delivered."""
     (row_id,) = enqueue(ledger, hl7("C-1"))
     transport = mllp(mllp_receiver, read_timeout=0.2)

@@ -139,9 +139,7 @@ def test_enqueue_is_all_or_nothing(ledger: Ledger) -> None:
     with pytest.raises(LedgerError):
         enqueue(ledger, "a" * 64, message("M1"), broken)
     with raw(ledger.path) as conn:
-        counts = [
-            conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0] for table in ("inputs", "outbox")
-        ]
+        counts = [conn.execute(f"SELECT count(*) FROM {table}").fetchone()[0] for table in ("inputs", "outbox")]
 
     assert [0, 0] == counts
     assert None is ledger.seen("a" * 64)
