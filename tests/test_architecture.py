@@ -20,6 +20,9 @@ CORE = [
     "checks.py",
     "pipeline.py",
     "render.py",
+    "schema.py",
+    "fhirshow.py",
+    "hl7show.py",
     "readers",
     "emit",
 ]
