@@ -11,13 +11,15 @@ Owns:
   goes out as a correction.
 
 Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
-content the ledger knows only archives it, so a kill at any point loses nothing and sends
-nothing twice. Must not deliver (that is ``bridge.delivery``) or parse settings.
+content the ledger knows only archives it (into the archive proper when it is the file a crash
+kept from being moved, into ``duplicates/`` when it was dropped again), so a kill at any point
+loses nothing and enqueues nothing twice. Must not deliver (that is ``bridge.delivery``) or parse settings.
 """
 
 from __future__ import annotations
 
 import contextlib
+import glob
 import hashlib
 import logging
 import threading
@@ -43,7 +45,7 @@ from bridge.emit.observations import EmitContext
 from bridge.emit.outputs import gate, payloads
 from bridge.errors import InputError, UnreadableInput
 from bridge.files import free_name, move_durably, write_atomically
-from bridge.ledger import Ledger, NewInput, NewMessage
+from bridge.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.mapping import Tables
 from bridge.metrics import Metrics
 from bridge.model import Outcome
@@ -171,6 +173,8 @@ class Intake:
         sha = hashlib.sha256(data).hexdigest()
         known = self.ledger.seen(sha)
         if known is not None and known.state != "quarantined":
+            if self._interrupted(path, known):
+                return self._recover(path, known)
             return self._duplicate(path, sha)
         try:
             outcome = process(data, path.name, self.tables, self.limits)
@@ -245,6 +249,31 @@ class Intake:
         if not self.settings.log_patient_data:
             return {}
         return {"patient_id": outcome.session.patient.id}
+
+    def _interrupted(self, path: Path, known: InputRecord) -> bool:
+        """Whether ``path`` is the very file whose archiving a crash cut short.
+
+        That file was recorded under its own name, and no copy of it reached the archive
+        folder of the day it was recorded (or the next day, for a commit just before
+        midnight). A file the operator dropped again has its first copy there.
+        """
+        if known.source != path.name:
+            return False
+        for day in (known.first_seen, known.first_seen + 86_400):
+            folder = self.settings.archive / datetime.fromtimestamp(day, UTC).strftime("%Y-%m-%d")
+            for candidate in folder.glob(glob.escape(path.name) + "*"):
+                if candidate.is_file() and _file_sha256(candidate) == known.sha256:
+                    return False
+        return True
+
+    def _recover(self, path: Path, known: InputRecord) -> IntakeResult:
+        """Finish what a crash interrupted: the messages are queued already; archive the file."""
+        self._archive(path, "", known.sha256)
+        self.on_enqueued()
+        self.metrics.count("files_processed")
+        log.info("input archived after a restart; its messages were queued before",
+                 extra={"event": "recovered", "file": path.name, "sha256": known.sha256[:12]})  # fmt: skip
+        return IntakeResult(path, "processed", "recovered")
 
     def _duplicate(self, path: Path, sha: str) -> IntakeResult:
         self.ledger.record_duplicate(sha, path.name)
