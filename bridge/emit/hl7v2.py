@@ -71,11 +71,17 @@ UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the 
 _ESCAPES = str.maketrans({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"})
 _LINE_BREAK = re.compile(r"\r\n|\r|\n")
 _CONTROL = re.compile(r"[\x00-\x1f\x7f]")
+_SPECIAL = re.compile(r"[\x00-\x1f\x7f\\|^&~]")  # any character escape() changes
 
 
-def to_oru(outcome: Outcome, tables: Tables, context: EmitContext) -> str:
-    """The ORU^R01 message for one outcome, segments separated by carriage returns."""
-    content = build_content(outcome, tables, context.units)
+def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> str:
+    """The ORU^R01 message for one outcome, segments separated by carriage returns.
+
+    ``content`` is :func:`build_content` of the outcome in ``context.units``; pass it when it
+    is already at hand (another emitter built it), otherwise it is built here.
+    """
+    if content is None:
+        content = build_content(outcome, tables, context.units)
     status = "C" if context.correction else "F"
     segments = [
         _msh(outcome, context),
@@ -97,11 +103,15 @@ def control_id(outcome: Outcome, context: EmitContext) -> str:
 
 def escape(text: str) -> str:
     """Data text for any field except FT: delimiters escaped, line breaks as spaces."""
+    if not _SPECIAL.search(text):
+        return text  # the common case: nothing to escape or replace
     return _CONTROL.sub(" ", _LINE_BREAK.sub(" ", text)).translate(_ESCAPES)
 
 
 def escape_formatted(text: str) -> str:
     """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``."""
+    if not _SPECIAL.search(text):
+        return text
     lines = _LINE_BREAK.split(text)
     return "\\.br\\".join(_CONTROL.sub(" ", line).translate(_ESCAPES) for line in lines)
 

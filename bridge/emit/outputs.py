@@ -12,9 +12,9 @@ from collections.abc import Collection, Sequence
 from dataclasses import dataclass
 from typing import Literal
 
-from bridge.emit.fhir import bundle_json
+from bridge.emit.fhir import bundle_json, require_aware
 from bridge.emit.hl7v2 import control_id, to_oru
-from bridge.emit.observations import EmitContext
+from bridge.emit.observations import EmitContext, ReportContent, build_content
 from bridge.errors import BlockedByFinding
 from bridge.mapping import Tables
 from bridge.model import Outcome
@@ -54,13 +54,22 @@ def gate(outcome: Outcome, blocking: Collection[str]) -> None:
 def payloads(
     outcome: Outcome, tables: Tables, context: EmitContext, kinds: Sequence[OutputKind]
 ) -> tuple[Payload, ...]:
-    """Every requested payload of one outcome."""
+    """Every requested payload of one outcome.
+
+    What is emitted (:func:`build_content`) is built once and rendered by each emitter.
+    """
     built = []
+    content: ReportContent | None = None
     for kind in kinds:
         if kind == "fhir":
+            require_aware(context.now)  # as bundle_json: the time is checked before anything is built
+            if content is None:
+                content = build_content(outcome, tables, context.units)
             stem = f"{file_stem(outcome.session.test_id)}"
-            built.append(Payload("fhir", stem, FHIR_JSON, bundle_json(outcome, tables, context)))
+            built.append(Payload("fhir", stem, FHIR_JSON, bundle_json(outcome, tables, context, content)))
         else:
-            er7 = to_oru(outcome, tables, context)
+            if content is None:
+                content = build_content(outcome, tables, context.units)
+            er7 = to_oru(outcome, tables, context, content)
             built.append(Payload("hl7", control_id(outcome, context), HL7_V2_ER7, er7.encode("utf-8")))
     return tuple(built)
