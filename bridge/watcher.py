@@ -303,7 +303,12 @@ class Intake:
         with contextlib.suppress(FileNotFoundError):  # already gone: the error report stays
             move_durably(path, target)
         self.metrics.count("files_quarantined")
-        log.warning("input quarantined", extra={"event": "quarantined", "file": path.name, "reason": reason})
+        # The reason may quote the input's values (a malformed patient id, a birth date): it
+        # goes to the log only when patient data may be logged; the report always has it.
+        said = reason if self.settings.log_patient_data else f"{type(error).__name__} at {error.field}"
+        log.warning("input quarantined",
+                    extra={"event": "quarantined", "file": path.name, "reason": said,
+                           "report": target.name + ".error.json"})  # fmt: skip
         return IntakeResult(path, "quarantined", reason)
 
     def _archive(self, path: Path, subfolder: str, sha: str) -> None:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import threading
 import time
@@ -10,7 +11,6 @@ from typing import TYPE_CHECKING
 
 from bridge.ledger import Ledger
 from tests.service.conftest import (
-    MALFORMED,
     drop,
     file_destination,
     free_port,
@@ -106,14 +106,17 @@ def test_logs_carry_no_patient_identifiers_unless_asked(make_site: MakeSite) -> 
     """By default stderr names no patient id or name; with log_patient_data = true the id appears."""
     quiet = make_site(file_destination(), name="quiet")
     told = make_site(file_destination(), extra="log_patient_data = true", name="told")
-    malformed = MALFORMED.read_bytes().replace(b"FICT-1008", b"FICT-7731").replace(b"Hesper", b"Quillon")
+    # A reason quotes the value at fault: here a birth date field holding an identifier.
+    malformed = json.loads(make_input("LOGS-02", "FICT-7731", given="Quillon"))
+    malformed["patient"]["birth_date"] = "FICT-7731"
     for site in (quiet, told):
         site.start()
         drop(site.inbox, "good.json", make_input("LOGS-01", "FICT-7730", given="Quillon"))
-        drop(site.inbox, "bad.json", malformed)
+        drop(site.inbox, "bad.json", json.dumps(malformed).encode())
         wait_until(lambda s=site: len(s.archived()) == 1 and len(s.quarantined()) == 1, "both inputs taken")  # type: ignore[misc]
         assert 0 == site.stop()
     identifiers = ("FICT-7730", "FICT-7731", "Quillon", "Fictive")
 
     assert [] == [i for i in identifiers if i in quiet.all_stderr()]
-    assert "FICT-7730" in told.all_stderr()
+    assert ("FICT-7730", "FICT-7731") == tuple(i for i in identifiers[:2] if i in told.all_stderr())
+    assert "reason=InvalidField at patient.birth_date report=bad.json.error.json" in quiet.all_stderr()
