@@ -85,13 +85,18 @@ def _normalise_model(obj: BaseModel, catalogue: UnitCatalogue, path: str) -> Any
             continue
         where = f"{path}.{name}" if path else name
         new: Any
+        # Each step returns its input itself when nothing changed, and a value that differs
+        # from it otherwise: an identity test says whether to update (no model comparisons).
         if isinstance(kind, Measure):
             new = normalise_quantity(value, kind, catalogue, where)
+            changed = new is not value
         elif is_tuple:
             new = tuple(_normalise_model(item, catalogue, f"{where}[{i}]") for i, item in enumerate(value))
+            changed = any(a is not b for a, b in zip(new, value, strict=True))
         else:
             new = _normalise_model(value, catalogue, where)
-        if new != value:
+            changed = new is not value
+        if changed:
             updates[name] = new
     return obj.model_copy(update=updates) if updates else obj
 
