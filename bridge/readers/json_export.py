@@ -36,7 +36,7 @@ def read_export(data: bytes, source: str = "") -> Session:
             raise MissingField("format", f'"{FORMAT}"', source)
         raise InvalidField("format", f'"{FORMAT}", got {got!r}', source)
     try:
-        return Session.model_validate(_with_decimals(tree))
+        return Session.model_validate(_decimals_in_place(tree))
     except ValidationError as exc:
         raise first_validation_error(exc, source) from None
 
@@ -54,6 +54,42 @@ def _with_decimals(node: Any) -> Any:
     if isinstance(node, Decimal):
         return float(node)
     return node
+
+
+def _decimals_in_place(node: dict[str, Any]) -> dict[str, Any]:
+    """What :func:`_with_decimals` returns, computed on the freshly parsed tree in place.
+
+    The tree comes from ``json.loads(..., parse_float=Decimal)``: every value is exactly a
+    dict, list, str, int, bool, None, float (NaN, Infinity) or Decimal, so exact type tests
+    are enough. Used on the reading path; ``_with_decimals`` stays as the reference.
+    """
+    decimals = None
+    if "unit" in node and "decimals" not in node:
+        value = node.get("value")
+        if type(value) is Decimal or type(value) is int:
+            decimals = _decimals_of(value)
+    for key, value in node.items():
+        kind = type(value)
+        if kind is Decimal:
+            node[key] = float(value)
+        elif kind is dict:
+            _decimals_in_place(value)
+        elif kind is list:
+            _list_in_place(value)
+    if decimals is not None:
+        node["decimals"] = decimals
+    return node
+
+
+def _list_in_place(items: list[Any]) -> None:
+    for i, value in enumerate(items):
+        kind = type(value)
+        if kind is Decimal:
+            items[i] = float(value)
+        elif kind is dict:
+            _decimals_in_place(value)
+        elif kind is list:
+            _list_in_place(value)
 
 
 def _decimals_of(value: Decimal | int) -> int:
