@@ -39,6 +39,7 @@ import re
 from collections.abc import Iterable
 from datetime import date, datetime
 from decimal import Decimal
+from functools import lru_cache
 from urllib.parse import urlsplit
 
 from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
@@ -83,13 +84,15 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     if content is None:
         content = build_content(outcome, tables, context.units)
     status = "C" if context.correction else "F"
+    msh, now = _msh(outcome, context)
+    performed = hl7_timestamp(outcome.session.performed_at)
     segments = [
-        _msh(outcome, context),
+        msh,
         _pid(outcome.session.patient),
         _orc(outcome),
-        _obr(outcome, tables, context, status),
+        _obr(outcome, tables, now, performed, status),
         *_ntes(content.notes),
-        *_observations(outcome, content, status),
+        *_observations(content, status, performed),
     ]
     return SEGMENT_SEPARATOR.join(segments) + SEGMENT_SEPARATOR
 
@@ -137,15 +140,21 @@ def hl7_date(day: date) -> str:
 # ---------- segments ----------
 
 
-def _msh(outcome: Outcome, context: EmitContext) -> str:
+def _msh(outcome: Outcome, context: EmitContext) -> tuple[str, str]:
+    """MSH, and the message time as a TS (OBR-22 repeats it)."""
+    sending_application = _namespace_setting("sending_application", context.sending_application)
+    sending_facility = _namespace_setting("sending_facility", context.sending_facility)
+    receiving_application = _namespace_setting("receiving_application", context.receiving_application)
+    receiving_facility = _namespace_setting("receiving_facility", context.receiving_facility)
+    now = hl7_timestamp(context.now)
     return _segment(
         "MSH",
         ENCODING_CHARACTERS,
-        _namespace_setting("sending_application", context.sending_application),
-        _namespace_setting("sending_facility", context.sending_facility),
-        _namespace_setting("receiving_application", context.receiving_application),
-        _namespace_setting("receiving_facility", context.receiving_facility),
-        hl7_timestamp(context.now),
+        sending_application,
+        sending_facility,
+        receiving_application,
+        receiving_facility,
+        now,
         "",
         MESSAGE_TYPE,
         control_id(outcome, context),
@@ -157,7 +166,7 @@ def _msh(outcome: Outcome, context: EmitContext) -> str:
         "",
         "",
         CHARACTER_SET,
-    )
+    ), now
 
 
 def _pid(patient: Patient) -> str:
@@ -183,22 +192,21 @@ def _orc(outcome: Outcome) -> str:
     return _segment("ORC", "RE", test_id, test_id)
 
 
-def _obr(outcome: Outcome, tables: Tables, context: EmitContext, status: str) -> str:
+def _obr(outcome: Outcome, tables: Tables, now: str, performed: str, status: str) -> str:
     test_id = _identifier("test_id", outcome.session.test_id)
     fields = [""] * 25
     fields[0] = "1"
     fields[1] = test_id  # OBR-2 placer order number
     fields[2] = test_id  # OBR-3 filler order number
     fields[3] = _coded(tables.codes.panel, "panel")
-    fields[6] = hl7_timestamp(outcome.session.performed_at)  # OBR-7 observation date/time
-    fields[21] = hl7_timestamp(context.now)  # OBR-22 results report/status change
+    fields[6] = performed  # OBR-7 observation date/time
+    fields[21] = now  # OBR-22 results report/status change
     fields[23] = SERVICE_SECTION  # OBR-24
     fields[24] = status  # OBR-25 result status (HL7 table 0123)
     return _segment("OBR", *fields)
 
 
-def _observations(outcome: Outcome, content: ReportContent, status: str) -> Iterable[str]:
-    observed = hl7_timestamp(outcome.session.performed_at)
+def _observations(content: ReportContent, status: str, observed: str) -> Iterable[str]:
     for set_id, item in enumerate(content.items, start=1):
         yield _obx(set_id, item, status, observed)
         yield from _ntes(item.notes)
@@ -208,7 +216,7 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     value = numeric_text(format_value(item.quantity))
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
-    unit = _code_text(item.quantity.unit, "units.toml", f"unit of {item.key}")
+    unit = _unit_text(item.quantity.unit, item.key)
     fields = [""] * 14
     fields[0] = str(set_id)
     fields[1] = "NM"
@@ -240,8 +248,15 @@ def _components(*parts: str) -> str:
     return "^".join(parts).rstrip("^")
 
 
+@lru_cache(maxsize=1024)
+def _unit_text(unit: str, key: str) -> str:
+    """OBX-6 text of a UCUM code (pure; cached per unit and key)."""
+    return _code_text(unit, "units.toml", f"unit of {key}")
+
+
+@lru_cache(maxsize=1024)
 def _coded(code: Code, key: str) -> str:
-    """CE: identifier^text^coding system (OBR-4, OBX-3)."""
+    """CE: identifier^text^coding system (OBR-4, OBX-3). Pure; cached per code value and key."""
     identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")
     return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
 
@@ -306,6 +321,7 @@ def _assigning_authority(system: str) -> str:
     return "&".join((namespace_id(system), escaped, kind))
 
 
+@lru_cache(maxsize=1024)
 def namespace_id(system: str) -> str:
     """A short readable HD namespace id for an identifier system, e.g. ``FENWICK-HOLLOW``.
 
