@@ -40,10 +40,11 @@ def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCata
     if quantity.unit == measure.canonical_unit and quantity.original is not None:
         return quantity  # already normalised
     original = quantity.original or Original(value=format_value(quantity), unit=quantity.unit)
-    value = catalogue.convert(quantity.value, unit.code, measure.canonical_unit)
-    decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
-    if unit.code == measure.canonical_unit:
-        decimals = quantity.decimals
+    if unit.code == measure.canonical_unit:  # only the spelling changes
+        value, decimals = quantity.value, quantity.decimals
+    else:
+        value = catalogue.convert(quantity.value, unit.code, measure.canonical_unit)
+        decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
     return Quantity(value=value, unit=measure.canonical_unit, decimals=decimals, original=original)
 
 
