@@ -56,6 +56,7 @@ COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 # Fixed namespace for uuid5 fullUrls: same identifier -> same fullUrl on every run and machine.
 _NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, "urn:dlco-bridge:fhir")
 _NAMESPACE_BYTES = _NAMESPACE.bytes
+_VARIANT = {f"{n:x}": f"{(n & 0x3) | 0x8:x}" for n in range(16)}  # hex digit -> with variant bits 10
 # Characters that neither the token escape (``\\ | , $``) nor percent-encoding change.
 _PLAIN = re.compile(r"[A-Za-z0-9_.~:/-]*")
 
@@ -382,13 +383,11 @@ def _full_url(system: str, value: str) -> str:
 def uuid5_text(namespace: bytes, name: str) -> str:
     """``str(uuid.uuid5(UUID(bytes=namespace), name))`` without building UUID objects.
 
-    RFC 4122 section 4.3: SHA-1 of namespace + name, first 16 bytes, version 5, RFC variant.
+    RFC 4122 section 4.3: SHA-1 of namespace + name, first 16 bytes, version 5 (the 13th hex
+    digit becomes 5), RFC 4122 variant (the top two bits of the 17th hex digit become 10).
     """
-    digest = bytearray(sha1(namespace + name.encode("utf-8")).digest()[:16])
-    digest[6] = (digest[6] & 0x0F) | 0x50
-    digest[8] = (digest[8] & 0x3F) | 0x80
-    h = digest.hex()
-    return f"{h[:8]}-{h[8:12]}-{h[12:16]}-{h[16:20]}-{h[20:]}"
+    h = sha1(namespace + name.encode("utf-8")).hexdigest()
+    return f"{h[:8]}-{h[8:12]}-5{h[13:16]}-{_VARIANT[h[16]]}{h[17:20]}-{h[20:32]}"
 
 
 def _uuid_of(entry: Resource) -> str:
