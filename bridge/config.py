@@ -133,6 +133,8 @@ _TOP_LEVEL = {
     "metrics_host", "log_format", "log_patient_data",
 }  # fmt: skip
 
+_DESTINATION_KEYS = set(Destination.__dataclass_fields__) - {"name", "token"}
+
 
 class _Reader:
     """Typed access to the merged settings tree, each error naming its key."""
@@ -193,6 +195,9 @@ class _Reader:
         where = f"destination.{name}"
         if not isinstance(v, dict):
             raise self.fail(where, "a table")
+        unknown = sorted(set(v) - _DESTINATION_KEYS)
+        if unknown:  # a misspelt key would otherwise be ignored and its default used
+            raise self.fail(f"{where}.{unknown[0]}", f"one of {', '.join(sorted(_DESTINATION_KEYS))}")
         transport = self.choice(f"{where}.transport", v.get("transport"), TRANSPORT_KINDS)
         payload = self.choice(f"{where}.payload", v.get("payload"), OUTPUT_KINDS)
         units = self.choice(f"{where}.units", v.get("units", "traditional"), ("si", "traditional"))
