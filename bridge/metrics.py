@@ -13,6 +13,7 @@ from collections.abc import Callable, Mapping
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
+from bridge.errors import ConfigError
 from bridge.ledger import LedgerSummary
 from bridge.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
@@ -143,7 +144,11 @@ class HealthServer:
         stale_after: float,
     ) -> None:
         handler = _handler(metrics, summary, stale_after)
-        self.server = ThreadingHTTPServer((host, port), handler)
+        try:
+            self.server = ThreadingHTTPServer((host, port), handler)
+        except OSError as exc:
+            # A port taken by another program is a setting to change, said in one line.
+            raise ConfigError("metrics_port", f"a free port on {host} ({exc.strerror or exc})") from exc
         self.thread = threading.Thread(target=self.server.serve_forever, name="health", daemon=True)
 
     @property

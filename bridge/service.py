@@ -61,12 +61,12 @@ class Service:
 
     def run(self) -> None:
         """Watch, process and deliver until :attr:`stop` is set; then finish what is in flight."""
+        self._start_health()  # first: a port in use stops the start before anything runs
         for folder in (self.settings.inbox, self.settings.archive, self.settings.quarantine):
             folder.mkdir(parents=True, exist_ok=True)
         observer = Observer()
         observer.schedule(self.readiness, str(self.settings.inbox), recursive=False)
         observer.start()
-        self._start_health()
         delivery = threading.Thread(target=self._delivery_loop, name="delivery", daemon=True)
         delivery.start()
         log.info("service started", extra={"event": "started", "inbox": str(self.settings.inbox)})

@@ -31,7 +31,12 @@ def run_watch(site: Site, timeout: float = 30.0) -> subprocess.CompletedProcess[
     stderr_path = site.root / "refused.log"
     with stderr_path.open("wb") as stderr:
         process = watch(site.config, stderr)
-        code = process.wait(timeout=timeout)
+        try:
+            code = process.wait(timeout=timeout)
+        except subprocess.TimeoutExpired:
+            process.kill()
+            process.wait(timeout=10)
+            raise
     return subprocess.CompletedProcess(process.args, code, "", stderr_path.read_text(encoding="utf-8"))
 
 
@@ -120,3 +125,30 @@ def test_logs_carry_no_patient_identifiers_unless_asked(make_site: MakeSite) -> 
     assert [] == [i for i in identifiers if i in quiet.all_stderr()]
     assert ("FICT-7730", "FICT-7731") == tuple(i for i in identifiers[:2] if i in told.all_stderr())
     assert "reason=InvalidField at patient.birth_date report=bad.json.error.json" in quiet.all_stderr()
+
+
+def test_a_misspelt_destination_key_stops_the_service_at_start(make_site: MakeSite) -> None:
+    """An unknown key in a destination table is named, not silently replaced by its default."""
+    site = make_site(file_destination() + "read_timout = 5.0\n")
+    refused = run_watch(site)
+
+    assert (1, 1) == (refused.returncode, len(refused.stderr.splitlines()))
+    assert refused.stderr.startswith(f"dlco-bridge: {site.config}: destination.drop.read_timout: one of ")
+
+
+def test_a_metrics_port_in_use_stops_the_service_at_start_in_one_line(make_site: MakeSite) -> None:
+    """The health/metrics port taken by another program: exit 1, one line naming metrics_port."""
+    first = make_site(file_destination(), name="first")
+    first.start()
+    second = make_site(file_destination(), name="second")
+    second.config.write_text(
+        second.config.read_text().replace(
+            f"metrics_port = {second.metrics_port}", f"metrics_port = {first.metrics_port}"
+        )
+    )
+    refused = run_watch(second)
+
+    assert 1 == refused.returncode
+    assert [
+        "dlco-bridge: metrics_port: a free port on 127.0.0.1 (Address already in use)"
+    ] == refused.stderr.splitlines()
