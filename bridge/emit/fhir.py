@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import re
 import uuid
-from collections.abc import Iterable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from datetime import datetime
 from decimal import Decimal
@@ -77,12 +77,23 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
     ``content`` is :func:`build_content` of the outcome in ``context.units``; pass it when it
     is already at hand (another emitter built it), otherwise it is built here.
     """
+    return _build(outcome, tables, context, content, _decimal)
+
+
+def _build(
+    outcome: Outcome,
+    tables: Tables,
+    context: EmitContext,
+    content: ReportContent | None,
+    number: Callable[[Quantity], object],
+) -> Resource:
+    """The Bundle, with ``number`` giving the JSON value of each quantity's value."""
     require_aware(context.now)
     if content is None:
         content = build_content(outcome, tables, context.units)
     entries: list[Resource] = []
     subject = _subject(outcome, context, entries)
-    parts = _Parts.of(outcome, context)
+    parts = _Parts.of(outcome, context, number)
     full_urls = {item.key: parts.full_url(item.key) for item in content.items}
     for item in content.items:
         resource = _observation(parts, item, tables, context, subject, full_urls)
@@ -105,9 +116,10 @@ class _Parts:
     issued: str
     performer: str
     correction: bool
+    number: Callable[[Quantity], object]  # a quantity's value as it goes into the dicts
 
     @classmethod
-    def of(cls, outcome: Outcome, context: EmitContext) -> _Parts:
+    def of(cls, outcome: Outcome, context: EmitContext, number: Callable[[Quantity], object]) -> _Parts:
         session = outcome.session
         prefix = observation_identifier(outcome, "")
         lab = session.lab
@@ -119,6 +131,7 @@ class _Parts:
             issued=_instant(context.now),
             performer=f"{lab.name}, {lab.site}" if lab.site else lab.name,
             correction=context.correction,
+            number=number,
         )
 
     def identifier(self, key: str) -> str:
@@ -141,8 +154,12 @@ class _Parts:
 
 
 def bundle_json(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> bytes:
-    """The transaction Bundle as indented UTF-8 JSON; byte-identical for identical input."""
-    return dumps(to_bundle(outcome, tables, context, content), indent=True)
+    """The transaction Bundle as indented UTF-8 JSON; byte-identical for identical input.
+
+    Values go into the dicts as the JSON fragments ``dumps`` would write for their Decimal
+    (same bytes, without a ``default`` call per value).
+    """
+    return orjson.dumps(_build(outcome, tables, context, content, _fragment), option=orjson.OPT_INDENT_2)
 
 
 def to_ndjson(outcomes: Iterable[Outcome], tables: Tables, context: EmitContext) -> dict[str, bytes]:
@@ -201,7 +218,7 @@ def _observation(
         "effectiveDateTime": parts.effective,
         "issued": parts.issued,
         "performer": [parts.lab()],
-        "valueQuantity": _quantity(item.quantity),
+        "valueQuantity": _quantity(item.quantity, parts.number),
     }
     if item.flag is not None:
         coding = {"system": INTERPRETATION, "code": item.flag, "display": _FLAG_DISPLAY[item.flag]}
@@ -210,7 +227,7 @@ def _observation(
     if notes:
         resource["note"] = [{"text": text} for text in notes]
     if item.low is not None:
-        resource["referenceRange"] = [{"low": _quantity(item.low), "text": LLN_TEXT}]
+        resource["referenceRange"] = [{"low": _quantity(item.low, parts.number), "text": LLN_TEXT}]
     if item.derived_from:
         resource["derivedFrom"] = [{"reference": full_urls[key]} for key in item.derived_from]
     return resource
@@ -225,9 +242,26 @@ def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
     return notes
 
 
-def _quantity(quantity: Quantity) -> Resource:
+def _decimal(quantity: Quantity) -> Decimal:
+    """The value with the reported digits, as a Decimal (what :func:`to_bundle` returns)."""
+    return Decimal(format_value(quantity))
+
+
+def _fragment(quantity: Quantity) -> orjson.Fragment:
+    """The bytes :func:`dumps` writes for ``_decimal(quantity)`` (always finite).
+
+    ``str(Decimal(text))`` is ``text`` itself for fixed-point text whose first significant
+    digit (or last zero) lies above 1e-6; only exponents and tiny values need the Decimal.
+    """
+    text = format_value(quantity)
+    if "e" in text or "E" in text or text.lstrip("-").startswith("0.000000"):
+        text = str(Decimal(text))
+    return orjson.Fragment(text.encode("ascii"))
+
+
+def _quantity(quantity: Quantity, number: Callable[[Quantity], object]) -> Resource:
     return {
-        "value": Decimal(format_value(quantity)),
+        "value": number(quantity),
         "unit": quantity.unit,
         "system": UCUM,
         "code": quantity.unit,

@@ -6,15 +6,16 @@ import re
 import uuid
 from urllib.parse import quote
 
+import orjson
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bridge.emit.fhir import _escape, _token_part, bundle_json, uuid5_text
+from bridge.emit.fhir import _decimal, _escape, _fragment, _raw_decimal, _token_part, bundle_json, uuid5_text
 from bridge.emit.hl7v2 import _CONTROL, _ESCAPES, _LINE_BREAK, escape, escape_formatted, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.emit.outputs import payloads
 from bridge.mapping import Tables
-from bridge.model import Outcome
+from bridge.model import Outcome, Quantity
 from tests.emit.test_hl7v2 import NOW
 
 # Text that exercises every branch: delimiters, line breaks, control characters, non-ASCII, surrogate-free.
@@ -74,3 +75,25 @@ def test_payloads_share_one_content(sample_outcomes: dict[str, Outcome], tables:
             assert to_oru(outcome, tables, context).encode("utf-8") == hl7.data
             assert bundle_json(outcome, tables, context, content) == fhir.data
             assert re.fullmatch(r"[0-9a-f]{20}", hl7.message_id)
+
+
+QUANTITY_VALUES = st.floats(allow_nan=False, allow_infinity=False) | st.floats(
+    min_value=-1e-3, max_value=1e-3, allow_nan=False
+)
+
+
+@settings(max_examples=1000)
+@given(value=QUANTITY_VALUES, decimals=st.none() | st.integers(min_value=0, max_value=12))
+def test_json_fragment_equals_the_decimal_written_by_dumps(value: float, decimals: int | None):
+    """bundle_json's value fragments are the bytes dumps() writes for to_bundle's Decimal."""
+    quantity = Quantity(value=value, unit="L", decimals=decimals)
+
+    assert orjson.dumps([_raw_decimal(_decimal(quantity))]) == orjson.dumps([_fragment(quantity)])
+
+
+def test_json_fragment_on_edge_values():
+    """Zeros with many decimals, tiny values and exponents go through the Decimal."""
+    for value, decimals in [(0.0, 7), (0.0, 6), (-0.0, 3), (1e-7, 8), (1e-7, None), (1234567.0, None), (5e-6, 6)]:
+        quantity = Quantity(value=value, unit="L", decimals=decimals)
+
+        assert orjson.dumps([_raw_decimal(_decimal(quantity))]) == orjson.dumps([_fragment(quantity)])
