@@ -151,6 +151,11 @@ class Service:
             return
         self._unmovable[path.name] = (stat.st_size, stat.st_mtime_ns)
 
+    def _between_messages(self) -> bool:
+        """Beat the delivery heartbeat (a long backlog is work, not a hang); whether to stop."""
+        self.metrics.heartbeat("delivery")
+        return self.stop.is_set()
+
     def _delivery_loop(self) -> None:
         while not self.stop.is_set():
             self.metrics.heartbeat("delivery")
@@ -161,6 +166,6 @@ class Service:
                 self.clock,
                 self.rand,
                 backoff=self.backoff,
-                should_stop=self.stop.is_set,
+                should_stop=self._between_messages,
             )
             self.messages_queued.wait(IDLE_WAIT_SECONDS)
