@@ -347,8 +347,15 @@ def cmd_status(args: argparse.Namespace, tables: Tables) -> int:
     settings = load_settings(args.config, os.environ)
     with Ledger.open(settings.ledger_path, read_only=True) as ledger:
         summary = ledger.summary()
+        dead = ledger.rows("rejected")
+    dead_letters = [
+        {"id": r.id, "destination": r.destination, "message_id": r.message_id, "test_id": r.test_id,
+         "attempts": r.attempts, "reason": r.last_error}
+        for r in dead
+    ]  # fmt: skip
     if args.json:
-        sys.stdout.write(orjson.dumps(asdict(summary), option=orjson.OPT_INDENT_2).decode() + "\n")
+        document = {**asdict(summary), "dead_letters": dead_letters}
+        sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
         return EXIT_OK
     print(f"ledger {settings.ledger_path}")
     print(
@@ -358,6 +365,10 @@ def cmd_status(args: argparse.Namespace, tables: Tables) -> int:
     for name, d in sorted(summary.destinations.items()):
         oldest = f", oldest pending {d.oldest_pending_age:.0f} s" if d.oldest_pending_age else ""
         print(f"  {name}: {d.pending} pending, {d.delivered} delivered, {d.rejected} rejected{oldest}")
+    if dead_letters:
+        print("  dead letters (dlco-bridge resend ID | --rejected):")
+        for letter in dead_letters:
+            print(f"    {letter['id']:>6}  {letter['destination']}  test {letter['test_id']}  {letter['reason']}")
     return EXIT_OK
 
 

@@ -370,6 +370,14 @@ class Ledger:
             next_attempt_at,
         )
 
+    def rows(self, state: OutboxState, limit: int = 100) -> list[OutboxRow]:
+        """Outbox rows in one state, oldest first (for ``status``: the dead letters, say)."""
+        with self._lock, _translated(self._path):
+            found = self._conn.execute(
+                f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE state = ? ORDER BY id LIMIT ?", (state, limit)
+            ).fetchall()
+        return [_outbox(row) for row in found]
+
     def requeue(self, outbox_id: int) -> None:
         """Make a delivered or rejected message pending again, due now (``resend``)."""
         with self._write() as conn:

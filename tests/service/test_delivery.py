@@ -77,6 +77,9 @@ def test_a_refused_message_is_dead_lettered_and_resent_on_request(
     assert {"NAK-01", "NAK-03"} == {a.test_id for a in receiver.accepted()}
     assert (1, 1.0) == (status["destinations"]["records"]["rejected"],
                         site.metrics()['dlco_bridge_dead_letters{destination="records"}'])  # fmt: skip
+    assert [(rejected.id, "NAK-02", "AE PID-3 not known here")] == [
+        (d["id"], d["test_id"], d["reason"]) for d in status["dead_letters"]
+    ]
 
     receiver.refuse_tests.clear()
     resent = cli("resend", "--rejected", "--config", str(site.config))
