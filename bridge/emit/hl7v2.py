@@ -217,17 +217,13 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _unit_text(item.quantity.unit, item.key)
-    fields = [""] * 14
-    fields[0] = str(set_id)
-    fields[1] = "NM"
-    fields[2] = _coded(item.code, item.key)
-    fields[4] = value
-    fields[5] = _components(unit, unit, UNIT_SYSTEM)
-    fields[6] = f">{numeric_text(format_value(item.low))}" if item.low is not None else ""
-    fields[7] = item.flag or ""  # HL7 table 0078
-    fields[10] = status  # OBX-11 (HL7 table 0085)
-    fields[13] = observed  # OBX-14 date/time of the observation
-    return _segment("OBX", *fields)
+    coded = _coded(item.code, item.key)
+    low = f">{numeric_text(format_value(item.low))}" if item.low is not None else ""
+    flag = item.flag or ""  # HL7 table 0078
+    # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
+    # (HL7 table 0085), -14 date/time of the observation. Written out: the last field is never
+    # empty, so nothing would be trimmed (see _segment).
+    return f"OBX|{set_id}|NM|{coded}||{value}|{unit}^{unit}^{UNIT_SYSTEM}|{low}|{flag}|||{status}|||{observed}"
 
 
 def _ntes(notes: Iterable[str]) -> list[str]:
