@@ -14,6 +14,7 @@ import shutil
 import signal
 import sys
 import tempfile
+import threading
 from collections.abc import Iterator, Sequence
 from dataclasses import asdict
 from datetime import UTC, datetime
@@ -331,15 +332,20 @@ def build_transport(destination: Destination) -> Transport:
 
 
 def cmd_watch(args: argparse.Namespace, tables: Tables) -> int:
+    # Handlers first: a stop asked for while the ledger opens is honoured, not a hard exit.
+    stop = threading.Event()
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(signum, lambda *_: stop.set())
     settings = load_settings(args.config, os.environ)
     tables = load_tables(traditional_per_si=settings.traditional_per_si)
     configure_logging(settings.log_format)
     with ServiceLock.acquire(settings.state), Ledger.open(settings.ledger_path) as ledger:
         transports = {d.name: build_transport(d) for d in settings.destinations}
-        service = Service(settings, tables, ledger, transports)
+        service = Service(settings, tables, ledger, transports, stop=stop)
         for signum in (signal.SIGTERM, signal.SIGINT):
             signal.signal(signum, lambda *_: service.request_stop())
-        service.run()
+        if not stop.is_set():
+            service.run()
     return EXIT_OK
 
 

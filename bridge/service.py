@@ -43,12 +43,13 @@ class Service:
         transports: Mapping[str, Transport],
         clock: Callable[[], float] = time.time,
         rand: Callable[[], float] = random.random,
+        stop: threading.Event | None = None,
     ) -> None:
         self.settings = settings
         self.ledger = ledger
         self.clock = clock
         self.rand = rand
-        self.stop = threading.Event()
+        self.stop = stop or threading.Event()  # the CLI passes the one its signal handlers set
         self.files_arrived = threading.Event()
         self.messages_queued = threading.Event()
         self.metrics = Metrics(clock)
