@@ -14,6 +14,7 @@ half-done.
 
 from __future__ import annotations
 
+import logging
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Literal
@@ -24,6 +25,7 @@ from bridge.ledger import Ledger, OutboxRow
 from bridge.transports.base import OutgoingMessage, Transport
 
 Outcome = Literal["delivered", "rejected", "retry"]
+log = logging.getLogger("dlco_bridge.delivery")
 
 
 @dataclass(frozen=True, slots=True)
@@ -61,13 +63,28 @@ def deliver_one(
         receipt = transport.deliver(to_outgoing(row))
     except Rejected as exc:
         ledger.mark_rejected(row.id, exc.detail)
+        # The receiver's text can quote message content: the log names the row, not the text.
+        log.warning("message refused: dead-lettered", extra={"event": "rejected", **_where(row)})
         return "rejected"
     except DeliveryError as exc:
         delay = next_delay(row.attempts + 1, backoff.base, backoff.cap, rand=rand)
         ledger.mark_retry(row.id, f"{type(exc).__name__}: {exc.detail}", now() + delay)
+        log.info(
+            "delivery failed: will retry",
+            extra={"event": "retry", **_where(row), "error": type(exc).__name__, "retry_in_s": round(delay, 1)},
+        )
         return "retry"
     ledger.mark_delivered(row.id, receipt.line())
     return "delivered"
+
+
+def _where(row: OutboxRow) -> dict[str, object]:
+    return {
+        "outbox_id": row.id,
+        "destination": row.destination,
+        "message_id": row.message_id,
+        "attempt": row.attempts + 1,
+    }
 
 
 def _never() -> bool:
