@@ -288,45 +288,57 @@ def floor_pass(inputs: Sequence[bytes], counts: Sequence[int]) -> Callable[[], N
     return run
 
 
+STAGES = (
+    "read",
+    "normalise",
+    "derive",
+    "check",
+    "Outcome (sha256 + model)",
+    "build_content (once, shared)",
+    "FHIR (bundle_json)",
+    "HL7 (to_oru+control_id)",
+)
+
+
 def stage_breakdown(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]:
-    """Microseconds per session of each pipeline stage, stage by stage over ``inputs``."""
-    names = [f"gen-{i}.json" for i in range(len(inputs))]
-    us = 1e6 / len(inputs)
-    out: dict[str, float] = {}
+    """Microseconds per session of each pipeline stage, session by session (as the real pass runs).
 
-    def timed(label: str, func: Callable[[], Any]) -> Any:
+    Each session goes through every stage before the next one starts, so nothing is held
+    between sessions; best of three passes over ``inputs`` (by total).
+    """
+    clock = time.perf_counter
+    best: list[float] | None = None
+    for _ in range(3):
+        totals = [0.0] * len(STAGES)
         gc.collect()
-        start = time.perf_counter()
-        result = func()
-        out[label] = (time.perf_counter() - start) * us
-        return result
-
-    sessions = timed(
-        "read+normalise",
-        lambda: [normalise(read_export(d, n), tables.units) for d, n in zip(inputs, names, strict=True)],
-    )
-    derived = timed("derive", lambda: [derive(s, tables) for s in sessions])
-    findings = timed("check", lambda: [run_checks(s, d, tables) for s, d in zip(sessions, derived, strict=True)])
-    outcomes = [
-        Outcome(
-            source=n,
-            source_sha256=hashlib.sha256(data).hexdigest(),
-            session=s,
-            derived=d,
-            findings=f,
-        )
-        for n, data, s, d, f in zip(names, inputs, sessions, derived, findings, strict=True)
-    ]
-    contents = timed(
-        "build_content (once, shared)", lambda: [build_content(o, tables, CONTEXT.units) for o in outcomes]
-    )
-    pairs = list(zip(outcomes, contents, strict=True))
-    timed("FHIR (bundle_json)", lambda: [bundle_json(o, tables, CONTEXT, c) for o, c in pairs])
-    timed(
-        "HL7 (to_oru+control_id)",
-        lambda: [(to_oru(o, tables, CONTEXT, c).encode(), control_id(o, CONTEXT)) for o, c in pairs],
-    )
-    return out
+        for i, data in enumerate(inputs):
+            name = f"gen-{i}.json"
+            t0 = clock()
+            session = read_export(data, name)
+            t1 = clock()
+            session = normalise(session, tables.units)
+            t2 = clock()
+            derived = derive(session, tables)
+            t3 = clock()
+            findings = run_checks(session, derived, tables)
+            t4 = clock()
+            digest = hashlib.sha256(data).hexdigest()
+            outcome = Outcome(source=name, source_sha256=digest, session=session, derived=derived, findings=findings)
+            t5 = clock()
+            content = build_content(outcome, tables, CONTEXT.units)
+            t6 = clock()
+            bundle_json(outcome, tables, CONTEXT, content)
+            t7 = clock()
+            to_oru(outcome, tables, CONTEXT, content).encode()
+            control_id(outcome, CONTEXT)
+            t8 = clock()
+            marks = (t0, t1, t2, t3, t4, t5, t6, t7, t8)
+            for k in range(len(STAGES)):
+                totals[k] += marks[k + 1] - marks[k]
+        if best is None or sum(totals) < sum(best):
+            best = totals
+    assert best is not None
+    return {label: value * 1e6 / len(inputs) for label, value in zip(STAGES, best, strict=True)}
 
 
 ORU_BUDGET_S = 0.005  # one ORU^R01 well under a millisecond; 5 ms leaves slack (was a timed unit test)
@@ -467,7 +479,7 @@ def _print_report(result: dict[str, Any], stages: dict[str, float], validators: 
         f"(about {TARGET_RATIO:.0f}x the floor): {met}"
     )
     print()
-    print(f"per stage, {result['stage_subset']} sessions (µs per session):")
+    print(f"per stage, {result['stage_subset']} sessions, session by session (µs per session):")
     total = sum(stages.values())
     for label, value in stages.items():
         print(f"  {label:48} {value:8.1f}  {value / total:5.1%}")
