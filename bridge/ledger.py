@@ -93,6 +93,11 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
             at      REAL NOT NULL
         )""",
     ),
+    (
+        # summary() counts per destination and state on every /metrics scrape: an index it
+        # can answer from keeps that cheap as delivered rows pile up.
+        "CREATE INDEX outbox_by_state ON outbox (destination, state, created_at)",
+    ),
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 

@@ -69,7 +69,7 @@ class Metrics:
             self._sums[destination] = self._sums.get(destination, 0.0) + latency
             self._measured[destination] = self._measured.get(destination, 0) + 1
             self.latencies.append(latency)
-            del self.latencies[:-100_000]
+            del self.latencies[:-10_000]
 
     def render(self, summary: LedgerSummary) -> str:
         """Prometheus text exposition format (version 0.0.4)."""

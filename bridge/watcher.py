@@ -122,7 +122,8 @@ class Readiness(FileSystemEventHandler):
                 else:
                     stable = now - seen[2] >= self.stable_seconds
             if closed_at is not None:
-                done.append((path, closed_at))
+                # The rename or last write (ctime) is when a sender sees the file complete.
+                done.append((path, stat.st_ctime if 0 <= closed_at - stat.st_ctime < 5 else closed_at))
             elif stable:
                 done.append((path, now))
         return done
