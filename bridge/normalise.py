@@ -15,7 +15,7 @@ from pydantic import BaseModel
 
 from bridge.errors import InvalidField, UnitError
 from bridge.model import Measure, Original, Quantity, Session
-from bridge.units import UnitCatalogue, decimals_after_conversion
+from bridge.units import UnitCatalogue, UnitDef, decimals_after_conversion
 
 # A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.
 _Step = tuple[str, Measure | type[BaseModel], bool]
@@ -29,23 +29,40 @@ def normalise(session: Session, catalogue: UnitCatalogue) -> Session:
 
 def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
     """One quantity in its canonical unit; the original value and unit are kept."""
-    unit = catalogue.resolve(quantity.unit)
-    if unit is None:
-        raise UnitError(f"{path}.unit", quantity.unit, f"is not a known unit for {_dimension(measure)}")
-    if unit.dimension != measure.dimension:
-        expected = f"is a {unit.dimension.replace('_', ' ')} unit; expected one for {_dimension(measure)}"
-        raise UnitError(f"{path}.unit", quantity.unit, expected)
-    if quantity.value < 0 and not measure.signed:
-        raise InvalidField(f"{path}.value", f"a value >= 0, got {quantity.value:g}")
+    unit = checked_unit(quantity.unit, quantity.value, measure, catalogue, path)
     if quantity.unit == measure.canonical_unit and quantity.original is not None:
         return quantity  # already normalised
     original = quantity.original or Original(value=format_value(quantity), unit=quantity.unit)
-    if unit.code == measure.canonical_unit:  # only the spelling changes
-        value, decimals = quantity.value, quantity.decimals
-    else:
-        value = catalogue.convert(quantity.value, unit.code, measure.canonical_unit)
-        decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
+    value, decimals = in_canonical_unit(quantity.value, quantity.decimals, unit, measure, catalogue)
     return Quantity(value=value, unit=measure.canonical_unit, decimals=decimals, original=original)
+
+
+def checked_unit(unit_text: str, value: float, measure: Measure, catalogue: UnitCatalogue, path: str) -> UnitDef:
+    """The catalogue entry of a quantity's unit; refuses what cannot be a value of the field.
+
+    Raises UnitError (unknown unit, wrong dimension) or InvalidField (negative where the
+    field is unsigned). Shared by :func:`normalise_quantity` and the JSON reader, which
+    normalises the parsed tree before building the models.
+    """
+    unit = catalogue.resolve(unit_text)
+    if unit is None:
+        raise UnitError(f"{path}.unit", unit_text, f"is not a known unit for {_dimension(measure)}")
+    if unit.dimension != measure.dimension:
+        expected = f"is a {unit.dimension.replace('_', ' ')} unit; expected one for {_dimension(measure)}"
+        raise UnitError(f"{path}.unit", unit_text, expected)
+    if value < 0 and not measure.signed:
+        raise InvalidField(f"{path}.value", f"a value >= 0, got {value:g}")
+    return unit
+
+
+def in_canonical_unit(
+    value: float, decimals: int | None, unit: UnitDef, measure: Measure, catalogue: UnitCatalogue
+) -> tuple[float, int | None]:
+    """Value and reported decimals in the canonical unit (unchanged when only the spelling differs)."""
+    if unit.code == measure.canonical_unit:
+        return value, decimals
+    converted = catalogue.convert(value, unit.code, measure.canonical_unit)
+    return converted, decimals_after_conversion(converted, decimals, value)
 
 
 def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity:
@@ -64,9 +81,14 @@ def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity
 
 def format_value(quantity: Quantity) -> str:
     """The value as text with the reported number of decimals (6 significant digits if unknown)."""
-    if quantity.decimals is None:
-        return format(quantity.value, ".6g")
-    return f"{quantity.value:.{quantity.decimals}f}"
+    return format_number(quantity.value, quantity.decimals)
+
+
+def format_number(value: float, decimals: int | None) -> str:
+    """:func:`format_value` on a plain number and its reported decimals."""
+    if decimals is None:
+        return format(value, ".6g")
+    return f"{value:.{decimals}f}"
 
 
 def _decimals_in(text: str) -> int:
@@ -80,7 +102,7 @@ def _dimension(measure: Measure) -> str:
 
 def _normalise_model(obj: BaseModel, catalogue: UnitCatalogue, path: str) -> Any:
     updates: dict[str, Any] = {}
-    for name, kind, is_tuple in _plan(type(obj)):
+    for name, kind, is_tuple in plan_of(type(obj)):
         value = getattr(obj, name)
         if value is None:
             continue
@@ -103,7 +125,7 @@ def _normalise_model(obj: BaseModel, catalogue: UnitCatalogue, path: str) -> Any
 
 
 @cache
-def _plan(cls: type[BaseModel]) -> tuple[_Step, ...]:
+def plan_of(cls: type[BaseModel]) -> tuple[_Step, ...]:
     """Which fields of a model hold quantities or nested models (computed once per class)."""
     steps: list[_Step] = []
     for name, info in cls.model_fields.items():

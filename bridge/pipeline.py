@@ -15,8 +15,8 @@ from bridge.derive import derive
 from bridge.errors import InputError, UnreadableInput
 from bridge.mapping import Tables
 from bridge.model import Outcome, Session
-from bridge.normalise import normalise
-from bridge.readers.json_export import read_export
+from bridge.readers.json_export import read_export, read_normalised
+from bridge.units import UnitCatalogue
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
 
@@ -31,12 +31,17 @@ def read(data: bytes, source: str) -> Session:
     return read_export(data, source)
 
 
+def read_and_normalise(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
+    """``normalise(read(data, source), catalogue)``; the JSON reader does both in one build."""
+    return read_normalised(data, catalogue, source)
+
+
 def process(data: bytes, source: str, tables: Tables, limits: Limits = Limits()) -> Outcome:
     """Read, normalise, derive and check one input. Raises InputError when it is unreadable."""
     if len(data) > limits.max_input_bytes:
         raise UnreadableInput("(file)", f"at most {limits.max_input_bytes} bytes, got {len(data)}", source)
     try:
-        session = normalise(read(data, source), tables.units)
+        session = read_and_normalise(data, source, tables.units)
     except InputError as exc:
         if exc.source:
             raise

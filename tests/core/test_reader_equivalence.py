@@ -1,7 +1,9 @@
-"""The fast reading path gives exactly what the reference reading path gives.
+"""The fast reading paths give exactly what the reference paths give.
 
 Reference: ``json.loads(text, parse_float=Decimal)``, then ``_with_decimals`` (which builds a
 new tree), then ``Session.model_validate``. The reader now converts the parsed tree in place.
+And ``read_normalised`` gives exactly ``normalise(read_export(...))``: the same session (values,
+types, set fields) or the same error (class, field, expected, source, text).
 """
 
 from __future__ import annotations
@@ -16,12 +18,21 @@ from typing import Any
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from pydantic import ValidationError
+from pydantic import BaseModel, ValidationError
 
 from bridge.errors import BridgeError
 from bridge.model import Session
+from bridge.normalise import normalise
 from bridge.readers.common import decode_text, first_validation_error
-from bridge.readers.json_export import _decimals_in_place, _with_decimals, read_export
+from bridge.readers.json_export import (
+    _decimals_in_place,
+    _normalised_in_place,
+    _parse,
+    _with_decimals,
+    read_export,
+    read_normalised,
+)
+from bridge.resources import load_tables
 
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLES = sorted(ROOT.glob("samples/*.json"))
@@ -157,3 +168,180 @@ def _dumps(node: Any) -> str:
 def test_generated_documents_read_identically(data: bytes):
     """Documents with numbers in every JSON spelling give the same session or the same error."""
     assert outcome_of(reference_read, data) == outcome_of(read_export, data)
+
+
+# ---------- reading and normalising in one build ----------
+#
+# Reference: ``normalise(read_export(data), catalogue)``. ``read_normalised`` puts each quantity
+# of the parsed tree in its canonical form before the one ``Session.model_validate``.
+
+UNITS = load_tables().units
+UNIT_SPELLINGS = st.sampled_from(
+    [
+        "mL/min/mm[Hg]",
+        "ml/min/mm Hg",
+        "mmol/min/kPa",
+        "mmol/(min.kPa)",
+        "mmol/min/kPa/L",
+        "mL/min/mmHg/L",
+        "L",
+        "mL",
+        " L ",
+        "s",
+        "ms",
+        "kPa",
+        "mm[Hg]",
+        "mmHg",
+        "g/L",
+        "g/dL",
+        "mmol/L",
+        "%",
+        "cm",
+        "m",
+        "kg",
+        "Cel",
+        "furlong",
+        "",
+        " ",
+    ]
+)
+
+
+def _fields_set(value: Any) -> Any:
+    """Which fields were set, model by model (``==`` on models does not compare it)."""
+    if isinstance(value, BaseModel):
+        return (
+            type(value).__name__,
+            sorted(value.model_fields_set),
+            {k: _fields_set(getattr(value, k)) for k in type(value).model_fields},
+        )
+    if isinstance(value, tuple):
+        return [_fields_set(v) for v in value]
+    return None
+
+
+def normalised_outcome(read: Any, data: bytes) -> tuple[str, ...]:
+    """A session (dump, repr, set fields), or the error (class, field, expected, source, text)."""
+    try:
+        session = read(data)
+    except BridgeError as exc:
+        fields = tuple(str(getattr(exc, name, "")) for name in ("field", "expected", "source"))
+        return (type(exc).__name__, *fields, str(exc))
+    except (ValidationError, ArithmeticError) as exc:  # not an InputError: must match as well
+        return (type(exc).__name__, str(exc))
+    return (repr(session), session.model_dump_json(), repr(_fields_set(session)))
+
+
+def reference_normalised(data: bytes) -> Session:
+    return normalise(read_export(data, "x.json"), UNITS)
+
+
+def fast_normalised(data: bytes) -> Session:
+    return read_normalised(data, UNITS, "x.json")
+
+
+@pytest.mark.parametrize("path", SAMPLES, ids=lambda p: p.name)
+def test_samples_normalise_identically_while_read(path: Path):
+    """Every bundled sample gives the same normalised session, or the same error."""
+    data = path.read_bytes()
+
+    assert normalised_outcome(reference_normalised, data) == normalised_outcome(fast_normalised, data)
+
+
+def test_generated_sessions_normalise_identically_while_read():
+    """The benchmark's generated sessions, in every unit spelling it writes, give the same sessions."""
+    from bench_convert import generate
+
+    for data in generate(300, seed=7):
+        assert normalised_outcome(reference_normalised, data) == normalised_outcome(fast_normalised, data)
+
+
+def test_clean_documents_take_the_one_build_path():
+    """The comparison above is not vacuous: clean documents never fall back to the reference path."""
+    from bench_convert import generate
+
+    clean = [p.read_bytes() for p in SAMPLES if "malformed" not in p.name] + generate(100, seed=3)
+
+    assert all(_normalised_in_place(_parse(data, ""), Session, UNITS) for data in clean)
+
+
+def test_reading_normalised_keeps_the_reported_digits():
+    """7.460 mmol/min/kPa keeps its text as the original and its significant digits converted."""
+    data = (ROOT / "samples" / "01-healthy-adult.json").read_bytes()
+    tree = json.loads(data)
+    tree["results"]["dlco"] = {"value": "@", "unit": "mmol/min/kPa"}
+    data = json.dumps(tree).replace('"@"', "7.460").encode()
+
+    dlco = read_normalised(data, UNITS).results.dlco
+
+    assert dlco is not None
+    assert ("7.460", "mmol/min/kPa", "mL/min/mm[Hg]", 2) == (
+        dlco.original.value if dlco.original else None,
+        dlco.original.unit if dlco.original else None,
+        dlco.unit,
+        dlco.decimals,
+    )
+
+
+def test_normalise_after_reading_normalised_changes_nothing():
+    """``normalise`` stays idempotent on what the one-build path returns (same objects back)."""
+    for path in SAMPLES:
+        if "malformed" in path.name:
+            continue
+        session = read_normalised(path.read_bytes(), UNITS)
+
+        assert session is normalise(session, UNITS)
+
+
+def _quantity_paths(node: Any, path: tuple[Any, ...] = ()) -> list[tuple[Any, ...]]:
+    if isinstance(node, dict):
+        if "unit" in node and "value" in node:
+            return [path]
+        return [p for k, v in node.items() for p in _quantity_paths(v, (*path, k))]
+    if isinstance(node, list):
+        return [p for i, v in enumerate(node) for p in _quantity_paths(v, (*path, i))]
+    return []
+
+
+@st.composite
+def unit_documents(draw: st.DrawFn) -> bytes:
+    """A sample with some quantities re-spelt, mis-dimensioned, negative, odd-typed or with extra keys."""
+    base = json.loads(draw(st.sampled_from(SAMPLES[:7])).read_text(), parse_float=Decimal)
+    if not isinstance(base, dict):
+        return b"[]"
+    doc = _rewrite(base, draw) if draw(st.booleans()) else base
+    paths = _quantity_paths(doc)
+    for path in draw(st.lists(st.sampled_from(paths), max_size=4)) if paths else []:
+        node = doc
+        for part in path:
+            node = node[part]
+        change = draw(st.integers(0, 9))
+        if change <= 4:
+            node["unit"] = draw(UNIT_SPELLINGS)
+        elif change == 5:
+            node["value"] = _Raw("-" + _number_text(draw).lstrip("-"))
+        elif change == 6:
+            node["value"] = draw(st.sampled_from(["7.4", True, None, [1], 1e308, 10**400]))
+        elif change == 7:
+            node[draw(st.sampled_from(["decimals", "original", "units"]))] = draw(
+                st.sampled_from([2, 13, -1, {"value": "7.460", "unit": "mmol/min/kPa"}, "x"])
+            )
+        elif change == 8:
+            node["value"] = _Raw(draw(st.sampled_from(["1e400", "1.0000000000000", "0.0000000001", "1e-320"])))
+        else:
+            node.pop(draw(st.sampled_from(["value", "unit"])), None)
+    return _dumps(doc).encode()
+
+
+@settings(max_examples=300, suppress_health_check=[HealthCheck.too_slow])
+@given(unit_documents())
+def test_unit_documents_normalise_identically_while_read(data: bytes):
+    """Any spelling, dimension, sign, type or extra key gives the same session or the same error."""
+    assert normalised_outcome(reference_normalised, data) == normalised_outcome(fast_normalised, data)
+
+
+@settings(max_examples=150, suppress_health_check=[HealthCheck.too_slow])
+@given(documents())
+def test_generated_documents_normalise_identically_while_read(data: bytes):
+    """Documents with numbers in every JSON spelling give the same normalised session or error."""
+    assert normalised_outcome(reference_normalised, data) == normalised_outcome(fast_normalised, data)
