@@ -23,6 +23,7 @@ from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from datetime import datetime
 from decimal import Decimal
+from functools import lru_cache
 from hashlib import sha1
 from typing import Any
 from urllib.parse import quote
@@ -69,6 +70,17 @@ _LAB_KEYS = frozenset({"hemoglobin", "carboxyhemoglobin"})
 # HL7 v2 table 0074 PF "Pulmonary Function" (DOMAIN.md 7.1: PFT IG DiagnosticReport uses v2-0074#PF)
 _PF = {"system": V2_0074, "code": "PF", "display": "Pulmonary Function"}
 _FLAG_DISPLAY = {"L": "Low", "N": "Normal", "H": "High"}
+# bundle_json's private path only: sub-values every Observation repeats, shared between
+# Observations and Bundles (orjson writes a shared object as often as it is referenced; the
+# dicts never leave bundle_json). to_bundle builds these afresh for each Observation.
+_SHARED_CATEGORIES = {
+    True: [{"coding": [_LABORATORY]}, {"coding": [_PF]}],
+    False: [{"coding": [_PROCEDURE]}, {"coding": [_PF]}],
+}
+_SHARED_INTERPRETATION = {
+    flag: [{"coding": [{"system": INTERPRETATION, "code": flag, "display": display}]}]
+    for flag, display in _FLAG_DISPLAY.items()
+}
 
 
 def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> Resource:
@@ -77,7 +89,7 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
     ``content`` is :func:`build_content` of the outcome in ``context.units``; pass it when it
     is already at hand (another emitter built it), otherwise it is built here.
     """
-    return _build(outcome, tables, context, content, _decimal)
+    return _build(outcome, tables, context, content, _decimal, shared=False)
 
 
 def _build(
@@ -86,14 +98,21 @@ def _build(
     context: EmitContext,
     content: ReportContent | None,
     number: Callable[[Quantity], object],
+    *,
+    shared: bool,
 ) -> Resource:
-    """The Bundle, with ``number`` giving the JSON value of each quantity's value."""
+    """The Bundle, with ``number`` giving the JSON value of each quantity's value.
+
+    ``shared``: repeated sub-values (code, category, subject, performer, interpretation) are
+    one object referenced from every Observation, for :func:`bundle_json`, which only
+    serialises the dicts. False: every Observation gets its own dicts, as ``to_bundle`` promises.
+    """
     require_aware(context.now)
     if content is None:
         content = build_content(outcome, tables, context.units)
     entries: list[Resource] = []
     subject = _subject(outcome, context, entries)
-    parts = _Parts.of(outcome, context, number)
+    parts = _Parts.of(outcome, context, number, shared)
     full_urls = {item.key: parts.full_url(item.key) for item in content.items}
     for item in content.items:
         resource = _observation(parts, item, tables, context, subject, full_urls)
@@ -117,40 +136,55 @@ class _Parts:
     performer: str
     correction: bool
     number: Callable[[Quantity], object]  # a quantity's value as it goes into the dicts
+    shared: bool  # repeated sub-values are one object (bundle_json only)
+    query_prefix: str  # ``identifier=`` + token of the system and of ``id_prefix``
+    name_prefix: bytes  # what the fullUrl's SHA-1 hashes before the key
+    performers: list[Resource]  # [the lab as performer]; used as is only when ``shared``
 
     @classmethod
-    def of(cls, outcome: Outcome, context: EmitContext, number: Callable[[Quantity], object]) -> _Parts:
+    def of(cls, outcome: Outcome, context: EmitContext, number: Callable[[Quantity], object], shared: bool) -> _Parts:
         session = outcome.session
         prefix = observation_identifier(outcome, "")
+        system = context.identifier_system
         lab = session.lab
+        performer = f"{lab.name}, {lab.site}" if lab.site else lab.name
         return cls(
             id_prefix=prefix,
-            identifier_system=context.identifier_system,
+            identifier_system=system,
             status=_status(context),
             effective=_instant(session.performed_at),
             issued=_instant(context.now),
-            performer=f"{lab.name}, {lab.site}" if lab.site else lab.name,
+            performer=performer,
             correction=context.correction,
             number=number,
+            shared=shared,
+            # a token part escapes and encodes character by character, so parts concatenate
+            query_prefix="identifier=" + _token_part(system) + "|" + _token_part(prefix),
+            name_prefix=_NAMESPACE_BYTES + f"{system}|{prefix}".encode(),
+            performers=[{"type": "Organization", "display": performer}],
         )
 
     def identifier(self, key: str) -> str:
         return self.id_prefix + key
 
     def full_url(self, key: str) -> str:
-        return _full_url(self.identifier_system, self.id_prefix + key)
+        """``_full_url(identifier_system, identifier(key))``, hashing the common prefix once."""
+        return "urn:uuid:" + _uuid5_hex(sha1(self.name_prefix + key.encode()).hexdigest())
 
     def entry(self, full_url: str, resource: Resource, kind: str, key: str) -> Resource:
         """Entry with its request: conditional create, or conditional update for a correction."""
-        query = _token_query(self.identifier_system, self.id_prefix + key)
+        query = self.query_prefix + _key_token(key)
         if self.correction:
             request = {"method": "PUT", "url": f"{kind}?{query}"}
         else:
             request = {"method": "POST", "url": kind, "ifNoneExist": query}
         return {"fullUrl": full_url, "resource": resource, "request": request}
 
-    def lab(self) -> Resource:
-        return {"type": "Organization", "display": self.performer}
+    def lab(self) -> list[Resource]:
+        """The performer list: the shared one, or a fresh copy."""
+        if self.shared:
+            return self.performers
+        return [{"type": "Organization", "display": self.performer}]
 
 
 def bundle_json(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> bytes:
@@ -159,7 +193,8 @@ def bundle_json(outcome: Outcome, tables: Tables, context: EmitContext, content:
     Values go into the dicts as the JSON fragments ``dumps`` would write for their Decimal
     (same bytes, without a ``default`` call per value).
     """
-    return orjson.dumps(_build(outcome, tables, context, content, _fragment), option=orjson.OPT_INDENT_2)
+    bundle = _build(outcome, tables, context, content, _fragment, shared=True)
+    return orjson.dumps(bundle, option=orjson.OPT_INDENT_2)
 
 
 def to_ndjson(outcomes: Iterable[Outcome], tables: Tables, context: EmitContext) -> dict[str, bytes]:
@@ -207,22 +242,33 @@ def _observation(
     subject: Resource,
     full_urls: Mapping[str, str],
 ) -> Resource:
-    category = _LABORATORY if item.key in _LAB_KEYS else _PROCEDURE
+    laboratory = item.key in _LAB_KEYS
+    if parts.shared:
+        category = _SHARED_CATEGORIES[laboratory]
+        concept = _shared_concept(item.code, code_system_uri(item.code, tables, context))
+        subject_value = subject
+    else:
+        category = [{"coding": [dict(_LABORATORY if laboratory else _PROCEDURE)]}, {"coding": [dict(_PF)]}]
+        concept = _concept(item.code, tables, context)
+        subject_value = _copy_subject(subject)
     resource: Resource = {
         "resourceType": "Observation",
-        "identifier": [{"system": parts.identifier_system, "value": parts.identifier(item.key)}],
+        "identifier": [{"system": parts.identifier_system, "value": parts.id_prefix + item.key}],
         "status": parts.status,
-        "category": [{"coding": [category]}, {"coding": [_PF]}],
-        "code": _concept(item.code, tables, context),
-        "subject": _copy_subject(subject),
+        "category": category,
+        "code": concept,
+        "subject": subject_value,
         "effectiveDateTime": parts.effective,
         "issued": parts.issued,
-        "performer": [parts.lab()],
+        "performer": parts.lab(),
         "valueQuantity": _quantity(item.quantity, parts.number),
     }
     if item.flag is not None:
-        coding = {"system": INTERPRETATION, "code": item.flag, "display": _FLAG_DISPLAY[item.flag]}
-        resource["interpretation"] = [{"coding": [coding]}]
+        if parts.shared:
+            resource["interpretation"] = _SHARED_INTERPRETATION[item.flag]
+        else:
+            coding = {"system": INTERPRETATION, "code": item.flag, "display": _FLAG_DISPLAY[item.flag]}
+            resource["interpretation"] = [{"coding": [coding]}]
     notes = _item_notes(item, context)
     if notes:
         resource["note"] = [{"text": text} for text in notes]
@@ -269,8 +315,17 @@ def _quantity(quantity: Quantity, number: Callable[[Quantity], object]) -> Resou
 
 
 def _concept(code: Code, tables: Tables, context: EmitContext) -> Resource:
-    system = code_system_uri(code, tables, context)
+    return _concept_of(code, code_system_uri(code, tables, context))
+
+
+def _concept_of(code: Code, system: str) -> Resource:
     return {"coding": [{"system": system, "code": code.code, "display": code.display}], "text": code.display}
+
+
+@lru_cache(maxsize=1024)
+def _shared_concept(code: Code, system: str) -> Resource:
+    """``_concept_of`` computed once per code and system: one object, for bundle_json only."""
+    return _concept_of(code, system)
 
 
 # ---------- DiagnosticReport ----------
@@ -288,12 +343,12 @@ def _report(
         "resourceType": "DiagnosticReport",
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier("report")}],
         "status": parts.status,
-        "category": [{"coding": [_PF]}],
+        "category": [{"coding": [dict(_PF)]}],
         "code": _concept(tables.codes.panel, tables, context),
         "subject": _copy_subject(subject),
         "effectiveDateTime": parts.effective,
         "issued": parts.issued,
-        "performer": [parts.lab()],
+        "performer": parts.lab(),
         "result": [{"reference": url} for url in results],
         "conclusion": _conclusion(content, context),
     }
@@ -397,6 +452,12 @@ def _token(system: str, value: str) -> str:
     return _token_part(system) + "|" + _token_part(value)
 
 
+@lru_cache(maxsize=256)
+def _key_token(key: str) -> str:
+    """:func:`_token_part` of an observation key (a few dozen fixed names: computed once each)."""
+    return _token_part(key)
+
+
 def _token_part(text: str) -> str:
     """One part of a token value, escaped and percent-encoded (character by character)."""
     if _PLAIN.fullmatch(text):
@@ -420,7 +481,11 @@ def uuid5_text(namespace: bytes, name: str) -> str:
     RFC 4122 section 4.3: SHA-1 of namespace + name, first 16 bytes, version 5 (the 13th hex
     digit becomes 5), RFC 4122 variant (the top two bits of the 17th hex digit become 10).
     """
-    h = sha1(namespace + name.encode("utf-8")).hexdigest()
+    return _uuid5_hex(sha1(namespace + name.encode("utf-8")).hexdigest())
+
+
+def _uuid5_hex(h: str) -> str:
+    """The version-5 UUID text of a SHA-1 hex digest (see :func:`uuid5_text`)."""
     return f"{h[:8]}-{h[8:12]}-5{h[13:16]}-{_VARIANT[h[16]]}{h[17:20]}-{h[20:32]}"
 
 

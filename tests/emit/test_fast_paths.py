@@ -10,12 +10,27 @@ import orjson
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bridge.emit.fhir import _decimal, _escape, _fragment, _raw_decimal, _token_part, bundle_json, uuid5_text
+from bridge.emit.fhir import (
+    _NAMESPACE_BYTES,
+    _decimal,
+    _escape,
+    _fragment,
+    _full_url,
+    _Parts,
+    _raw_decimal,
+    _token_part,
+    _token_query,
+    bundle_json,
+    dumps,
+    to_bundle,
+    uuid5_text,
+)
 from bridge.emit.hl7v2 import _CONTROL, _ESCAPES, _LINE_BREAK, escape, escape_formatted, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.emit.outputs import payloads
 from bridge.mapping import Tables
 from bridge.model import Outcome, Quantity
+from bridge.pipeline import process
 from tests.emit.test_hl7v2 import NOW
 
 # Text that exercises every branch: delimiters, line breaks, control characters, non-ASCII, surrogate-free.
@@ -97,3 +112,76 @@ def test_json_fragment_on_edge_values():
         quantity = Quantity(value=value, unit="L", decimals=decimals)
 
         assert orjson.dumps([_raw_decimal(_decimal(quantity))]) == orjson.dumps([_fragment(quantity)])
+
+
+# ---------- bundle_json's shared sub-values ----------
+
+FHIR_CONTEXTS = [
+    EmitContext(now=NOW),
+    EmitContext(now=NOW, units="si", correction=True, patient_reference="conditional-create"),
+    EmitContext(now=NOW, local_code_system="urn:example:local-codes", identifier_system="urn:x|y,z$ é"),
+]
+
+
+def _generated_outcomes(tables: Tables, count: int) -> list[Outcome]:
+    import sys
+    from pathlib import Path
+
+    sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "benchmarks"))
+    from bench_convert import generate
+
+    return [process(data, f"gen-{i}.json", tables) for i, data in enumerate(generate(count, seed=11))]
+
+
+def test_bundle_json_equals_to_bundle_written_by_dumps(sample_outcomes: dict[str, Outcome], tables: Tables):
+    """Sharing sub-values inside bundle_json changes no byte: same as dumps(to_bundle(...))."""
+    outcomes = list(sample_outcomes.values()) + _generated_outcomes(tables, 150)
+    for context in FHIR_CONTEXTS:
+        for outcome in outcomes:
+            assert dumps(to_bundle(outcome, tables, context), indent=True) == bundle_json(outcome, tables, context)
+
+
+def _containers(node: object, seen: list[int]) -> None:
+    if isinstance(node, dict | list):
+        seen.append(id(node))
+        for value in node.values() if isinstance(node, dict) else node:
+            _containers(value, seen)
+
+
+def test_to_bundle_returns_independent_dicts(sample_outcomes: dict[str, Outcome], tables: Tables):
+    """No dict or list appears twice in a to_bundle result, nor in two results: callers may mutate."""
+    context = EmitContext(now=NOW, patient_reference="conditional-create")
+    outcome = sample_outcomes["01-healthy-adult"]
+    first: list[int] = []
+    second: list[int] = []
+    one, two = to_bundle(outcome, tables, context), to_bundle(outcome, tables, context)  # both alive
+    _containers(one, first)
+    _containers(two, second)
+
+    assert (len(first), set()) == (len(set(first)), set(first) & set(second))
+
+
+@settings(max_examples=300)
+@given(system=TEXT, prefix=TEXT, key=st.sampled_from(["dlco", "va", "kco_predicted", "report", "x y|z"]))
+def test_bundle_parts_prefixes_equal_the_plain_computation(system: str, prefix: str, key: str):
+    """The token query and fullUrl from per-Bundle prefixes equal those of the whole identifier."""
+    parts = _Parts(
+        id_prefix=prefix,
+        identifier_system=system,
+        status="final",
+        effective="",
+        issued="",
+        performer="",
+        correction=False,
+        number=_fragment,
+        shared=True,
+        query_prefix="identifier=" + _token_part(system) + "|" + _token_part(prefix),
+        name_prefix=_NAMESPACE_BYTES + f"{system}|{prefix}".encode(),
+        performers=[],
+    )
+    entry = parts.entry("u", {}, "Observation", key)
+
+    assert (_token_query(system, prefix + key), _full_url(system, prefix + key)) == (
+        entry["request"]["ifNoneExist"],
+        parts.full_url(key),
+    )
