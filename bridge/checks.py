@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Iterator
+from functools import lru_cache
 
 from bridge.derive import age_in_years, gas_conditions, hb_factor
 from bridge.mapping import Tables
@@ -191,18 +192,30 @@ def check_bounds(session: Session, derived: Derived, tables: Tables) -> Iterator
 
 def _resolve(session: Session, path: str) -> Iterator[tuple[str, Quantity]]:
     """Quantities at a bounds path; ``manoeuvres[]`` expands to every manoeuvre."""
-    head, _, rest = path.partition(".")
-    if head == "manoeuvres[]":
+    per_manoeuvre, parts = _path_parts(path)
+    if per_manoeuvre:
+        rest = parts[0]
         for i, manoeuvre in enumerate(session.manoeuvres):
             value = getattr(manoeuvre, rest, None)
             if isinstance(value, Quantity):
                 yield f"manoeuvres[{i}].{rest}", value
         return
     node: object = session
-    for part in path.split("."):
+    for part in parts:
         node = getattr(node, part, None)
+        if node is None:
+            return  # getattr(None, part, None) is None all the way down
     if isinstance(node, Quantity):
         yield path, node
+
+
+@lru_cache(maxsize=256)
+def _path_parts(path: str) -> tuple[bool, tuple[str, ...]]:
+    """(expands per manoeuvre, attribute names) of a bounds path, split once per path."""
+    head, _, rest = path.partition(".")
+    if head == "manoeuvres[]":
+        return True, (rest,)
+    return False, tuple(path.split("."))
 
 
 def check_breath_hold(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:

@@ -17,6 +17,8 @@ from bridge.errors import InvalidField, UnitError
 from bridge.model import Measure, Original, Quantity, Session
 from bridge.units import UnitCatalogue, UnitDef, decimals_after_conversion
 
+# Format specs for 0-12 decimals (the range Quantity.decimals allows), built once.
+_FIXED = tuple(f".{n}f" for n in range(13))
 # A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.
 _Step = tuple[str, Measure | type[BaseModel], bool]
 
@@ -88,6 +90,8 @@ def format_number(value: float, decimals: int | None) -> str:
     """:func:`format_value` on a plain number and its reported decimals."""
     if decimals is None:
         return format(value, ".6g")
+    if decimals < len(_FIXED):
+        return format(value, _FIXED[decimals])
     return f"{value:.{decimals}f}"
 
 

@@ -280,6 +280,8 @@ def _observation(
 
 
 def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
+    if not item.notes and not item.computed_here and not context.correction:
+        return []
     notes = list(item.notes)
     if item.computed_here and not any(BRIDGE_NAME in note for note in notes):
         notes.append(COMPUTED_NOTE)

@@ -166,6 +166,8 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
 
 
 def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
+    if not item.derived_from:
+        return item
     kept = tuple(key for key in item.derived_from if key in present)
     if kept == item.derived_from:
         return item

@@ -131,7 +131,7 @@ def _canonical_quantity(node: dict[str, Any], measure: Measure, catalogue: UnitC
         return None
     if type(value) is not Decimal and type(value) is not int:
         return None  # a float (NaN, Infinity), text, true/false, null, object or list
-    decimals = _decimals_of(value)
+    decimals = _reported_decimals(value)
     number = float(value)
     if decimals > _MAX_DECIMALS or not math.isfinite(number):
         return None
@@ -173,7 +173,7 @@ def _decimals_in_place(node: dict[str, Any]) -> dict[str, Any]:
     if "unit" in node and "decimals" not in node:
         value = node.get("value")
         if type(value) is Decimal or type(value) is int:
-            decimals = _decimals_of(value)
+            decimals = _reported_decimals(value)
     for key, value in node.items():
         kind = type(value)
         if kind is Decimal:
@@ -196,6 +196,21 @@ def _list_in_place(items: list[Any]) -> None:
             _decimals_in_place(value)
         elif kind is list:
             _list_in_place(value)
+
+
+def _reported_decimals(value: Decimal | int) -> int:
+    """:func:`_decimals_of`, read off the Decimal's text when it has no exponent (cheaper).
+
+    ``str`` of a finite Decimal is plain exactly when its exponent is <= 0 and it is not
+    tiny; then the digits after the point are minus the exponent. Otherwise ask the tuple.
+    """
+    if type(value) is int:
+        return 0
+    text = str(value)
+    if "E" in text:
+        return _decimals_of(value)
+    point = text.find(".")
+    return 0 if point < 0 else len(text) - point - 1
 
 
 def _decimals_of(value: Decimal | int) -> int:

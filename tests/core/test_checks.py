@@ -163,3 +163,26 @@ def test_findings_are_collected_not_raised(tables: Tables):
     outcome = _variant("01-healthy-adult", break_it, tables)
 
     assert {"KCO_INCONSISTENT", "OUT_OF_RANGE"} <= _codes(outcome)
+
+
+def test_bounds_paths_resolve_as_attribute_chains(sample_outcomes, tables):
+    """Split-once bounds paths find exactly the quantities a getattr chain finds."""
+    from bridge.checks import _resolve
+
+    for outcome in sample_outcomes.values():
+        session = outcome.session
+        for path in tables.plausibility.bounds:
+            head, _, rest = path.partition(".")
+            if head == "manoeuvres[]":
+                expected = [
+                    (f"manoeuvres[{i}].{rest}", getattr(m, rest))
+                    for i, m in enumerate(session.manoeuvres)
+                    if getattr(m, rest, None) is not None
+                ]
+            else:
+                node: object = session
+                for part in path.split("."):
+                    node = getattr(node, part, None)
+                expected = [(path, node)] if node is not None else []
+
+            assert expected == list(_resolve(session, path))

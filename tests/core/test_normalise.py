@@ -7,7 +7,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from bridge.model import Measure, Quantity
-from bridge.normalise import express, format_value, normalise, normalise_quantity
+from bridge.normalise import express, format_number, format_value, normalise, normalise_quantity
 from bridge.resources import load_tables
 
 UNITS = load_tables().units
@@ -59,3 +59,15 @@ def test_quantity_normalisation_is_idempotent(value, unit, decimals):
     assert once == twice
     assert once.unit == "mL/min/mm[Hg]"
     assert unit == once.original.unit
+
+
+@settings(max_examples=500)
+@given(
+    value=st.floats(allow_nan=True, allow_infinity=True),
+    decimals=st.none() | st.integers(min_value=0, max_value=20),
+)
+def test_format_number_equals_the_plain_format(value: float, decimals: int | None):
+    """The precomputed format specs write what the f-string with a nested spec writes."""
+    expected = format(value, ".6g") if decimals is None else f"{value:.{decimals}f}"
+
+    assert expected == format_number(value, decimals)

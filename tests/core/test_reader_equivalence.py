@@ -26,8 +26,10 @@ from bridge.normalise import normalise
 from bridge.readers.common import decode_text, first_validation_error
 from bridge.readers.json_export import (
     _decimals_in_place,
+    _decimals_of,
     _normalised_in_place,
     _parse,
+    _reported_decimals,
     _with_decimals,
     read_export,
     read_normalised,
@@ -83,6 +85,13 @@ def test_in_place_conversion_equals_reference(tree: dict[str, Any]):
     expected = repr(_with_decimals(tree))
 
     assert expected == repr(_decimals_in_place(copy.deepcopy(tree)))
+
+
+@settings(max_examples=500)
+@given(NUMBERS | st.decimals(allow_nan=True, allow_infinity=True) | st.sampled_from([Decimal("0E-7"), Decimal("1E-7")]))
+def test_reported_decimals_from_text_equal_the_tuple(value: Decimal | int):
+    """Reading the decimals off the Decimal's text gives what its exponent gives."""
+    assert _decimals_of(value) == _reported_decimals(value)
 
 
 def test_reported_digits_are_kept():
