@@ -25,9 +25,7 @@ def main(repeat: int = 5, number: int = 200) -> None:
     for path in sorted(ROOT.glob("samples/0[1-79]*.json")):
         outcome = process(path.read_bytes(), path.name, tables)
         for name, func in (("to_bundle", to_bundle), ("bundle_json", bundle_json)):
-            times = timeit.repeat(
-                lambda f=func, o=outcome: f(o, tables, context), repeat=repeat, number=number
-            )
+            times = timeit.repeat(lambda f=func, o=outcome: f(o, tables, context), repeat=repeat, number=number)
             per_call_ms = statistics.median(times) / number * 1000
             print(f"{path.stem:36} {name:12} {per_call_ms:7.3f} ms")
 
