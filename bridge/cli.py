@@ -23,7 +23,7 @@ from pathlib import Path
 import orjson
 
 from bridge import __version__
-from bridge.config import Destination, load_settings
+from bridge.config import Destination, EmitSettings, load_settings
 from bridge.emit.observations import EmitContext
 from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, file_stem, gate, payloads
 from bridge.errors import BridgeError, ConfigError, InputError, UnreadableInput
@@ -185,15 +185,14 @@ def cmd_check(args: argparse.Namespace, tables: Tables) -> int:
 
 def emit_context(args: argparse.Namespace) -> EmitContext:
     """The shell reads the clock; the emitters only receive it."""
-    return EmitContext(
-        now=datetime.now(UTC).replace(microsecond=0),
-        units=args.units,
+    emit = EmitSettings(
         sending_application=args.sending_application,
         sending_facility=args.sending_facility,
         receiving_application=args.receiving_application,
         receiving_facility=args.receiving_facility,
         patient_reference=args.patient_reference,
     )
+    return emit.context(datetime.now(UTC), args.units)
 
 
 def _kinds(text: str) -> tuple[OutputKind, ...]:

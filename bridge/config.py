@@ -14,10 +14,11 @@ from __future__ import annotations
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 from typing import Any, Literal
 
-from bridge.emit.observations import PatientReference
+from bridge.emit.observations import EmitContext, PatientReference
 from bridge.emit.outputs import OUTPUT_KINDS, OutputKind
 from bridge.errors import ConfigError
 from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES
@@ -59,6 +60,22 @@ class EmitSettings:
     local_code_system: str | None = None
     patient_reference: PatientReference = "identifier"
     processing_id: str = "P"
+
+    def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
+        """The emitters' context for one message: these settings plus the time the shell read."""
+        return EmitContext(
+            now=now.replace(microsecond=0),
+            units=units,
+            sending_application=self.sending_application,
+            sending_facility=self.sending_facility,
+            receiving_application=self.receiving_application,
+            receiving_facility=self.receiving_facility,
+            local_code_system=self.local_code_system,
+            identifier_system=self.identifier_system,
+            patient_reference=self.patient_reference,
+            correction=correction,
+            processing_id=self.processing_id,
+        )
 
 
 @dataclass(frozen=True, slots=True)

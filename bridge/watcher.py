@@ -41,7 +41,6 @@ from watchdog.events import (
 )
 
 from bridge.config import Destination, Settings
-from bridge.emit.observations import EmitContext
 from bridge.emit.outputs import gate, payloads
 from bridge.errors import InputError, UnreadableInput
 from bridge.files import free_name, move_durably, write_atomically
@@ -216,20 +215,8 @@ class Intake:
         return IntakeResult(path, state)
 
     def _messages(self, outcome: Outcome, destination: Destination, correction: bool) -> list[NewMessage]:
-        emit = self.settings.emit
-        context = EmitContext(
-            now=datetime.fromtimestamp(self.clock(), UTC).replace(microsecond=0),
-            units=destination.units,
-            sending_application=emit.sending_application,
-            sending_facility=emit.sending_facility,
-            receiving_application=emit.receiving_application,
-            receiving_facility=emit.receiving_facility,
-            local_code_system=emit.local_code_system,
-            identifier_system=emit.identifier_system,
-            patient_reference=emit.patient_reference,
-            correction=correction,
-            processing_id=emit.processing_id,
-        )
+        now = datetime.fromtimestamp(self.clock(), UTC)
+        context = self.settings.emit.context(now, destination.units, correction)
         patient = outcome.session.patient
         patient_key = hashlib.sha256(f"{patient.id_system}|{patient.id}".encode()).hexdigest()[:32]
         return [

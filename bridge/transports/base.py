@@ -14,10 +14,10 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Protocol
 
+from bridge.emit.outputs import FHIR_JSON, HL7_V2_ER7  # one definition, where payloads are made
 from bridge.errors import ConfigError
 
-FHIR_JSON = "application/fhir+json"
-HL7_V2_ER7 = "x-application/hl7-v2+er7"
+__all__ = ["FHIR_JSON", "HL7_V2_ER7", "DeliveryReceipt", "OutgoingMessage", "TlsOptions", "Transport"]
 
 
 @dataclass(frozen=True, slots=True)

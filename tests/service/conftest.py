@@ -16,13 +16,11 @@ import signal
 import socket
 import subprocess
 import sys
-import threading
 import time
 import urllib.error
 import urllib.request
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
-from http.server import ThreadingHTTPServer
 from pathlib import Path
 from typing import Any
 
@@ -32,8 +30,7 @@ from hl7.mllp import HL7StreamReader, HL7StreamWriter  # type: ignore[import-unt
 
 from bridge.ledger import Ledger, LedgerSummary
 from tests.conftest import SAMPLES
-from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, ack
-from tests.shell.conftest import _handler as fhir_handler
+from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, ack, serve_fhir
 
 # Samples that go through (07 is blocked as a probable unit mislabel, 08 is malformed).
 GOOD = tuple(sorted(p for p in SAMPLES.glob("*.json") if not p.name.startswith(("07-", "08-"))))
@@ -157,16 +154,8 @@ def receiver() -> Iterator[RecordingReceiver]:
 @pytest.fixture
 def fhir_server() -> Iterator[FhirEndpoint]:
     """The shell tests' loopback FHIR endpoint (transaction Bundles at its base URL)."""
-    endpoint = FhirEndpoint()
-    server = ThreadingHTTPServer((LOOPBACK, 0), fhir_handler(endpoint))
-    server.daemon_threads = True
-    endpoint.url = f"http://{LOOPBACK}:{server.server_address[1]}/fhir"
-    thread = threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    yield endpoint
-    server.shutdown()
-    server.server_close()
-    thread.join(timeout=2)
+    with serve_fhir() as endpoint:
+        yield endpoint
 
 
 # ---- the service process -----------------------------------------------------------------

@@ -302,19 +302,28 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
     return Handler
 
 
-@pytest.fixture
-def fhir_endpoint() -> Iterator[FhirEndpoint]:
-    """A loopback HTTP endpoint taking FHIR transaction Bundles at its base URL."""
+@contextlib.contextmanager
+def serve_fhir() -> Iterator[FhirEndpoint]:
+    """Run a loopback FHIR endpoint for the duration of the block (shared with tests/service)."""
     endpoint = FhirEndpoint()
     server = ThreadingHTTPServer((LOOPBACK, 0), _handler(endpoint))
     server.daemon_threads = True
     endpoint.url = f"http://{LOOPBACK}:{server.server_address[1]}/fhir"
     thread = threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True)
     thread.start()
-    yield endpoint
-    server.shutdown()
-    server.server_close()
-    thread.join(timeout=2)
+    try:
+        yield endpoint
+    finally:
+        server.shutdown()
+        server.server_close()
+        thread.join(timeout=2)
+
+
+@pytest.fixture
+def fhir_endpoint() -> Iterator[FhirEndpoint]:
+    """A loopback HTTP endpoint taking FHIR transaction Bundles at its base URL."""
+    with serve_fhir() as endpoint:
+        yield endpoint
 
 
 def bundle(test_id: str = "T-0001") -> bytes:
