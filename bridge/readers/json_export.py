@@ -147,27 +147,12 @@ def _canonical_quantity(node: dict[str, Any], measure: Measure, catalogue: UnitC
     }
 
 
-def _with_decimals(node: Any) -> Any:
-    """Turn parsed decimals into floats, recording reported decimals on quantity objects."""
-    if isinstance(node, dict):
-        out = {key: _with_decimals(value) for key, value in node.items()}
-        value = node.get("value")
-        if "unit" in node and isinstance(value, Decimal | int) and not isinstance(value, bool):
-            out.setdefault("decimals", _decimals_of(value))
-        return out
-    if isinstance(node, list):
-        return [_with_decimals(item) for item in node]
-    if isinstance(node, Decimal):
-        return float(node)
-    return node
-
-
 def _decimals_in_place(node: dict[str, Any]) -> dict[str, Any]:
-    """What :func:`_with_decimals` returns, computed on the freshly parsed tree in place.
+    """Parsed decimals as floats, with each quantity object's reported ``decimals``, in place.
 
     The tree comes from ``json.loads(..., parse_float=Decimal)``: every value is exactly a
     dict, list, str, int, bool, None, float (NaN, Infinity) or Decimal, so exact type tests
-    are enough. Used on the reading path; ``_with_decimals`` stays as the reference.
+    are enough. (tests/core/test_reader_equivalence.py keeps a rebuilding reference version.)
     """
     decimals = None
     if "unit" in node and "decimals" not in node:

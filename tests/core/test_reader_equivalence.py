@@ -30,7 +30,6 @@ from bridge.readers.json_export import (
     _normalised_in_place,
     _parse,
     _reported_decimals,
-    _with_decimals,
     read_export,
     read_normalised,
 )
@@ -39,6 +38,21 @@ from bridge.resources import load_tables
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLES = sorted(ROOT.glob("samples/*.json"))
 sys.path.insert(0, str(ROOT / "benchmarks"))
+
+
+def _with_decimals(node: Any) -> Any:
+    """Turn parsed decimals into floats, recording reported decimals on quantity objects."""
+    if isinstance(node, dict):
+        out = {key: _with_decimals(value) for key, value in node.items()}
+        value = node.get("value")
+        if "unit" in node and isinstance(value, Decimal | int) and not isinstance(value, bool):
+            out.setdefault("decimals", _decimals_of(value))
+        return out
+    if isinstance(node, list):
+        return [_with_decimals(item) for item in node]
+    if isinstance(node, Decimal):
+        return float(node)
+    return node
 
 
 def reference_read(data: bytes, source: str = "") -> Session:
