@@ -31,6 +31,7 @@ from urllib.parse import quote
 import orjson
 
 from bridge.emit.observations import (
+    BRIDGE_NAME,
     EmitContext,
     ReportContent,
     ResultItem,
@@ -50,9 +51,7 @@ OBSERVATION_CATEGORY = "http://terminology.hl7.org/CodeSystem/observation-catego
 INTERPRETATION = "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation"
 PARTICIPANT_TYPE = "http://terminology.hl7.org/CodeSystem/provenance-participant-type"
 SOURCE_SYSTEM = "urn:dlco-bridge:source-file"  # identifier system of the input file's hash
-BRIDGE_NAME = "dlco-bridge"
 LLN_TEXT = "LLN (5th percentile)"
-COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 
 # Fixed namespace for uuid5 fullUrls: same identifier -> same fullUrl on every run and machine.
 _NAMESPACE = uuid.uuid5(uuid.NAMESPACE_URL, "urn:dlco-bridge:fhir")
@@ -280,11 +279,9 @@ def _observation(
 
 
 def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
-    if not item.notes and not item.computed_here and not context.correction:
+    if not item.notes and not context.correction:
         return []
-    notes = list(item.notes)
-    if item.computed_here and not any(BRIDGE_NAME in note for note in notes):
-        notes.append(COMPUTED_NOTE)
+    notes = list(item.notes)  # a computed item's note comes with it from build_content
     if context.correction:
         notes.append("Corrected result: replaces the value sent earlier for this test.")
     return notes

@@ -20,6 +20,8 @@ from bridge.normalise import express
 from bridge.units import UnitSystem
 
 PatientReference = Literal["conditional-create", "identifier"]
+BRIDGE_NAME = "dlco-bridge"
+COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 
 
 @dataclass(frozen=True, slots=True)
@@ -110,11 +112,12 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         if low_shown is not None:
             flag = "L" if shown.value < low_shown.value else "N"
         extra = tuple(by_path.get(path, ())) if path else ()
+        if computed and not any(BRIDGE_NAME in note for note in notes + extra):
+            extra += (COMPUTED_NOTE,)  # both outputs say which values the lab did not report
         items.append(
             ResultItem(key, tables.codes.codes[key], shown, low_shown, flag, derived_from, computed, notes + extra)
         )
 
-    computed_note = ("computed by dlco-bridge from the reported values",)
     add("dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco")
     add("va", r.va, low=lln.va if lln else None, path="results.va")
     if r.kco is not None:
@@ -126,7 +129,6 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             low=lln.kco if lln else None,
             derived_from=("dlco", "va"),
             computed=True,
-            notes=computed_note,
         )
     if r.dlco_hb_adjusted is not None:
         add(
