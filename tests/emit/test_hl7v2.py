@@ -419,3 +419,12 @@ def test_over_long_display_text_is_cut_whole_escapes(sample_outcomes, tables, tm
     text = str(hl7.parse(er7).segment("OBR")[4][0][1])
     assert (True, True) == (193 <= len(text) <= 199, text.endswith("..."))
     assert set() == set(text.replace("a\\F\\", "")) - {"."}
+
+
+def test_values_computed_by_the_bridge_say_so(sample_outcomes, tables):
+    """A % predicted the lab did not report is followed by an NTE saying the bridge computed it."""
+    # common practice: a receiver must be able to tell a lab-reported value from a derived one
+    segments = to_oru(sample_outcomes["01-healthy-adult"], tables, GOLDEN_CONTEXT).split("\r")
+    obx = next(i for i, s in enumerate(segments) if s.startswith("OBX|") and "|98130-8^" in s)
+
+    assert "NTE|1|L|Computed by dlco-bridge from the reported values." == segments[obx + 1]
