@@ -25,8 +25,8 @@ import orjson
 from bridge import __version__
 from bridge.config import Destination, EmitSettings, load_settings
 from bridge.emit.observations import EmitContext
-from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, file_stem, gate, payloads
-from bridge.errors import BridgeError, ConfigError, InputError, UnreadableInput
+from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, Payload, file_stem, gate, payloads
+from bridge.errors import BridgeError, ConfigError, InputError, OutputInvalid, UnreadableInput
 from bridge.fhirshow import describe_bundle
 from bridge.hl7show import describe_er7
 from bridge.ledger import Ledger, ServiceLock
@@ -43,6 +43,7 @@ from bridge.transports.fhir_rest import FhirRestTransport
 from bridge.transports.file import FileTransport
 from bridge.transports.mllp import MllpTransport
 from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
+from bridge.validate import problems
 
 EXIT_OK = 0
 EXIT_SETUP = 1
@@ -92,6 +93,12 @@ def build_parser() -> argparse.ArgumentParser:
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
     convert.add_argument("--to", default=_env("TO", "fhir,hl7"), help="fhir, hl7 or both (env DLCO_BRIDGE_TO)")
     convert.add_argument("--out", type=Path, default=Path(_env("OUT", "out")), help="output folder")
+    convert.add_argument(
+        "--validate",
+        action="store_true",
+        default=_env("VALIDATE", "") in ("1", "true", "yes"),
+        help="check every Bundle with fhir.resources and every ORU with hl7apy STRICT before writing it",
+    )
     _add_common(convert)
     _add_emit_options(convert)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
@@ -220,6 +227,8 @@ def convert_files(
         try:
             gate(result, blocking)
             built = payloads(result, tables, context, kinds)
+            if getattr(args, "validate", False):
+                _validated(built, result)
         except InputError as exc:
             results.append((path, exc, []))
             continue
@@ -230,6 +239,16 @@ def convert_files(
             written.append(out / receipt.text)
         results.append((path, result, written))
     return results
+
+
+def _validated(built: Sequence[Payload], outcome: Outcome) -> None:
+    """Refuse the input when an independent validator rejects what was built for it."""
+    for payload in built:
+        found = problems(payload)
+        if found:
+            what = "FHIR Bundle (fhir.resources R4B)" if payload.kind == "fhir" else "ORU^R01 (hl7apy STRICT)"
+            more = f" (+{len(found) - 1} more)" if len(found) > 1 else ""
+            raise OutputInvalid("(output)", f"a valid {what}: {found[0]}{more}", outcome.source)
 
 
 def cmd_convert(args: argparse.Namespace, tables: Tables) -> int:

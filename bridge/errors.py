@@ -9,7 +9,8 @@ Each branch maps to exactly one action in the shell::
     │   ├── MissingField      a required field is absent
     │   ├── InvalidField      a field is present but has the wrong type or value
     │   ├── UnitError         a unit that is unknown or of the wrong dimension
-    │   └── BlockedByFinding  a finding configured as blocking stops emission
+    │   ├── BlockedByFinding  a finding configured as blocking stops emission
+    │   └── OutputInvalid     what was built for it fails independent validation
     ├── MappingError          a field map or code table is broken: fatal at start-up
     ├── ConfigError           the settings are broken: fatal at start-up
     ├── DeliveryError         retry with back-off
@@ -85,6 +86,10 @@ class UnitError(InputError):
 
 class BlockedByFinding(InputError):
     """A finding that local configuration marks as blocking; nothing is emitted."""
+
+
+class OutputInvalid(InputError):
+    """The message built for this input fails independent validation; nothing is written."""
 
 
 class MappingError(BridgeError):

@@ -135,8 +135,8 @@ def _long_names(segment: str, version: str) -> dict[int, str]:
 def _library(version: str) -> Any:
     """hl7apy's reference tables for ``version`` (a module), or None."""
     try:
-        from hl7apy import load_library  # type: ignore[import-untyped]  # no type hints shipped
-        from hl7apy.exceptions import UnsupportedVersion  # type: ignore[import-untyped]
+        from hl7apy import load_library
+        from hl7apy.exceptions import UnsupportedVersion
     except ImportError:  # hl7apy is optional: positions only
         return None
     try:

@@ -23,6 +23,7 @@ CORE = [
     "schema.py",
     "fhirshow.py",
     "hl7show.py",
+    "validate.py",
     "readers",
     "emit",
 ]

@@ -123,3 +123,24 @@ def test_show_summarises_a_bundle(tmp_path, capsys):
     assert "Bundle type=transaction" in out
     assert "19911-7" in out
     assert "15.1 mL/min/mm[Hg]" in out
+
+
+def test_convert_validate_passes_good_samples(tmp_path, capsys):
+    """--validate checks each output with fhir.resources and hl7apy STRICT; the samples pass."""
+    # source: fhir.resources R4B models and hl7apy STRICT (independent libraries from PyPI)
+    code = main(["convert", str(SAMPLES / "06-three-manoeuvres.json"), "--validate", "--out", str(tmp_path)])
+
+    assert 0 == code
+    assert 2 == len(list(tmp_path.iterdir()))
+
+
+def test_validate_reports_an_invalid_payload():
+    """An ORU that hl7apy cannot parse and a Bundle with an unknown element are both reported."""
+    from bridge.emit.outputs import FHIR_JSON, HL7_V2_ER7, Payload
+    from bridge.validate import problems
+
+    oru = Payload("hl7", "x", HL7_V2_ER7, b"MSH|^~\\&|A|B|C|D|20260310||ORU^R01^ORU_R01|1|P|9.9\r")
+    bundle = Payload("fhir", "x", FHIR_JSON, b'{"resourceType": "Bundle", "type": "transaction", "entri": []}')
+
+    assert [] != problems(oru)
+    assert ["entri: Extra inputs are not permitted"] == problems(bundle)
