@@ -8,7 +8,6 @@ All data is invented: the inputs are the bundled fictional samples with new test
 
 from __future__ import annotations
 
-import asyncio
 import contextlib
 import json
 import os
@@ -24,13 +23,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import hl7  # type: ignore[import-untyped]  # python-hl7 ships no type hints
 import pytest
-from hl7.mllp import HL7StreamReader, HL7StreamWriter  # type: ignore[import-untyped]
 
 from bridge.ledger import Ledger, LedgerSummary
 from tests.conftest import SAMPLES
-from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, ack, serve_fhir
+from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, serve_fhir
 
 # Samples that go through (07 is blocked as a probable unit mislabel, 08 is malformed).
 GOOD = tuple(sorted(p for p in SAMPLES.glob("*.json") if not p.name.startswith(("07-", "08-"))))
@@ -113,30 +110,18 @@ class RecordingReceiver(MllpReceiver):
     acked: list[Acked] = field(default_factory=list)
     refuse_tests: dict[str, str] = field(default_factory=dict)
 
-    async def _handle(self, reader: HL7StreamReader, writer: HL7StreamWriter) -> None:
-        self.connections += 1
-        self._writers.add(writer)
-        try:
-            while True:
-                message = await reader.readmessage()
-                control_id = str(message.segment("MSH")(10))
-                self.received.append(control_id)
-                if self.delay:
-                    await asyncio.sleep(self.delay)
-                test_id = str(message.segment("OBR")(3))
-                patient = str(message.segment("PID")(3)(1)(1))
-                statuses = tuple(str(s(11)) for s in message.segments("OBX"))
-                refusal = self.refuse_tests.get(test_id)
-                # source: HL7 v2.5.1 ch. 2, MSA-1 acknowledgment codes (AA accept, AE error)
-                code = "AE" if refusal is not None else self.answer
-                writer.writeblock(ack(code, control_id, refusal or self.text))
-                await writer.drain()
-                self.acked.append(Acked(control_id, patient, test_id, statuses, code))
-        except (asyncio.IncompleteReadError, ConnectionError, hl7.ParseException):
-            pass
-        finally:
-            self._writers.discard(writer)
-            writer.close()
+    def reply_to(self, message: Any, control_id: str) -> tuple[str, str, str]:
+        refusal = self.refuse_tests.get(str(message.segment("OBR")(3)))
+        # source: HL7 v2.5.1 ch. 2, MSA-1 acknowledgment codes (AA accept, AE error)
+        if refusal is not None:
+            return "AE", control_id, refusal
+        return self.answer, control_id, self.text
+
+    def on_answered(self, message: Any, control_id: str, code: str) -> None:
+        test_id = str(message.segment("OBR")(3))
+        patient = str(message.segment("PID")(3)(1)(1))
+        statuses = tuple(str(s(11)) for s in message.segments("OBX"))
+        self.acked.append(Acked(control_id, patient, test_id, statuses, code))
 
     def accepted(self) -> list[Acked]:
         return [a for a in list(self.acked) if a.code == "AA"]

@@ -135,6 +135,16 @@ class MllpReceiver:
             with contextlib.suppress(ConnectionError):
                 await writer.wait_closed()
 
+    def reply_to(self, message: Any, control_id: str) -> tuple[str, str, str]:
+        """(MSA-1 code, MSA-2 control id, text) to answer ``message`` with."""
+        answered = self.ack_control_id or control_id
+        if control_id in self.refuse:
+            return "AE", answered, self.refuse[control_id]
+        return self.answer, answered, self.text
+
+    def on_answered(self, message: Any, control_id: str, code: str) -> None:
+        """Called after each answer went out (a hook for recording receivers)."""
+
     async def _handle(self, reader: HL7StreamReader, writer: HL7StreamWriter) -> None:
         self.connections += 1
         self._writers.add(writer)
@@ -145,13 +155,10 @@ class MllpReceiver:
                 self.received.append(control_id)
                 if self.delay:
                     await asyncio.sleep(self.delay)
-                answered = self.ack_control_id or control_id
-                if control_id in self.refuse:
-                    reply = ack("AE", answered, self.refuse[control_id])
-                else:
-                    reply = ack(self.answer, answered, self.text)
-                writer.writeblock(reply)
+                code, answered, text = self.reply_to(message, control_id)
+                writer.writeblock(ack(code, answered, text))
                 await writer.drain()
+                self.on_answered(message, control_id, code)
         except (asyncio.IncompleteReadError, ConnectionError, hl7.ParseException):
             pass
         finally:
