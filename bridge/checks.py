@@ -9,7 +9,7 @@ Quantities are in canonical (traditional) units here; messages say the unit.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from functools import lru_cache
 
 from bridge.derive import age_in_years, gas_conditions, hb_factor
@@ -30,8 +30,14 @@ LOW_PRESSURE_MMHG = 700.0  # flag the altitude adjustment below this PB (about 7
 Rule = Callable[[Session, Derived, Tables], Iterator[Finding]]
 
 
+# Finding's own validator without BaseModel.__init__ around it: the same checks and model.
+_validate_finding = Finding.__pydantic_validator__.validate_python
+
+
 def _finding(code: str, severity: Severity, path: str, message: str) -> Finding:
-    return Finding(code=code, severity=severity, path=path, message=message)
+    """``Finding(code=code, severity=severity, path=path, message=message)``."""
+    finding: Finding = _validate_finding({"code": code, "severity": severity, "path": path, "message": message})
+    return finding
 
 
 def _rel(a: float, b: float) -> float:
@@ -177,9 +183,23 @@ def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iter
 
 
 def check_bounds(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    convert = tables.units.convert
     for path, bound in tables.plausibility.bounds.items():
-        for where, quantity in _resolve(session, path):
-            value = tables.units.convert(quantity.value, quantity.unit, bound.unit)
+        per_manoeuvre, parts = _path_parts(path)
+        located: Iterable[tuple[str, Quantity]]
+        if per_manoeuvre:
+            located = _resolve(session, path)
+        else:  # _resolve's attribute chain, without a generator per path
+            node: object = session
+            for part in parts:
+                node = getattr(node, part, None)
+                if node is None:
+                    break
+            if not isinstance(node, Quantity):
+                continue
+            located = ((path, node),)
+        for where, quantity in located:
+            value = convert(quantity.value, quantity.unit, bound.unit)
             if not bound.low <= value <= bound.high:
                 yield _finding(
                     "OUT_OF_RANGE",
@@ -246,7 +266,8 @@ def check_haemoglobin(session: Session, derived: Derived, tables: Tables) -> Ite
         return
     if hb is None:
         return
-    factor = hb_factor(session)
+    age = age_in_years(session)
+    factor = hb_factor(session, age)
     if factor is None:
         yield _finding(
             "HB_ADJUSTMENT_NOT_COMPUTED",
@@ -262,7 +283,7 @@ def check_haemoglobin(session: Session, derived: Derived, tables: Tables) -> Ite
             Severity.INFO,
             "conditions.hemoglobin",
             f"Hb {hb.value:.1f} g/dL: DLCO adjusted to standard Hb is {derived.dlco_hb_adjusted.value:.1f} "
-            f"mL/min/mmHg (factor {factor:.3f}, age {age_in_years(session):.0f} y).",
+            f"mL/min/mmHg (factor {factor:.3f}, age {age:.0f} y).",
         )
     if reported is None or measured is None or abs(factor - 1) <= ADJUSTMENT_TOLERANCE:
         return
@@ -367,4 +388,7 @@ def run_checks(
     session: Session, derived: Derived, tables: Tables, rules: tuple[Rule, ...] = DEFAULT_RULES
 ) -> tuple[Finding, ...]:
     """Every finding of every rule, in rule order."""
-    return tuple(finding for rule in rules for finding in rule(session, derived, tables))
+    found: list[Finding] = []
+    for rule in rules:
+        found.extend(rule(session, derived, tables))
+    return tuple(found)

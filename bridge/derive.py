@@ -55,38 +55,53 @@ def derive(session: Session, tables: Tables) -> Derived:
     """Everything recomputable from a normalised session."""
     age = age_in_years(session)
     gas = gas_conditions(session)
-    computed = [_recompute(session, m, gas) for m in session.manoeuvres]
-    grades = _grades(session, computed, tables)
-    assessments = tuple(
-        ManoeuvreAssessment(
-            index=i,
-            va=_q(va, "L", 2) if va is not None else None,
-            dlco=_q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
-            grade=g.grade,
-            grade_reasons=g.reasons,
-        )
-        for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
-    )
-    selection = _selection(computed, grades, tables)
     measured = session.results.dlco
+    dlco_from: Quantity | None = None
+    va_from: Quantity | None = None
+    assessments: tuple[ManoeuvreAssessment, ...] = ()
+    session_grade: str | None = None
+    if session.manoeuvres:  # without manoeuvres: no grades, nothing selected, no means
+        computed = [_recompute(session, m, gas) for m in session.manoeuvres]
+        grades = _grades(session, computed, tables)
+        assessments = tuple(
+            ManoeuvreAssessment(
+                index=i,
+                va=_q(va, "L", 2) if va is not None else None,
+                dlco=_q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
+                grade=g.grade,
+                grade_reasons=g.reasons,
+            )
+            for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
+        )
+        selection = _selection(computed, grades, tables)
+        dlco_from = _mean_of(computed, selection, 1, DLCO_UNIT)
+        va_from = _mean_of(computed, selection, 0, "L")
+        session_grade = selection[1]
     return Derived(
         age_years=round(age, 2),
         kco=_kco(session),
-        dlco_hb_adjusted=_hb_adjusted(session),
+        dlco_hb_adjusted=_scaled(measured, hb_factor(session, age)),
         dlco_pressure_adjusted=_scaled(measured, _pressure_factor(session, gas)),
         dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
-        dlco_from_manoeuvres=_mean_of(computed, selection, 1, DLCO_UNIT),
-        va_from_manoeuvres=_mean_of(computed, selection, 0, "L"),
+        dlco_from_manoeuvres=dlco_from,
+        va_from_manoeuvres=va_from,
         manoeuvres=assessments,
-        session_grade=selection[1] if session.manoeuvres else None,
+        session_grade=session_grade,
         dlco_percent_predicted=_percent(session.results.dlco, _pred(session, "dlco")),
         kco_percent_predicted=_percent(session.results.kco, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
     )
 
 
+# Quantity's own validator, called without BaseModel.__init__ around it (about a third
+# cheaper): the same checks (a NaN or an infinity is refused) and the same model.
+_validate_quantity = Quantity.__pydantic_validator__.validate_python
+
+
 def _q(value: float, unit: str, decimals: int) -> Quantity:
-    return Quantity(value=value, unit=unit, decimals=decimals)
+    """``Quantity(value=value, unit=unit, decimals=decimals)``: validated, so never NaN or infinite."""
+    quantity: Quantity = _validate_quantity({"value": value, "unit": unit, "decimals": decimals})
+    return quantity
 
 
 def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[float | None, float | None]:
@@ -172,16 +187,16 @@ def _kco(session: Session) -> Quantity | None:
     return _q(phys.transfer_coefficient(r.dlco.value, r.va.value), KCO_UNIT, 3)
 
 
-def _hb_adjusted(session: Session) -> Quantity | None:
-    return _scaled(session.results.dlco, hb_factor(session))
+def hb_factor(session: Session, age: float | None = None) -> float | None:
+    """The Cotes factor for this session, or None when Hb or a usable sex is missing.
 
-
-def hb_factor(session: Session) -> float | None:
-    """The Cotes factor for this session, or None when Hb or a usable sex is missing."""
+    ``age``: :func:`age_in_years` of the session when the caller has it already.
+    """
     hb = session.conditions.hemoglobin
     if hb is None or hb.value <= 0 or session.patient.sex not in (Sex.MALE, Sex.FEMALE):
         return None
-    return phys.hb_adjustment_factor(hb.value, session.patient.sex is Sex.MALE, age_in_years(session))
+    years = age_in_years(session) if age is None else age
+    return phys.hb_adjustment_factor(hb.value, session.patient.sex is Sex.MALE, years)
 
 
 def _pressure_factor(session: Session, gas: GasConditions) -> float | None:
