@@ -41,7 +41,7 @@ from bridge.emit.observations import (
 )
 from bridge.mapping import Code, Tables
 from bridge.model import Outcome, Quantity
-from bridge.normalise import format_value
+from bridge.normalise import format_number, format_value
 
 Resource = dict[str, Any]
 
@@ -244,7 +244,8 @@ def _observation(
     laboratory = item.key in _LAB_KEYS
     if parts.shared:
         category = _SHARED_CATEGORIES[laboratory]
-        concept = _shared_concept(item.code, code_system_uri(item.code, tables, context))
+        code = item.code
+        concept = _shared_concept(code.system, code.code, code.display, code_system_uri(code, tables, context))
         subject_value = subject
     else:
         category = [{"coding": [dict(_LABORATORY if laboratory else _PROCEDURE)]}, {"coding": [dict(_PF)]}]
@@ -268,9 +269,8 @@ def _observation(
         else:
             coding = {"system": INTERPRETATION, "code": item.flag, "display": _FLAG_DISPLAY[item.flag]}
             resource["interpretation"] = [{"coding": [coding]}]
-    notes = _item_notes(item, context)
-    if notes:
-        resource["note"] = [{"text": text} for text in notes]
+    if item.notes or context.correction:
+        resource["note"] = [{"text": text} for text in _item_notes(item, context)]
     if item.low is not None:
         resource["referenceRange"] = [{"low": _quantity(item.low, parts.number), "text": LLN_TEXT}]
     if item.derived_from:
@@ -298,10 +298,13 @@ def _fragment(quantity: Quantity) -> orjson.Fragment:
     ``str(Decimal(text))`` is ``text`` itself for fixed-point text whose first significant
     digit (or last zero) lies above 1e-6; only exponents and tiny values need the Decimal.
     """
-    text = format_value(quantity)
-    if "e" in text or "E" in text or text.lstrip("-").startswith("0.000000"):
+    text = format_number(quantity.value, quantity.decimals)
+    if "e" in text or "E" in text or text.startswith(_TINY):
         text = str(Decimal(text))
     return orjson.Fragment(text.encode("ascii"))
+
+
+_TINY = ("0.000000", "-0.000000")  # fixed-point text below 1e-6 (format writes at most one "-")
 
 
 def _quantity(quantity: Quantity, number: Callable[[Quantity], object]) -> Resource:
@@ -322,9 +325,12 @@ def _concept_of(code: Code, system: str) -> Resource:
 
 
 @lru_cache(maxsize=1024)
-def _shared_concept(code: Code, system: str) -> Resource:
-    """``_concept_of`` computed once per code and system: one object, for bundle_json only."""
-    return _concept_of(code, system)
+def _shared_concept(code_system: str, code: str, display: str, system: str) -> Resource:
+    """``_concept_of`` computed once per code and system: one object, for bundle_json only.
+
+    Keyed on the code's fields (strings hash in C; the dataclass hash is Python code).
+    """
+    return _concept_of(Code(code_system, code, display), system)
 
 
 # ---------- DiagnosticReport ----------

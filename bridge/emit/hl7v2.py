@@ -46,7 +46,7 @@ from bridge.emit.observations import EmitContext, ReportContent, ResultItem, bui
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.mapping import Code, Tables
 from bridge.model import Outcome, Patient, Sex
-from bridge.normalise import format_value
+from bridge.normalise import format_number
 
 SEGMENT_SEPARATOR = "\r"
 FIELD_SEPARATOR = "|"
@@ -121,20 +121,31 @@ def escape_formatted(text: str) -> str:
 
 def numeric_text(text: str) -> str:
     """An NM value: plain decimal digits, never exponent notation (``1e-05`` -> ``0.00001``)."""
-    if "e" not in text.lower():
+    if "e" not in text and "E" not in text:
         return text
     return format(Decimal(text), "f")
 
 
 def hl7_timestamp(moment: datetime) -> str:
     """A TS value with seconds and the UTC offset, e.g. ``20260310120000+0000``."""
-    if moment.utcoffset() is None:
+    offset = moment.utcoffset()
+    if offset is None:
         raise ValueError(f"an HL7 timestamp needs a time zone; got naive {moment.isoformat()}")
-    return moment.strftime("%Y%m%d%H%M%S%z")
+    seconds = offset.days * 86400 + offset.seconds
+    if moment.year < 1000 or offset.microseconds or seconds % 60:
+        return moment.strftime("%Y%m%d%H%M%S%z")  # unpadded years, offsets with seconds: as strftime
+    # what strftime writes, without its cost (a few microseconds with %z)
+    sign, minutes = ("-", -seconds // 60) if seconds < 0 else ("+", seconds // 60)
+    return (
+        f"{moment.year}{moment.month:02d}{moment.day:02d}{moment.hour:02d}{moment.minute:02d}{moment.second:02d}"
+        f"{sign}{minutes // 60:02d}{minutes % 60:02d}"
+    )
 
 
 def hl7_date(day: date) -> str:
-    return day.strftime("%Y%m%d")
+    if day.year < 1000:
+        return day.strftime("%Y%m%d")  # strftime does not pad the year
+    return f"{day.year}{day.month:02d}{day.day:02d}"
 
 
 # ---------- segments ----------
@@ -209,16 +220,19 @@ def _obr(outcome: Outcome, tables: Tables, now: str, performed: str, status: str
 def _observations(content: ReportContent, status: str, observed: str) -> Iterable[str]:
     for set_id, item in enumerate(content.items, start=1):
         yield _obx(set_id, item, status, observed)
-        yield from _ntes(item.notes)
+        if item.notes:
+            yield from _ntes(item.notes)
 
 
 def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
-    value = numeric_text(format_value(item.quantity))
+    quantity, low_q = item.quantity, item.low
+    value = numeric_text(format_number(quantity.value, quantity.decimals))
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
-    unit = _unit_text(item.quantity.unit, item.key)
-    coded = _coded(item.code, item.key)
-    low = f">{numeric_text(format_value(item.low))}" if item.low is not None else ""
+    unit = _unit_text(quantity.unit, item.key)
+    code = item.code
+    coded = _coded_text(code.system, code.code, code.display, item.key)
+    low = f">{numeric_text(format_number(low_q.value, low_q.decimals))}" if low_q is not None else ""
     flag = item.flag or ""  # HL7 table 0078
     # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
     # (HL7 table 0085), -14 date/time of the observation. Written out: the last field is never
@@ -250,11 +264,16 @@ def _unit_text(unit: str, key: str) -> str:
     return _code_text(unit, "units.toml", f"unit of {key}")
 
 
-@lru_cache(maxsize=1024)
 def _coded(code: Code, key: str) -> str:
-    """CE: identifier^text^coding system (OBR-4, OBX-3). Pure; cached per code value and key."""
-    identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")
-    return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
+    """CE: identifier^text^coding system (OBR-4, OBX-3)."""
+    return _coded_text(code.system, code.code, code.display, key)
+
+
+@lru_cache(maxsize=1024)
+def _coded_text(system: str, code_value: str, display: str, key: str) -> str:
+    """:func:`_coded` of a code given by its fields (strings hash in C). Pure; cached."""
+    identifier = _code_text(code_value, "codes.toml", f"codes.{key}.code")
+    return _components(identifier, _free_text(display, ST_LENGTH), CODING_SYSTEMS[system])
 
 
 def _code_text(text: str, table: str, where: str) -> str:
@@ -280,6 +299,7 @@ def _name_part(field: str, value: str | None) -> str:
     return escaped
 
 
+@lru_cache(maxsize=256)
 def _namespace_setting(key: str, value: str) -> str:
     escaped = escape(value)
     if not escaped or len(escaped) > IS_LENGTH:

@@ -12,6 +12,7 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 from datetime import datetime
+from functools import lru_cache
 from typing import Literal
 
 from bridge.mapping import Code, Tables
@@ -80,12 +81,15 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     pred = r.predicted
     lln = pred.lower_limits if pred is not None else None
     cat = tables.units
+    targets: dict[str, str] = {}  # unit -> the unit it is shown in, looked up once per call
 
-    def show(q: Quantity | None) -> Quantity | None:
-        if q is None:
-            return None
-        dimension = cat.units[q.unit].dimension
-        return express(q, cat.display_unit(dimension, units), cat)
+    def show(q: Quantity) -> Quantity:
+        target = targets.get(q.unit)
+        if target is None:
+            target = targets[q.unit] = cat.display_unit(cat.units[q.unit].dimension, units)
+        if q.unit == target:
+            return q  # what express() returns for the same unit
+        return express(q, target, cat)
 
     by_path: dict[str, list[str]] = {}
     for finding in outcome.findings:
@@ -93,6 +97,7 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             by_path.setdefault(finding.path, []).append(_finding_note(finding))
 
     items: list[ResultItem] = []
+    codes = tables.codes.codes
 
     def add(
         key: str,
@@ -104,19 +109,19 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         path: str = "",
         notes: tuple[str, ...] = (),
     ) -> None:
-        shown = show(q)
-        if shown is None:
+        if q is None:
             return
-        low_shown = show(low)
+        shown = show(q)
         flag: Flag | None = None
-        if low_shown is not None:
+        low_shown = None
+        if low is not None:
+            low_shown = show(low)
             flag = "L" if shown.value < low_shown.value else "N"
-        extra = tuple(by_path.get(path, ())) if path else ()
+        found = by_path.get(path) if path and by_path else None
+        extra = tuple(found) if found else ()
         if computed and not any(BRIDGE_NAME in note for note in notes + extra):
             extra += (COMPUTED_NOTE,)  # both outputs say which values the lab did not report
-        items.append(
-            ResultItem(key, tables.codes.codes[key], shown, low_shown, flag, derived_from, computed, notes + extra)
-        )
+        items.append(ResultItem(key, codes[key], shown, low_shown, flag, derived_from, computed, notes + extra))
 
     add("dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco")
     add("va", r.va, low=lln.va if lln else None, path="results.va")
@@ -161,9 +166,12 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     add("carboxyhemoglobin", c.carboxyhemoglobin, path="conditions.carboxyhemoglobin")
     add("barometric_pressure", c.barometric_pressure)
     present = {item.key for item in items}
-    items = [_keep_present_sources(item, present) for item in items]
-    carried = {note for item in items for note in item.notes}
-    attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
+    items = [_keep_present_sources(item, present) if item.derived_from else item for item in items]
+    if by_path:
+        carried = {note for item in items for note in item.notes}
+        attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
+    else:
+        attached = set()  # no finding to attach: nothing to collect
     return ReportContent(tuple(items), _report_notes(outcome, attached))
 
 
@@ -189,6 +197,7 @@ def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
     return tuple(notes)
 
 
+@lru_cache(maxsize=1024)
 def lab_slug(name: str) -> str:
     """``Lowmarsh Respiratory Lab (fictional)`` -> ``lowmarsh-respiratory-lab-fictional``."""
     return re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-") or "lab"

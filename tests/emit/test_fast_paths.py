@@ -4,9 +4,12 @@ from __future__ import annotations
 
 import re
 import uuid
+from datetime import datetime, timedelta, timezone
+from decimal import Decimal
 from urllib.parse import quote
 
 import orjson
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -25,7 +28,17 @@ from bridge.emit.fhir import (
     to_bundle,
     uuid5_text,
 )
-from bridge.emit.hl7v2 import _CONTROL, _ESCAPES, _LINE_BREAK, escape, escape_formatted, to_oru
+from bridge.emit.hl7v2 import (
+    _CONTROL,
+    _ESCAPES,
+    _LINE_BREAK,
+    escape,
+    escape_formatted,
+    hl7_date,
+    hl7_timestamp,
+    numeric_text,
+    to_oru,
+)
 from bridge.emit.observations import EmitContext, build_content
 from bridge.emit.outputs import payloads
 from bridge.mapping import Tables
@@ -185,3 +198,27 @@ def test_bundle_parts_prefixes_equal_the_plain_computation(system: str, prefix: 
         entry["request"]["ifNoneExist"],
         parts.full_url(key),
     )
+
+
+OFFSETS = st.one_of(
+    st.integers(min_value=-1439, max_value=1439).map(lambda m: timedelta(minutes=m)),
+    st.integers(min_value=-86399, max_value=86399).map(lambda s: timedelta(seconds=s)),
+)
+
+
+@settings(max_examples=1000)
+@given(moment=st.datetimes(min_value=datetime(1, 1, 1), max_value=datetime(9999, 12, 30)), offset=OFFSETS)
+def test_hl7_timestamp_equals_strftime(moment: datetime, offset: timedelta):
+    """The formatted TS and date are what strftime writes (unpadded years and odd offsets included)."""
+    aware = moment.replace(tzinfo=timezone(offset))
+
+    assert aware.strftime("%Y%m%d%H%M%S%z") == hl7_timestamp(aware)
+    assert aware.date().strftime("%Y%m%d") == hl7_date(aware.date())
+
+
+@pytest.mark.parametrize("text", ["1.5", "0.00001", "1e-05", "-2.5E-07", "12", "-0.000"])
+def test_numeric_text_writes_exponents_out(text: str):
+    """Exponent notation in either case becomes fixed point; other text is unchanged."""
+    expected = format(Decimal(text), "f") if "e" in text.lower() else text
+
+    assert expected == numeric_text(text)
