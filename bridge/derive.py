@@ -64,12 +64,14 @@ def derive(session: Session, tables: Tables) -> Derived:
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
         grades = _grades(session, computed, tables)
         assessments = tuple(
-            ManoeuvreAssessment(
-                index=i,
-                va=_q(va, "L", 2) if va is not None else None,
-                dlco=_q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
-                grade=g.grade,
-                grade_reasons=g.reasons,
+            _validate_assessment(
+                {
+                    "index": i,
+                    "va": _q(va, "L", 2) if va is not None else None,
+                    "dlco": _q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
+                    "grade": g.grade,
+                    "grade_reasons": g.reasons,
+                }
             )
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
@@ -93,9 +95,10 @@ def derive(session: Session, tables: Tables) -> Derived:
     )
 
 
-# Quantity's own validator, called without BaseModel.__init__ around it (about a third
+# The models' own validators, called without BaseModel.__init__ around them (about a third
 # cheaper): the same checks (a NaN or an infinity is refused) and the same model.
 _validate_quantity = Quantity.__pydantic_validator__.validate_python
+_validate_assessment = ManoeuvreAssessment.__pydantic_validator__.validate_python
 
 
 def _q(value: float, unit: str, decimals: int) -> Quantity:
