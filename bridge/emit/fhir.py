@@ -504,7 +504,9 @@ def _status(context: EmitContext) -> str:
 
 def _instant(moment: datetime) -> str:
     require_aware(moment)
-    return moment.isoformat(timespec="milliseconds" if moment.microsecond else "seconds")
+    if moment.microsecond:
+        return moment.isoformat(timespec="milliseconds")
+    return moment.isoformat()  # the same text as timespec="seconds" when there are no microseconds
 
 
 def require_aware(moment: datetime) -> None:

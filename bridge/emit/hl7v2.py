@@ -131,21 +131,18 @@ def hl7_timestamp(moment: datetime) -> str:
     offset = moment.utcoffset()
     if offset is None:
         raise ValueError(f"an HL7 timestamp needs a time zone; got naive {moment.isoformat()}")
-    seconds = offset.days * 86400 + offset.seconds
-    if moment.year < 1000 or offset.microseconds or seconds % 60:
+    if moment.year < 1000 or moment.microsecond or offset.microseconds or offset.seconds % 60:
         return moment.strftime("%Y%m%d%H%M%S%z")  # unpadded years, offsets with seconds: as strftime
-    # what strftime writes, without its cost (a few microseconds with %z)
-    sign, minutes = ("-", -seconds // 60) if seconds < 0 else ("+", seconds // 60)
-    return (
-        f"{moment.year}{moment.month:02d}{moment.day:02d}{moment.hour:02d}{moment.minute:02d}{moment.second:02d}"
-        f"{sign}{minutes // 60:02d}{minutes % 60:02d}"
-    )
+    # what strftime writes, cut out of isoformat() (about half the time of strftime with %z):
+    # YYYY-MM-DDTHH:MM:SS+HH:MM
+    text = moment.isoformat()
+    return text[0:4] + text[5:7] + text[8:10] + text[11:13] + text[14:16] + text[17:19] + text[19:22] + text[23:25]
 
 
 def hl7_date(day: date) -> str:
     if day.year < 1000:
         return day.strftime("%Y%m%d")  # strftime does not pad the year
-    return f"{day.year}{day.month:02d}{day.day:02d}"
+    return day.isoformat().replace("-", "")
 
 
 # ---------- segments ----------

@@ -19,6 +19,7 @@ from bridge.emit.fhir import (
     _escape,
     _fragment,
     _full_url,
+    _instant,
     _Parts,
     _raw_decimal,
     _token_part,
@@ -222,3 +223,12 @@ def test_numeric_text_writes_exponents_out(text: str):
     expected = format(Decimal(text), "f") if "e" in text.lower() else text
 
     assert expected == numeric_text(text)
+
+
+@settings(max_examples=500)
+@given(moment=st.datetimes(min_value=datetime(1, 1, 1), max_value=datetime(9999, 12, 30)), offset=OFFSETS)
+def test_fhir_instant_equals_isoformat_with_its_timespec(moment: datetime, offset: timedelta):
+    """Seconds, or milliseconds when there are microseconds: as isoformat with that timespec."""
+    aware = moment.replace(tzinfo=timezone(offset))
+
+    assert aware.isoformat(timespec="milliseconds" if aware.microsecond else "seconds") == _instant(aware)
