@@ -9,7 +9,7 @@ Quantities are in canonical (traditional) units here; messages say the unit.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable, Iterable, Iterator
+from collections.abc import Callable, Iterator
 from functools import lru_cache
 
 from bridge.derive import age_in_years, gas_conditions, hb_factor
@@ -183,23 +183,9 @@ def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iter
 
 
 def check_bounds(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
-    convert = tables.units.convert
     for path, bound in tables.plausibility.bounds.items():
-        per_manoeuvre, parts = _path_parts(path)
-        located: Iterable[tuple[str, Quantity]]
-        if per_manoeuvre:
-            located = _resolve(session, path)
-        else:  # _resolve's attribute chain, without a generator per path
-            node: object = session
-            for part in parts:
-                node = getattr(node, part, None)
-                if node is None:
-                    break
-            if not isinstance(node, Quantity):
-                continue
-            located = ((path, node),)
-        for where, quantity in located:
-            value = convert(quantity.value, quantity.unit, bound.unit)
+        for where, quantity in _resolve(session, path):
+            value = tables.units.convert(quantity.value, quantity.unit, bound.unit)
             if not bound.low <= value <= bound.high:
                 yield _finding(
                     "OUT_OF_RANGE",
@@ -388,7 +374,4 @@ def run_checks(
     session: Session, derived: Derived, tables: Tables, rules: tuple[Rule, ...] = DEFAULT_RULES
 ) -> tuple[Finding, ...]:
     """Every finding of every rule, in rule order."""
-    found: list[Finding] = []
-    for rule in rules:
-        found.extend(rule(session, derived, tables))
-    return tuple(found)
+    return tuple(finding for rule in rules for finding in rule(session, derived, tables))
