@@ -66,6 +66,7 @@ from pathlib import Path
 from typing import Any
 
 import orjson
+from bench_convert import FAMILY, GIVEN  # the same invented names (run from benchmarks/)
 from hl7.mllp import start_hl7_server  # type: ignore[import-untyped]  # python-hl7 ships no type hints
 
 from bridge.resources import samples_dir
@@ -82,8 +83,6 @@ TEMPLATES = (  # the bundled samples that are neither refused nor blocked
     "05-child.json",
     "06-three-manoeuvres.json",
 )
-GIVEN = ("Alder", "Brisk", "Corin", "Dorran", "Elsin", "Ferelith", "Gorse", "Hollin", "Ives", "Juniper")
-FAMILY = ("Fictive", "Madeup", "Notreal", "Placeholder", "Sampleson", "Testwright")
 START_TIMEOUT_S = 30.0
 STOP_TIMEOUT_S = 15.0
 ACK_TIMEOUT_S = 10.0
