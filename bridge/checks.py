@@ -44,9 +44,17 @@ def _rel(a: float, b: float) -> float:
     return abs(a - b) / max(abs(b), 1e-12)
 
 
-def _near_factor(ratio: float, factor: float, tolerance: float) -> bool:
+def _ratio(a: float, b: float) -> float | None:
+    """``a / b``; None when there is no finite ratio (a zero divisor, an overflow)."""
+    if b == 0:
+        return None
+    ratio = a / b
+    return ratio if math.isfinite(ratio) else None
+
+
+def _near_factor(ratio: float | None, factor: float, tolerance: float) -> bool:
     """True when ``ratio`` is about ``factor`` or ``1/factor``."""
-    if ratio <= 0:
+    if ratio is None or ratio <= 0:
         return False
     return abs(abs(math.log(ratio)) - math.log(factor)) <= math.log(1.0 + tolerance)
 
@@ -56,8 +64,9 @@ def check_kco(session: Session, derived: Derived, tables: Tables) -> Iterator[Fi
     if kco is None or computed is None:
         return
     if _rel(kco.value, computed.value) > KCO_TOLERANCE:
-        ratio = kco.value / computed.value
-        if _near_factor(ratio, tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance):
+        if _near_factor(
+            _ratio(kco.value, computed.value), tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance
+        ):
             return  # reported by check_unit_mislabel with the evidence
         yield _finding(
             "KCO_INCONSISTENT",
@@ -78,10 +87,10 @@ def check_unit_mislabel(session: Session, derived: Derived, tables: Tables) -> I
     tolerance = tables.plausibility.mislabel_tolerance
     r = session.results
     mutual = None
-    if r.dlco is not None and r.kco is not None and r.va is not None and r.va.value > 0:
-        implied = r.kco.value * r.va.value
-        if _near_factor(r.dlco.value / implied, factor, tolerance):
-            mutual = f"DLCO is {r.dlco.value / implied:.3g}x KCO x VA"
+    if r.dlco is not None and r.kco is not None and r.va is not None:
+        ratio = _ratio(r.dlco.value, r.kco.value * r.va.value)
+        if ratio is not None and _near_factor(ratio, factor, tolerance):
+            mutual = f"DLCO is {ratio:.3g}x KCO x VA"
     suspects = {}
     for path, value in (("results.dlco", r.dlco), ("results.kco", r.kco)):
         if value is not None:
@@ -122,7 +131,7 @@ def _mislabel_evidence(
     r = session.results
     if path == "results.dlco" and derived.dlco_from_manoeuvres is not None:
         gas = derived.dlco_from_manoeuvres.value
-        if _near_factor(value.value / gas, factor, tol):
+        if _near_factor(_ratio(value.value, gas), factor, tol):
             yield f"the manoeuvre gas data give {gas:.3g} mL/min/mmHg", True
     predicted = getattr(r.predicted, path.split(".")[1], None) if r.predicted else None
     if isinstance(predicted, Quantity) and predicted.value > 0:
@@ -170,8 +179,11 @@ def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iter
     ):
         if reported is None or computed is None:
             continue
-        ratio = reported.value / computed.value
-        mislabel = _near_factor(ratio, tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance)
+        mislabel = _near_factor(
+            _ratio(reported.value, computed.value),
+            tables.units.traditional_per_si,
+            tables.plausibility.mislabel_tolerance,
+        )
         if _rel(reported.value, computed.value) > RESULT_TOLERANCE and not (name == "dlco" and mislabel):
             yield _finding(
                 f"RESULT_{name.upper()}_MISMATCH",

@@ -26,7 +26,7 @@ from bridge import __version__
 from bridge.config import Destination, EmitSettings, load_settings
 from bridge.emit.observations import EmitContext
 from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, Payload, file_stem, gate, payloads
-from bridge.errors import BridgeError, ConfigError, InputError, OutputInvalid, UnreadableInput
+from bridge.errors import BridgeError, ConfigError, InputError, OutputInvalid, ProcessingFailed, UnreadableInput
 from bridge.fhirshow import describe_bundle
 from bridge.hl7show import describe_er7
 from bridge.ledger import Ledger, ServiceLock
@@ -159,29 +159,42 @@ def read_input(path: Path, limits: Limits) -> bytes:
 
 
 def run_inputs(paths: Sequence[Path], tables: Tables, limits: Limits) -> Iterator[tuple[Path, Outcome | InputError]]:
-    """Process every input; an InputError is returned in place of its outcome, never raised."""
+    """Process every input; an InputError is returned in place of its outcome, never raised.
+
+    Any other exception is a defect of the bridge, reported for that file alone
+    (:class:`ProcessingFailed`) so that the other files are still processed.
+    """
     for path in expand(paths):
         try:
             yield path, process(read_input(path, limits), str(path), tables, limits)
         except InputError as exc:
             yield path, exc
+        except Exception as exc:  # one file must never stop the others
+            yield path, ProcessingFailed.wrapping(exc, str(path))
 
 
 def cmd_check(args: argparse.Namespace, tables: Tables) -> int:
     units: UnitSystem = args.units
     limits = Limits(max_input_bytes=args.max_bytes)
     failed = 0
-    reports = []
-    for _, result in run_inputs(args.files, tables, limits):
+    reports: list[dict[str, object]] = []
+    for path, result in run_inputs(args.files, tables, limits):
+        report: dict[str, object] | str | InputError
         if isinstance(result, InputError):
-            failed += 1
-            print(result.line(), file=sys.stderr)
-            reports.append({"source": result.source, "error": result.line()})
-            continue
-        if args.json:
-            reports.append(outcome_json(result, tables, units))
+            report = result
         else:
-            print(outcome_text(result, tables, units), end="\n\n")
+            try:
+                report = outcome_json(result, tables, units) if args.json else outcome_text(result, tables, units)
+            except Exception as exc:  # one file must never stop the others
+                report = ProcessingFailed.wrapping(exc, str(path))
+        if isinstance(report, InputError):
+            failed += 1
+            print(report.line(), file=sys.stderr)
+            reports.append({"source": report.source, "error": report.line()})
+        elif isinstance(report, str):
+            print(report, end="\n\n")
+        else:
+            reports.append(report)
     if args.json:
         document = {"caution": CAUTION, "files": reports}
         sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
@@ -231,6 +244,9 @@ def convert_files(
                 _validated(built, result)
         except InputError as exc:
             results.append((path, exc, []))
+            continue
+        except Exception as exc:  # one file must never stop the others
+            results.append((path, ProcessingFailed.wrapping(exc, str(path)), []))
             continue
         written = []
         for payload in built:

@@ -8,6 +8,7 @@ grades and the reported mean. Inputs must be normalised first. Pure.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -64,14 +65,12 @@ def derive(session: Session, tables: Tables) -> Derived:
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
         grades = _grades(session, computed, tables)
         assessments = tuple(
-            _validate_assessment(
-                {
-                    "index": i,
-                    "va": _q(va, "L", 2) if va is not None else None,
-                    "dlco": _q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
-                    "grade": g.grade,
-                    "grade_reasons": g.reasons,
-                }
+            ManoeuvreAssessment(
+                index=i,
+                va=_q(va, "L", 2) if va is not None else None,
+                dlco=_q(dlco, DLCO_UNIT, 2) if dlco is not None else None,
+                grade=g.grade,
+                grade_reasons=g.reasons,
             )
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
@@ -95,21 +94,25 @@ def derive(session: Session, tables: Tables) -> Derived:
     )
 
 
-# The models' own validators, called without BaseModel.__init__ around them (about a third
-# cheaper): the same checks (a NaN or an infinity is refused) and the same model.
-_validate_quantity = Quantity.__pydantic_validator__.validate_python
-_validate_assessment = ManoeuvreAssessment.__pydantic_validator__.validate_python
-
-
-def _q(value: float, unit: str, decimals: int) -> Quantity:
-    """``Quantity(value=value, unit=unit, decimals=decimals)``: validated, so never NaN or infinite."""
-    quantity: Quantity = _validate_quantity({"value": value, "unit": unit, "decimals": decimals})
-    return quantity
+def _q(value: float, unit: str, decimals: int) -> Quantity | None:
+    """The computed value as a quantity; None when it cannot be carried (an infinity or NaN)."""
+    if not math.isfinite(value):
+        return None
+    return Quantity(value=value, unit=unit, decimals=decimals)
 
 
 def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[float | None, float | None]:
-    """(VA BTPS in L, DLCO in mL/min/mmHg) from one manoeuvre's gas data; None where impossible."""
-    if m.inspired_tracer_fraction <= 0 or m.alveolar_tracer_fraction <= 0:
+    """(VA BTPS in L, DLCO in mL/min/mmHg) from one manoeuvre's gas data; None where impossible.
+
+    Each guard keeps an equation inside its domain (a divisor above zero, a logarithm of a
+    ratio above one); a value that overflows is dropped, not carried.
+    """
+    if (
+        m.inspired_tracer_fraction <= 0
+        or m.alveolar_tracer_fraction <= 0
+        or gas.pb_mmhg <= phys.PH2O_BODY_MMHG
+        or gas.room_temperature_c <= -phys.ZERO_CELSIUS_K
+    ):
         return None, None
     vi = m.inspired_volume.value
     if session.method.inspired_volume_condition == "BTPS":
@@ -128,16 +131,15 @@ def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[floa
     fa_co0 = phys.initial_alveolar_co_fraction(
         m.inspired_co_fraction, m.inspired_tracer_fraction, m.alveolar_tracer_fraction
     )
-    if va <= 0 or m.alveolar_co_fraction <= 0 or fa_co0 <= m.alveolar_co_fraction:
-        return (va if va > 0 else None), None
+    if not 0 < va < math.inf:
+        return None, None
+    bht = m.breath_hold_time.value
+    if bht <= 0 or m.alveolar_co_fraction <= 0 or not m.alveolar_co_fraction < fa_co0 < math.inf:
+        return va, None
     dlco = phys.dlco_single_breath(
-        phys.stpd_from_btps_l(va, gas.pb_mmhg),
-        m.breath_hold_time.value,
-        gas.pb_mmhg,
-        fa_co0,
-        m.alveolar_co_fraction,
+        phys.stpd_from_btps_l(va, gas.pb_mmhg), bht, gas.pb_mmhg, fa_co0, m.alveolar_co_fraction
     )
-    return va, dlco
+    return va, (dlco if math.isfinite(dlco) else None)
 
 
 def _grades(
@@ -180,7 +182,7 @@ def _mean_of(
     present = [v for v in values if v is not None]
     if not present:
         return None
-    return _q(sum(present) / len(present), unit, 2)
+    return _q(math.fsum(present) / len(present), unit, 2)
 
 
 def _kco(session: Session) -> Quantity | None:
@@ -217,7 +219,7 @@ def _cohb_factor(session: Session) -> float | None:
 
 
 def _scaled(quantity: Quantity | None, factor: float | None) -> Quantity | None:
-    if quantity is None or factor is None:
+    if quantity is None or factor is None or not factor > 0:
         return None
     return _q(quantity.value * factor, quantity.unit, max(quantity.decimals or 0, 1))
 

@@ -10,7 +10,8 @@ Each branch maps to exactly one action in the shell::
     │   ├── InvalidField      a field is present but has the wrong type or value
     │   ├── UnitError         a unit that is unknown or of the wrong dimension
     │   ├── BlockedByFinding  a finding configured as blocking stops emission
-    │   └── OutputInvalid     what was built for it fails independent validation
+    │   ├── OutputInvalid     what was built for it fails independent validation
+    │   └── ProcessingFailed  the bridge itself failed on it (a defect to report)
     ├── MappingError          a field map or code table is broken: fatal at start-up
     ├── ConfigError           the settings are broken: fatal at start-up
     ├── DeliveryError         retry with back-off
@@ -90,6 +91,20 @@ class BlockedByFinding(InputError):
 
 class OutputInvalid(InputError):
     """The message built for this input fails independent validation; nothing is written."""
+
+
+class ProcessingFailed(InputError):
+    """The bridge failed on this input with an unexpected exception: a defect, not bad input.
+
+    The shell's last line of defence (``check``, ``convert``, the service's intake) turns any
+    other exception raised for one input into this, so that one file never stops the rest;
+    the input is quarantined like bad input and the report asks for it to be sent in.
+    """
+
+    @classmethod
+    def wrapping(cls, exc: Exception, source: str) -> ProcessingFailed:
+        failed = cls("(internal)", f"no internal error, got {type(exc).__name__}: {exc} (a defect: please report it)")
+        return failed.with_source(source) if source else failed  # type: ignore[return-value]
 
 
 class MappingError(BridgeError):

@@ -54,6 +54,9 @@ def checked_unit(unit_text: str, value: float, measure: Measure, catalogue: Unit
         raise UnitError(f"{path}.unit", unit_text, expected)
     if value < 0 and not measure.signed:
         raise InvalidField(f"{path}.value", f"a value >= 0, got {value:g}")
+    if not catalogue.within_limits(value, unit):
+        limit, base = catalogue.limits[unit.dimension], catalogue.dimensions[unit.dimension]
+        raise InvalidField(f"{path}.value", f"a finite value of at most {limit:g} {base} in magnitude, got {value:g}")
     return unit
 
 

@@ -95,7 +95,8 @@ def grade_manoeuvres(manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float, 
 
 
 def _grade(facts: ManoeuvreFacts, largest_vc_l: float, table: GradeTable, close_va: bool) -> Grade:
-    vi_vc = 100.0 * facts.inspired_volume_l / largest_vc_l
+    # No positive VC to compare with: VI/VC cannot be shown to meet any floor.
+    vi_vc = 100.0 * facts.inspired_volume_l / largest_vc_l if largest_vc_l > 0 else 0.0
     missed: list[str] = []
     for rule in table.rules:
         missed = _misses(rule, facts, vi_vc, close_va)

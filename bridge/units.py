@@ -58,6 +58,7 @@ class UnitCatalogue:
     units: Mapping[str, UnitDef]
     aliases: Mapping[str, str]
     dimensions: Mapping[str, str]
+    limits: Mapping[str, float]  # dimension -> largest magnitude accepted, in its base unit
     traditional_per_si: float = TRADITIONAL_PER_SI
 
     @classmethod
@@ -81,7 +82,8 @@ class UnitCatalogue:
         for dimension, base in dimensions.items():
             if base not in units or units[base].factor != 1.0:
                 raise MappingError(name, f"dimensions.{dimension}", "a unit with factor 1.0")
-        return cls(units, aliases, dimensions, traditional_per_si)
+        limits = {dimension: _limit(name, dimension, data.get("limits", {})) for dimension in dimensions}
+        return cls(units, aliases, dimensions, limits, traditional_per_si)
 
     def resolve(self, unit: str) -> UnitDef | None:
         """The catalogue entry for a unit as written (UCUM code first, then alias)."""
@@ -91,9 +93,10 @@ class UnitCatalogue:
         code = self.aliases.get(_alias_key(unit))
         return self.units[code] if code is not None else None
 
-    def is_ucum(self, unit: str) -> bool:
-        """True when the text is itself a catalogued UCUM code (not an alias)."""
-        return unit in self.units
+    def within_limits(self, value: float, unit: UnitDef) -> bool:
+        """Whether a value in ``unit`` is finite and no larger than its dimension's limit."""
+        in_base = value * unit.factor
+        return math.isfinite(in_base) and abs(in_base) <= self.limits[unit.dimension]
 
     def factor_between(self, source: str, target: str) -> float:
         """Multiplier taking a value in ``source`` to ``target`` (both UCUM codes, one dimension)."""
@@ -126,16 +129,28 @@ def _unit_def(name: str, code: str, entry: Mapping[str, object], dimensions: Map
     return UnitDef(code, dimension, factor)
 
 
+def _limit(name: str, dimension: str, limits: Mapping[str, object]) -> float:
+    raw = limits.get(dimension)
+    if not isinstance(raw, int | float) or isinstance(raw, bool) or not 0 < raw < math.inf:
+        raise MappingError(name, f"limits.{dimension}", "a positive number (largest magnitude accepted)")
+    return float(raw)
+
+
+MAX_DECIMALS = 12  # the most digits after the point a quantity carries (bridge.model.Quantity)
+
+
 def decimals_after_conversion(value: float, source_decimals: int | None, source_value: float) -> int | None:
-    """Decimals that keep the significant digits the source reported.
+    """Decimals that keep the significant digits the source reported (at most MAX_DECIMALS).
 
     7.460 mmol/min/kPa (4 significant digits) becomes 22.28 mL/min/mm[Hg], not 22.283020.
     """
     if source_decimals is None or source_value == 0 or value == 0:
         return source_decimals
+    if not (math.isfinite(value) and math.isfinite(source_value)):
+        return source_decimals  # nothing to count digits of; the value is refused elsewhere
     significant = _significant_digits(source_value, source_decimals)
     magnitude = math.floor(math.log10(abs(value)))
-    return max(0, significant - 1 - magnitude)
+    return min(MAX_DECIMALS, max(0, significant - 1 - magnitude))
 
 
 def _significant_digits(value: float, decimals: int) -> int:

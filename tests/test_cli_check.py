@@ -77,3 +77,36 @@ def test_units_from_environment(tmp_path):
 
     assert result.returncode == 0, result.stderr
     assert "results (si units)" in result.stdout
+
+
+def _poisoned(tmp_path: Path) -> Path:
+    """A copy of a good sample whose DLCO is 1e308 (a corrupt export)."""
+    document = json.loads((SAMPLES / "01-healthy-adult.json").read_bytes())
+    document["results"]["dlco"]["value"] = 1e308
+    poison = tmp_path / "00-poison.json"
+    poison.write_text(json.dumps(document), encoding="utf-8")
+    return poison
+
+
+def test_a_poison_file_is_one_line_and_the_others_are_still_checked(tmp_path, capsys):
+    """DLCO 1e308 is refused with one line naming file and field; the next file is still checked; exit 2."""
+    code = main(["check", str(_poisoned(tmp_path)), str(SAMPLES / "02-anaemic-patient.json")])
+    out, err = capsys.readouterr()
+
+    assert 2 == code
+    assert [f"{tmp_path / '00-poison.json'}: results.dlco.value"] == [
+        line.split(": a finite")[0] for line in err.splitlines()
+    ]
+    assert "Traceback" not in err
+    assert "HC-26-0142" in out
+
+
+def test_internal_failure_is_one_line_naming_the_file():
+    """An unexpected exception on one input becomes one InputError line naming file, type and message."""
+    from bridge.errors import InputError, ProcessingFailed
+
+    failed = ProcessingFailed.wrapping(ZeroDivisionError("float division by zero"), "inbox/a.json")
+
+    assert isinstance(failed, InputError)
+    assert "inbox/a.json: (internal): no internal error, got ZeroDivisionError: float division by zero" in str(failed)
+    assert "\n" not in str(failed)

@@ -144,3 +144,20 @@ def test_validate_reports_an_invalid_payload():
 
     assert [] != problems(oru)
     assert ["entri: Extra inputs are not permitted"] == problems(bundle)
+
+
+def test_convert_writes_the_good_files_around_a_poison_file(tmp_path, capsys):
+    """A corrupt export (DLCO 1e308) is one stderr line; the file after it is still converted; exit 2."""
+    document = json.loads((SAMPLES / "01-healthy-adult.json").read_bytes())
+    document["results"]["dlco"]["value"] = 1e308
+    poison = tmp_path / "poison.json"
+    poison.write_text(json.dumps(document), encoding="utf-8")
+    out = tmp_path / "out"
+
+    code = main(["convert", str(poison), str(SAMPLES / "02-anaemic-patient.json"), "--out", str(out)])
+    err = capsys.readouterr().err
+
+    assert 2 == code
+    assert 1 == len(err.splitlines())
+    assert f"{poison}: results.dlco.value: " in err
+    assert ["HC-26-0142.bundle.json", "HC-26-0142.oru.hl7"] == sorted(p.name for p in out.iterdir())

@@ -1,47 +1,90 @@
-"""Derivation's shortcuts give what the plain computation gives, and keep Quantity's guarantees."""
+"""Derivation stays inside the equations' domains: impossible inputs give no value, never an exception."""
 
 from __future__ import annotations
 
-import math
+import json
+from pathlib import Path
+from typing import Any
 
-import pytest
-from pydantic import ValidationError
-
-from bridge.derive import _q, age_in_years, derive, hb_factor
+from bridge.derive import derive
 from bridge.mapping import Tables
-from bridge.model import Outcome, Quantity
+from bridge.model import Outcome
+from bridge.pipeline import process
+
+SAMPLES = Path(__file__).resolve().parents[2] / "samples"
 
 
-@pytest.mark.parametrize("value", [math.nan, math.inf, -math.inf])
-def test_computed_quantity_is_never_nan_or_infinite(value: float):
-    """A computed value that is not finite is an error, as ``Quantity(...)`` makes it."""
-    with pytest.raises(ValidationError):
-        _q(value, "L", 2)
+def _variant(change: Any) -> bytes:
+    document = json.loads((SAMPLES / "06-three-manoeuvres.json").read_bytes())
+    change(document)
+    return json.dumps(document).encode()
 
 
-def test_computed_quantity_equals_the_model_built_by_its_constructor():
-    """Same fields, same fields-set, same dump as ``Quantity(value=, unit=, decimals=)``."""
-    built, expected = _q(4.125, "mL/min/mm[Hg]", 2), Quantity(value=4.125, unit="mL/min/mm[Hg]", decimals=2)
+def test_zero_breath_hold_gives_alveolar_volume_but_no_dlco(tables: Tables):
+    """tBH = 0 divides the single-breath equation by zero: VA is still computed, DLCO is not."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5 (VA needs no breath-hold time); the classical
+    # single-breath equation divides by tBH  # from memory (equation form)
 
-    assert expected == built
-    assert expected.model_fields_set == built.model_fields_set
-    assert expected.model_dump_json() == built.model_dump_json()
+    def zero_bht(document: dict[str, Any]) -> None:
+        document["manoeuvres"][0]["breath_hold_time"]["value"] = 0
+
+    first = process(_variant(zero_bht), "zero-bht.json", tables).derived.manoeuvres[0]
+
+    assert first.va is not None
+    assert first.dlco is None
 
 
-def test_hb_factor_with_the_age_given_equals_hb_factor_alone(sample_outcomes: dict[str, Outcome]):
-    """Passing the age the caller computed changes nothing."""
-    for outcome in sample_outcomes.values():
-        session = outcome.session
-        assert hb_factor(session) == hb_factor(session, age_in_years(session))
+def test_equal_co_fractions_give_no_dlco(tables: Tables):
+    """An alveolar CO fraction equal to the initial one means ln(1) = 0 uptake: no DLCO is derived."""
+    # common practice: FA,CO,0 = FI,CO x FA,Tr / FI,Tr must exceed FA,CO for a logarithm above zero
+
+    def no_uptake(document: dict[str, Any]) -> None:
+        m = document["manoeuvres"][1]
+        m["alveolar_co_fraction"] = (
+            m["inspired_co_fraction"] * m["alveolar_tracer_fraction"] / m["inspired_tracer_fraction"]
+        )
+
+    second = process(_variant(no_uptake), "no-uptake.json", tables).derived.manoeuvres[1]
+
+    assert second.dlco is None
+
+
+def test_zero_alveolar_volume_gives_no_kco(tables: Tables):
+    """KCO = DLCO / VA is not derived for a reported VA of zero (and the bounds check flags VA)."""
+    # source: Hughes & Pride, ERJ 2001 (KCO = TLCO / VA)
+
+    def zero_va(document: dict[str, Any]) -> None:
+        document["results"]["va"]["value"] = 0
+        document["results"].pop("kco", None)
+
+    outcome = process(_variant(zero_va), "zero-va.json", tables)
+
+    assert outcome.derived.kco is None
+    assert "results.va" in {f.path for f in outcome.findings if f.code == "OUT_OF_RANGE"}
+
+
+def test_inspired_volume_of_zero_everywhere_grades_f_without_dividing_by_zero(tables: Tables):
+    """With no VC and every VI zero there is no VI/VC: every manoeuvre is grade F, none is reported."""
+    # source: ATS/ERS 2005 DLCO standard, Table 6 (VI must reach a share of the VC)
+
+    def no_volume(document: dict[str, Any]) -> None:
+        for m in document["manoeuvres"]:
+            m["inspired_volume"]["value"] = 0
+            m.pop("vital_capacity", None)
+
+    derived = process(_variant(no_volume), "no-volume.json", tables).derived
+
+    assert ["F", "F", "F"] == [a.grade for a in derived.manoeuvres]
+    assert "F" == derived.session_grade
 
 
 def test_sessions_without_manoeuvres_have_no_manoeuvre_values(sample_outcomes: dict[str, Outcome], tables: Tables):
-    """No grades, no session grade, no means: what grading and selecting nothing would give."""
+    """No grades, no session grade, no means when the export carries no manoeuvre."""
     plain = [o.session for o in sample_outcomes.values() if not o.session.manoeuvres]
     assert plain
     for session in plain:
         derived = derive(session, tables)
-        assert derived.manoeuvres == ()
+        assert () == derived.manoeuvres
         assert derived.session_grade is None
         assert derived.dlco_from_manoeuvres is None
         assert derived.va_from_manoeuvres is None

@@ -87,6 +87,33 @@ CASES = {
         "results.dlco_pred",
         "no such field",
     ),
+    # common practice: no lung or lab gives a DLCO above 1000 mL/min/mmHg (adults are 10-50); such
+    # a number is corrupt and must be refused before any arithmetic overflows on it
+    "huge DLCO (1e308)": (
+        _mutated(lambda d: d["results"]["dlco"].update(value=1e308)),
+        "results.dlco.value",
+        "at most 1000",
+    ),
+    "huge DLCO in SI units": (
+        _mutated(lambda d: d["results"]["dlco"].update(value=1e307, unit="mmol/min/kPa")),
+        "results.dlco.value",
+        "at most 1000",
+    ),
+    "infinite value (1e400)": (
+        _mutated(lambda d: d["results"]["va"].update(value=1.0)).replace(b'"value": 1.0', b'"value": 1e400'),
+        "results.va.value",
+        "finite",
+    ),
+    "NaN value": (
+        _mutated(lambda d: d["results"]["va"].update(value=float("nan"))),
+        "results.va.value",
+        "finite",
+    ),
+    "tiny value with 320 decimals": (
+        _mutated(lambda d: d["results"]["va"].update(value=1.0)).replace(b'"value": 1.0', b'"value": 1e-320'),
+        "results.va.value",
+        "at most 12 digits",
+    ),
     "wrong format tag": (_mutated(lambda d: d.update(format="other/2")), "format", "dlco-result/1"),
     "top level not an object": (b"[1, 2]", "(top level)", "object"),
 }
