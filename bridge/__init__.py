@@ -6,7 +6,7 @@ practice decide what is used clinically.
 
 from bridge.errors import BridgeError, InputError
 from bridge.model import Finding, Outcome, Quantity, Session, Severity
-from bridge.pipeline import Limits, process
+from bridge.pipeline import PipelineSettings, Route, process
 from bridge.resources import load_tables
 
 __version__ = "0.1.0"
@@ -15,9 +15,10 @@ __all__ = [
     "BridgeError",
     "Finding",
     "InputError",
-    "Limits",
     "Outcome",
+    "PipelineSettings",
     "Quantity",
+    "Route",
     "Session",
     "Severity",
     "__version__",

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Iterator
-from functools import lru_cache
 
 from bridge.derive import age_in_years, gas_conditions, hb_factor
 from bridge.mapping import Tables
@@ -25,19 +24,19 @@ ADJUSTMENT_TOLERANCE = 0.02
 HB_NOTE_THRESHOLD = 0.05  # mention the Hb adjustment when it moves DLCO by more than 5 %  # common practice
 BREATH_HOLD_TARGET_S = (8.0, 12.0)  # source: ATS/ERS 2005 Table 6 (10 +/- 2 s)
 COHB_BASELINE_PERCENT = 2.0  # reference subjects assumed at 2 %  # from memory (2005 form)
+# Unit-mislabel evidence from the lab's own predicted value: a per cent predicted outside the
+# first band that the SI <-> traditional factor would move into the second, narrower band.
+# Measured DLCO rarely lies below 30 % or above 160 % predicted; the narrower band keeps the
+# relabelled value well inside what is seen.  # common practice (no published threshold)
+PERCENT_PREDICTED_PLAUSIBLE = (30.0, 160.0)
+PERCENT_PREDICTED_RELABELLED = (40.0, 140.0)
 LOW_PRESSURE_MMHG = 700.0  # flag the altitude adjustment below this PB (about 700 m)  # common practice
 
 Rule = Callable[[Session, Derived, Tables], Iterator[Finding]]
 
 
-# Finding's own validator without BaseModel.__init__ around it: the same checks and model.
-_validate_finding = Finding.__pydantic_validator__.validate_python
-
-
 def _finding(code: str, severity: Severity, path: str, message: str) -> Finding:
-    """``Finding(code=code, severity=severity, path=path, message=message)``."""
-    finding: Finding = _validate_finding({"code": code, "severity": severity, "path": path, "message": message})
-    return finding
+    return Finding(code=code, severity=severity, path=path, message=message)
 
 
 def _rel(a: float, b: float) -> float:
@@ -137,7 +136,9 @@ def _mislabel_evidence(
     if isinstance(predicted, Quantity) and predicted.value > 0:
         percent = 100 * value.value / predicted.value
         percents = (percent / factor, percent * factor)
-        if not 30 <= percent <= 160 and any(40 <= p <= 140 for p in percents):
+        low, high = PERCENT_PREDICTED_PLAUSIBLE
+        relabelled_low, relabelled_high = PERCENT_PREDICTED_RELABELLED
+        if not low <= percent <= high and any(relabelled_low <= p <= relabelled_high for p in percents):
             yield f"it is {percent:.0f} % of the lab's own predicted value", False
     bound = tables.plausibility.bounds.get(path)
     relabelled = (value.value / factor, value.value * factor)
@@ -227,7 +228,6 @@ def _resolve(session: Session, path: str) -> Iterator[tuple[str, Quantity]]:
         yield path, node
 
 
-@lru_cache(maxsize=256)
 def _path_parts(path: str) -> tuple[bool, tuple[str, ...]]:
     """(expands per manoeuvre, attribute names) of a bounds path, split once per path."""
     head, _, rest = path.partition(".")
@@ -358,14 +358,16 @@ def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterato
             "manoeuvres",
             f"session quality grade {grade}: interpret the result with caution.",
         )
-    dlcos = [a.dlco.value for a in derived.manoeuvres if a.dlco is not None and a.grade != "F"]
-    if len(dlcos) >= 2 and max(dlcos) - min(dlcos) > tables.grades.max_dlco_difference:
+    if derived.repeatable is False:  # the decision derive made when it chose the reported manoeuvres
+        used = [a for a in derived.manoeuvres if a.index in derived.reported_manoeuvres and a.dlco is not None]
+        dlcos = [a.dlco.value for a in used if a.dlco is not None]
+        numbers = ", ".join(str(a.index + 1) for a in used)
         yield _finding(
             "NOT_REPEATABLE",
             Severity.WARNING,
             "manoeuvres",
-            f"acceptable manoeuvres span {max(dlcos) - min(dlcos):.1f} mL/min/mmHg, more than the "
-            f"{tables.grades.max_dlco_difference:g} the standard allows.",
+            f"manoeuvres {numbers}, which make the reported value, span {max(dlcos) - min(dlcos):.1f} "
+            f"mL/min/mmHg, more than the {tables.grades.max_dlco_difference:g} the standard allows.",
         )
 
 

@@ -1,7 +1,8 @@
 """The console script ``dlco-bridge``: the composition root (shell).
 
-Owns: parsing arguments (every option also from a ``DLCO_BRIDGE_*`` environment variable),
-reading files, calling the pure core, printing, and exit codes. Exit 0 when every input was
+Owns: parsing arguments, building the one settings object through ``bridge.config``
+(configuration file, environment, then these flags), reading files, calling the one pipeline,
+printing, and exit codes. Exit 0 when every input was
 read, 2 when one could not be (one line per bad input on stderr), 1 on a usage or setup error.
 """
 
@@ -15,25 +16,24 @@ import signal
 import sys
 import tempfile
 import threading
-from collections.abc import Iterator, Sequence
-from dataclasses import asdict
+from collections.abc import Iterator, Mapping, Sequence
+from dataclasses import asdict, replace
 from datetime import UTC, datetime
 from pathlib import Path
 
 import orjson
 
 from bridge import __version__
-from bridge.config import Destination, EmitSettings, load_settings
-from bridge.emit.observations import EmitContext
-from bridge.emit.outputs import OUTPUT_KINDS, OutputKind, Payload, file_stem, gate, payloads
-from bridge.errors import BridgeError, ConfigError, InputError, OutputInvalid, ProcessingFailed, UnreadableInput
+from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Destination, Settings, config_path, load_settings
+from bridge.emit.outputs import file_stem
+from bridge.errors import BridgeError, ConfigError, InputError, ProcessingFailed, UnreadableInput
 from bridge.fhirshow import describe_bundle
 from bridge.hl7show import describe_er7
 from bridge.ledger import Ledger, ServiceLock
 from bridge.logs import configure as configure_logging
 from bridge.mapping import Tables
-from bridge.model import Outcome, Severity
-from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES, Limits, process
+from bridge.model import OUTPUT_KINDS, Outcome, Severity
+from bridge.pipeline import Route, process
 from bridge.render import CAUTION, outcome_json, outcome_text
 from bridge.resources import load_tables, samples_dir
 from bridge.schema import export_schema
@@ -42,39 +42,77 @@ from bridge.transports.base import OutgoingMessage, TlsOptions, Transport
 from bridge.transports.fhir_rest import FhirRestTransport
 from bridge.transports.file import FileTransport
 from bridge.transports.mllp import MllpTransport
-from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
-from bridge.validate import problems
 
 EXIT_OK = 0
 EXIT_SETUP = 1
 EXIT_BAD_INPUT = 2
-ENV_PREFIX = "DLCO_BRIDGE_"
+DEFAULTS = Settings()  # shown in --help; the values themselves are written in the settings classes
 
 
-def _env(name: str, default: str) -> str:
-    return os.environ.get(ENV_PREFIX + name, default)
-
-
-def _add_common(parser: argparse.ArgumentParser) -> None:
+def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
+    """Flags that override the configuration file and the environment (``None``: not given)."""
+    parser.add_argument(
+        "--config",
+        type=Path,
+        help=f"configuration file (TOML); default: ${CONFIG_ENV}, else none (see {SAMPLE_CONFIG})",
+    )
     parser.add_argument(
         "--units",
-        choices=("si", "traditional"),
-        default=_env("UNITS", "traditional"),
-        help="units to show or emit (env DLCO_BRIDGE_UNITS; default traditional)",
+        choices=UNIT_SYSTEMS,
+        help=f"units to show or write (key units; default {DEFAULTS.units})",
     )
     parser.add_argument(
-        "--max-bytes",
+        "--max-input-bytes",
         type=int,
-        default=int(_env("MAX_INPUT_BYTES", str(DEFAULT_MAX_INPUT_BYTES))),
-        help="largest input accepted (env DLCO_BRIDGE_MAX_INPUT_BYTES)",
+        help=f"largest input accepted (key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
     )
     parser.add_argument(
-        "--factor",
+        "--traditional-per-si",
         type=float,
-        choices=(TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE),
-        default=float(_env("FACTOR", str(TRADITIONAL_PER_SI))),
-        help="mL/min/mmHg per mmol/min/kPa (env DLCO_BRIDGE_FACTOR; default 2.987)",
+        help="mL/min/mmHg per mmol/min/kPa, 2.987 or 2.986 "
+        f"(key traditional_per_si; default {DEFAULTS.traditional_per_si})",
     )
+    if not emits:
+        return
+    parser.add_argument(
+        "--blocking",
+        help="finding codes that keep a record from being written, comma-separated "
+        f"(key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking))})",
+    )
+    parser.add_argument(
+        "--validate",
+        action="store_const",
+        const=True,
+        help="check every Bundle with fhir.resources and every ORU with hl7apy STRICT before writing it "
+        "(key validate; needs the [validate] extra)",
+    )
+    site = DEFAULTS.pipeline.emit
+    for key, what in (
+        ("sending_application", "MSH-3"),
+        ("sending_facility", "MSH-4"),
+        ("receiving_application", "MSH-5"),
+        ("receiving_facility", "MSH-6"),
+    ):
+        parser.add_argument(
+            "--" + key.replace("_", "-"),
+            dest="emit." + key,
+            help=f"HL7 {what} (key emit.{key}; default {getattr(site, key)})",
+        )
+    parser.add_argument(
+        "--patient-reference",
+        dest="emit.patient_reference",
+        choices=("identifier", "conditional-create"),
+        help=f"FHIR: refer to the patient by identifier, or create it if absent "
+        f"(key emit.patient_reference; default {site.patient_reference})",
+    )
+
+
+# Flags that are settings; everything else on the command line is an argument of the command.
+_SETTING_FLAGS = (
+    "units", "max_input_bytes", "traditional_per_si", "blocking", "validate", "to",
+    "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
+    "emit.receiving_facility", "emit.patient_reference",
+)  # fmt: skip
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -88,54 +126,35 @@ def build_parser() -> argparse.ArgumentParser:
     check = commands.add_parser("check", help="read, normalise, recompute and report findings")
     check.add_argument("files", nargs="+", type=Path, help="export files or folders")
     check.add_argument("--json", action="store_true", help="machine-readable output")
-    _add_common(check)
+    _add_settings(check, emits=False)
     convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
-    convert.add_argument("--to", default=_env("TO", "fhir,hl7"), help="fhir, hl7 or both (env DLCO_BRIDGE_TO)")
-    convert.add_argument("--out", type=Path, default=Path(_env("OUT", "out")), help="output folder")
-    convert.add_argument(
-        "--validate",
-        action="store_true",
-        default=_env("VALIDATE", "") in ("1", "true", "yes"),
-        help="check every Bundle with fhir.resources and every ORU with hl7apy STRICT before writing it",
-    )
-    _add_common(convert)
-    _add_emit_options(convert)
+    convert.add_argument("--to", help=f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})")
+    convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
+    _add_settings(convert, emits=True)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
-    _add_common(demo)
-    _add_emit_options(demo)
+    _add_settings(demo, emits=True)
     show = commands.add_parser("show", help="an HL7 v2 message with field names, or a FHIR Bundle summarised")
-    show.add_argument("file", type=Path)
+    show.add_argument("file", type=Path, help="an ER7 HL7 v2 message or a FHIR Bundle (JSON)")
     commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
+    config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
     watch = commands.add_parser("watch", help="run the watch-folder service")
-    watch.add_argument("--config", type=Path, default=Path(_env("CONFIG", "bridge.toml")))
+    watch.add_argument("--config", type=Path, help=config_help)
     status = commands.add_parser("status", help="what the service's ledger holds: pending, delivered, rejected")
-    status.add_argument("--config", type=Path, default=Path(_env("CONFIG", "bridge.toml")))
-    status.add_argument("--json", action="store_true")
+    status.add_argument("--config", type=Path, help=config_help)
+    status.add_argument("--json", action="store_true", help="machine-readable output")
     resend = commands.add_parser("resend", help="queue an outbox message (or every rejected one) again")
-    resend.add_argument("--config", type=Path, default=Path(_env("CONFIG", "bridge.toml")))
+    resend.add_argument("--config", type=Path, help=config_help)
     which = resend.add_mutually_exclusive_group(required=True)
     which.add_argument("id", nargs="?", type=int, help="outbox id (see status --json)")
     which.add_argument("--rejected", action="store_true", help="every dead-lettered message")
     return parser
 
 
-def _add_emit_options(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument("--sending-application", default=_env("SENDING_APPLICATION", "DLCO-BRIDGE"))
-    parser.add_argument("--sending-facility", default=_env("SENDING_FACILITY", "PFT-LAB"))
-    parser.add_argument("--receiving-application", default=_env("RECEIVING_APPLICATION", "RECORDS"))
-    parser.add_argument("--receiving-facility", default=_env("RECEIVING_FACILITY", "HOSPITAL"))
-    parser.add_argument(
-        "--patient-reference",
-        choices=("identifier", "conditional-create"),
-        default=_env("PATIENT_REFERENCE", "identifier"),
-        help="FHIR: refer to the patient by identifier, or create it if absent",
-    )
-    parser.add_argument(
-        "--block",
-        default=_env("BLOCK", ""),
-        help="finding codes that stop a file from being emitted, comma-separated (env DLCO_BRIDGE_BLOCK)",
-    )
+def settings_of(args: argparse.Namespace, environ: Mapping[str, str]) -> Settings:
+    """The one settings object for this run: configuration file, environment, then flags."""
+    flags = {key: getattr(args, key) for key in _SETTING_FLAGS if hasattr(args, key)}
+    return load_settings(config_path(getattr(args, "config", None), environ), environ, flags)
 
 
 def expand(paths: Sequence[Path]) -> Iterator[Path]:
@@ -147,44 +166,49 @@ def expand(paths: Sequence[Path]) -> Iterator[Path]:
             yield path
 
 
-def read_input(path: Path, limits: Limits) -> bytes:
+def read_input(path: Path, limit: int) -> bytes:
     """The bytes of one input; an unreadable or oversized file is an InputError."""
     try:
         size = path.stat().st_size
-        if size > limits.max_input_bytes:
-            raise UnreadableInput("(file)", f"at most {limits.max_input_bytes} bytes, got {size}", str(path))
+        if size > limit:
+            raise UnreadableInput("(file)", f"at most {limit} bytes, got {size}", str(path))
         return path.read_bytes()
     except OSError as exc:
         raise UnreadableInput("(file)", f"a readable file ({exc.strerror})", str(path)) from exc
 
 
-def run_inputs(paths: Sequence[Path], tables: Tables, limits: Limits) -> Iterator[tuple[Path, Outcome | InputError]]:
-    """Process every input; an InputError is returned in place of its outcome, never raised.
+def run_inputs(
+    paths: Sequence[Path], settings: Settings, tables: Tables, routes: Sequence[Route] = ()
+) -> Iterator[tuple[Path, Outcome | InputError]]:
+    """The pipeline over every input; an InputError is returned in place of its outcome, never raised.
 
     Any other exception is a defect of the bridge, reported for that file alone
     (:class:`ProcessingFailed`) so that the other files are still processed.
     """
+    now = datetime.now(UTC)  # the shell reads the clock once per run; the pipeline receives it
     for path in expand(paths):
         try:
-            yield path, process(read_input(path, limits), str(path), tables, limits)
+            data = read_input(path, settings.pipeline.max_input_bytes)
+            yield path, process(data, str(path), tables, settings.pipeline, now=now, routes=routes)
         except InputError as exc:
             yield path, exc
         except Exception as exc:  # one file must never stop the others
             yield path, ProcessingFailed.wrapping(exc, str(path))
 
 
-def cmd_check(args: argparse.Namespace, tables: Tables) -> int:
-    units: UnitSystem = args.units
-    limits = Limits(max_input_bytes=args.max_bytes)
+def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     failed = 0
     reports: list[dict[str, object]] = []
-    for path, result in run_inputs(args.files, tables, limits):
+    for path, result in run_inputs(args.files, settings, tables):
         report: dict[str, object] | str | InputError
         if isinstance(result, InputError):
             report = result
         else:
             try:
-                report = outcome_json(result, tables, units) if args.json else outcome_text(result, tables, units)
+                if args.json:
+                    report = outcome_json(result, tables, settings.units)
+                else:
+                    report = outcome_text(result, tables, settings.units)
             except Exception as exc:  # one file must never stop the others
                 report = ProcessingFailed.wrapping(exc, str(path))
         if isinstance(report, InputError):
@@ -203,53 +227,19 @@ def cmd_check(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_BAD_INPUT if failed else EXIT_OK
 
 
-def emit_context(args: argparse.Namespace) -> EmitContext:
-    """The shell reads the clock; the emitters only receive it."""
-    emit = EmitSettings(
-        sending_application=args.sending_application,
-        sending_facility=args.sending_facility,
-        receiving_application=args.receiving_application,
-        receiving_facility=args.receiving_facility,
-        patient_reference=args.patient_reference,
-    )
-    return emit.context(datetime.now(UTC), args.units)
-
-
-def _kinds(text: str) -> tuple[OutputKind, ...]:
-    kinds = tuple(k.strip() for k in text.split(",") if k.strip())
-    unknown = [k for k in kinds if k not in OUTPUT_KINDS]
-    if unknown or not kinds:
-        raise ConfigError("--to", f"fhir, hl7 or fhir,hl7, got {text!r}")
-    return tuple(k for k in OUTPUT_KINDS if k in kinds)
-
-
 def convert_files(
-    paths: Sequence[Path], out: Path, args: argparse.Namespace, tables: Tables
+    paths: Sequence[Path], out: Path, settings: Settings, tables: Tables
 ) -> list[tuple[Path, Outcome | InputError, list[Path]]]:
     """Convert every input; each result is (input, outcome or error, files written)."""
-    kinds = _kinds(args.to)
-    blocking = {c.strip() for c in args.block.split(",") if c.strip()}
-    context = emit_context(args)
+    routes = [Route(kind, settings.units) for kind in settings.to]
     writer = FileTransport(out)
-    limits = Limits(max_input_bytes=args.max_bytes)
     results: list[tuple[Path, Outcome | InputError, list[Path]]] = []
-    for path, result in run_inputs(paths, tables, limits):
+    for path, result in run_inputs(paths, settings, tables, routes):
         if isinstance(result, InputError):
             results.append((path, result, []))
             continue
-        try:
-            gate(result, blocking)
-            built = payloads(result, tables, context, kinds)
-            if getattr(args, "validate", False):
-                _validated(built, result)
-        except InputError as exc:
-            results.append((path, exc, []))
-            continue
-        except Exception as exc:  # one file must never stop the others
-            results.append((path, ProcessingFailed.wrapping(exc, str(path)), []))
-            continue
         written = []
-        for payload in built:
+        for payload in result.payloads:
             stem = file_stem(result.session.test_id)
             receipt = writer.deliver(OutgoingMessage("convert", stem, payload.data, payload.content_type))
             written.append(out / receipt.text)
@@ -257,19 +247,9 @@ def convert_files(
     return results
 
 
-def _validated(built: Sequence[Payload], outcome: Outcome) -> None:
-    """Refuse the input when an independent validator rejects what was built for it."""
-    for payload in built:
-        found = problems(payload)
-        if found:
-            what = "FHIR Bundle (fhir.resources R4B)" if payload.kind == "fhir" else "ORU^R01 (hl7apy STRICT)"
-            more = f" (+{len(found) - 1} more)" if len(found) > 1 else ""
-            raise OutputInvalid("(output)", f"a valid {what}: {found[0]}{more}", outcome.source)
-
-
-def cmd_convert(args: argparse.Namespace, tables: Tables) -> int:
+def cmd_convert(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     failed = 0
-    for path, result, written in convert_files(args.files, args.out, args, tables):
+    for path, result, written in convert_files(args.files, args.out, settings, tables):
         if isinstance(result, InputError):
             failed += 1
             print(result.line(), file=sys.stderr)
@@ -283,21 +263,20 @@ def _finding_summary(outcome: Outcome) -> str:
     if not outcome.findings:
         return ""
     codes = ", ".join(sorted({f.code for f in outcome.findings if f.severity is not Severity.INFO}))
-    return f"  [{len(outcome.findings)} findings{': ' + codes if codes else ''}]"
+    count = len(outcome.findings)
+    return f"  [{count} finding{'' if count == 1 else 's'}{': ' + codes if codes else ''}]"
 
 
-def cmd_demo(args: argparse.Namespace, tables: Tables) -> int:
+def cmd_demo(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     """The invented scenario end to end: samples -> check -> FHIR + HL7 in a temporary folder."""
     source = samples_dir()
     work = Path(tempfile.mkdtemp(prefix="dlco-bridge-demo-"))
     inbox, out = work / "inbox", work / "out"
     shutil.copytree(source, inbox)
-    args.to = "fhir,hl7"
-    # The demo shows the blocking gate too: a probable unit mislabel is refused, not emitted.
-    args.block = args.block or "UNIT_MISLABEL_PROBABLE"
+    settings = replace(settings, to=OUTPUT_KINDS)
     print(f"dlco-bridge demo: invented scenario (fictional Fenwick Hollow health group) in {work}")
     print(f"  {len(list(inbox.glob('*.json')))} lab exports copied to {inbox}\n")
-    converted = convert_files(sorted(inbox.glob("*.json")), out, args, tables)
+    converted = convert_files(sorted(inbox.glob("*.json")), out, settings, tables)
     for path, result, written in converted:
         if isinstance(result, InputError):
             print(f"  REFUSED  {path.name}\n           {result.line()}")
@@ -316,7 +295,7 @@ def cmd_demo(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_OK
 
 
-def cmd_show(args: argparse.Namespace, tables: Tables) -> int:
+def cmd_show(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     try:
         data = args.file.read_bytes()
     except OSError as exc:
@@ -335,7 +314,7 @@ def cmd_show(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_OK
 
 
-def cmd_schema(args: argparse.Namespace, tables: Tables) -> int:
+def cmd_schema(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     sys.stdout.write(json.dumps(export_schema(), indent=2, sort_keys=True) + "\n")
     return EXIT_OK
 
@@ -365,16 +344,15 @@ def build_transport(destination: Destination) -> Transport:
     )
 
 
-def cmd_watch(args: argparse.Namespace, tables: Tables) -> int:
+def cmd_watch(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     # Handlers first: a stop asked for while the ledger opens is honoured, not a hard exit.
     stop = threading.Event()
     for signum in (signal.SIGTERM, signal.SIGINT):
         signal.signal(signum, lambda *_: stop.set())
-    settings = load_settings(args.config, os.environ)
-    tables = load_tables(traditional_per_si=settings.traditional_per_si)
-    configure_logging(settings.log_format)
-    with ServiceLock.acquire(settings.state), Ledger.open(settings.ledger_path) as ledger:
-        transports = {d.name: build_transport(d) for d in settings.destinations}
+    service_settings = settings.require_service()
+    configure_logging(service_settings.log_format)
+    with ServiceLock.acquire(service_settings.state), Ledger.open(service_settings.ledger_path) as ledger:
+        transports = {d.name: build_transport(d) for d in service_settings.destinations}
         service = Service(settings, tables, ledger, transports, stop=stop)
         for signum in (signal.SIGTERM, signal.SIGINT):
             signal.signal(signum, lambda *_: service.request_stop())
@@ -383,9 +361,9 @@ def cmd_watch(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_OK
 
 
-def cmd_status(args: argparse.Namespace, tables: Tables) -> int:
-    settings = load_settings(args.config, os.environ)
-    with Ledger.open(settings.ledger_path, read_only=True) as ledger:
+def cmd_status(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    service = settings.require_service()
+    with Ledger.open(service.ledger_path, read_only=True) as ledger:
         summary = ledger.summary()
         dead = ledger.rows("rejected")
     dead_letters = [
@@ -397,7 +375,7 @@ def cmd_status(args: argparse.Namespace, tables: Tables) -> int:
         document = {**asdict(summary), "dead_letters": dead_letters}
         sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
         return EXIT_OK
-    print(f"ledger {settings.ledger_path}")
+    print(f"ledger {service.ledger_path}")
     print(
         f"  inputs: {summary.processed} processed, {summary.corrections} corrections, "
         f"{summary.duplicates} duplicates, {summary.quarantined} quarantined"
@@ -412,12 +390,11 @@ def cmd_status(args: argparse.Namespace, tables: Tables) -> int:
     return EXIT_OK
 
 
-def cmd_resend(args: argparse.Namespace, tables: Tables) -> int:
-    settings = load_settings(args.config, os.environ)
-    with Ledger.open(settings.ledger_path) as ledger:
+def cmd_resend(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    with Ledger.open(settings.require_service().ledger_path) as ledger:
         if args.rejected:
             count = ledger.requeue_rejected()
-            print(f"{count} rejected messages queued again")
+            print(f"{count} rejected message{'' if count == 1 else 's'} queued again")
         else:
             ledger.requeue(args.id)
             print(f"message {args.id} queued again")
@@ -434,13 +411,17 @@ COMMANDS = {
     "show": cmd_show,
     "schema": cmd_schema,
 }
+_NEEDS_CONFIG = ("watch", "status", "resend")
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     try:
-        tables = load_tables(traditional_per_si=getattr(args, "factor", TRADITIONAL_PER_SI))
-        return COMMANDS[args.command](args, tables)
+        settings = settings_of(args, os.environ)
+        if args.command in _NEEDS_CONFIG and settings.source.startswith("("):
+            raise ConfigError("--config", f"a configuration file (--config FILE or ${CONFIG_ENV}; see {SAMPLE_CONFIG})")
+        tables = load_tables(traditional_per_si=settings.traditional_per_si)
+        return COMMANDS[args.command](args, settings, tables)
     except BridgeError as exc:
         print(f"dlco-bridge: {exc}", file=sys.stderr)
         return EXIT_SETUP

@@ -1,32 +1,46 @@
-"""Service settings: one frozen :class:`Settings` from TOML, overridden by the environment (shell).
+"""The one settings object: TOML, then the environment, then command-line flags (shell).
 
-Owns: reading ``bridge.toml`` and ``DLCO_BRIDGE_*`` environment variables, checking every
-value, and saying exactly which line or key is wrong (:class:`bridge.errors.ConfigError`).
-It is the only module that reads the environment. Nothing here opens connections.
+Owns: reading ``bridge.toml``, ``DLCO_BRIDGE_*`` environment variables and the flags the CLI
+passes, in that order of precedence, into one frozen :class:`Settings`; checking every value
+when it is read (a bad configuration stops the command before any file is touched, with the
+file, key and what was expected); and saying where each setting came from. It is the only
+module that reads the environment. Defaults live with the value objects they belong to
+(:class:`bridge.pipeline.PipelineSettings`, :class:`bridge.emit.settings.EmitSettings`, the
+dataclasses below), written once.
 
-Environment overrides: a top-level key ``inbox`` is ``DLCO_BRIDGE_INBOX``; a key of a
-section is ``DLCO_BRIDGE_<SECTION>_<KEY>`` (``DLCO_BRIDGE_EMIT_SENDING_FACILITY``); a key of a
+Names: a top-level key ``inbox`` is ``DLCO_BRIDGE_INBOX``; a key of a section is
+``DLCO_BRIDGE_<SECTION>_<KEY>`` (``DLCO_BRIDGE_EMIT_SENDING_FACILITY``); a key of a
 destination is ``DLCO_BRIDGE_DESTINATION_<NAME>_<KEY>`` (``DLCO_BRIDGE_DESTINATION_RECORDS_PORT``).
+Flags use the same keys (``--sending-facility`` is ``emit.sending_facility``).
 """
 
 from __future__ import annotations
 
+import importlib.util
+import re
 import tomllib
 from collections.abc import Mapping
-from dataclasses import dataclass, field
-from datetime import datetime
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any, Literal
+from urllib.parse import urlsplit
 
-from bridge.emit.observations import EmitContext, PatientReference
-from bridge.emit.outputs import OUTPUT_KINDS, OutputKind
+from bridge.emit.hl7v2 import IS_LENGTH
+from bridge.emit.settings import EmitSettings
 from bridge.errors import ConfigError
-from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES
+from bridge.model import OUTPUT_KINDS, OutputKind
+from bridge.pipeline import PipelineSettings
 from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 
 ENV_PREFIX = "DLCO_BRIDGE_"
+CONFIG_ENV = ENV_PREFIX + "CONFIG"  # the configuration file, when --config is not given
+SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 TransportKind = Literal["file", "mllp", "fhir-rest"]
 TRANSPORT_KINDS: tuple[TransportKind, ...] = ("file", "mllp", "fhir-rest")
+UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
+PROCESSING_IDS = ("P", "T", "D")  # source: HL7 v2.5.1 table 0103 (production, training, debugging)
+_HL7_DELIMITERS = re.compile(r"[|^~\\&\x00-\x1f\x7f]")
+_URI = re.compile(r"[A-Za-z][A-Za-z0-9+.-]*:\S+")  # source: RFC 3986 section 3 (scheme ":" ...)
 
 
 @dataclass(frozen=True, slots=True)
@@ -51,48 +65,16 @@ class Destination:
 
 
 @dataclass(frozen=True, slots=True)
-class EmitSettings:
-    sending_application: str = "DLCO-BRIDGE"
-    sending_facility: str = "PFT-LAB"
-    receiving_application: str = "RECORDS"
-    receiving_facility: str = "HOSPITAL"
-    identifier_system: str = "urn:dlco-bridge:observation-id"
-    local_code_system: str | None = None
-    patient_reference: PatientReference = "identifier"
-    processing_id: str = "P"
-
-    def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
-        """The emitters' context for one message: these settings plus the time the shell read."""
-        return EmitContext(
-            now=now.replace(microsecond=0),
-            units=units,
-            sending_application=self.sending_application,
-            sending_facility=self.sending_facility,
-            receiving_application=self.receiving_application,
-            receiving_facility=self.receiving_facility,
-            local_code_system=self.local_code_system,
-            identifier_system=self.identifier_system,
-            patient_reference=self.patient_reference,
-            correction=correction,
-            processing_id=self.processing_id,
-        )
-
-
-@dataclass(frozen=True, slots=True)
-class Settings:
-    """Everything the watch-folder service needs; built once, passed explicitly."""
+class ServiceSettings:
+    """What only ``watch``, ``status`` and ``resend`` need: folders, ledger, receivers, loops."""
 
     inbox: Path
     archive: Path
     quarantine: Path
     state: Path
     destinations: tuple[Destination, ...]
-    emit: EmitSettings = EmitSettings()
     rescan_seconds: float = 5.0
     stable_seconds: float = 1.0
-    max_input_bytes: int = DEFAULT_MAX_INPUT_BYTES
-    traditional_per_si: float = TRADITIONAL_PER_SI
-    blocking: tuple[str, ...] = ("UNIT_MISLABEL_PROBABLE",)
     retry_base_seconds: float = 1.0
     retry_cap_seconds: float = 300.0
     metrics_port: int = 0  # 0: no health/metrics endpoint
@@ -105,22 +87,71 @@ class Settings:
         return self.state / "ledger.sqlite3"
 
 
-def load_settings(path: Path, environ: Mapping[str, str]) -> Settings:
-    """Settings from a TOML file, with ``DLCO_BRIDGE_*`` environment variables on top."""
+@dataclass(frozen=True, slots=True)
+class Settings:
+    """Every setting of every command; built once by :func:`load_settings`, passed explicitly."""
+
+    pipeline: PipelineSettings = field(default_factory=PipelineSettings)
+    units: UnitSystem = "traditional"  # what check shows and convert writes
+    traditional_per_si: float = TRADITIONAL_PER_SI
+    to: tuple[OutputKind, ...] = OUTPUT_KINDS  # what convert writes
+    service: ServiceSettings | None = None
+    source: str = "(defaults)"  # the configuration file read, if any
+
+    def require_service(self) -> ServiceSettings:
+        """The service settings; a configuration without them cannot run the service."""
+        if self.service is None:
+            raise ConfigError("inbox", "the service settings (inbox, archive, quarantine, state, a destination)",
+                              self.source)  # fmt: skip
+        return self.service
+
+
+def _default(cls: type, name: str) -> Any:
+    """The default of one field of a settings dataclass (the one place it is written)."""
+    return next(f.default for f in fields(cls) if f.name == name)
+
+
+def config_path(flag: Path | None, environ: Mapping[str, str]) -> Path | None:
+    """The configuration file: ``--config``, else ``DLCO_BRIDGE_CONFIG``, else none."""
+    if flag is not None:
+        return flag
+    named = environ.get(CONFIG_ENV)
+    return Path(named) if named else None
+
+
+_SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
+_PIPELINE_KEYS = {"max_input_bytes", "blocking", "validate"}
+_GENERAL_KEYS = {"units", "traditional_per_si", "to"}
+_TOP_LEVEL = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
+_EMIT_KEYS = {f.name for f in fields(EmitSettings)}
+_DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
+
+
+def load_settings(path: Path | None, environ: Mapping[str, str], flags: Mapping[str, Any] | None = None) -> Settings:
+    """Settings from a TOML file (if any), with ``DLCO_BRIDGE_*`` variables, then ``flags`` on top."""
+    if path is None:
+        return parse_settings("", environ, flags, source="(no configuration file)")
     try:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
-        raise ConfigError("(file)", f"a readable config file ({exc.strerror})", str(path)) from exc
-    return parse_settings(text, environ, source=str(path), base=path.parent)
+        raise ConfigError("(file)", f"a readable configuration file ({exc.strerror})", str(path)) from exc
+    return parse_settings(text, environ, flags, source=str(path), base=path.parent)
 
 
-def parse_settings(text: str, environ: Mapping[str, str], source: str = "bridge.toml", base: Path = Path()) -> Settings:
+def parse_settings(
+    text: str,
+    environ: Mapping[str, str],
+    flags: Mapping[str, Any] | None = None,
+    source: str = "bridge.toml",
+    base: Path = Path(),
+) -> Settings:
+    """:func:`load_settings` on the text of a configuration file."""
     try:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError("(syntax)", f"valid TOML: {exc}", source) from exc
-    reader = _Reader(_with_environment(data, environ), source, base, environ)
-    return reader.settings()
+    merged = _with_flags(_with_environment(data, environ), flags or {})
+    return _Reader(merged, source, base, environ).settings()
 
 
 def _with_environment(data: dict[str, Any], environ: Mapping[str, str]) -> dict[str, Any]:
@@ -128,7 +159,7 @@ def _with_environment(data: dict[str, Any], environ: Mapping[str, str]) -> dict[
     merged: dict[str, Any] = {k: (dict(v) if isinstance(v, dict) else v) for k, v in data.items()}
     destinations = {k: dict(v) for k, v in data.get("destination", {}).items() if isinstance(v, dict)}
     for name, value in environ.items():
-        if not name.startswith(ENV_PREFIX):
+        if not name.startswith(ENV_PREFIX) or name == CONFIG_ENV:
             continue
         key = name[len(ENV_PREFIX) :].lower()
         if key.startswith("destination_"):
@@ -144,13 +175,17 @@ def _with_environment(data: dict[str, Any], environ: Mapping[str, str]) -> dict[
     return merged
 
 
-_TOP_LEVEL = {
-    "inbox", "archive", "quarantine", "state", "rescan_seconds", "stable_seconds", "max_input_bytes",
-    "traditional_per_si", "blocking", "retry_base_seconds", "retry_cap_seconds", "metrics_port",
-    "metrics_host", "log_format", "log_patient_data",
-}  # fmt: skip
-
-_DESTINATION_KEYS = set(Destination.__dataclass_fields__) - {"name", "token"}
+def _with_flags(data: dict[str, Any], flags: Mapping[str, Any]) -> dict[str, Any]:
+    """Overlay command-line flags (``None``: not given); ``emit.x`` keys go into ``[emit]``."""
+    for key, value in flags.items():
+        if value is None:
+            continue
+        section, _, name = key.rpartition(".")
+        if section:
+            data.setdefault(section, {})[name] = value
+        else:
+            data[key] = value
+    return data
 
 
 class _Reader:
@@ -166,47 +201,86 @@ class _Reader:
         d = self.data
         unknown = sorted(set(d) - _TOP_LEVEL - {"emit", "destination"})
         if unknown:
-            raise self.fail(unknown[0], "a known setting (see samples/bridge.toml)")
+            raise self.fail(unknown[0], f"a known setting (every key is shown in {SAMPLE_CONFIG})")
+        factor = self.number(
+            "traditional_per_si", d.get("traditional_per_si", _default(Settings, "traditional_per_si"))
+        )
+        if factor not in (TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE):
+            raise self.fail("traditional_per_si", f"{TRADITIONAL_PER_SI} or {TRADITIONAL_PER_SI_ALTERNATIVE}")
+        return Settings(
+            pipeline=self.pipeline(),
+            units=self.choice("units", d.get("units", _default(Settings, "units")), UNIT_SYSTEMS),  # type: ignore[arg-type]
+            traditional_per_si=factor,
+            to=self.kinds("to", d.get("to", _default(Settings, "to"))),
+            service=self.service() if self.wants_service() else None,
+            source=self.source,
+        )
+
+    def pipeline(self) -> PipelineSettings:
+        d, defaults = self.data, PipelineSettings()
+        validate = self.flag("validate", d.get("validate", defaults.validate_outputs))
+        if validate and importlib.util.find_spec("fhir.resources") is None:
+            raise self.fail("validate", "the optional extra installed first: pip install 'dlco-bridge[validate]'")
+        return PipelineSettings(
+            max_input_bytes=int(self.number("max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1)),
+            blocking=frozenset(self.words("blocking", d.get("blocking", sorted(defaults.blocking)))),
+            validate_outputs=validate,
+            emit=self.emit(d.get("emit", {})),
+        )
+
+    def emit(self, e: Any) -> EmitSettings:
+        if not isinstance(e, dict):
+            raise self.fail("emit", "a table")
+        unknown = sorted(set(e) - _EMIT_KEYS)
+        if unknown:
+            raise self.fail(f"emit.{unknown[0]}", f"one of {', '.join(sorted(_EMIT_KEYS))}")
+        defaults = EmitSettings()
+        values = {k: str(v) for k, v in e.items()}
+        for key in ("sending_application", "sending_facility", "receiving_application", "receiving_facility"):
+            self.hl7_namespace(f"emit.{key}", values.get(key, getattr(defaults, key)))
+        self.choice("emit.processing_id", values.get("processing_id", defaults.processing_id), PROCESSING_IDS)
+        self.choice(
+            "emit.patient_reference",
+            values.get("patient_reference", defaults.patient_reference),
+            ("identifier", "conditional-create"),
+        )
+        for key in ("identifier_system", "local_code_system"):
+            if key in values:
+                self.uri(f"emit.{key}", values[key])
+        return EmitSettings(**values)  # type: ignore[arg-type]
+
+    def wants_service(self) -> bool:
+        return bool(set(self.data) & _SERVICE_KEYS) or "destination" in self.data
+
+    def service(self) -> ServiceSettings:
+        d = self.data
+
+        def defaults(name: str) -> Any:
+            return _default(ServiceSettings, name)
+
         folders = {k: self.path(k, d.get(k)) for k in ("inbox", "archive", "quarantine", "state")}
         destinations = tuple(self.destination(n, v) for n, v in d.get("destination", {}).items())
         if not destinations:
             raise self.fail("destination", "at least one [destination.NAME] table")
-        factor = self.number("traditional_per_si", d.get("traditional_per_si", TRADITIONAL_PER_SI))
-        if factor not in (TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE):
-            raise self.fail("traditional_per_si", f"{TRADITIONAL_PER_SI} or {TRADITIONAL_PER_SI_ALTERNATIVE}")
-        return Settings(
+        return ServiceSettings(
             inbox=folders["inbox"],
             archive=folders["archive"],
             quarantine=folders["quarantine"],
             state=folders["state"],
             destinations=destinations,
-            emit=self.emit(d.get("emit", {})),
-            rescan_seconds=self.number("rescan_seconds", d.get("rescan_seconds", 5.0), low=0.05),
-            stable_seconds=self.number("stable_seconds", d.get("stable_seconds", 1.0), low=0.0),
-            max_input_bytes=int(
-                self.number("max_input_bytes", d.get("max_input_bytes", DEFAULT_MAX_INPUT_BYTES), low=1)
+            rescan_seconds=self.number("rescan_seconds", d.get("rescan_seconds", defaults("rescan_seconds")), 0.05),
+            stable_seconds=self.number("stable_seconds", d.get("stable_seconds", defaults("stable_seconds")), 0.0),
+            retry_base_seconds=self.number(
+                "retry_base_seconds", d.get("retry_base_seconds", defaults("retry_base_seconds")), 0.01
             ),
-            traditional_per_si=factor,
-            blocking=self.words("blocking", d.get("blocking", ["UNIT_MISLABEL_PROBABLE"])),
-            retry_base_seconds=self.number("retry_base_seconds", d.get("retry_base_seconds", 1.0), low=0.01),
-            retry_cap_seconds=self.number("retry_cap_seconds", d.get("retry_cap_seconds", 300.0), low=0.01),
-            metrics_port=self.port("metrics_port", d.get("metrics_port", 0), allow_zero=True),
-            metrics_host=self.loopback("metrics_host", d.get("metrics_host", "127.0.0.1")),
-            log_format=self.choice("log_format", d.get("log_format", "text"), ("text", "json")),  # type: ignore[arg-type]
-            log_patient_data=self.flag("log_patient_data", d.get("log_patient_data", False)),
+            retry_cap_seconds=self.number(
+                "retry_cap_seconds", d.get("retry_cap_seconds", defaults("retry_cap_seconds")), 0.01
+            ),
+            metrics_port=self.port("metrics_port", d.get("metrics_port", defaults("metrics_port")), allow_zero=True),
+            metrics_host=self.loopback("metrics_host", d.get("metrics_host", defaults("metrics_host"))),
+            log_format=self.choice("log_format", d.get("log_format", defaults("log_format")), ("text", "json")),  # type: ignore[arg-type]
+            log_patient_data=self.flag("log_patient_data", d.get("log_patient_data", defaults("log_patient_data"))),
         )
-
-    def emit(self, e: dict[str, Any]) -> EmitSettings:
-        defaults = EmitSettings()
-        known = set(EmitSettings.__dataclass_fields__)
-        unknown = sorted(set(e) - known)
-        if unknown:
-            raise self.fail(f"emit.{unknown[0]}", f"one of {sorted(known)}")
-        values = {k: str(v) for k, v in e.items()}
-        reference = values.get("patient_reference", defaults.patient_reference)
-        if reference not in ("identifier", "conditional-create"):
-            raise self.fail("emit.patient_reference", '"identifier" or "conditional-create"')
-        return EmitSettings(**{**{k: getattr(defaults, k) for k in known}, **values})
 
     def destination(self, name: str, v: Any) -> Destination:
         where = f"destination.{name}"
@@ -217,14 +291,17 @@ class _Reader:
             raise self.fail(f"{where}.{unknown[0]}", f"one of {', '.join(sorted(_DESTINATION_KEYS))}")
         transport = self.choice(f"{where}.transport", v.get("transport"), TRANSPORT_KINDS)
         payload = self.choice(f"{where}.payload", v.get("payload"), OUTPUT_KINDS)
-        units = self.choice(f"{where}.units", v.get("units", "traditional"), ("si", "traditional"))
+        units = self.choice(f"{where}.units", v.get("units", "traditional"), UNIT_SYSTEMS)
+        host = str(v.get("host", _default(Destination, "host")))
+        if not host or any(c.isspace() for c in host):
+            raise self.fail(f"{where}.host", f"a host name or address, got {host!r}")
         dest = Destination(
             name=name,
             payload=payload,  # type: ignore[arg-type]
             units=units,  # type: ignore[arg-type]
             transport=transport,  # type: ignore[arg-type]
             folder=self.path(f"{where}.folder", v["folder"]) if "folder" in v else None,
-            host=str(v.get("host", "127.0.0.1")),
+            host=host,
             port=self.port(f"{where}.port", v.get("port", 0), allow_zero=transport != "mllp"),
             base_url=str(v.get("base_url", "")),
             token_env=str(v.get("token_env", "")),
@@ -232,21 +309,23 @@ class _Reader:
             ca_file=self.path(f"{where}.ca_file", v["ca_file"]) if "ca_file" in v else None,
             cert_file=self.path(f"{where}.cert_file", v["cert_file"]) if "cert_file" in v else None,
             key_file=self.path(f"{where}.key_file", v["key_file"]) if "key_file" in v else None,
-            connect_timeout=self.number(f"{where}.connect_timeout", v.get("connect_timeout", 10.0), low=0.01),
-            read_timeout=self.number(f"{where}.read_timeout", v.get("read_timeout", 30.0), low=0.01),
+            connect_timeout=self.number(f"{where}.connect_timeout", v.get("connect_timeout", 10.0), 0.01),
+            read_timeout=self.number(f"{where}.read_timeout", v.get("read_timeout", 30.0), 0.01),
         )
         if transport == "file" and dest.folder is None:
             raise self.fail(f"{where}.folder", "a folder for the file transport")
-        if transport == "fhir-rest" and not dest.base_url.startswith(("http://", "https://")):
-            raise self.fail(f"{where}.base_url", "an http:// or https:// URL")
-        if transport == "fhir-rest" and payload != "fhir":
-            raise self.fail(f"{where}.payload", '"fhir" for the fhir-rest transport')
+        if transport == "fhir-rest":
+            self.url(f"{where}.base_url", dest.base_url)
+            if payload != "fhir":
+                raise self.fail(f"{where}.payload", '"fhir" for the fhir-rest transport')
         if dest.token_env and dest.token is None:
             raise self.fail(f"{where}.token_env", f"the environment variable {dest.token_env} to be set")
         return dest
 
+    # ---- one checker per kind of value ----
+
     def path(self, key: str, value: Any) -> Path:
-        if not isinstance(value, str) or not value:
+        if not isinstance(value, str | Path) or not str(value):
             raise self.fail(key, "a folder path")
         path = Path(value).expanduser()
         return path if path.is_absolute() else self.base / path
@@ -256,8 +335,10 @@ class _Reader:
             number = float(value)
         except (TypeError, ValueError):
             raise self.fail(key, f"a number, got {value!r}") from None
-        if low is not None and number < low:
-            raise self.fail(key, f"a number >= {low:g}, got {number:g}")
+        if number != number or (low is not None and number < low):  # NaN, or below the floor
+            raise self.fail(
+                key, f"a number >= {low:g}, got {value!r}" if low is not None else f"a number, got {value!r}"
+            )
         return number
 
     def port(self, key: str, value: Any, allow_zero: bool) -> int:
@@ -287,6 +368,28 @@ class _Reader:
     def words(self, key: str, value: Any) -> tuple[str, ...]:
         if isinstance(value, str):
             return tuple(w.strip() for w in value.split(",") if w.strip())
-        if isinstance(value, list) and all(isinstance(w, str) for w in value):
+        if isinstance(value, list | tuple) and all(isinstance(w, str) for w in value):
             return tuple(value)
         raise self.fail(key, "a list of finding codes")
+
+    def kinds(self, key: str, value: Any) -> tuple[OutputKind, ...]:
+        words = self.words(key, value)
+        unknown = [w for w in words if w not in OUTPUT_KINDS]
+        if unknown or not words:
+            raise self.fail(key, f"fhir, hl7 or fhir,hl7, got {value!r}")
+        return tuple(k for k in OUTPUT_KINDS if k in words)
+
+    def hl7_namespace(self, key: str, value: str) -> None:
+        # source: HL7 v2.5.1 ch. 2, HD.1 namespace id is an IS of at most 20 characters; the
+        # delimiters (| ^ ~ \ &) are refused rather than escaped, so every receiver sees the name as set
+        if not 1 <= len(value) <= IS_LENGTH or _HL7_DELIMITERS.search(value):
+            raise self.fail(key, f"1 to {IS_LENGTH} characters without | ^ ~ \\ & or control characters, got {value!r}")
+
+    def uri(self, key: str, value: str) -> None:
+        if not _URI.fullmatch(value):
+            raise self.fail(key, f"an absolute URI (https://..., urn:oid:..., urn:uuid:...), got {value!r}")
+
+    def url(self, key: str, value: str) -> None:
+        parts = urlsplit(value)
+        if parts.scheme not in ("http", "https") or not parts.netloc:
+            raise self.fail(key, f"an http:// or https:// URL, got {value!r}")

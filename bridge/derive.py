@@ -15,7 +15,7 @@ from dataclasses import dataclass
 from bridge import physiology as phys
 from bridge.mapping import Tables
 from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex
-from bridge.quality import Grade, ManoeuvreFacts, grade_manoeuvres, select_reported
+from bridge.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
 
 DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"
@@ -60,7 +60,7 @@ def derive(session: Session, tables: Tables) -> Derived:
     dlco_from: Quantity | None = None
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
-    session_grade: str | None = None
+    selection: Selection | None = None
     if session.manoeuvres:  # without manoeuvres: no grades, nothing selected, no means
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
         grades = _grades(session, computed, tables)
@@ -75,9 +75,8 @@ def derive(session: Session, tables: Tables) -> Derived:
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
         selection = _selection(computed, grades, tables)
-        dlco_from = _mean_of(computed, selection, 1, DLCO_UNIT)
-        va_from = _mean_of(computed, selection, 0, "L")
-        session_grade = selection[1]
+        dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
+        va_from = _mean_of(computed, selection.indices, 0, "L")
     return Derived(
         age_years=round(age, 2),
         kco=_kco(session),
@@ -87,7 +86,10 @@ def derive(session: Session, tables: Tables) -> Derived:
         dlco_from_manoeuvres=dlco_from,
         va_from_manoeuvres=va_from,
         manoeuvres=assessments,
-        session_grade=session_grade,
+        session_grade=selection.session_grade if selection else None,
+        reported_manoeuvres=selection.indices if selection else (),
+        repeatable=selection.repeatable if selection else None,
+        quality_caution=selection.caution if selection else None,
         dlco_percent_predicted=_percent(session.results.dlco, _pred(session, "dlco")),
         kco_percent_predicted=_percent(session.results.kco, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
@@ -164,21 +166,20 @@ def _grades(
 
 def _selection(
     computed: Sequence[tuple[float | None, float | None]], grades: Sequence[Grade], tables: Tables
-) -> tuple[tuple[int, ...], str]:
+) -> Selection:
     usable = [i for i, (_, dlco) in enumerate(computed) if dlco is not None]
     dlcos = [dlco if dlco is not None else 0.0 for _, dlco in computed]
     masked = [g if i in usable else Grade("F", ("no DLCO from gas data",)) for i, g in enumerate(grades)]
-    chosen = select_reported(masked, dlcos, tables.grades)
-    return chosen.indices, chosen.session_grade
+    return select_reported(masked, dlcos, tables.grades)
 
 
 def _mean_of(
     computed: Sequence[tuple[float | None, float | None]],
-    selection: tuple[tuple[int, ...], str],
+    indices: Sequence[int],
     slot: int,
     unit: str,
 ) -> Quantity | None:
-    values = [computed[i][slot] for i in selection[0]]
+    values = [computed[i][slot] for i in indices]
     present = [v for v in values if v is not None]
     if not present:
         return None

@@ -224,16 +224,37 @@ class Derived(Frozen):
     va_from_manoeuvres: Quantity | None = None
     manoeuvres: tuple[ManoeuvreAssessment, ...] = ()
     session_grade: str | None = None
+    # The one repeatability decision (quality.select_reported): which manoeuvres make the
+    # reported value, whether they agree within the standard's limit, and the caution to show.
+    reported_manoeuvres: tuple[int, ...] = ()
+    repeatable: bool | None = None  # None: fewer than two manoeuvres to compare
+    quality_caution: str | None = None
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None
     va_percent_predicted: Quantity | None = None
 
 
+OutputKind = Literal["fhir", "hl7"]
+OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
+
+
+class Payload(Frozen):
+    """One message built for one outcome: its kind, units, stable id and bytes."""
+
+    kind: OutputKind
+    units: Literal["si", "traditional"]
+    message_id: str  # stable: the same content gives the same id
+    content_type: str
+    data: bytes
+
+
 class Outcome(Frozen):
-    """The result of the pure pipeline for one input."""
+    """The result of the pipeline for one input: the record, what was derived and found, the payloads."""
 
     source: str
     source_sha256: str
     session: Session
     derived: Derived
     findings: tuple[Finding, ...] = ()
+    payloads: tuple[Payload, ...] = ()
+    correction: bool = False  # the payloads replace a result already sent for this test id

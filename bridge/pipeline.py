@@ -1,57 +1,112 @@
-"""The pure pipeline: bytes of one input -> :class:`bridge.model.Outcome`.
+"""The one path: the bytes of one input -> :class:`bridge.model.Outcome` with its payloads (pure).
 
-Owns: the order of the steps (read -> normalise -> derive -> check), in one place. The same
-function serves ``check``, ``convert``, ``watch`` and ``audit``. No I/O: the shell reads the
-file and passes its bytes and name.
+Owns: the order of the steps, in one place: read -> normalise -> derive -> check -> gate ->
+emit (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
+``convert`` and ``demo`` with the kinds asked for, ``watch`` with its destinations' routes);
+none calls the gate or an emitter on its own. No I/O: the shell reads the file, the clock and
+the ledger, and passes the bytes, the time and a correction test in.
 """
 
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from datetime import datetime
 
 from bridge.checks import run_checks
 from bridge.derive import derive
-from bridge.errors import InputError, UnreadableInput
+from bridge.emit.outputs import payloads, refuse_blocked
+from bridge.emit.settings import EmitSettings
+from bridge.errors import InputError, OutputInvalid, UnreadableInput
 from bridge.mapping import Tables
-from bridge.model import Outcome, Session
-from bridge.readers.json_export import read_export, read_normalised
-from bridge.units import UnitCatalogue
+from bridge.model import Outcome, OutputKind, Payload
+from bridge.readers.json_export import read_normalised
+from bridge.units import UnitSystem
+from bridge.validate import problems
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
+DEFAULT_BLOCKING = ("UNIT_MISLABEL_PROBABLE",)  # findings that keep a record from being emitted
 
 
 @dataclass(frozen=True, slots=True)
-class Limits:
+class Route:
+    """One kind of payload in one unit system (several destinations may share a route)."""
+
+    kind: OutputKind
+    units: UnitSystem
+
+
+@dataclass(frozen=True, slots=True)
+class PipelineSettings:
+    """What the pipeline needs of the settings (built by ``bridge.config``; defaults written here once)."""
+
     max_input_bytes: int = DEFAULT_MAX_INPUT_BYTES
+    blocking: frozenset[str] = frozenset(DEFAULT_BLOCKING)
+    validate_outputs: bool = False  # check each payload with independent libraries (slow)
+    emit: EmitSettings = field(default_factory=EmitSettings)
 
 
-def read(data: bytes, source: str) -> Session:
-    """Pick the reader for the input (only ``dlco-result/1`` JSON so far)."""
-    return read_export(data, source)
+def _never(test_id: str, source_sha256: str) -> bool:
+    return False
 
 
-def read_and_normalise(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
-    """``normalise(read(data, source), catalogue)``; the JSON reader does both in one build."""
-    return read_normalised(data, catalogue, source)
+DEFAULT_SETTINGS = PipelineSettings()
 
 
-def process(data: bytes, source: str, tables: Tables, limits: Limits = Limits()) -> Outcome:
-    """Read, normalise, derive and check one input. Raises InputError when it is unreadable."""
-    if len(data) > limits.max_input_bytes:
-        raise UnreadableInput("(file)", f"at most {limits.max_input_bytes} bytes, got {len(data)}", source)
+def process(
+    data: bytes,
+    source: str,
+    tables: Tables,
+    settings: PipelineSettings = DEFAULT_SETTINGS,
+    *,
+    now: datetime | None = None,
+    routes: Sequence[Route] = (),
+    is_correction: Callable[[str, str], bool] = _never,
+) -> Outcome:
+    """Read, normalise, derive, check, gate and emit one input.
+
+    ``routes`` empty: nothing is emitted and no gate applies (``check``). Otherwise ``now`` is
+    the send time the shell read, and ``is_correction(test_id, sha256)`` says whether this
+    content replaces a result already sent. Raises :class:`InputError` when the input cannot
+    be read, a blocking finding refuses it, or (with ``validate_outputs``) an independent
+    validator finds a payload invalid.
+    """
+    if len(data) > settings.max_input_bytes:
+        raise UnreadableInput("(file)", f"at most {settings.max_input_bytes} bytes, got {len(data)}", source)
     try:
-        session = read_and_normalise(data, source, tables.units)
+        session = read_normalised(data, tables.units, source)
     except InputError as exc:
-        if exc.source:
-            raise
-        raise exc.with_source(source) from None  # normalise does not know the file name
+        raise exc if exc.source else exc.with_source(source) from None
     derived = derive(session, tables)
-    findings = run_checks(session, derived, tables)
-    return Outcome(
+    sha256 = hashlib.sha256(data).hexdigest()
+    outcome = Outcome(
         source=source,
-        source_sha256=hashlib.sha256(data).hexdigest(),
+        source_sha256=sha256,
         session=session,
         derived=derived,
-        findings=findings,
+        findings=run_checks(session, derived, tables),
     )
+    if not routes:
+        return outcome
+    if now is None:
+        raise ValueError("emitting needs the send time (now)")
+    refuse_blocked(outcome, settings.blocking)
+    correction = is_correction(session.test_id, sha256)
+    built: list[Payload] = []
+    for route in dict.fromkeys(routes):  # each route once, in the order asked
+        context = settings.emit.context(now, route.units, correction)
+        built.extend(payloads(outcome, tables, context, (route.kind,)))
+    if settings.validate_outputs:
+        _validate(built, outcome)
+    return outcome.model_copy(update={"payloads": tuple(built), "correction": correction})
+
+
+def _validate(built: Sequence[Payload], outcome: Outcome) -> None:
+    """Refuse the input when an independent validator rejects what was built for it."""
+    for payload in built:
+        found = problems(payload)
+        if found:
+            what = "FHIR Bundle (fhir.resources R4B)" if payload.kind == "fhir" else "ORU^R01 (hl7apy STRICT)"
+            more = f" (+{len(found) - 1} more)" if len(found) > 1 else ""
+            raise OutputInvalid("(output)", f"a valid {what}: {found[0]}{more}", outcome.source)

@@ -135,7 +135,7 @@ class Selection:
 
     indices: tuple[int, ...]
     session_grade: str
-    repeatable: bool
+    repeatable: bool | None  # None: fewer than two manoeuvres to compare
     caution: str | None
 
 
@@ -151,13 +151,13 @@ def select_reported(grades: Sequence[Grade], dlcos: Sequence[float], table: Grad
         caution = f"grade-{best} manoeuvres differ by more than {table.max_dlco_difference:g} mL/min/mmHg"
         return Selection(tuple(top), best, False, caution)
     if len(top) == 1:
-        return Selection(tuple(top), best, False, None)
+        return Selection(tuple(top), best, None, None)
     usable = sorted((i for i, g in enumerate(grades) if g.grade in rank), key=lambda i: rank[grades[i].grade])
     if not usable:
-        return Selection((), FAIL_GRADE, False, "no acceptable manoeuvre")
+        return Selection((), FAIL_GRADE, None, "no acceptable manoeuvre")
     chosen = tuple(sorted(usable[:2]))
     worst = max((grades[i].grade for i in chosen), key=lambda g: rank[g])
-    repeatable = len(chosen) == 2 and abs(dlcos[chosen[0]] - dlcos[chosen[1]]) <= table.max_dlco_difference
+    repeatable = abs(dlcos[chosen[0]] - dlcos[chosen[1]]) <= table.max_dlco_difference if len(chosen) == 2 else None
     return Selection(chosen, worst, repeatable, f"no grade-{best} manoeuvre; best grade {worst}")
 
 

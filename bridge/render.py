@@ -101,6 +101,12 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
         lines.append(f"    manoeuvre {m.index + 1}: " + ", ".join(parts))
     if d.session_grade is not None:
         lines.append(f"    session quality grade {d.session_grade}")
+    if d.reported_manoeuvres:
+        used = ", ".join(str(i + 1) for i in d.reported_manoeuvres)
+        verdict = {True: "repeatable", False: "not repeatable", None: "nothing to compare with"}[d.repeatable]
+        lines.append(f"    reported value from manoeuvre(s) {used}: {verdict}")
+    if d.quality_caution is not None:
+        lines.append(f"    interpret with caution: {d.quality_caution}")
     lines.append(f"  findings ({len(outcome.findings)})")
     for f in outcome.findings:
         lines.append(f"    {f.severity.value.upper():<8}{f.code}  {f.path}")

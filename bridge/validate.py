@@ -12,8 +12,8 @@ from __future__ import annotations
 
 from typing import Any
 
-from bridge.emit.outputs import Payload
 from bridge.errors import ConfigError
+from bridge.model import Payload
 
 
 def problems(payload: Payload) -> list[str]:

@@ -190,6 +190,8 @@ def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
     d, s = outcome.derived, outcome.session
     if d.session_grade is not None:
         notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres).")
+    if d.quality_caution is not None:
+        notes.append(f"Interpret with caution: {d.quality_caution}.")
     pred = s.results.predicted
     if pred is not None and pred.reference_set:
         notes.append(f"Reference values: {pred.reference_set}.")

@@ -2,36 +2,24 @@
 
 Owns: ``fhir`` -> transaction Bundle JSON, ``hl7`` -> ORU^R01 ER7 (CR-separated), their
 stable message ids and file stems, and refusing an outcome that carries a finding local
-configuration marks as blocking. Used by ``convert`` and by the watch-folder service.
+configuration marks as blocking. Called only by ``bridge.pipeline``.
 """
 
 from __future__ import annotations
 
 import re
 from collections.abc import Collection, Sequence
-from dataclasses import dataclass
-from typing import Literal
 
 from bridge.emit.fhir import bundle_json, require_aware
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import EmitContext, ReportContent, build_content
 from bridge.errors import BlockedByFinding
 from bridge.mapping import Tables
-from bridge.model import Outcome
+from bridge.model import Outcome, OutputKind, Payload
 
-OutputKind = Literal["fhir", "hl7"]
-OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
 FHIR_JSON = "application/fhir+json"
 HL7_V2_ER7 = "x-application/hl7-v2+er7"
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
-
-
-@dataclass(frozen=True, slots=True)
-class Payload:
-    kind: OutputKind
-    message_id: str  # stable: the same content gives the same id
-    content_type: str
-    data: bytes
 
 
 def file_stem(test_id: str) -> str:
@@ -39,7 +27,7 @@ def file_stem(test_id: str) -> str:
     return _UNSAFE.sub("_", test_id).lstrip(".") or "_"
 
 
-def gate(outcome: Outcome, blocking: Collection[str]) -> None:
+def refuse_blocked(outcome: Outcome, blocking: Collection[str]) -> None:
     """Raise BlockedByFinding when the outcome carries a finding configured as blocking."""
     hits = [f for f in outcome.findings if f.code in blocking]
     if hits:
@@ -66,10 +54,16 @@ def payloads(
             if content is None:
                 content = build_content(outcome, tables, context.units)
             stem = f"{file_stem(outcome.session.test_id)}"
-            built.append(Payload("fhir", stem, FHIR_JSON, bundle_json(outcome, tables, context, content)))
+            data = bundle_json(outcome, tables, context, content)
+            built.append(Payload(kind="fhir", units=context.units, message_id=stem, content_type=FHIR_JSON, data=data))
         else:
             if content is None:
                 content = build_content(outcome, tables, context.units)
             er7 = to_oru(outcome, tables, context, content)
-            built.append(Payload("hl7", control_id(outcome, context), HL7_V2_ER7, er7.encode("utf-8")))
+            message_id = control_id(outcome, context)
+            built.append(
+                Payload(
+                    kind="hl7", units=context.units, message_id=message_id, content_type=HL7_V2_ER7, data=er7.encode()
+                )
+            )
     return tuple(built)

@@ -70,3 +70,23 @@ def test_nothing_acceptable_is_grade_f():
 
     assert chosen.indices == ()
     assert chosen.session_grade == "F"
+
+
+def test_a_repeatable_pair_among_three_grade_a_is_reported_and_repeatable():
+    """Grade A at 28.49, 29.89 and 32.82: the first two agree within 2 mL/min/mmHg and make the value."""
+    # source: 2017 ERS/ATS DLCO standard reporting rule (mean of >= 2 grade-A manoeuvres within
+    # 2 mL/min/mmHg; secondary rendering); 29.89 - 28.49 = 1.40 <= 2, 32.82 - 29.89 = 2.93 > 2
+    chosen = select_reported([Grade("A", ())] * 3, [28.49, 29.89, 32.82], TABLE)
+
+    assert (0, 1) == chosen.indices
+    assert chosen.repeatable is True
+    assert chosen.caution is None
+
+
+def test_one_grade_a_has_nothing_to_compare():
+    """A single grade-A manoeuvre is reported alone; repeatability is not assessable (None, not False)."""
+    # source: 2017 ERS/ATS DLCO standard reporting rule (one grade-A alone is reported; secondary rendering)
+    chosen = select_reported([Grade("A", ()), Grade("F", ("x",))], [25.0, 18.0], TABLE)
+
+    assert (0,) == chosen.indices
+    assert chosen.repeatable is None

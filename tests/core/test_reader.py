@@ -9,7 +9,7 @@ import pytest
 
 from bridge.errors import InputError, MissingField, UnitError, UnreadableInput
 from bridge.mapping import Tables
-from bridge.pipeline import Limits, process
+from bridge.pipeline import PipelineSettings, process
 
 GOOD = (Path(__file__).resolve().parents[2] / "samples" / "01-healthy-adult.json").read_bytes()
 
@@ -22,9 +22,9 @@ def _bytes(doc: dict) -> bytes:
     return json.dumps(doc).encode()
 
 
-def _error(data: bytes, tables: Tables, limits: Limits = Limits()) -> InputError:
+def _error(data: bytes, tables: Tables, settings: PipelineSettings = PipelineSettings()) -> InputError:
     with pytest.raises(InputError) as caught:
-        process(data, "lab/export.json", tables, limits)
+        process(data, "lab/export.json", tables, settings)
     return caught.value
 
 
@@ -135,7 +135,7 @@ def test_bad_input_gives_one_line_naming_file_and_field(tables: Tables, case):
 
 def test_file_over_the_size_limit(tables: Tables):
     """An input over the configured limit is refused before parsing."""
-    error = _error(GOOD, tables, Limits(max_input_bytes=100))
+    error = _error(GOOD, tables, PipelineSettings(max_input_bytes=100))
 
     assert isinstance(error, UnreadableInput)
     assert f"at most 100 bytes, got {len(GOOD)}" == error.expected
