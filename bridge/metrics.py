@@ -19,7 +19,16 @@ from bridge.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
 # Latency buckets in seconds (Prometheus histogram "le" bounds).
 LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0)
-COUNTERS = ("files_seen", "files_processed", "files_quarantined", "files_duplicate", "corrections")
+# files_failed_internal: quarantined because processing raised something other than an
+# InputError (a bug the file exposed); they are counted in files_quarantined as well.
+COUNTERS = (
+    "files_seen",
+    "files_processed",
+    "files_quarantined",
+    "files_failed_internal",
+    "files_duplicate",
+    "corrections",
+)
 
 
 class Metrics:

@@ -8,7 +8,8 @@ Owns:
   its messages in the ledger (committed first), then archive it; or quarantine it with
   ``<name>.error.json`` saying why in the same words as ``check``. The same content dropped
   again is archived as a duplicate and sends nothing; new content for a test id already sent
-  goes out as a correction.
+  goes out as a correction. Any other exception met while processing one file (a bug the file
+  exposes) quarantines that file as an internal error: one file never stops the feed.
 
 Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
 content the ledger knows only archives it (into the archive proper when it is the file a crash
@@ -24,6 +25,7 @@ import hashlib
 import logging
 import threading
 import time
+import traceback
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from datetime import UTC, datetime
@@ -40,9 +42,10 @@ from watchdog.events import (
     FileSystemEventHandler,
 )
 
+from bridge import __version__
 from bridge.config import Destination, Settings
 from bridge.emit.outputs import gate, payloads
-from bridge.errors import InputError, UnreadableInput
+from bridge.errors import InputError, LedgerError, UnreadableInput
 from bridge.files import free_name, move_durably, write_atomically
 from bridge.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.mapping import Tables
@@ -56,6 +59,8 @@ log = logging.getLogger("dlco_bridge.intake")
 _IN_PROGRESS_SUFFIXES = (".tmp", ".part", ".partial", ".crdownload", ".filepart")
 
 Result = Literal["processed", "correction", "duplicate", "quarantined", "vanished"]
+# The pure pipeline's entry point; a seam so tests can hand the intake one that fails.
+Processor = Callable[[bytes, str, Tables, Limits], Outcome]
 
 
 def is_candidate(path: Path) -> bool:
@@ -151,6 +156,7 @@ class Intake:
         metrics: Metrics,
         clock: Callable[[], float] = time.time,
         on_enqueued: Callable[[], None] = lambda: None,
+        processor: Processor = process,
     ) -> None:
         self.settings = settings
         self.tables = tables
@@ -158,10 +164,15 @@ class Intake:
         self.metrics = metrics
         self.clock = clock
         self.on_enqueued = on_enqueued
+        self.processor = processor
         self.limits = Limits(max_input_bytes=settings.max_input_bytes)
 
     def take(self, path: Path, complete_at: float) -> IntakeResult:
-        """Process one file completely; never raises for bad input."""
+        """Process one file completely; never raises for what the file contains.
+
+        Raises only what is not the file's fault: OSError (it cannot be read or moved; the
+        service leaves it in place) and LedgerError (the state database is unusable: fatal).
+        """
         try:
             data = self._read(path)
         except FileNotFoundError:
@@ -177,11 +188,27 @@ class Intake:
                 return self._recover(path, known)
             return self._duplicate(path, sha)
         try:
-            outcome = process(data, path.name, self.tables, self.limits)
+            outcome = self.processor(data, path.name, self.tables, self.limits)
             gate(outcome, self.settings.blocking)
+            correction = self._is_correction(outcome)
+            # Every destination's payload is built before anything is recorded: one that
+            # fails quarantines the file with nothing enqueued for any destination.
+            messages = [
+                message
+                for destination in self.settings.destinations
+                for message in self._messages(outcome, destination, correction)
+            ]
         except InputError as error:
             return self._quarantine(path, sha, error)
-        return self._enqueue(path, outcome, complete_at)
+        except LedgerError:
+            raise  # the state database, not this file: fatal, as everywhere
+        except Exception as error:
+            # Anything else is a bug this file exposes (OverflowError, a model's ValidationError,
+            # ZeroDivisionError...). Retrying cannot help and must not stop the feed: the file is
+            # quarantined as an internal error and the next one is taken. Not BaseException:
+            # KeyboardInterrupt and SystemExit still stop the service.
+            return self._quarantine(path, sha, error)
+        return self._enqueue(path, outcome, correction, messages, complete_at)
 
     def _read(self, path: Path) -> bytes:
         size = path.stat().st_size
@@ -189,15 +216,15 @@ class Intake:
             raise UnreadableInput("(file)", f"at most {self.limits.max_input_bytes} bytes, got {size}", path.name)
         return path.read_bytes()
 
-    def _enqueue(self, path: Path, outcome: Outcome, complete_at: float) -> IntakeResult:
+    def _is_correction(self, outcome: Outcome) -> bool:
+        """New content for a test id whose earlier content was accepted."""
+        previous = self.ledger.last_for_test(outcome.session.test_id)
+        return previous is not None and previous.sha256 != outcome.source_sha256
+
+    def _enqueue(
+        self, path: Path, outcome: Outcome, correction: bool, messages: list[NewMessage], complete_at: float
+    ) -> IntakeResult:
         session = outcome.session
-        previous = self.ledger.last_for_test(session.test_id)
-        correction = previous is not None and previous.sha256 != outcome.source_sha256
-        messages = [
-            message
-            for destination in self.settings.destinations
-            for message in self._messages(outcome, destination, correction)
-        ]
         state: Literal["correction", "processed"] = "correction" if correction else "processed"
         self.ledger.record_input_and_enqueue(
             NewInput(outcome.source_sha256, path.name, session.test_id, state), messages
@@ -271,19 +298,15 @@ class Intake:
                  extra={"event": "duplicate", "file": path.name, "sha256": sha[:12]})  # fmt: skip
         return IntakeResult(path, "duplicate")
 
-    def _quarantine(self, path: Path, sha: str, error: InputError) -> IntakeResult:
-        error = error if error.source else error.with_source(path.name)
-        reason = error.line()
+    def _quarantine(self, path: Path, sha: str, error: Exception) -> IntakeResult:
+        """Into ``quarantine/`` with ``<name>.error.json`` saying why; the ledger keeps it by hash."""
+        if isinstance(error, InputError):
+            reason, said, details = _input_error(path.name, error)
+        else:
+            reason, said, details = _internal_error(path.name, error)
         target = free_name(self.settings.quarantine, path.name, sha[:12])
-        report = {
-            "file": path.name,
-            "sha256": sha,
-            "reason": reason,
-            "error": type(error).__name__,
-            "field": error.field,
-            "expected": error.expected,
-            "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(),
-        }
+        report = {"file": path.name, "sha256": sha, **details,
+                  "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(), "version": __version__}  # fmt: skip
         write_atomically(
             target.with_name(target.name + ".error.json"), orjson.dumps(report, option=orjson.OPT_INDENT_2)
         )
@@ -291,12 +314,14 @@ class Intake:
         with contextlib.suppress(FileNotFoundError):  # already gone: the error report stays
             move_durably(path, target)
         self.metrics.count("files_quarantined")
-        # The reason may quote the input's values (a malformed patient id, a birth date): it
-        # goes to the log only when patient data may be logged; the report always has it.
-        said = reason if self.settings.log_patient_data else f"{type(error).__name__} at {error.field}"
-        log.warning("input quarantined",
-                    extra={"event": "quarantined", "file": path.name, "reason": said,
-                           "report": target.name + ".error.json"})  # fmt: skip
+        if details["kind"] == "internal":
+            self.metrics.count("files_failed_internal")
+        # The reason may quote the input's values: it goes to the log only when patient data
+        # may be logged; the report always has it.
+        log.log(logging.WARNING if details["kind"] == "input" else logging.ERROR, "input quarantined",
+                extra={"event": "quarantined", "file": path.name,
+                       "reason": reason if self.settings.log_patient_data else said,
+                       "report": target.name + ".error.json"})  # fmt: skip
         return IntakeResult(path, "quarantined", reason)
 
     def _archive(self, path: Path, subfolder: str, sha: str) -> None:
@@ -306,12 +331,33 @@ class Intake:
         move_durably(path, free_name(folder, path.name, sha[:12]))
 
 
+def _input_error(source: str, error: InputError) -> tuple[str, str, dict[str, object]]:
+    """The reason (the line ``check`` prints), what the log says of it by default, the report's fields."""
+    error = error if error.source else error.with_source(source)
+    name = type(error).__name__
+    reason = error.line()  # may quote a malformed patient id or birth date
+    details: dict[str, object] = {"reason": reason, "error": name, "field": error.field,
+                                  "expected": error.expected, "kind": "input"}  # fmt: skip
+    return reason, f"{name} at {error.field}", details
+
+
+def _internal_error(source: str, error: Exception) -> tuple[str, str, dict[str, object]]:
+    """As :func:`_input_error` for an exception that is a bug, not a reason: type, message, traceback."""
+    name = type(error).__name__
+    message = str(error)  # may quote the input (pydantic repeats the value it refused)
+    reason = f"{source}: internal error: {name}" + (f": {message.splitlines()[0]}" if message else "")
+    frames = traceback.extract_tb(error.__traceback__)
+    said = f"{name} (internal error)" + (f" in {Path(frames[-1].filename).name}:{frames[-1].lineno}" if frames else "")
+    details: dict[str, object] = {"reason": reason, "error": name, "field": None, "expected": None,
+                                  "kind": "internal", "message": message,
+                                  "traceback": "".join(traceback.format_exception(error))}  # fmt: skip
+    return reason, said, details
+
+
 def _file_sha256(path: Path) -> str:
-    try:
-        with path.open("rb") as stream:
-            return hashlib.file_digest(stream, "sha256").hexdigest()
-    except OSError:
-        return hashlib.sha256(b"").hexdigest()
+    """The SHA-256 of a file's content; OSError when it cannot be read (never a made-up hash)."""
+    with path.open("rb") as stream:
+        return hashlib.file_digest(stream, "sha256").hexdigest()
 
 
 def _message_id(stem: str, kind: str, outcome: Outcome, correction: bool) -> str:
