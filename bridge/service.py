@@ -20,7 +20,7 @@ from pathlib import Path
 from watchdog.observers import Observer
 from watchdog.observers.inotify_move_event_grouper import InotifyMoveEventGrouper
 
-from bridge.config import Settings
+from bridge.config import ServiceSettings, Settings
 from bridge.delivery import Backoff, deliver_due
 from bridge.ledger import Ledger
 from bridge.mapping import Tables
@@ -51,7 +51,7 @@ class Service:
         rand: Callable[[], float] = random.random,
         stop: threading.Event | None = None,
     ) -> None:
-        self.settings = settings
+        self.settings: ServiceSettings = settings.require_service()
         self.ledger = ledger
         self.clock = clock
         self.rand = rand
@@ -60,9 +60,9 @@ class Service:
         self.messages_queued = threading.Event()
         self.metrics = Metrics(clock)
         self.transports = {name: MeteredTransport(t, self.metrics) for name, t in transports.items()}
-        self.readiness = Readiness(settings.inbox, settings.stable_seconds, clock, self.files_arrived)
+        self.readiness = Readiness(self.settings.inbox, self.settings.stable_seconds, clock, self.files_arrived)
         self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set)
-        self.backoff = Backoff(settings.retry_base_seconds, settings.retry_cap_seconds)
+        self.backoff = Backoff(self.settings.retry_base_seconds, self.settings.retry_cap_seconds)
         self._unmovable: dict[str, tuple[int, int]] = {}
         self.health: HealthServer | None = None
 

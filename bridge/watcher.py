@@ -43,15 +43,14 @@ from watchdog.events import (
 )
 
 from bridge import __version__
-from bridge.config import Destination, Settings
-from bridge.emit.outputs import gate, payloads
+from bridge.config import Settings
 from bridge.errors import InputError, LedgerError, UnreadableInput
 from bridge.files import free_name, move_durably, write_atomically
 from bridge.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.mapping import Tables
 from bridge.metrics import Metrics
-from bridge.model import Outcome
-from bridge.pipeline import Limits, process
+from bridge.model import Outcome, Payload
+from bridge.pipeline import Route, process
 
 log = logging.getLogger("dlco_bridge.intake")
 
@@ -60,7 +59,7 @@ _IN_PROGRESS_SUFFIXES = (".tmp", ".part", ".partial", ".crdownload", ".filepart"
 
 Result = Literal["processed", "correction", "duplicate", "quarantined", "vanished"]
 # The pure pipeline's entry point; a seam so tests can hand the intake one that fails.
-Processor = Callable[[bytes, str, Tables, Limits], Outcome]
+Processor = Callable[..., Outcome]  # bridge.pipeline.process, or a stand-in in tests
 
 
 def is_candidate(path: Path) -> bool:
@@ -158,14 +157,15 @@ class Intake:
         on_enqueued: Callable[[], None] = lambda: None,
         processor: Processor = process,
     ) -> None:
-        self.settings = settings
+        self.service = settings.require_service()
+        self.pipeline = settings.pipeline
         self.tables = tables
         self.ledger = ledger
         self.metrics = metrics
         self.clock = clock
         self.on_enqueued = on_enqueued
         self.processor = processor
-        self.limits = Limits(max_input_bytes=settings.max_input_bytes)
+        self.routes = tuple(Route(d.payload, d.units) for d in self.service.destinations)
 
     def take(self, path: Path, complete_at: float) -> IntakeResult:
         """Process one file completely; never raises for what the file contains.
@@ -188,16 +188,19 @@ class Intake:
                 return self._recover(path, known)
             return self._duplicate(path, sha)
         try:
-            outcome = self.processor(data, path.name, self.tables, self.limits)
-            gate(outcome, self.settings.blocking)
-            correction = self._is_correction(outcome)
             # Every destination's payload is built before anything is recorded: one that
             # fails quarantines the file with nothing enqueued for any destination.
-            messages = [
-                message
-                for destination in self.settings.destinations
-                for message in self._messages(outcome, destination, correction)
-            ]
+            now = datetime.fromtimestamp(self.clock(), UTC)
+            outcome = self.processor(
+                data,
+                path.name,
+                self.tables,
+                self.pipeline,
+                now=now,
+                routes=self.routes,
+                is_correction=self._is_correction,
+            )
+            messages = self._messages(outcome)
         except InputError as error:
             return self._quarantine(path, sha, error)
         except LedgerError:
@@ -208,23 +211,22 @@ class Intake:
             # quarantined as an internal error and the next one is taken. Not BaseException:
             # KeyboardInterrupt and SystemExit still stop the service.
             return self._quarantine(path, sha, error)
-        return self._enqueue(path, outcome, correction, messages, complete_at)
+        return self._enqueue(path, outcome, messages, complete_at)
 
     def _read(self, path: Path) -> bytes:
+        limit = self.pipeline.max_input_bytes
         size = path.stat().st_size
-        if size > self.limits.max_input_bytes:
-            raise UnreadableInput("(file)", f"at most {self.limits.max_input_bytes} bytes, got {size}", path.name)
+        if size > limit:
+            raise UnreadableInput("(file)", f"at most {limit} bytes, got {size}", path.name)
         return path.read_bytes()
 
-    def _is_correction(self, outcome: Outcome) -> bool:
+    def _is_correction(self, test_id: str, sha256: str) -> bool:
         """New content for a test id whose earlier content was accepted."""
-        previous = self.ledger.last_for_test(outcome.session.test_id)
-        return previous is not None and previous.sha256 != outcome.source_sha256
+        previous = self.ledger.last_for_test(test_id)
+        return previous is not None and previous.sha256 != sha256
 
-    def _enqueue(
-        self, path: Path, outcome: Outcome, correction: bool, messages: list[NewMessage], complete_at: float
-    ) -> IntakeResult:
-        session = outcome.session
+    def _enqueue(self, path: Path, outcome: Outcome, messages: list[NewMessage], complete_at: float) -> IntakeResult:
+        session, correction = outcome.session, outcome.correction
         state: Literal["correction", "processed"] = "correction" if correction else "processed"
         self.ledger.record_input_and_enqueue(
             NewInput(outcome.source_sha256, path.name, session.test_id, state), messages
@@ -241,15 +243,15 @@ class Intake:
         log.info("input processed", extra=extra)
         return IntakeResult(path, state)
 
-    def _messages(self, outcome: Outcome, destination: Destination, correction: bool) -> list[NewMessage]:
-        now = datetime.fromtimestamp(self.clock(), UTC)
-        context = self.settings.emit.context(now, destination.units, correction)
+    def _messages(self, outcome: Outcome) -> list[NewMessage]:
+        """One outbox row per destination, from the payload of its route."""
         patient = outcome.session.patient
         patient_key = hashlib.sha256(f"{patient.id_system}|{patient.id}".encode()).hexdigest()[:32]
+        by_route = {(p.kind, p.units): p for p in outcome.payloads}
         return [
             NewMessage(
                 destination=destination.name,
-                message_id=_message_id(payload.message_id, payload.kind, outcome, correction),
+                message_id=_outbox_id(payload, outcome),
                 test_id=outcome.session.test_id,
                 patient_key=patient_key,
                 payload=payload.data,
@@ -257,11 +259,12 @@ class Intake:
                 # the input's hash, not the payload's: the payload carries a send-time stamp
                 content_sha256=outcome.source_sha256,
             )
-            for payload in payloads(outcome, self.tables, context, (destination.payload,))
+            for destination in self.service.destinations
+            for payload in (by_route[(destination.payload, destination.units)],)
         ]
 
     def _patient(self, outcome: Outcome) -> dict[str, str]:
-        if not self.settings.log_patient_data:
+        if not self.service.log_patient_data:
             return {}
         return {"patient_id": outcome.session.patient.id}
 
@@ -275,7 +278,7 @@ class Intake:
         if known.source != path.name:
             return False
         for day in (known.first_seen, known.first_seen + 86_400):
-            folder = self.settings.archive / datetime.fromtimestamp(day, UTC).strftime("%Y-%m-%d")
+            folder = self.service.archive / datetime.fromtimestamp(day, UTC).strftime("%Y-%m-%d")
             for candidate in folder.glob(glob.escape(path.name) + "*"):
                 if candidate.is_file() and _file_sha256(candidate) == known.sha256:
                     return False
@@ -304,7 +307,7 @@ class Intake:
             reason, said, details = _input_error(path.name, error)
         else:
             reason, said, details = _internal_error(path.name, error)
-        target = free_name(self.settings.quarantine, path.name, sha[:12])
+        target = free_name(self.service.quarantine, path.name, sha[:12])
         report = {"file": path.name, "sha256": sha, **details,
                   "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(), "version": __version__}  # fmt: skip
         write_atomically(
@@ -320,14 +323,14 @@ class Intake:
         # may be logged; the report always has it.
         log.log(logging.WARNING if details["kind"] == "input" else logging.ERROR, "input quarantined",
                 extra={"event": "quarantined", "file": path.name,
-                       "reason": reason if self.settings.log_patient_data else said,
+                       "reason": reason if self.service.log_patient_data else said,
                        "report": target.name + ".error.json"})  # fmt: skip
         return IntakeResult(path, "quarantined", reason)
 
     def _archive(self, path: Path, subfolder: str, sha: str) -> None:
         """Into ``archive/YYYY-MM-DD/`` (UTC day); a name already there gets the hash appended."""
         day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y-%m-%d")
-        folder = self.settings.archive / day / subfolder if subfolder else self.settings.archive / day
+        folder = self.service.archive / day / subfolder if subfolder else self.service.archive / day
         move_durably(path, free_name(folder, path.name, sha[:12]))
 
 
@@ -360,8 +363,8 @@ def _file_sha256(path: Path) -> str:
         return hashlib.file_digest(stream, "sha256").hexdigest()
 
 
-def _message_id(stem: str, kind: str, outcome: Outcome, correction: bool) -> str:
+def _outbox_id(payload: Payload, outcome: Outcome) -> str:
     """Outbox id: HL7 uses MSH-10 (content-derived); FHIR uses the test id plus the content hash."""
-    if kind == "hl7":
-        return stem
-    return f"{stem}.{outcome.source_sha256[:12]}" + (".c" if correction else "")
+    if payload.kind == "hl7":
+        return payload.message_id
+    return f"{payload.message_id}.{outcome.source_sha256[:12]}" + (".c" if outcome.correction else "")

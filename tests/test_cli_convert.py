@@ -14,15 +14,16 @@ SAMPLES = ROOT / "samples"
 
 
 def test_convert_writes_both_outputs_and_reports_the_bad_file(tmp_path, capsys):
-    """Good samples give <test_id>.bundle.json and .oru.hl7; the malformed one is one stderr line."""
+    """Good samples give <test_id>.bundle.json and .oru.hl7; the mislabelled and the malformed one are refused."""
     code = main(["convert", str(SAMPLES), "--to", "fhir,hl7", "--out", str(tmp_path)])
     _, err = capsys.readouterr()
 
     assert 2 == code
-    assert ["08-malformed.json"] == [Path(line.split(":")[0]).name for line in err.strip().splitlines()]
+    refused = [Path(line.split(":")[0]).name for line in err.strip().splitlines()]
+    assert ["07-unit-mislabel.json", "08-malformed.json"] == refused
     bundles = sorted(p.name for p in tmp_path.glob("*.bundle.json"))
     messages = sorted(p.name for p in tmp_path.glob("*.oru.hl7"))
-    assert 8 == len(bundles) == len(messages)
+    assert 7 == len(bundles) == len(messages)
     assert "LOW-2026-0001.bundle.json" in bundles
     assert [] == [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary files left
 
@@ -39,22 +40,23 @@ def test_converted_oru_is_cr_separated_and_parses(tmp_path):
 
 
 def test_blocking_finding_refuses_the_file(tmp_path, capsys):
-    """With --block UNIT_MISLABEL_PROBABLE the mislabelled session is refused, nothing written."""
-    code = main(
-        [
-            "convert",
-            str(SAMPLES / "07-unit-mislabel.json"),
-            "--out",
-            str(tmp_path),
-            "--block",
-            "UNIT_MISLABEL_PROBABLE",
-        ]
-    )
+    """By default (as in the service) the mislabelled session is refused and nothing is written."""
+    code = main(["convert", str(SAMPLES / "07-unit-mislabel.json"), "--out", str(tmp_path)])
     _, err = capsys.readouterr()
 
     assert 2 == code
     assert "UNIT_MISLABEL_PROBABLE is configured as blocking" in err
     assert [] == list(tmp_path.iterdir())
+
+
+def test_an_empty_blocking_list_lets_the_flagged_file_through(tmp_path, capsys):
+    """--blocking '' overrides the default: the mislabelled session is written, its finding in the summary."""
+    code = main(["convert", str(SAMPLES / "07-unit-mislabel.json"), "--out", str(tmp_path), "--blocking", ""])
+    out = capsys.readouterr().out
+
+    assert 0 == code
+    assert "UNIT_MISLABEL_PROBABLE" in out
+    assert 2 == len(list(tmp_path.iterdir()))
 
 
 def test_units_do_not_change_codes(tmp_path):
@@ -136,11 +138,14 @@ def test_convert_validate_passes_good_samples(tmp_path, capsys):
 
 def test_validate_reports_an_invalid_payload():
     """An ORU that hl7apy cannot parse and a Bundle with an unknown element are both reported."""
-    from bridge.emit.outputs import FHIR_JSON, HL7_V2_ER7, Payload
+    from bridge.emit.outputs import FHIR_JSON, HL7_V2_ER7
+    from bridge.model import Payload
     from bridge.validate import problems
 
-    oru = Payload("hl7", "x", HL7_V2_ER7, b"MSH|^~\\&|A|B|C|D|20260310||ORU^R01^ORU_R01|1|P|9.9\r")
-    bundle = Payload("fhir", "x", FHIR_JSON, b'{"resourceType": "Bundle", "type": "transaction", "entri": []}')
+    oru_text = b"MSH|^~\\&|A|B|C|D|20260310||ORU^R01^ORU_R01|1|P|9.9\r"
+    oru = Payload(kind="hl7", units="si", message_id="x", content_type=HL7_V2_ER7, data=oru_text)
+    bundle_text = b'{"resourceType": "Bundle", "type": "transaction", "entri": []}'
+    bundle = Payload(kind="fhir", units="si", message_id="x", content_type=FHIR_JSON, data=bundle_text)
 
     assert [] != problems(oru)
     assert ["entri: Extra inputs are not permitted"] == problems(bundle)

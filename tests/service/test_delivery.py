@@ -86,7 +86,7 @@ def test_a_refused_message_is_dead_lettered_and_resent_on_request(
     wait_until(lambda: site.summary().delivered == 3, "the resent message delivered")
     attempts = [a.test_id for a in receiver.acked if a.test_id == "NAK-02"]
 
-    assert (0, "1 rejected messages queued again") == (resent.returncode, resent.stdout.strip())
+    assert (0, "1 rejected message queued again") == (resent.returncode, resent.stdout.strip())
     assert ["NAK-02", "NAK-02"] == attempts
     assert {"NAK-01", "NAK-02", "NAK-03"} == {a.test_id for a in receiver.accepted()}
 

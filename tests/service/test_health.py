@@ -40,9 +40,10 @@ def test_healthz_stays_ok_while_delivery_works_through_a_backlog(tmp_path: Path,
         base=tmp_path,
     )
     clock = Clock(start=time.time() + 3600.0)  # every enqueued row is due at once
+    full, settings = settings, settings.require_service()
     settings.inbox.mkdir(parents=True)
     with Ledger.open(settings.ledger_path) as ledger:
-        service = Service(settings, load_tables(), ledger, {"records": MllpTransport(LOOPBACK, receiver.port)}, clock)
+        service = Service(full, load_tables(), ledger, {"records": MllpTransport(LOOPBACK, receiver.port)}, clock)
         # metrics_port = 0 turns the service's own endpoint off; this one listens on a free port.
         service.health = HealthServer(LOOPBACK, 0, service.metrics, ledger.summary, stale_after=30.0)
         service.health.start()

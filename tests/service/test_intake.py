@@ -157,9 +157,10 @@ def test_a_file_that_vanishes_before_it_is_read_leaves_no_trace(tmp_path: Path) 
     settings = parse_settings(
         'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n' + file_destination(), {}, base=tmp_path
     )
+    full, settings = settings, settings.require_service()
     settings.inbox.mkdir()
     with Ledger.open(settings.ledger_path) as ledger:
-        intake = Intake(settings, load_tables(), ledger, Metrics(time.time))
+        intake = Intake(full, load_tables(), ledger, Metrics(time.time))
         path = settings.inbox / "gone.json"
         path.write_bytes(make_input("GONE-0001", "FICT-8006"))
         path.unlink()

@@ -20,13 +20,14 @@ from typing import TYPE_CHECKING, Any
 import pytest
 
 from bridge import __version__
-from bridge.config import Settings, parse_settings
+from bridge.config import ServiceSettings, parse_settings
+from bridge.emit.outputs import payloads
 from bridge.ledger import Ledger
 from bridge.logs import JsonFormatter
 from bridge.mapping import Tables
 from bridge.metrics import Metrics
 from bridge.model import Outcome
-from bridge.pipeline import Limits, process
+from bridge.pipeline import PipelineSettings, process
 from bridge.resources import load_tables
 from bridge.watcher import Intake, Processor
 from tests.service.conftest import GOOD, drop, file_destination, make_input, mllp_destination, wait_until
@@ -95,7 +96,7 @@ def test_poison_files_among_good_ones_are_quarantined_and_the_feed_goes_on(
 class InProcess:
     """An intake on ``tmp_path`` with its ledger and metrics, and a way to drop one file."""
 
-    def __init__(self, settings: Settings, ledger: Ledger, metrics: Metrics, intake: Intake) -> None:
+    def __init__(self, settings: ServiceSettings, ledger: Ledger, metrics: Metrics, intake: Intake) -> None:
         self.settings = settings
         self.ledger = ledger
         self.metrics = metrics
@@ -117,16 +118,15 @@ def in_process(tmp_path: Path) -> Iterator[Callable[..., InProcess]]:
     ledgers: list[Ledger] = []
 
     def build(processor: Processor = process, destinations: str = file_destination(), extra: str = "") -> InProcess:
-        settings = parse_settings(
+        full = parse_settings(
             f'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n{extra}\n{destinations}', {}, base=tmp_path
         )
+        settings = full.require_service()
         settings.inbox.mkdir()
         ledger = Ledger.open(settings.ledger_path)
         ledgers.append(ledger)
         metrics = Metrics(time.time)
-        return InProcess(
-            settings, ledger, metrics, Intake(settings, load_tables(), ledger, metrics, processor=processor)
-        )
+        return InProcess(settings, ledger, metrics, Intake(full, load_tables(), ledger, metrics, processor=processor))
 
     yield build
     for ledger in ledgers:
@@ -136,10 +136,10 @@ def in_process(tmp_path: Path) -> Iterator[Callable[..., InProcess]]:
 def failing_on(name: str, error: BaseException) -> Processor:
     """The real pipeline, except that the input called ``name`` raises ``error``."""
 
-    def processor(data: bytes, source: str, tables: Tables, limits: Limits) -> Outcome:
+    def processor(data: bytes, source: str, tables: Tables, *args: Any, **kwargs: Any) -> Outcome:
         if source == name:
             raise error
-        return process(data, source, tables, limits)
+        return process(data, source, tables, *args, **kwargs)
 
     return processor
 
@@ -218,13 +218,20 @@ def test_an_input_error_report_says_kind_input(in_process: Callable[..., InProce
 def with_haemoglobin(**update: object) -> Processor:
     """The real pipeline, with the outcome's haemoglobin changed after it (what an emitter may refuse)."""
 
-    def processor(data: bytes, source: str, tables: Tables, limits: Limits) -> Outcome:
-        outcome = process(data, source, tables, limits)
+    def processor(
+        data: bytes, source: str, tables: Tables, settings: PipelineSettings, *, now: Any, routes: Any, **_: Any
+    ) -> Outcome:
+        outcome = process(data, source, tables)  # read, derive and check; emitted below
         conditions = outcome.session.conditions
         assert conditions.hemoglobin is not None
         changed = conditions.model_copy(update={"hemoglobin": conditions.hemoglobin.model_copy(update=update)})
-        session = outcome.session.model_copy(update={"conditions": changed})
-        return outcome.model_copy(update={"session": session})
+        outcome = outcome.model_copy(update={"session": outcome.session.model_copy(update={"conditions": changed})})
+        built = [
+            payload
+            for route in routes
+            for payload in payloads(outcome, tables, settings.emit.context(now, route.units), (route.kind,))
+        ]
+        return outcome.model_copy(update={"payloads": tuple(built)})
 
     return processor
 
