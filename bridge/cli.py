@@ -178,20 +178,21 @@ def read_input(path: Path, limit: int) -> bytes:
 
 
 def run_inputs(
-    paths: Sequence[Path], settings: Settings, tables: Tables, routes: Sequence[Route] = ()
+    paths: Sequence[Path], settings: Settings, tables: Tables, routes: Sequence[Route] = (), now: datetime | None = None
 ) -> Iterator[tuple[Path, Outcome | InputError]]:
     """The pipeline over every input; an InputError is returned in place of its outcome, never raised.
 
     Any other exception is a defect of the bridge, reported for that file alone
     (:class:`ProcessingFailed`) so that the other files are still processed.
     """
-    now = datetime.now(UTC)  # the shell reads the clock once per run; the pipeline receives it
+    now = now or datetime.now(UTC)  # the shell reads the clock once per run; the pipeline receives it
     for path in expand(paths):
         try:
             data = read_input(path, settings.pipeline.max_input_bytes)
-            yield path, process(data, str(path), tables, settings.pipeline, now=now, routes=routes)
+            # The record names its input by file name, as the service does; errors name the path given.
+            yield path, process(data, path.name, tables, settings.pipeline, now=now, routes=routes)
         except InputError as exc:
-            yield path, exc
+            yield path, exc.with_source(str(path))
         except Exception as exc:  # one file must never stop the others
             yield path, ProcessingFailed.wrapping(exc, str(path))
 
@@ -228,13 +229,16 @@ def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
 
 
 def convert_files(
-    paths: Sequence[Path], out: Path, settings: Settings, tables: Tables
+    paths: Sequence[Path], out: Path, settings: Settings, tables: Tables, now: datetime | None = None
 ) -> list[tuple[Path, Outcome | InputError, list[Path]]]:
-    """Convert every input; each result is (input, outcome or error, files written)."""
+    """Convert every input; each result is (input, outcome or error, files written).
+
+    ``now``: the send time written into every message (default: the clock, read once).
+    """
     routes = [Route(kind, settings.units) for kind in settings.to]
     writer = FileTransport(out)
     results: list[tuple[Path, Outcome | InputError, list[Path]]] = []
-    for path, result in run_inputs(paths, settings, tables, routes):
+    for path, result in run_inputs(paths, settings, tables, routes, now):
         if isinstance(result, InputError):
             results.append((path, result, []))
             continue

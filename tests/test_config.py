@@ -1,0 +1,122 @@
+"""The one settings object: file, then environment, then flags; every value checked when it is read."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from bridge.cli import main
+from bridge.config import load_settings, parse_settings
+from bridge.errors import ConfigError
+from bridge.pipeline import PipelineSettings
+
+ROOT = Path(__file__).resolve().parent.parent
+SAMPLE_CONFIG = ROOT / "samples" / "service" / "bridge.toml"
+
+
+def _error(text: str, environ: dict[str, str] | None = None, flags: dict[str, object] | None = None) -> ConfigError:
+    with pytest.raises(ConfigError) as caught:
+        parse_settings(text, environ or {}, flags, source="site.toml")
+    return caught.value
+
+
+def test_no_file_no_environment_gives_the_documented_defaults():
+    """Without a file, variables or flags every default is the one written in the settings classes."""
+    settings = load_settings(None, {})
+
+    assert ("traditional", 2.987, ("fhir", "hl7"), None) == (
+        settings.units,
+        settings.traditional_per_si,
+        settings.to,
+        settings.service,
+    )
+    assert PipelineSettings() == settings.pipeline
+
+
+def test_environment_overrides_the_file_and_flags_override_both():
+    """units: file says si, the environment traditional, the flag si again; each layer wins over the one below."""
+    text = 'units = "si"\n[emit]\nsending_facility = "FROM-FILE"\n'
+    environ = {"DLCO_BRIDGE_UNITS": "traditional", "DLCO_BRIDGE_EMIT_SENDING_FACILITY": "FROM-ENV"}
+
+    from_env = parse_settings(text, environ)
+    from_flag = parse_settings(text, environ, {"units": "si", "emit.sending_facility": "FROM-FLAG", "to": None})
+
+    assert ("traditional", "FROM-ENV") == (from_env.units, from_env.pipeline.emit.sending_facility)
+    assert ("si", "FROM-FLAG") == (from_flag.units, from_flag.pipeline.emit.sending_facility)
+
+
+@pytest.mark.parametrize(
+    ("text", "key", "expected"),
+    [
+        # source: HL7 v2.5.1 ch. 2, HD.1 namespace id (IS, at most 20 characters)
+        ('[emit]\nsending_facility = "' + "F" * 30 + '"\n', "emit.sending_facility", "1 to 20 characters"),
+        ('[emit]\nsending_application = "A|B"\n', "emit.sending_application", "without |"),
+        # source: HL7 v2.5.1 table 0103 (processing id P, T, D)
+        ('[emit]\nprocessing_id = "X"\n', "emit.processing_id", "one of P, T, D"),
+        # source: RFC 3986 section 3 (an absolute URI has a scheme)
+        ('[emit]\nidentifier_system = "observation ids"\n', "emit.identifier_system", "an absolute URI"),
+        ('units = "imperial"\n', "units", "one of si, traditional"),
+        ("traditional_per_si = 3.0\n", "traditional_per_si", "2.987 or 2.986"),
+        ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
+        ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
+        ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
+    ],
+    ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None,
+)
+def test_a_bad_value_is_refused_when_read_naming_file_and_key(text, key, expected):
+    """Each bad setting is one ConfigError naming the file and the key, before any input is touched."""
+    error = _error(text)
+
+    assert ("site.toml", key) == (error.source, error.key)
+    assert expected in error.expected
+
+
+def test_a_bad_value_from_the_environment_is_refused_too():
+    """DLCO_BRIDGE_EMIT_SENDING_FACILITY of 30 characters fails at start, not at the first file."""
+    error = _error("", {"DLCO_BRIDGE_EMIT_SENDING_FACILITY": "F" * 30})
+
+    assert "emit.sending_facility" == error.key
+
+
+def test_a_fhir_url_without_a_host_is_refused():
+    """A fhir-rest base_url must be an http(s) URL with a host."""
+    text = 'inbox = "i"\narchive = "a"\nquarantine = "q"\nstate = "s"\n'
+    text += '[destination.store]\npayload = "fhir"\ntransport = "fhir-rest"\nbase_url = "https:///fhir"\n'
+
+    assert "destination.store.base_url" == _error(text).key
+
+
+def test_service_settings_are_required_only_by_the_service():
+    """A configuration without an inbox serves check and convert; the service refuses it with a clear error."""
+    settings = parse_settings('[emit]\nsending_facility = "SITE"\n', {}, source="site.toml")
+
+    with pytest.raises(ConfigError) as caught:
+        settings.require_service()
+
+    assert ("inbox", "site.toml") == (caught.value.key, caught.value.source)
+
+
+def test_the_sample_configuration_is_valid_and_complete():
+    """samples/service/bridge.toml, the documented example, reads without error and names three destinations."""
+    settings = load_settings(SAMPLE_CONFIG, {"FHIR_STORE_TOKEN": "x"})
+
+    assert ["records", "fhir-store", "drop"] == [d.name for d in settings.require_service().destinations]
+
+
+def test_watch_without_a_configuration_file_refuses_to_start(capsys, monkeypatch):
+    """`watch` with neither --config nor DLCO_BRIDGE_CONFIG is an error, never a start on ./bridge.toml."""
+    monkeypatch.delenv("DLCO_BRIDGE_CONFIG", raising=False)
+
+    code = main(["watch"])
+
+    assert 1 == code
+    assert "--config" in capsys.readouterr().err
+
+
+def test_a_missing_configuration_file_is_one_line(tmp_path, capsys):
+    """--config naming a file that does not exist is one line naming it; exit 1."""
+    code = main(["check", "--config", str(tmp_path / "absent.toml"), str(ROOT / "samples" / "01-healthy-adult.json")])
+
+    assert 1 == code
+    assert f"{tmp_path / 'absent.toml'}: (file): a readable configuration file" in capsys.readouterr().err

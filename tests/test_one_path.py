@@ -1,0 +1,79 @@
+"""`convert` and `watch` are one path: the same input and site settings give the same bytes."""
+
+from __future__ import annotations
+
+import shutil
+import time
+from dataclasses import replace
+from datetime import UTC, datetime
+from pathlib import Path
+
+from bridge.cli import convert_files
+from bridge.config import load_settings
+from bridge.ledger import Ledger
+from bridge.metrics import Metrics
+from bridge.resources import load_tables
+from bridge.watcher import Intake
+
+ROOT = Path(__file__).resolve().parent.parent
+NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
+# A site that sets every emit setting away from its default (invented names), with one
+# destination per output kind, both in SI units.
+SITE = """
+inbox = "in"
+archive = "archive"
+quarantine = "quarantine"
+state = "state"
+units = "si"
+
+[emit]
+sending_application = "BRIDGE-TEST"
+sending_facility = "FENWICK-PFT"
+receiving_application = "CHART"
+receiving_facility = "FENWICK-HOLLOW"
+identifier_system = "https://fenwick-hollow.example/observation-id"
+local_code_system = "https://fenwick-hollow.example/local-codes"
+patient_reference = "conditional-create"
+processing_id = "T"
+
+[destination.records]
+payload = "hl7"
+units = "si"
+transport = "file"
+folder = "hl7-out"
+
+[destination.store]
+payload = "fhir"
+units = "si"
+transport = "file"
+folder = "fhir-out"
+"""
+
+
+def test_convert_and_watch_write_byte_identical_payloads(tmp_path: Path):
+    """For every good sample, the ORU and Bundle that convert writes equal what the service enqueues."""
+    config = tmp_path / "site.toml"
+    config.write_text(SITE, encoding="utf-8")
+    settings = load_settings(config, {})
+    service = settings.require_service()
+    tables = load_tables()
+    samples = [
+        ROOT / "samples" / n for n in ("01-healthy-adult.json", "03-high-altitude.json", "06-three-manoeuvres.json")
+    ]
+
+    converted = convert_files(samples, tmp_path / "out", replace(settings, to=("fhir", "hl7")), tables, now=NOW)
+    service.inbox.mkdir()
+    with Ledger.open(service.ledger_path) as ledger:
+        intake = Intake(settings, tables, ledger, Metrics(time.time), clock=NOW.timestamp)
+        for sample in samples:
+            intake.take(Path(shutil.copy(sample, service.inbox)), time.time())
+        queued = {(row.test_id, row.destination): row.payload for row in ledger.rows("pending")}
+
+    written = {
+        (outcome.session.test_id, "store" if path.name.endswith(".bundle.json") else "records"): path.read_bytes()
+        for _, outcome, paths in converted
+        for path in paths
+        if not isinstance(outcome, Exception)
+    }
+    assert 6 == len(written)
+    assert written == queued
