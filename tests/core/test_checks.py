@@ -62,7 +62,7 @@ def test_kco_within_rounding_is_accepted(sample_outcomes):
 
 def test_anaemic_patient_gets_the_hb_adjusted_value(sample_outcomes):
     """Hb 8.9 g/dL, female: DLCO 15.1 x (9.38 + 8.9)/(1.7 x 8.9) = 18.24 and the lab's 18.2 agrees."""
-    # source: Cotes adjustment check values, DOMAIN.md section 9.3  # from memory constants
+    # Hand computation, Cotes form adopted by the ATS/ERS DLCO standards  # from memory constants
     outcome = sample_outcomes["02-anaemic-patient"]
 
     assert outcome.derived.dlco_hb_adjusted.value == pytest.approx(18.24, abs=0.01)
@@ -91,11 +91,13 @@ def test_hb_adjustment_mismatch(tables: Tables):
 
 def test_altitude_site_gets_sea_level_equivalent(sample_outcomes):
     """At 615 mmHg DLCO is reduced to its sea-level equivalent (factor about 0.90)."""
-    # source: DOMAIN.md section 9.5 (factor 0.9133 at 630 mmHg; lower PB, lower factor)
+    # Hand computation  # from memory (equation form): 1 + 0.0031 (0.2093 x (630 - 47) - 150) = 0.9133
+    # at 630 mmHg; at the lower 615 mmHg the factor is lower still
     outcome = sample_outcomes["03-high-altitude"]
 
+    # at 615 mmHg: 1 + 0.0031 x (0.2093 x (615 - 47) - 150) = 1 + 0.0031 x (118.88 - 150) = 0.90354
     assert "PRESSURE_ADJUSTMENT" in _codes(outcome)
-    assert outcome.derived.dlco_pressure_adjusted.value / 36.4 < 0.9133
+    assert outcome.derived.dlco_pressure_adjusted.value == pytest.approx(36.4 * 0.90354, abs=0.01)
 
 
 def test_raised_cohb(sample_outcomes):
@@ -109,7 +111,8 @@ def test_raised_cohb(sample_outcomes):
 
 def test_child_uses_the_child_constant(sample_outcomes):
     """An 11-year-old girl's Hb factor uses 9.38."""
-    # source: Cotes form, females and children < 15 y (DOMAIN.md section 3.1)  # from memory constants
+    # source: Cotes form as adopted by the ATS/ERS DLCO standards: 9.38 for females and children under 15
+    # from memory constants
     outcome = sample_outcomes["05-child"]
     dlco = outcome.session.results.dlco.value
 

@@ -1,4 +1,4 @@
-"""The equations against the worked examples and published check values of DOMAIN.md."""
+"""The equations against published tables and check values computed by hand in each test."""
 
 from __future__ import annotations
 
@@ -11,8 +11,13 @@ from bridge.model import SampleGasHandling
 
 
 def test_synthetic_single_breath_dlco():
-    """FA,CO,0, VA STPD, DLCO and KCO reproduce the worked single-breath example."""
-    # source: DOMAIN.md section 9.2 worked example (classical equation of S05/S17, computed)
+    """FA,CO,0, VA STPD, DLCO and KCO reproduce a single-breath example computed by hand."""
+    # Hand computation (invented inputs; classical single-breath equation of the ATS/ERS 2005 and
+    # ERS/ATS 2017 DLCO standards  # from memory (equation form), gas factors of ATS/ERS 2005 Table 5):
+    #   FA,CO,0 = FI,CO x FA,Tr / FI,Tr = 0.003 x 0.0024 / 0.003 = 0.0024; ln(0.0024 / 0.0012) = 0.693147
+    #   VA,STPD = 6.0 x (760 - 47)/760 x 273/310 = 4.9571 L
+    #   DLCO = 4.9571 x 60000 / (10 x 713) x 0.693147 = 28.914 mL/min/mmHg = 9.680 mmol/min/kPa
+    #   KCO = 28.914 / 6.0 = 4.819 mL/min/mmHg/L
     fa_co0 = phys.initial_alveolar_co_fraction(0.003, 0.003, 0.0024)
     va_stpd = phys.stpd_from_btps_l(6.0, 760.0)
     dlco = phys.dlco_single_breath(va_stpd, 10.0, 760.0, fa_co0, 0.0012)
@@ -58,7 +63,8 @@ def test_va_gas_condition_factor_room_equilibrated():
 
 def test_va_gas_condition_factor_heated_wet_line():
     """Heated wet line: S05 gives the STPD form; its BTPS equals STPD through the identity."""
-    # source: ATS/ERS 2005 DLCO standard, Table 5, row 4 (STPD), identity DOMAIN.md section 1.2
+    # source: ATS/ERS 2005 DLCO standard, Table 5, row 4 (STPD form); BTPS from STPD by the same
+    # table's factors: V_STPD = V_BTPS x (PB - 47)/760 x 273/310
     stpd = 4.0 * 0.10 / 0.08 * (750 - 47) / 760 * 273 / (273 + 22)
 
     assert phys.stpd_from_btps_l(_va(SampleGasHandling.HEATED_WET), 750.0) == pytest.approx(stpd)
@@ -86,7 +92,10 @@ def test_dead_spaces_are_subtracted_from_inspired_volume():
 )
 def test_cotes_haemoglobin_adjustment(male, age, dlco, hb, adjusted, multiplier):
     """Cotes adjustment of measured DLCO to standard Hb, and its predicted-side multiplier."""
-    # source: DOMAIN.md section 9.3 check values (Cotes form adopted by ATS/ERS)  # from memory constants
+    # Hand computation with the Cotes form adopted by the ATS/ERS DLCO standards  # from memory constants:
+    #   factor = (k + Hb) / (1.7 Hb), k = 10.22 (men from 15 y) or 9.38 (women, children)
+    #   20.0 x (10.22 + 11) / (1.7 x 11) = 22.695; 25.0 x (10.22 + 18) / (1.7 x 18) = 23.056
+    #   20.0 x (9.38 + 11) / (1.7 x 11) = 21.797; 15.0 x (9.38 + 8) / (1.7 x 8) = 19.169
     factor = phys.hb_adjustment_factor(hb, male, age)
 
     assert dlco * factor == pytest.approx(adjusted, abs=1e-3)
@@ -106,14 +115,15 @@ def test_cotes_factor_is_one_at_standard_haemoglobin():
 )
 def test_inspired_po2_adjustment(pb, pio2, factor):
     """PIO2 = 0.2093 (PB - 47) and the factor 1 + 0.0031 (PIO2 - 150)."""
-    # source: DOMAIN.md section 9.5 check values  # from memory (equation form)
+    # Hand computation  # from memory (equation form): PIO2 = 0.2093 x (PB - 47); factor = 1 + 0.0031 (PIO2 - 150)
+    #   760: 0.2093 x 713 = 149.23 -> 0.9976; 700: 0.2093 x 653 = 136.67 -> 0.9587; 630: 0.2093 x 583 = 122.02 -> 0.9133
     assert phys.inspired_po2_mmhg(pb) == pytest.approx(pio2, abs=0.01)
     assert phys.pressure_adjustment_factor(pb) == pytest.approx(factor, abs=1e-4)
 
 
 def test_cohb_adjustment_textbook_example():
     """COHb 10 %, measured 21.4: about 23.5 by the rule of thumb; 23.78 by 100/(100 - COHb)."""
-    # source: AccessMedicine textbook example (DOMAIN.md section 9.4): ~1 % DLCO per 1 % COHb -> 23.5
+    # source: AccessMedicine textbook example (COHb 10 %, DLCO 21.4): ~1 % DLCO per 1 % COHb -> 23.5
     # from memory: the S17-style anaemia-effect form 100/(100 - COHb) gives 23.78
     adjusted = 21.4 * phys.cohb_adjustment_factor(10.0)
 
@@ -122,10 +132,11 @@ def test_cohb_adjustment_textbook_example():
 
 
 def test_standard_atmosphere_pressure():
-    """760 mmHg at sea level and about 609 mmHg at 1,800 m."""
-    # common practice: ICAO standard atmosphere (about 81.5 kPa at 1,800 m)
+    """760 mmHg at sea level and 611.2 mmHg (81.49 kPa) at 1,800 m."""
+    # source: ICAO standard atmosphere (ISO 2533) table, 81.49 kPa at 1,800 m  # from memory
+    # 81.49 kPa x 7.50062 mmHg/kPa = 611.2 mmHg
     assert phys.barometric_pressure_from_altitude_mmhg(0) == pytest.approx(760)
-    assert phys.barometric_pressure_from_altitude_mmhg(1800) == pytest.approx(611.5, abs=2)
+    assert phys.barometric_pressure_from_altitude_mmhg(1800) == pytest.approx(611.2, abs=0.2)
 
 
 def test_atpd_btps_round_trip():

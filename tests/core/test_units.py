@@ -7,13 +7,14 @@ import math
 import pytest
 from hypothesis import given
 from hypothesis import strategies as st
+from lark.exceptions import LarkError
 from ucumvert import PintUcumRegistry, get_ucum_parser
 
 from bridge.mapping import Tables
 from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE
 
 # source: GLI 2017 TLCO/KCO coefficients (corrected 2020) as carried by the rspiro and PySpiro
-# libraries (DOMAIN.md section 6.2): intercept a0 per sex, traditional vs SI.
+# libraries (Stanojevic et al., Eur Respir J 2017;50:1700010): intercept a0 per sex, traditional vs SI.
 GLI_INTERCEPTS = {
     "TLCO male": (-7.034920, -8.129189),
     "TLCO female": (-5.159451, -6.253720),
@@ -34,7 +35,7 @@ def test_factor_matches_gli_intercepts(name):
 
 def test_catalogue_uses_the_named_factor(tables: Tables):
     """1 mmol/min/kPa is 2.987 mL/min/mm[Hg], and the same factor holds per litre for KCO."""
-    # source: GLI 2017 intercepts (above); KCO per litre shares the factor (DOMAIN.md section 2)
+    # source: GLI 2017 intercepts (above): the KCO intercepts differ by the same ln(2.987), VA in litres
     assert tables.units.convert(1.0, "mmol/min/kPa", "mL/min/mm[Hg]") == pytest.approx(2.987)
     assert tables.units.convert(1.0, "mmol/min/kPa/L", "mL/min/mm[Hg]/L") == pytest.approx(2.987)
 
@@ -60,7 +61,7 @@ def test_every_catalogued_code_is_valid_ucum(tables: Tables):
 def test_common_spellings_are_not_ucum_but_are_normalised(tables: Tables, written):
     """mmHg is not a UCUM atom: ucumvert rejects it; the catalogue maps it to mm[Hg]."""
     # source: UCUM (mm[Hg] is the atom; "mmHg" is invalid), checked with ucumvert
-    with pytest.raises(Exception):  # noqa: B017 - ucumvert raises lark's own error classes
+    with pytest.raises(LarkError):  # ucumvert's grammar is a lark parser
         UCUM.parse(written)
 
     resolved = tables.units.resolve(written)
@@ -120,7 +121,7 @@ def test_physical_factors_agree_with_ucum_registry(tables: Tables, source, targe
 
 def test_hb_mmol_per_litre_factor(tables: Tables):
     """Hb 1 mmol/L (monomer) is 1.61145 g/dL."""
-    # from memory: Hb monomer molar mass 16 114.5 g/mol (DOMAIN.md section 2)
+    # from memory: Hb monomer molar mass 16 114.5 g/mol
     assert tables.units.convert(9.06, "mmol/L", "g/dL") == pytest.approx(14.6, abs=0.01)
 
 
