@@ -44,10 +44,10 @@ BANNED_MODULES = {
     "shutil",
     "tempfile",
     "bridge.cli",
-    "bridge.ledger",
-    "bridge.transports",
+    "bridge.service.ledger",
+    "bridge.service.transports",
     "bridge.resources",
-    "bridge.watcher",
+    "bridge.service.intake",
     "bridge.config",
 }
 # uuid5 (deterministic, from content) is allowed; uuid1/uuid4 read the clock or randomness.

@@ -15,8 +15,8 @@ from bridge.errors import (
     DeliveryTimeout,
     Rejected,
 )
-from bridge.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
-from bridge.transports.fhir_rest import FhirRestTransport, outcome_text
+from bridge.service.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
+from bridge.service.transports.fhir_rest import FhirRestTransport, outcome_text
 
 if TYPE_CHECKING:
     from tests.shell.conftest import FhirEndpoint

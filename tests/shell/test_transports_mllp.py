@@ -15,8 +15,8 @@ from bridge.errors import (
     DeliveryTimeout,
     Rejected,
 )
-from bridge.transports.base import HL7_V2_ER7, OutgoingMessage, TlsOptions
-from bridge.transports.mllp import (
+from bridge.service.transports.base import HL7_V2_ER7, OutgoingMessage, TlsOptions
+from bridge.service.transports.mllp import (
     Ack,
     FrameReader,
     MllpTransport,

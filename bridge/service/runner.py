@@ -1,7 +1,7 @@
 """The watch-folder service: intake loop, delivery loop, health endpoint, graceful stop (shell).
 
-Owns: wiring :mod:`bridge.watcher` (intake), :mod:`bridge.delivery` (outbox to transports)
-and :mod:`bridge.metrics` (health, metrics) together, in two threads: intake must stay
+Owns: wiring :mod:`bridge.service.intake` (intake), :mod:`bridge.service.delivery` (outbox to transports)
+and :mod:`bridge.service.metrics` (health, metrics) together, in two threads: intake must stay
 responsive while a receiver is slow or down, and delivery must go on while a burst of files
 arrives. A stop request (SIGTERM/SIGINT) lets the file and the message in flight finish.
 Transports and the ledger are built by the CLI and passed in.
@@ -21,12 +21,12 @@ from watchdog.observers import Observer
 from watchdog.observers.inotify_move_event_grouper import InotifyMoveEventGrouper
 
 from bridge.config import ServiceSettings, Settings
-from bridge.delivery import Backoff, deliver_due
-from bridge.ledger import Ledger
 from bridge.mapping import Tables
-from bridge.metrics import HealthServer, MeteredTransport, Metrics
-from bridge.transports.base import Transport
-from bridge.watcher import Intake, Readiness, is_candidate
+from bridge.service.delivery import Backoff, deliver_due
+from bridge.service.intake import Intake, Readiness, is_candidate
+from bridge.service.ledger import Ledger
+from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
+from bridge.service.transports.base import Transport
 
 log = logging.getLogger("dlco_bridge.service")
 

@@ -19,10 +19,10 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Literal
 
-from bridge.backoff import DEFAULT_BASE, DEFAULT_CAP, next_delay
 from bridge.errors import DeliveryError, Rejected
-from bridge.ledger import Ledger, OutboxRow
-from bridge.transports.base import OutgoingMessage, Transport
+from bridge.service.backoff import DEFAULT_BASE, DEFAULT_CAP, next_delay
+from bridge.service.ledger import Ledger, OutboxRow
+from bridge.service.transports.base import OutgoingMessage, Transport
 
 Outcome = Literal["delivered", "rejected", "retry"]
 log = logging.getLogger("dlco_bridge.delivery")

@@ -21,7 +21,7 @@ from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
-from bridge.transports.base import (
+from bridge.service.transports.base import (
     DeliveryReceipt,
     OutgoingMessage,
     TlsOptions,

@@ -10,7 +10,7 @@ from collections import deque
 from typing import Literal
 
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
-from bridge.transports.base import DeliveryReceipt, OutgoingMessage
+from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage
 
 Scripted = tuple[Literal["fail", "timeout", "reject"], str]
 

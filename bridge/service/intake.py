@@ -14,7 +14,7 @@ Owns:
 Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
 content the ledger knows only archives it (into the archive proper when it is the file a crash
 kept from being moved, into ``duplicates/`` when it was dropped again), so a kill at any point
-loses nothing and enqueues nothing twice. Must not deliver (that is ``bridge.delivery``) or parse settings.
+loses nothing and enqueues nothing twice. Must not deliver (that is ``bridge.service.delivery``) or parse settings.
 """
 
 from __future__ import annotations
@@ -45,12 +45,12 @@ from watchdog.events import (
 from bridge import __version__
 from bridge.config import Settings
 from bridge.errors import InputError, LedgerError, UnreadableInput
-from bridge.files import free_name, move_durably, write_atomically
-from bridge.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.mapping import Tables
-from bridge.metrics import Metrics
 from bridge.model import Outcome, Payload
 from bridge.pipeline import Route, process
+from bridge.service.files import free_name, move_durably, write_atomically
+from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
+from bridge.service.metrics import Metrics
 
 log = logging.getLogger("dlco_bridge.intake")
 

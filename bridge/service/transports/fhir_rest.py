@@ -24,7 +24,7 @@ from bridge.errors import (
     DeliveryTimeout,
     Rejected,
 )
-from bridge.transports.base import (
+from bridge.service.transports.base import (
     FHIR_JSON,
     DeliveryReceipt,
     OutgoingMessage,
