@@ -109,10 +109,6 @@ class Metrics:
         ]
         return "\n".join(lines) + "\n"
 
-    def snapshot(self) -> dict[str, Any]:
-        with self._lock:
-            return {"counts": dict(self.counts), "delivered": dict(self._delivered)}
-
 
 def _label(destination: str) -> str:
     escaped = destination.replace("\\", "\\\\").replace('"', '\\"')

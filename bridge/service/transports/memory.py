@@ -1,4 +1,4 @@
-"""``InMemoryTransport``: a transport that only remembers, for tests and ``--dry-run``.
+"""``InMemoryTransport``: a transport that only remembers, for tests.
 
 Owns a scripted list of outcomes (fail, time out, reject) for the next deliveries. It must
 not do any I/O.
