@@ -308,9 +308,11 @@ read_timeout = 30.0
 
 # Runs ``dlco-bridge watch`` with watchdog's IN_MOVED_FROM/IN_MOVED_TO pairing wait (0.5 s in
 # watchdog 7.1) set to argv[1] seconds, to show how much of the latency that wait accounts for.
+# The service sets the wait itself (bridge.service.watcher.pair_moves_quickly), so the
+# experiment changes the value that function applies rather than watchdog's attribute.
 _WITH_MOVE_DELAY = (
-    "import sys; from watchdog.observers import inotify_move_event_grouper as g; "
-    "g.InotifyMoveEventGrouper.delay = float(sys.argv[1]); from bridge.cli import main; sys.exit(main(sys.argv[2:]))"
+    "import sys; from bridge.service import watcher; watcher.MOVE_PAIRING_SECONDS = float(sys.argv[1]); "
+    "from bridge.cli import main; sys.exit(main(sys.argv[2:]))"
 )
 
 

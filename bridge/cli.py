@@ -29,19 +29,19 @@ from bridge.emit.outputs import file_stem
 from bridge.errors import BridgeError, ConfigError, InputError, ProcessingFailed, UnreadableInput
 from bridge.fhirshow import describe_bundle
 from bridge.hl7show import describe_er7
-from bridge.ledger import Ledger, ServiceLock
-from bridge.logs import configure as configure_logging
 from bridge.mapping import Tables
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import Route, process
 from bridge.render import CAUTION, outcome_json, outcome_text
 from bridge.resources import load_tables, samples_dir
 from bridge.schema import export_schema
-from bridge.service import Service
-from bridge.transports.base import OutgoingMessage, TlsOptions, Transport
-from bridge.transports.fhir_rest import FhirRestTransport
-from bridge.transports.file import FileTransport
-from bridge.transports.mllp import MllpTransport
+from bridge.service.ledger import Ledger, ServiceLock
+from bridge.service.logs import configure as configure_logging
+from bridge.service.runner import Service
+from bridge.service.transports.base import OutgoingMessage, TlsOptions, Transport
+from bridge.service.transports.fhir_rest import FhirRestTransport
+from bridge.service.transports.file import FileTransport
+from bridge.service.transports.mllp import MllpTransport
 
 EXIT_OK = 0
 EXIT_SETUP = 1

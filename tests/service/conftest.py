@@ -25,7 +25,7 @@ from typing import Any
 
 import pytest
 
-from bridge.ledger import Ledger, LedgerSummary
+from bridge.service.ledger import Ledger, LedgerSummary
 from tests.conftest import SAMPLES
 from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, serve_fhir
 

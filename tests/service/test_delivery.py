@@ -5,7 +5,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
-from bridge.ledger import Ledger, OutboxRow
+from bridge.service.ledger import Ledger, OutboxRow
 from tests.service.conftest import cli, drop, fhir_destination, make_input, mllp_destination, wait_until
 
 if TYPE_CHECKING:

@@ -10,10 +10,10 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from bridge.config import parse_settings
-from bridge.ledger import Ledger
-from bridge.metrics import Metrics
 from bridge.resources import load_tables
-from bridge.watcher import Intake
+from bridge.service.intake import Intake
+from bridge.service.ledger import Ledger
+from bridge.service.metrics import Metrics
 from tests.service.conftest import (
     GOOD,
     MALFORMED,

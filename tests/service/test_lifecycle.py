@@ -9,7 +9,7 @@ import time
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
-from bridge.ledger import Ledger
+from bridge.service.ledger import Ledger
 from tests.service.conftest import (
     drop,
     file_destination,

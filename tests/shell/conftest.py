@@ -24,7 +24,7 @@ import hl7  # type: ignore[import-untyped]  # python-hl7 ships no type hints
 import pytest
 from hl7.mllp import HL7StreamReader, HL7StreamWriter, start_hl7_server  # type: ignore[import-untyped]
 
-from bridge.ledger import Ledger
+from bridge.service.ledger import Ledger
 
 LOOPBACK = "127.0.0.1"
 

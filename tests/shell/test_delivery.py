@@ -7,13 +7,13 @@ from typing import TYPE_CHECKING
 
 import pytest
 
-from bridge.backoff import ceiling, next_delay
-from bridge.delivery import Backoff, deliver_due, deliver_one
-from bridge.ledger import Ledger, NewInput, NewMessage
-from bridge.transports.base import FHIR_JSON, HL7_V2_ER7
-from bridge.transports.fhir_rest import FhirRestTransport
-from bridge.transports.memory import InMemoryTransport
-from bridge.transports.mllp import MllpTransport
+from bridge.service.backoff import ceiling, next_delay
+from bridge.service.delivery import Backoff, deliver_due, deliver_one
+from bridge.service.ledger import Ledger, NewInput, NewMessage
+from bridge.service.transports.base import FHIR_JSON, HL7_V2_ER7
+from bridge.service.transports.fhir_rest import FhirRestTransport
+from bridge.service.transports.memory import InMemoryTransport
+from bridge.service.transports.mllp import MllpTransport
 
 if TYPE_CHECKING:
     from tests.shell.conftest import Clock, FhirEndpoint, MllpReceiver

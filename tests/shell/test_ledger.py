@@ -13,7 +13,7 @@ from typing import TYPE_CHECKING
 import pytest
 
 from bridge.errors import LedgerError
-from bridge.ledger import (
+from bridge.service.ledger import (
     SCHEMA_VERSION,
     DestinationSummary,
     Ledger,
@@ -184,7 +184,7 @@ def test_commit_survives_immediate_process_death(tmp_path: Path) -> None:
     script = (
         "import os, sys\n"
         "from pathlib import Path\n"
-        "from bridge.ledger import Ledger, NewInput, NewMessage\n"
+        "from bridge.service.ledger import Ledger, NewInput, NewMessage\n"
         "ledger = Ledger.open(Path(sys.argv[1]))\n"
         "m = NewMessage('ward', 'M1', 'T-1', 'p1', b'MSH|x', 'text/plain')\n"
         "ledger.record_input_and_enqueue(NewInput('a' * 64, 'a.json', 'T-1'), [m])\n"

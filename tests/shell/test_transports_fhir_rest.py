@@ -15,8 +15,8 @@ from bridge.errors import (
     DeliveryTimeout,
     Rejected,
 )
-from bridge.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
-from bridge.transports.fhir_rest import FhirRestTransport, outcome_text
+from bridge.service.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
+from bridge.service.transports.fhir_rest import FhirRestTransport, operation_outcome_text
 
 if TYPE_CHECKING:
     from tests.shell.conftest import FhirEndpoint
@@ -127,7 +127,7 @@ def test_base_url_must_be_http() -> None:
         FhirRestTransport("ftp://127.0.0.1/fhir")
 
 
-def test_outcome_text_falls_back_to_details_and_code() -> None:
+def test_operation_outcome_text_falls_back_to_details_and_code() -> None:
     """Each issue gives diagnostics, else details.text, else its code."""
     # source: FHIR R4 OperationOutcome.issue (diagnostics, details.text, code)
     body = (
@@ -135,5 +135,5 @@ def test_outcome_text_falls_back_to_details_and_code() -> None:
         b'{"code": "invalid", "details": {"text": "bad unit"}}, {"code": "required"}]}'
     )
 
-    assert "bad unit; required" == outcome_text(body)
-    assert "" == outcome_text(b"<html>proxy error</html>")
+    assert "bad unit; required" == operation_outcome_text(body)
+    assert "" == operation_outcome_text(b"<html>proxy error</html>")

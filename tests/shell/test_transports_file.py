@@ -7,8 +7,8 @@ from pathlib import Path
 import pytest
 
 from bridge.errors import DeliveryError
-from bridge.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
-from bridge.transports.file import FileTransport, file_name
+from bridge.service.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
+from bridge.service.transports.file import FileTransport, file_name
 
 
 def test_message_is_written_under_its_id(tmp_path: Path) -> None:

@@ -15,14 +15,14 @@ from bridge.errors import (
     DeliveryTimeout,
     Rejected,
 )
-from bridge.transports.base import HL7_V2_ER7, OutgoingMessage, TlsOptions
-from bridge.transports.mllp import (
+from bridge.service.transports.base import HL7_V2_ER7, OutgoingMessage, TlsOptions
+from bridge.service.transports.mllp import (
     Ack,
     FrameReader,
     MllpTransport,
-    control_id,
     frame,
     parse_ack,
+    read_control_id,
 )
 
 if TYPE_CHECKING:
@@ -101,11 +101,11 @@ def test_parse_ack_refuses_what_is_not_an_ack(data: bytes) -> None:
     assert None is parse_ack(data)
 
 
-def test_control_id_is_msh_10(make_oru: MakeOru) -> None:
+def test_read_control_id_is_msh_10(make_oru: MakeOru) -> None:
     """The control id is MSH-10 (MSH-1 is the field separator itself)."""
     # source: HL7 v2.5.1 ch. 2 MSH segment field numbering
-    assert "C-42" == control_id(make_oru("C-42"))
-    assert None is control_id(b"{}")
+    assert "C-42" == read_control_id(make_oru("C-42"))
+    assert None is read_control_id(b"{}")
 
 
 # ---- the client against a real receiver -----------------------------------------------

@@ -1,4 +1,4 @@
-"""``InMemoryTransport``: a transport that only remembers, for tests and ``--dry-run``.
+"""``InMemoryTransport``: a transport that only remembers, for tests.
 
 Owns a scripted list of outcomes (fail, time out, reject) for the next deliveries. It must
 not do any I/O.
@@ -10,7 +10,7 @@ from collections import deque
 from typing import Literal
 
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
-from bridge.transports.base import DeliveryReceipt, OutgoingMessage
+from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage
 
 Scripted = tuple[Literal["fail", "timeout", "reject"], str]
 

@@ -19,12 +19,13 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Literal
 
-from bridge.backoff import DEFAULT_BASE, DEFAULT_CAP, next_delay
 from bridge.errors import DeliveryError, Rejected
-from bridge.ledger import Ledger, OutboxRow
-from bridge.transports.base import OutgoingMessage, Transport
+from bridge.service.backoff import DEFAULT_BASE, DEFAULT_CAP, next_delay
+from bridge.service.ledger import Ledger, OutboxRow
+from bridge.service.transports.base import OutgoingMessage, Transport
 
-Outcome = Literal["delivered", "rejected", "retry"]
+# What became of one attempt (not bridge.model.Outcome, what became of one input file).
+DeliveryResult = Literal["delivered", "rejected", "retry"]
 log = logging.getLogger("dlco_bridge.delivery")
 
 
@@ -54,7 +55,7 @@ def deliver_one(
     now: Callable[[], float],
     rand: Callable[[], float],
     backoff: Backoff = Backoff(),
-) -> Outcome | None:
+) -> DeliveryResult | None:
     """Send the next due message of ``destination``; None when nothing is due."""
     row = ledger.next_due(destination, now())
     if row is None:
@@ -113,8 +114,8 @@ def deliver_due(
         for destination in list(active):
             if should_stop():
                 return finished
-            outcome = deliver_one(ledger, destination, transports[destination], now, rand, backoff)
-            if outcome is None or outcome == "retry":
+            result = deliver_one(ledger, destination, transports[destination], now, rand, backoff)
+            if result is None or result == "retry":
                 active.remove(destination)
             else:
                 finished += 1

@@ -1,20 +1,18 @@
-"""Intake of the watch-folder service: which inbox files are complete, and what becomes of each.
+"""Intake of the watch-folder service: what becomes of each complete inbox file (shell).
 
-Owns:
-- :class:`Readiness` -- a file is taken only when complete: closed after writing or renamed
-  in (inotify events through watchdog), or, for what events miss (network shares, a missed
-  event), size and modification time unchanged for ``stable_seconds`` on a periodic rescan;
-- :class:`Intake` -- one complete file: read, hash, process through the pure pipeline, enqueue
-  its messages in the ledger (committed first), then archive it; or quarantine it with
-  ``<name>.error.json`` saying why in the same words as ``check``. The same content dropped
-  again is archived as a duplicate and sends nothing; new content for a test id already sent
-  goes out as a correction. Any other exception met while processing one file (a bug the file
-  exposes) quarantines that file as an internal error: one file never stops the feed.
+Owns :class:`Intake` -- one complete file (:mod:`bridge.service.watcher` says when): read, hash,
+process through the pure pipeline, enqueue its messages in the ledger (committed first), then
+archive it; or quarantine it with ``<name>.error.json`` saying why in the same words as
+``check``. The same content dropped again is archived as a duplicate and sends nothing; new
+content for a test id already sent goes out as a correction. Any other exception met while
+processing one file (a bug the file exposes) quarantines that file as an internal error: one
+file never stops the feed.
 
 Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
 content the ledger knows only archives it (into the archive proper when it is the file a crash
 kept from being moved, into ``duplicates/`` when it was dropped again), so a kill at any point
-loses nothing and enqueues nothing twice. Must not deliver (that is ``bridge.delivery``) or parse settings.
+loses nothing and enqueues nothing twice. Must not deliver (that is
+:mod:`bridge.service.delivery`), watch the folder or parse settings.
 """
 
 from __future__ import annotations
@@ -23,122 +21,37 @@ import contextlib
 import glob
 import hashlib
 import logging
-import threading
 import time
 import traceback
-from collections.abc import Callable, Iterable
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Literal
 
 import orjson
-from watchdog.events import (
-    FileClosedEvent,
-    FileCreatedEvent,
-    FileModifiedEvent,
-    FileMovedEvent,
-    FileSystemEvent,
-    FileSystemEventHandler,
-)
 
 from bridge import __version__
 from bridge.config import Settings
 from bridge.errors import InputError, LedgerError, UnreadableInput
-from bridge.files import free_name, move_durably, write_atomically
-from bridge.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.mapping import Tables
-from bridge.metrics import Metrics
 from bridge.model import Outcome, Payload
 from bridge.pipeline import Route, process
+from bridge.service.files import free_name, move_durably, write_atomically
+from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
+from bridge.service.metrics import Metrics
 
 log = logging.getLogger("dlco_bridge.intake")
-
-# Names a writer uses while a file is still being written; never taken.
-_IN_PROGRESS_SUFFIXES = (".tmp", ".part", ".partial", ".crdownload", ".filepart")
 
 Result = Literal["processed", "correction", "duplicate", "quarantined", "vanished"]
 # The pure pipeline's entry point; a seam so tests can hand the intake one that fails.
 Processor = Callable[..., Outcome]  # bridge.pipeline.process, or a stand-in in tests
 
 
-def is_candidate(path: Path) -> bool:
-    """A file the intake may take (not hidden, not a temporary name)."""
-    name = path.name
-    return not name.startswith(".") and not name.endswith(_IN_PROGRESS_SUFFIXES)
-
-
-class Readiness(FileSystemEventHandler):
-    """Tracks inbox files until they are complete; also the watchdog event handler."""
-
-    def __init__(self, inbox: Path, stable_seconds: float, clock: Callable[[], float], wake: threading.Event):
-        self.inbox = inbox
-        self.stable_seconds = stable_seconds
-        self.clock = clock
-        self.wake = wake
-        self._lock = threading.Lock()
-        self._closed: dict[str, float] = {}  # name -> when a close/move-in event said complete
-        self._watch: dict[str, tuple[int, int, float]] = {}  # name -> (size, mtime_ns, unchanged since)
-
-    # -- watchdog callbacks (observer thread) --
-    def on_closed(self, event: FileSystemEvent) -> None:
-        if isinstance(event, FileClosedEvent):
-            self._complete(Path(str(event.src_path)))
-
-    def on_moved(self, event: FileSystemEvent) -> None:
-        if isinstance(event, FileMovedEvent):
-            self._complete(Path(str(event.dest_path)))
-
-    def on_created(self, event: FileSystemEvent) -> None:
-        if isinstance(event, FileCreatedEvent):
-            self.wake.set()
-
-    def on_modified(self, event: FileSystemEvent) -> None:
-        if isinstance(event, FileModifiedEvent):
-            with self._lock:
-                self._closed.pop(Path(str(event.src_path)).name, None)
-
-    def _complete(self, path: Path) -> None:
-        if path.parent == self.inbox and is_candidate(path):
-            with self._lock:
-                self._closed[path.name] = self.clock()
-            self.wake.set()
-
-    # -- intake thread --
-    def ready(self, names: Iterable[str]) -> list[tuple[Path, float]]:
-        """The files of ``names`` (present in the inbox) that are complete, with since when."""
-        now = self.clock()
-        done: list[tuple[Path, float]] = []
-        for name in sorted(names):
-            path = self.inbox / name
-            try:
-                stat = path.stat()
-            except FileNotFoundError:
-                self.forget(name)
-                continue
-            with self._lock:
-                closed_at = self._closed.get(name)
-                seen = self._watch.get(name)
-                if seen is None or seen[:2] != (stat.st_size, stat.st_mtime_ns):
-                    self._watch[name] = (stat.st_size, stat.st_mtime_ns, now)
-                    stable = False
-                else:
-                    stable = now - seen[2] >= self.stable_seconds
-            if closed_at is not None:
-                # The rename or last write (ctime) is when a sender sees the file complete.
-                done.append((path, stat.st_ctime if 0 <= closed_at - stat.st_ctime < 5 else closed_at))
-            elif stable:
-                done.append((path, now))
-        return done
-
-    def forget(self, name: str) -> None:
-        with self._lock:
-            self._closed.pop(name, None)
-            self._watch.pop(name, None)
-
-
 @dataclass(frozen=True, slots=True)
 class IntakeResult:
+    """What became of one file; ``detail`` is the quarantine reason, or ``recovered``."""
+
     path: Path
     result: Result
     detail: str = ""

@@ -14,8 +14,8 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
 from bridge.errors import ConfigError
-from bridge.ledger import LedgerSummary
-from bridge.transports.base import DeliveryReceipt, OutgoingMessage, Transport
+from bridge.service.ledger import LedgerSummary
+from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
 # Latency buckets in seconds (Prometheus histogram "le" bounds).
 LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0)
@@ -108,10 +108,6 @@ class Metrics:
             f"dlco_bridge_inputs_quarantined {summary.quarantined}",
         ]
         return "\n".join(lines) + "\n"
-
-    def snapshot(self) -> dict[str, Any]:
-        with self._lock:
-            return {"counts": dict(self.counts), "delivered": dict(self._delivered)}
 
 
 def _label(destination: str) -> str:

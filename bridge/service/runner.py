@@ -1,7 +1,8 @@
 """The watch-folder service: intake loop, delivery loop, health endpoint, graceful stop (shell).
 
-Owns: wiring :mod:`bridge.watcher` (intake), :mod:`bridge.delivery` (outbox to transports)
-and :mod:`bridge.metrics` (health, metrics) together, in two threads: intake must stay
+Owns: wiring :mod:`bridge.service.watcher` (when a file is complete), :mod:`bridge.service.intake`
+(what becomes of it), :mod:`bridge.service.delivery` (outbox to transports) and
+:mod:`bridge.service.metrics` (health, metrics) together, in two threads: intake must stay
 responsive while a receiver is slow or down, and delivery must go on while a burst of files
 arrives. A stop request (SIGTERM/SIGINT) lets the file and the message in flight finish.
 Transports and the ledger are built by the CLI and passed in.
@@ -18,24 +19,19 @@ from collections.abc import Callable, Mapping
 from pathlib import Path
 
 from watchdog.observers import Observer
-from watchdog.observers.inotify_move_event_grouper import InotifyMoveEventGrouper
 
 from bridge.config import ServiceSettings, Settings
-from bridge.delivery import Backoff, deliver_due
-from bridge.ledger import Ledger
 from bridge.mapping import Tables
-from bridge.metrics import HealthServer, MeteredTransport, Metrics
-from bridge.transports.base import Transport
-from bridge.watcher import Intake, Readiness, is_candidate
+from bridge.service.delivery import Backoff, deliver_due
+from bridge.service.intake import Intake
+from bridge.service.ledger import Ledger
+from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
+from bridge.service.transports.base import Transport
+from bridge.service.watcher import Readiness, is_candidate, pair_moves_quickly
 
 log = logging.getLogger("dlco_bridge.service")
 
 IDLE_WAIT_SECONDS = 0.25  # longest sleep of either loop when nothing wakes it
-# watchdog holds an unpaired "moved from" event for 0.5 s to pair it with its "moved to", and
-# its event thread sleeps through that wait: every rename into the inbox arrived up to 0.5 s
-# late (benchmarks/bench_watch.py). A rename inside one folder pairs within microseconds; a
-# missed pair only means the file is taken by the stability rescan instead.
-MOVE_PAIRING_SECONDS = 0.01
 
 
 class Service:
@@ -71,7 +67,7 @@ class Service:
         self._start_health()  # first: a port in use stops the start before anything runs
         for folder in (self.settings.inbox, self.settings.archive, self.settings.quarantine):
             folder.mkdir(parents=True, exist_ok=True)
-        InotifyMoveEventGrouper.delay = MOVE_PAIRING_SECONDS  # read when the observer is built
+        pair_moves_quickly()  # before Observer(): watchdog reads the wait when it is built
         observer = Observer()
         observer.schedule(self.readiness, str(self.settings.inbox), recursive=False)
         observer.start()

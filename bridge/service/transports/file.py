@@ -13,8 +13,8 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from bridge.errors import DeliveryError
-from bridge.files import write_atomically
-from bridge.transports.base import (
+from bridge.service.files import write_atomically
+from bridge.service.transports.base import (
     FHIR_JSON,
     HL7_V2_ER7,
     DeliveryReceipt,

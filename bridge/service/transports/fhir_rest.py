@@ -24,7 +24,7 @@ from bridge.errors import (
     DeliveryTimeout,
     Rejected,
 )
-from bridge.transports.base import (
+from bridge.service.transports.base import (
     FHIR_JSON,
     DeliveryReceipt,
     OutgoingMessage,
@@ -43,8 +43,8 @@ MAX_TEXT = 500  # keep ledger rows and status lines readable
 RETRYABLE_4XX = frozenset({401, 407, 408, 425, 429})
 
 
-def outcome_text(body: bytes) -> str:
-    """The issues of an OperationOutcome (diagnostics, else details.text, else code)."""
+def operation_outcome_text(body: bytes) -> str:
+    """The issues of an OperationOutcome body (diagnostics, else details.text, else code); "" if none."""
     try:
         document = json.loads(body)
     except (ValueError, UnicodeDecodeError):
@@ -82,7 +82,7 @@ def judge(status: int, reason: str, body: bytes, destination: str) -> DeliveryRe
     """Turn an HTTP answer into a receipt, or the DeliveryError it amounts to."""
     if 200 <= status < 300:
         return DeliveryReceipt(str(status), response_summary(body)[:MAX_TEXT])
-    text = f"HTTP {status}: {outcome_text(body) or reason}"[:MAX_TEXT]
+    text = f"HTTP {status}: {operation_outcome_text(body) or reason}"[:MAX_TEXT]
     if 400 <= status < 500 and status not in RETRYABLE_4XX:
         raise Rejected(destination, text)
     raise DeliveryError(destination, text)

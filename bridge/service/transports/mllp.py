@@ -21,7 +21,7 @@ from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
-from bridge.transports.base import (
+from bridge.service.transports.base import (
     DeliveryReceipt,
     OutgoingMessage,
     TlsOptions,
@@ -105,8 +105,11 @@ def _field(fields: list[str], index: int) -> str:
     return fields[index] if index < len(fields) else ""
 
 
-def control_id(payload: bytes) -> str | None:
-    """MSH-10 of an ER7 message, or None when the payload does not start with MSH."""
+def read_control_id(payload: bytes) -> str | None:
+    """MSH-10 read back from an ER7 payload, or None when it does not start with MSH.
+
+    The reverse of :func:`bridge.emit.hl7v2.control_id`, which builds MSH-10 from an outcome.
+    """
     text = payload.decode("utf-8", errors="replace")
     if not text.startswith("MSH") or len(text) < 4:
         return None
@@ -191,7 +194,7 @@ class MllpTransport:
 
     def deliver(self, message: OutgoingMessage) -> DeliveryReceipt:
         destination = message.destination
-        sent = control_id(message.payload)
+        sent = read_control_id(message.payload)
         if sent is None:
             raise Rejected(destination, "payload is not an HL7 v2 message (no MSH-10)")
         if START_BLOCK in message.payload or END_BLOCK in message.payload:

@@ -4,7 +4,7 @@ Each transport turns an ``OutgoingMessage`` into a ``DeliveryReceipt`` or raises
 ``DeliveryError`` subclass; none of them knows the ledger or retries by itself.
 """
 
-from bridge.transports.base import (
+from bridge.service.transports.base import (
     FHIR_JSON,
     HL7_V2_ER7,
     DeliveryReceipt,
@@ -12,10 +12,10 @@ from bridge.transports.base import (
     TlsOptions,
     Transport,
 )
-from bridge.transports.fhir_rest import FhirRestTransport
-from bridge.transports.file import FileTransport
-from bridge.transports.memory import InMemoryTransport
-from bridge.transports.mllp import MllpTransport
+from bridge.service.transports.fhir_rest import FhirRestTransport
+from bridge.service.transports.file import FileTransport
+from bridge.service.transports.memory import InMemoryTransport
+from bridge.service.transports.mllp import MllpTransport
 
 __all__ = [
     "FHIR_JSON",

@@ -1,0 +1,293 @@
+"""The outbox: messages waiting for their receivers, and every attempt to deliver them.
+
+Owns the ``outbox`` and ``attempts`` rows and their state machine: a row is enqueued
+``pending``; an attempt marks it ``delivered``, ``rejected`` (dead-lettered) or leaves it
+pending with the time of its next try; an operator's ``resend`` makes it pending again. Rows
+of one patient leave in enqueue order. It must not read inputs, build messages, talk to
+receivers or log: the intake and the delivery loop call it, and it only records what they
+tell it.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import sqlite3
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Literal
+
+from bridge.errors import LedgerError
+from bridge.service.ledger.database import Database
+
+OutboxState = Literal["pending", "delivered", "rejected"]
+
+
+@dataclass(frozen=True, slots=True)
+class NewMessage:
+    """A message to put in the outbox.
+
+    ``patient_key`` is an opaque key (a hash of the patient identifier, say) that only
+    serves to keep one patient's messages in order. ``content_sha256`` identifies the
+    content for de-duplication; leave it empty to use the hash of ``payload``, or pass
+    the hash of the stable content when the payload carries a send-time stamp.
+    """
+
+    destination: str
+    message_id: str
+    test_id: str
+    patient_key: str
+    payload: bytes
+    content_type: str
+    content_sha256: str = ""
+
+    def content_hash(self) -> str:
+        return self.content_sha256 or hashlib.sha256(self.payload).hexdigest()
+
+
+@dataclass(frozen=True, slots=True)
+class OutboxRow:
+    """One outbox row, as stored."""
+
+    id: int
+    destination: str
+    message_id: str
+    test_id: str
+    patient_key: str
+    content_sha256: str
+    input_sha256: str
+    payload: bytes
+    content_type: str
+    state: OutboxState
+    attempts: int
+    next_attempt_at: float
+    last_error: str
+    created_at: float
+    delivered_at: float | None
+    ack_text: str
+
+
+@dataclass(frozen=True, slots=True)
+class Attempt:
+    """One delivery attempt or operator action on an outbox row."""
+
+    outbox_id: int
+    at: float
+    outcome: str
+    detail: str
+
+
+@dataclass(frozen=True, slots=True)
+class DestinationSummary:
+    """Outbox counts of one destination; ``oldest_pending_age`` in seconds (0: none)."""
+
+    pending: int = 0
+    delivered: int = 0
+    rejected: int = 0
+    oldest_pending_age: float = 0.0
+
+
+_OUTBOX_COLUMNS = (
+    "id, destination, message_id, test_id, patient_key, content_sha256, input_sha256, payload, "
+    "content_type, state, attempts, next_attempt_at, last_error, created_at, "
+    "delivered_at, ack_text"
+)
+
+# The oldest pending row of the destination whose patient has no older pending row.
+# Rows of one patient therefore leave strictly in enqueue order; a patient whose message
+# is backing off does not hold up the others.
+_NEXT_DUE = f"""
+SELECT {_OUTBOX_COLUMNS} FROM outbox AS o
+WHERE o.destination = ? AND o.state = 'pending' AND o.next_attempt_at <= ?
+  AND NOT EXISTS (
+    SELECT 1 FROM outbox AS p
+    WHERE p.destination = o.destination AND p.patient_key = o.patient_key
+      AND p.state = 'pending' AND p.id < o.id)
+ORDER BY o.id LIMIT 1
+"""
+
+
+class OutboxLedger(Database):
+    """The outbox part of the :class:`Ledger`."""
+
+    def get(self, outbox_id: int) -> OutboxRow | None:
+        """The outbox row with this id."""
+        row = self._one(f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE id = ?", (outbox_id,))
+        return None if row is None else _outbox(row)
+
+    def next_due(self, destination: str, now: float) -> OutboxRow | None:
+        """The next message to send to ``destination`` at ``now``, if one is due."""
+        row = self._one(_NEXT_DUE, (destination, now))
+        return None if row is None else _outbox(row)
+
+    def mark_delivered(self, outbox_id: int, ack_text: str) -> None:
+        """The receiver acknowledged the message."""
+        self._finish(
+            outbox_id,
+            "delivered",
+            "state = 'delivered', delivered_at = :now, ack_text = :detail",
+            ack_text,
+        )
+
+    def mark_rejected(self, outbox_id: int, reason: str) -> None:
+        """The receiver refused the message: dead-letter it (no more retries)."""
+        self._finish(outbox_id, "rejected", "state = 'rejected', last_error = :detail", reason)
+
+    def mark_retry(self, outbox_id: int, error: str, next_attempt_at: float) -> None:
+        """The attempt failed in a way worth retrying at ``next_attempt_at``."""
+        self._finish(
+            outbox_id,
+            "retry",
+            "last_error = :detail, next_attempt_at = :next",
+            error,
+            next_attempt_at,
+        )
+
+    def rows(self, state: OutboxState, limit: int = 100) -> list[OutboxRow]:
+        """Outbox rows in one state, oldest first (for ``status``: the dead letters, say)."""
+        found = self._all(f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE state = ? ORDER BY id LIMIT ?", (state, limit))
+        return [_outbox(row) for row in found]
+
+    def requeue(self, outbox_id: int) -> None:
+        """Make a delivered or rejected message pending again, due now (``resend``)."""
+        with self._write() as conn:
+            now = self._now()
+            cursor = conn.execute(
+                "UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ?",
+                (now, outbox_id),
+            )
+            if cursor.rowcount != 1:
+                raise LedgerError(f"{self._path}: no outbox row {outbox_id}")
+            _log_attempt(conn, outbox_id, now, "requeued", "")
+
+    def requeue_rejected(self) -> int:
+        """Make every dead-lettered message pending again; return how many."""
+        with self._write() as conn:
+            now = self._now()
+            ids = [int(r["id"]) for r in conn.execute("SELECT id FROM outbox WHERE state = 'rejected'")]
+            for outbox_id in ids:
+                conn.execute(
+                    "UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ?",
+                    (now, outbox_id),
+                )
+                _log_attempt(conn, outbox_id, now, "requeued", "")
+            return len(ids)
+
+    def history(self, outbox_id: int) -> list[Attempt]:
+        """Every attempt and operator action on one outbox row, oldest first."""
+        rows = self._all(
+            "SELECT outbox_id, at, outcome, detail FROM attempts WHERE outbox_id = ? ORDER BY id",
+            (outbox_id,),
+        )
+        return [Attempt(r["outbox_id"], r["at"], r["outcome"], r["detail"]) for r in rows]
+
+    def _finish(
+        self,
+        outbox_id: int,
+        outcome: str,
+        assignments: str,
+        detail: str,
+        next_attempt_at: float = 0.0,
+    ) -> None:
+        """Apply an attempt's outcome to a pending row and log the attempt."""
+        with self._write() as conn:
+            now = self._now()
+            cursor = conn.execute(
+                f"UPDATE outbox SET {assignments}, attempts = attempts + 1 WHERE id = :id AND state = 'pending'",
+                {
+                    "id": outbox_id,
+                    "now": now,
+                    "detail": detail,
+                    "next": next_attempt_at,
+                },
+            )
+            if cursor.rowcount != 1:
+                raise LedgerError(f"{self._path}: no pending outbox row {outbox_id}")
+            _log_attempt(conn, outbox_id, now, outcome, detail)
+
+
+def enqueue(conn: sqlite3.Connection, message: NewMessage, input_sha256: str, now: float) -> int:
+    """Add ``message`` inside the caller's transaction (once: same destination, id and content); its row id."""
+    content = message.content_hash()
+    conn.execute(
+        "INSERT INTO outbox (destination, message_id, test_id, patient_key, "
+        "content_sha256, input_sha256, payload, content_type, next_attempt_at, "
+        "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
+        "ON CONFLICT (destination, message_id, content_sha256) DO NOTHING",
+        (
+            message.destination,
+            message.message_id,
+            message.test_id,
+            message.patient_key,
+            content,
+            input_sha256,
+            message.payload,
+            message.content_type,
+            now,
+            now,
+        ),
+    )
+    row = conn.execute(
+        "SELECT id FROM outbox WHERE destination = ? AND message_id = ? AND content_sha256 = ?",
+        (message.destination, message.message_id, content),
+    ).fetchone()
+    return int(row["id"])
+
+
+def ids_of_input(conn: sqlite3.Connection, input_sha256: str) -> list[int]:
+    """The outbox ids enqueued for one input, in enqueue order."""
+    rows = conn.execute("SELECT id FROM outbox WHERE input_sha256 = ? ORDER BY id", (input_sha256,)).fetchall()
+    return [int(r["id"]) for r in rows]
+
+
+def destination_summaries(conn: sqlite3.Connection, now: float) -> dict[str, DestinationSummary]:
+    """Outbox rows counted per destination and state, with the age of the oldest pending one."""
+    rows = conn.execute(
+        "SELECT destination, state, count(*) AS n, min(created_at) AS oldest FROM outbox GROUP BY destination, state"
+    ).fetchall()
+    return _by_destination(rows, now)
+
+
+def _log_attempt(conn: sqlite3.Connection, outbox_id: int, at: float, outcome: str, detail: str) -> None:
+    conn.execute(
+        "INSERT INTO attempts (outbox_id, at, outcome, detail) VALUES (?, ?, ?, ?)",
+        (outbox_id, at, outcome, detail),
+    )
+
+
+def _outbox(row: sqlite3.Row) -> OutboxRow:
+    return OutboxRow(
+        id=row["id"],
+        destination=row["destination"],
+        message_id=row["message_id"],
+        test_id=row["test_id"],
+        patient_key=row["patient_key"],
+        content_sha256=row["content_sha256"],
+        input_sha256=row["input_sha256"],
+        payload=bytes(row["payload"]),
+        content_type=row["content_type"],
+        state=row["state"],
+        attempts=row["attempts"],
+        next_attempt_at=row["next_attempt_at"],
+        last_error=row["last_error"],
+        created_at=row["created_at"],
+        delivered_at=row["delivered_at"],
+        ack_text=row["ack_text"],
+    )
+
+
+def _by_destination(rows: Sequence[sqlite3.Row], now: float) -> dict[str, DestinationSummary]:
+    counts: dict[str, dict[str, float]] = {}
+    for row in rows:
+        entry = counts.setdefault(row["destination"], {})
+        entry[row["state"]] = row["n"]
+        if row["state"] == "pending":
+            entry["age"] = max(0.0, now - row["oldest"])
+    return {
+        name: DestinationSummary(
+            pending=int(c.get("pending", 0)),
+            delivered=int(c.get("delivered", 0)),
+            rejected=int(c.get("rejected", 0)),
+            oldest_pending_age=c.get("age", 0.0),
+        )
+        for name, c in sorted(counts.items())
+    }
