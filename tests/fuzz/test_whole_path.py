@@ -29,10 +29,10 @@ from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
 from bridge import errors
-from bridge.config import EmitSettings
-from bridge.emit.outputs import Payload, gate, payloads
+from bridge.emit.settings import EmitSettings
 from bridge.errors import InputError
-from bridge.pipeline import process
+from bridge.model import Payload
+from bridge.pipeline import PipelineSettings, Route, process
 from bridge.resources import load_tables
 from tests.fhir_schema import ResourceValidators, bundle_errors, ecma_262, shared_validators
 from tests.fuzz.hostile import (
@@ -80,24 +80,24 @@ def budget(share: str) -> settings:
 TABLES = load_tables()
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 SOURCE = "fuzz.json"
-# Both unit systems; the SI run also emits the Patient (conditional create), so names are checked.
-CONTEXTS = (
-    EmitSettings(patient_reference="conditional-create").context(NOW, "si"),
-    EmitSettings(patient_reference="identifier").context(NOW, "traditional"),
+# Both unit systems and both output kinds; the SI run also emits the Patient (conditional create),
+# so names are checked. A site may block no finding at all, so every outcome must be emittable:
+# nothing is blocked here.
+SI_SITE = PipelineSettings(blocking=frozenset(), emit=EmitSettings(patient_reference="conditional-create"))
+TRADITIONAL_SITE = PipelineSettings(blocking=frozenset(), emit=EmitSettings(patient_reference="identifier"))
+RUNS = (
+    (SI_SITE, (Route("fhir", "si"), Route("hl7", "si"))),
+    (TRADITIONAL_SITE, (Route("fhir", "traditional"), Route("hl7", "traditional"))),
 )
-KINDS = ("fhir", "hl7")
-# A site may block no finding at all, so every outcome must be emittable: nothing is blocked here.
-BLOCKING: tuple[str, ...] = ()
 
 
 def run_whole_path(data: bytes) -> list[Payload]:
-    """One input through read, derive, check and both emitters in both unit systems (today's API).
-
-    Re-point this helper, and only this, when the pipeline takes over the emit step.
-    """
-    outcome = process(data, SOURCE, TABLES)
-    gate(outcome, BLOCKING)
-    return [payload for context in CONTEXTS for payload in payloads(outcome, TABLES, context, KINDS)]
+    """One input through the one pipeline (read, derive, check, gate, both emitters) in both unit systems."""
+    return [
+        payload
+        for site, routes in RUNS
+        for payload in process(data, SOURCE, TABLES, site, now=NOW, routes=routes).payloads
+    ]
 
 
 # ---------- what must hold for each input ----------
@@ -146,7 +146,7 @@ def assert_refused_or_valid(case: Case, validators: ResourceValidators) -> None:
                 raise AssertionError(f"a defect, not bad input: {exc}") from exc
             raise wrapped.with_traceback(wrapped.__traceback__) from None  # grouped by where it was raised
         return
-    assert [p.kind for p in emitted] == [kind for _ in CONTEXTS for kind in KINDS]
+    assert [p.kind for p in emitted] == [route.kind for _, routes in RUNS for route in routes]
     for payload in emitted:
         if payload.kind == "fhir":
             check_fhir(payload.data, validators)
