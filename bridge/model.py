@@ -11,12 +11,41 @@ annotation; ``bridge.normalise`` reads these to convert every quantity to the ca
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
-from datetime import date
+from datetime import date, datetime, timedelta
 from enum import StrEnum
 from typing import Annotated, Literal
 
-from pydantic import AwareDatetime, BaseModel, ConfigDict, Field
+from pydantic import AfterValidator, AwareDatetime, BaseModel, ConfigDict, Field, field_validator
+
+# Characters no output may carry in text: FHIR R4 strings match ^[ \r\n\t\S]+$ (ECMA-262 \s), so
+# control characters and white space other than space, tab and line breaks are refused, and so
+# are unpaired surrogates (not UTF-8).  # source: HL7 FHIR R4 datatypes, "string" regex
+_NOT_CARRIED = re.compile(
+    "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff"
+    "\ud800-\udfff]"
+)
+
+
+def _carried_text(value: str) -> str:
+    if not value.strip():
+        raise ValueError("text with at least one visible character")
+    found = _NOT_CARRIED.search(value)
+    if found:
+        raise ValueError(f"text without control or special white-space characters (found U+{ord(found[0]):04X})")
+    return value
+
+
+def _uri(value: str) -> str:
+    if not value or any(c.isspace() for c in value) or _NOT_CARRIED.search(value):
+        raise ValueError("a URI or OID without white space")
+    return value
+
+
+Text = Annotated[str, AfterValidator(_carried_text)]
+Uri = Annotated[str, AfterValidator(_uri)]
+MAX_UTC_OFFSET = timedelta(hours=14)  # source: HL7 FHIR R4 dateTime regex (offsets -14:00 to +14:00)
 
 
 class Frozen(BaseModel):
@@ -80,15 +109,15 @@ class Sex(StrEnum):
 
 
 class Lab(Frozen):
-    name: str = Field(min_length=1)
-    site: str | None = None
+    name: Text
+    site: Text | None = None
 
 
 class Patient(Frozen):
-    id: str = Field(min_length=1)
-    id_system: str = Field(min_length=1)
-    family: str | None = None
-    given: str | None = None
+    id: Text
+    id_system: Uri
+    family: Text | None = None
+    given: Text | None = None
     sex: Sex
     birth_date: date
     height: BodyHeight
@@ -108,7 +137,7 @@ class Method(Frozen):
     """Device-neutral description of how the test was done."""
 
     analyser: Literal["classical", "rapid"] = "classical"
-    tracer_gas: str | None = None
+    tracer_gas: Text | None = None
     sample_gas: SampleGasHandling = SampleGasHandling.H2O_REMOVED
     inspired_volume_condition: Literal["ATPD", "BTPS"] = "ATPD"
 
@@ -153,7 +182,7 @@ class ReferenceLimits(Frozen):
 class Predicted(Frozen):
     """Predicted values as the lab reported them, and the reference set they came from."""
 
-    reference_set: str | None = None
+    reference_set: Text | None = None
     dlco: DiffusingCapacity | None = None
     kco: TransferCoefficient | None = None
     va: Volume | None = None
@@ -173,7 +202,7 @@ class Session(Frozen):
     """One DLCO test session: the hub every reader produces and every emitter consumes."""
 
     format: Literal["dlco-result/1"]
-    test_id: str = Field(min_length=1, max_length=64)
+    test_id: Annotated[Text, Field(max_length=64)]
     performed_at: AwareDatetime
     lab: Lab
     patient: Patient
@@ -181,6 +210,14 @@ class Session(Frozen):
     conditions: Conditions = Conditions()
     manoeuvres: tuple[Manoeuvre, ...] = ()
     results: Results = Results()
+
+    @field_validator("performed_at")
+    @classmethod
+    def _offset_within_fourteen_hours(cls, value: datetime) -> datetime:
+        offset = value.utcoffset()
+        if offset is not None and abs(offset) > MAX_UTC_OFFSET:
+            raise ValueError("a UTC offset between -14:00 and +14:00")
+        return value
 
 
 class Severity(StrEnum):

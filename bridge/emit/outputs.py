@@ -12,8 +12,8 @@ from collections.abc import Collection, Sequence
 
 from bridge.emit.fhir import bundle_json, require_aware
 from bridge.emit.hl7v2 import control_id, to_oru
-from bridge.emit.observations import EmitContext, ReportContent, build_content
-from bridge.errors import BlockedByFinding
+from bridge.emit.observations import EmitContext, build_content
+from bridge.errors import BlockedByFinding, MissingField
 from bridge.mapping import Tables
 from bridge.model import Outcome, OutputKind, Payload
 
@@ -47,18 +47,17 @@ def payloads(
     What is emitted (:func:`build_content`) is built once and rendered by each emitter.
     """
     built = []
-    content: ReportContent | None = None
+    content = build_content(outcome, tables, context.units) if kinds else None
+    if content is not None and not content.items:
+        # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
+        raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)
     for kind in kinds:
         if kind == "fhir":
             require_aware(context.now)  # as bundle_json: the time is checked before anything is built
-            if content is None:
-                content = build_content(outcome, tables, context.units)
             stem = f"{file_stem(outcome.session.test_id)}"
             data = bundle_json(outcome, tables, context, content)
             built.append(Payload(kind="fhir", units=context.units, message_id=stem, content_type=FHIR_JSON, data=data))
         else:
-            if content is None:
-                content = build_content(outcome, tables, context.units)
             er7 = to_oru(outcome, tables, context, content)
             message_id = control_id(outcome, context)
             built.append(

@@ -81,6 +81,8 @@ def _expectation(error: Any) -> str:
         return f"a value <= {ctx.get('le', ctx.get('lt'))}, got {got}"
     if kind in ("enum", "literal_error"):
         return f"one of {ctx.get('expected')}, got {got}"
+    if kind == "value_error":  # our own validators (bridge.model) say what they expected
+        return f"{error['msg'].removeprefix('Value error, ')}, got {got}"
     base = _EXPECTATIONS.get(kind, error["msg"])
     return base if kind in ("missing", "extra_forbidden") else f"{base}, got {got}"
 
