@@ -1,7 +1,9 @@
 """Loading the tables in ``mappings/`` from disk (shell).
 
 Owns: finding the mappings folder (the installed copy inside the package, or the source
-tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.mapping.Tables`.
+tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.mapping.Tables`;
+and reading the GLI-2017 reference tables (``mappings/gli2017/``) into
+:class:`bridge.reference.ReferenceEquations`.
 """
 
 from __future__ import annotations
@@ -11,6 +13,7 @@ from pathlib import Path
 from bridge.errors import MappingError
 from bridge.mapping import CodeTable, Plausibility, Tables
 from bridge.quality import GradeTable
+from bridge.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
 from bridge.units import TRADITIONAL_PER_SI, UnitCatalogue
 
 _PACKAGE_DIR = Path(__file__).resolve().parent
@@ -49,3 +52,9 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
         plausibility=Plausibility.from_toml(_text(folder, "plausibility.toml"), units),
         codes=CodeTable.from_toml(_text(folder, "codes.toml")),
     )
+
+
+def load_reference_equations(folder: Path | None = None) -> ReferenceEquations:
+    """Parse the GLI-2017 reference equations from ``gli2017/`` in the mappings folder."""
+    folder = folder or mappings_dir()
+    return ReferenceEquations.from_text(_text(folder, COEFFICIENTS_TABLE), _text(folder, SPLINES_TABLE))

@@ -22,6 +22,7 @@ CORE = (
     "normalise.py",
     "physiology.py",
     "quality.py",
+    "reference.py",
     "derive.py",
     "checks.py",
     "pipeline.py",
