@@ -15,7 +15,8 @@ from bridge.derive import derive
 from bridge.errors import InputError, UnreadableInput
 from bridge.mapping import Tables
 from bridge.model import Outcome, Session
-from bridge.readers.json_export import read_export, read_normalised
+from bridge.normalise import normalise
+from bridge.readers.json_export import read_export
 from bridge.units import UnitCatalogue
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
@@ -32,8 +33,8 @@ def read(data: bytes, source: str) -> Session:
 
 
 def read_and_normalise(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
-    """``normalise(read(data, source), catalogue)``; the JSON reader does both in one build."""
-    return read_normalised(data, catalogue, source)
+    """The session read from ``data``, every quantity in its canonical unit."""
+    return normalise(read(data, source), catalogue)
 
 
 def process(data: bytes, source: str, tables: Tables, limits: Limits = Limits()) -> Outcome:
