@@ -39,7 +39,7 @@ import re
 from collections.abc import Iterable
 from datetime import date, datetime
 from decimal import Decimal
-from functools import lru_cache
+from types import MappingProxyType
 from urllib.parse import urlsplit
 
 from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
@@ -62,9 +62,9 @@ NM_LENGTH = 16  # hl7apy base data type NM
 FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
 ELLIPSIS = "..."
 
-CODING_SYSTEMS = {"loinc": "LN", "local": "L"}  # HL7 table 0396
+CODING_SYSTEMS = MappingProxyType({"loinc": "LN", "local": "L"})  # HL7 table 0396
 UNIT_SYSTEM = "UCUM"
-SEX_CODES = {Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"}  # HL7 table 0001
+SEX_CODES = MappingProxyType({Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"})  # HL7 table 0001
 COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
 SERVICE_SECTION = "PF"  # HL7 table 0074: pulmonary function
 UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the record has no name
@@ -127,22 +127,15 @@ def numeric_text(text: str) -> str:
 
 
 def hl7_timestamp(moment: datetime) -> str:
-    """A TS value with seconds and the UTC offset, e.g. ``20260310120000+0000``."""
-    offset = moment.utcoffset()
-    if offset is None:
+    """A DTM value with seconds and the UTC offset, e.g. ``20260310120000+0000``."""
+    if moment.utcoffset() is None:
         raise ValueError(f"an HL7 timestamp needs a time zone; got naive {moment.isoformat()}")
-    if moment.year < 1000 or moment.microsecond or offset.microseconds or offset.seconds % 60:
-        return moment.strftime("%Y%m%d%H%M%S%z")  # unpadded years, offsets with seconds: as strftime
-    # what strftime writes, cut out of isoformat() (about half the time of strftime with %z):
-    # YYYY-MM-DDTHH:MM:SS+HH:MM
-    text = moment.isoformat()
-    return text[0:4] + text[5:7] + text[8:10] + text[11:13] + text[14:16] + text[17:19] + text[19:22] + text[23:25]
+    return moment.strftime("%Y%m%d%H%M%S%z")
 
 
 def hl7_date(day: date) -> str:
-    if day.year < 1000:
-        return day.strftime("%Y%m%d")  # strftime does not pad the year
-    return day.isoformat().replace("-", "")
+    """A DT value, e.g. ``19790214``."""
+    return day.strftime("%Y%m%d")
 
 
 # ---------- segments ----------
@@ -227,8 +220,7 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _unit_text(quantity.unit, item.key)
-    code = item.code
-    coded = _coded_text(code.system, code.code, code.display, item.key)
+    coded = _coded(item.code, item.key)
     low = f">{numeric_text(format_number(low_q.value, low_q.decimals))}" if low_q is not None else ""
     flag = item.flag or ""  # HL7 table 0078
     # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
@@ -255,22 +247,15 @@ def _components(*parts: str) -> str:
     return "^".join(parts).rstrip("^")
 
 
-@lru_cache(maxsize=1024)
 def _unit_text(unit: str, key: str) -> str:
-    """OBX-6 text of a UCUM code (pure; cached per unit and key)."""
+    """OBX-6 text of a UCUM code."""
     return _code_text(unit, "units.toml", f"unit of {key}")
 
 
 def _coded(code: Code, key: str) -> str:
     """CE: identifier^text^coding system (OBR-4, OBX-3)."""
-    return _coded_text(code.system, code.code, code.display, key)
-
-
-@lru_cache(maxsize=1024)
-def _coded_text(system: str, code_value: str, display: str, key: str) -> str:
-    """:func:`_coded` of a code given by its fields (strings hash in C). Pure; cached."""
-    identifier = _code_text(code_value, "codes.toml", f"codes.{key}.code")
-    return _components(identifier, _free_text(display, ST_LENGTH), CODING_SYSTEMS[system])
+    identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")
+    return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
 
 
 def _code_text(text: str, table: str, where: str) -> str:
@@ -296,7 +281,6 @@ def _name_part(field: str, value: str | None) -> str:
     return escaped
 
 
-@lru_cache(maxsize=256)
 def _namespace_setting(key: str, value: str) -> str:
     escaped = escape(value)
     if not escaped or len(escaped) > IS_LENGTH:
@@ -334,7 +318,6 @@ def _assigning_authority(system: str) -> str:
     return "&".join((namespace_id(system), escaped, kind))
 
 
-@lru_cache(maxsize=1024)
 def namespace_id(system: str) -> str:
     """A short readable HD namespace id for an identifier system, e.g. ``FENWICK-HOLLOW``.
 

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import re
-from datetime import datetime, timedelta, timezone
 from decimal import Decimal
 
 import pytest
@@ -17,8 +16,6 @@ from bridge.emit.hl7v2 import (
     _LINE_BREAK,
     escape,
     escape_formatted,
-    hl7_date,
-    hl7_timestamp,
     numeric_text,
     to_oru,
 )
@@ -61,22 +58,6 @@ def test_payloads_share_one_content(sample_outcomes: dict[str, Outcome], tables:
             assert to_oru(outcome, tables, context).encode("utf-8") == hl7.data
             assert bundle_json(outcome, tables, context, content) == fhir.data
             assert re.fullmatch(r"[0-9a-f]{20}", hl7.message_id)
-
-
-OFFSETS = st.one_of(
-    st.integers(min_value=-1439, max_value=1439).map(lambda m: timedelta(minutes=m)),
-    st.integers(min_value=-86399, max_value=86399).map(lambda s: timedelta(seconds=s)),
-)
-
-
-@settings(max_examples=1000)
-@given(moment=st.datetimes(min_value=datetime(1, 1, 1), max_value=datetime(9999, 12, 30)), offset=OFFSETS)
-def test_hl7_timestamp_equals_strftime(moment: datetime, offset: timedelta):
-    """The formatted TS and date are what strftime writes (unpadded years and odd offsets included)."""
-    aware = moment.replace(tzinfo=timezone(offset))
-
-    assert aware.strftime("%Y%m%d%H%M%S%z") == hl7_timestamp(aware)
-    assert aware.date().strftime("%Y%m%d") == hl7_date(aware.date())
 
 
 @pytest.mark.parametrize("text", ["1.5", "0.00001", "1e-05", "-2.5E-07", "12", "-0.000"])

@@ -15,7 +15,7 @@ from __future__ import annotations
 import dataclasses
 import os
 import re
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 
 import hl7
@@ -24,7 +24,7 @@ from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.parser import parse_message
 from ucumvert import parse_ucum
 
-from bridge.emit.hl7v2 import control_id, escape, escape_formatted, namespace_id, numeric_text, to_oru
+from bridge.emit.hl7v2 import control_id, escape, escape_formatted, hl7_timestamp, namespace_id, numeric_text, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.errors import ConfigError, InvalidField
 from bridge.mapping import Tables
@@ -314,6 +314,20 @@ def test_line_breaks_become_spaces_or_br():
         escape("one\r\ntwo\nthree"),
         escape_formatted("one\r\ntwo\nthree"),
     )
+
+
+@pytest.mark.parametrize(
+    ("offset", "expected"),
+    [
+        (timedelta(0), "20260303144000+0000"),
+        (timedelta(hours=-7), "20260303144000-0700"),
+        (timedelta(hours=5, minutes=30), "20260303144000+0530"),
+    ],
+)
+def test_timestamps_are_dtm_with_offset(offset: timedelta, expected: str):
+    """A date-time is written YYYYMMDDHHMMSS followed by its UTC offset as +/-HHMM."""
+    # source: HL7 v2.5.1 chapter 2A DTM, YYYY[MM[DD[HH[MM[SS[.S[S[S[S]]]]]]]]][+/-ZZZZ]
+    assert expected == hl7_timestamp(datetime(2026, 3, 3, 14, 40, tzinfo=timezone(offset)))
 
 
 def test_multiline_note_stays_one_segment(sample_outcomes, tables, tmp_path):
