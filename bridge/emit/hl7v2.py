@@ -1,9 +1,10 @@
 """HL7 v2.5.1 ORU^R01 in ER7 text: one message per outcome, built with string joins.
 
 Owns: the segment layout (MSH, PID, ORC, OBR, NTE, one OBX per result item with its NTEs),
-escaping of data (HL7 v2.5.1 chapter 2.7), the stable message control id (MSH-10), and the
-length rules below. What is emitted (items, values, ranges, flags, notes) comes from
-:func:`bridge.emit.observations.build_content`, shared with the FHIR emitter.
+which fields are free text and which are not (escaping itself is ``bridge.emit.hl7text``), the
+stable message control id (MSH-10), and the length rules below. What is emitted (items, values,
+ranges, flags, notes) comes from :func:`bridge.emit.observations.build_content`, shared with the
+FHIR emitter.
 
 Must not: read the clock, draw random numbers, do I/O, or import hl7apy (about 50 ms per
 message; a string join takes well under a millisecond). hl7apy and python-hl7 check the
@@ -11,10 +12,10 @@ output in the tests.
 
 Decisions:
 
-* Escaping: ``\\ | ^ & ~`` in data become ``\\E\\ \\F\\ \\S\\ \\T\\ \\R\\``. A line break in
-  free text (NTE-3, data type FT) becomes the formatting command ``\\.br\\``; in every other
-  field (ST, names, identifiers) line breaks and other control characters become one space,
-  because formatting commands are only allowed in FT fields.  # common practice
+* Escaping (HL7 v2.5.1 chapter 2.7, in ``bridge.emit.hl7text``): delimiters in data become
+  escape sequences. A line break in free text (NTE-3, data type FT) becomes the formatting
+  command ``\\.br\\``; in every other field (ST, names, identifiers) line breaks and other
+  control characters become one space.
 * Lengths: the limits checked are those hl7apy STRICT enforces per data type (ST 199, IS 20,
   NM 16 characters, measured on the escaped text) plus MSH-10 at most 20 (HL7 v2.5.1 MSH-10
   length 20  # from memory). Free text (code display text, NTE comments) is truncated with a
@@ -42,15 +43,13 @@ from decimal import Decimal
 from types import MappingProxyType
 from urllib.parse import urlsplit
 
+from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.mapping import Code, Tables
 from bridge.model import Outcome, Patient, Sex
 from bridge.normalise import format_number
 
-SEGMENT_SEPARATOR = "\r"
-FIELD_SEPARATOR = "|"
-ENCODING_CHARACTERS = "^~\\&"  # component, repetition, escape, subcomponent
 VERSION = "2.5.1"
 MESSAGE_TYPE = "ORU^R01^ORU_R01"
 CHARACTER_SET = "UNICODE UTF-8"  # HL7 table 0211; names may hold any Unicode letter
@@ -68,11 +67,6 @@ SEX_CODES = MappingProxyType({Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Se
 COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
 SERVICE_SECTION = "PF"  # HL7 table 0074: pulmonary function
 UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the record has no name
-
-_ESCAPES = str.maketrans({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"})
-_LINE_BREAK = re.compile(r"\r\n|\r|\n")
-_CONTROL = re.compile(r"[\x00-\x1f\x7f]")
-_SPECIAL = re.compile(r"[\x00-\x1f\x7f\\|^&~]")  # any character escape() changes
 
 
 def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> str:
@@ -102,21 +96,6 @@ def control_id(outcome: Outcome, context: EmitContext) -> str:
     flag = "correction" if context.correction else "original"
     basis = f"{outcome.source_sha256}|{context.units}|{flag}"
     return hashlib.sha256(basis.encode("utf-8")).hexdigest()[:CONTROL_ID_LENGTH]
-
-
-def escape(text: str) -> str:
-    """Data text for any field except FT: delimiters escaped, line breaks as spaces."""
-    if not _SPECIAL.search(text):
-        return text  # the common case: nothing to escape or replace
-    return _CONTROL.sub(" ", _LINE_BREAK.sub(" ", text)).translate(_ESCAPES)
-
-
-def escape_formatted(text: str) -> str:
-    """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``."""
-    if not _SPECIAL.search(text):
-        return text
-    lines = _LINE_BREAK.split(text)
-    return "\\.br\\".join(_CONTROL.sub(" ", line).translate(_ESCAPES) for line in lines)
 
 
 def numeric_text(text: str) -> str:
