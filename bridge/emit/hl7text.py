@@ -22,14 +22,10 @@ FIELD_SEPARATOR = "|"
 ENCODING_CHARACTERS = "^~\\&"  # component, repetition, escape, subcomponent
 
 _LINE_BREAK = re.compile(r"\r\n|\r|\n")
-# Data characters escape() changes: the delimiters to their escape sequences, control characters
-# (line breaks included) to a space.
-_DATA = MappingProxyType(
-    {
-        **{code: " " for code in (*range(0x20), 0x7F)},
-        **str.maketrans({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"}),
-    }
-)
+# What escaping changes in data: a line break (CRLF is one), any other control character, a delimiter.
+_SPECIAL = re.compile(r"\r\n|[\x00-\x1f\x7f\\|^&~]")
+_DELIMITERS = MappingProxyType({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"})
+_FORMATTED = MappingProxyType({**_DELIMITERS, "\r\n": "\\.br\\", "\r": "\\.br\\", "\n": "\\.br\\"})
 
 
 def delimiters(first_segment: str) -> tuple[str, str]:
@@ -45,13 +41,21 @@ def delimiters(first_segment: str) -> tuple[str, str]:
 
 
 def escape(text: str) -> str:
-    """Data text for any field except FT: delimiters escaped, line breaks as spaces."""
-    return text.replace("\r\n", "\n").translate(_DATA)  # CRLF is one line break: one space
+    """Data text for any field except FT: delimiters escaped, line breaks and controls as a space."""
+    return _SPECIAL.sub(_data_escape, text)
 
 
 def escape_formatted(text: str) -> str:
-    """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``."""
-    return "\\.br\\".join(line.translate(_DATA) for line in _LINE_BREAK.split(text))
+    """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``, controls as a space."""
+    return _SPECIAL.sub(_formatted_escape, text)
+
+
+def _data_escape(match: re.Match[str]) -> str:
+    return _DELIMITERS.get(match.group(), " ")
+
+
+def _formatted_escape(match: re.Match[str]) -> str:
+    return _FORMATTED.get(match.group(), " ")
 
 
 def unescape(value: str, encoding: str = ENCODING_CHARACTERS) -> str:
