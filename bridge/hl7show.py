@@ -1,8 +1,9 @@
 """A readable listing of an HL7 v2 message (ER7 text in, text out): one line per non-empty field.
 
-Owns: splitting ER7 leniently (any of CR, LF or CRLF between segments; the delimiters each
-message declares in MSH-1/MSH-2), naming each field from hl7apy's reference tables for the
-message's own version (MSH-12, falling back to 2.5.1), and unescaping values for display.
+Owns: naming each field from hl7apy's reference tables for the message's own version (MSH-12,
+falling back to 2.5.1) and laying the listing out. Splitting (any of CR, LF or CRLF between
+segments; the delimiters each message declares in MSH-1/MSH-2) and unescaping values are
+``bridge.emit.hl7text``'s, shared with the emitter.
 Works on messages that do not validate, from other versions, or with Z-segments: a field
 hl7apy does not know is shown with its position only.
 
@@ -13,23 +14,26 @@ installed every field is shown by position.
 
 from __future__ import annotations
 
-import re
 from functools import cache
+from types import MappingProxyType
 from typing import Any
 
+from bridge.emit.hl7text import delimiters, split_fields, split_segments, unescape
+
 DEFAULT_VERSION = "2.5.1"
-_SEGMENT_BREAK = re.compile(r"\r\n|\r|\n")
 _LABEL_WIDTH = 8
 _NAME_WIDTH = 36
-_ACRONYMS = {"Id": "ID", "Pid": "PID", "Obr": "OBR", "Obx": "OBX", "Nte": "NTE", "Orc": "ORC", "Msh": "MSH"}
+_ACRONYMS = MappingProxyType(
+    {"Id": "ID", "Pid": "PID", "Obr": "OBR", "Obx": "OBX", "Nte": "NTE", "Orc": "ORC", "Msh": "MSH"}
+)
 
 
 def describe_er7(text: str) -> str:
     """One header line per segment, then ``PID-5   Patient Name   Fictive^Alder`` per field."""
-    segments = [s for s in _SEGMENT_BREAK.split(text.strip("\x0b\x1c\r\n")) if s.strip()]
+    segments = [s for s in split_segments(text.strip("\x0b\x1c\r\n")) if s.strip()]
     if not segments:
         return ""
-    field_sep, encoding = _delimiters(segments[0])
+    field_sep, encoding = delimiters(segments[0])
     version = _version(segments[0], field_sep)
     lines: list[str] = []
     for segment in segments:
@@ -37,43 +41,8 @@ def describe_er7(text: str) -> str:
     return "\n".join(lines) + "\n"
 
 
-def unescape(value: str, encoding: str = "^~\\&") -> str:
-    """The text an escaped ER7 value stands for (``\\F\\`` -> ``|``, ``\\.br\\`` -> newline).
-
-    Unknown escape sequences are kept as written.
-    """
-    escape_char = encoding[2] if len(encoding) > 2 else "\\"
-    if escape_char not in value:
-        return value
-    component, repetition = encoding[0:1] or "^", encoding[1:2] or "~"
-    subcomponent = encoding[3:4] or "&"
-    meaning = {"F": "|", "S": component, "T": subcomponent, "R": repetition, "E": escape_char, ".br": "\n"}
-    pattern = re.compile(re.escape(escape_char) + r"([^" + re.escape(escape_char) + r"]*)" + re.escape(escape_char))
-
-    def replace(match: re.Match[str]) -> str:
-        code = match.group(1)
-        if code in meaning:
-            return meaning[code]
-        if code.startswith("X") and len(code) > 1:
-            try:
-                return bytes.fromhex(code[1:]).decode("utf-8")
-            except ValueError:
-                return match.group(0)
-        return match.group(0)
-
-    return pattern.sub(replace, value)
-
-
-def _delimiters(first: str) -> tuple[str, str]:
-    if first.startswith("MSH") and len(first) > 3:
-        field_sep = first[3]
-        encoding = first[4:].split(field_sep, 1)[0]
-        return field_sep, encoding or "^~\\&"
-    return "|", "^~\\&"
-
-
 def _version(first: str, field_sep: str) -> str:
-    fields = first.split(field_sep)
+    fields = split_fields(first, field_sep)
     if not first.startswith("MSH") or len(fields) < 12:
         return DEFAULT_VERSION
     declared = fields[11].split("^")[0].strip()
@@ -82,7 +51,7 @@ def _version(first: str, field_sep: str) -> str:
 
 def _describe_segment(segment: str, field_sep: str, encoding: str, version: str) -> list[str]:
     name = segment[:3]
-    parts = segment.split(field_sep)
+    parts = split_fields(segment, field_sep)
     if name == "MSH":
         # MSH-1 is the field separator itself; MSH-2 holds the encoding characters verbatim.
         numbered = [(1, field_sep), (2, parts[1] if len(parts) > 1 else "")]

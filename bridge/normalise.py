@@ -43,8 +43,7 @@ def checked_unit(unit_text: str, value: float, measure: Measure, catalogue: Unit
     """The catalogue entry of a quantity's unit; refuses what cannot be a value of the field.
 
     Raises UnitError (unknown unit, wrong dimension) or InvalidField (negative where the
-    field is unsigned). Shared by :func:`normalise_quantity` and the JSON reader, which
-    normalises the parsed tree before building the models.
+    field is unsigned, or beyond the catalogue's limit for the dimension).
     """
     unit = catalogue.resolve(unit_text)
     if unit is None:

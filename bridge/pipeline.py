@@ -21,7 +21,8 @@ from bridge.emit.settings import EmitSettings
 from bridge.errors import InputError, OutputInvalid, UnreadableInput
 from bridge.mapping import Tables
 from bridge.model import Outcome, OutputKind, Payload
-from bridge.readers.json_export import read_normalised
+from bridge.normalise import normalise
+from bridge.readers.json_export import read_export
 from bridge.units import UnitSystem
 from bridge.validate import problems
 
@@ -75,7 +76,7 @@ def process(
     if len(data) > settings.max_input_bytes:
         raise UnreadableInput("(file)", f"at most {settings.max_input_bytes} bytes, got {len(data)}", source)
     try:
-        session = read_normalised(data, tables.units, source)
+        session = normalise(read_export(data, source), tables.units)
     except InputError as exc:
         raise exc if exc.source else exc.with_source(source) from None
     derived = derive(session, tables)

@@ -1,9 +1,10 @@
 """HL7 v2.5.1 ORU^R01 in ER7 text: one message per outcome, built with string joins.
 
 Owns: the segment layout (MSH, PID, ORC, OBR, NTE, one OBX per result item with its NTEs),
-escaping of data (HL7 v2.5.1 chapter 2.7), the stable message control id (MSH-10), and the
-length rules below. What is emitted (items, values, ranges, flags, notes) comes from
-:func:`bridge.emit.observations.build_content`, shared with the FHIR emitter.
+which fields are free text and which are not (escaping itself is ``bridge.emit.hl7text``), the
+stable message control id (MSH-10), and the length rules below. What is emitted (items, values,
+ranges, flags, notes) comes from :func:`bridge.emit.observations.build_content`, shared with the
+FHIR emitter.
 
 Must not: read the clock, draw random numbers, do I/O, or import hl7apy (about 50 ms per
 message; a string join takes well under a millisecond). hl7apy and python-hl7 check the
@@ -11,10 +12,10 @@ output in the tests.
 
 Decisions:
 
-* Escaping: ``\\ | ^ & ~`` in data become ``\\E\\ \\F\\ \\S\\ \\T\\ \\R\\``. A line break in
-  free text (NTE-3, data type FT) becomes the formatting command ``\\.br\\``; in every other
-  field (ST, names, identifiers) line breaks and other control characters become one space,
-  because formatting commands are only allowed in FT fields.  # common practice
+* Escaping (HL7 v2.5.1 chapter 2.7, in ``bridge.emit.hl7text``): delimiters in data become
+  escape sequences. A line break in free text (NTE-3, data type FT) becomes the formatting
+  command ``\\.br\\``; in every other field (ST, names, identifiers) line breaks and other
+  control characters become one space.
 * Lengths: the limits checked are those hl7apy STRICT enforces per data type (ST 199, IS 20,
   NM 16 characters, measured on the escaped text) plus MSH-10 at most 20 (HL7 v2.5.1 MSH-10
   length 20  # from memory). Free text (code display text, NTE comments) is truncated with a
@@ -39,18 +40,16 @@ import re
 from collections.abc import Iterable
 from datetime import date, datetime
 from decimal import Decimal
-from functools import lru_cache
+from types import MappingProxyType
 from urllib.parse import urlsplit
 
+from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.mapping import Code, Tables
 from bridge.model import Outcome, Patient, Sex
 from bridge.normalise import format_number
 
-SEGMENT_SEPARATOR = "\r"
-FIELD_SEPARATOR = "|"
-ENCODING_CHARACTERS = "^~\\&"  # component, repetition, escape, subcomponent
 VERSION = "2.5.1"
 MESSAGE_TYPE = "ORU^R01^ORU_R01"
 CHARACTER_SET = "UNICODE UTF-8"  # HL7 table 0211; names may hold any Unicode letter
@@ -62,17 +61,12 @@ NM_LENGTH = 16  # hl7apy base data type NM
 FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
 ELLIPSIS = "..."
 
-CODING_SYSTEMS = {"loinc": "LN", "local": "L"}  # HL7 table 0396
+CODING_SYSTEMS = MappingProxyType({"loinc": "LN", "local": "L"})  # HL7 table 0396
 UNIT_SYSTEM = "UCUM"
-SEX_CODES = {Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"}  # HL7 table 0001
+SEX_CODES = MappingProxyType({Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"})  # HL7 table 0001
 COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
 SERVICE_SECTION = "PF"  # HL7 table 0074: pulmonary function
 UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the record has no name
-
-_ESCAPES = str.maketrans({"\\": "\\E\\", "|": "\\F\\", "^": "\\S\\", "&": "\\T\\", "~": "\\R\\"})
-_LINE_BREAK = re.compile(r"\r\n|\r|\n")
-_CONTROL = re.compile(r"[\x00-\x1f\x7f]")
-_SPECIAL = re.compile(r"[\x00-\x1f\x7f\\|^&~]")  # any character escape() changes
 
 
 def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> str:
@@ -104,21 +98,6 @@ def control_id(outcome: Outcome, context: EmitContext) -> str:
     return hashlib.sha256(basis.encode("utf-8")).hexdigest()[:CONTROL_ID_LENGTH]
 
 
-def escape(text: str) -> str:
-    """Data text for any field except FT: delimiters escaped, line breaks as spaces."""
-    if not _SPECIAL.search(text):
-        return text  # the common case: nothing to escape or replace
-    return _CONTROL.sub(" ", _LINE_BREAK.sub(" ", text)).translate(_ESCAPES)
-
-
-def escape_formatted(text: str) -> str:
-    """Data text for an FT field: delimiters escaped, line breaks as ``\\.br\\``."""
-    if not _SPECIAL.search(text):
-        return text
-    lines = _LINE_BREAK.split(text)
-    return "\\.br\\".join(_CONTROL.sub(" ", line).translate(_ESCAPES) for line in lines)
-
-
 def numeric_text(text: str) -> str:
     """An NM value: plain decimal digits, never exponent notation (``1e-05`` -> ``0.00001``)."""
     if "e" not in text and "E" not in text:
@@ -127,22 +106,15 @@ def numeric_text(text: str) -> str:
 
 
 def hl7_timestamp(moment: datetime) -> str:
-    """A TS value with seconds and the UTC offset, e.g. ``20260310120000+0000``."""
-    offset = moment.utcoffset()
-    if offset is None:
+    """A DTM value with seconds and the UTC offset, e.g. ``20260310120000+0000``."""
+    if moment.utcoffset() is None:
         raise ValueError(f"an HL7 timestamp needs a time zone; got naive {moment.isoformat()}")
-    if moment.year < 1000 or moment.microsecond or offset.microseconds or offset.seconds % 60:
-        return moment.strftime("%Y%m%d%H%M%S%z")  # unpadded years, offsets with seconds: as strftime
-    # what strftime writes, cut out of isoformat() (about half the time of strftime with %z):
-    # YYYY-MM-DDTHH:MM:SS+HH:MM
-    text = moment.isoformat()
-    return text[0:4] + text[5:7] + text[8:10] + text[11:13] + text[14:16] + text[17:19] + text[19:22] + text[23:25]
+    return moment.strftime("%Y%m%d%H%M%S%z")
 
 
 def hl7_date(day: date) -> str:
-    if day.year < 1000:
-        return day.strftime("%Y%m%d")  # strftime does not pad the year
-    return day.isoformat().replace("-", "")
+    """A DT value, e.g. ``19790214``."""
+    return day.strftime("%Y%m%d")
 
 
 # ---------- segments ----------
@@ -227,8 +199,7 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _unit_text(quantity.unit, item.key)
-    code = item.code
-    coded = _coded_text(code.system, code.code, code.display, item.key)
+    coded = _coded(item.code, item.key)
     low = f">{numeric_text(format_number(low_q.value, low_q.decimals))}" if low_q is not None else ""
     flag = item.flag or ""  # HL7 table 0078
     # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
@@ -255,22 +226,15 @@ def _components(*parts: str) -> str:
     return "^".join(parts).rstrip("^")
 
 
-@lru_cache(maxsize=1024)
 def _unit_text(unit: str, key: str) -> str:
-    """OBX-6 text of a UCUM code (pure; cached per unit and key)."""
+    """OBX-6 text of a UCUM code."""
     return _code_text(unit, "units.toml", f"unit of {key}")
 
 
 def _coded(code: Code, key: str) -> str:
     """CE: identifier^text^coding system (OBR-4, OBX-3)."""
-    return _coded_text(code.system, code.code, code.display, key)
-
-
-@lru_cache(maxsize=1024)
-def _coded_text(system: str, code_value: str, display: str, key: str) -> str:
-    """:func:`_coded` of a code given by its fields (strings hash in C). Pure; cached."""
-    identifier = _code_text(code_value, "codes.toml", f"codes.{key}.code")
-    return _components(identifier, _free_text(display, ST_LENGTH), CODING_SYSTEMS[system])
+    identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")
+    return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
 
 
 def _code_text(text: str, table: str, where: str) -> str:
@@ -296,7 +260,6 @@ def _name_part(field: str, value: str | None) -> str:
     return escaped
 
 
-@lru_cache(maxsize=256)
 def _namespace_setting(key: str, value: str) -> str:
     escaped = escape(value)
     if not escaped or len(escaped) > IS_LENGTH:
@@ -334,7 +297,6 @@ def _assigning_authority(system: str) -> str:
     return "&".join((namespace_id(system), escaped, kind))
 
 
-@lru_cache(maxsize=1024)
 def namespace_id(system: str) -> str:
     """A short readable HD namespace id for an identifier system, e.g. ``FENWICK-HOLLOW``.
 

@@ -12,7 +12,6 @@ from __future__ import annotations
 import re
 from dataclasses import dataclass, field
 from datetime import datetime
-from functools import lru_cache
 from typing import Literal
 
 from bridge.mapping import Code, Tables
@@ -199,7 +198,6 @@ def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
     return tuple(notes)
 
 
-@lru_cache(maxsize=1024)
 def lab_slug(name: str) -> str:
     """``Lowmarsh Respiratory Lab (fictional)`` -> ``lowmarsh-respiratory-lab-fictional``."""
     return re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-") or "lab"

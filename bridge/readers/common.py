@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from types import MappingProxyType
 from typing import Any
 
 from pydantic import ValidationError
@@ -30,28 +31,30 @@ def field_path(loc: tuple[int | str, ...]) -> str:
     return path or "(top level)"
 
 
-_EXPECTATIONS = {
-    "missing": "a value (the field is required)",
-    "float_type": "a number",
-    "float_parsing": "a number",
-    "finite_number": "a finite number",
-    "int_type": "a whole number",
-    "string_type": "text",
-    "bool_type": "true or false",
-    "date_type": "a date YYYY-MM-DD",
-    "date_from_datetime_parsing": "a date YYYY-MM-DD",
-    "date_parsing": "a date YYYY-MM-DD",
-    "datetime_type": "an ISO 8601 date-time with offset",
-    "datetime_parsing": "an ISO 8601 date-time with offset",
-    "datetime_from_date_parsing": "an ISO 8601 date-time with offset",
-    "timezone_aware": "a date-time with a UTC offset (e.g. 2026-03-02T09:15:00+01:00)",
-    "extra_forbidden": "no such field (check the spelling against docs/format.md)",
-    "model_type": "an object",
-    "dict_type": "an object",
-    "tuple_type": "a list",
-    "list_type": "a list",
-    "string_too_short": "non-empty text",
-}
+_EXPECTATIONS = MappingProxyType(
+    {
+        "missing": "a value (the field is required)",
+        "float_type": "a number",
+        "float_parsing": "a number",
+        "finite_number": "a finite number",
+        "int_type": "a whole number",
+        "string_type": "text",
+        "bool_type": "true or false",
+        "date_type": "a date YYYY-MM-DD",
+        "date_from_datetime_parsing": "a date YYYY-MM-DD",
+        "date_parsing": "a date YYYY-MM-DD",
+        "datetime_type": "an ISO 8601 date-time with offset",
+        "datetime_parsing": "an ISO 8601 date-time with offset",
+        "datetime_from_date_parsing": "an ISO 8601 date-time with offset",
+        "timezone_aware": "a date-time with a UTC offset (e.g. 2026-03-02T09:15:00+01:00)",
+        "extra_forbidden": "no such field (check the spelling against docs/format.md)",
+        "model_type": "an object",
+        "dict_type": "an object",
+        "tuple_type": "a list",
+        "list_type": "a list",
+        "string_too_short": "non-empty text",
+    }
+)
 
 
 def first_validation_error(exc: ValidationError, source: str) -> InputError:

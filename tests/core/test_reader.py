@@ -10,6 +10,7 @@ import pytest
 from bridge.errors import InputError, MissingField, UnitError, UnreadableInput
 from bridge.mapping import Tables
 from bridge.pipeline import PipelineSettings, process
+from bridge.readers.json_export import read_export
 
 GOOD = (Path(__file__).resolve().parents[2] / "samples" / "01-healthy-adult.json").read_bytes()
 
@@ -114,6 +115,26 @@ CASES = {
         "results.va.value",
         "at most 12 digits",
     ),
+    "value with 13 decimals": (
+        _mutated(lambda d: d["results"]["va"].update(value=1.0)).replace(b'"value": 1.0', b'"value": 1.0000000000000'),
+        "results.va.value",
+        "at most 12 digits",
+    ),
+    "integer with 401 digits": (
+        _mutated(lambda d: d["results"]["va"].update(value=10**400)),
+        "results.va.value",
+        "a number",
+    ),
+    "misspelt key in a quantity": (
+        _mutated(lambda d: d["results"]["va"].update(units="L")),
+        "results.va.units",
+        "no such field",
+    ),
+    "empty unit": (
+        _mutated(lambda d: d["results"]["va"].update(unit="")),
+        "results.va.unit",
+        "non-empty text",
+    ),
     "wrong format tag": (_mutated(lambda d: d.update(format="other/2")), "format", "dlco-result/1"),
     "top level not an object": (b"[1, 2]", "(top level)", "object"),
 }
@@ -161,3 +182,18 @@ def test_reported_decimals_are_kept(tables: Tables):
 
     assert outcome.session.results.dlco.original.value == "7.460"
     assert outcome.session.results.dlco.original.value.partition(".")[2].__len__() == 3
+
+
+@pytest.mark.parametrize(
+    ("text", "decimals"),
+    [("7.460", 3), ("7", 0), ("746.0E-2", 3), ("1.5E-3", 4), ("1E+2", 0), ("0.000", 3)],
+)
+def test_reported_decimals_count_the_digits_as_written(text: str, decimals: int):
+    """The digits after the point as the lab wrote them, also in exponent notation."""
+    # source: Python decimal module, Decimal(text).as_tuple().exponent is minus the digits after the point
+    raw = _mutated(lambda d: d["results"]["va"].update(value=1.0)).replace(b'"value": 1.0', f'"value": {text}'.encode())
+
+    va = read_export(raw).results.va
+
+    assert va is not None
+    assert decimals == va.decimals

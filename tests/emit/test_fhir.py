@@ -265,11 +265,29 @@ def test_si_value_is_traditional_over_the_ers_ats_factor(fhir_outcomes, fhir_tab
 # ---------- determinism, identity, requests ----------
 
 
-def test_same_input_gives_identical_bytes(fhir_outcomes, fhir_tables):
-    """Emitting twice gives byte-identical Bundles."""
+def test_bundles_share_nothing(fhir_outcomes, fhir_tables):
+    """No dict or list is shared within or between Bundles: changing one leaves the next bytes alone."""
+    # common practice: a function that returns mutable data hands the caller its own copy
     outcome = fhir_outcomes["06-three-manoeuvres"]
+    before = bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT)
+    one, two = to_bundle(outcome, fhir_tables, GOLDEN_CONTEXT), to_bundle(outcome, fhir_tables, GOLDEN_CONTEXT)
+    ids_one, ids_two = _container_ids(one), _container_ids(two)
+    for entry in one["entry"]:
+        for value in entry["resource"].values():
+            if isinstance(value, list) and value and isinstance(value[0], dict):
+                value[0]["changed"] = True
 
-    assert bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT) == bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT)
+    assert (len(ids_one), set()) == (len(set(ids_one)), set(ids_one) & set(ids_two))
+    assert before == bundle_json(outcome, fhir_tables, GOLDEN_CONTEXT)
+
+
+def _container_ids(node: object) -> list[int]:
+    """The id of every dict and list in a tree, the tree itself included."""
+    if isinstance(node, dict):
+        return [id(node), *(i for value in node.values() for i in _container_ids(value))]
+    if isinstance(node, list):
+        return [id(node), *(i for value in node for i in _container_ids(value))]
+    return []
 
 
 def test_full_urls_are_uuid5_of_identifier(fhir_outcomes, fhir_tables):

@@ -15,17 +15,22 @@ from __future__ import annotations
 import dataclasses
 import os
 import re
-from datetime import UTC, datetime, timedelta
+from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 
 import hl7
 import pytest
 from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.parser import parse_message
+from hypothesis import given
+from hypothesis import strategies as st
 from ucumvert import parse_ucum
 
-from bridge.emit.hl7v2 import control_id, escape, escape_formatted, namespace_id, numeric_text, to_oru
+from bridge.emit.fhir import bundle_json
+from bridge.emit.hl7text import escape, escape_formatted, split_fields, split_segments, unescape
+from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_text, to_oru
 from bridge.emit.observations import EmitContext, build_content
+from bridge.emit.outputs import payloads
 from bridge.errors import ConfigError, InvalidField
 from bridge.mapping import Tables
 from bridge.model import Outcome
@@ -314,6 +319,57 @@ def test_line_breaks_become_spaces_or_br():
         escape("one\r\ntwo\nthree"),
         escape_formatted("one\r\ntwo\nthree"),
     )
+
+
+@given(st.text(alphabet=st.characters(blacklist_categories=("Cc", "Cs"))))
+def test_unescape_reverses_escape(text: str):
+    """What the emitter escapes, the reader's unescape gives back (text without control characters)."""
+    # source: HL7 v2.5.1 chapter 2.7 escape sequences
+    assert (text, text) == (unescape(escape(text)), unescape(escape_formatted(text)))
+
+
+def test_unescape_reverses_line_breaks_in_free_text():
+    """A line break written as \\.br\\ in FT reads back as a line break."""
+    # source: HL7 v2.5.1 chapter 2.7 formatting commands (FT only)
+    assert "one\ntwo|three" == unescape(escape_formatted("one\r\ntwo|three"))
+
+
+def test_segments_and_fields_split_leniently():
+    """CR, LF and CRLF all end a segment; empty segments are dropped; field 0 is the name."""
+    # source: HL7 v2.5.1 chapter 2 (CR ends a segment); # common practice: LF and CRLF tolerated
+    assert (["MSH|^~\\&|A", "PID|1", "OBX|1|NM"], ["OBX", "1", "NM"]) == (
+        split_segments("MSH|^~\\&|A\r\nPID|1\n\rOBX|1|NM\r"),
+        split_fields("OBX|1|NM"),
+    )
+
+
+@pytest.mark.parametrize(
+    ("offset", "expected"),
+    [
+        (timedelta(0), "20260303144000+0000"),
+        (timedelta(hours=-7), "20260303144000-0700"),
+        (timedelta(hours=5, minutes=30), "20260303144000+0530"),
+    ],
+)
+def test_timestamps_are_dtm_with_offset(offset: timedelta, expected: str):
+    """A date-time is written YYYYMMDDHHMMSS followed by its UTC offset as +/-HHMM."""
+    # source: HL7 v2.5.1 chapter 2A DTM, YYYY[MM[DD[HH[MM[SS[.S[S[S[S]]]]]]]]][+/-ZZZZ]
+    assert expected == hl7_timestamp(datetime(2026, 3, 3, 14, 40, tzinfo=timezone(offset)))
+
+
+def test_payloads_share_one_content(sample_outcomes, tables):
+    """payloads() builds the content once for both outputs: the bytes each emitter gives alone."""
+    # common practice: one conversion, the same bytes whichever way the outputs are asked for
+    for correction in (False, True):
+        context = EmitContext(now=NOW, units="si", correction=correction, patient_reference="conditional-create")
+        for outcome in sample_outcomes.values():
+            fhir, oru = payloads(outcome, tables, context, ("fhir", "hl7"))
+
+            assert (bundle_json(outcome, tables, context), to_oru(outcome, tables, context).encode("utf-8")) == (
+                fhir.data,
+                oru.data,
+            )
+            assert re.fullmatch(r"[0-9a-f]{20}", oru.message_id)
 
 
 def test_multiline_note_stays_one_segment(sample_outcomes, tables, tmp_path):

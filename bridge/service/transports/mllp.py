@@ -11,7 +11,6 @@ dropped after any failure or out-of-step answer and opened again for the next me
 
 from __future__ import annotations
 
-import re
 import select
 import socket
 import ssl
@@ -20,6 +19,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 
+from bridge.emit.hl7text import split_fields, split_segments
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
 from bridge.service.transports.base import (
     DeliveryReceipt,
@@ -92,15 +92,6 @@ class Ack:
     text: str  # MSA-3 and the ERR segments' messages, joined
 
 
-def _segments(text: str) -> list[str]:
-    # source: HL7 v2.5.1 ch. 2 says <CR> ends a segment; tolerating LF is common practice
-    return [s for s in re.split(r"\r\n|\r|\n", text) if s]
-
-
-def _fields(segment: str, separator: str) -> list[str]:
-    return segment.split(separator)
-
-
 def _field(fields: list[str], index: int) -> str:
     return fields[index] if index < len(fields) else ""
 
@@ -115,7 +106,7 @@ def read_control_id(payload: bytes) -> str | None:
         return None
     separator = text[3]
     # MSH-1 is the separator itself, so MSH-n is split index n-1.
-    value = _field(_fields(_segments(text)[0], separator), 9)
+    value = _field(split_fields(split_segments(text)[0], separator), 9)
     return value or None
 
 
@@ -134,18 +125,18 @@ def _err_text(fields: list[str], component: str) -> str:
 def parse_ack(data: bytes) -> Ack | None:
     """The MSA (and ERR) of an ACK block, or None when it is not a readable ACK."""
     text = data.decode("utf-8", errors="replace")
-    segments = _segments(text)
+    segments = split_segments(text)
     if not segments or not segments[0].startswith("MSH") or len(segments[0]) < 5:
         return None
     separator, component = segments[0][3], segments[0][4]
     msa = next((s for s in segments if s.startswith("MSA" + separator)), None)
     if msa is None:
         return None
-    fields = _fields(msa, separator)
+    fields = split_fields(msa, separator)
     code, answered = _field(fields, 1), _field(fields, 2)
     if not code:
         return None
-    errors = [_err_text(_fields(s, separator), component) for s in segments if s.startswith("ERR" + separator)]
+    errors = [_err_text(split_fields(s, separator), component) for s in segments if s.startswith("ERR" + separator)]
     details = [t for t in (_field(fields, 3), *errors) if t]
     return Ack(code, answered, "; ".join(details))
 
