@@ -16,9 +16,9 @@ It prints sessions/s for both, the ratio real/floor and whether the target
 (>= 2,000 sessions/s with both outputs) is met, then a per-stage breakdown on a subset and,
 unless ``--validators 0``, what validating the output with fhir.resources (R4B) and hl7apy
 (STRICT parse) would cost per session, as a ratio to our own build. That section is skipped,
-with a message, when either library is not installed (fhir.resources comes with the ``validate``
-and ``test`` extras, not with the base install). This is a script, not a
-test: the figures depend on the machine, the ratio much less.
+with a message, when either library is not installed (fhir.resources comes with the
+``validate`` and ``test`` extras, not with the base install). This is a script, not a test:
+the figures depend on the machine, the ratio much less.
 
 Timing: ``time.perf_counter``, best of ``--repeat`` passes over all sessions after one untimed
 warm-up pass. The garbage collector stays enabled (as in the service) and ``gc.collect()`` runs
