@@ -23,8 +23,7 @@ from pydantic import AfterValidator, AwareDatetime, BaseModel, ConfigDict, Field
 # control characters and white space other than space, tab and line breaks are refused, and so
 # are unpaired surrogates (not UTF-8).  # source: HL7 FHIR R4 datatypes, "string" regex
 _NOT_CARRIED = re.compile(
-    "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff"
-    "\ud800-\udfff]"
+    "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff\ud800-\udfff]"
 )
 
 
@@ -43,8 +42,14 @@ def _uri(value: str) -> str:
     return value
 
 
-Text = Annotated[str, AfterValidator(_carried_text)]
-Uri = Annotated[str, AfterValidator(_uri)]
+# The same rules as JSON Schema patterns (ECMA-262), for the published schema of the format.
+_TEXT_PATTERN = (
+    r"^[ \t\r\n]*[^\s\x00-\x1f\x7f][^\x00-\x08\x0b\x0c\x0e-\x1f\x7f"
+    r"\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff]*$"
+)
+_URI_PATTERN = r"^[^\s\x00-\x1f\x7f]+$"
+Text = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _TEXT_PATTERN}), AfterValidator(_carried_text)]
+Uri = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _URI_PATTERN}), AfterValidator(_uri)]
 MAX_UTC_OFFSET = timedelta(hours=14)  # source: HL7 FHIR R4 dateTime regex (offsets -14:00 to +14:00)
 
 

@@ -77,7 +77,7 @@ def first_validation_error(exc: ValidationError, source: str) -> InputError:
 def _expectation(error: Any) -> str:
     kind = error["type"]
     ctx = error.get("ctx") or {}
-    got = _shown(error.get("input"))
+    got = shown(error.get("input"))
     if kind in ("greater_than_equal", "greater_than"):
         return f"a value >= {ctx.get('ge', ctx.get('gt'))}, got {got}"
     if kind in ("less_than_equal", "less_than"):
@@ -90,6 +90,6 @@ def _expectation(error: Any) -> str:
     return base if kind in ("missing", "extra_forbidden") else f"{base}, got {got}"
 
 
-def _shown(value: Any) -> str:
+def shown(value: Any) -> str:
     text = repr(value)
     return text if len(text) <= 40 else text[:37] + "..."

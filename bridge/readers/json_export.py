@@ -13,9 +13,9 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from bridge.errors import InvalidField, MissingField, UnreadableInput
+from bridge.errors import InvalidField, MissingField, UnknownFormat, UnreadableInput
 from bridge.model import Session
-from bridge.readers.common import decode_text, first_validation_error
+from bridge.readers.common import decode_text, first_validation_error, shown
 
 FORMAT = "dlco-result/1"
 
@@ -37,13 +37,17 @@ def _parse(data: bytes, source: str) -> dict[str, Any]:
     except json.JSONDecodeError as exc:
         where = f"line {exc.lineno} column {exc.colno}"
         raise UnreadableInput(where, f"valid JSON ({exc.msg})", source) from exc
+    except RecursionError:  # the decoder recurses per level; an export is a few levels deep
+        raise UnreadableInput("(top level)", "JSON nested no deeper than the format", source) from None
+    except ValueError as exc:  # an integer of more than 4,300 digits, say
+        raise UnreadableInput("(file)", f"JSON numbers Python can read ({exc})", source) from None
     if not isinstance(tree, dict):
         raise InvalidField("(top level)", "a JSON object", source)
     if tree.get("format") != FORMAT:
         got = tree.get("format")
         if got is None:
             raise MissingField("format", f'"{FORMAT}"', source)
-        raise InvalidField("format", f'"{FORMAT}", got {got!r}', source)
+        raise UnknownFormat("format", f'"{FORMAT}", got {shown(got)}', source)
     return tree
 
 

@@ -557,6 +557,8 @@ class SchemaWalk:
             return st.one_of([self.walk(branch, field) for branch in node["anyOf"]])
         if node.get("type") == "object" and "properties" in node:
             required = set(node.get("required", ()))
+            if self.catalogue:  # a record needs something to send to reach the emitters
+                required |= REACH_REQUIRED & set(node["properties"])
             walked = {key: self.walk(value, key) for key, value in node["properties"].items()}
             return st.fixed_dictionaries(
                 {k: v for k, v in walked.items() if k in required},
@@ -576,6 +578,10 @@ class SchemaWalk:
             },
             optional={"decimals": self.walk(properties["decimals"], None)},
         )
+
+
+# Optional in the format, but without a result nothing is emitted (the record is refused).
+REACH_REQUIRED = frozenset({"results", "dlco"})
 
 
 @cache
