@@ -44,16 +44,16 @@ from typing import Any
 
 import orjson
 
-from bridge.checks import run_checks
-from bridge.derive import derive
 from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.emit.outputs import payloads
-from bridge.mapping import Tables
 from bridge.model import Outcome
 from bridge.pipeline import process, read_and_normalise
-from bridge.resources import load_tables, samples_dir
+from bridge.science.checks import run_checks
+from bridge.science.derive import derive
+from bridge.tables import Tables
+from bridge.tables.files import load_tables, samples_dir
 
 TARGET_PER_S = 2000
 TARGET_RATIO = 3.0  # "within about 3x of the floor"

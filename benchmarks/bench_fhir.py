@@ -14,7 +14,7 @@ from pathlib import Path
 from bridge.emit.fhir import bundle_json, to_bundle
 from bridge.emit.observations import EmitContext
 from bridge.pipeline import process
-from bridge.resources import load_tables
+from bridge.tables.files import load_tables
 
 ROOT = Path(__file__).resolve().parents[1]
 

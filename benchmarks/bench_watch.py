@@ -69,7 +69,7 @@ import orjson
 from bench_convert import FAMILY, GIVEN  # the same invented names (run from benchmarks/)
 from hl7.mllp import start_hl7_server  # type: ignore[import-untyped]  # python-hl7 ships no type hints
 
-from bridge.resources import samples_dir
+from bridge.tables.files import samples_dir
 
 LOOPBACK = "127.0.0.1"
 SEED = 20261202

@@ -7,7 +7,7 @@ practice decide what is used clinically.
 from bridge.errors import BridgeError, InputError
 from bridge.model import Finding, Outcome, Quantity, Session, Severity
 from bridge.pipeline import PipelineSettings, Route, process
-from bridge.resources import load_tables
+from bridge.tables.files import load_tables
 
 __version__ = "0.1.0"
 

@@ -25,16 +25,14 @@ import orjson
 
 from bridge import __version__
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Destination, Settings, config_path, load_settings
+from bridge.display.bundle_summary import describe_bundle
+from bridge.display.check_report import CAUTION, outcome_json, outcome_text
+from bridge.display.hl7_fields import describe_er7
 from bridge.emit.outputs import file_stem
 from bridge.errors import BridgeError, ConfigError, InputError, ProcessingFailed, UnreadableInput
-from bridge.fhirshow import describe_bundle
-from bridge.hl7show import describe_er7
-from bridge.mapping import Tables
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import Route, process
-from bridge.render import CAUTION, outcome_json, outcome_text
-from bridge.resources import load_tables, samples_dir
-from bridge.schema import export_schema
+from bridge.readers.schema import export_schema
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
 from bridge.service.runner import Service
@@ -42,6 +40,8 @@ from bridge.service.transports.base import OutgoingMessage, TlsOptions, Transpor
 from bridge.service.transports.fhir_rest import FhirRestTransport
 from bridge.service.transports.file import FileTransport
 from bridge.service.transports.mllp import MllpTransport
+from bridge.tables import Tables
+from bridge.tables.files import load_tables, samples_dir
 
 EXIT_OK = 0
 EXIT_SETUP = 1

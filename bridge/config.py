@@ -30,7 +30,7 @@ from bridge.emit.settings import EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings
-from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
+from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 
 ENV_PREFIX = "DLCO_BRIDGE_"
 CONFIG_ENV = ENV_PREFIX + "CONFIG"  # the configuration file, when --config is not given

@@ -6,7 +6,7 @@ frozen; steps return new values with ``model_copy(update=...)``. Imports only th
 pydantic: no I/O, no clock.
 
 Each quantity field declares its *dimension* and *canonical unit* with a :class:`Measure`
-annotation; ``bridge.normalise`` reads these to convert every quantity to the canonical unit.
+annotation; ``bridge.science.normalise`` reads these to convert every quantity to the canonical unit.
 """
 
 from __future__ import annotations
@@ -87,6 +87,15 @@ class Quantity(Frozen):
     unit: str = Field(min_length=1)
     decimals: int | None = Field(default=None, ge=0, le=12)
     original: Original | None = None
+
+    def text(self) -> str:
+        """The value as text with the reported number of decimals (6 significant digits if unknown)."""
+        return number_text(self.value, self.decimals)
+
+
+def number_text(value: float, decimals: int | None) -> str:
+    """A number with ``decimals`` digits after the point, or 6 significant digits when None."""
+    return format(value, ".6g") if decimals is None else f"{value:.{decimals}f}"
 
 
 # Annotated quantity kinds: the dimension and the unit the core keeps each one in.

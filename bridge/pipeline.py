@@ -14,17 +14,17 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 
-from bridge.checks import run_checks
-from bridge.derive import derive
 from bridge.emit.outputs import payloads, refuse_blocked
 from bridge.emit.settings import EmitSettings
+from bridge.emit.validation import problems
 from bridge.errors import InputError, OutputInvalid, UnreadableInput
-from bridge.mapping import Tables
 from bridge.model import Outcome, OutputKind, Payload
-from bridge.normalise import normalise
 from bridge.readers.json_export import read_export
-from bridge.units import UnitSystem
-from bridge.validate import problems
+from bridge.science.checks import run_checks
+from bridge.science.derive import derive
+from bridge.science.normalise import normalise
+from bridge.science.units import UnitSystem
+from bridge.tables import Tables
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
 DEFAULT_BLOCKING = ("UNIT_MISLABEL_PROBABLE",)  # findings that keep a record from being emitted

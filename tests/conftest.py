@@ -6,10 +6,10 @@ from pathlib import Path
 
 import pytest
 
-from bridge.mapping import Tables
 from bridge.model import Outcome
 from bridge.pipeline import process
-from bridge.resources import load_tables
+from bridge.tables import Tables
+from bridge.tables.files import load_tables
 
 ROOT = Path(__file__).resolve().parent.parent
 SAMPLES = ROOT / "samples"

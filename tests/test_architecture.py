@@ -17,25 +17,20 @@ PACKAGE = Path(__file__).resolve().parent.parent / "bridge"
 CORE = (
     "errors.py",
     "model.py",
-    "units.py",
-    "mapping.py",
-    "normalise.py",
-    "physiology.py",
-    "quality.py",
-    "reference.py",
-    "derive.py",
-    "checks.py",
     "pipeline.py",
-    "render.py",
-    "schema.py",
-    "fhirshow.py",
-    "hl7show.py",
-    "validate.py",
+    "science",
+    "tables/__init__.py",
+    "tables/toml.py",
+    "tables/units.py",
+    "tables/grades.py",
+    "tables/codes.py",
+    "tables/plausibility.py",
     "readers",
     "emit",
+    "display",
 )
 # The shell: I/O and wiring. The core imports none of it, at any depth.
-SHELL = ("cli.py", "config.py", "resources.py", "service")
+SHELL = ("cli.py", "config.py", "tables/files.py", "service")
 # The public API's re-exports and ``python -m bridge``: neither core nor shell.
 ENTRY_POINTS = ("__init__.py", "__main__.py")
 
@@ -57,7 +52,7 @@ BANNED_IO = {
     "shutil",
     "tempfile",
 }
-BANNED_SHELL = {"bridge." + name.removesuffix(".py") for name in SHELL}
+BANNED_SHELL = {"bridge." + name.removesuffix(".py").replace("/", ".") for name in SHELL}
 # uuid5 (deterministic, from content) is allowed; uuid1/uuid4 read the clock or randomness.
 BANNED_CALLS = {"open", "print", "input", "now", "utcnow", "today", "uuid1", "uuid4", "getenv", "time"}
 
@@ -110,7 +105,7 @@ def test_core_module_imports_no_io(path: Path):
 
 @pytest.mark.parametrize("path", _files(CORE), ids=_id)
 def test_core_module_imports_no_shell(path: Path):
-    """A core module imports no part of the shell: not the CLI, config, resources or any of bridge.service."""
+    """A core module imports no part of the shell: not the CLI, config, the table loader or any of bridge.service."""
     bad = {m for m in _imports(path) if _within(m, BANNED_SHELL)}
 
     assert set() == bad
@@ -137,6 +132,38 @@ def test_core_module_has_no_global_statement(path: Path):
     tree = ast.parse(path.read_text())
 
     assert [n for n in ast.walk(tree) if isinstance(n, ast.Global)] == []
+
+
+# Module-level values that can change: containers built by a literal, a comprehension or a call.
+MUTABLE_BUILDERS = (ast.Dict, ast.List, ast.Set, ast.DictComp, ast.ListComp, ast.SetComp)
+MUTABLE_CALLS = {"dict", "list", "set", "defaultdict", "OrderedDict", "Counter", "deque", "bytearray"}
+
+
+def _mutable_module_values(tree: ast.Module) -> list[str]:
+    found = []
+    for node in tree.body:
+        if isinstance(node, ast.Assign | ast.AnnAssign) and node.value is not None:
+            value = node.value
+            called = value.func.id if isinstance(value, ast.Call) and isinstance(value.func, ast.Name) else ""
+            if isinstance(value, MUTABLE_BUILDERS) or called in MUTABLE_CALLS:
+                targets = node.targets if isinstance(node, ast.Assign) else [node.target]
+                found += [ast.unparse(target) for target in targets]
+    return found
+
+
+@pytest.mark.parametrize("path", _files(CORE), ids=_id)
+def test_core_module_holds_no_mutable_module_state(path: Path):
+    """No core module keeps a dict, list or set at module level (tables are tuples, frozensets or read-only maps)."""
+    names = [n for n in _mutable_module_values(ast.parse(path.read_text())) if n != "__all__"]
+
+    assert [] == names
+
+
+def test_the_mutable_state_check_has_teeth():
+    """A module-level dict, list comprehension or set() call is caught; a tuple and a frozenset are not."""
+    source = "A = {}\nB = [x for x in ()]\nC = set()\nD = (1, 2)\nE = frozenset()\nF: dict[str, int] = {}\n"
+
+    assert ["A", "B", "C", "F"] == _mutable_module_values(ast.parse(source))
 
 
 def test_every_module_is_core_shell_or_entry_point():

@@ -139,8 +139,8 @@ def test_convert_validate_passes_good_samples(tmp_path, capsys):
 def test_validate_reports_an_invalid_payload():
     """An ORU that hl7apy cannot parse and a Bundle with an unknown element are both reported."""
     from bridge.emit.outputs import FHIR_JSON, HL7_V2_ER7
+    from bridge.emit.validation import problems
     from bridge.model import Payload
-    from bridge.validate import problems
 
     oru_text = b"MSH|^~\\&|A|B|C|D|20260310||ORU^R01^ORU_R01|1|P|9.9\r"
     oru = Payload(kind="hl7", units="si", message_id="x", content_type=HL7_V2_ER7, data=oru_text)

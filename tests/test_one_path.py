@@ -10,10 +10,10 @@ from pathlib import Path
 
 from bridge.cli import convert_files
 from bridge.config import load_settings
-from bridge.resources import load_tables
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
+from bridge.tables.files import load_tables
 
 ROOT = Path(__file__).resolve().parent.parent
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)

@@ -8,7 +8,7 @@ from pathlib import Path
 import jsonschema
 import pytest
 
-from bridge.schema import export_schema
+from bridge.readers.schema import export_schema
 
 ROOT = Path(__file__).resolve().parent.parent
 SHIPPED = ROOT / "docs" / "dlco-result-1.schema.json"

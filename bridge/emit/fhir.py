@@ -37,9 +37,8 @@ from bridge.emit.observations import (
     code_system_uri,
     observation_identifier,
 )
-from bridge.mapping import Code, Tables
 from bridge.model import Outcome, Patient, Quantity
-from bridge.normalise import format_value
+from bridge.tables import Code, Tables
 
 Resource = dict[str, Any]
 
@@ -234,7 +233,7 @@ def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
 def _quantity(quantity: Quantity) -> Resource:
     """A valueQuantity; the value is a Decimal with the reported digits (7.460 stays 7.460)."""
     return {
-        "value": Decimal(format_value(quantity)),
+        "value": Decimal(quantity.text()),
         "unit": quantity.unit,
         "system": UCUM,
         "code": quantity.unit,
@@ -288,11 +287,11 @@ def _summary(content: ReportContent) -> str:
     dlco = next((item for item in content.items if item.key == "dlco"), None)
     if dlco is None:
         return "Single-breath DLCO test: no DLCO value reported."
-    value = f"DLCO {format_value(dlco.quantity)} {dlco.quantity.unit}"
+    value = f"DLCO {dlco.quantity.text()} {dlco.quantity.unit}"
     if dlco.low is None or dlco.flag is None:
         return f"{value}; no lower limit of normal reported."
     relation = "below" if dlco.flag == "L" else "at or above"
-    return f"{value}, {relation} the lower limit of normal ({format_value(dlco.low)})."
+    return f"{value}, {relation} the lower limit of normal ({dlco.low.text()})."
 
 
 # ---------- Patient ----------

@@ -1,7 +1,7 @@
 """HL7 v2 ER7 text: delimiters, escaping and unescaping of data, splitting into segments and fields.
 
 Owns the character-level rules of HL7 v2.5.1 chapter 2 that the emitter (``hl7v2``), the
-listing (``bridge.hl7show``) and the MLLP transport's ACK parsing share, so that writing and
+listing (``bridge.display.hl7_fields``) and the MLLP transport's ACK parsing share, so that writing and
 reading agree. Pure: text in, text out.
 
 * Escaping (HL7 v2.5.1 chapter 2.7): ``\\ | ^ & ~`` in data become ``\\E\\ \\F\\ \\S\\ \\T\\ \\R\\``.

@@ -46,9 +46,8 @@ from urllib.parse import urlsplit
 from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
 from bridge.errors import ConfigError, InvalidField, MappingError
-from bridge.mapping import Code, Tables
 from bridge.model import Outcome, Patient, Sex
-from bridge.normalise import format_number
+from bridge.tables import Code, Tables
 
 VERSION = "2.5.1"
 MESSAGE_TYPE = "ORU^R01^ORU_R01"
@@ -195,12 +194,12 @@ def _observations(content: ReportContent, status: str, observed: str) -> Iterabl
 
 def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     quantity, low_q = item.quantity, item.low
-    value = numeric_text(format_number(quantity.value, quantity.decimals))
+    value = numeric_text(quantity.text())
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _unit_text(quantity.unit, item.key)
     coded = _coded(item.code, item.key)
-    low = f">{numeric_text(format_number(low_q.value, low_q.decimals))}" if low_q is not None else ""
+    low = f">{numeric_text(low_q.text())}" if low_q is not None else ""
     flag = item.flag or ""  # HL7 table 0078
     # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
     # (HL7 table 0085), -14 date/time of the observation. Written out: the last field is never

@@ -14,10 +14,10 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Literal
 
-from bridge.mapping import Code, Tables
 from bridge.model import Finding, Outcome, Quantity, Severity
-from bridge.normalise import express
-from bridge.units import UnitSystem
+from bridge.science.normalise import express
+from bridge.science.units import UnitSystem
+from bridge.tables import Code, Tables
 
 PatientReference = Literal["conditional-create", "identifier"]
 BRIDGE_NAME = "dlco-bridge"

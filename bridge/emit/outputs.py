@@ -14,8 +14,8 @@ from bridge.emit.fhir import bundle_json, require_aware
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.errors import BlockedByFinding, MissingField
-from bridge.mapping import Tables
 from bridge.model import Outcome, OutputKind, Payload
+from bridge.tables import Tables
 
 FHIR_JSON = "application/fhir+json"
 HL7_V2_ER7 = "x-application/hl7-v2+er7"

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 from datetime import datetime
 
 from bridge.emit.observations import EmitContext, PatientReference
-from bridge.units import UnitSystem
+from bridge.science.units import UnitSystem
 
 
 @dataclass(frozen=True, slots=True)

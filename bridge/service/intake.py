@@ -34,12 +34,12 @@ import orjson
 from bridge import __version__
 from bridge.config import Settings
 from bridge.errors import InputError, LedgerError, UnreadableInput
-from bridge.mapping import Tables
 from bridge.model import Outcome, Payload
 from bridge.pipeline import Route, process
 from bridge.service.files import free_name, move_durably, write_atomically
 from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.service.metrics import Metrics
+from bridge.tables import Tables
 
 log = logging.getLogger("dlco_bridge.intake")
 

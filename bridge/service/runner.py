@@ -21,13 +21,13 @@ from pathlib import Path
 from watchdog.observers import Observer
 
 from bridge.config import ServiceSettings, Settings
-from bridge.mapping import Tables
 from bridge.service.delivery import Backoff, deliver_due
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
 from bridge.service.transports.base import Transport
 from bridge.service.watcher import Readiness, is_candidate, pair_moves_quickly
+from bridge.tables import Tables
 
 log = logging.getLogger("dlco_bridge.service")
 

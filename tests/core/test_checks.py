@@ -7,9 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from bridge.mapping import Tables
 from bridge.model import Severity
 from bridge.pipeline import process
+from bridge.tables import Tables
 
 SAMPLES = Path(__file__).resolve().parents[2] / "samples"
 

@@ -6,10 +6,10 @@ import json
 from pathlib import Path
 from typing import Any
 
-from bridge.derive import derive
-from bridge.mapping import Tables
 from bridge.model import Outcome
 from bridge.pipeline import process
+from bridge.science.derive import derive
+from bridge.tables import Tables
 
 SAMPLES = Path(__file__).resolve().parents[2] / "samples"
 

@@ -7,8 +7,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from bridge.model import Measure, Quantity
-from bridge.normalise import express, format_number, format_value, normalise, normalise_quantity
-from bridge.resources import load_tables
+from bridge.science.normalise import express, normalise, normalise_quantity
+from bridge.tables.files import load_tables
 
 UNITS = load_tables().units
 DLCO = Measure("diffusing_capacity", "mL/min/mm[Hg]")
@@ -29,14 +29,14 @@ def test_express_gives_back_the_labs_digits():
 
     back = express(q, "mmol/min/kPa", UNITS)
 
-    assert format_value(back) == "7.460"
+    assert back.text() == "7.460"
 
 
 def test_converted_value_keeps_significant_digits():
     """7.460 mmol/min/kPa (4 significant digits) is shown as 22.28 mL/min/mm[Hg]."""
     q = normalise_quantity(Quantity(value=7.46, unit="mmol/min/kPa", decimals=3), DLCO, UNITS, "results.dlco")
 
-    assert format_value(q) == "22.28"
+    assert q.text() == "22.28"
 
 
 def test_normalising_twice_changes_nothing(sample_outcomes):
@@ -59,15 +59,3 @@ def test_quantity_normalisation_is_idempotent(value, unit, decimals):
     assert once == twice
     assert once.unit == "mL/min/mm[Hg]"
     assert unit == once.original.unit
-
-
-@settings(max_examples=500)
-@given(
-    value=st.floats(allow_nan=True, allow_infinity=True),
-    decimals=st.none() | st.integers(min_value=0, max_value=20),
-)
-def test_format_number_equals_the_plain_format(value: float, decimals: int | None):
-    """The precomputed format specs write what the f-string with a nested spec writes."""
-    expected = format(value, ".6g") if decimals is None else f"{value:.{decimals}f}"
-
-    assert expected == format_number(value, decimals)

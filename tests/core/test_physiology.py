@@ -6,8 +6,8 @@ import math
 
 import pytest
 
-from bridge import physiology as phys
 from bridge.model import SampleGasHandling
+from bridge.science import physiology as phys
 
 
 def test_synthetic_single_breath_dlco():

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
-from bridge.quality import Grade, ManoeuvreFacts, grade_manoeuvres, select_reported
-from bridge.resources import load_tables
+from bridge.science.quality import Grade, ManoeuvreFacts, grade_manoeuvres, select_reported
+from bridge.tables.files import load_tables
 
 TABLE = load_tables().grades
 

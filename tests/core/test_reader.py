@@ -8,9 +8,9 @@ from pathlib import Path
 import pytest
 
 from bridge.errors import InputError, MissingField, UnitError, UnreadableInput
-from bridge.mapping import Tables
 from bridge.pipeline import PipelineSettings, process
 from bridge.readers.json_export import read_export
+from bridge.tables import Tables
 
 GOOD = (Path(__file__).resolve().parents[2] / "samples" / "01-healthy-adult.json").read_bytes()
 

@@ -13,7 +13,7 @@ from pyspiro import GLI_2017
 
 from bridge.errors import MappingError
 from bridge.model import Sex
-from bridge.reference import (
+from bridge.science.reference import (
     COEFFICIENTS_TABLE,
     SPLINES_TABLE,
     UNITS,
@@ -25,8 +25,8 @@ from bridge.reference import (
     abnormal_flag,
     impairment,
 )
-from bridge.resources import load_reference_equations, mappings_dir
-from bridge.units import TRADITIONAL_PER_SI
+from bridge.science.units import TRADITIONAL_PER_SI
+from bridge.tables.files import load_reference_equations, mappings_dir
 
 GLI_DIR = mappings_dir() / "gli2017"
 COEFFICIENTS_TEXT = (GLI_DIR / "coefficients.csv").read_text(encoding="utf-8")
@@ -180,7 +180,7 @@ def test_traditional_over_si_is_2_987_everywhere(gli: ReferenceEquations, tradit
 
     # source: GLI 2017 intercepts: exp(a0 trad - a0 SI) = exp(1.094269) = 2.98700 (DLCO), exp(1.094271) (KCO)
     assert {2.987} == ratios
-    assert {TRADITIONAL_PER_SI} == ratios  # the project's default factor (bridge.units)
+    assert {TRADITIONAL_PER_SI} == ratios  # the project's default factor (bridge.science.units)
     assert 0.0 == pytest.approx(max(abs(r - 1.0) for r in s_ratios), abs=1e-5)  # KCO's differ in the 6th decimal
     assert {True} == {trad_l == si_l for trad_l, si_l in l_pairs}
 

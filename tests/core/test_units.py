@@ -10,8 +10,8 @@ from hypothesis import strategies as st
 from lark.exceptions import LarkError
 from ucumvert import PintUcumRegistry, get_ucum_parser
 
-from bridge.mapping import Tables
-from bridge.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE
+from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE
+from bridge.tables import Tables
 
 # source: GLI 2017 TLCO/KCO coefficients (corrected 2020) as carried by the rspiro and PySpiro
 # libraries (Stanojevic et al., Eur Respir J 2017;50:1700010): intercept a0 per sex, traditional vs SI.
@@ -42,7 +42,7 @@ def test_catalogue_uses_the_named_factor(tables: Tables):
 
 def test_alternative_factor_is_selectable():
     """A catalogue built with 2.986 converts with 2.986 everywhere."""
-    from bridge.resources import load_tables
+    from bridge.tables.files import load_tables
 
     alt = load_tables(traditional_per_si=TRADITIONAL_PER_SI_ALTERNATIVE)
 
@@ -128,7 +128,7 @@ def test_hb_mmol_per_litre_factor(tables: Tables):
 @given(st.floats(min_value=0.01, max_value=100.0, allow_nan=False))
 def test_si_traditional_round_trip(value):
     """SI -> traditional -> SI returns the value within floating-point rounding."""
-    from bridge.resources import load_tables
+    from bridge.tables.files import load_tables
 
     units = load_tables().units
     there = units.convert(value, "mmol/min/kPa", "mL/min/mm[Hg]")

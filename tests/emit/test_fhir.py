@@ -34,10 +34,10 @@ from ucumvert import get_ucum_parser
 
 from bridge.emit.fhir import bundle_json, to_bundle, to_ndjson
 from bridge.emit.observations import EmitContext
-from bridge.mapping import Tables
 from bridge.model import Outcome
 from bridge.pipeline import process
-from bridge.resources import load_tables
+from bridge.tables import Tables
+from bridge.tables.files import load_tables
 from tests.fhir_schema import ResourceValidators, load_fhir_schema
 from tests.fhir_schema import errors as _errors
 

@@ -32,10 +32,9 @@ from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_t
 from bridge.emit.observations import EmitContext, build_content
 from bridge.emit.outputs import payloads
 from bridge.errors import ConfigError, InvalidField
-from bridge.mapping import Tables
 from bridge.model import Outcome
-from bridge.normalise import format_value
-from bridge.units import TRADITIONAL_PER_SI
+from bridge.science.units import TRADITIONAL_PER_SI
+from bridge.tables import Tables
 from tests.conftest import GOOD_SAMPLES
 
 NOW = datetime(2026, 3, 10, 12, 0, 0, tzinfo=UTC)
@@ -131,9 +130,9 @@ def test_obx_round_trip_python_hl7(stem, units, sample_outcomes, tables):
     expected = [
         (
             item.code.code,
-            format_value(item.quantity),
+            item.quantity.text(),
             item.quantity.unit,
-            f">{format_value(item.low)}" if item.low else "",
+            f">{item.low.text()}" if item.low else "",
             item.flag or "",
         )
         for item in items

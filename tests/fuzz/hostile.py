@@ -31,7 +31,7 @@ from typing import Any
 from hypothesis import strategies as st
 from hypothesis_jsonschema import from_schema
 
-from bridge.resources import load_tables
+from bridge.tables.files import load_tables
 
 ROOT = Path(__file__).resolve().parents[2]
 SAMPLE_PATHS = sorted((ROOT / "samples").glob("0*.json"))

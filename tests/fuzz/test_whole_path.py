@@ -33,7 +33,7 @@ from bridge.emit.settings import EmitSettings
 from bridge.errors import InputError
 from bridge.model import Payload
 from bridge.pipeline import PipelineSettings, Route, process
-from bridge.resources import load_tables
+from bridge.tables.files import load_tables
 from tests.fhir_schema import ResourceValidators, bundle_errors, ecma_262, shared_validators
 from tests.fuzz.hostile import (
     Case,

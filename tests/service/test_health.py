@@ -10,11 +10,11 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from bridge.config import parse_settings
-from bridge.resources import load_tables
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer
 from bridge.service.runner import Service
 from bridge.service.transports.mllp import MllpTransport
+from bridge.tables.files import load_tables
 from tests.service.conftest import make_input, mllp_destination, wait_until
 from tests.shell.conftest import LOOPBACK, Clock
 

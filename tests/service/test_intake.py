@@ -10,10 +10,10 @@ from pathlib import Path
 from typing import TYPE_CHECKING
 
 from bridge.config import parse_settings
-from bridge.resources import load_tables
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
+from bridge.tables.files import load_tables
 from tests.service.conftest import (
     GOOD,
     MALFORMED,

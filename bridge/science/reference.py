@@ -4,7 +4,7 @@ Owns: the reference equations of Stanojevic et al. (Official ERS technical stand
 Lung Function Initiative reference values for the carbon monoxide transfer factor for
 Caucasians, Eur Respir J 2017;50:1700010, as corrected in Eur Respir J 2020;56:1750010),
 parsed from the text of ``mappings/gli2017/`` (reading the files is the shell's job, see
-``bridge.resources.load_reference_equations``), and the interpretation of a z-score.
+``bridge.tables.files.load_reference_equations``), and the interpretation of a z-score.
 
 The equations use the LMS method::
 

@@ -8,11 +8,8 @@ with a caution. Pure: plain numbers in, grades and indices out.
 
 from __future__ import annotations
 
-import tomllib
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
-
-from bridge.errors import MappingError
 
 FAIL_GRADE = "F"
 
@@ -33,37 +30,6 @@ class GradeTable:
     rules: tuple[GradeRule, ...]
     max_dlco_difference: float  # mL/min/mmHg
     acceptable_grades: tuple[str, ...]
-
-    @classmethod
-    def from_toml(cls, text: str, name: str = "quality_grades.toml") -> GradeTable:
-        try:
-            data = tomllib.loads(text)
-            rules = tuple(_rule(entry) for entry in data["grade"])
-            repeat = data["repeatability"]
-            return cls(
-                rules,
-                float(repeat["max_dlco_difference_ml_min_mmhg"]),
-                tuple(repeat["acceptable_grades"]),
-            )
-        except (tomllib.TOMLDecodeError, KeyError, TypeError, ValueError) as exc:
-            raise MappingError(name, "grade table", f"grades and repeatability as documented ({exc})") from exc
-
-
-def _rule(entry: Mapping[str, object]) -> GradeRule:
-    bht = entry.get("breath_hold_s")
-    return GradeRule(
-        grade=str(entry["grade"]),
-        vi_vc_min_percent=float(entry["vi_vc_min_percent"]),  # type: ignore[arg-type]
-        sample_collection_max_s=float(entry["sample_collection_max_s"]),  # type: ignore[arg-type]
-        breath_hold_s=(float(bht[0]), float(bht[1])) if isinstance(bht, list) else None,
-        vi_vc_min_percent_if_va_close=_optional_float(entry.get("vi_vc_min_percent_if_va_close")),
-        va_close_ml=float(entry.get("va_close_ml", 0.0)),  # type: ignore[arg-type]
-        va_close_percent=float(entry.get("va_close_percent", 0.0)),  # type: ignore[arg-type]
-    )
-
-
-def _optional_float(value: object) -> float | None:
-    return float(value) if isinstance(value, int | float) else None
 
 
 @dataclass(frozen=True, slots=True)

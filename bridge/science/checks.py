@@ -11,9 +11,9 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterator
 
-from bridge.derive import age_in_years, gas_conditions, hb_factor
-from bridge.mapping import Tables
 from bridge.model import Derived, Finding, Quantity, Session, Severity
+from bridge.science.derive import age_in_years, gas_conditions, hb_factor
+from bridge.tables import Tables
 
 # Relative difference tolerated between a reported and a recomputed value (rounding of the
 # lab's printout plus our assumptions about room temperature and gas handling).

@@ -12,10 +12,10 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from bridge import physiology as phys
-from bridge.mapping import Tables
 from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex
-from bridge.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
+from bridge.science import physiology as phys
+from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
+from bridge.tables import Tables
 
 DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"

@@ -1,9 +1,9 @@
 """Loading the tables in ``mappings/`` from disk (shell).
 
 Owns: finding the mappings folder (the installed copy inside the package, or the source
-tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.mapping.Tables`;
+tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.tables.Tables`;
 and reading the GLI-2017 reference tables (``mappings/gli2017/``) into
-:class:`bridge.reference.ReferenceEquations`.
+:class:`bridge.science.reference.ReferenceEquations`.
 """
 
 from __future__ import annotations
@@ -11,12 +11,13 @@ from __future__ import annotations
 from pathlib import Path
 
 from bridge.errors import MappingError
-from bridge.mapping import CodeTable, Plausibility, Tables
-from bridge.quality import GradeTable
-from bridge.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
-from bridge.units import TRADITIONAL_PER_SI, UnitCatalogue
+from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
+from bridge.science.units import TRADITIONAL_PER_SI
+from bridge.tables import CodeTable, Plausibility, Tables
+from bridge.tables.grades import grade_table
+from bridge.tables.units import unit_catalogue
 
-_PACKAGE_DIR = Path(__file__).resolve().parent
+_PACKAGE_DIR = Path(__file__).resolve().parent.parent  # bridge/
 
 
 def mappings_dir() -> Path:
@@ -45,10 +46,10 @@ def _text(folder: Path, name: str) -> str:
 def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIONAL_PER_SI) -> Tables:
     """Parse every table the core needs."""
     folder = folder or mappings_dir()
-    units = UnitCatalogue.from_toml(_text(folder, "units.toml"), traditional_per_si)
+    units = unit_catalogue(_text(folder, "units.toml"), traditional_per_si)
     return Tables(
         units=units,
-        grades=GradeTable.from_toml(_text(folder, "quality_grades.toml")),
+        grades=grade_table(_text(folder, "quality_grades.toml")),
         plausibility=Plausibility.from_toml(_text(folder, "plausibility.toml"), units),
         codes=CodeTable.from_toml(_text(folder, "codes.toml")),
     )

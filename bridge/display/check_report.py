@@ -10,10 +10,10 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from bridge.mapping import Tables
 from bridge.model import Outcome, Quantity, Severity
-from bridge.normalise import express, format_value
-from bridge.units import UnitSystem
+from bridge.science.normalise import express
+from bridge.science.units import UnitSystem
+from bridge.tables import Tables
 
 CAUTION = (
     "dlco-bridge is not a medical device: it normalises, recomputes and flags data. "
@@ -55,9 +55,9 @@ def shown(quantity: Quantity, tables: Tables, units: UnitSystem) -> Quantity:
 
 def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
     q = shown(quantity, tables, units)
-    text = f"{format_value(q)} {q.unit}"
+    text = f"{q.text()} {q.unit}"
     original = quantity.original
-    if original is not None and (original.unit != q.unit or original.value != format_value(q)):
+    if original is not None and (original.unit != q.unit or original.value != q.text()):
         text += f"   (as sent: {original.value} {original.unit})"
     return text
 
@@ -73,7 +73,7 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     lines = [
         f"{outcome.source}  test {s.test_id}",
         f"  patient {p.id} ({p.id_system})  {p.sex.value}  born {p.birth_date}  "
-        f"age {d.age_years:.1f} y  height {format_value(p.height)} cm",
+        f"age {d.age_years:.1f} y  height {p.height.text()} cm",
         f"  performed {s.performed_at.isoformat()}  {s.lab.name}" + (f" / {s.lab.site}" if s.lab.site else ""),
         f"  results ({units} units)",
     ]
@@ -122,7 +122,7 @@ def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem) -> dict[st
     def convert(node: Any) -> Any:
         if isinstance(node, Quantity):
             q = shown(node, tables, units)
-            out: dict[str, Any] = {"value": float(format_value(q)), "unit": q.unit}
+            out: dict[str, Any] = {"value": float(q.text()), "unit": q.unit}
             if node.original is not None:
                 out["original"] = node.original.model_dump()
             return out

@@ -15,10 +15,8 @@ from pydantic import BaseModel
 
 from bridge.errors import InvalidField, UnitError
 from bridge.model import Measure, Original, Quantity, Session
-from bridge.units import UnitCatalogue, UnitDef, decimals_after_conversion
+from bridge.science.units import UnitCatalogue, UnitDef, decimals_after_conversion
 
-# Format specs for 0-12 decimals (the range Quantity.decimals allows), built once.
-_FIXED = tuple(f".{n}f" for n in range(13))
 # A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.
 _Step = tuple[str, Measure | type[BaseModel], bool]
 
@@ -34,7 +32,7 @@ def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCata
     unit = checked_unit(quantity.unit, quantity.value, measure, catalogue, path)
     if quantity.unit == measure.canonical_unit and quantity.original is not None:
         return quantity  # already normalised
-    original = quantity.original or Original(value=format_value(quantity), unit=quantity.unit)
+    original = quantity.original or Original(value=quantity.text(), unit=quantity.unit)
     value, decimals = in_canonical_unit(quantity.value, quantity.decimals, unit, measure, catalogue)
     return Quantity(value=value, unit=measure.canonical_unit, decimals=decimals, original=original)
 
@@ -81,20 +79,6 @@ def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity
     value = catalogue.convert(quantity.value, quantity.unit, unit)
     decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
     return Quantity(value=value, unit=unit, decimals=decimals, original=original)
-
-
-def format_value(quantity: Quantity) -> str:
-    """The value as text with the reported number of decimals (6 significant digits if unknown)."""
-    return format_number(quantity.value, quantity.decimals)
-
-
-def format_number(value: float, decimals: int | None) -> str:
-    """:func:`format_value` on a plain number and its reported decimals."""
-    if decimals is None:
-        return format(value, ".6g")
-    if decimals < len(_FIXED):
-        return format(value, _FIXED[decimals])
-    return f"{value:.{decimals}f}"
 
 
 def _decimals_in(text: str) -> int:

@@ -1,0 +1,27 @@
+"""The tables in ``mappings/`` as typed values: what every core step receives (pure).
+
+Owns: the :class:`Tables` bundle. Each table's text is parsed by one module here (``units``,
+``grades``, ``plausibility``, ``codes``, through the one TOML error path in ``toml``); reading
+the files from disk is ``bridge.tables.files``, the only module of this package that does I/O.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from bridge.science.quality import GradeTable
+from bridge.science.units import UnitCatalogue
+from bridge.tables.codes import Code, CodeTable
+from bridge.tables.plausibility import Bound, Plausibility
+
+__all__ = ["Bound", "Code", "CodeTable", "Plausibility", "Tables"]
+
+
+@dataclass(frozen=True, slots=True)
+class Tables:
+    """Every code table and rule table the pure core needs, parsed once by the shell."""
+
+    units: UnitCatalogue
+    grades: GradeTable
+    plausibility: Plausibility
+    codes: CodeTable

@@ -1,0 +1,43 @@
+"""``mappings/codes.toml``: the code of each emitted quantity, the panel code, the code systems (pure)."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+from bridge.errors import MappingError
+from bridge.tables.toml import read_toml
+
+
+@dataclass(frozen=True, slots=True)
+class Code:
+    """One coded concept: ``system`` is "loinc" or "local" (resolved per destination)."""
+
+    system: str
+    code: str
+    display: str
+
+
+@dataclass(frozen=True, slots=True)
+class CodeTable:
+    """Observation codes per quantity key, the panel code and the code-system URIs."""
+
+    codes: Mapping[str, Code]
+    panel: Code
+    systems: Mapping[str, str]
+
+    @classmethod
+    def from_toml(cls, text: str, name: str = "codes.toml") -> CodeTable:
+        data = read_toml(text, name)
+        systems = dict(data.get("systems", {}))
+        if set(systems) != {"loinc", "local"}:
+            raise MappingError(name, "systems", "exactly the keys loinc and local")
+        codes = {key: _code(name, f"codes.{key}", entry, systems) for key, entry in data.get("codes", {}).items()}
+        return cls(codes, _code(name, "panel", data.get("panel", {}), systems), systems)
+
+
+def _code(name: str, where: str, entry: Mapping[str, object], systems: Mapping[str, str]) -> Code:
+    system, code, display = entry.get("system"), entry.get("code"), entry.get("display")
+    if system not in systems or not isinstance(code, str) or not code or not isinstance(display, str):
+        raise MappingError(name, where, f"system ({' or '.join(systems)}), code and display")
+    return Code(str(system), code, display)
