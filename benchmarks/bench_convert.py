@@ -4,7 +4,7 @@ Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--jso
 
 What it measures, all on one core in one process, with the same generated inputs:
 
-* **real**: ``process()`` then ``payloads(..., ("fhir", "hl7"))`` per session: the bytes a
+* **real**: ``process(..., routes=(fhir, hl7))`` per session, the one pipeline: the bytes a
   ``convert`` run writes (FHIR transaction Bundle JSON and ORU^R01 ER7), without file I/O.
 * **floor**: the cheapest honest way to read the same JSON and write bytes of the same shape:
   ``orjson.loads``, one plain dict per Observation (as many as the real Bundle has, with the
@@ -47,19 +47,30 @@ import orjson
 from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import EmitContext, build_content
-from bridge.emit.outputs import payloads
 from bridge.model import Outcome
-from bridge.pipeline import process, read_and_normalise
+from bridge.pipeline import PipelineSettings, Route, process
+from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
 from bridge.science.derive import derive
+from bridge.science.normalise import normalise
 from bridge.tables import Tables
 from bridge.tables.files import load_tables, samples_dir
 
 TARGET_PER_S = 2000
 TARGET_RATIO = 3.0  # "within about 3x of the floor"
 SEED = 20260310
-KINDS = ("fhir", "hl7")
-CONTEXT = EmitContext(now=datetime(2026, 3, 10, 12, tzinfo=UTC))
+NOW = datetime(2026, 3, 10, 12, tzinfo=UTC)
+CONTEXT = EmitContext(now=NOW)
+ROUTES = (Route("fhir", "traditional"), Route("hl7", "traditional"))
+# Nothing blocked: every generated session goes through to both emitters, as the floor does.
+SETTINGS = PipelineSettings(blocking=frozenset())
+
+
+def convert(data: bytes, name: str, tables: Tables) -> tuple[Any, ...]:
+    """What ``convert`` builds for one input: the one pipeline with both routes."""
+    return process(data, name, tables, SETTINGS, now=NOW, routes=ROUTES).payloads
+
+
 TEMPLATES = (
     "01-healthy-adult.json",
     "02-anaemic-patient.json",
@@ -276,7 +287,7 @@ def best_of(repeat: int, run: Callable[[], None]) -> tuple[float, list[float]]:
 def real_pass(inputs: Sequence[bytes], tables: Tables) -> Callable[[], None]:
     def run() -> None:
         for i, data in enumerate(inputs):
-            payloads(process(data, f"gen-{i}.json", tables), tables, CONTEXT, KINDS)
+            convert(data, f"gen-{i}.json", tables)
 
     return run
 
@@ -290,7 +301,7 @@ def floor_pass(inputs: Sequence[bytes], counts: Sequence[int]) -> Callable[[], N
 
 
 STAGES = (
-    "read + normalise (read_and_normalise)",
+    "read + normalise",
     "derive",
     "check",
     "Outcome (sha256 + model)",
@@ -314,7 +325,7 @@ def stage_breakdown(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]
         for i, data in enumerate(inputs):
             name = f"gen-{i}.json"
             t0 = clock()
-            session = read_and_normalise(data, name, tables.units)
+            session = normalise(read_export(data, name), tables.units)
             t1 = clock()
             derived = derive(session, tables)
             t2 = clock()
@@ -368,7 +379,7 @@ def validator_costs(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]
     from hl7apy.consts import VALIDATION_LEVEL
     from hl7apy.parser import parse_message
 
-    built = [payloads(process(d, f"v-{i}.json", tables), tables, CONTEXT, KINDS) for i, d in enumerate(inputs)]
+    built = [convert(d, f"v-{i}.json", tables) for i, d in enumerate(inputs)]
     fhir_trees = [orjson.loads(p[0].data) for p in built]
     er7 = [p[1].data.decode("utf-8") for p in built]
     Bundle.model_validate(fhir_trees[0])  # first use builds the pydantic models: not counted
@@ -416,7 +427,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     counts: list[int] = []
     real_bytes = 0
     for i, data in enumerate(inputs):
-        fhir, hl7 = payloads(process(data, f"gen-{i}.json", tables), tables, CONTEXT, KINDS)
+        fhir, hl7 = convert(data, f"gen-{i}.json", tables)
         counts.append(hl7.data.count(b"\rOBX|"))
         real_bytes += len(fhir.data) + len(hl7.data)
     floor_bytes = sum(len(f) + len(h) for f, h in map(floor_convert, inputs, counts))
