@@ -40,7 +40,14 @@ TRANSPORT_KINDS: tuple[TransportKind, ...] = ("file", "mllp", "fhir-rest")
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
 PROCESSING_IDS = ("P", "T", "D")  # source: HL7 v2.5.1 table 0103 (production, training, debugging)
 _HL7_DELIMITERS = re.compile(r"[|^~\\&\x00-\x1f\x7f]")
-_URI = re.compile(r"[A-Za-z][A-Za-z0-9+.-]*:\S+")  # source: RFC 3986 section 3 (scheme ":" ...)
+# Systems the site names: a URL it controls, or a registered URN namespace that needs no owner
+# (source: RFC 3001 urn:oid:, RFC 4122 urn:uuid:); never an unregistered urn:<name>: (RFC 8141
+# section 5.1: NIDs are registered with IANA).
+_SYSTEM_URI = re.compile(
+    r"https?://[A-Za-z0-9.-]+(:[0-9]+)?(/\S*)?"
+    r"|urn:oid:[0-2](\.(0|[1-9][0-9]*))+"
+    r"|urn:uuid:[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}"
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -235,8 +242,15 @@ class _Reader:
         if unknown:
             raise self.fail(f"emit.{unknown[0]}", f"one of {', '.join(sorted(_EMIT_KEYS))}")
         defaults = EmitSettings()
-        values = {k: str(v) for k, v in e.items()}
-        for key in ("sending_application", "sending_facility", "receiving_application", "receiving_facility"):
+        facilities = self.facilities("emit.lab_facilities", e.get("lab_facilities", {}))
+        values = {k: str(v) for k, v in e.items() if k != "lab_facilities"}
+        for key in (
+            "sending_application",
+            "sending_facility",
+            "receiving_application",
+            "receiving_facility",
+            "patient_identifier_type",
+        ):
             self.hl7_namespace(f"emit.{key}", values.get(key, getattr(defaults, key)))
         self.choice("emit.processing_id", values.get("processing_id", defaults.processing_id), PROCESSING_IDS)
         self.choice(
@@ -244,10 +258,24 @@ class _Reader:
             values.get("patient_reference", defaults.patient_reference),
             ("identifier", "conditional-create"),
         )
+        self.system_base("emit.system_base", values.get("system_base", defaults.system_base))
         for key in ("identifier_system", "local_code_system"):
             if key in values:
                 self.uri(f"emit.{key}", values[key])
-        return EmitSettings(**values)  # type: ignore[arg-type]
+        return EmitSettings(**values, lab_facilities=facilities)  # type: ignore[arg-type]
+
+    def facilities(self, key: str, value: Any) -> tuple[tuple[str, str], ...]:
+        """``{"lab name" = "FACILITY-ID"}`` in TOML, ``lab name=FACILITY-ID;...`` in the environment."""
+        if isinstance(value, str):
+            pairs = [part.partition("=") for part in value.split(";") if part.strip()]
+            if any(not sep for _, sep, _ in pairs):
+                raise self.fail(key, f"lab name=FACILITY-ID pairs separated by ;, got {value!r}")
+            value = {name.strip(): facility.strip() for name, _, facility in pairs}
+        if not isinstance(value, dict) or not all(isinstance(v, str) and k for k, v in value.items()):
+            raise self.fail(key, 'a table of lab name = "HL7 facility id"')
+        for name, facility in value.items():
+            self.hl7_namespace(f"{key}.{name}", facility)
+        return tuple(sorted(value.items()))
 
     def wants_service(self) -> bool:
         return bool(set(self.data) & _SERVICE_KEYS) or "destination" in self.data
@@ -386,8 +414,16 @@ class _Reader:
             raise self.fail(key, f"1 to {IS_LENGTH} characters without | ^ ~ \\ & or control characters, got {value!r}")
 
     def uri(self, key: str, value: str) -> None:
-        if not _URI.fullmatch(value):
-            raise self.fail(key, f"an absolute URI (https://..., urn:oid:..., urn:uuid:...), got {value!r}")
+        # source: FHIR R4 datatypes, Identifier.system and Coding.system are of type uri
+        if not _SYSTEM_URI.fullmatch(value):
+            raise self.fail(
+                key, f"an absolute URI: https://... the site controls, urn:oid:... or urn:uuid:..., got {value!r}"
+            )
+
+    def system_base(self, key: str, value: str) -> None:
+        parts = urlsplit(value)
+        if parts.scheme not in ("http", "https") or not parts.netloc or value.endswith("/") or parts.query:
+            raise self.fail(key, f"an https:// URL the site controls, without a trailing / or query, got {value!r}")
 
     def url(self, key: str, value: str) -> None:
         parts = urlsplit(value)

@@ -217,6 +217,7 @@ class Session(Frozen):
 
     format: Literal["dlco-result/1"]
     test_id: Annotated[Text, Field(max_length=64)]
+    placer_order_number: Annotated[Text, Field(max_length=64)] | None = None  # the requester's order, if exported
     performed_at: AwareDatetime
     lab: Lab
     patient: Patient

@@ -56,6 +56,13 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ('[emit]\nprocessing_id = "X"\n', "emit.processing_id", "one of P, T, D"),
         # source: RFC 3986 section 3 (an absolute URI has a scheme)
         ('[emit]\nidentifier_system = "observation ids"\n', "emit.identifier_system", "an absolute URI"),
+        # source: RFC 8141 section 5.1 (URN namespaces are registered with IANA; "dlco-bridge" is not)
+        ('[emit]\nlocal_code_system = "urn:dlco-bridge:local-code"\n', "emit.local_code_system", "urn:oid:"),
+        ('[emit]\nsystem_base = "urn:oid:1.2.3"\n', "emit.system_base", "an https:// URL"),
+        ('[emit]\nsystem_base = "https://site.example/x/"\n', "emit.system_base", "without a trailing /"),
+        # source: HL7 v2.5.1 ch. 2, HD.1 namespace id (IS, at most 20 characters); CX.5 (ID)
+        ('[emit.lab_facilities]\n"A lab" = "LAB|ONE"\n', "emit.lab_facilities.A lab", "without |"),
+        ('[emit]\npatient_identifier_type = ""\n', "emit.patient_identifier_type", "1 to 20 characters"),
         ('units = "imperial"\n', "units", "one of si, traditional"),
         ("traditional_per_si = 3.0\n", "traditional_per_si", "2.987 or 2.986"),
         ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
@@ -120,3 +127,17 @@ def test_a_missing_configuration_file_is_one_line(tmp_path, capsys):
 
     assert 1 == code
     assert f"{tmp_path / 'absent.toml'}: (file): a readable configuration file" in capsys.readouterr().err
+
+
+def test_lab_facilities_come_from_a_table_or_the_environment():
+    """[emit.lab_facilities] maps lab names to HL7 facility ids; DLCO_BRIDGE_EMIT_LAB_FACILITIES uses name=ID;..."""
+    text = '[emit.lab_facilities]\n"Lowmarsh Lab" = "LOWMARSH-PFT"\n'
+    environ = {"DLCO_BRIDGE_EMIT_LAB_FACILITIES": "Highcairn Unit=HIGHCAIRN-PFT; Lowmarsh Lab=LOW-2"}
+
+    from_file = parse_settings(text, {}).pipeline.emit.lab_facilities
+    from_env = parse_settings(text, environ).pipeline.emit.lab_facilities
+
+    assert ((("Lowmarsh Lab", "LOWMARSH-PFT"),), (("Highcairn Unit", "HIGHCAIRN-PFT"), ("Lowmarsh Lab", "LOW-2"))) == (
+        from_file,
+        from_env,
+    )

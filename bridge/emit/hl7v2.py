@@ -31,6 +31,20 @@ Decisions:
   may come as ``1.2e-05`` from six significant digits and are written out in full.
 * OBX-6 is ``code^code^UCUM``: the UCUM code as identifier and as text.  # common practice
   "UCUM" is not in hl7apy's copy of HL7 table 0396 (a table warning, not an error).
+* Identity of the order and the lab (HL7 v2.5.1 ch. 4, ORC-2/ORC-3, ch. 7, OBR-2/OBR-3, OBX-23;
+  ch. 2, data types EI, HD, CX, XON): the filler order number (ORC-3 = OBR-3) is an EI
+  ``test id^lab facility id``, the lab's test id under the lab's namespace; the placer order
+  number (ORC-2 = OBR-2) only when the export carries one (the bridge never invents an order
+  of the placer's); MSH-4 and the EI namespace are the facility id of the lab that performed
+  the test (``emit.lab_facilities``, else ``emit.sending_facility``); OBX-23 names that lab
+  (XON.1 its name, XON.10 its facility id); PID-3 carries CX.5 the identifier type code
+  (table 0203, ``emit.patient_identifier_type``, MR by default).
+* Blood values (Hb, COHb) are not results of the PFT order, so they get no OBX of their own
+  (OBX-11 has no status for "supporting data": table 0085): an NTE after the OBX of the result
+  they qualify carries each, saying so.
+* MSH-10 hashes the input's content, the units, original or correction, and
+  :data:`~bridge.emit.observations.OUTPUT_REVISION`: a resend is recognisable; a newer
+  bridge's different output is not dropped as a duplicate.
 """
 
 from __future__ import annotations
@@ -44,7 +58,14 @@ from types import MappingProxyType
 from urllib.parse import urlsplit
 
 from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
-from bridge.emit.observations import EmitContext, ReportContent, ResultItem, build_content
+from bridge.emit.observations import (
+    OUTPUT_REVISION,
+    EmitContext,
+    ReportContent,
+    ResultItem,
+    build_content,
+    supporting_text,
+)
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.model import Outcome, Patient, Sex
 from bridge.tables import Code, Tables
@@ -77,23 +98,27 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     if content is None:
         content = build_content(outcome, tables, context.units)
     status = "C" if context.correction else "F"
-    msh, now = _msh(outcome, context)
+    lab = outcome.session.lab.name
+    key = "lab_facilities" if any(name == lab for name, _ in context.lab_facilities) else "sending_facility"
+    facility = _namespace_setting(key, context.facility_of(lab))
+    msh, now = _msh(outcome, context, facility)
     performed = hl7_timestamp(outcome.session.performed_at)
+    orders = _order_numbers(outcome, facility)
     segments = [
         msh,
-        _pid(outcome.session.patient),
-        _orc(outcome),
-        _obr(outcome, tables, now, performed, status),
+        _pid(outcome.session.patient, context.patient_identifier_type),
+        _segment("ORC", "RE", *orders),
+        _obr(orders, tables, now, performed, status),
         *_ntes(content.notes),
-        *_observations(content, status, performed),
+        *_observations(content, status, performed, _performer(outcome, facility)),
     ]
     return SEGMENT_SEPARATOR.join(segments) + SEGMENT_SEPARATOR
 
 
-def control_id(outcome: Outcome, context: EmitContext) -> str:
-    """MSH-10: the same for a resend of the same content, new for a correction or other units."""
+def control_id(outcome: Outcome, context: EmitContext, revision: int = OUTPUT_REVISION) -> str:
+    """MSH-10: the same for a resend of the same content, new for a correction, other units or a new output revision."""
     flag = "correction" if context.correction else "original"
-    basis = f"{outcome.source_sha256}|{context.units}|{flag}"
+    basis = f"{outcome.source_sha256}|{context.units}|{flag}|revision {revision}"
     return hashlib.sha256(basis.encode("utf-8")).hexdigest()[:CONTROL_ID_LENGTH]
 
 
@@ -119,10 +144,9 @@ def hl7_date(day: date) -> str:
 # ---------- segments ----------
 
 
-def _msh(outcome: Outcome, context: EmitContext) -> tuple[str, str]:
-    """MSH, and the message time as a TS (OBR-22 repeats it)."""
+def _msh(outcome: Outcome, context: EmitContext, sending_facility: str) -> tuple[str, str]:
+    """MSH (MSH-4: the lab's facility id, escaped), and the message time as a TS (OBR-22 repeats it)."""
     sending_application = _namespace_setting("sending_application", context.sending_application)
-    sending_facility = _namespace_setting("sending_facility", context.sending_facility)
     receiving_application = _namespace_setting("receiving_application", context.receiving_application)
     receiving_facility = _namespace_setting("receiving_facility", context.receiving_facility)
     now = hl7_timestamp(context.now)
@@ -148,8 +172,9 @@ def _msh(outcome: Outcome, context: EmitContext) -> tuple[str, str]:
     ), now
 
 
-def _pid(patient: Patient) -> str:
+def _pid(patient: Patient, identifier_type: str) -> str:
     identifier = _identifier("patient.id", patient.id)
+    kind = _namespace_setting("patient_identifier_type", identifier_type)
     name = _components(_name_part("patient.family", patient.family), _name_part("patient.given", patient.given))
     if not name:
         name = UNNAMED  # PID-5 is required; never "" (that means "delete" to many receivers)
@@ -157,7 +182,7 @@ def _pid(patient: Patient) -> str:
         "PID",
         "1",
         "",
-        f"{identifier}^^^{_assigning_authority(patient.id_system)}",
+        f"{identifier}^^^{_assigning_authority(patient.id_system)}^{kind}",  # CX.1, CX.4 (HD), CX.5
         "",
         name,
         "",
@@ -166,17 +191,25 @@ def _pid(patient: Patient) -> str:
     )
 
 
-def _orc(outcome: Outcome) -> str:
-    test_id = _identifier("test_id", outcome.session.test_id)
-    return _segment("ORC", "RE", test_id, test_id)
+def _order_numbers(outcome: Outcome, facility: str) -> tuple[str, str]:
+    """Placer and filler order numbers (EI): the export's placer number, if any; the lab's test id."""
+    session = outcome.session
+    placer = session.placer_order_number
+    placer_ei = _identifier("placer_order_number", placer) if placer is not None else ""
+    return placer_ei, f"{_identifier('test_id', session.test_id)}^{facility}"  # EI.1 entity id, EI.2 namespace
 
 
-def _obr(outcome: Outcome, tables: Tables, now: str, performed: str, status: str) -> str:
-    test_id = _identifier("test_id", outcome.session.test_id)
+def _performer(outcome: Outcome, facility: str) -> str:
+    """OBX-23 (XON): XON.1 the lab's name, XON.10 its facility id."""
+    name = _identifier("lab.name", outcome.session.lab.name)
+    return f"{name}^^^^^^^^^{facility}"
+
+
+def _obr(orders: tuple[str, str], tables: Tables, now: str, performed: str, status: str) -> str:
     fields = [""] * 25
     fields[0] = "1"
-    fields[1] = test_id  # OBR-2 placer order number
-    fields[2] = test_id  # OBR-3 filler order number
+    fields[1] = orders[0]  # OBR-2 placer order number (= ORC-2)
+    fields[2] = orders[1]  # OBR-3 filler order number (= ORC-3)
     fields[3] = _coded(tables.codes.panel, "panel")
     fields[6] = performed  # OBR-7 observation date/time
     fields[21] = now  # OBR-22 results report/status change
@@ -185,14 +218,14 @@ def _obr(outcome: Outcome, tables: Tables, now: str, performed: str, status: str
     return _segment("OBR", *fields)
 
 
-def _observations(content: ReportContent, status: str, observed: str) -> Iterable[str]:
+def _observations(content: ReportContent, status: str, observed: str, performer: str) -> Iterable[str]:
     for set_id, item in enumerate(content.items, start=1):
-        yield _obx(set_id, item, status, observed)
-        if item.notes:
-            yield from _ntes(item.notes)
+        yield _obx(set_id, item, status, observed, performer)
+        if item.notes or item.supporting:
+            yield from _ntes((*item.notes, *(supporting_text(value) for value in item.supporting)))
 
 
-def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
+def _obx(set_id: int, item: ResultItem, status: str, observed: str, performer: str) -> str:
     quantity, low_q = item.quantity, item.low
     value = numeric_text(quantity.text())
     if len(value) > NM_LENGTH:
@@ -202,9 +235,12 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str) -> str:
     low = f">{numeric_text(low_q.text())}" if low_q is not None else ""
     flag = item.flag or ""  # HL7 table 0078
     # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
-    # (HL7 table 0085), -14 date/time of the observation. Written out: the last field is never
-    # empty, so nothing would be trimmed (see _segment).
-    return f"OBX|{set_id}|NM|{coded}||{value}|{unit}^{unit}^{UNIT_SYSTEM}|{low}|{flag}|||{status}|||{observed}"
+    # (HL7 table 0085), -14 date/time of the observation, -23 performing organisation (XON).
+    # Written out: the last field is never empty, so nothing would be trimmed (see _segment).
+    return (
+        f"OBX|{set_id}|NM|{coded}||{value}|{unit}^{unit}^{UNIT_SYSTEM}|{low}|{flag}|||{status}|||{observed}"
+        f"|||||||||{performer}"
+    )
 
 
 def _ntes(notes: Iterable[str]) -> list[str]:

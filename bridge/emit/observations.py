@@ -10,8 +10,9 @@ list, so the two outputs always carry the same content. Pure.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
+from types import MappingProxyType
 from typing import Literal
 
 from bridge.model import Finding, Outcome, Quantity, Severity
@@ -22,6 +23,14 @@ from bridge.tables import Code, Tables
 PatientReference = Literal["conditional-create", "identifier"]
 BRIDGE_NAME = "dlco-bridge"
 COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
+# The one place that says the emitted bytes changed: bump it with every change of what the
+# same input produces (codes, values, identifiers, layout). It is part of the HL7 control id
+# (MSH-10), so a receiver that drops repeated MSH-10s still takes the newer output.
+OUTPUT_REVISION = 2
+# A placeholder base for the site's own identifier and code systems (RFC 2606 reserves
+# ``.example``): every site sets ``emit.system_base`` to a URL it controls.
+DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
+DEFAULT_SENDING_FACILITY = "PFT-LAB"
 
 
 @dataclass(frozen=True, slots=True)
@@ -34,17 +43,58 @@ class EmitContext:
     now: datetime
     units: UnitSystem = "traditional"
     sending_application: str = "DLCO-BRIDGE"
-    sending_facility: str = "PFT-LAB"
+    sending_facility: str = DEFAULT_SENDING_FACILITY
     receiving_application: str = "RECORDS"
     receiving_facility: str = "HOSPITAL"
-    local_code_system: str | None = None  # FHIR URI for local codes; None: codes.toml default
-    identifier_system: str = "urn:dlco-bridge:observation-id"
+    system_base: str = DEFAULT_SYSTEM_BASE  # the site's URL under which its own systems live
+    local_code_system: str | None = None  # FHIR URI for local codes; None: <system_base>/local-code
+    identifier_system: str | None = None  # observation identifiers; None: <system_base>/observation-id
     patient_reference: PatientReference = "identifier"
     correction: bool = False  # new content for a test id that was already sent
     processing_id: str = "P"  # HL7 MSH-11: P production, T training, D debugging
+    lab_facilities: tuple[tuple[str, str], ...] = ()  # (lab name as exported, HL7 facility id)
+    patient_identifier_type: str = "MR"  # HL7 PID-3 CX.5 (table 0203): MR medical record number
+
+    @property
+    def observation_system(self) -> str:
+        """Identifier system of the observations and reports the bridge emits."""
+        return self.identifier_system or f"{self.system_base}/observation-id"
+
+    @property
+    def local_system(self) -> str:
+        """Code system of the local codes (``system = "local"`` in codes.toml)."""
+        return self.local_code_system or f"{self.system_base}/local-code"
+
+    @property
+    def source_system(self) -> str:
+        """Identifier system of an input file's SHA-256 (FHIR Provenance.entity)."""
+        return f"{self.system_base}/source-file"
+
+    def facility_of(self, lab_name: str) -> str:
+        """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
+        return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)
 
 
 Flag = Literal["L", "H", "N"]
+
+
+@dataclass(frozen=True, slots=True)
+class Supporting:
+    """A blood value the export carried with the test (Hb, COHb): context for a result, never a result itself.
+
+    The PFT lab did not measure it at the time of the test, so it is not emitted as an
+    observation of its own: FHIR carries it as a ``component`` of the result it qualifies,
+    HL7 v2 as an NTE after that result's OBX (see :func:`supporting_text`).
+    """
+
+    key: str  # "hemoglobin" or "carboxyhemoglobin"
+    code: Code
+    quantity: Quantity
+
+
+# Which result each blood value qualifies: Hb and COHb both bear on the measured DLCO (ERS/ATS
+# 2017 DLCO standard: report them with it); Hb is the input of the Hb-adjusted DLCO.
+_SUPPORTED_BY = MappingProxyType({"dlco": ("hemoglobin", "carboxyhemoglobin"), "dlco_hb_adjusted": ("hemoglobin",)})
 
 
 @dataclass(frozen=True, slots=True)
@@ -59,6 +109,7 @@ class ResultItem:
     derived_from: tuple[str, ...] = ()
     computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
     notes: tuple[str, ...] = ()
+    supporting: tuple[Supporting, ...] = ()  # blood values that qualify this result (not results)
 
 
 @dataclass(frozen=True, slots=True)
@@ -161,11 +212,16 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     add("kco_percent_predicted", d.kco_percent_predicted, derived_from=("kco", "kco_predicted"), computed=True)
     add("va_percent_predicted", d.va_percent_predicted, derived_from=("va", "va_predicted"), computed=True)
     add("tlc", r.tlc)
-    add("hemoglobin", c.hemoglobin, path="conditions.hemoglobin")
-    add("carboxyhemoglobin", c.carboxyhemoglobin, path="conditions.carboxyhemoglobin")
     add("barometric_pressure", c.barometric_pressure)
-    present = {item.key for item in items}
+    blood = {
+        key: Supporting(key, codes[key], show(q))
+        for key, q in (("hemoglobin", c.hemoglobin), ("carboxyhemoglobin", c.carboxyhemoglobin))
+        if q is not None
+    }
+    present = {item.key for item in items}  # blood values are not items: derivedFrom drops them
     items = [_keep_present_sources(item, present) if item.derived_from else item for item in items]
+    if blood:
+        items = [_with_supporting(item, blood) for item in items]
     if by_path:
         carried = {note for item in items for note in item.notes}
         attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
@@ -180,7 +236,20 @@ def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
     kept = tuple(key for key in item.derived_from if key in present)
     if kept == item.derived_from:
         return item
-    return ResultItem(item.key, item.code, item.quantity, item.low, item.flag, kept, item.computed_here, item.notes)
+    return replace(item, derived_from=kept)
+
+
+def _with_supporting(item: ResultItem, blood: dict[str, Supporting]) -> ResultItem:
+    supporting = tuple(blood[key] for key in _SUPPORTED_BY.get(item.key, ()) if key in blood)
+    return replace(item, supporting=supporting) if supporting else item
+
+
+def supporting_text(value: Supporting) -> str:
+    """The note that carries a blood value in HL7 v2 (after the OBX of the result it qualifies)."""
+    return (
+        f"{value.code.display} {value.quantity.text()} {value.quantity.unit} ({value.code.code}), "
+        "reported with the test: supporting data, not a result of this test."
+    )
 
 
 def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
@@ -213,6 +282,7 @@ def observation_identifier(outcome: Outcome, key: str) -> str:
 
 
 def code_system_uri(code: Code, tables: Tables, context: EmitContext) -> str:
-    if code.system == "local" and context.local_code_system:
-        return context.local_code_system
+    """The FHIR Coding.system of a code: LOINC from codes.toml, local codes from the site."""
+    if code.system == "local":
+        return context.local_system
     return tables.codes.systems[code.system]

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import uuid
 from collections.abc import Iterator
 from dataclasses import replace
@@ -47,7 +48,7 @@ GOLDEN = ROOT / "tests" / "golden" / "fhir"
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 UCUM = "http://unitsofmeasure.org"
 LOINC = "http://loinc.org"
-LOCAL = "urn:dlco-bridge:local-code"
+LOCAL = "https://pft-site.example/dlco-bridge/local-code"  # the documented placeholder default
 
 VARIANTS = [
     EmitContext(now=NOW, units=units, patient_reference=mode, correction=correction)
@@ -196,7 +197,7 @@ def test_every_entry_is_idempotent_on_resend(fhir_bundles):
 
 def test_loinc_codes_of_the_main_quantities(fhir_outcomes, fhir_tables):
     """DLCO 19911-7, KCO 19916-6, Hb-adjusted 19913-3, Hb 718-7, COHb 20563-3, panel 81458-2."""
-    # source: LOINC 19911-7, 19916-6, 19913-3, 718-7, 20563-3, 81458-2 (loinc.org), DOMAIN.md 7.1
+    # source: LOINC 19911-7, 19916-6, 19913-3, 718-7, 20563-3, 81458-2 (loinc.org)
     anaemic = to_bundle(fhir_outcomes["02-anaemic-patient"], fhir_tables, GOLDEN_CONTEXT)
     cohb = to_bundle(fhir_outcomes["04-raised-cohb"], fhir_tables, GOLDEN_CONTEXT)
     panel = evaluate(anaemic, "Bundle.entry.resource.ofType(DiagnosticReport).code.coding", [])
@@ -205,9 +206,9 @@ def test_loinc_codes_of_the_main_quantities(fhir_outcomes, fhir_tables):
         "dlco": "19911-7",
         "kco": "19916-6",
         "dlco_hb_adjusted": "19913-3",
-        "hemoglobin": "718-7",
     }.items() <= (_codes_by_key(anaemic).items())
-    assert _codes_by_key(cohb)["carboxyhemoglobin"] == "20563-3"
+    assert ["718-7"] == [c["code"]["coding"][0]["code"] for c in _observation(anaemic, "dlco_hb_adjusted")["component"]]
+    assert ["718-7", "20563-3"] == [c["code"]["coding"][0]["code"] for c in _observation(cohb, "dlco")["component"]]
     assert panel == [{"system": LOINC, "code": "81458-2", "display": "Pulmonary function test panel"}]
 
 
@@ -217,10 +218,8 @@ def test_categories_and_interpretation(fhir_outcomes, fhir_tables):
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, GOLDEN_CONTEXT)
     dlco = _observation(bundle, "dlco")
     categories = [c["coding"][0]["code"] for c in dlco["category"]]
-    hb_category = _observation(bundle, "hemoglobin")["category"][0]["coding"][0]["code"]
 
     assert categories == ["procedure", "PF"]
-    assert hb_category == "laboratory"
     assert dlco["interpretation"][0]["coding"][0]["code"] == "N"
     assert dlco["referenceRange"][0]["text"] == "LLN (5th percentile)"
 
@@ -336,7 +335,7 @@ def test_first_send_is_conditional_create(fhir_outcomes, fhir_tables):
         entry["resource"]["status"],
     ) == ("POST", "Observation", "final")
     assert (name, separator) == ("identifier", "|")
-    assert unquote(system) == "urn:dlco-bridge:observation-id"
+    assert unquote(system) == "https://pft-site.example/dlco-bridge/observation-id"  # the placeholder default
     assert entry["resource"]["identifier"][0]["value"] == unquote(value).replace("\\|", "|")
 
 
@@ -354,23 +353,28 @@ def test_correction_is_conditional_update_with_status_corrected(fhir_outcomes, f
         ("DiagnosticReport", "PUT"),
         ("Provenance", "POST"),
     } == requests
-    assert obs_entry["request"]["url"].startswith("Observation?identifier=urn:dlco-bridge:observation-id|")
+    assert obs_entry["request"]["url"].startswith(
+        "Observation?identifier=https://pft-site.example/dlco-bridge/observation-id|"
+    )
     assert "ifNoneExist" not in obs_entry["request"]
     assert {"corrected"} == {r["status"] for r in _resources(bundle) if "status" in r}
     assert report["conclusion"].splitlines()[1].startswith("Corrected report")
 
 
 def test_patient_by_identifier_has_no_patient_entry(fhir_outcomes, fhir_tables):
-    """patient_reference 'identifier': no Patient entry; subject is a logical identifier reference."""
+    """patient_reference 'identifier': no Patient entry; every subject is a conditional reference a server resolves."""
+    # source: FHIR R4 http.html#trules, "Conditional References": in a transaction a reference may be
+    # a search URI "Patient?identifier=system|value", resolved by the server to the one match
     context = replace(GOLDEN_CONTEXT, patient_reference="identifier")
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, context)
     expected = {
+        "reference": "Patient?identifier=https://fenwick-hollow.example/fictional-patient-id|FICT-1001",
         "type": "Patient",
-        "identifier": {"system": "https://fenwick-hollow.example/fictional-patient-id", "value": "FICT-1001"},
     }
+    subjects = evaluate(bundle, "Bundle.entry.resource.subject", [])
 
     assert _resources(bundle, "Patient") == []
-    assert [expected] == evaluate(bundle, "Bundle.entry.resource.ofType(Observation).subject", [])[:1]
+    assert [expected] * (len(bundle["entry"]) - 1) == subjects  # every entry but the Provenance
 
 
 def test_patient_conditional_create(fhir_outcomes, fhir_tables):
@@ -504,3 +508,103 @@ def test_golden_bundle(sample, fhir_tables):
         path.write_bytes(actual)
 
     assert path.read_bytes() == actual
+
+
+# ---------- references and systems (issue 8, item 9) ----------
+
+_CONDITIONAL = re.compile(r"[A-Z][A-Za-z]+\?[a-z][a-z-]*(:[a-z]+)?=\S+")
+# source: FHIR R4 datatypes.html, "uri": absolute URIs such as http(s) URLs, urn:oid: and urn:uuid:;
+# RFC 8141 section 5.1: a URN namespace must be registered with IANA (urn:oid RFC 3001, urn:uuid RFC 4122)
+_PROPER_SYSTEM = re.compile(
+    r"https?://[^/\s]+(/\S*)?|urn:oid:[0-2](\.\d+)+|urn:uuid:[0-9a-f]{8}(-[0-9a-f]{4}){3}-[0-9a-f]{12}"
+)
+
+
+def test_every_reference_resolves_on_a_server(fhir_bundles):
+    """Every reference is another entry's fullUrl or a conditional reference; none is identifier-only."""
+    # source: FHIR R4 bundle.html, "Resolving references in Bundles" (a reference matches an entry's
+    # fullUrl); http.html#trules, "Conditional References" (Type?search, resolved by the server in a
+    # transaction); references.html: a Reference.identifier alone is a logical reference not resolved
+    unresolved = []
+    for bundle in fhir_bundles:
+        urls = {e["fullUrl"] for e in bundle["entry"]}
+        for node in _references_with_targets(bundle):
+            ref = node.get("reference")
+            if ref is None and "display" in node and "identifier" not in node:
+                continue  # a display-only reference (performer, Provenance agent): names, points nowhere
+            if ref is None or not (ref in urls or (_CONDITIONAL.fullmatch(ref) and ref.startswith("Patient?"))):
+                unresolved.append(node)
+
+    assert [] == unresolved
+
+
+def _references_with_targets(node: Any) -> Iterator[dict[str, Any]]:
+    """Every Reference object of a Bundle's resources (subject, derivedFrom, result, target, performer, who)."""
+    if isinstance(node, dict):
+        for key, value in node.items():
+            if key in ("subject", "performer", "derivedFrom", "result", "target", "who"):
+                yield from (v for v in (value if isinstance(value, list) else [value]) if isinstance(v, dict))
+            else:
+                yield from _references_with_targets(value)
+    elif isinstance(node, list):
+        for item in node:
+            yield from _references_with_targets(item)
+
+
+def test_every_system_is_a_proper_uri(fhir_bundles):
+    """Identifier, Coding and Quantity systems are https URLs, urn:oid: or urn:uuid:, never urn:<name>:."""
+    # source: FHIR R4 datatypes.html, Identifier.system, Coding.system and Quantity.system are of type uri
+    systems = {
+        system
+        for bundle in fhir_bundles
+        for system in evaluate(bundle, "Bundle.entry.resource.descendants().system", [])
+    }
+
+    assert set() == {system for system in systems if not _PROPER_SYSTEM.fullmatch(system)}
+    assert "https://pft-site.example/dlco-bridge/observation-id" in systems  # the documented placeholder
+
+
+def test_the_site_base_names_every_own_system(fhir_outcomes, fhir_tables):
+    """With emit.system_base set, observation ids, local codes and source files are systems under it."""
+    # source: FHIR R4 datatypes.html, Identifier.system: "Establishes the namespace for the value"
+    base = "https://fenwick-hollow.example/dlco-bridge"
+    context = replace(GOLDEN_CONTEXT, system_base=base)
+    bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, context)
+    va = _observation(bundle, "va")
+    provenance = _resources(bundle, "Provenance")[0]
+
+    assert [f"{base}/observation-id", f"{base}/local-code", f"{base}/source-file"] == [
+        va["identifier"][0]["system"],
+        va["code"]["coding"][0]["system"],
+        provenance["entity"][0]["what"]["identifier"]["system"],
+    ]
+
+
+# ---------- blood values (issue 8, item 11) ----------
+
+
+def test_blood_values_are_components_not_observations(fhir_outcomes, fhir_tables, fhir_validators):
+    """Hb is a component of the DLCO and Hb-adjusted Observations, not an Observation of the PFT lab."""
+    # source: FHIR R4 observation.html, Observation.component ("results ... that are not separable"
+    # from the observation); derivedFrom only to a resource that exists (none: the export names no Hb result)
+    bundle = to_bundle(fhir_outcomes["02-anaemic-patient"], fhir_tables, GOLDEN_CONTEXT)
+    codes = {c for o in _resources(bundle, "Observation") for c in evaluate(o, "Observation.code.coding.code", [])}
+    component = {
+        "code": {
+            "coding": [{"system": LOINC, "code": "718-7", "display": "Hemoglobin [Mass/volume] in Blood"}],
+            "text": "Hemoglobin [Mass/volume] in Blood",
+        },
+        # samples/02-anaemic-patient.json: 8.9 g/dl
+        "valueQuantity": {"value": Decimal("8.9"), "unit": "g/dL", "system": UCUM, "code": "g/dL"},
+    }
+    adjusted = _observation(bundle, "dlco_hb_adjusted")
+
+    assert set() == codes & {"718-7", "20563-3"}  # source: LOINC 718-7 Hb, 20563-3 COHb
+    assert [component] == _observation(bundle, "dlco")["component"]
+    assert [component] == adjusted["component"]
+    assert [{"reference": _entry_url(bundle, "dlco")}] == adjusted["derivedFrom"]
+    assert [] == _errors(fhir_validators["Observation"], adjusted)
+
+
+def _entry_url(bundle: dict[str, Any], key: str) -> str:
+    return next(e["fullUrl"] for e in bundle["entry"] if e["resource"]["identifier"][0]["value"].endswith(f".{key}"))

@@ -29,7 +29,7 @@ from ucumvert import parse_ucum
 from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7text import escape, escape_formatted, split_fields, split_segments, unescape
 from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_text, to_oru
-from bridge.emit.observations import EmitContext, build_content
+from bridge.emit.observations import OUTPUT_REVISION, EmitContext, build_content
 from bridge.emit.outputs import payloads
 from bridge.errors import ConfigError, InvalidField
 from bridge.model import Outcome
@@ -261,8 +261,8 @@ def test_header_and_order_fields(sample_outcomes, tables):
         str(msh[11]),
         str(msh[12]),
     ]
-    assert ["RE", test_id, test_id] == [str(orc[1]), str(orc[2]), str(orc[3])]
-    assert [test_id, "81458-2^Pulmonary function test panel^LN", performed, "PF", "F"] == [
+    assert ["RE", "", f"{test_id}^PFT-LAB"] == [str(orc[1]), str(orc[2]), str(orc[3])]
+    assert [f"{test_id}^PFT-LAB", "81458-2^Pulmonary function test panel^LN", performed, "PF", "F"] == [
         str(obr[3]),
         str(obr[4]),
         str(obr[7]),
@@ -291,7 +291,7 @@ def test_notes_follow_obr_and_their_obx(sample_outcomes, tables):
 
     expected = ["MSH", "PID", "ORC", "OBR", *["NTE"] * len(content.notes)]
     for item in content.items:
-        expected += ["OBX", *["NTE"] * len(item.notes)]
+        expected += ["OBX", *["NTE"] * (len(item.notes) + len(item.supporting))]
     assert expected == names
 
 
@@ -483,3 +483,115 @@ def test_values_computed_by_the_bridge_say_so(sample_outcomes, tables):
     obx = next(i for i, s in enumerate(segments) if s.startswith("OBX|") and "|98130-8^" in s)
 
     assert "NTE|1|L|Computed by dlco-bridge from the reported values." == segments[obx + 1]
+
+
+# ---------- identity of the order, the lab and the patient (issue 8, item 10) ----------
+
+LOWMARSH = "Lowmarsh Respiratory Physiology Lab (fictional)"
+SITE_CONTEXT = dataclasses.replace(
+    GOLDEN_CONTEXT,
+    sending_facility="FENWICK-PFT",
+    lab_facilities=((LOWMARSH, "LOWMARSH-PFT"), ("Highcairn Lung Function Unit (fictional)", "HIGHCAIRN-PFT")),
+)
+
+
+def _with_placer(outcome: Outcome, placer: str) -> Outcome:
+    return outcome.model_copy(update={"session": outcome.session.model_copy(update={"placer_order_number": placer})})
+
+
+def test_order_and_lab_identity_field_by_field(sample_outcomes, tables, tmp_path):
+    """MSH-4, ORC-2/3, OBR-2/3, OBX-23 and PID-3 CX.5 name the order, the lab and the identifier type."""
+    outcome = _with_placer(sample_outcomes["01-healthy-adult"], "ORD-77^1")  # a delimiter in the export's value
+    er7 = to_oru(outcome, tables, SITE_CONTEXT)
+    parsed = hl7.parse(er7)
+    msh, pid, orc, obr = (parsed.segment(name) for name in ("MSH", "PID", "ORC", "OBR"))
+
+    # source: HL7 v2.5.1 ch. 2, MSH-4 sending facility (HD): the lab that performed the test
+    assert "LOWMARSH-PFT" == str(msh[4])
+    # source: HL7 v2.5.1 ch. 4, ORC-2 placer order number (EI); ch. 7, OBR-2 = ORC-2; only when exported
+    assert ["ORD-77^1", "ORD-77^1"] == [
+        parsed.extract_field("ORC", 1, 2, 1, 1),
+        parsed.extract_field("OBR", 1, 2, 1, 1),
+    ]
+    # source: HL7 v2.5.1 ch. 4, ORC-3 filler order number (EI: EI.1 entity identifier, EI.2 namespace id); OBR-3 = ORC-3
+    assert [["LOW-2026-0001", "LOWMARSH-PFT"]] * 2 == [
+        [str(orc[3][0][0]), str(orc[3][0][1])],
+        [str(obr[3][0][0]), str(obr[3][0][1])],
+    ]
+    # source: HL7 v2.5.1 ch. 7, OBX-23 performing organization name (XON: XON.1 name, XON.10 organization identifier)
+    obx23 = {(parsed.extract_field("OBX", n, 23, 1, 1), parsed.extract_field("OBX", n, 23, 1, 10))
+             for n in range(1, len(parsed.segments("OBX")) + 1)}  # fmt: skip
+    assert {(LOWMARSH, "LOWMARSH-PFT")} == obx23
+    # source: HL7 v2.5.1 ch. 2, CX.5 identifier type code (table 0203: MR medical record number)
+    assert "MR" == str(pid[3][0][4])
+    # source: hl7apy STRICT validation of the HL7 v2.5.1 message structure and data types
+    message = _strict(er7, tmp_path / "report.txt")
+    filler = message.ORU_R01_PATIENT_RESULT.ORU_R01_ORDER_OBSERVATION.OBR.filler_order_number
+    assert ("LOW-2026-0001", "LOWMARSH-PFT") == (filler.entity_identifier.value, filler.namespace_id.value)
+    assert {ALLOWED_WARNING} >= _warnings(tmp_path / "report.txt")
+
+
+def test_without_a_placer_number_orc2_and_obr2_stay_empty(sample_outcomes, tables, tmp_path):
+    """An export without a placer order number gets no invented ORC-2/OBR-2; STRICT still passes."""
+    # source: HL7 v2.5.1 ch. 4, ORC-2 is the placer application's number: the filler does not make one up
+    er7 = to_oru(sample_outcomes["01-healthy-adult"], tables, SITE_CONTEXT)
+    parsed = hl7.parse(er7)
+
+    assert ["", ""] == [str(parsed.segment("ORC")[2]), str(parsed.segment("OBR")[2])]
+    _strict(er7, tmp_path / "report.txt")
+
+
+def test_a_lab_not_in_the_table_is_sent_as_the_site(sample_outcomes, tables):
+    """MSH-4 and the filler namespace fall back to emit.sending_facility for an unlisted lab."""
+    # source: HL7 v2.5.1 ch. 2, MSH-4 (HD) and ch. 4, ORC-3 (EI.2 namespace id)
+    context = dataclasses.replace(SITE_CONTEXT, lab_facilities=())
+    parsed = hl7.parse(to_oru(sample_outcomes["01-healthy-adult"], tables, context))
+
+    assert ["FENWICK-PFT", "FENWICK-PFT"] == [str(parsed.segment("MSH")[4]), str(parsed.segment("OBR")[3][0][1])]
+
+
+def test_patient_identifier_type_follows_the_setting(sample_outcomes, tables):
+    """PID-3 CX.5 carries the configured identifier type code."""
+    # source: HL7 v2.5.1 ch. 2, table 0203 (PI patient internal identifier)
+    context = dataclasses.replace(SITE_CONTEXT, patient_identifier_type="PI")
+    parsed = hl7.parse(to_oru(sample_outcomes["01-healthy-adult"], tables, context))
+
+    assert "PI" == str(parsed.segment("PID")[3][0][4])
+
+
+# ---------- blood values are not results of the PFT order (issue 8, item 11) ----------
+
+
+def test_blood_values_are_notes_not_results(sample_outcomes, tables, tmp_path):
+    """Hb and COHb get no OBX of the PFT order; an NTE after the DLCO OBX carries each as supporting data."""
+    # source: HL7 v2.5.1 ch. 7, OBX-11 (table 0085) has no status for supporting data, so no OBX;
+    # ch. 2, NTE carries comments for the segment before it
+    er7 = to_oru(sample_outcomes["04-raised-cohb"], tables, SITE_CONTEXT)
+    parsed = hl7.parse(er7)
+    codes = [parsed.extract_field("OBX", n, 3, 1, 1) for n in range(1, len(parsed.segments("OBX")) + 1)]
+    lines = [line for line in er7.split("\r") if line]
+    dlco_at = next(i for i, line in enumerate(lines) if line.startswith("OBX|") and "|19911-7^" in line)
+    after = []
+    for line in lines[dlco_at + 1 :]:
+        if not line.startswith("NTE|"):
+            break
+        after.append(line)
+
+    assert [] == [code for code in codes if code in ("718-7", "20563-3")]  # source: LOINC 718-7 Hb, 20563-3 COHb
+    assert [True, True] == [any(f"({code})" in n and "not a result of this test" in n for n in after)
+                            for code in ("718-7", "20563-3")]  # fmt: skip
+    _strict(er7, tmp_path / "report.txt")
+
+
+# ---------- control ids across upgrades (issue 8, item 12) ----------
+
+
+def test_control_id_changes_with_the_output_revision(sample_outcomes):
+    """A newer output revision gives a new MSH-10 for the same input; the same revision repeats it."""
+    # source: HL7 v2.5.1 ch. 2, MSH-10 message control id: a receiver may drop a repeated id as a duplicate
+    outcome = sample_outcomes["01-healthy-adult"]
+    context = EmitContext(now=NOW)
+
+    assert control_id(outcome, context, revision=2) == control_id(outcome, context, revision=2)
+    assert control_id(outcome, context, revision=2) != control_id(outcome, context, revision=3)
+    assert control_id(outcome, context) == control_id(outcome, context, revision=OUTPUT_REVISION)
