@@ -170,15 +170,22 @@ def to_ndjson(outcomes: Iterable[Outcome], tables: Tables, context: EmitContext)
     """Resources of many outcomes as NDJSON per resource type, for bulk loads (no transaction).
 
     Each resource gets ``id`` = its deterministic UUID and references ``Type/id`` instead of
-    ``urn:uuid:``; a Patient shared by several outcomes is written once.
+    ``urn:uuid:``; a Patient shared by several outcomes is written once. Without a Patient entry
+    (``patient_reference`` "identifier") the subject is a logical reference by the patient's
+    identifier: a bulk load has no transaction to resolve a conditional reference in.
     """
     lines: dict[str, list[bytes]] = {}
     seen: set[str] = set()
     for outcome in outcomes:
         bundle = to_bundle(outcome, tables, context)
         local = {e["fullUrl"]: f"{e['resource']['resourceType']}/{_uuid_of(e)}" for e in bundle["entry"]}
+        patient = outcome.session.patient
+        logical = _Logical(
+            _Parts.of(outcome, context, None).subject()["reference"],
+            {"type": "Patient", "identifier": {"system": patient.id_system, "value": patient.id}},
+        )
         for entry in bundle["entry"]:
-            resource = _rewrite_references(entry["resource"], local)
+            resource = _rewrite_references(entry["resource"], local, logical)
             kind = resource["resourceType"]
             resource = {"resourceType": kind, "id": _uuid_of(entry), **_without_type(resource)}
             if local[entry["fullUrl"]] in seen:
@@ -413,14 +420,24 @@ def require_aware(moment: datetime) -> None:
         raise ValueError(f"FHIR instants need a time zone offset, got naive {moment.isoformat()}")
 
 
-def _rewrite_references(node: Any, local: Mapping[str, str]) -> Any:
+@dataclass(frozen=True, slots=True)
+class _Logical:
+    """A conditional reference and the logical reference that replaces it outside a transaction."""
+
+    conditional: str
+    reference: Resource
+
+
+def _rewrite_references(node: Any, local: Mapping[str, str], logical: _Logical) -> Any:
     if isinstance(node, dict):
+        if node.get("reference") == logical.conditional:
+            return dict(logical.reference)
         return {
-            key: (local.get(value, value) if key == "reference" else _rewrite_references(value, local))
+            key: (local.get(value, value) if key == "reference" else _rewrite_references(value, local, logical))
             for key, value in node.items()
         }
     if isinstance(node, list):
-        return [_rewrite_references(item, local) for item in node]
+        return [_rewrite_references(item, local, logical) for item in node]
     return node
 
 

@@ -608,3 +608,19 @@ def test_blood_values_are_components_not_observations(fhir_outcomes, fhir_tables
 
 def _entry_url(bundle: dict[str, Any], key: str) -> str:
     return next(e["fullUrl"] for e in bundle["entry"] if e["resource"]["identifier"][0]["value"].endswith(f".{key}"))
+
+
+def test_ndjson_without_patient_entry_refers_by_identifier(fhir_outcomes, fhir_tables):
+    """Bulk NDJSON has no transaction to resolve Patient?identifier=...: the subject is a logical reference."""
+    # source: FHIR R4 http.html#trules (conditional references are resolved only in a transaction);
+    # references.html, Reference.identifier (a logical reference)
+    context = replace(GOLDEN_CONTEXT, patient_reference="identifier")
+    files = to_ndjson([fhir_outcomes["01-healthy-adult"]], fhir_tables, context)
+    subjects = [json.loads(line)["subject"] for line in files["Observation"].splitlines()]
+    expected = {
+        "type": "Patient",
+        "identifier": {"system": "https://fenwick-hollow.example/fictional-patient-id", "value": "FICT-1001"},
+    }
+
+    assert [expected] * len(subjects) == subjects
+    assert "Patient" not in files

@@ -13,6 +13,7 @@ Review the diff of a regeneration like any other change. All data is invented.
 from __future__ import annotations
 
 import dataclasses
+import json
 import os
 import re
 from datetime import UTC, datetime, timedelta, timezone
@@ -33,6 +34,7 @@ from bridge.emit.observations import OUTPUT_REVISION, EmitContext, build_content
 from bridge.emit.outputs import payloads
 from bridge.errors import ConfigError, InvalidField
 from bridge.model import Outcome
+from bridge.pipeline import process
 from bridge.science.units import TRADITIONAL_PER_SI
 from bridge.tables import Tables
 from tests.conftest import GOOD_SAMPLES
@@ -40,6 +42,7 @@ from tests.conftest import GOOD_SAMPLES
 NOW = datetime(2026, 3, 10, 12, 0, 0, tzinfo=UTC)
 GOLDEN_CONTEXT = EmitContext(now=NOW)
 GOLDEN_DIR = Path(__file__).resolve().parent.parent / "golden" / "hl7"
+ROOT = Path(__file__).resolve().parents[2]
 STEMS = [p.stem for p in GOOD_SAMPLES]
 # hl7apy's copy of HL7 table 0396 lacks "UCUM", which OBX-6 uses by convention (DESIGN.md).
 ALLOWED_WARNING = "Warning: Value UCUM not in table HL70396 in element OBX_6.CE_3"
@@ -595,3 +598,17 @@ def test_control_id_changes_with_the_output_revision(sample_outcomes):
     assert control_id(outcome, context, revision=2) == control_id(outcome, context, revision=2)
     assert control_id(outcome, context, revision=2) != control_id(outcome, context, revision=3)
     assert control_id(outcome, context) == control_id(outcome, context, revision=OUTPUT_REVISION)
+
+
+def test_an_exported_placer_order_number_reaches_orc2_and_obr2(tables):
+    """placer_order_number read from a dlco-result/1 export becomes ORC-2 and OBR-2 (EI.1)."""
+    # source: HL7 v2.5.1 ch. 4, ORC-2 placer order number; ch. 7, OBR-2 (the same value as ORC-2)
+    export = json.loads((ROOT / "samples" / "01-healthy-adult.json").read_text(encoding="utf-8"))
+    export["placer_order_number"] = "FH-ORD-2026-0042"
+    outcome = process(json.dumps(export).encode("utf-8"), "placer.json", tables)
+    parsed = hl7.parse(to_oru(outcome, tables, GOLDEN_CONTEXT))
+
+    assert ["FH-ORD-2026-0042", "FH-ORD-2026-0042"] == [
+        parsed.extract_field("ORC", 1, 2, 1, 1),
+        parsed.extract_field("OBR", 1, 2, 1, 1),
+    ]
