@@ -91,7 +91,7 @@ def drop(inbox: Path, name: str, data: bytes) -> Path:
 
 @dataclass(frozen=True)
 class Acked:
-    """One message the receiver answered: MSH-10, patient (PID-3.1), test id (OBR-3), OBX-11s, MSA-1."""
+    """One message the receiver answered: MSH-10, patient (PID-3.1), test id (OBR-3.1), OBX-11s, MSA-1."""
 
     control_id: str
     patient: str
@@ -104,21 +104,21 @@ class Acked:
 class RecordingReceiver(MllpReceiver):
     """The shell tests' receiver, also noting patient, test id and OBX-11 of each answer.
 
-    ``refuse_tests`` maps a test id (OBR-3) to the AE text to answer with.
+    ``refuse_tests`` maps a test id (OBR-3.1) to the AE text to answer with.
     """
 
     acked: list[Acked] = field(default_factory=list)
     refuse_tests: dict[str, str] = field(default_factory=dict)
 
     def reply_to(self, message: Any, control_id: str) -> tuple[str, str, str]:
-        refusal = self.refuse_tests.get(str(message.segment("OBR")(3)))
+        refusal = self.refuse_tests.get(str(message.segment("OBR")(3)(1)(1)))  # EI.1 of the filler order number
         # source: HL7 v2.5.1 ch. 2, MSA-1 acknowledgment codes (AA accept, AE error)
         if refusal is not None:
             return "AE", control_id, refusal
         return self.answer, control_id, self.text
 
     def on_answered(self, message: Any, control_id: str, code: str) -> None:
-        test_id = str(message.segment("OBR")(3))
+        test_id = str(message.segment("OBR")(3)(1)(1))  # source: HL7 v2.5.1 ch. 7, OBR-3 (EI: EI.1 the test id)
         patient = str(message.segment("PID")(3)(1)(1))
         statuses = tuple(str(s(11)) for s in message.segments("OBX"))
         self.acked.append(Acked(control_id, patient, test_id, statuses, code))

@@ -215,16 +215,17 @@ def test_an_input_error_report_says_kind_input(in_process: Callable[..., InProce
     )
 
 
-def with_haemoglobin(**update: object) -> Processor:
-    """The real pipeline, with the outcome's haemoglobin changed after it (what an emitter may refuse)."""
+def with_condition(name: str, **update: object) -> Processor:
+    """The real pipeline, with one of the outcome's conditions changed after it (what an emitter may refuse)."""
 
     def processor(
         data: bytes, source: str, tables: Tables, settings: PipelineSettings, *, now: Any, routes: Any, **_: Any
     ) -> Outcome:
         outcome = process(data, source, tables)  # read, derive and check; emitted below
         conditions = outcome.session.conditions
-        assert conditions.hemoglobin is not None
-        changed = conditions.model_copy(update={"hemoglobin": conditions.hemoglobin.model_copy(update=update)})
+        quantity = getattr(conditions, name)
+        assert quantity is not None
+        changed = conditions.model_copy(update={name: quantity.model_copy(update=update)})
         outcome = outcome.model_copy(update={"session": outcome.session.model_copy(update={"conditions": changed})})
         built = [
             payload
@@ -243,18 +244,19 @@ FHIR_AND_HL7 = (
 
 
 @pytest.mark.parametrize(
-    ("update", "kind", "error"),
+    ("condition", "update", "kind", "error"),
     [
-        ({"value": 1e308}, "input", "InvalidField"),  # the FHIR Bundle builds; HL7 NM refuses the value
-        ({"unit": "g/furlong"}, "internal", "KeyError"),  # no emitter knows the unit
+        # the FHIR Bundle builds; HL7 NM (OBX-5) refuses the value
+        ("barometric_pressure", {"value": 1e308}, "input", "InvalidField"),
+        ("hemoglobin", {"unit": "g/furlong"}, "internal", "KeyError"),  # no emitter knows the unit
     ],
     ids=["hl7-only", "every-destination"],
 )
 def test_a_payload_that_fails_to_build_enqueues_nothing_for_any_destination(
-    in_process: Callable[..., InProcess], update: dict[str, object], kind: str, error: str
+    in_process: Callable[..., InProcess], condition: str, update: dict[str, object], kind: str, error: str
 ) -> None:
     """A payload that cannot be built quarantines the file with no message for any destination; the next goes out."""
-    site = in_process(with_haemoglobin(**update), destinations=FHIR_AND_HL7)
+    site = in_process(with_condition(condition, **update), destinations=FHIR_AND_HL7)
     poison = site.take("poison.json", make_input("BUILD-0001", "FICT-6634"))
     report = site.report("poison.json")
     empty = site.ledger.summary()
