@@ -230,15 +230,21 @@ def test_schema_documents_with_catalogue_units_are_refused_or_emitted_valid(case
 
 
 @pytest.mark.parametrize(
-    "strategy, least_emitted",
-    [(structural_mutations(), 0.03), (targeted_mutations(), 0.2), (schema_documents(catalogue=True), 0.2)],
+    "strategy, least_emitted, examples",
+    # Structural mutations reach the emitters rarely (about 4 %): 300 examples measure that share
+    # steadily; at 100 a change of the format's keys alone moved it across 3 %.
+    [
+        (structural_mutations(), 0.03, 300),
+        (targeted_mutations(), 0.2, 100),
+        (schema_documents(catalogue=True), 0.2, 100),
+    ],
     ids=["structural", "targeted", "schema-catalogue"],
 )
-def test_the_mutations_reach_the_emitters(strategy, least_emitted):
+def test_the_mutations_reach_the_emitters(strategy, least_emitted, examples):
     """A share of the generated inputs gets through to the emitters, and a share is refused (no vacuous fuzzing)."""
     seen: Counter[str] = Counter()
 
-    @settings(max_examples=100, derandomize=True, database=None, deadline=None, phases=[Phase.generate])
+    @settings(max_examples=examples, derandomize=True, database=None, deadline=None, phases=[Phase.generate])
     @given(case=strategy)
     def run(case: Case) -> None:
         try:
