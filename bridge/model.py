@@ -269,7 +269,10 @@ class Derived(Frozen):
     age_years: float
     kco: Quantity | None = None
     dlco_hb_adjusted: Quantity | None = None
+    # Adjusted to sea level (PIO2 150 mmHg) only when that differs from the measured value at
+    # its reported precision; per cent predicted then uses them.
     dlco_pressure_adjusted: Quantity | None = None
+    kco_pressure_adjusted: Quantity | None = None
     dlco_cohb_adjusted: Quantity | None = None
     dlco_from_manoeuvres: Quantity | None = None
     va_from_manoeuvres: Quantity | None = None

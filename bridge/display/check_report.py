@@ -39,6 +39,7 @@ _DERIVED_LABELS = (
     ("dlco_hb_adjusted", "DLCO adjusted to standard Hb"),
     ("dlco_cohb_adjusted", "DLCO adjusted for COHb"),
     ("dlco_pressure_adjusted", "DLCO adjusted to sea level"),
+    ("kco_pressure_adjusted", "KCO adjusted to sea level"),
     ("dlco_from_manoeuvres", "DLCO from manoeuvre gas data"),
     ("va_from_manoeuvres", "VA from manoeuvre gas data"),
     ("dlco_percent_predicted", "DLCO % predicted"),

@@ -146,19 +146,22 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         d.dlco_pressure_adjusted,
         derived_from=("dlco", "barometric_pressure"),
         computed=True,
-        notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), computed by dlco-bridge",),
+        notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), PIO2 = FIO2 x (PB - 47), computed by dlco-bridge",),
     )
     if pred is not None:
         add("dlco_predicted", pred.dlco)
         add("kco_predicted", pred.kco)
         add("va_predicted", pred.va)
+    # Per cent predicted compares the value adjusted to sea level when there is one (S17).
+    sea_level = ("dlco_pressure_adjusted",) if d.dlco_pressure_adjusted is not None else ("dlco",)
     add(
         "dlco_percent_predicted",
         d.dlco_percent_predicted,
-        derived_from=("dlco", "dlco_predicted"),
+        derived_from=(*sea_level, "dlco_predicted"),
         computed=True,
     )
-    add("kco_percent_predicted", d.kco_percent_predicted, derived_from=("kco", "kco_predicted"), computed=True)
+    kco_from = ("kco", "barometric_pressure") if d.kco_pressure_adjusted is not None else ("kco",)
+    add("kco_percent_predicted", d.kco_percent_predicted, derived_from=(*kco_from, "kco_predicted"), computed=True)
     add("va_percent_predicted", d.va_percent_predicted, derived_from=("va", "va_predicted"), computed=True)
     add("tlc", r.tlc)
     add("hemoglobin", c.hemoglobin, path="conditions.hemoglobin")

@@ -13,6 +13,7 @@ from collections.abc import Callable, Iterator
 
 from bridge.model import Derived, Finding, Quantity, Session, Severity
 from bridge.science.derive import age_in_years, gas_conditions, hb_factor
+from bridge.science.physiology import COHB_BASELINE_PERCENT
 from bridge.tables import Tables
 
 # Relative difference tolerated between a reported and a recomputed value (rounding of the
@@ -23,7 +24,6 @@ RESULT_TOLERANCE = 0.10  # reported mean vs mean of the manoeuvres we would repo
 ADJUSTMENT_TOLERANCE = 0.02
 HB_NOTE_THRESHOLD = 0.05  # mention the Hb adjustment when it moves DLCO by more than 5 %  # common practice
 BREATH_HOLD_TARGET_S = (8.0, 12.0)  # source: ATS/ERS 2005 Table 6 (10 +/- 2 s)
-COHB_BASELINE_PERCENT = 2.0  # reference subjects assumed at 2 %  # from memory (2005 form)
 # Unit-mislabel evidence from the lab's own predicted value: a per cent predicted outside the
 # first band that the SI <-> traditional factor would move into the second, narrower band.
 # Measured DLCO rarely lies below 30 % or above 160 % predicted; the narrower band keeps the
@@ -312,8 +312,8 @@ def check_carboxyhaemoglobin(session: Session, derived: Derived, tables: Tables)
         "COHB_RAISED",
         Severity.WARNING,
         "conditions.carboxyhemoglobin",
-        f"COHb {cohb.value:.1f} % lowers measured DLCO (about 1-2 % per 1 % COHb); adjusted for the "
-        f"anaemia effect DLCO would be {derived.dlco_cohb_adjusted.value:.1f} mL/min/mmHg.",
+        f"COHb {cohb.value:.1f} % (baseline {COHB_BASELINE_PERCENT:g} %) lowers measured DLCO; adjusted to the "
+        f"baseline COHb, DLCO would be {derived.dlco_cohb_adjusted.value:.1f} mL/min/mmHg.",
     )
 
 
@@ -333,7 +333,7 @@ def check_pressure(session: Session, derived: Derived, tables: Tables) -> Iterat
             Severity.INFO,
             "conditions.barometric_pressure",
             f"measured at PB {gas.pb_mmhg:.0f} mmHg: DLCO adjusted to sea level (PIO2 150 mmHg) is "
-            f"{adjusted.value:.1f} mL/min/mmHg; compare that with predicted values.",
+            f"{adjusted.value:.1f} mL/min/mmHg; per cent predicted uses it.",
         )
 
 

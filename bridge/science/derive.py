@@ -12,7 +12,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex
+from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex, number_text
 from bridge.science import physiology as phys
 from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
 from bridge.tables import Tables
@@ -57,6 +57,9 @@ def derive(session: Session, tables: Tables) -> Derived:
     age = age_in_years(session)
     gas = gas_conditions(session)
     measured = session.results.dlco
+    pressure = _pressure_factor(session, gas)
+    dlco_at_sea_level = _adjusted(measured, pressure)
+    kco_at_sea_level = _adjusted(session.results.kco, pressure)
     dlco_from: Quantity | None = None
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
@@ -81,7 +84,8 @@ def derive(session: Session, tables: Tables) -> Derived:
         age_years=round(age, 2),
         kco=_kco(session),
         dlco_hb_adjusted=_scaled(measured, hb_factor(session, age)),
-        dlco_pressure_adjusted=_scaled(measured, _pressure_factor(session, gas)),
+        dlco_pressure_adjusted=dlco_at_sea_level,
+        kco_pressure_adjusted=kco_at_sea_level,
         dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
         dlco_from_manoeuvres=dlco_from,
         va_from_manoeuvres=va_from,
@@ -90,8 +94,9 @@ def derive(session: Session, tables: Tables) -> Derived:
         reported_manoeuvres=selection.indices if selection else (),
         repeatable=selection.repeatable if selection else None,
         quality_caution=selection.caution if selection else None,
-        dlco_percent_predicted=_percent(session.results.dlco, _pred(session, "dlco")),
-        kco_percent_predicted=_percent(session.results.kco, _pred(session, "kco")),
+        # S17: the measured value is adjusted to sea level before it is compared with predicted.
+        dlco_percent_predicted=_percent(dlco_at_sea_level or measured, _pred(session, "dlco")),
+        kco_percent_predicted=_percent(kco_at_sea_level or session.results.kco, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
     )
 
@@ -217,6 +222,18 @@ def _cohb_factor(session: Session) -> float | None:
     if cohb is None or not 0 <= cohb.value < phys.COHB_FULL_PERCENT:
         return None
     return phys.cohb_adjustment_factor(cohb.value)
+
+
+def _adjusted(quantity: Quantity | None, factor: float | None) -> Quantity | None:
+    """The pressure-adjusted value; None when it equals the measured one at the reported precision.
+
+    A test near sea level (760.6 mmHg) then gets no second, barely different "adjusted" value.
+    """
+    adjusted = _scaled(quantity, factor)
+    if quantity is None or adjusted is None:
+        return None
+    same = number_text(adjusted.value, quantity.decimals) == quantity.text()
+    return None if same else adjusted
 
 
 def _scaled(quantity: Quantity | None, factor: float | None) -> Quantity | None:

@@ -90,14 +90,40 @@ def test_hb_adjustment_mismatch(tables: Tables):
 
 
 def test_altitude_site_gets_sea_level_equivalent(sample_outcomes):
-    """At 615 mmHg DLCO is reduced to its sea-level equivalent (factor about 0.90)."""
-    # Hand computation  # from memory (equation form): 1 + 0.0031 (0.2093 x (630 - 47) - 150) = 0.9133
-    # at 630 mmHg; at the lower 615 mmHg the factor is lower still
+    """At 615 mmHg DLCO is reduced to its sea-level equivalent (factor about 0.905)."""
+    # source: ERS/ATS 2017 DLCO standard, DLCO x (1 + 0.0031 (PIO2 - 150)), PIO2 = 0.21 (PB - 47)
+    # at 615 mmHg: 1 + 0.0031 x (0.21 x (615 - 47) - 150) = 1 + 0.0031 x (119.28 - 150) = 0.904768
     outcome = sample_outcomes["03-high-altitude"]
 
-    # at 615 mmHg: 1 + 0.0031 x (0.2093 x (615 - 47) - 150) = 1 + 0.0031 x (118.88 - 150) = 0.90354
     assert "PRESSURE_ADJUSTMENT" in _codes(outcome)
-    assert outcome.derived.dlco_pressure_adjusted.value == pytest.approx(36.4 * 0.90354, abs=0.01)
+    assert 36.4 * 0.904768 == pytest.approx(outcome.derived.dlco_pressure_adjusted.value, abs=1e-3)
+
+
+def test_percent_predicted_uses_the_sea_level_value(sample_outcomes):
+    """Sample 03 (615 mmHg): DLCO 99.8 % and KCO 96.9 % predicted from the adjusted values, not 110 % and 107 %."""
+    # source: ERS/ATS 2017 DLCO standard: the measured value is adjusted to sea level before comparison.
+    # Hand computation: factor 0.904768 (above); DLCO 36.4 x 0.904768 = 32.934 -> 32.934 / 33.0 = 99.80 %
+    #   KCO 5.13 x 0.904768 = 4.6415 -> 4.6415 / 4.79 = 96.90 %  (unadjusted: 110.3 % and 107.1 %)
+    derived = sample_outcomes["03-high-altitude"].derived
+
+    assert 99.80 == pytest.approx(derived.dlco_percent_predicted.value, abs=0.01)
+    assert 96.90 == pytest.approx(derived.kco_percent_predicted.value, abs=0.01)
+    assert "4.64" == derived.kco_pressure_adjusted.text()
+
+
+def test_sea_level_test_gets_no_second_dlco(tables: Tables):
+    """At 760.6 mmHg the adjusted DLCO equals the measured 74.1 at its precision: none is derived or emitted."""
+
+    # Hand computation: 0.21 x (760.6 - 47) = 149.856; 1 + 0.0031 x (-0.144) = 0.99955; 74.1 x 0.99955 = 74.07
+    def change(doc):
+        doc["conditions"] = {"barometric_pressure": {"value": 760.6, "unit": "mmHg"}}
+        doc["results"]["dlco"] = {"value": 74.1, "unit": "mL/min/mmHg"}
+        doc["results"].pop("kco", None)
+
+    outcome = _variant("01-healthy-adult", change, tables)
+
+    assert None is outcome.derived.dlco_pressure_adjusted
+    assert None is outcome.derived.kco_pressure_adjusted
 
 
 def test_raised_cohb(sample_outcomes):
@@ -105,8 +131,9 @@ def test_raised_cohb(sample_outcomes):
     outcome = sample_outcomes["04-raised-cohb"]
 
     assert "COHB_RAISED" in _codes(outcome)
-    # from memory: anaemia-effect form 100/(100 - COHb)
-    assert outcome.derived.dlco_cohb_adjusted.value == pytest.approx(6.10 * 2.987 * 100 / 91.5, rel=1e-3)
+    # source: ATS/ERS 2005 DLCO standard, COHb adjustment to a 2 % baseline (from memory):
+    #   6.10 mmol/min/kPa x 2.987 = 18.221 mL/min/mmHg; x 100 / (102 - 8.5) = 19.487
+    assert 19.487 == pytest.approx(outcome.derived.dlco_cohb_adjusted.value, abs=1e-3)
 
 
 def test_child_uses_the_child_constant(sample_outcomes):
