@@ -57,6 +57,7 @@ CONTROL_ID_LENGTH = 20  # MSH-10 length in v2.5.1  # from memory
 ST_LENGTH = 199  # hl7apy base data type ST
 IS_LENGTH = 20  # hl7apy base data type IS (HD namespace ids)
 NM_LENGTH = 16  # hl7apy base data type NM
+PRELIMINARY = "P"  # HL7 tables 0085 (OBX-11) and 0123 (OBR-25): preliminary
 FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
 ELLIPSIS = "..."
 
@@ -83,7 +84,8 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
         msh,
         _pid(outcome.session.patient),
         _orc(outcome),
-        _obr(outcome, tables, now, performed, status),
+        # OBR-25 (HL7 table 0123) P "preliminary" when a value carries an allowed error finding
+        _obr(outcome, tables, now, performed, PRELIMINARY if content.questionable else status),
         *_ntes(content.notes),
         *_observations(content, status, performed),
     ]
@@ -187,7 +189,10 @@ def _obr(outcome: Outcome, tables: Tables, now: str, performed: str, status: str
 
 def _observations(content: ReportContent, status: str, observed: str) -> Iterable[str]:
     for set_id, item in enumerate(content.items, start=1):
-        yield _obx(set_id, item, status, observed)
+        # OBX-11 (HL7 table 0085) P "preliminary results" for a value with an allowed error
+        # finding; the finding itself follows in NTE. Table 0078 (OBX-8) has no code for a
+        # questionable value, so OBX-8 keeps the L/N flag.  # source: HL7 v2.5.1 ch. 7 (from memory)
+        yield _obx(set_id, item, PRELIMINARY if item.questionable else status, observed)
         if item.notes:
             yield from _ntes(item.notes)
 

@@ -10,7 +10,7 @@ list, so the two outputs always carry the same content. Pure.
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Literal
 
@@ -59,6 +59,9 @@ class ResultItem:
     derived_from: tuple[str, ...] = ()
     computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
     notes: tuple[str, ...] = ()
+    # True: an ERROR finding the site allowed through (``allow``) concerns this value or one it
+    # was derived from; the emitters then send it as preliminary, never as final.
+    questionable: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -67,6 +70,11 @@ class ReportContent:
 
     items: tuple[ResultItem, ...]
     notes: tuple[str, ...] = field(default=())
+
+    @property
+    def questionable(self) -> bool:
+        """Whether any item carries an allowed ERROR finding (the report is then not final)."""
+        return any(item.questionable for item in self.items)
 
 
 def _finding_note(finding: Finding) -> str:
@@ -96,6 +104,8 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             by_path.setdefault(finding.path, []).append(_finding_note(finding))
 
     items: list[ResultItem] = []
+    paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
+    replaced: set[str] = set()  # paths of lab values not forwarded: their errors question nothing
     codes = tables.codes.codes
 
     def add(
@@ -107,9 +117,16 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         computed: bool = False,
         path: str = "",
         notes: tuple[str, ...] = (),
+        replaces_lab_value: bool = False,
     ) -> None:
+        """One item; ``replaces_lab_value``: the findings at ``path`` are about the lab's value,
+        which this recomputed value replaces, so they are carried as notes but do not question it."""
         if q is None:
             return
+        if replaces_lab_value:
+            replaced.add(path)
+        elif path:
+            paths[key] = path
         shown = show(q)
         flag: Flag | None = None
         low_shown = None
@@ -134,7 +151,21 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             derived_from=("dlco", "va"),
             computed=True,
         )
-    if r.dlco_hb_adjusted is not None:
+    if d.dlco_hb_adjusted is not None:
+        # The bridge's own Cotes adjustment whenever Hb is known: a lab's value (possibly the
+        # wrong way round) is never forwarded as the Hb-adjusted result; it is named in a note.
+        lab_value = r.dlco_hb_adjusted
+        said = f"; the lab reported {_text(show(lab_value))}" if lab_value is not None else ""
+        add(
+            "dlco_hb_adjusted",
+            d.dlco_hb_adjusted,
+            derived_from=("dlco", "hemoglobin"),
+            computed=True,
+            path="results.dlco_hb_adjusted",
+            notes=(f"Adjusted to standard haemoglobin (Cotes) by {BRIDGE_NAME}{said}.",),
+            replaces_lab_value=True,
+        )
+    else:  # the bridge cannot recompute it (no usable sex): the lab's value, with its findings
         add(
             "dlco_hb_adjusted",
             r.dlco_hb_adjusted,
@@ -169,6 +200,8 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     add("barometric_pressure", c.barometric_pressure)
     present = {item.key for item in items}
     items = [_keep_present_sources(item, present) if item.derived_from else item for item in items]
+    errors = [f for f in outcome.findings if f.severity is Severity.ERROR and f.path not in replaced]
+    items = _questioned(items, paths, errors)
     if by_path:
         carried = {note for item in items for note in item.notes}
         attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
@@ -177,13 +210,49 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     return ReportContent(tuple(items), _report_notes(outcome, attached))
 
 
+def _text(q: Quantity) -> str:
+    return f"{q.text()} {q.unit}"
+
+
+def _questioned(items: list[ResultItem], paths: dict[str, str], errors: list[Finding]) -> list[ResultItem]:
+    """Mark the items an ERROR finding concerns (only allowed ones reach the emitters).
+
+    An item is questioned by an error at its path or at a path above it (``results`` covers
+    ``results.dlco``), and by a questioned item it was derived from. An error that concerns no
+    emitted item (``manoeuvres``, ``patient.sex``) questions the whole report.
+    """
+    if not errors:
+        return items
+
+    def covers(finding: Finding, path: str) -> bool:
+        return path == finding.path or path.startswith(finding.path + ".")
+
+    every = any(not any(covers(f, p) for p in paths.values()) for f in errors)
+    codes: dict[str, tuple[str, ...]] = {}
+    for item in items:
+        path = paths.get(item.key)
+        direct = tuple(f.code for f in errors if every or (path is not None and covers(f, path)))
+        inherited = tuple(code for key in item.derived_from for code in codes.get(key, ()))
+        found = tuple(dict.fromkeys(direct + inherited))
+        if found:
+            codes[item.key] = found
+    marked = []
+    for item in items:
+        found = codes.get(item.key, ())
+        if found:
+            note = f"Not final: sent although the bridge found an error ({', '.join(found)}), as the site allows."
+            item = replace(item, questionable=True, notes=(*item.notes, note))
+        marked.append(item)
+    return marked
+
+
 def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
     if not item.derived_from:
         return item
     kept = tuple(key for key in item.derived_from if key in present)
     if kept == item.derived_from:
         return item
-    return ResultItem(item.key, item.code, item.quantity, item.low, item.flag, kept, item.computed_here, item.notes)
+    return replace(item, derived_from=kept)
 
 
 def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:

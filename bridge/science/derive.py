@@ -15,6 +15,7 @@ from dataclasses import dataclass
 from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex, number_text
 from bridge.science import physiology as phys
 from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
+from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
 DLCO_UNIT = "mL/min/mm[Hg]"
@@ -58,8 +59,8 @@ def derive(session: Session, tables: Tables) -> Derived:
     gas = gas_conditions(session)
     measured = session.results.dlco
     pressure = _pressure_factor(session, gas)
-    dlco_at_sea_level = _adjusted(measured, pressure)
-    kco_at_sea_level = _adjusted(session.results.kco, pressure)
+    dlco_at_sea_level = _adjusted(measured, pressure, tables.units)
+    kco_at_sea_level = _adjusted(session.results.kco, pressure, tables.units)
     dlco_from: Quantity | None = None
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
@@ -224,16 +225,27 @@ def _cohb_factor(session: Session) -> float | None:
     return phys.cohb_adjustment_factor(cohb.value)
 
 
-def _adjusted(quantity: Quantity | None, factor: float | None) -> Quantity | None:
+def _adjusted(quantity: Quantity | None, factor: float | None, catalogue: UnitCatalogue) -> Quantity | None:
     """The pressure-adjusted value; None when it equals the measured one at the reported precision.
 
-    A test near sea level (760.6 mmHg) then gets no second, barely different "adjusted" value.
+    The precision is the lab's: in the unit and with the digits it reported (24.8 mmol/min/kPa
+    at 760.6 mmHg stays 24.8), so a test near sea level gets no second, barely different value.
     """
     adjusted = _scaled(quantity, factor)
     if quantity is None or adjusted is None:
         return None
-    same = number_text(adjusted.value, quantity.decimals) == quantity.text()
+    original = quantity.original
+    source = catalogue.resolve(original.unit) if original is not None else None
+    if original is not None and source is not None and source.dimension == catalogue.units[quantity.unit].dimension:
+        in_lab_unit = catalogue.convert(adjusted.value, quantity.unit, source.code)
+        same = number_text(in_lab_unit, _decimals_in(original.value)) == original.value
+    else:
+        same = number_text(adjusted.value, quantity.decimals) == quantity.text()
     return None if same else adjusted
+
+
+def _decimals_in(text: str) -> int:
+    return len(text.partition(".")[2])
 
 
 def _scaled(quantity: Quantity | None, factor: float | None) -> Quantity | None:

@@ -111,19 +111,14 @@ def test_percent_predicted_uses_the_sea_level_value(sample_outcomes):
     assert "4.64" == derived.kco_pressure_adjusted.text()
 
 
-def test_sea_level_test_gets_no_second_dlco(tables: Tables):
-    """At 760.6 mmHg the adjusted DLCO equals the measured 74.1 at its precision: none is derived or emitted."""
+def test_sea_level_test_gets_no_second_dlco(sample_outcomes):
+    """Sample 07 at 760.6 mmHg: the adjusted DLCO equals the reported 24.8 at its precision, so none is derived."""
+    # source: ERS/ATS 2017 DLCO standard, PIO2 = 0.21 (PB - 47). Hand computation: 101.4 kPa x 7.50062
+    #   = 760.56 mmHg; 0.21 x (760.56 - 47) = 149.848; 1 + 0.0031 x (149.848 - 150) = 0.999529;
+    #   24.8 x 0.999529 = 24.788 -> 24.8, the reported value (today's 0.2093 gave 74.1 -> 73.9 mL/min/mmHg)
+    derived = sample_outcomes["07-unit-mislabel"].derived
 
-    # Hand computation: 0.21 x (760.6 - 47) = 149.856; 1 + 0.0031 x (-0.144) = 0.99955; 74.1 x 0.99955 = 74.07
-    def change(doc):
-        doc["conditions"] = {"barometric_pressure": {"value": 760.6, "unit": "mmHg"}}
-        doc["results"]["dlco"] = {"value": 74.1, "unit": "mL/min/mmHg"}
-        doc["results"].pop("kco", None)
-
-    outcome = _variant("01-healthy-adult", change, tables)
-
-    assert None is outcome.derived.dlco_pressure_adjusted
-    assert None is outcome.derived.kco_pressure_adjusted
+    assert None is derived.dlco_pressure_adjusted
 
 
 def test_raised_cohb(sample_outcomes):
