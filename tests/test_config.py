@@ -61,6 +61,8 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
         ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
         ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
+        ("allow = 3\n", "allow", "a list of finding codes"),
+        ('allow = ["OUT_OF_RANGE"]\nblocking = ["OUT_OF_RANGE"]\n', "allow", "not also blocking"),
     ],
     ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None,
 )
@@ -120,3 +122,14 @@ def test_a_missing_configuration_file_is_one_line(tmp_path, capsys):
 
     assert 1 == code
     assert f"{tmp_path / 'absent.toml'}: (file): a readable configuration file" in capsys.readouterr().err
+
+
+def test_allow_comes_from_file_environment_and_repeated_flags():
+    """allow is a set of codes: a TOML list, a comma-separated variable, or --allow given twice."""
+    from_file = parse_settings('allow = ["UNIT_MISLABEL_PROBABLE"]\n', {})
+    from_env = parse_settings("", {"DLCO_BRIDGE_ALLOW": "A_CODE,B_CODE"})
+    from_flags = parse_settings("", {}, {"allow": ["A_CODE", "B_CODE"]})
+
+    assert frozenset({"UNIT_MISLABEL_PROBABLE"}) == from_file.pipeline.allow
+    assert frozenset({"A_CODE", "B_CODE"}) == from_env.pipeline.allow == from_flags.pipeline.allow
+    assert frozenset() == PipelineSettings().allow  # the default: every ERROR finding refuses a record
