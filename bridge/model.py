@@ -282,6 +282,8 @@ class Derived(Frozen):
     # reported value, whether they agree within the standard's limit, and the caution to show.
     reported_manoeuvres: tuple[int, ...] = ()
     repeatable: bool | None = None  # None: fewer than two manoeuvres to compare
+    # Criteria the session grade does not rest on (no VC: "VI/VC not evaluated: no vital capacity").
+    grade_not_evaluated: tuple[str, ...] = ()
     quality_caution: str | None = None
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None

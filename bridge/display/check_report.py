@@ -94,14 +94,15 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     for name, label in _DERIVED_LABELS:
         lines += _row(label, getattr(d, name), tables, units)
     for m in d.manoeuvres:
-        parts = [f"grade {m.grade}"]
+        parts = [f"grade {m.grade}" + (f" ({'; '.join(m.grade_reasons)})" if m.grade_reasons else "")]
         if m.va is not None:
             parts.append(f"VA {_text(m.va, tables, units)}")
         if m.dlco is not None:
             parts.append(f"DLCO {_text(m.dlco, tables, units)}")
         lines.append(f"    manoeuvre {m.index + 1}: " + ", ".join(parts))
     if d.session_grade is not None:
-        lines.append(f"    session quality grade {d.session_grade}")
+        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated)
+        lines.append(f"    session quality grade {d.session_grade}" + (f" ({basis[2:]})" if basis else ""))
     if d.reported_manoeuvres:
         used = ", ".join(str(i + 1) for i in d.reported_manoeuvres)
         verdict = {True: "repeatable", False: "not repeatable", None: "nothing to compare with"}[d.repeatable]

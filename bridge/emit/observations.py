@@ -260,7 +260,8 @@ def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
     notes: list[str] = []
     d, s = outcome.derived, outcome.session
     if d.session_grade is not None:
-        notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres).")
+        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated)
+        notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres{basis}).")
     if d.quality_caution is not None:
         notes.append(f"Interpret with caution: {d.quality_caution}.")
     pred = s.results.predicted

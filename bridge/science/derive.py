@@ -65,6 +65,7 @@ def derive(session: Session, tables: Tables) -> Derived:
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
     selection: Selection | None = None
+    not_evaluated: tuple[str, ...] = ()
     if session.manoeuvres:  # without manoeuvres: no grades, nothing selected, no means
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
         grades = _grades(session, computed, tables)
@@ -79,6 +80,7 @@ def derive(session: Session, tables: Tables) -> Derived:
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
         selection = _selection(computed, grades, tables)
+        not_evaluated = _not_evaluated(grades, selection.indices)
         dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
         va_from = _mean_of(computed, selection.indices, 0, "L")
     return Derived(
@@ -93,6 +95,7 @@ def derive(session: Session, tables: Tables) -> Derived:
         manoeuvres=assessments,
         session_grade=selection.session_grade if selection else None,
         reported_manoeuvres=selection.indices if selection else (),
+        grade_not_evaluated=not_evaluated,
         repeatable=selection.repeatable if selection else None,
         quality_caution=selection.caution if selection else None,
         # S17: the measured value is adjusted to sea level before it is compared with predicted.
@@ -156,8 +159,9 @@ def _grades(
     if not session.manoeuvres:
         return ()
     capacities = [m.vital_capacity.value for m in session.manoeuvres if m.vital_capacity]
-    # Without a measured VC the largest inspired volume stands in for it.  # common practice
-    largest_vc = max(capacities or [m.inspired_volume.value for m in session.manoeuvres])
+    # Without a measured VC, VI/VC is not evaluated (an inspired volume standing in for the VC
+    # would make VI/VC 100 % by construction).
+    largest_vc = max(capacities) if capacities else None
     facts = [
         ManoeuvreFacts(
             inspired_volume_l=m.inspired_volume.value,
@@ -168,6 +172,11 @@ def _grades(
         for m, (va, _) in zip(session.manoeuvres, computed, strict=True)
     ]
     return grade_manoeuvres(facts, largest_vc, tables.grades)
+
+
+def _not_evaluated(grades: Sequence[Grade], indices: Sequence[int]) -> tuple[str, ...]:
+    """The criteria the session grade does not rest on: the caveats of the manoeuvres it uses."""
+    return tuple(dict.fromkeys(c for i in indices for c in grades[i].not_evaluated))
 
 
 def _selection(

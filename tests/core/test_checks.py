@@ -206,3 +206,36 @@ def test_not_repeatable_is_the_decision_derive_made(sample_outcomes, tables: Tab
     # 2 mL/min/mmHg; secondary rendering, see mappings/quality_grades.toml)
     for outcome in sample_outcomes.values():
         assert (outcome.derived.repeatable is False) == ("NOT_REPEATABLE" in _codes(outcome))
+
+
+def test_three_grade_a_manoeuvres_with_a_repeatable_pair_are_not_flagged(tables: Tables):
+    """Grade-A manoeuvres at 28.49, 29.89 and 32.82: the first two agree, so no NOT_REPEATABLE warning."""
+    # source: ERS/ATS 2017 DLCO standard: two acceptable manoeuvres within 2 mL/min/mmHg (secondary
+    #   rendering, mappings/quality_grades.toml); hand check: 29.89 - 28.49 = 1.40 <= 2, 32.82 - 28.49 = 4.33
+    import math
+
+    targets = (28.49, 29.89, 32.82)
+
+    def three_grade_a(doc):
+        third = doc["manoeuvres"][2]
+        third["inspired_volume"]["value"] = 4.6  # VI/VC 96 % and breath-hold 10 s: grade A
+        third["breath_hold_time"]["value"] = 10.0
+        for m in doc["manoeuvres"]:
+            m.pop("reported", None)
+
+    first = _variant("06-three-manoeuvres", three_grade_a, tables)
+
+    def at_targets(doc):
+        three_grade_a(doc)
+        # DLCO is proportional to ln(FA,CO,0 / FA,CO) (single-breath equation): scale each logarithm
+        for m, a, target in zip(doc["manoeuvres"], first.derived.manoeuvres, targets, strict=True):
+            fa_co0 = m["inspired_co_fraction"] * m["alveolar_tracer_fraction"] / m["inspired_tracer_fraction"]
+            log_ratio = math.log(fa_co0 / m["alveolar_co_fraction"])
+            m["alveolar_co_fraction"] = fa_co0 * math.exp(-log_ratio * target / a.dlco.value)
+
+    outcome = _variant("06-three-manoeuvres", at_targets, tables)
+
+    assert [28.49, 29.89, 32.82] == [round(a.dlco.value, 2) for a in outcome.derived.manoeuvres]
+    assert ["A", "A", "A"] == [a.grade for a in outcome.derived.manoeuvres]
+    assert (0, 1) == outcome.derived.reported_manoeuvres
+    assert "NOT_REPEATABLE" not in _codes(outcome)
