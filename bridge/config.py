@@ -26,6 +26,7 @@ from typing import Any, Literal
 from urllib.parse import urlsplit
 
 from bridge.emit.hl7v2 import IS_LENGTH
+from bridge.emit.observations import HEMOGLOBIN_UNITS
 from bridge.emit.settings import EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
@@ -253,6 +254,8 @@ class _Reader:
         for key in ("identifier_system", "local_code_system"):
             if key in values:
                 self.uri(f"emit.{key}", values[key])
+        if "hemoglobin_unit" in values:
+            self.choice("emit.hemoglobin_unit", values["hemoglobin_unit"], HEMOGLOBIN_UNITS)
         return EmitSettings(**values)  # type: ignore[arg-type]
 
     def wants_service(self) -> bool:

@@ -12,6 +12,7 @@ annotation; ``bridge.science.normalise`` reads these to convert every quantity t
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from enum import StrEnum
@@ -244,13 +245,24 @@ class Finding(Frozen):
     """A data-quality or consistency observation: collected, never raised.
 
     ``code`` is stable (documented in docs/findings.md), ``path`` points into the record,
-    ``message`` is a sentence a person can act on.
+    ``message`` is a sentence a person can act on, with its numbers in the canonical units.
+    A finding whose sentence carries quantities also keeps them (``values``) and the sentence
+    with a ``{name}`` place for each (``template``), so that :meth:`text` can say it in the
+    units of whoever reads it (an SI destination gets SI numbers).
     """
 
     code: str
     severity: Severity
     path: str
     message: str
+    template: str | None = None
+    values: dict[str, Quantity] = Field(default_factory=dict)
+
+    def text(self, show: Callable[[Quantity], str] | None = None) -> str:
+        """The message with each quantity written by ``show`` (value and unit); ``message`` without it."""
+        if self.template is None or show is None:
+            return self.message
+        return self.template.format_map({name: show(q) for name, q in self.values.items()})
 
 
 class ManoeuvreAssessment(Frozen):

@@ -62,6 +62,7 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
         ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
         ("allow = 3\n", "allow", "a list of finding codes"),
+        ('[emit]\nhemoglobin_unit = "mmol/L"\n', "emit.hemoglobin_unit", "one of g/L, g/dL"),
         ('allow = ["OUT_OF_RANGE"]\nblocking = ["OUT_OF_RANGE"]\n', "allow", "not also blocking"),
     ],
     ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None,

@@ -10,7 +10,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from bridge.model import Outcome, Quantity, Severity
+from bridge.model import Finding, Outcome, Quantity, Severity
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
@@ -63,6 +63,16 @@ def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
     return text
 
 
+def finding_text(finding: Finding, tables: Tables, units: UnitSystem) -> str:
+    """A finding's message with its quantities in ``units``."""
+
+    def say(quantity: Quantity) -> str:
+        q = shown(quantity, tables, units)
+        return f"{q.text()} {q.unit}"
+
+    return finding.text(say)
+
+
 def _row(label: str, quantity: Quantity | None, tables: Tables, units: UnitSystem) -> list[str]:
     return [] if quantity is None else [f"    {label:<32}{_text(quantity, tables, units)}"]
 
@@ -112,7 +122,7 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     lines.append(f"  findings ({len(outcome.findings)})")
     for f in outcome.findings:
         lines.append(f"    {f.severity.value.upper():<8}{f.code}  {f.path}")
-        lines.append(f"            {f.message}")
+        lines.append(f"            {finding_text(f, tables, units)}")
     if not outcome.findings:
         lines.append("    none")
     return "\n".join(lines)
@@ -142,7 +152,10 @@ def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem) -> dict[st
         "units": units,
         "session": convert(session),
         "derived": convert(derived),
-        "findings": [f.model_dump(mode="json") for f in outcome.findings],
+        "findings": [
+            {"code": f.code, "severity": f.severity.value, "path": f.path, "message": finding_text(f, tables, units)}
+            for f in outcome.findings
+        ],
         "worst": _worst(outcome),
     }
 

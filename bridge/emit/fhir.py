@@ -74,7 +74,7 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
     """
     require_aware(context.now)
     if content is None:
-        content = build_content(outcome, tables, context.units)
+        content = build_content(outcome, tables, context.units, context.hemoglobin_unit)
     entries: list[Resource] = []
     patient = outcome.session.patient
     patient_url = None

@@ -76,7 +76,7 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     is already at hand (another emitter built it), otherwise it is built here.
     """
     if content is None:
-        content = build_content(outcome, tables, context.units)
+        content = build_content(outcome, tables, context.units, context.hemoglobin_unit)
     status = "C" if context.correction else "F"
     msh, now = _msh(outcome, context)
     performed = hl7_timestamp(outcome.session.performed_at)

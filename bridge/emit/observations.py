@@ -10,6 +10,7 @@ list, so the two outputs always carry the same content. Pure.
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from datetime import datetime
 from typing import Literal
@@ -42,9 +43,11 @@ class EmitContext:
     patient_reference: PatientReference = "identifier"
     correction: bool = False  # new content for a test id that was already sent
     processing_id: str = "P"  # HL7 MSH-11: P production, T training, D debugging
+    hemoglobin_unit: str | None = None  # g/L or g/dL; None: the unit system's display unit
 
 
 Flag = Literal["L", "H", "N"]
+HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
 
 
 @dataclass(frozen=True, slots=True)
@@ -77,18 +80,25 @@ class ReportContent:
         return any(item.questionable for item in self.items)
 
 
-def _finding_note(finding: Finding) -> str:
-    return f"{finding.severity.value.upper()} {finding.code} ({finding.path}): {finding.message}"
+def _finding_note(finding: Finding, say: Callable[[Quantity], str]) -> str:
+    """A finding as a note, its quantities in the destination's units."""
+    return f"{finding.severity.value.upper()} {finding.code} ({finding.path}): {finding.text(say)}"
 
 
-def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> ReportContent:
-    """The items and notes to emit for one outcome, in ``units``."""
+def build_content(
+    outcome: Outcome, tables: Tables, units: UnitSystem, hemoglobin_unit: str | None = None
+) -> ReportContent:
+    """The items and notes to emit for one outcome, in ``units`` (haemoglobin in ``hemoglobin_unit`` if set)."""
     s, d = outcome.session, outcome.derived
     r, c = s.results, s.conditions
     pred = r.predicted
     lln = pred.lower_limits if pred is not None else None
     cat = tables.units
     targets: dict[str, str] = {}  # unit -> the unit it is shown in, looked up once per call
+    if hemoglobin_unit is not None:
+        for code, unit in cat.units.items():
+            if unit.dimension == "mass_concentration":
+                targets[code] = hemoglobin_unit
 
     def show(q: Quantity) -> Quantity:
         target = targets.get(q.unit)
@@ -98,10 +108,13 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             return q  # what express() returns for the same unit
         return express(q, target, cat)
 
+    def say(q: Quantity) -> str:
+        return _text(show(q))
+
     by_path: dict[str, list[str]] = {}
     for finding in outcome.findings:
         if finding.severity is not Severity.INFO:
-            by_path.setdefault(finding.path, []).append(_finding_note(finding))
+            by_path.setdefault(finding.path, []).append(_finding_note(finding, say))
 
     items: list[ResultItem] = []
     paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
@@ -207,7 +220,7 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
     else:
         attached = set()  # no finding to attach: nothing to collect
-    return ReportContent(tuple(items), _report_notes(outcome, attached))
+    return ReportContent(tuple(items), _report_notes(outcome, attached, say))
 
 
 def _text(q: Quantity) -> str:
@@ -255,7 +268,7 @@ def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
     return replace(item, derived_from=kept)
 
 
-def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
+def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity], str]) -> tuple[str, ...]:
     """Report-level notes: quality grade, reference set, and the findings no item carries."""
     notes: list[str] = []
     d, s = outcome.derived, outcome.session
@@ -267,7 +280,7 @@ def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
     pred = s.results.predicted
     if pred is not None and pred.reference_set:
         notes.append(f"Reference values: {pred.reference_set}.")
-    notes.extend(_finding_note(f) for f in outcome.findings if f.path not in attached)
+    notes.extend(_finding_note(f, say) for f in outcome.findings if f.path not in attached)
     return tuple(notes)
 
 

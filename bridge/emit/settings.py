@@ -25,6 +25,9 @@ class EmitSettings:
     local_code_system: str | None = None  # FHIR URI for local codes; None: the one in codes.toml
     patient_reference: PatientReference = "identifier"
     processing_id: str = "P"  # HL7 MSH-11 (table 0103): P production, T training, D debugging
+    # Haemoglobin is sent (and named in notes) in this unit, g/L or g/dL (HEMOGLOBIN_UNITS);
+    # None: the unit system's display unit in mappings/units.toml.
+    hemoglobin_unit: str | None = None
 
     def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
         """The emitters' context for one message: these settings plus the time the shell read."""
@@ -40,4 +43,5 @@ class EmitSettings:
             patient_reference=self.patient_reference,
             correction=correction,
             processing_id=self.processing_id,
+            hemoglobin_unit=self.hemoglobin_unit,
         )

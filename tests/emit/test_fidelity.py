@@ -14,6 +14,8 @@ from typing import Any
 import hl7
 import pytest
 
+from bridge.display.check_report import outcome_json, outcome_text
+from bridge.emit.settings import EmitSettings
 from bridge.errors import BlockedByFinding
 from bridge.pipeline import PipelineSettings, Route, process
 from bridge.tables import Tables
@@ -120,3 +122,43 @@ def test_si_dlco_keeps_its_resolution_in_traditional_outputs(tables: Tables):
 
     assert 18.2 == _observation(bundle, "19911-7")["valueQuantity"]["value"]
     assert "18.2" == str(_obx_and_ntes(message, "19911-7")[0][5])
+
+
+SI = (Route("fhir", "si"), Route("hl7", "si"))
+
+
+def test_si_destination_gets_its_finding_notes_in_si(tables: Tables):
+    """Sample 04 to an SI destination: the COHb note names the adjusted DLCO in mmol/min/kPa, in FHIR and in NTE."""
+    # source: ATS/ERS 2005 DLCO standard, COHb adjustment to a 2 % baseline (from memory); hand computation:
+    #   6.1 mmol/min/kPa x 100 / (102 - 8.5) = 6.524 -> 6.52 mmol/min/kPa (not 19.5 mL/min/mmHg)
+    bundle, message = _outputs("04-raised-cohb.json", tables, PipelineSettings(), SI)
+    cohb_notes = [n["text"] for n in _observation(bundle, "20563-3").get("note", [])]  # LOINC 20563-3 COHb
+    _, ntes = _obx_and_ntes(message, "20563-3")
+
+    assert any("6.52 mmol/min/kPa" in text for text in cohb_notes)
+    assert any("6.52 mmol/min/kPa" in text for text in ntes)
+    assert not any("mm[Hg]" in text or "mmHg" in text for text in cohb_notes + ntes)
+
+
+@pytest.mark.parametrize(("unit", "expected"), [("g/L", 152), ("g/dL", 15.2)])
+def test_haemoglobin_goes_out_in_the_unit_the_site_chose(tables: Tables, unit: str, expected: float):
+    """Hb 152 g/L is sent as 152 g/L or 15.2 g/dL, as [emit] hemoglobin_unit says, in both outputs."""
+    # source: 1 g/dL = 10 g/L (SI prefixes); LOINC 718-7 haemoglobin mass/volume; UCUM g/L, g/dL
+    settings = PipelineSettings(emit=EmitSettings(hemoglobin_unit=unit))
+    bundle, message = _outputs("04-raised-cohb.json", tables, settings, SI)
+    hb = _observation(bundle, "718-7")["valueQuantity"]
+    obx, _ = _obx_and_ntes(message, "718-7")
+
+    assert (expected, unit) == (hb["value"], hb["code"])
+    assert (str(expected), unit) == (str(obx[5]), str(obx[6][0][0]))
+
+
+def test_check_shows_findings_in_the_chosen_units(tables: Tables):
+    """check --units si says the COHb-adjusted DLCO of sample 04 in mmol/min/kPa, in text and JSON."""
+    # hand computation as above: 6.1 x 100 / 93.5 = 6.52 mmol/min/kPa
+    outcome = process((SAMPLES / "04-raised-cohb.json").read_bytes(), "04-raised-cohb.json", tables)
+    text = outcome_text(outcome, tables, "si")
+    cohb = next(f for f in outcome_json(outcome, tables, "si")["findings"] if f["code"] == "COHB_RAISED")
+
+    assert "6.52 mmol/min/kPa" in text
+    assert "6.52 mmol/min/kPa" in cohb["message"]
