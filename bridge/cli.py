@@ -75,9 +75,18 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
     if not emits:
         return
     parser.add_argument(
+        "--allow",
+        action="append",
+        metavar="CODE",
+        help="an ERROR finding code to write anyway, the value marked preliminary with the finding; "
+        "repeat or separate with commas (key allow; default "
+        f"{','.join(sorted(DEFAULTS.pipeline.allow)) or 'none'}: "
+        "every ERROR finding keeps a record from being written)",
+    )
+    parser.add_argument(
         "--blocking",
-        help="finding codes that keep a record from being written, comma-separated "
-        f"(key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking))})",
+        help="codes of lesser (warning, info) findings that also keep a record from being written, "
+        f"comma-separated (key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'})",
     )
     parser.add_argument(
         "--validate",
@@ -109,7 +118,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
 
 # Flags that are settings; everything else on the command line is an argument of the command.
 _SETTING_FLAGS = (
-    "units", "max_input_bytes", "traditional_per_si", "blocking", "validate", "to",
+    "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to",
     "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
     "emit.receiving_facility", "emit.patient_reference",
 )  # fmt: skip

@@ -26,6 +26,7 @@ from typing import Any, Literal
 from urllib.parse import urlsplit
 
 from bridge.emit.hl7v2 import IS_LENGTH
+from bridge.emit.observations import HEMOGLOBIN_UNITS
 from bridge.emit.settings import EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
@@ -127,7 +128,7 @@ def config_path(flag: Path | None, environ: Mapping[str, str]) -> Path | None:
 
 
 _SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
-_PIPELINE_KEYS = {"max_input_bytes", "blocking", "validate"}
+_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate"}
 _GENERAL_KEYS = {"units", "traditional_per_si", "to"}
 _TOP_LEVEL = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
 _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
@@ -228,9 +229,15 @@ class _Reader:
         validate = self.flag("validate", d.get("validate", defaults.validate_outputs))
         if validate and importlib.util.find_spec("fhir.resources") is None:
             raise self.fail("validate", "the optional extra installed first: pip install 'dlco-bridge[validate]'")
+        blocking = frozenset(self.words("blocking", d.get("blocking", sorted(defaults.blocking))))
+        allow = frozenset(self.words("allow", d.get("allow", sorted(defaults.allow))))
+        both = sorted(blocking & allow)
+        if both:
+            raise self.fail("allow", f"codes that are not also blocking, got {both[0]} in both")
         return PipelineSettings(
             max_input_bytes=int(self.number("max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1)),
-            blocking=frozenset(self.words("blocking", d.get("blocking", sorted(defaults.blocking)))),
+            blocking=blocking,
+            allow=allow,
             validate_outputs=validate,
             emit=self.emit(d.get("emit", {})),
         )
@@ -262,6 +269,8 @@ class _Reader:
         for key in ("identifier_system", "local_code_system"):
             if key in values:
                 self.uri(f"emit.{key}", values[key])
+        if "hemoglobin_unit" in values:
+            self.choice("emit.hemoglobin_unit", values["hemoglobin_unit"], HEMOGLOBIN_UNITS)
         return EmitSettings(**values, lab_facilities=facilities)  # type: ignore[arg-type]
 
     def facilities(self, key: str, value: Any) -> tuple[tuple[str, str], ...]:
@@ -397,7 +406,7 @@ class _Reader:
         if isinstance(value, str):
             return tuple(w.strip() for w in value.split(",") if w.strip())
         if isinstance(value, list | tuple) and all(isinstance(w, str) for w in value):
-            return tuple(value)
+            return tuple(w for item in value for w in self.words(key, item))  # a repeated flag: a list
         raise self.fail(key, "a list of finding codes")
 
     def kinds(self, key: str, value: Any) -> tuple[OutputKind, ...]:

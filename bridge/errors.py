@@ -9,7 +9,7 @@ Each branch maps to exactly one action in the shell::
     │   ├── MissingField      a required field is absent
     │   ├── InvalidField      a field is present but has the wrong type or value
     │   ├── UnitError         a unit that is unknown or of the wrong dimension
-    │   ├── BlockedByFinding  a finding configured as blocking stops emission
+    │   ├── BlockedByFinding  an ERROR finding not allowed (or one configured as blocking) stops emission
     │   ├── OutputInvalid     what was built for it fails independent validation
     │   └── ProcessingFailed  the bridge itself failed on it (a defect to report)
     ├── MappingError          a field map or code table is broken: fatal at start-up
@@ -86,7 +86,7 @@ class UnitError(InputError):
 
 
 class BlockedByFinding(InputError):
-    """A finding that local configuration marks as blocking; nothing is emitted."""
+    """An ERROR finding the site did not allow, or one it marks as blocking; nothing is emitted."""
 
 
 class OutputInvalid(InputError):

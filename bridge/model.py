@@ -12,6 +12,7 @@ annotation; ``bridge.science.normalise`` reads these to convert every quantity t
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from enum import StrEnum
@@ -245,13 +246,24 @@ class Finding(Frozen):
     """A data-quality or consistency observation: collected, never raised.
 
     ``code`` is stable (documented in docs/findings.md), ``path`` points into the record,
-    ``message`` is a sentence a person can act on.
+    ``message`` is a sentence a person can act on, with its numbers in the canonical units.
+    A finding whose sentence carries quantities also keeps them (``values``) and the sentence
+    with a ``{name}`` place for each (``template``), so that :meth:`text` can say it in the
+    units of whoever reads it (an SI destination gets SI numbers).
     """
 
     code: str
     severity: Severity
     path: str
     message: str
+    template: str | None = None
+    values: dict[str, Quantity] = Field(default_factory=dict)
+
+    def text(self, show: Callable[[Quantity], str] | None = None) -> str:
+        """The message with each quantity written by ``show`` (value and unit); ``message`` without it."""
+        if self.template is None or show is None:
+            return self.message
+        return self.template.format_map({name: show(q) for name, q in self.values.items()})
 
 
 class ManoeuvreAssessment(Frozen):
@@ -270,7 +282,10 @@ class Derived(Frozen):
     age_years: float
     kco: Quantity | None = None
     dlco_hb_adjusted: Quantity | None = None
+    # Adjusted to sea level (PIO2 150 mmHg) only when that differs from the measured value at
+    # its reported precision; per cent predicted then uses them.
     dlco_pressure_adjusted: Quantity | None = None
+    kco_pressure_adjusted: Quantity | None = None
     dlco_cohb_adjusted: Quantity | None = None
     dlco_from_manoeuvres: Quantity | None = None
     va_from_manoeuvres: Quantity | None = None
@@ -280,6 +295,8 @@ class Derived(Frozen):
     # reported value, whether they agree within the standard's limit, and the caution to show.
     reported_manoeuvres: tuple[int, ...] = ()
     repeatable: bool | None = None  # None: fewer than two manoeuvres to compare
+    # Criteria the session grade does not rest on (no VC: "VI/VC not evaluated: no vital capacity").
+    grade_not_evaluated: tuple[str, ...] = ()
     quality_caution: str | None = None
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None

@@ -27,7 +27,6 @@ from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
-DEFAULT_BLOCKING = ("UNIT_MISLABEL_PROBABLE",)  # findings that keep a record from being emitted
 
 
 @dataclass(frozen=True, slots=True)
@@ -43,7 +42,11 @@ class PipelineSettings:
     """What the pipeline needs of the settings (built by ``bridge.config``; defaults written here once)."""
 
     max_input_bytes: int = DEFAULT_MAX_INPUT_BYTES
-    blocking: frozenset[str] = frozenset(DEFAULT_BLOCKING)
+    # Every ERROR finding keeps a record from being emitted unless its code is in ``allow``
+    # (then the value goes out marked preliminary, with the finding); ``blocking`` adds codes
+    # of lesser findings that should stop a record too.
+    allow: frozenset[str] = frozenset()
+    blocking: frozenset[str] = frozenset()
     validate_outputs: bool = False  # check each payload with independent libraries (slow)
     emit: EmitSettings = field(default_factory=EmitSettings)
 
@@ -70,7 +73,7 @@ def process(
     ``routes`` empty: nothing is emitted and no gate applies (``check``). Otherwise ``now`` is
     the send time the shell read, and ``is_correction(test_id, sha256)`` says whether this
     content replaces a result already sent. Raises :class:`InputError` when the input cannot
-    be read, a blocking finding refuses it, or (with ``validate_outputs``) an independent
+    be read, an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``) an independent
     validator finds a payload invalid.
     """
     if len(data) > settings.max_input_bytes:
@@ -92,7 +95,7 @@ def process(
         return outcome
     if now is None:
         raise ValueError("emitting needs the send time (now)")
-    refuse_blocked(outcome, settings.blocking)
+    refuse_blocked(outcome, settings.blocking, settings.allow)
     correction = is_correction(session.test_id, sha256)
     built: list[Payload] = []
     for route in dict.fromkeys(routes):  # each route once, in the order asked

@@ -14,16 +14,16 @@ SAMPLES = ROOT / "samples"
 
 
 def test_convert_writes_both_outputs_and_reports_the_bad_file(tmp_path, capsys):
-    """Good samples give <test_id>.bundle.json and .oru.hl7; the mislabelled and the malformed one are refused."""
+    """Good samples give .bundle.json and .oru.hl7; those with an ERROR finding and the malformed one are refused."""
     code = main(["convert", str(SAMPLES), "--to", "fhir,hl7", "--out", str(tmp_path)])
     _, err = capsys.readouterr()
 
     assert 2 == code
     refused = [Path(line.split(":")[0]).name for line in err.strip().splitlines()]
-    assert ["07-unit-mislabel.json", "08-malformed.json"] == refused
+    assert ["07-unit-mislabel.json", "08-malformed.json", "09-legacy-hb-wrong-direction.json"] == refused
     bundles = sorted(p.name for p in tmp_path.glob("*.bundle.json"))
     messages = sorted(p.name for p in tmp_path.glob("*.oru.hl7"))
-    assert 7 == len(bundles) == len(messages)
+    assert 6 == len(bundles) == len(messages)
     assert "LOW-2026-0001.bundle.json" in bundles
     assert [] == [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary files left
 
@@ -39,24 +39,52 @@ def test_converted_oru_is_cr_separated_and_parses(tmp_path):
     assert "ORU^R01^ORU_R01" == str(message.segment("MSH")[9])
 
 
-def test_blocking_finding_refuses_the_file(tmp_path, capsys):
-    """By default (as in the service) the mislabelled session is refused and nothing is written."""
+def test_error_finding_refuses_the_file(tmp_path, capsys):
+    """By default (as in the service) a session with an ERROR finding is refused and nothing is written."""
     code = main(["convert", str(SAMPLES / "07-unit-mislabel.json"), "--out", str(tmp_path)])
     _, err = capsys.readouterr()
 
     assert 2 == code
-    assert "UNIT_MISLABEL_PROBABLE is configured as blocking" in err
+    assert "UNIT_MISLABEL_PROBABLE is an error finding" in err
+    assert "--allow UNIT_MISLABEL_PROBABLE" in err
     assert [] == list(tmp_path.iterdir())
 
 
-def test_an_empty_blocking_list_lets_the_flagged_file_through(tmp_path, capsys):
-    """--blocking '' overrides the default: the mislabelled session is written, its finding in the summary."""
+def test_an_empty_blocking_list_does_not_let_an_error_through(tmp_path, capsys):
+    """--blocking '' only clears the extra codes: an ERROR finding still refuses the file."""
     code = main(["convert", str(SAMPLES / "07-unit-mislabel.json"), "--out", str(tmp_path), "--blocking", ""])
+
+    assert 2 == code
+    assert [] == list(tmp_path.iterdir())
+
+
+def test_allowed_error_is_written_as_preliminary_with_its_finding(tmp_path, capsys):
+    """--allow CODE writes the session; the questioned DLCO is preliminary in FHIR and P in OBX-11, with an NTE."""
+    code = main(
+        ["convert", str(SAMPLES / "07-unit-mislabel.json"), "--out", str(tmp_path), "--allow", "UNIT_MISLABEL_PROBABLE"]
+    )
     out = capsys.readouterr().out
+    bundle = json.loads(next(tmp_path.glob("*.bundle.json")).read_text())
+    message = hl7.parse(next(tmp_path.glob("*.oru.hl7")).read_bytes().decode("utf-8"))
+    dlco = next(
+        e["resource"]
+        for e in bundle["entry"]
+        if e["resource"]["resourceType"] == "Observation" and e["resource"]["code"]["coding"][0]["code"] == "19911-7"
+    )
+    segments = [str(s[0]) for s in message]
+    obx_dlco = next(s for s in message if str(s[0]) == "OBX" and str(s[3]).startswith("19911-7^"))
+    following = segments[segments.index("OBX") :]
 
     assert 0 == code
     assert "UNIT_MISLABEL_PROBABLE" in out
-    assert 2 == len(list(tmp_path.iterdir()))
+    # source: FHIR R4 Observation.status (ValueSet observation-status): preliminary, not final
+    assert "preliminary" == dlco["status"]
+    assert any("UNIT_MISLABEL_PROBABLE" in n["text"] for n in dlco["note"])
+    # source: HL7 v2.5.1 ch. 7, OBX-11 observation result status, table 0085: P = preliminary results
+    assert "P" == str(obx_dlco[11])
+    # source: HL7 v2.5.1 ch. 7, OBR-25 result status, table 0123: P = preliminary
+    assert "P" == str(message.segment("OBR")[25])
+    assert "NTE" in following
 
 
 def test_units_do_not_change_codes(tmp_path):
@@ -91,12 +119,12 @@ def test_units_do_not_change_codes(tmp_path):
 
 
 def test_demo_runs_end_to_end(capsys):
-    """The demo converts the scenario, refuses the malformed and the mislabelled file, exits 0."""
+    """The demo converts the scenario, refuses the malformed file and those with an ERROR finding, exits 0."""
     code = main(["demo"])
     out = capsys.readouterr().out
 
     assert 0 == code
-    assert "7 sessions converted, 2 refused" in out
+    assert "6 sessions converted, 3 refused" in out
     assert "HB_ADJUSTMENT_WRONG_DIRECTION" in out
     assert "not a medical device" in out
 

@@ -68,6 +68,9 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
         ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
         ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
+        ("allow = 3\n", "allow", "a list of finding codes"),
+        ('[emit]\nhemoglobin_unit = "mmol/L"\n', "emit.hemoglobin_unit", "one of g/L, g/dL"),
+        ('allow = ["OUT_OF_RANGE"]\nblocking = ["OUT_OF_RANGE"]\n', "allow", "not also blocking"),
     ],
     ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None,
 )
@@ -141,3 +144,12 @@ def test_lab_facilities_come_from_a_table_or_the_environment():
         from_file,
         from_env,
     )
+def test_allow_comes_from_file_environment_and_repeated_flags():
+    """allow is a set of codes: a TOML list, a comma-separated variable, or --allow given twice."""
+    from_file = parse_settings('allow = ["UNIT_MISLABEL_PROBABLE"]\n', {})
+    from_env = parse_settings("", {"DLCO_BRIDGE_ALLOW": "A_CODE,B_CODE"})
+    from_flags = parse_settings("", {}, {"allow": ["A_CODE", "B_CODE"]})
+
+    assert frozenset({"UNIT_MISLABEL_PROBABLE"}) == from_file.pipeline.allow
+    assert frozenset({"A_CODE", "B_CODE"}) == from_env.pipeline.allow == from_flags.pipeline.allow
+    assert frozenset() == PipelineSettings().allow  # the default: every ERROR finding refuses a record

@@ -10,7 +10,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from bridge.model import Outcome, Quantity, Severity
+from bridge.model import Finding, Outcome, Quantity, Severity
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
@@ -39,6 +39,7 @@ _DERIVED_LABELS = (
     ("dlco_hb_adjusted", "DLCO adjusted to standard Hb"),
     ("dlco_cohb_adjusted", "DLCO adjusted for COHb"),
     ("dlco_pressure_adjusted", "DLCO adjusted to sea level"),
+    ("kco_pressure_adjusted", "KCO adjusted to sea level"),
     ("dlco_from_manoeuvres", "DLCO from manoeuvre gas data"),
     ("va_from_manoeuvres", "VA from manoeuvre gas data"),
     ("dlco_percent_predicted", "DLCO % predicted"),
@@ -60,6 +61,16 @@ def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
     if original is not None and (original.unit != q.unit or original.value != q.text()):
         text += f"   (as sent: {original.value} {original.unit})"
     return text
+
+
+def finding_text(finding: Finding, tables: Tables, units: UnitSystem) -> str:
+    """A finding's message with its quantities in ``units``."""
+
+    def say(quantity: Quantity) -> str:
+        q = shown(quantity, tables, units)
+        return f"{q.text()} {q.unit}"
+
+    return finding.text(say)
 
 
 def _row(label: str, quantity: Quantity | None, tables: Tables, units: UnitSystem) -> list[str]:
@@ -93,14 +104,15 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     for name, label in _DERIVED_LABELS:
         lines += _row(label, getattr(d, name), tables, units)
     for m in d.manoeuvres:
-        parts = [f"grade {m.grade}"]
+        parts = [f"grade {m.grade}" + (f" ({'; '.join(m.grade_reasons)})" if m.grade_reasons else "")]
         if m.va is not None:
             parts.append(f"VA {_text(m.va, tables, units)}")
         if m.dlco is not None:
             parts.append(f"DLCO {_text(m.dlco, tables, units)}")
         lines.append(f"    manoeuvre {m.index + 1}: " + ", ".join(parts))
     if d.session_grade is not None:
-        lines.append(f"    session quality grade {d.session_grade}")
+        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated)
+        lines.append(f"    session quality grade {d.session_grade}" + (f" ({basis[2:]})" if basis else ""))
     if d.reported_manoeuvres:
         used = ", ".join(str(i + 1) for i in d.reported_manoeuvres)
         verdict = {True: "repeatable", False: "not repeatable", None: "nothing to compare with"}[d.repeatable]
@@ -110,7 +122,7 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     lines.append(f"  findings ({len(outcome.findings)})")
     for f in outcome.findings:
         lines.append(f"    {f.severity.value.upper():<8}{f.code}  {f.path}")
-        lines.append(f"            {f.message}")
+        lines.append(f"            {finding_text(f, tables, units)}")
     if not outcome.findings:
         lines.append("    none")
     return "\n".join(lines)
@@ -140,7 +152,10 @@ def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem) -> dict[st
         "units": units,
         "session": convert(session),
         "derived": convert(derived),
-        "findings": [f.model_dump(mode="json") for f in outcome.findings],
+        "findings": [
+            {"code": f.code, "severity": f.severity.value, "path": f.path, "message": finding_text(f, tables, units)}
+            for f in outcome.findings
+        ],
         "worst": _worst(outcome),
     }
 

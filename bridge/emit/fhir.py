@@ -79,7 +79,7 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
     """
     require_aware(context.now)
     if content is None:
-        content = build_content(outcome, tables, context.units)
+        content = build_content(outcome, tables, context.units, context.hemoglobin_unit)
     entries: list[Resource] = []
     patient = outcome.session.patient
     patient_url = None
@@ -220,7 +220,9 @@ def _observation(
     resource: Resource = {
         "resourceType": "Observation",
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier(item.key)}],
-        "status": parts.status,
+        # FHIR R4 Observation.status: "preliminary" (data may be incomplete or unverified) for
+        # a value sent with an allowed error finding.  # source: FHIR R4 ValueSet observation-status
+        "status": _PRELIMINARY if item.questionable else parts.status,
         "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_coding(*_PF)]}],
         "code": _concept(item.code, tables, context),
         "subject": parts.subject(),
@@ -285,7 +287,8 @@ def _report(
     resource: Resource = {
         "resourceType": "DiagnosticReport",
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier("report")}],
-        "status": parts.status,
+        # source: FHIR R4 ValueSet diagnostic-report-status, "preliminary"
+        "status": _PRELIMINARY if content.questionable else parts.status,
         "category": [{"coding": [_coding(*_PF)]}],
         "code": _concept(tables.codes.panel, tables, context),
         "subject": parts.subject(),
@@ -402,6 +405,9 @@ def _full_url(system: str, value: str) -> str:
 
 def _uuid_of(entry: Resource) -> str:
     return str(entry["fullUrl"]).removeprefix("urn:uuid:")
+
+
+_PRELIMINARY = "preliminary"
 
 
 def _status(context: EmitContext) -> str:

@@ -78,6 +78,7 @@ CONTROL_ID_LENGTH = 20  # MSH-10 length in v2.5.1  # from memory
 ST_LENGTH = 199  # hl7apy base data type ST
 IS_LENGTH = 20  # hl7apy base data type IS (HD namespace ids)
 NM_LENGTH = 16  # hl7apy base data type NM
+PRELIMINARY = "P"  # HL7 tables 0085 (OBX-11) and 0123 (OBR-25): preliminary
 FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
 ELLIPSIS = "..."
 
@@ -96,7 +97,7 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     is already at hand (another emitter built it), otherwise it is built here.
     """
     if content is None:
-        content = build_content(outcome, tables, context.units)
+        content = build_content(outcome, tables, context.units, context.hemoglobin_unit)
     status = "C" if context.correction else "F"
     lab = outcome.session.lab.name
     key = "lab_facilities" if any(name == lab for name, _ in context.lab_facilities) else "sending_facility"
@@ -108,7 +109,8 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
         msh,
         _pid(outcome.session.patient, context.patient_identifier_type),
         _segment("ORC", "RE", *orders),
-        _obr(orders, tables, now, performed, status),
+        # OBR-25 (HL7 table 0123) P "preliminary" when a value carries an allowed error finding
+        _obr(orders, tables, now, performed, PRELIMINARY if content.questionable else status),
         *_ntes(content.notes),
         *_observations(content, status, performed, _performer(outcome, facility)),
     ]
@@ -220,7 +222,10 @@ def _obr(orders: tuple[str, str], tables: Tables, now: str, performed: str, stat
 
 def _observations(content: ReportContent, status: str, observed: str, performer: str) -> Iterable[str]:
     for set_id, item in enumerate(content.items, start=1):
-        yield _obx(set_id, item, status, observed, performer)
+        # OBX-11 (HL7 table 0085) P "preliminary results" for a value with an allowed error
+        # finding; the finding itself follows in NTE. Table 0078 (OBX-8) has no code for a
+        # questionable value, so OBX-8 keeps the L/N flag.  # source: HL7 v2.5.1 ch. 7 (from memory)
+        yield _obx(set_id, item, PRELIMINARY if item.questionable else status, observed, performer)
         if item.notes or item.supporting:
             yield from _ntes((*item.notes, *(supporting_text(value) for value in item.supporting)))
 

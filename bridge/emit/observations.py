@@ -10,6 +10,7 @@ list, so the two outputs always carry the same content. Pure.
 from __future__ import annotations
 
 import re
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from datetime import datetime
 from types import MappingProxyType
@@ -73,9 +74,11 @@ class EmitContext:
     def facility_of(self, lab_name: str) -> str:
         """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
         return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)
+    hemoglobin_unit: str | None = None  # g/L or g/dL; None: the unit system's display unit
 
 
 Flag = Literal["L", "H", "N"]
+HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
 
 
 @dataclass(frozen=True, slots=True)
@@ -110,6 +113,9 @@ class ResultItem:
     computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
     notes: tuple[str, ...] = ()
     supporting: tuple[Supporting, ...] = ()  # blood values that qualify this result (not results)
+    # True: an ERROR finding the site allowed through (``allow``) concerns this value or one it
+    # was derived from; the emitters then send it as preliminary, never as final.
+    questionable: bool = False
 
 
 @dataclass(frozen=True, slots=True)
@@ -119,19 +125,31 @@ class ReportContent:
     items: tuple[ResultItem, ...]
     notes: tuple[str, ...] = field(default=())
 
+    @property
+    def questionable(self) -> bool:
+        """Whether any item carries an allowed ERROR finding (the report is then not final)."""
+        return any(item.questionable for item in self.items)
 
-def _finding_note(finding: Finding) -> str:
-    return f"{finding.severity.value.upper()} {finding.code} ({finding.path}): {finding.message}"
+
+def _finding_note(finding: Finding, say: Callable[[Quantity], str]) -> str:
+    """A finding as a note, its quantities in the destination's units."""
+    return f"{finding.severity.value.upper()} {finding.code} ({finding.path}): {finding.text(say)}"
 
 
-def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> ReportContent:
-    """The items and notes to emit for one outcome, in ``units``."""
+def build_content(
+    outcome: Outcome, tables: Tables, units: UnitSystem, hemoglobin_unit: str | None = None
+) -> ReportContent:
+    """The items and notes to emit for one outcome, in ``units`` (haemoglobin in ``hemoglobin_unit`` if set)."""
     s, d = outcome.session, outcome.derived
     r, c = s.results, s.conditions
     pred = r.predicted
     lln = pred.lower_limits if pred is not None else None
     cat = tables.units
     targets: dict[str, str] = {}  # unit -> the unit it is shown in, looked up once per call
+    if hemoglobin_unit is not None:
+        for code, unit in cat.units.items():
+            if unit.dimension == "mass_concentration":
+                targets[code] = hemoglobin_unit
 
     def show(q: Quantity) -> Quantity:
         target = targets.get(q.unit)
@@ -141,12 +159,17 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             return q  # what express() returns for the same unit
         return express(q, target, cat)
 
+    def say(q: Quantity) -> str:
+        return _text(show(q))
+
     by_path: dict[str, list[str]] = {}
     for finding in outcome.findings:
         if finding.severity is not Severity.INFO:
-            by_path.setdefault(finding.path, []).append(_finding_note(finding))
+            by_path.setdefault(finding.path, []).append(_finding_note(finding, say))
 
     items: list[ResultItem] = []
+    paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
+    replaced: set[str] = set()  # paths of lab values not forwarded: their errors question nothing
     codes = tables.codes.codes
 
     def add(
@@ -158,9 +181,16 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         computed: bool = False,
         path: str = "",
         notes: tuple[str, ...] = (),
+        replaces_lab_value: bool = False,
     ) -> None:
+        """One item; ``replaces_lab_value``: the findings at ``path`` are about the lab's value,
+        which this recomputed value replaces, so they are carried as notes but do not question it."""
         if q is None:
             return
+        if replaces_lab_value:
+            replaced.add(path)
+        elif path:
+            paths[key] = path
         shown = show(q)
         flag: Flag | None = None
         low_shown = None
@@ -185,7 +215,21 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
             derived_from=("dlco", "va"),
             computed=True,
         )
-    if r.dlco_hb_adjusted is not None:
+    if d.dlco_hb_adjusted is not None:
+        # The bridge's own Cotes adjustment whenever Hb is known: a lab's value (possibly the
+        # wrong way round) is never forwarded as the Hb-adjusted result; it is named in a note.
+        lab_value = r.dlco_hb_adjusted
+        said = f"; the lab reported {_text(show(lab_value))}" if lab_value is not None else ""
+        add(
+            "dlco_hb_adjusted",
+            d.dlco_hb_adjusted,
+            derived_from=("dlco", "hemoglobin"),
+            computed=True,
+            path="results.dlco_hb_adjusted",
+            notes=(f"Adjusted to standard haemoglobin (Cotes) by {BRIDGE_NAME}{said}.",),
+            replaces_lab_value=True,
+        )
+    else:  # the bridge cannot recompute it (no usable sex): the lab's value, with its findings
         add(
             "dlco_hb_adjusted",
             r.dlco_hb_adjusted,
@@ -197,19 +241,22 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
         d.dlco_pressure_adjusted,
         derived_from=("dlco", "barometric_pressure"),
         computed=True,
-        notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), computed by dlco-bridge",),
+        notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), PIO2 = FIO2 x (PB - 47), computed by dlco-bridge",),
     )
     if pred is not None:
         add("dlco_predicted", pred.dlco)
         add("kco_predicted", pred.kco)
         add("va_predicted", pred.va)
+    # Per cent predicted compares the value adjusted to sea level when there is one (S17).
+    sea_level = ("dlco_pressure_adjusted",) if d.dlco_pressure_adjusted is not None else ("dlco",)
     add(
         "dlco_percent_predicted",
         d.dlco_percent_predicted,
-        derived_from=("dlco", "dlco_predicted"),
+        derived_from=(*sea_level, "dlco_predicted"),
         computed=True,
     )
-    add("kco_percent_predicted", d.kco_percent_predicted, derived_from=("kco", "kco_predicted"), computed=True)
+    kco_from = ("kco", "barometric_pressure") if d.kco_pressure_adjusted is not None else ("kco",)
+    add("kco_percent_predicted", d.kco_percent_predicted, derived_from=(*kco_from, "kco_predicted"), computed=True)
     add("va_percent_predicted", d.va_percent_predicted, derived_from=("va", "va_predicted"), computed=True)
     add("tlc", r.tlc)
     add("barometric_pressure", c.barometric_pressure)
@@ -222,12 +269,50 @@ def build_content(outcome: Outcome, tables: Tables, units: UnitSystem) -> Report
     items = [_keep_present_sources(item, present) if item.derived_from else item for item in items]
     if blood:
         items = [_with_supporting(item, blood) for item in items]
+    errors = [f for f in outcome.findings if f.severity is Severity.ERROR and f.path not in replaced]
+    items = _questioned(items, paths, errors)
     if by_path:
         carried = {note for item in items for note in item.notes}
         attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
     else:
         attached = set()  # no finding to attach: nothing to collect
-    return ReportContent(tuple(items), _report_notes(outcome, attached))
+    return ReportContent(tuple(items), _report_notes(outcome, attached, say))
+
+
+def _text(q: Quantity) -> str:
+    return f"{q.text()} {q.unit}"
+
+
+def _questioned(items: list[ResultItem], paths: dict[str, str], errors: list[Finding]) -> list[ResultItem]:
+    """Mark the items an ERROR finding concerns (only allowed ones reach the emitters).
+
+    An item is questioned by an error at its path or at a path above it (``results`` covers
+    ``results.dlco``), and by a questioned item it was derived from. An error that concerns no
+    emitted item (``manoeuvres``, ``patient.sex``) questions the whole report.
+    """
+    if not errors:
+        return items
+
+    def covers(finding: Finding, path: str) -> bool:
+        return path == finding.path or path.startswith(finding.path + ".")
+
+    every = any(not any(covers(f, p) for p in paths.values()) for f in errors)
+    codes: dict[str, tuple[str, ...]] = {}
+    for item in items:
+        path = paths.get(item.key)
+        direct = tuple(f.code for f in errors if every or (path is not None and covers(f, path)))
+        inherited = tuple(code for key in item.derived_from for code in codes.get(key, ()))
+        found = tuple(dict.fromkeys(direct + inherited))
+        if found:
+            codes[item.key] = found
+    marked = []
+    for item in items:
+        found = codes.get(item.key, ())
+        if found:
+            note = f"Not final: sent although the bridge found an error ({', '.join(found)}), as the site allows."
+            item = replace(item, questionable=True, notes=(*item.notes, note))
+        marked.append(item)
+    return marked
 
 
 def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
@@ -252,18 +337,19 @@ def supporting_text(value: Supporting) -> str:
     )
 
 
-def _report_notes(outcome: Outcome, attached: set[str]) -> tuple[str, ...]:
+def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity], str]) -> tuple[str, ...]:
     """Report-level notes: quality grade, reference set, and the findings no item carries."""
     notes: list[str] = []
     d, s = outcome.derived, outcome.session
     if d.session_grade is not None:
-        notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres).")
+        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated)
+        notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres{basis}).")
     if d.quality_caution is not None:
         notes.append(f"Interpret with caution: {d.quality_caution}.")
     pred = s.results.predicted
     if pred is not None and pred.reference_set:
         notes.append(f"Reference values: {pred.reference_set}.")
-    notes.extend(_finding_note(f) for f in outcome.findings if f.path not in attached)
+    notes.extend(_finding_note(f, say) for f in outcome.findings if f.path not in attached)
     return tuple(notes)
 
 

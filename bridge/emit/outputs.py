@@ -1,8 +1,8 @@
 """The payloads one outcome becomes, per output kind, and the blocking-finding gate (pure).
 
 Owns: ``fhir`` -> transaction Bundle JSON, ``hl7`` -> ORU^R01 ER7 (CR-separated), their
-stable message ids and file stems, and refusing an outcome that carries a finding local
-configuration marks as blocking. Called only by ``bridge.pipeline``.
+stable message ids and file stems, and refusing an outcome that carries an ERROR finding the
+site did not allow, or a finding it marks as blocking. Called only by ``bridge.pipeline``.
 """
 
 from __future__ import annotations
@@ -14,7 +14,7 @@ from bridge.emit.fhir import bundle_json, require_aware
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import EmitContext, build_content
 from bridge.errors import BlockedByFinding, MissingField
-from bridge.model import Outcome, OutputKind, Payload
+from bridge.model import Outcome, OutputKind, Payload, Severity
 from bridge.tables import Tables
 
 FHIR_JSON = "application/fhir+json"
@@ -27,16 +27,20 @@ def file_stem(test_id: str) -> str:
     return _UNSAFE.sub("_", test_id).lstrip(".") or "_"
 
 
-def refuse_blocked(outcome: Outcome, blocking: Collection[str]) -> None:
-    """Raise BlockedByFinding when the outcome carries a finding configured as blocking."""
-    hits = [f for f in outcome.findings if f.code in blocking]
-    if hits:
-        first = hits[0]
-        raise BlockedByFinding(
-            first.path,
-            f"not emitted: {first.code} is configured as blocking ({first.message})",
-            outcome.source,
-        )
+def refuse_blocked(outcome: Outcome, blocking: Collection[str] = (), allow: Collection[str] = ()) -> None:
+    """Raise BlockedByFinding when the outcome carries an ERROR finding not in ``allow``, or a finding in ``blocking``.
+
+    Known-wrong values never leave as final: an allowed ERROR goes out with its finding and a
+    preliminary status (``build_content``); any other ERROR keeps the record from being emitted.
+    """
+    for finding in outcome.findings:
+        if finding.code in blocking:
+            why = "is configured as blocking"
+        elif finding.severity is Severity.ERROR and finding.code not in allow:
+            why = f"is an error finding (send it anyway, marked preliminary, with --allow {finding.code})"
+        else:
+            continue
+        raise BlockedByFinding(finding.path, f"not emitted: {finding.code} {why} ({finding.message})", outcome.source)
 
 
 def payloads(
@@ -47,7 +51,7 @@ def payloads(
     What is emitted (:func:`build_content`) is built once and rendered by each emitter.
     """
     built = []
-    content = build_content(outcome, tables, context.units) if kinds else None
+    content = build_content(outcome, tables, context.units, context.hemoglobin_unit) if kinds else None
     if content is not None and not content.items:
         # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
         raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)

@@ -29,6 +29,9 @@ class EmitSettings:
     processing_id: str = "P"  # HL7 MSH-11 (table 0103): P production, T training, D debugging
     lab_facilities: tuple[tuple[str, str], ...] = ()  # (lab name as exported, HL7 facility id): MSH-4, OBR-3
     patient_identifier_type: str = "MR"  # HL7 PID-3 CX.5 (table 0203): MR medical record number
+    # Haemoglobin is sent (and named in notes) in this unit, g/L or g/dL (HEMOGLOBIN_UNITS);
+    # None: the unit system's display unit in mappings/units.toml.
+    hemoglobin_unit: str | None = None
 
     def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
         """The emitters' context for one message: these settings plus the time the shell read."""
@@ -47,4 +50,5 @@ class EmitSettings:
             processing_id=self.processing_id,
             lab_facilities=self.lab_facilities,
             patient_identifier_type=self.patient_identifier_type,
+            hemoglobin_unit=self.hemoglobin_unit,
         )

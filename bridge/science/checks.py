@@ -13,6 +13,7 @@ from collections.abc import Callable, Iterator
 
 from bridge.model import Derived, Finding, Quantity, Session, Severity
 from bridge.science.derive import age_in_years, gas_conditions, hb_factor
+from bridge.science.physiology import COHB_BASELINE_PERCENT
 from bridge.tables import Tables
 
 # Relative difference tolerated between a reported and a recomputed value (rounding of the
@@ -23,7 +24,6 @@ RESULT_TOLERANCE = 0.10  # reported mean vs mean of the manoeuvres we would repo
 ADJUSTMENT_TOLERANCE = 0.02
 HB_NOTE_THRESHOLD = 0.05  # mention the Hb adjustment when it moves DLCO by more than 5 %  # common practice
 BREATH_HOLD_TARGET_S = (8.0, 12.0)  # source: ATS/ERS 2005 Table 6 (10 +/- 2 s)
-COHB_BASELINE_PERCENT = 2.0  # reference subjects assumed at 2 %  # from memory (2005 form)
 # Unit-mislabel evidence from the lab's own predicted value: a per cent predicted outside the
 # first band that the SI <-> traditional factor would move into the second, narrower band.
 # Measured DLCO rarely lies below 30 % or above 160 % predicted; the narrower band keeps the
@@ -37,6 +37,33 @@ Rule = Callable[[Session, Derived, Tables], Iterator[Finding]]
 
 def _finding(code: str, severity: Severity, path: str, message: str) -> Finding:
     return Finding(code=code, severity=severity, path=path, message=message)
+
+
+def _measured(code: str, severity: Severity, path: str, template: str, **values: Quantity) -> Finding:
+    """A finding whose sentence carries quantities: ``{name}`` places in ``template``, one per value.
+
+    ``message`` says them in the canonical units; ``Finding.text`` in any other (see bridge.model).
+    """
+    message = template.format_map({name: f"{q.text()} {q.unit}" for name, q in values.items()})
+    return Finding(code=code, severity=severity, path=path, message=message, template=template, values=values)
+
+
+def _literal(text: str) -> str:
+    """Free text (a path, a unit as the lab wrote it) made safe inside a template."""
+    return text.replace("{", "{{").replace("}", "}}")
+
+
+def _q(value: float, unit: str, decimals: int) -> Quantity:
+    """A number of a message as a quantity, with the digits the message shows."""
+    return Quantity(value=value, unit=unit, decimals=decimals)
+
+
+def _bound(value: float, unit: str) -> Quantity:
+    """A plausibility bound as written in its table (0.5 keeps one decimal)."""
+    return _q(value, unit, len(f"{value:g}".partition(".")[2]))
+
+
+DLCO_UNIT, KCO_UNIT, HB_UNIT, PRESSURE_UNIT = "mL/min/mm[Hg]", "mL/min/mm[Hg]/L", "g/dL", "mm[Hg]"
 
 
 def _rel(a: float, b: float) -> float:
@@ -67,12 +94,14 @@ def check_kco(session: Session, derived: Derived, tables: Tables) -> Iterator[Fi
             _ratio(kco.value, computed.value), tables.units.traditional_per_si, tables.plausibility.mislabel_tolerance
         ):
             return  # reported by check_unit_mislabel with the evidence
-        yield _finding(
+        yield _measured(
             "KCO_INCONSISTENT",
             Severity.WARNING,
             "results.kco",
-            f"KCO {kco.value:.3g} mL/min/mmHg/L differs by {100 * _rel(kco.value, computed.value):.0f} % "
-            f"from DLCO/VA = {computed.value:.3g}; check which of DLCO, VA or KCO is wrong.",
+            f"KCO {{kco}} differs by {100 * _rel(kco.value, computed.value):.0f} % "
+            "from DLCO/VA = {computed}; check which of DLCO, VA or KCO is wrong.",
+            kco=kco,
+            computed=_q(computed.value, KCO_UNIT, 2),
         )
 
 
@@ -98,6 +127,7 @@ def check_unit_mislabel(session: Session, derived: Derived, tables: Tables) -> I
                 list(_mislabel_evidence(session, derived, tables, path, value, factor, tolerance)),
             )
     accused = [p for p, (_, evidence) in suspects.items() if evidence]
+    # Each piece of evidence is (template, its quantities, is it strong on its own).
     if mutual is not None and len(accused) != 1:
         yield _finding(
             "UNIT_MISLABEL_PROBABLE",
@@ -109,29 +139,30 @@ def check_unit_mislabel(session: Session, derived: Derived, tables: Tables) -> I
         return
     for path in accused:
         value, evidence = suspects[path]
-        texts = ([mutual] if mutual else []) + [text for text, _ in evidence]
-        if mutual is None and not any(strong for _, strong in evidence) and len(evidence) < 2:
+        texts = ([mutual] if mutual else []) + [text for text, _, _ in evidence]
+        if mutual is None and not any(strong for _, _, strong in evidence) and len(evidence) < 2:
             continue
         stated = value.original.unit if value.original else value.unit
-        yield _finding(
+        values = {name: q for _, found, _ in evidence for name, q in found.items()}
+        yield _measured(
             "UNIT_MISLABEL_PROBABLE",
             Severity.ERROR,
             path,
-            f"{path} is labelled {stated!r} but looks {factor:g}x off (SI and traditional units swapped?): "
-            + "; ".join(texts)
-            + ".",
+            f"{path} is labelled {_literal(repr(stated))} but looks {factor:g}x off "
+            "(SI and traditional units swapped?): " + "; ".join(texts) + ".",
+            **values,
         )
 
 
 def _mislabel_evidence(
     session: Session, derived: Derived, tables: Tables, path: str, value: Quantity, factor: float, tol: float
-) -> Iterator[tuple[str, bool]]:
-    """Evidence independent of the DLCO-KCO-VA triangle: (text, is it strong on its own)."""
+) -> Iterator[tuple[str, dict[str, Quantity], bool]]:
+    """Evidence independent of the DLCO-KCO-VA triangle: (template, its quantities, is it strong on its own)."""
     r = session.results
     if path == "results.dlco" and derived.dlco_from_manoeuvres is not None:
         gas = derived.dlco_from_manoeuvres.value
         if _near_factor(_ratio(value.value, gas), factor, tol):
-            yield f"the manoeuvre gas data give {gas:.3g} mL/min/mmHg", True
+            yield "the manoeuvre gas data give {gas}", {"gas": _q(gas, DLCO_UNIT, 1)}, True
     predicted = getattr(r.predicted, path.split(".")[1], None) if r.predicted else None
     if isinstance(predicted, Quantity) and predicted.value > 0:
         percent = 100 * value.value / predicted.value
@@ -139,7 +170,7 @@ def _mislabel_evidence(
         low, high = PERCENT_PREDICTED_PLAUSIBLE
         relabelled_low, relabelled_high = PERCENT_PREDICTED_RELABELLED
         if not low <= percent <= high and any(relabelled_low <= p <= relabelled_high for p in percents):
-            yield f"it is {percent:.0f} % of the lab's own predicted value", False
+            yield f"it is {percent:.0f} % of the lab's own predicted value", {}, False
     bound = tables.plausibility.bounds.get(path)
     relabelled = (value.value / factor, value.value * factor)
     if (
@@ -148,7 +179,8 @@ def _mislabel_evidence(
         and any(bound.low <= v <= bound.high for v in relabelled)
     ):
         yield (
-            f"{value.value:.3g} is outside the plausible {bound.low:g}-{bound.high:g} {bound.unit}",
+            "{stated} is outside the plausible {low} to {high}",
+            {"stated": value, "low": _bound(bound.low, bound.unit), "high": _bound(bound.high, bound.unit)},
             False,
         )
 
@@ -165,14 +197,15 @@ def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iter
             if reported is None or computed is None:
                 continue
             if _rel(reported.value, computed.value) > MANOEUVRE_TOLERANCE:
-                yield _finding(
+                yield _measured(
                     f"MANOEUVRE_{name.upper()}_MISMATCH",
                     Severity.WARNING,
                     f"manoeuvres[{i}].reported.{name}",
-                    f"manoeuvre {i + 1}: the device reports {name.upper()} "
-                    f"{reported.value:.3g} {reported.unit} "
-                    f"but its gas data give {computed.value:.3g} "
+                    f"manoeuvre {i + 1}: the device reports {name.upper()} {{reported}} "
+                    "but its gas data give {computed} "
                     f"({100 * _rel(reported.value, computed.value):.0f} % apart).",
+                    reported=reported,
+                    computed=computed,
                 )
     for name, reported, computed in (
         ("dlco", session.results.dlco, derived.dlco_from_manoeuvres),
@@ -186,12 +219,14 @@ def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iter
             tables.plausibility.mislabel_tolerance,
         )
         if _rel(reported.value, computed.value) > RESULT_TOLERANCE and not (name == "dlco" and mislabel):
-            yield _finding(
+            yield _measured(
                 f"RESULT_{name.upper()}_MISMATCH",
                 Severity.WARNING,
                 f"results.{name}",
-                f"reported {name.upper()} {reported.value:.3g} {reported.unit} differs from "
-                f"{computed.value:.3g} recomputed from the acceptable manoeuvres.",
+                f"reported {name.upper()} {{reported}} differs from "
+                "{computed} recomputed from the acceptable manoeuvres.",
+                reported=reported,
+                computed=computed,
             )
 
 
@@ -200,12 +235,14 @@ def check_bounds(session: Session, derived: Derived, tables: Tables) -> Iterator
         for where, quantity in _resolve(session, path):
             value = tables.units.convert(quantity.value, quantity.unit, bound.unit)
             if not bound.low <= value <= bound.high:
-                yield _finding(
+                yield _measured(
                     "OUT_OF_RANGE",
                     Severity.WARNING,
                     where,
-                    f"{where} = {value:.4g} {bound.unit} is outside the plausible range "
-                    f"{bound.low:g}-{bound.high:g} {bound.unit}.",
+                    f"{_literal(where)} = {{value}} is outside the plausible range {{low}} to {{high}}.",
+                    value=quantity,
+                    low=_bound(bound.low, bound.unit),
+                    high=_bound(bound.high, bound.unit),
                 )
 
 
@@ -276,31 +313,38 @@ def check_haemoglobin(session: Session, derived: Derived, tables: Tables) -> Ite
         return
     measured = session.results.dlco
     if measured is not None and derived.dlco_hb_adjusted is not None and abs(factor - 1) > HB_NOTE_THRESHOLD:
-        yield _finding(
+        yield _measured(
             "HB_ADJUSTMENT",
             Severity.INFO,
             "conditions.hemoglobin",
-            f"Hb {hb.value:.1f} g/dL: DLCO adjusted to standard Hb is {derived.dlco_hb_adjusted.value:.1f} "
-            f"mL/min/mmHg (factor {factor:.3f}, age {age:.0f} y).",
+            "Hb {hb}: DLCO adjusted to standard Hb is {adjusted} " + f"(factor {factor:.3f}, age {age:.0f} y).",
+            hb=hb,
+            adjusted=_q(derived.dlco_hb_adjusted.value, DLCO_UNIT, 1),
         )
     if reported is None or measured is None or abs(factor - 1) <= ADJUSTMENT_TOLERANCE:
         return
     expected, inverted = measured.value * factor, measured.value / factor
     if _rel(reported.value, inverted) <= ADJUSTMENT_TOLERANCE:
-        yield _finding(
+        yield _measured(
             "HB_ADJUSTMENT_WRONG_DIRECTION",
             Severity.ERROR,
             "results.dlco_hb_adjusted",
-            f"Hb-adjusted DLCO {reported.value:.3g} equals measured / factor; adjusting the measured value "
-            f"to standard Hb gives {expected:.3g} (the factor was applied the wrong way round).",
+            "Hb-adjusted DLCO {reported} equals measured / factor; adjusting the measured value "
+            "to standard Hb gives {expected} (the factor was applied the wrong way round).",
+            reported=reported,
+            expected=_q(expected, DLCO_UNIT, 1),
         )
     elif _rel(reported.value, expected) > ADJUSTMENT_TOLERANCE:
-        yield _finding(
+        yield _measured(
             "HB_ADJUSTMENT_MISMATCH",
             Severity.WARNING,
             "results.dlco_hb_adjusted",
-            f"Hb-adjusted DLCO {reported.value:.3g} differs from {expected:.3g} (Cotes adjustment of the "
-            f"measured {measured.value:.3g} at Hb {hb.value:.1f} g/dL).",
+            "Hb-adjusted DLCO {reported} differs from {expected} (Cotes adjustment of the "
+            "measured {measured} at Hb {hb}).",
+            reported=reported,
+            expected=_q(expected, DLCO_UNIT, 1),
+            measured=measured,
+            hb=hb,
         )
 
 
@@ -308,32 +352,36 @@ def check_carboxyhaemoglobin(session: Session, derived: Derived, tables: Tables)
     cohb = session.conditions.carboxyhemoglobin
     if cohb is None or cohb.value <= COHB_BASELINE_PERCENT or derived.dlco_cohb_adjusted is None:
         return
-    yield _finding(
+    yield _measured(
         "COHB_RAISED",
         Severity.WARNING,
         "conditions.carboxyhemoglobin",
-        f"COHb {cohb.value:.1f} % lowers measured DLCO (about 1-2 % per 1 % COHb); adjusted for the "
-        f"anaemia effect DLCO would be {derived.dlco_cohb_adjusted.value:.1f} mL/min/mmHg.",
+        f"COHb {cohb.value:.1f} % (baseline {COHB_BASELINE_PERCENT:g} %) lowers measured DLCO; adjusted to the "
+        "baseline COHb, DLCO would be {adjusted}.",
+        adjusted=_q(derived.dlco_cohb_adjusted.value, DLCO_UNIT, 1),
     )
 
 
 def check_pressure(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
     gas = gas_conditions(session)
     if session.manoeuvres and gas.pb_assumed and session.conditions.altitude is None:
-        yield _finding(
+        yield _measured(
             "PRESSURE_ASSUMED",
             Severity.INFO,
             "conditions.barometric_pressure",
-            "no barometric pressure or altitude given: 760 mmHg was assumed to recompute the manoeuvres.",
+            "no barometric pressure or altitude given: {pb} was assumed to recompute the manoeuvres.",
+            pb=_q(gas.pb_mmhg, PRESSURE_UNIT, 0),
         )
     adjusted = derived.dlco_pressure_adjusted
     if adjusted is not None and gas.pb_mmhg < LOW_PRESSURE_MMHG:
-        yield _finding(
+        yield _measured(
             "PRESSURE_ADJUSTMENT",
             Severity.INFO,
             "conditions.barometric_pressure",
-            f"measured at PB {gas.pb_mmhg:.0f} mmHg: DLCO adjusted to sea level (PIO2 150 mmHg) is "
-            f"{adjusted.value:.1f} mL/min/mmHg; compare that with predicted values.",
+            "measured at PB {pb}: DLCO adjusted to sea level (PIO2 {pio2}) is {adjusted}; per cent predicted uses it.",
+            pb=_q(gas.pb_mmhg, PRESSURE_UNIT, 0),
+            pio2=_q(150.0, PRESSURE_UNIT, 0),
+            adjusted=_q(adjusted.value, DLCO_UNIT, 1),
         )
 
 
@@ -362,12 +410,14 @@ def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterato
         used = [a for a in derived.manoeuvres if a.index in derived.reported_manoeuvres and a.dlco is not None]
         dlcos = [a.dlco.value for a in used if a.dlco is not None]
         numbers = ", ".join(str(a.index + 1) for a in used)
-        yield _finding(
+        yield _measured(
             "NOT_REPEATABLE",
             Severity.WARNING,
             "manoeuvres",
-            f"manoeuvres {numbers}, which make the reported value, span {max(dlcos) - min(dlcos):.1f} "
-            f"mL/min/mmHg, more than the {tables.grades.max_dlco_difference:g} the standard allows.",
+            f"manoeuvres {numbers}, which make the reported value, span {{span}}, "
+            "more than the {limit} the standard allows.",
+            span=_q(max(dlcos) - min(dlcos), DLCO_UNIT, 1),
+            limit=_bound(tables.grades.max_dlco_difference, DLCO_UNIT),
         )
 
 

@@ -12,9 +12,10 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex
+from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex, number_text
 from bridge.science import physiology as phys
 from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
+from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
 DLCO_UNIT = "mL/min/mm[Hg]"
@@ -57,10 +58,14 @@ def derive(session: Session, tables: Tables) -> Derived:
     age = age_in_years(session)
     gas = gas_conditions(session)
     measured = session.results.dlco
+    pressure = _pressure_factor(session, gas)
+    dlco_at_sea_level = _adjusted(measured, pressure, tables.units)
+    kco_at_sea_level = _adjusted(session.results.kco, pressure, tables.units)
     dlco_from: Quantity | None = None
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
     selection: Selection | None = None
+    not_evaluated: tuple[str, ...] = ()
     if session.manoeuvres:  # without manoeuvres: no grades, nothing selected, no means
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
         grades = _grades(session, computed, tables)
@@ -75,23 +80,27 @@ def derive(session: Session, tables: Tables) -> Derived:
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
         selection = _selection(computed, grades, tables)
+        not_evaluated = _not_evaluated(grades, selection.indices)
         dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
         va_from = _mean_of(computed, selection.indices, 0, "L")
     return Derived(
         age_years=round(age, 2),
         kco=_kco(session),
         dlco_hb_adjusted=_scaled(measured, hb_factor(session, age)),
-        dlco_pressure_adjusted=_scaled(measured, _pressure_factor(session, gas)),
+        dlco_pressure_adjusted=dlco_at_sea_level,
+        kco_pressure_adjusted=kco_at_sea_level,
         dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
         dlco_from_manoeuvres=dlco_from,
         va_from_manoeuvres=va_from,
         manoeuvres=assessments,
         session_grade=selection.session_grade if selection else None,
         reported_manoeuvres=selection.indices if selection else (),
+        grade_not_evaluated=not_evaluated,
         repeatable=selection.repeatable if selection else None,
         quality_caution=selection.caution if selection else None,
-        dlco_percent_predicted=_percent(session.results.dlco, _pred(session, "dlco")),
-        kco_percent_predicted=_percent(session.results.kco, _pred(session, "kco")),
+        # S17: the measured value is adjusted to sea level before it is compared with predicted.
+        dlco_percent_predicted=_percent(dlco_at_sea_level or measured, _pred(session, "dlco")),
+        kco_percent_predicted=_percent(kco_at_sea_level or session.results.kco, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
     )
 
@@ -150,8 +159,9 @@ def _grades(
     if not session.manoeuvres:
         return ()
     capacities = [m.vital_capacity.value for m in session.manoeuvres if m.vital_capacity]
-    # Without a measured VC the largest inspired volume stands in for it.  # common practice
-    largest_vc = max(capacities or [m.inspired_volume.value for m in session.manoeuvres])
+    # Without a measured VC, VI/VC is not evaluated (an inspired volume standing in for the VC
+    # would make VI/VC 100 % by construction).
+    largest_vc = max(capacities) if capacities else None
     facts = [
         ManoeuvreFacts(
             inspired_volume_l=m.inspired_volume.value,
@@ -162,6 +172,11 @@ def _grades(
         for m, (va, _) in zip(session.manoeuvres, computed, strict=True)
     ]
     return grade_manoeuvres(facts, largest_vc, tables.grades)
+
+
+def _not_evaluated(grades: Sequence[Grade], indices: Sequence[int]) -> tuple[str, ...]:
+    """The criteria the session grade does not rest on: the caveats of the manoeuvres it uses."""
+    return tuple(dict.fromkeys(c for i in indices for c in grades[i].not_evaluated))
 
 
 def _selection(
@@ -217,6 +232,29 @@ def _cohb_factor(session: Session) -> float | None:
     if cohb is None or not 0 <= cohb.value < phys.COHB_FULL_PERCENT:
         return None
     return phys.cohb_adjustment_factor(cohb.value)
+
+
+def _adjusted(quantity: Quantity | None, factor: float | None, catalogue: UnitCatalogue) -> Quantity | None:
+    """The pressure-adjusted value; None when it equals the measured one at the reported precision.
+
+    The precision is the lab's: in the unit and with the digits it reported (24.8 mmol/min/kPa
+    at 760.6 mmHg stays 24.8), so a test near sea level gets no second, barely different value.
+    """
+    adjusted = _scaled(quantity, factor)
+    if quantity is None or adjusted is None:
+        return None
+    original = quantity.original
+    source = catalogue.resolve(original.unit) if original is not None else None
+    if original is not None and source is not None and source.dimension == catalogue.units[quantity.unit].dimension:
+        in_lab_unit = catalogue.convert(adjusted.value, quantity.unit, source.code)
+        same = number_text(in_lab_unit, _decimals_in(original.value)) == original.value
+    else:
+        same = number_text(adjusted.value, quantity.decimals) == quantity.text()
+    return None if same else adjusted
+
+
+def _decimals_in(text: str) -> int:
+    return len(text.partition(".")[2])
 
 
 def _scaled(quantity: Quantity | None, factor: float | None) -> Quantity | None:

@@ -63,8 +63,8 @@ def in_canonical_unit(
     """Value and reported decimals in the canonical unit (unchanged when only the spelling differs)."""
     if unit.code == measure.canonical_unit:
         return value, decimals
-    converted = catalogue.convert(value, unit.code, measure.canonical_unit)
-    return converted, decimals_after_conversion(converted, decimals, value)
+    factor = catalogue.factor_between(unit.code, measure.canonical_unit)
+    return value * factor, decimals_after_conversion(decimals, factor)
 
 
 def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity:
@@ -76,8 +76,9 @@ def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity
         source = catalogue.resolve(original.unit)
         if source is not None and source.code == unit:
             return Quantity(value=float(original.value), unit=unit, decimals=_decimals_in(original.value))
-    value = catalogue.convert(quantity.value, quantity.unit, unit)
-    decimals = decimals_after_conversion(value, quantity.decimals, quantity.value)
+    factor = catalogue.factor_between(quantity.unit, unit)
+    value = quantity.value * factor
+    decimals = decimals_after_conversion(quantity.decimals, factor)
     return Quantity(value=value, unit=unit, decimals=decimals, original=original)
 
 

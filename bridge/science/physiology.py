@@ -33,12 +33,15 @@ COTES_K_MALE_G_DL = 10.22  # 0.7 x 14.6 g/dL, males >= 15 y  # from memory
 COTES_K_FEMALE_CHILD_G_DL = 9.38  # 0.7 x 13.4 g/dL, females and children < 15 y  # from memory
 COTES_ADULT_MALE_AGE = 15.0
 
-# Inspired-PO2 adjustment: DLCO x (1 + 0.0031 (PIO2 - 150))  # from memory
+# Inspired-PO2 adjustment of the measured DLCO to sea level: DLCO x (1 + 0.0031 (PIO2 - 150)),
+# PIO2 = 0.21 x (PB - 47).  # source: S17, altitude adjustment (slope and reference from memory)
 PIO2_SLOPE_PER_MMHG = 0.0031  # from memory
 PIO2_REFERENCE_MMHG = 150.0  # from memory
-FIO2_AIR = 0.2093  # dry-air O2 fraction (common practice); the equation is pinned to it
+FIO2_AIR = 0.21  # source: S17 writes PIO2 = 0.21 x (PB - 47); 150 mmHg is 0.21 x (760 - 47) rounded
 
-# COHb anaemia-effect adjustment of measured DLCO: x 100 / (100 - COHb %)  # from memory (S17 form)
+# Carboxyhaemoglobin: reference subjects carry a baseline COHb; S05 adjusts the predicted DLCO
+# by (102 % - COHb %), i.e. to a 2 % baseline. The same baseline is the COHb_RAISED threshold.
+COHB_BASELINE_PERCENT = 2.0  # source: S05, COHb adjustment "predicted x (102 % - COHb %)"  # from memory
 COHB_FULL_PERCENT = 100.0
 
 
@@ -140,7 +143,7 @@ def hb_adjustment_factor(hb_g_dl: float, is_male: bool, age_years: float) -> flo
 
 
 def inspired_po2_mmhg(pb_mmhg: float, fio2: float = FIO2_AIR) -> float:
-    """PIO2 = FIO2 x (PB - 47)."""
+    """PIO2 = FIO2 x (PB - 47) (S17: 0.21 x (PB - 47) for air)."""
     return fio2 * (pb_mmhg - PH2O_BODY_MMHG)
 
 
@@ -152,9 +155,13 @@ def pressure_adjustment_factor(pb_mmhg: float, fio2: float = FIO2_AIR) -> float:
     return 1.0 + PIO2_SLOPE_PER_MMHG * (inspired_po2_mmhg(pb_mmhg, fio2) - PIO2_REFERENCE_MMHG)
 
 
-def cohb_adjustment_factor(cohb_percent: float) -> float:
-    """Multiplier removing the anaemia effect of carboxyhaemoglobin: 100 / (100 - COHb %)."""
-    return COHB_FULL_PERCENT / (COHB_FULL_PERCENT - cohb_percent)
+def cohb_adjustment_factor(cohb_percent: float, baseline_percent: float = COHB_BASELINE_PERCENT) -> float:
+    """Multiplier taking a measured DLCO to the baseline COHb: 100 / (100 + baseline - COHb %).
+
+    The inverse of S05's adjustment of the predicted value, predicted x (102 % - COHb %) / 100
+    with the 2 % baseline: 1 at the baseline, above 1 when COHb is raised.
+    """
+    return COHB_FULL_PERCENT / (COHB_FULL_PERCENT + baseline_percent - cohb_percent)
 
 
 def barometric_pressure_from_altitude_mmhg(altitude_m: float) -> float:

@@ -4,6 +4,12 @@ Owns: applying the grade table (``mappings/quality_grades.toml``, parsed here fr
 the facts of each manoeuvre, and the 2017 reporting rule: the mean of two or more repeatable
 grade-A manoeuvres; one grade A alone; otherwise the mean of the best-graded acceptable ones
 with a caution. Pure: plain numbers in, grades and indices out.
+
+A criterion without its evidence (no vital capacity for VI/VC, no sample-collection time) is
+*not evaluated*: the manoeuvre is graded on the criteria that can be evaluated, and its grade
+carries the caveat among its reasons ("VI/VC not evaluated: no vital capacity"). No value stands
+in for the missing one, so no grade is A by construction; the caveat travels with the grade to
+``check`` and the outputs' notes.
 """
 
 from __future__ import annotations
@@ -42,14 +48,28 @@ class ManoeuvreFacts:
     va_l: float | None
 
 
+VI_VC_NOT_EVALUATED = "VI/VC not evaluated: no vital capacity"
+SAMPLE_NOT_EVALUATED = "sample collection time not evaluated: not reported"
+
+
 @dataclass(frozen=True, slots=True)
 class Grade:
     grade: str
-    reasons: tuple[str, ...]
+    reasons: tuple[str, ...]  # the criteria missed (grade F) and the criteria not evaluated
+
+    @property
+    def not_evaluated(self) -> tuple[str, ...]:
+        """The caveats: criteria the grade does not rest on."""
+        return tuple(r for r in self.reasons if r in (VI_VC_NOT_EVALUATED, SAMPLE_NOT_EVALUATED))
 
 
-def grade_manoeuvres(manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float, table: GradeTable) -> tuple[Grade, ...]:
-    """Grade every manoeuvre of a session; VI/VC is against the session's largest VC."""
+def grade_manoeuvres(
+    manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float | None, table: GradeTable
+) -> tuple[Grade, ...]:
+    """Grade every manoeuvre of a session; VI/VC is against the session's largest measured VC.
+
+    ``largest_vc_l`` None: no vital capacity was measured, VI/VC is not evaluated.
+    """
     first = [_grade(m, largest_vc_l, table, close_va=False) for m in manoeuvres]
     acceptable = [i for i, g in enumerate(first) if g.grade in table.acceptable_grades]
     result = []
@@ -60,24 +80,31 @@ def grade_manoeuvres(manoeuvres: Sequence[ManoeuvreFacts], largest_vc_l: float, 
     return tuple(result)
 
 
-def _grade(facts: ManoeuvreFacts, largest_vc_l: float, table: GradeTable, close_va: bool) -> Grade:
-    # No positive VC to compare with: VI/VC cannot be shown to meet any floor.
-    vi_vc = 100.0 * facts.inspired_volume_l / largest_vc_l if largest_vc_l > 0 else 0.0
+def _grade(facts: ManoeuvreFacts, largest_vc_l: float | None, table: GradeTable, close_va: bool) -> Grade:
+    vi_vc: float | None = None
+    if largest_vc_l is not None:
+        # A VC that is not positive cannot show VI/VC meets any floor.
+        vi_vc = 100.0 * facts.inspired_volume_l / largest_vc_l if largest_vc_l > 0 else 0.0
+    caveats = (() if vi_vc is not None else (VI_VC_NOT_EVALUATED,)) + (
+        () if facts.sample_collection_s is not None else (SAMPLE_NOT_EVALUATED,)
+    )
     missed: list[str] = []
     for rule in table.rules:
         missed = _misses(rule, facts, vi_vc, close_va)
         if not missed:
-            return Grade(rule.grade, ())
-    return Grade(FAIL_GRADE, tuple(missed))
+            return Grade(rule.grade, caveats)
+    return Grade(FAIL_GRADE, (*missed, *caveats))
 
 
-def _misses(rule: GradeRule, facts: ManoeuvreFacts, vi_vc: float, close_va: bool) -> list[str]:
+def _misses(rule: GradeRule, facts: ManoeuvreFacts, vi_vc: float | None, close_va: bool) -> list[str]:
     misses = []
     floor = rule.vi_vc_min_percent
     if close_va and rule.vi_vc_min_percent_if_va_close is not None:
         floor = rule.vi_vc_min_percent_if_va_close
-    if vi_vc < floor:
+    if vi_vc is not None and vi_vc < floor:
         misses.append(f"VI/VC {vi_vc:.0f} % is below {floor:.0f} %")
+    elif vi_vc is None and facts.inspired_volume_l <= 0:
+        misses.append("no inspired volume")  # fails every floor, whatever the VC
     if rule.breath_hold_s is not None:
         low, high = rule.breath_hold_s
         if not low <= facts.breath_hold_s <= high:

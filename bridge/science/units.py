@@ -79,20 +79,18 @@ class UnitCatalogue:
 MAX_DECIMALS = 12  # the most digits after the point a quantity carries (bridge.model.Quantity)
 
 
-def decimals_after_conversion(value: float, source_decimals: int | None, source_value: float) -> int | None:
-    """Decimals that keep the significant digits the source reported (at most MAX_DECIMALS).
+def decimals_after_conversion(source_decimals: int | None, factor: float) -> int | None:
+    """Decimals of a value converted with ``factor`` whose rounding step is no coarser than the source's.
 
-    7.460 mmol/min/kPa (4 significant digits) becomes 22.28 mL/min/mm[Hg], not 22.283020.
+    NIST Special Publication 811 (2008), Appendix B.7.2: keep enough digits that the converted
+    value's rounding step is no larger than the original's (36 ft -> 11.0 m, not 11). The source
+    step is 10**-d; in the new unit it is 10**-d x factor, so the decimals are the smallest d'
+    with 10**-d' <= 10**-d x factor: 8.4 mmol/min/kPa -> 25.1 mL/min/mm[Hg]; 152 g/L -> 15.2 g/dL.
     """
-    if source_decimals is None or source_value == 0 or value == 0:
-        return source_decimals
-    if not (math.isfinite(value) and math.isfinite(source_value)):
-        return source_decimals  # nothing to count digits of; the value is refused elsewhere
-    significant = _significant_digits(source_value, source_decimals)
-    magnitude = math.floor(math.log10(abs(value)))
-    return min(MAX_DECIMALS, max(0, significant - 1 - magnitude))
-
-
-def _significant_digits(value: float, decimals: int) -> int:
-    magnitude = math.floor(math.log10(abs(value)))
-    return max(1, magnitude + 1 + decimals)
+    if source_decimals is None:
+        return None
+    if not (math.isfinite(factor) and factor > 0):
+        return source_decimals  # nothing to scale a step by; such a value is refused elsewhere
+    # The tolerance keeps an exact power of ten (g/L -> g/dL) from gaining a digit by rounding.
+    needed = math.ceil(source_decimals - math.log10(factor) - 1e-9)
+    return min(MAX_DECIMALS, max(0, needed))

@@ -90,14 +90,35 @@ def test_hb_adjustment_mismatch(tables: Tables):
 
 
 def test_altitude_site_gets_sea_level_equivalent(sample_outcomes):
-    """At 615 mmHg DLCO is reduced to its sea-level equivalent (factor about 0.90)."""
-    # Hand computation  # from memory (equation form): 1 + 0.0031 (0.2093 x (630 - 47) - 150) = 0.9133
-    # at 630 mmHg; at the lower 615 mmHg the factor is lower still
+    """At 615 mmHg DLCO is reduced to its sea-level equivalent (factor about 0.905)."""
+    # source: ERS/ATS 2017 DLCO standard, DLCO x (1 + 0.0031 (PIO2 - 150)), PIO2 = 0.21 (PB - 47)
+    # at 615 mmHg: 1 + 0.0031 x (0.21 x (615 - 47) - 150) = 1 + 0.0031 x (119.28 - 150) = 0.904768
     outcome = sample_outcomes["03-high-altitude"]
 
-    # at 615 mmHg: 1 + 0.0031 x (0.2093 x (615 - 47) - 150) = 1 + 0.0031 x (118.88 - 150) = 0.90354
     assert "PRESSURE_ADJUSTMENT" in _codes(outcome)
-    assert outcome.derived.dlco_pressure_adjusted.value == pytest.approx(36.4 * 0.90354, abs=0.01)
+    assert 36.4 * 0.904768 == pytest.approx(outcome.derived.dlco_pressure_adjusted.value, abs=1e-3)
+
+
+def test_percent_predicted_uses_the_sea_level_value(sample_outcomes):
+    """Sample 03 (615 mmHg): DLCO 99.8 % and KCO 96.9 % predicted from the adjusted values, not 110 % and 107 %."""
+    # source: ERS/ATS 2017 DLCO standard: the measured value is adjusted to sea level before comparison.
+    # Hand computation: factor 0.904768 (above); DLCO 36.4 x 0.904768 = 32.934 -> 32.934 / 33.0 = 99.80 %
+    #   KCO 5.13 x 0.904768 = 4.6415 -> 4.6415 / 4.79 = 96.90 %  (unadjusted: 110.3 % and 107.1 %)
+    derived = sample_outcomes["03-high-altitude"].derived
+
+    assert 99.80 == pytest.approx(derived.dlco_percent_predicted.value, abs=0.01)
+    assert 96.90 == pytest.approx(derived.kco_percent_predicted.value, abs=0.01)
+    assert "4.64" == derived.kco_pressure_adjusted.text()
+
+
+def test_sea_level_test_gets_no_second_dlco(sample_outcomes):
+    """Sample 07 at 760.6 mmHg: the adjusted DLCO equals the reported 24.8 at its precision, so none is derived."""
+    # source: ERS/ATS 2017 DLCO standard, PIO2 = 0.21 (PB - 47). Hand computation: 101.4 kPa x 7.50062
+    #   = 760.56 mmHg; 0.21 x (760.56 - 47) = 149.848; 1 + 0.0031 x (149.848 - 150) = 0.999529;
+    #   24.8 x 0.999529 = 24.788 -> 24.8, the reported value (today's 0.2093 gave 74.1 -> 73.9 mL/min/mmHg)
+    derived = sample_outcomes["07-unit-mislabel"].derived
+
+    assert None is derived.dlco_pressure_adjusted
 
 
 def test_raised_cohb(sample_outcomes):
@@ -105,8 +126,9 @@ def test_raised_cohb(sample_outcomes):
     outcome = sample_outcomes["04-raised-cohb"]
 
     assert "COHB_RAISED" in _codes(outcome)
-    # from memory: anaemia-effect form 100/(100 - COHb)
-    assert outcome.derived.dlco_cohb_adjusted.value == pytest.approx(6.10 * 2.987 * 100 / 91.5, rel=1e-3)
+    # source: ATS/ERS 2005 DLCO standard, COHb adjustment to a 2 % baseline (from memory):
+    #   6.10 mmol/min/kPa x 2.987 = 18.221 mL/min/mmHg; x 100 / (102 - 8.5) = 19.487
+    assert 19.487 == pytest.approx(outcome.derived.dlco_cohb_adjusted.value, abs=1e-3)
 
 
 def test_child_uses_the_child_constant(sample_outcomes):
@@ -184,3 +206,36 @@ def test_not_repeatable_is_the_decision_derive_made(sample_outcomes, tables: Tab
     # 2 mL/min/mmHg; secondary rendering, see mappings/quality_grades.toml)
     for outcome in sample_outcomes.values():
         assert (outcome.derived.repeatable is False) == ("NOT_REPEATABLE" in _codes(outcome))
+
+
+def test_three_grade_a_manoeuvres_with_a_repeatable_pair_are_not_flagged(tables: Tables):
+    """Grade-A manoeuvres at 28.49, 29.89 and 32.82: the first two agree, so no NOT_REPEATABLE warning."""
+    # source: ERS/ATS 2017 DLCO standard: two acceptable manoeuvres within 2 mL/min/mmHg (secondary
+    #   rendering, mappings/quality_grades.toml); hand check: 29.89 - 28.49 = 1.40 <= 2, 32.82 - 28.49 = 4.33
+    import math
+
+    targets = (28.49, 29.89, 32.82)
+
+    def three_grade_a(doc):
+        third = doc["manoeuvres"][2]
+        third["inspired_volume"]["value"] = 4.6  # VI/VC 96 % and breath-hold 10 s: grade A
+        third["breath_hold_time"]["value"] = 10.0
+        for m in doc["manoeuvres"]:
+            m.pop("reported", None)
+
+    first = _variant("06-three-manoeuvres", three_grade_a, tables)
+
+    def at_targets(doc):
+        three_grade_a(doc)
+        # DLCO is proportional to ln(FA,CO,0 / FA,CO) (single-breath equation): scale each logarithm
+        for m, a, target in zip(doc["manoeuvres"], first.derived.manoeuvres, targets, strict=True):
+            fa_co0 = m["inspired_co_fraction"] * m["alveolar_tracer_fraction"] / m["inspired_tracer_fraction"]
+            log_ratio = math.log(fa_co0 / m["alveolar_co_fraction"])
+            m["alveolar_co_fraction"] = fa_co0 * math.exp(-log_ratio * target / a.dlco.value)
+
+    outcome = _variant("06-three-manoeuvres", at_targets, tables)
+
+    assert [28.49, 29.89, 32.82] == [round(a.dlco.value, 2) for a in outcome.derived.manoeuvres]
+    assert ["A", "A", "A"] == [a.grade for a in outcome.derived.manoeuvres]
+    assert (0, 1) == outcome.derived.reported_manoeuvres
+    assert "NOT_REPEATABLE" not in _codes(outcome)

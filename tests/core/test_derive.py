@@ -88,3 +88,29 @@ def test_sessions_without_manoeuvres_have_no_manoeuvre_values(sample_outcomes: d
         assert derived.session_grade is None
         assert derived.dlco_from_manoeuvres is None
         assert derived.va_from_manoeuvres is None
+
+
+def _without_vital_capacity(doc):
+    for m in doc["manoeuvres"]:
+        m.pop("vital_capacity", None)
+
+
+def test_session_without_vital_capacity_grades_on_what_it_has(tables):
+    """Sample 06 without VC: no manoeuvre's VI/VC is evaluated; the session grade and the notes say what it rests on."""
+    # source: ERS/ATS 2017 DLCO standard grade table (VI/VC against the subject's VC); hand check:
+    #   with VC 4.8 L manoeuvre 3 has VI/VC 3.71 / 4.8 = 77 %, so no inspired volume may stand in for VC
+    import json
+    from pathlib import Path
+
+    from bridge.emit.observations import build_content
+    from bridge.pipeline import process
+
+    doc = json.loads((Path(__file__).resolve().parents[2] / "samples" / "06-three-manoeuvres.json").read_text())
+    _without_vital_capacity(doc)
+    outcome = process(json.dumps(doc).encode(), "06-no-vc.json", tables)
+    d = outcome.derived
+    notes = build_content(outcome, tables, "si").notes
+
+    assert all("VI/VC not evaluated: no vital capacity" in m.grade_reasons for m in d.manoeuvres)
+    assert ("VI/VC not evaluated: no vital capacity",) == d.grade_not_evaluated
+    assert any(n.startswith("Test quality grade") and "VI/VC not evaluated" in n for n in notes)

@@ -8,6 +8,7 @@ from hypothesis import strategies as st
 
 from bridge.model import Measure, Quantity
 from bridge.science.normalise import express, normalise, normalise_quantity
+from bridge.science.units import decimals_after_conversion
 from bridge.tables.files import load_tables
 
 UNITS = load_tables().units
@@ -32,11 +33,67 @@ def test_express_gives_back_the_labs_digits():
     assert back.text() == "7.460"
 
 
-def test_converted_value_keeps_significant_digits():
-    """7.460 mmol/min/kPa (4 significant digits) is shown as 22.28 mL/min/mm[Hg]."""
+def test_converted_value_keeps_the_rounding_step():
+    """7.460 mmol/min/kPa (step 0.001, i.e. 0.003 mL/min/mm[Hg]) is shown as 22.283, not 22.28."""
+    # source: NIST SP 811 (2008) B.7.2 -- the converted step (0.001) is no coarser than 0.001 x 2.987
     q = normalise_quantity(Quantity(value=7.46, unit="mmol/min/kPa", decimals=3), DLCO, UNITS, "results.dlco")
 
-    assert q.text() == "22.28"
+    assert "22.283" == q.text()
+
+
+@pytest.mark.parametrize(
+    ("value", "decimals", "unit", "target", "expected"),
+    [
+        # source: NIST SP 811 (2008) B.7.2 rule; check values of issue 8 with 1 mmol/min/kPa = 2.987 mL/min/mm[Hg]
+        (8.4, 1, "mmol/min/kPa", "mL/min/mm[Hg]", "25.1"),  # 8.4 x 2.987 = 25.0908
+        (6.1, 1, "mmol/min/kPa", "mL/min/mm[Hg]", "18.2"),  # 6.1 x 2.987 = 18.2207
+        (9.84, 2, "mmol/min/kPa", "mL/min/mm[Hg]", "29.39"),  # 9.84 x 2.987 = 29.3921
+        (7.83, 2, "mmol/min/kPa", "mL/min/mm[Hg]", "23.39"),  # a limit: 7.83 x 2.987 = 23.3882
+        (152, 0, "g/L", "g/dL", "15.2"),  # step 1 g/L = 0.1 g/dL
+        (15.2, 1, "g/dL", "g/L", "152"),  # step 0.1 g/dL = 1 g/L
+        (100.6, 1, "kPa", "mm[Hg]", "754.6"),  # 100.6 x 7.50062 = 754.562; step 0.75 mmHg -> 0.1
+    ],
+)
+def test_converted_values_keep_the_source_rounding_step(value, decimals, unit, target, expected):
+    """A converted value is shown with a rounding step no coarser than the source's (8.4 -> 25.1, not 25)."""
+    q = Quantity(value=value, unit=UNITS.resolve(unit).code, decimals=decimals)
+
+    assert expected == express(q, target, UNITS).text()
+
+
+def test_nist_example_feet_to_metres():
+    """36 ft -> 11.0 m: 0 decimals and a factor of 0.3048 give 1 decimal."""
+    # source: NIST SP 811 (2008) B.7.2, its own example (1 ft = 0.3048 m exactly)
+    assert 1 == decimals_after_conversion(0, 0.3048)
+
+
+@settings(max_examples=300)
+@given(
+    st.integers(min_value=0, max_value=6),
+    st.sampled_from(
+        [
+            ("mmol/min/kPa", "mL/min/mm[Hg]"),
+            ("mL/min/mm[Hg]", "mmol/min/kPa"),
+            ("mmol/min/kPa/L", "mL/min/mm[Hg]/L"),
+            ("g/L", "g/dL"),
+            ("g/dL", "g/L"),
+            ("kPa", "mm[Hg]"),
+            ("mm[Hg]", "kPa"),
+            ("mL", "L"),
+        ]
+    ),
+)
+def test_converted_rounding_step_is_never_coarser(decimals, pair):
+    """The converted step 10**-d' never exceeds the source step 10**-d times the factor."""
+    # source: NIST SP 811 (2008) B.7.2; the factor from the catalogue, the step by definition
+    source, target = pair
+    factor = UNITS.factor_between(source, target)
+
+    converted = decimals_after_conversion(decimals, factor)
+
+    assert 10.0**-converted <= 10.0**-decimals * factor * (1 + 1e-9)
+    # and not a digit more than needed (no negative decimals: 15 g/dL is 150 g/L, not 1.5e2)
+    assert converted == 0 or 10.0 ** -(converted - 1) > 10.0**-decimals * factor
 
 
 def test_normalising_twice_changes_nothing(sample_outcomes):

@@ -90,3 +90,20 @@ def test_one_grade_a_has_nothing_to_compare():
 
     assert (0,) == chosen.indices
     assert chosen.repeatable is None
+
+
+def test_without_vital_capacity_vi_vc_is_not_evaluated():
+    """No VC: VI/VC is not evaluated (not 100 % by construction); the grade rests on the other criteria and says so."""
+    # source: ERS/ATS 2017 DLCO standard grade table: VI/VC needs the subject's vital capacity
+    grades = grade_manoeuvres([_facts(3.5), _facts(4.75)], None, TABLE)
+
+    assert ("VI/VC not evaluated: no vital capacity",) == grades[0].reasons
+    assert ("VI/VC not evaluated: no vital capacity",) == grades[0].not_evaluated
+
+
+def test_without_sample_collection_time_the_grade_says_so():
+    """A missing sample-collection time is a criterion not evaluated, stated with the grade."""
+    # source: ERS/ATS 2017 DLCO standard grade table (sample collection time is a criterion of every grade)
+    grade = grade_manoeuvres([_facts(4.75, sample=None)], 5.0, TABLE)[0]
+
+    assert ("sample collection time not evaluated: not reported",) == grade.reasons
