@@ -10,6 +10,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
+from bridge.display.unit_text import for_people
 from bridge.model import Outcome, Quantity, Severity
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
@@ -55,9 +56,9 @@ def shown(quantity: Quantity, tables: Tables, units: UnitSystem) -> Quantity:
 
 def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
     q = shown(quantity, tables, units)
-    text = f"{q.text()} {q.unit}"
+    text = f"{q.text()} {for_people(q.unit)}"  # people read the trade's spelling; --json keeps UCUM
     original = quantity.original
-    if original is not None and (original.unit != q.unit or original.value != q.text()):
+    if original is not None and (for_people(original.unit) != for_people(q.unit) or original.value != q.text()):
         text += f"   (as sent: {original.value} {original.unit})"
     return text
 
