@@ -57,7 +57,7 @@ class RetentionLedger(Database):
         now = self._now()
         payload_cutoff = now - payload_days * DAY
         memory_cutoff = now - max(memory_days, payload_days) * DAY
-        before = self.size().bytes
+        before = self.size()
         with self._write() as conn:
             attempts = conn.execute(
                 "DELETE FROM attempts WHERE outbox_id IN (SELECT id FROM outbox "
@@ -80,12 +80,14 @@ class RetentionLedger(Database):
                 "(SELECT 1 FROM repeated_drops WHERE repeated_drops.sha256 = inputs.sha256)",
                 (memory_cutoff,),
             ).rowcount
-        vacuumed = vacuum and self._vacuum_if_it_pays()
-        return PruneResult(payloads, attempts, drops, messages, inputs, vacuumed, before, self.size().bytes)
+        vacuumed = vacuum and self._vacuum_if_it_pays(before)
+        return PruneResult(payloads, attempts, drops, messages, inputs, vacuumed, before.bytes, self.size().bytes)
 
-    def _vacuum_if_it_pays(self) -> bool:
+    def _vacuum_if_it_pays(self, before: LedgerSize) -> bool:
+        # Emptied payloads leave pages half full rather than free: count the bytes released too.
         size = self.size()
-        if size.free_bytes < max(VACUUM_MIN_FREE_BYTES, VACUUM_FREE_FRACTION * size.bytes):
+        reclaimable = size.free_bytes + max(0, before.payload_bytes - size.payload_bytes)
+        if reclaimable < max(VACUUM_MIN_FREE_BYTES, VACUUM_FREE_FRACTION * size.bytes):
             return False
         with self._lock, translated(self._path):
             self._conn.execute("VACUUM")
