@@ -44,6 +44,7 @@ from bridge.pipeline import Route, process
 from bridge.readers.schema import export_schema
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
+from bridge.service.receiver import ANSWERS, FhirPeer, MllpPeer, ResourceStore, StandInSettings
 from bridge.service.runner import Service
 from bridge.service.transports.base import OutgoingMessage, TlsOptions, Transport
 from bridge.service.transports.fhir_rest import FhirRestTransport
@@ -160,7 +161,39 @@ def build_parser() -> argparse.ArgumentParser:
     which.add_argument("id", nargs="?", type=int, help="outbox id (see status --json)")
     which.add_argument("--rejected", action="store_true", help="every dead-lettered message")
     _add_prune(commands, config_help)
+    _add_stand_in(commands)
     return parser
+
+
+def _add_stand_in(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    defaults = StandInSettings(Path())
+    stand_in = commands.add_parser(
+        "stand-in",
+        help="a loopback MLLP listener and FHIR endpoint to try a feed against (never started by watch)",
+        description="Listen on 127.0.0.1 only: MLLP (each message written to FOLDER/messages/ and answered) and "
+        "a FHIR endpoint taking transaction Bundles (kept in FOLDER/resources.sqlite3). Runs until Ctrl-C/SIGTERM. "
+        "For trials and rehearsals, not for patient data in production.",
+    )
+    stand_in.add_argument("--folder", type=Path, required=True, help="where received messages and resources are kept")
+    stand_in.add_argument(
+        "--mllp-port",
+        type=int,
+        default=defaults.mllp_port,
+        help=f"MLLP port on 127.0.0.1 (default {defaults.mllp_port})",
+    )
+    stand_in.add_argument(
+        "--fhir-port",
+        type=int,
+        default=defaults.fhir_port,
+        help=f"FHIR port on 127.0.0.1, base URL http://127.0.0.1:PORT/fhir (default {defaults.fhir_port})",
+    )
+    stand_in.add_argument(
+        "--answer",
+        choices=ANSWERS,
+        default=defaults.answer,
+        help=f"MSA-1 of every ACK: AA accepts, AE and AR rehearse refusals (default {defaults.answer})",
+    )
+    stand_in.add_argument("--list", action="store_true", help="list the FHIR resources kept in FOLDER, then exit")
 
 
 def _add_prune(commands: argparse._SubParsersAction[argparse.ArgumentParser], config_help: str) -> None:
@@ -511,7 +544,55 @@ def _megabytes(n: int) -> str:
     return f"{n / 1_000_000:.1f} MB"
 
 
+def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    where = StandInSettings(args.folder, args.mllp_port, args.fhir_port, args.answer)
+    if args.list:
+        return _list_stand_in(where)
+    for key, port in (("--mllp-port", where.mllp_port), ("--fhir-port", where.fhir_port)):
+        if not 0 <= port <= 65535:
+            raise ConfigError(key, f"a port number 0-65535, got {port}")
+    stop = threading.Event()
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(signum, lambda *_: stop.set())
+    store = ResourceStore(where.resources)
+    try:
+        mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
+        fhir = FhirPeer(store, where.fhir_port)
+    except OSError as exc:
+        store.close()
+        raise ConfigError("--mllp-port/--fhir-port", f"free ports on 127.0.0.1 ({exc.strerror or exc})") from exc
+    mllp.start()
+    fhir.start()
+    print(f"dlco-bridge stand-in: MLLP on 127.0.0.1:{mllp.port} (answers {where.answer}), FHIR at {fhir.url}")
+    print(f"  messages in {where.messages}/, resources in {where.resources} (stop with Ctrl-C)", flush=True)
+    try:
+        stop.wait()
+    finally:
+        mllp.stop()
+        fhir.stop()
+        store.close()
+    print(f"dlco-bridge stand-in: stopped; {_count(mllp.received, 'message')}, {_count(fhir.bundles, 'Bundle')}")
+    return EXIT_OK
+
+
+def _list_stand_in(where: StandInSettings) -> int:
+    if not where.resources.exists():
+        print(f"{where.resources}: (file): resources kept by dlco-bridge stand-in, found none", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    store = ResourceStore(where.resources)
+    try:
+        resources = store.all()
+    finally:
+        store.close()
+    for item in resources:
+        print(f"{item.reference:<24} v{item.version}  {item.criteria}")
+    messages = len(list(where.messages.glob("*.hl7"))) if where.messages.is_dir() else 0
+    print(f"{_count(len(resources), 'resource')}; {_count(messages, 'HL7 message')} in {where.messages}")
+    return EXIT_OK
+
+
 COMMANDS = {
+    "stand-in": cmd_stand_in,
     "prune": cmd_prune,
     "watch": cmd_watch,
     "status": cmd_status,
