@@ -184,7 +184,11 @@ class FhirRestTransport:
         self.busy = busy
         self._clock = clock
         # The key is read here: a bad one stops the start with a ConfigError.
-        self._tokens = None if smart is None else SmartTokens(smart, self._client, clock)
+        try:
+            self._tokens = None if smart is None else SmartTokens(smart, self._client, clock)
+        except ConfigError:
+            self._client.close()
+            raise
 
     def __repr__(self) -> str:
         # Without any user:password part of the URL.
