@@ -95,9 +95,16 @@ class Service:
             log.info("service stopped", extra={"event": "stopped"})
 
     def _own_folders(self) -> list[Path]:
-        """Where the service writes atomically: archive, quarantine and file destinations."""
+        """Where the service writes atomically: the quarantine, file destinations and the archive.
+
+        Of the archive only the two newest day folders (and their ``duplicates/``) are looked at:
+        a crash leaves its temporary file in the folder of the day it happened, the last run's,
+        and years of archive are not walked at every start.
+        """
         folders = [self.settings.archive, self.settings.quarantine]
-        return folders + [d.folder for d in self.settings.destinations if d.folder is not None]
+        folders += [d.folder for d in self.settings.destinations if d.folder is not None]
+        days = sorted(p for p in self.settings.archive.glob("????-??-??") if p.is_dir())[-2:]
+        return folders + [f for day in days for f in (day, day / "duplicates")]
 
     def _remove_strays(self) -> None:
         """Temporary files of writes a crash cut short: never complete, never read; removed."""

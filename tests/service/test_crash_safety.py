@@ -125,6 +125,10 @@ def test_kill_9_during_quarantine_writes_leaves_no_temporary_file_after_a_restar
     site.archive.mkdir(parents=True, exist_ok=True)
     planted = site.quarantine / ".bad-0000.json.error.json.k3x9_q2z.tmp"
     planted.write_bytes(b'{"file": "bad-00')
+    # A move across file systems into the archive cut short (files.move_durably's naming).
+    (site.archive / "2031-01-01" / "duplicates").mkdir(parents=True)
+    moved = site.archive / "2031-01-01" / "duplicates" / ".bad-0001.json.tmp"
+    moved.write_bytes(b"{")
     not_ours = [site.quarantine / ".keep", site.archive / "notes.tmp", site.inbox / ".lab-export.json.part"]
     for path in not_ours:
         path.write_bytes(b"left alone")
@@ -137,6 +141,7 @@ def test_kill_9_during_quarantine_writes_leaves_no_temporary_file_after_a_restar
     assert [] == _strays(site)
     assert all(path.is_file() for path in not_ours)
     assert f"stray temporary file removed  event=stray_removed file={planted}" in site.stderr()
+    assert f"event=stray_removed file={moved}" in site.stderr()
 
 
 def _strays(site: Site) -> list[str]:
