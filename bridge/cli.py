@@ -555,10 +555,13 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
     for signum in (signal.SIGTERM, signal.SIGINT):
         signal.signal(signum, lambda *_: stop.set())
     store = ResourceStore(where.resources)
+    mllp: MllpPeer | None = None
     try:
         mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
         fhir = FhirPeer(store, where.fhir_port)
     except OSError as exc:
+        if mllp is not None:
+            mllp.server.server_close()
         store.close()
         raise ConfigError("--mllp-port/--fhir-port", f"free ports on 127.0.0.1 ({exc.strerror or exc})") from exc
     mllp.start()
