@@ -24,22 +24,33 @@ from pathlib import Path
 import orjson
 
 from bridge import __version__
-from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Destination, Settings, config_path, load_settings
+from bridge.config import (
+    CONFIG_ENV,
+    SAMPLE_CONFIG,
+    UNIT_SYSTEMS,
+    Destination,
+    ServiceSettings,
+    Settings,
+    config_path,
+    load_settings,
+)
 from bridge.display.bundle_summary import describe_bundle
 from bridge.display.check_report import CAUTION, outcome_json, outcome_text
 from bridge.display.hl7_fields import describe_er7
 from bridge.emit.outputs import file_stem
-from bridge.errors import BridgeError, ConfigError, InputError, ProcessingFailed, UnreadableInput
+from bridge.errors import BridgeError, ConfigError, InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import Route, process
 from bridge.readers.schema import export_schema
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
+from bridge.service.receiver import ANSWERS, FhirPeer, MllpPeer, ResourceStore, StandInSettings
 from bridge.service.runner import Service
 from bridge.service.transports.base import OutgoingMessage, TlsOptions, Transport
 from bridge.service.transports.fhir_rest import FhirRestTransport
 from bridge.service.transports.file import FileTransport
 from bridge.service.transports.mllp import MllpTransport
+from bridge.service.transports.smart import SmartClient
 from bridge.tables import Tables
 from bridge.tables.files import load_tables, samples_dir
 
@@ -47,6 +58,7 @@ EXIT_OK = 0
 EXIT_SETUP = 1
 EXIT_BAD_INPUT = 2
 DEFAULTS = Settings()  # shown in --help; the values themselves are written in the settings classes
+DEFAULTS_SERVICE = ServiceSettings(Path(), Path(), Path(), Path(), ())
 
 
 def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
@@ -157,7 +169,60 @@ def build_parser() -> argparse.ArgumentParser:
     which = resend.add_mutually_exclusive_group(required=True)
     which.add_argument("id", nargs="?", type=int, help="outbox id (see status --json)")
     which.add_argument("--rejected", action="store_true", help="every dead-lettered message")
+    _add_prune(commands, config_help)
+    _add_stand_in(commands)
     return parser
+
+
+def _add_stand_in(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    defaults = StandInSettings(Path())
+    stand_in = commands.add_parser(
+        "stand-in",
+        help="a loopback MLLP listener and FHIR endpoint to try a feed against (never started by watch)",
+        description="Listen on 127.0.0.1 only: MLLP (each message written to FOLDER/messages/ and answered) and "
+        "a FHIR endpoint taking transaction Bundles (kept in FOLDER/resources.sqlite3). Runs until Ctrl-C/SIGTERM. "
+        "For trials and rehearsals, not for patient data in production.",
+    )
+    stand_in.add_argument("--folder", type=Path, required=True, help="where received messages and resources are kept")
+    stand_in.add_argument(
+        "--mllp-port",
+        type=int,
+        default=defaults.mllp_port,
+        help=f"MLLP port on 127.0.0.1 (default {defaults.mllp_port})",
+    )
+    stand_in.add_argument(
+        "--fhir-port",
+        type=int,
+        default=defaults.fhir_port,
+        help=f"FHIR port on 127.0.0.1, base URL http://127.0.0.1:PORT/fhir (default {defaults.fhir_port})",
+    )
+    stand_in.add_argument(
+        "--answer",
+        choices=ANSWERS,
+        default=defaults.answer,
+        help=f"MSA-1 of every ACK: AA accepts, AE and AR rehearse refusals (default {defaults.answer})",
+    )
+    stand_in.add_argument("--list", action="store_true", help="list the FHIR resources kept in FOLDER, then exit")
+
+
+def _add_prune(commands: argparse._SubParsersAction[argparse.ArgumentParser], config_help: str) -> None:
+    service = DEFAULTS_SERVICE
+    prune = commands.add_parser(
+        "prune",
+        help="remove delivered payloads and old ledger rows; duplicates stay recognisable",
+        description="Remove the payloads and attempt history of messages delivered more than DAYS ago; forget "
+        "delivered messages and their inputs after duplicate_memory_days (default "
+        f"{service.duplicate_memory_days:g}). Pending and rejected messages are never pruned. "
+        "Run it with the service stopped (or set retention_days and let the service prune).",
+    )
+    prune.add_argument("--config", type=Path, help=config_help)
+    prune.add_argument(
+        "--older-than",
+        type=float,
+        required=True,
+        metavar="DAYS",
+        help="prune what was delivered more than DAYS days ago (0 or more)",
+    )
 
 
 def settings_of(args: argparse.Namespace, environ: Mapping[str, str]) -> Settings:
@@ -206,7 +271,18 @@ def run_inputs(
             yield path, ProcessingFailed.wrapping(exc, str(path))
 
 
+def no_inputs(paths: Sequence[Path]) -> bool:
+    """Whether ``paths`` name no input at all (an empty folder, say), said on stderr once."""
+    if any(True for _ in expand(paths)):
+        return False
+    named = ", ".join(str(p) for p in paths)
+    print(f"{named}: (inputs): at least one export file, found none", file=sys.stderr)
+    return True
+
+
 def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    if no_inputs(args.files):
+        return EXIT_BAD_INPUT
     failed = 0
     reports: list[dict[str, object]] = []
     for path, result in run_inputs(args.files, settings, tables):
@@ -261,6 +337,8 @@ def convert_files(
 
 
 def cmd_convert(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    if no_inputs(args.files):
+        return EXIT_BAD_INPUT
     failed = 0
     for path, result, written in convert_files(args.files, args.out, settings, tables):
         if isinstance(result, InputError):
@@ -314,17 +392,38 @@ def cmd_show(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
     except OSError as exc:
         print(f"{args.file}: (file): a readable file ({exc.strerror})", file=sys.stderr)
         return EXIT_BAD_INPUT
-    text = data.decode("utf-8", errors="replace")
-    if text.lstrip().startswith("{"):
-        try:
-            bundle = json.loads(text)
-        except json.JSONDecodeError as exc:
-            print(f"{args.file}: line {exc.lineno}: valid JSON ({exc.msg})", file=sys.stderr)
-            return EXIT_BAD_INPUT
-        sys.stdout.write(describe_bundle(bundle))
-    else:
-        sys.stdout.write(describe_er7(text))
+    try:
+        shown = describe_shown(data, str(args.file))
+    except InputError as exc:
+        print(exc.line(), file=sys.stderr)
+        return EXIT_BAD_INPUT
+    sys.stdout.write(shown)
     return EXIT_OK
+
+
+SHOWABLE = "an HL7 v2 message (MSH segment first) or a FHIR Bundle (JSON, resourceType Bundle)"
+
+
+def describe_shown(data: bytes, source: str) -> str:
+    """What ``show`` prints for ``data``; anything but an ER7 message or a Bundle is an InputError."""
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError:
+        raise UnknownFormat("(content)", f"{SHOWABLE}, got bytes that are not UTF-8 text", source) from None
+    stripped = text.strip("\x0b\x1c\r\n\t \ufeff")  # MLLP framing and white space around a message
+    if stripped.startswith("{"):
+        try:
+            document = json.loads(stripped)
+        except json.JSONDecodeError as exc:
+            raise UnknownFormat(f"line {exc.lineno}", f"valid JSON ({exc.msg})", source) from None
+        if not isinstance(document, dict) or document.get("resourceType") != "Bundle":
+            kind = document.get("resourceType") if isinstance(document, dict) else None
+            got = f"resourceType {kind}" if kind else "JSON without resourceType Bundle"
+            raise UnknownFormat("resourceType", f"{SHOWABLE}, got {got}", source)
+        return describe_bundle(document)
+    if stripped.startswith("MSH") and len(stripped) > 8:
+        return describe_er7(stripped)
+    raise UnknownFormat("(content)", f"{SHOWABLE}, got text starting {stripped[:12]!r}", source)
 
 
 def cmd_schema(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
@@ -341,16 +440,26 @@ def build_transport(destination: Destination) -> Transport:
         assert destination.folder is not None  # checked by config
         return FileTransport(destination.folder)
     if destination.transport == "mllp":
+        retried = frozenset(code for code, policy in (("AE", destination.on_ae), ("AR", destination.on_ar))
+                            if policy == "retry")  # fmt: skip
         return MllpTransport(
             destination.host,
             destination.port,
             connect_timeout=destination.connect_timeout,
             read_timeout=destination.read_timeout,
             tls=tls,
+            retried=retried,
+        )
+    smart = None
+    if destination.client_id and destination.private_key_file is not None:
+        smart = SmartClient(
+            destination.client_id, destination.token_url, destination.private_key_file, destination.scopes
         )
     return FhirRestTransport(
         destination.base_url,
         token=destination.token,
+        smart=smart,
+        busy=destination.on_busy,
         connect_timeout=destination.connect_timeout,
         read_timeout=destination.read_timeout,
         tls=tls,
@@ -379,16 +488,20 @@ def cmd_status(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
     with Ledger.open(service.ledger_path, read_only=True) as ledger:
         summary = ledger.summary()
         dead = ledger.rows("rejected")
+        size = ledger.size()
     dead_letters = [
         {"id": r.id, "destination": r.destination, "message_id": r.message_id, "test_id": r.test_id,
          "attempts": r.attempts, "reason": r.last_error}
         for r in dead
     ]  # fmt: skip
     if args.json:
-        document = {**asdict(summary), "dead_letters": dead_letters}
+        document = {**asdict(summary), "ledger_bytes": size.bytes, "dead_letters": dead_letters}
         sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
         return EXIT_OK
-    print(f"ledger {service.ledger_path}")
+    print(
+        f"ledger {service.ledger_path}  {_megabytes(size.bytes)} ({_megabytes(size.payload_bytes)} of payloads, "
+        f"{_megabytes(size.free_bytes)} free)"
+    )
     print(
         f"  inputs: {summary.processed} processed, {summary.corrections} corrections, "
         f"{summary.duplicates} duplicates, {summary.quarantined} quarantined"
@@ -414,7 +527,85 @@ def cmd_resend(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
     return EXIT_OK
 
 
+def cmd_prune(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    service = settings.require_service()
+    if not args.older_than >= 0:
+        raise ConfigError("--older-than", f"a number of days >= 0, got {args.older_than}")
+    # The service prunes on its own (retention_days); by hand, only while it is stopped.
+    with ServiceLock.acquire(service.state), Ledger.open(service.ledger_path) as ledger:
+        result = ledger.prune(args.older_than, service.duplicate_memory_days, vacuum=True)
+    print(
+        f"ledger {service.ledger_path}: {_count(result.payloads, 'payload')} and "
+        f"{_count(result.attempts, 'attempt record')} removed (delivered over {args.older_than:g} days ago); "
+        f"{_count(result.messages, 'message')} and {_count(result.inputs, 'input')} forgotten "
+        f"(over {max(service.duplicate_memory_days, args.older_than):g} days); "
+        f"{_megabytes(result.bytes_before)} -> {_megabytes(result.bytes_after)}"
+        + (" after VACUUM" if result.vacuumed else "")
+    )
+    return EXIT_OK
+
+
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}{'' if n == 1 else 's'}"
+
+
+def _megabytes(n: int) -> str:
+    return f"{n / 1_000_000:.1f} MB"
+
+
+def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    where = StandInSettings(args.folder, args.mllp_port, args.fhir_port, args.answer)
+    if args.list:
+        return _list_stand_in(where)
+    for key, port in (("--mllp-port", where.mllp_port), ("--fhir-port", where.fhir_port)):
+        if not 0 <= port <= 65535:
+            raise ConfigError(key, f"a port number 0-65535, got {port}")
+    stop = threading.Event()
+    for signum in (signal.SIGTERM, signal.SIGINT):
+        signal.signal(signum, lambda *_: stop.set())
+    store = ResourceStore(where.resources)
+    mllp: MllpPeer | None = None
+    try:
+        mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
+        fhir = FhirPeer(store, where.fhir_port)
+    except OSError as exc:
+        if mllp is not None:
+            mllp.server.server_close()
+        store.close()
+        raise ConfigError("--mllp-port/--fhir-port", f"free ports on 127.0.0.1 ({exc.strerror or exc})") from exc
+    mllp.start()
+    fhir.start()
+    print(f"dlco-bridge stand-in: MLLP on 127.0.0.1:{mllp.port} (answers {where.answer}), FHIR at {fhir.url}")
+    print(f"  messages in {where.messages}/, resources in {where.resources} (stop with Ctrl-C)", flush=True)
+    try:
+        stop.wait()
+    finally:
+        mllp.stop()
+        fhir.stop()
+        store.close()
+    print(f"dlco-bridge stand-in: stopped; {_count(mllp.received, 'message')}, {_count(fhir.bundles, 'Bundle')}")
+    return EXIT_OK
+
+
+def _list_stand_in(where: StandInSettings) -> int:
+    if not where.resources.exists():
+        print(f"{where.resources}: (file): resources kept by dlco-bridge stand-in, found none", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    store = ResourceStore(where.resources)
+    try:
+        resources = store.all()
+    finally:
+        store.close()
+    for item in resources:
+        print(f"{item.reference:<24} v{item.version}  {item.criteria}")
+    messages = len(list(where.messages.glob("*.hl7"))) if where.messages.is_dir() else 0
+    print(f"{_count(len(resources), 'resource')}; {_count(messages, 'HL7 message')} in {where.messages}")
+    return EXIT_OK
+
+
 COMMANDS = {
+    "stand-in": cmd_stand_in,
+    "prune": cmd_prune,
     "watch": cmd_watch,
     "status": cmd_status,
     "resend": cmd_resend,
@@ -424,7 +615,7 @@ COMMANDS = {
     "show": cmd_show,
     "schema": cmd_schema,
 }
-_NEEDS_CONFIG = ("watch", "status", "resend")
+_NEEDS_CONFIG = ("watch", "status", "resend", "prune")
 
 
 def main(argv: Sequence[str] | None = None) -> int:

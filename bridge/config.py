@@ -23,7 +23,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any, Literal
-from urllib.parse import urlsplit
+from urllib.parse import urlsplit, urlunsplit
 
 from bridge.emit.hl7v2 import IS_LENGTH
 from bridge.emit.observations import HEMOGLOBIN_UNITS
@@ -37,6 +37,8 @@ ENV_PREFIX = "DLCO_BRIDGE_"
 CONFIG_ENV = ENV_PREFIX + "CONFIG"  # the configuration file, when --config is not given
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 TransportKind = Literal["file", "mllp", "fhir-rest"]
+AnswerPolicy = Literal["dead-letter", "retry"]
+ANSWER_POLICIES: tuple[AnswerPolicy, ...] = ("dead-letter", "retry")
 TRANSPORT_KINDS: tuple[TransportKind, ...] = ("file", "mllp", "fhir-rest")
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
 PROCESSING_IDS = ("P", "T", "D")  # source: HL7 v2.5.1 table 0103 (production, training, debugging)
@@ -70,6 +72,24 @@ class Destination:
     key_file: Path | None = None
     connect_timeout: float = 10.0
     read_timeout: float = 30.0
+    on_ae: AnswerPolicy = "dead-letter"  # mllp: what an AE/CE answer means
+    on_ar: AnswerPolicy = "dead-letter"  # mllp: what an AR/CR answer means (some receivers: "busy")
+    on_busy: AnswerPolicy = "retry"  # fhir-rest: HTTP 429/503 (Retry-After honoured when retried)
+    client_id: str = ""  # fhir-rest, SMART Backend Services: OAuth 2.0 client credentials with a JWT
+    token_url: str = ""
+    private_key_file: Path | None = None  # PEM, RSA (RS384) or EC P-384 (ES384)
+    scopes: str = "system/*.write"
+
+    @property
+    def address(self) -> str:
+        """Where it delivers, for logs: host:port, the URL (without credentials) or the folder."""
+        if self.transport == "mllp":
+            return f"{self.host}:{self.port}"
+        if self.transport == "fhir-rest":
+            parts = urlsplit(self.base_url)
+            host = parts.hostname or ""
+            return urlunsplit(parts._replace(netloc=f"{host}:{parts.port}" if parts.port else host))
+        return str(self.folder)
 
 
 @dataclass(frozen=True, slots=True)
@@ -89,6 +109,8 @@ class ServiceSettings:
     metrics_host: str = "127.0.0.1"
     log_format: Literal["text", "json"] = "text"
     log_patient_data: bool = False
+    retention_days: float = 0.0  # 0: keep delivered payloads; else prune them (and old rows) after so many days
+    duplicate_memory_days: float = 3650.0  # how long input hashes and control ids are kept to recognise a resend
 
     @property
     def ledger_path(self) -> Path:
@@ -317,6 +339,10 @@ class _Reader:
             metrics_host=self.loopback("metrics_host", d.get("metrics_host", defaults("metrics_host"))),
             log_format=self.choice("log_format", d.get("log_format", defaults("log_format")), ("text", "json")),  # type: ignore[arg-type]
             log_patient_data=self.flag("log_patient_data", d.get("log_patient_data", defaults("log_patient_data"))),
+            retention_days=self.number("retention_days", d.get("retention_days", defaults("retention_days")), 0.0),
+            duplicate_memory_days=self.number(
+                "duplicate_memory_days", d.get("duplicate_memory_days", defaults("duplicate_memory_days")), 1.0
+            ),
         )
 
     def destination(self, name: str, v: Any) -> Destination:
@@ -348,6 +374,8 @@ class _Reader:
             key_file=self.path(f"{where}.key_file", v["key_file"]) if "key_file" in v else None,
             connect_timeout=self.number(f"{where}.connect_timeout", v.get("connect_timeout", 10.0), 0.01),
             read_timeout=self.number(f"{where}.read_timeout", v.get("read_timeout", 30.0), 0.01),
+            **self.answers(where, v),
+            **self.smart(where, v),
         )
         if transport == "file" and dest.folder is None:
             raise self.fail(f"{where}.folder", "a folder for the file transport")
@@ -358,6 +386,35 @@ class _Reader:
         if dest.token_env and dest.token is None:
             raise self.fail(f"{where}.token_env", f"the environment variable {dest.token_env} to be set")
         return dest
+
+    def answers(self, where: str, v: dict[str, Any]) -> dict[str, Any]:
+        """The response policy of one destination (``on_ae``, ``on_ar``, ``on_busy``)."""
+        return {
+            key: self.choice(f"{where}.{key}", v.get(key, _default(Destination, key)), ANSWER_POLICIES)
+            for key in ("on_ae", "on_ar", "on_busy")
+        }
+
+    def smart(self, where: str, v: dict[str, Any]) -> dict[str, Any]:
+        """SMART Backend Services keys: all of client_id, token_url, private_key_file, or none."""
+        keys = ("client_id", "token_url", "private_key_file")
+        given = [k for k in keys if v.get(k)]
+        if not given:
+            return {}
+        missing = [k for k in keys if k not in given]
+        if missing:
+            raise self.fail(f"{where}.{missing[0]}", f"set with {', '.join(given)} (SMART Backend Services)")
+        if v.get("token_env"):
+            raise self.fail(f"{where}.token_env", "unset when client_id is set (one way to authenticate)")
+        self.url(f"{where}.token_url", str(v["token_url"]))
+        scopes = str(v.get("scopes", _default(Destination, "scopes")))
+        if not scopes.strip() or any(c in scopes for c in '"\\\r\n'):
+            raise self.fail(f"{where}.scopes", f"space-separated scopes, got {scopes!r}")
+        return {
+            "client_id": str(v["client_id"]),
+            "token_url": str(v["token_url"]),
+            "private_key_file": self.path(f"{where}.private_key_file", v["private_key_file"]),
+            "scopes": scopes,
+        }
 
     # ---- one checker per kind of value ----
 

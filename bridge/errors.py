@@ -144,6 +144,14 @@ class DeliveryTimeout(DeliveryError):
     """The receiver did not answer in time."""
 
 
+class RetryLater(DeliveryError):
+    """The receiver asked to be tried again later (HTTP 429/503 with Retry-After): not before ``after`` s."""
+
+    def __init__(self, destination: str, detail: str, after: float) -> None:
+        self.after = after
+        super().__init__(destination, detail)
+
+
 class Rejected(DeliveryError):
     """The receiver answered no (MLLP AE/AR, HTTP 4xx): dead-letter, never retried."""
 

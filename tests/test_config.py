@@ -144,6 +144,8 @@ def test_lab_facilities_come_from_a_table_or_the_environment():
         from_file,
         from_env,
     )
+
+
 def test_allow_comes_from_file_environment_and_repeated_flags():
     """allow is a set of codes: a TOML list, a comma-separated variable, or --allow given twice."""
     from_file = parse_settings('allow = ["UNIT_MISLABEL_PROBABLE"]\n', {})

@@ -10,6 +10,8 @@ from __future__ import annotations
 from collections import Counter
 from typing import Any
 
+from bridge.display.unit_text import for_people
+
 
 def describe_bundle(bundle: dict[str, Any]) -> str:
     """Summary of a Bundle: counts, Observations, DiagnosticReport, Provenance."""
@@ -52,7 +54,8 @@ def _code(resource: dict[str, Any]) -> str:
 
 def _observation(resource: dict[str, Any]) -> str:
     quantity = resource.get("valueQuantity", {})
-    value = f"{quantity.get('value', '-')} {quantity.get('code', quantity.get('unit', ''))}".strip()
+    unit = for_people(str(quantity.get("code", quantity.get("unit", ""))))  # people read the trade's spelling
+    value = f"{quantity.get('value', '-')} {unit}".strip()
     flags = [c.get("code") for i in resource.get("interpretation", []) for c in i.get("coding", [])]
     low = next((r.get("low", {}) for r in resource.get("referenceRange", []) if "low" in r), None)
     parts = [f"{_code(resource):<52}", f"{value:<24}"]

@@ -10,6 +10,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
+from bridge.display.unit_text import for_people
 from bridge.model import Finding, Outcome, Quantity, Severity
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
@@ -56,9 +57,9 @@ def shown(quantity: Quantity, tables: Tables, units: UnitSystem) -> Quantity:
 
 def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
     q = shown(quantity, tables, units)
-    text = f"{q.text()} {q.unit}"
+    text = f"{q.text()} {for_people(q.unit)}"  # people read the trade's spelling; --json keeps UCUM
     original = quantity.original
-    if original is not None and (original.unit != q.unit or original.value != q.text()):
+    if original is not None and (for_people(original.unit) != for_people(q.unit) or original.value != q.text()):
         text += f"   (as sent: {original.value} {original.unit})"
     return text
 
@@ -68,7 +69,7 @@ def finding_text(finding: Finding, tables: Tables, units: UnitSystem) -> str:
 
     def say(quantity: Quantity) -> str:
         q = shown(quantity, tables, units)
-        return f"{q.text()} {q.unit}"
+        return f"{q.text()} {for_people(q.unit)}"
 
     return finding.text(say)
 

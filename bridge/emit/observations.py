@@ -74,6 +74,7 @@ class EmitContext:
     def facility_of(self, lab_name: str) -> str:
         """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
         return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)
+
     hemoglobin_unit: str | None = None  # g/L or g/dL; None: the unit system's display unit
 
 

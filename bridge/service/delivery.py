@@ -19,7 +19,7 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Literal
 
-from bridge.errors import DeliveryError, Rejected
+from bridge.errors import DeliveryError, Rejected, RetryLater
 from bridge.service.backoff import DEFAULT_BASE, DEFAULT_CAP, next_delay
 from bridge.service.ledger import Ledger, OutboxRow
 from bridge.service.transports.base import OutgoingMessage, Transport
@@ -55,8 +55,13 @@ def deliver_one(
     now: Callable[[], float],
     rand: Callable[[], float],
     backoff: Backoff = Backoff(),
+    address: str = "",
 ) -> DeliveryResult | None:
-    """Send the next due message of ``destination``; None when nothing is due."""
+    """Send the next due message of ``destination``; None when nothing is due.
+
+    ``address`` (host:port, URL or folder) is named in the log lines; a receiver's Retry-After
+    is waited out even when the back-off would try sooner.
+    """
     row = ledger.next_due(destination, now())
     if row is None:
         return None
@@ -65,14 +70,22 @@ def deliver_one(
     except Rejected as exc:
         ledger.mark_rejected(row.id, exc.detail)
         # The receiver's text can quote message content: the log names the row, not the text.
-        log.warning("message refused: dead-lettered", extra={"event": "rejected", **_where(row)})
+        log.warning("message refused: dead-lettered", extra={"event": "rejected", **_where(row), "address": address})
         return "rejected"
     except DeliveryError as exc:
         delay = next_delay(row.attempts + 1, backoff.base, backoff.cap, rand=rand)
+        if isinstance(exc, RetryLater):
+            delay = max(delay, exc.after)
         ledger.mark_retry(row.id, f"{type(exc).__name__}: {exc.detail}", now() + delay)
         log.info(
             "delivery failed: will retry",
-            extra={"event": "retry", **_where(row), "error": type(exc).__name__, "retry_in_s": round(delay, 1)},
+            extra={
+                "event": "retry",
+                **_where(row),
+                "address": address,
+                "error": type(exc).__name__,
+                "retry_in_s": round(delay, 1),
+            },
         )
         return "retry"
     ledger.mark_delivered(row.id, receipt.line())
@@ -100,6 +113,7 @@ def deliver_due(
     *,
     backoff: Backoff = Backoff(),
     should_stop: Callable[[], bool] = _never,
+    addresses: Mapping[str, str] | None = None,
 ) -> int:
     """Deliver what is due, one message per destination in turn; return how many finished.
 
@@ -114,7 +128,8 @@ def deliver_due(
         for destination in list(active):
             if should_stop():
                 return finished
-            result = deliver_one(ledger, destination, transports[destination], now, rand, backoff)
+            address = (addresses or {}).get(destination, "")
+            result = deliver_one(ledger, destination, transports[destination], now, rand, backoff, address)
             if result is None or result == "retry":
                 active.remove(destination)
             else:

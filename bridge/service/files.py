@@ -2,16 +2,38 @@
 
 Owns: writing a file so that a reader never sees half of it (temporary file in the same
 folder, fsync, rename, fsync of the folder), and moving an input into the archive or the
-quarantine without losing it (rename; copy + fsync + unlink across file systems).
+quarantine without losing it (rename; copy + fsync + unlink across file systems); and, at
+start, removing the temporary files a crash left behind (only their naming pattern).
 """
 
 from __future__ import annotations
 
 import errno
 import os
+import re
 import shutil
 import tempfile
 from pathlib import Path
+
+# The names of our own temporary files: ".<name>.<8 random characters>.tmp" (write_atomically,
+# tempfile.mkstemp's alphabet) and ".<name>.tmp" (move_durably across file systems).
+STRAY_TEMPORARY = re.compile(r"\..+?\.(?:[a-z0-9_]{8}\.)?tmp")
+
+
+def remove_strays(folder: Path) -> list[Path]:
+    """Delete the temporary files a crash left in ``folder`` (our naming pattern only); return them."""
+    removed = []
+    try:
+        entries = list(os.scandir(folder))
+    except FileNotFoundError:
+        return []
+    for entry in entries:
+        if entry.is_file(follow_symlinks=False) and STRAY_TEMPORARY.fullmatch(entry.name):
+            Path(entry.path).unlink(missing_ok=True)
+            removed.append(Path(entry.path))
+    if removed:
+        sync_folder(folder)
+    return removed
 
 
 def write_atomically(target: Path, data: bytes) -> None:

@@ -22,6 +22,7 @@ from watchdog.observers import Observer
 
 from bridge.config import ServiceSettings, Settings
 from bridge.service.delivery import Backoff, deliver_due
+from bridge.service.files import remove_strays
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
@@ -32,6 +33,7 @@ from bridge.tables import Tables
 log = logging.getLogger("dlco_bridge.service")
 
 IDLE_WAIT_SECONDS = 0.25  # longest sleep of either loop when nothing wakes it
+PRUNE_EVERY_SECONDS = 86_400.0  # automatic retention runs at start and then once a day
 
 
 class Service:
@@ -60,6 +62,8 @@ class Service:
         self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set)
         self.backoff = Backoff(self.settings.retry_base_seconds, self.settings.retry_cap_seconds)
         self._unmovable: dict[str, tuple[int, int]] = {}
+        self.addresses = {d.name: d.address for d in self.settings.destinations}
+        self._next_prune = 0.0
         self.health: HealthServer | None = None
 
     def run(self) -> None:
@@ -67,6 +71,8 @@ class Service:
         self._start_health()  # first: a port in use stops the start before anything runs
         for folder in (self.settings.inbox, self.settings.archive, self.settings.quarantine):
             folder.mkdir(parents=True, exist_ok=True)
+        self._remove_strays()
+        self._log_start()
         pair_moves_quickly()  # before Observer(): watchdog reads the wait when it is built
         observer = Observer()
         observer.schedule(self.readiness, str(self.settings.inbox), recursive=False)
@@ -87,6 +93,37 @@ class Service:
             for transport in self.transports.values():
                 transport.close()
             log.info("service stopped", extra={"event": "stopped"})
+
+    def _own_folders(self) -> list[Path]:
+        """Where the service writes atomically: the quarantine, file destinations and the archive.
+
+        Of the archive only the two newest day folders (and their ``duplicates/``) are looked at:
+        a crash leaves its temporary file in the folder of the day it happened, the last run's,
+        and years of archive are not walked at every start.
+        """
+        folders = [self.settings.archive, self.settings.quarantine]
+        folders += [d.folder for d in self.settings.destinations if d.folder is not None]
+        days = sorted(p for p in self.settings.archive.glob("????-??-??") if p.is_dir())[-2:]
+        return folders + [f for day in days for f in (day, day / "duplicates")]
+
+    def _remove_strays(self) -> None:
+        """Temporary files of writes a crash cut short: never complete, never read; removed."""
+        for folder in self._own_folders():
+            for path in remove_strays(folder):
+                log.info("stray temporary file removed", extra={"event": "stray_removed", "file": str(path)})
+
+    def _log_start(self) -> None:
+        """What this service reads, writes and talks to, one line each, before it starts."""
+        health = f"http://{self.settings.metrics_host}:{self.health.port}/healthz" if self.health is not None else "off"
+        log.info(
+            "service starting",
+            extra={"event": "starting", "ledger": str(self.settings.ledger_path), "health": health},
+        )
+        for d in self.settings.destinations:
+            log.info(
+                "destination",
+                extra={"event": "destination", "destination": d.name, "transport": d.transport, "address": d.address},
+            )
 
     def request_stop(self) -> None:
         """Ask the loops to stop after the file and message in flight (signal-safe)."""
@@ -171,5 +208,28 @@ class Service:
                 self.rand,
                 backoff=self.backoff,
                 should_stop=self._between_messages,
+                addresses=self.addresses,
             )
+            self.prune_when_due()
             self.messages_queued.wait(IDLE_WAIT_SECONDS)
+
+    def prune_when_due(self) -> None:
+        """Automatic retention (``retention_days`` > 0): prune at start, then once a day; no VACUUM."""
+        days = self.settings.retention_days
+        now = self.clock()
+        if days <= 0 or now < self._next_prune:
+            return
+        self._next_prune = now + PRUNE_EVERY_SECONDS
+        # Freed pages are reused by later writes, so the file stops growing without a VACUUM,
+        # which would hold every writer for as long as it rewrites the file.
+        result = self.ledger.prune(days, self.settings.duplicate_memory_days)
+        log.info(
+            "ledger pruned",
+            extra={
+                "event": "pruned",
+                "payloads": result.payloads,
+                "messages": result.messages,
+                "inputs": result.inputs,
+                "ledger_bytes": result.bytes_after,
+            },
+        )

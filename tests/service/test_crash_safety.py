@@ -18,6 +18,7 @@ from collections import Counter
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
+from bridge.service.files import STRAY_TEMPORARY
 from tests.service.conftest import (
     BLOCKED,
     GOOD,
@@ -88,6 +89,7 @@ def test_kill_9_at_random_moments_loses_and_duplicates_nothing(
     assert len(archived) == len(distinct)
     resends = sum(count - 1 for count in Counter(a.control_id for a in accepted).values())
     assert resends <= KILLS, f"{resends} re-sends for {KILLS} kills"
+    assert [] == _strays(site)
     summary = site.summary()
     # Nothing was dropped twice: a file a kill kept from its archive folder is not a duplicate.
     assert [] == sorted(site.archive.rglob("duplicates/*"))
@@ -98,6 +100,53 @@ def test_kill_9_at_random_moments_loses_and_duplicates_nothing(
         summary.pending,
         summary.delivered,
     )
+
+
+QUARANTINE_FILES = 60
+QUARANTINE_KILLS = 7
+
+
+def test_kill_9_during_quarantine_writes_leaves_no_temporary_file_after_a_restart(
+    make_site: Callable[..., Site], receiver: RecordingReceiver
+) -> None:
+    """Malformed files quarantined across 7 SIGKILLs: each ends quarantined with its report, no .tmp file stays."""
+    rng = random.Random(SEED + 1)
+    site = make_site(mllp_destination(receiver.port))
+    names = [f"bad-{n:04d}.json" for n in range(QUARANTINE_FILES)]
+    for n, name in enumerate(names):
+        drop(site.inbox, name, make_input(f"BAD-{n:04d}", "FICT-8000", template=MALFORMED))
+    for _ in range(QUARANTINE_KILLS):
+        site.start(wait=False)
+        time.sleep(rng.uniform(0.2, 1.2))  # start-up takes about 0.3 s: most kills land mid-quarantine
+        site.kill()
+    # What a kill in the middle of an atomic write leaves (the naming of files.write_atomically),
+    # planted so that the clean-up is tested even if no kill hit a write; and files that are not ours.
+    site.quarantine.mkdir(parents=True, exist_ok=True)
+    site.archive.mkdir(parents=True, exist_ok=True)
+    planted = site.quarantine / ".bad-0000.json.error.json.k3x9_q2z.tmp"
+    planted.write_bytes(b'{"file": "bad-00')
+    # A move across file systems into the archive cut short (files.move_durably's naming).
+    (site.archive / "2031-01-01" / "duplicates").mkdir(parents=True)
+    moved = site.archive / "2031-01-01" / "duplicates" / ".bad-0001.json.tmp"
+    moved.write_bytes(b"{")
+    not_ours = [site.quarantine / ".keep", site.archive / "notes.tmp", site.inbox / ".lab-export.json.part"]
+    for path in not_ours:
+        path.write_bytes(b"left alone")
+    site.start()
+    wait_until(lambda: len(site.quarantined()) == QUARANTINE_FILES, "every file quarantined", timeout=60)
+    assert 0 == site.stop()
+
+    assert set(names) == {p.name for p in site.quarantined()}
+    assert all((site.quarantine / f"{n}.error.json").is_file() for n in names)
+    assert [] == _strays(site)
+    assert all(path.is_file() for path in not_ours)
+    assert f"stray temporary file removed  event=stray_removed file={planted}" in site.stderr()
+    assert f"event=stray_removed file={moved}" in site.stderr()
+
+
+def _strays(site: Site) -> list[str]:
+    """Temporary files of the service's own atomic writes left anywhere under the site."""
+    return sorted(str(p) for p in site.root.rglob(".*") if p.is_file() and STRAY_TEMPORARY.fullmatch(p.name))
 
 
 def _is_bad(name: str) -> bool:

@@ -152,3 +152,17 @@ def test_a_metrics_port_in_use_stops_the_service_at_start_in_one_line(make_site:
     assert [
         "dlco-bridge: metrics_port: a free port on 127.0.0.1 (Address already in use)"
     ] == refused.stderr.splitlines()
+
+
+def test_automatic_retention_prunes_at_start_without_touching_pending_messages(make_site: MakeSite) -> None:
+    """retention_days = 1: the service prunes at start (a log line) and a pending message keeps its payload."""
+    site = make_site(mllp_destination(free_port()), extra="retention_days = 1")
+    site.start()
+    drop(site.inbox, "kept.json", make_input("KEEP-1", "FICT-2002"))
+    wait_until(lambda: site.summary().pending == 1, "the message waiting")
+    assert 0 == site.stop()
+
+    with Ledger.open(site.ledger_path, read_only=True) as ledger:
+        (row,) = ledger.rows("pending")
+    assert "ledger pruned  event=pruned payloads=0 messages=0 inputs=0" in site.stderr()
+    assert row.payload.startswith(b"MSH|")

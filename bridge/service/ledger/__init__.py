@@ -4,14 +4,15 @@ Callers import from here: ``from bridge.service.ledger import Ledger, ServiceLoc
 The modules behind it: :mod:`.database` (the SQLite file, its durability settings, the one
 lock), :mod:`.schema` (tables and migrations), :mod:`.inputs` (inputs by SHA-256, repeated
 drops, quarantines), :mod:`.outbox` (messages, attempts, their state machine),
-:mod:`.facade` (the :class:`Ledger` that joins them) and :mod:`.lock` (one service per state
-folder). Nothing here imports a transport, and no transport imports this.
+:mod:`.retention` (pruning, size), :mod:`.facade` (the :class:`Ledger` that joins them) and
+:mod:`.lock` (one service per state folder). Nothing here imports a transport, and no transport imports this.
 """
 
 from bridge.service.ledger.facade import Ledger, LedgerSummary
 from bridge.service.ledger.inputs import InputRecord, InputState, NewInput
 from bridge.service.ledger.lock import ServiceLock
 from bridge.service.ledger.outbox import Attempt, DestinationSummary, NewMessage, OutboxRow, OutboxState
+from bridge.service.ledger.retention import LedgerSize, PruneResult
 from bridge.service.ledger.schema import SCHEMA_VERSION
 
 __all__ = [
@@ -21,10 +22,12 @@ __all__ = [
     "InputRecord",
     "InputState",
     "Ledger",
+    "LedgerSize",
     "LedgerSummary",
     "NewInput",
     "NewMessage",
     "OutboxRow",
     "OutboxState",
+    "PruneResult",
     "ServiceLock",
 ]

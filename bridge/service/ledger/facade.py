@@ -3,7 +3,8 @@
 Owns opening the file (create and migrate it, or only check its version for a reader) and
 what spans inputs and outbox: recording an input together with its messages in one
 transaction, and the summary ``status`` and ``/metrics`` report. Everything else it inherits
-from :class:`.inputs.InputLedger` and :class:`.outbox.OutboxLedger`. It must not read inputs,
+from :class:`.inputs.InputLedger`, :class:`.outbox.OutboxLedger` and
+:class:`.retention.RetentionLedger`. It must not read inputs,
 build messages, talk to receivers or log.
 """
 
@@ -24,6 +25,7 @@ from bridge.service.ledger.outbox import (
     enqueue,
     ids_of_input,
 )
+from bridge.service.ledger.retention import RetentionLedger
 from bridge.service.ledger.schema import check_version, migrate
 
 
@@ -50,7 +52,7 @@ class LedgerSummary:
         return sum(d.rejected for d in self.destinations.values())
 
 
-class Ledger(InputLedger, OutboxLedger):
+class Ledger(InputLedger, OutboxLedger, RetentionLedger):
     """The SQLite state of one service; calls are serialised, threads may share it."""
 
     @classmethod

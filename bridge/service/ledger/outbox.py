@@ -152,11 +152,11 @@ class OutboxLedger(Database):
         with self._write() as conn:
             now = self._now()
             cursor = conn.execute(
-                "UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ?",
+                "UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ? AND pruned_at IS NULL",
                 (now, outbox_id),
             )
             if cursor.rowcount != 1:
-                raise LedgerError(f"{self._path}: no outbox row {outbox_id}")
+                raise LedgerError(f"{self._path}: no outbox row {outbox_id} with its payload (pruned, or never there)")
             _log_attempt(conn, outbox_id, now, "requeued", "")
 
     def requeue_rejected(self) -> int:

@@ -75,6 +75,14 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
         # can answer from keeps that cheap as delivered rows pile up.
         "CREATE INDEX outbox_by_state ON outbox (destination, state, created_at)",
     ),
+    (
+        # Retention: a delivered row keeps its control id and content hash (so a resend is
+        # recognised) after its payload is removed; pruned_at says when, and resend refuses it.
+        "ALTER TABLE outbox ADD COLUMN pruned_at REAL",
+        "CREATE INDEX outbox_by_delivery ON outbox (state, delivered_at)",
+        "CREATE INDEX inputs_by_age ON inputs (first_seen)",
+        "CREATE INDEX repeated_drops_by_age ON repeated_drops (at)",
+    ),
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 

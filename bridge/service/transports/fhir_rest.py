@@ -1,18 +1,22 @@
 """FHIR REST delivery: POST each transaction Bundle to the server's base URL with httpx.
 
 Owns the HTTP exchange and what its answer means: 2xx delivered, 4xx refused (with the
-OperationOutcome's text), 5xx and network trouble retryable. It must not touch the
-ledger, read the environment or log; above all it never writes the bearer token into a
-receipt, an exception or a repr.
+OperationOutcome's text), 5xx and network trouble retryable; 429 and 503 retried no sooner
+than their ``Retry-After`` (or dead-lettered, if the destination says so). Authentication is
+a static bearer token, or SMART Backend Services (:mod:`.smart`), whose token is refreshed
+once on a 401 before the message is dead-lettered. It must not touch the ledger, read the
+environment or log; above all it never writes a token into a receipt, an exception or a repr.
 """
 
 from __future__ import annotations
 
 import json
 import ssl
+import time
 from collections import Counter
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from email.utils import parsedate_to_datetime
 from typing import Any
 
 import httpx
@@ -23,6 +27,7 @@ from bridge.errors import (
     DeliveryError,
     DeliveryTimeout,
     Rejected,
+    RetryLater,
 )
 from bridge.service.transports.base import (
     FHIR_JSON,
@@ -31,6 +36,7 @@ from bridge.service.transports.base import (
     TlsOptions,
     client_tls_context,
 )
+from bridge.service.transports.smart import SmartClient, SmartTokens
 
 DEFAULT_CONNECT_TIMEOUT = 10.0
 DEFAULT_READ_TIMEOUT = 60.0
@@ -41,6 +47,26 @@ MAX_TEXT = 500  # keep ledger rows and status lines readable
 # message while the operator fixes a token; they are retried instead.
 # source: RFC 9110 §15.5 (401, 407, 408), RFC 8470 (425), RFC 6585 §4 (429)
 RETRYABLE_4XX = frozenset({401, 407, 408, 425, 429})
+# "Busy, try later": their Retry-After is honoured. source: RFC 9110 §10.2.3, §15.6.4; RFC 6585 §4
+BUSY = frozenset({429, 503})
+MAX_RETRY_AFTER = 86_400.0  # a day: a longer wait is a misconfigured server, not advice
+
+
+def retry_after(value: str | None, now: float) -> float | None:
+    """Seconds to wait from a Retry-After value (delay-seconds or an HTTP-date); None if absent or unreadable."""
+    # source: RFC 9110 §10.2.3 Retry-After = HTTP-date / delay-seconds
+    if not value:
+        return None
+    value = value.strip()
+    if value.isdigit():
+        return min(float(value), MAX_RETRY_AFTER)
+    try:
+        when = parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    if when.tzinfo is None:
+        return None
+    return min(max(0.0, when.timestamp() - now), MAX_RETRY_AFTER)
 
 
 def operation_outcome_text(body: bytes) -> str:
@@ -78,11 +104,27 @@ def response_summary(body: bytes) -> str:
     return ", ".join(f"{status} x{count}" for status, count in statuses.items())
 
 
-def judge(status: int, reason: str, body: bytes, destination: str) -> DeliveryReceipt:
-    """Turn an HTTP answer into a receipt, or the DeliveryError it amounts to."""
+def judge(
+    status: int,
+    reason: str,
+    body: bytes,
+    destination: str,
+    *,
+    busy: str = "retry",
+    wait: float | None = None,
+) -> DeliveryReceipt:
+    """Turn an HTTP answer into a receipt, or the DeliveryError it amounts to.
+
+    ``busy``: what 429 and 503 mean here ("retry" or "dead-letter"); ``wait``: their Retry-After in seconds.
+    """
     if 200 <= status < 300:
         return DeliveryReceipt(str(status), response_summary(body)[:MAX_TEXT])
     text = f"HTTP {status}: {operation_outcome_text(body) or reason}"[:MAX_TEXT]
+    if status in BUSY:
+        if busy == "dead-letter":
+            raise Rejected(destination, text)
+        if wait is not None:
+            raise RetryLater(destination, f"{text} (Retry-After {wait:g} s)", wait)
     if 400 <= status < 500 and status not in RETRYABLE_4XX:
         raise Rejected(destination, text)
     raise DeliveryError(destination, text)
@@ -121,6 +163,9 @@ class FhirRestTransport:
         base_url: str,
         *,
         token: str | None = None,
+        smart: SmartClient | None = None,
+        busy: str = "retry",
+        clock: Callable[[], float] = time.time,
         connect_timeout: float = DEFAULT_CONNECT_TIMEOUT,
         read_timeout: float = DEFAULT_READ_TIMEOUT,
         tls: TlsOptions | None = None,
@@ -136,6 +181,14 @@ class FhirRestTransport:
             follow_redirects=False,  # a redirected POST is a configuration mistake
             trust_env=False,  # settings come from config.py only, not ambient variables
         )
+        self.busy = busy
+        self._clock = clock
+        # The key is read here: a bad one stops the start with a ConfigError.
+        try:
+            self._tokens = None if smart is None else SmartTokens(smart, self._client, clock)
+        except ConfigError:
+            self._client.close()
+            raise
 
     def __repr__(self) -> str:
         # Without any user:password part of the URL.
@@ -146,9 +199,24 @@ class FhirRestTransport:
         destination = message.destination
         if message.content_type != FHIR_JSON:
             raise Rejected(destination, f"cannot POST {message.content_type} as FHIR")
-        with _translated(destination):
-            response = self._client.post(self.url, content=message.payload)
-        return judge(response.status_code, response.reason_phrase, response.content, destination)
+        response = self._post(message)
+        if response.status_code == 401 and self._tokens is not None:
+            # The token may have been revoked or expired early: one new token, one more try.
+            self._tokens.forget()
+            response = self._post(message)
+            if response.status_code == 401:
+                raise Rejected(destination, "HTTP 401 with a new token: the server does not accept this client")
+        wait = retry_after(response.headers.get("Retry-After"), self._clock())
+        return judge(
+            response.status_code, response.reason_phrase, response.content, destination, busy=self.busy, wait=wait
+        )
+
+    def _post(self, message: OutgoingMessage) -> httpx.Response:
+        headers = {}
+        if self._tokens is not None:
+            headers["Authorization"] = f"Bearer {self._tokens.token(message.destination)}"
+        with _translated(message.destination):
+            return self._client.post(self.url, content=message.payload, headers=headers)
 
     def close(self) -> None:
         self._client.close()

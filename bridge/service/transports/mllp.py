@@ -2,8 +2,9 @@
 
 Owns the MLLP framing (constants, :func:`frame`, :class:`FrameReader`; pure, so a future
 receiver and the tests use the same code), ACK parsing (:func:`parse_ack`) and the client
-(:class:`MllpTransport`). It must not touch the ledger or decide about retries: it
-returns a receipt or raises a ``DeliveryError`` subclass, and the delivery loop decides.
+(:class:`MllpTransport`). It must not touch the ledger: it returns a receipt or raises a
+``DeliveryError`` subclass (``Rejected`` for AE/AR unless the destination's response policy says
+to retry them), and the delivery loop records it.
 
 One connection is kept open and reused for every message, as receivers expect; it is
 dropped after any failure or out-of-step answer and opened again for the next message.
@@ -141,8 +142,14 @@ def parse_ack(data: bytes) -> Ack | None:
     return Ack(code, answered, "; ".join(details))
 
 
-def judge(ack: Ack | None, sent_control_id: str, destination: str) -> DeliveryReceipt:
-    """Turn an ACK into a receipt, or the DeliveryError it amounts to."""
+def judge(
+    ack: Ack | None, sent_control_id: str, destination: str, retried: frozenset[str] = frozenset()
+) -> DeliveryReceipt:
+    """Turn an ACK into a receipt, or the DeliveryError it amounts to.
+
+    ``retried``: refusal codes (AE, AR) this destination wants retried with back-off rather
+    than dead-lettered; the commit-level CE/CR follow AE/AR.
+    """
     if ack is None:
         raise DeliveryError(destination, "answer is not a readable HL7 ACK")
     if ack.control_id != sent_control_id:
@@ -153,6 +160,10 @@ def judge(ack: Ack | None, sent_control_id: str, destination: str) -> DeliveryRe
     if ack.code in ACCEPTED:
         return DeliveryReceipt(ack.code, ack.text)
     if ack.code in REFUSED:
+        # source: HL7 v2.5.1 ch. 2 table 0008: AE/CE application/commit error, AR/CR reject
+        kind = "A" + ack.code[1]
+        if kind in retried:
+            raise DeliveryError(destination, f"{ack.code} {ack.text}".strip())
         raise Rejected(destination, f"{ack.code} {ack.text}".strip())
     raise DeliveryError(destination, f"ACK has unknown MSA-1 code {ack.code!r}")
 
@@ -172,7 +183,9 @@ class MllpTransport:
         read_timeout: float = DEFAULT_READ_TIMEOUT,
         tls: TlsOptions | None = None,
         max_ack_bytes: int = MAX_ACK_BYTES,
+        retried: frozenset[str] = frozenset(),
     ) -> None:
+        self.retried = retried  # AE and/or AR: retried with back-off instead of dead-lettered
         self.host = host
         self.port = port
         self.connect_timeout = connect_timeout
@@ -197,7 +210,7 @@ class MllpTransport:
             sock.settimeout(self.read_timeout)  # bounds the send; the read has a deadline
             sock.sendall(frame(message.payload))
             answer = self._read_ack(sock, destination)
-            return judge(parse_ack(answer), sent, destination)
+            return judge(parse_ack(answer), sent, destination, self.retried)
 
     def close(self) -> None:
         if self._sock is not None:

@@ -1,0 +1,135 @@
+"""The stand-in's FHIR endpoint: transaction Bundles in, resources kept in a SQLite file.
+
+Owns answering ``POST [base]`` with a transaction Bundle: each entry ``POST Type`` with
+``ifNoneExist`` creates the resource unless one was created with the same search (then 200 and
+nothing new), and ``PUT Type?search`` updates the resource that search finds or creates it;
+``urn:uuid:`` references between entries are rewritten to the ids given. All entries succeed or
+none does. Anything else is a 400 OperationOutcome. Loopback only; no authentication.
+source: FHIR R4 http.html#transaction, #cond-update, #ccreate (If-None-Exist / ifNoneExist)
+"""
+
+from __future__ import annotations
+
+import json
+import threading
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any
+
+from bridge.service.receiver.store import ResourceStore
+
+MAX_BODY_BYTES = 20 * 1024 * 1024
+
+
+class BundleRefused(Exception):
+    """The Bundle cannot be processed; the text goes into the OperationOutcome."""
+
+
+def process_transaction(store: ResourceStore, bundle: Any) -> dict[str, Any]:
+    """Apply a transaction Bundle to ``store``; the transaction-response Bundle."""
+    if not isinstance(bundle, dict) or bundle.get("resourceType") != "Bundle" or bundle.get("type") != "transaction":
+        raise BundleRefused("a Bundle of type transaction")
+    entries = bundle.get("entry") or []
+    if not isinstance(entries, list) or not all(isinstance(e, dict) for e in entries):
+        raise BundleRefused("Bundle.entry: a list of entries")
+    responses: list[dict[str, Any]] = []
+    references: dict[str, str] = {}
+    with store.transaction():
+        planned = [_plan(entry) for entry in entries]
+        written = []
+        for method, kind, criteria, resource, full_url in planned:
+            found = store.find(kind, criteria)
+            if method == "POST" and found is not None:
+                item, status, changed = found, "200 OK", False  # ifNoneExist matched: nothing created
+            elif found is not None:
+                item, status, changed = store.update(found, resource), "200 OK", True  # conditional update
+            else:
+                item, status, changed = store.create(kind, criteria, resource), "201 Created", True
+            if full_url:
+                references[full_url] = item.reference
+            written.append((item, status, changed, resource))
+        # References between entries are resolved once every entry has its id.
+        for item, status, changed, resource in written:
+            if changed:
+                store.set_body(item, _resolved(resource, references))
+            responses.append({"response": {"status": status, "location": f"{item.reference}/_history/{item.version}"}})
+    return {"resourceType": "Bundle", "type": "transaction-response", "entry": responses}
+
+
+def _plan(entry: dict[str, Any]) -> tuple[str, str, str, dict[str, Any], str]:
+    request, resource = entry.get("request"), entry.get("resource")
+    if not isinstance(request, dict) or not isinstance(resource, dict):
+        raise BundleRefused("each entry: a request and a resource")
+    method, url = request.get("method"), str(request.get("url", ""))
+    kind = str(resource.get("resourceType", ""))
+    if method == "POST" and url == kind and request.get("ifNoneExist"):
+        return "POST", kind, str(request["ifNoneExist"]), resource, str(entry.get("fullUrl", ""))
+    if method == "PUT" and url.startswith(kind + "?") and len(url) > len(kind) + 1:
+        return "PUT", kind, url[len(kind) + 1 :], resource, str(entry.get("fullUrl", ""))
+    raise BundleRefused(f"entry {method} {url}: POST with ifNoneExist or a conditional PUT (Type?search)")
+
+
+def _resolved(resource: dict[str, Any], references: dict[str, str]) -> dict[str, Any]:
+    text = json.dumps(resource)
+    for urn, reference in references.items():
+        text = text.replace(json.dumps(urn), json.dumps(reference))
+    resolved: dict[str, Any] = json.loads(text)
+    return resolved
+
+
+class FhirPeer:
+    """The FHIR endpoint on 127.0.0.1 in a background thread; the base URL is ``url``."""
+
+    def __init__(self, store: ResourceStore, port: int = 0) -> None:
+        self.store = store
+        self.bundles = 0
+        self.server = ThreadingHTTPServer(("127.0.0.1", port), _handler(self))
+        self.server.daemon_threads = True
+        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.1,), name="stand-in-fhir", daemon=True)
+
+    @property
+    def url(self) -> str:
+        return f"http://127.0.0.1:{self.server.server_address[1]}/fhir"
+
+    def start(self) -> None:
+        self.thread.start()
+
+    def stop(self) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+
+
+def _outcome(text: str) -> dict[str, Any]:
+    return {
+        "resourceType": "OperationOutcome",
+        "issue": [{"severity": "error", "code": "invalid", "diagnostics": text}],
+    }
+
+
+def _handler(peer: FhirPeer) -> type[BaseHTTPRequestHandler]:
+    class Handler(BaseHTTPRequestHandler):
+        def do_POST(self) -> None:  # the name http.server dispatches to
+            if self.path.rstrip("/") != "/fhir":
+                return self._answer(404, _outcome(f"POST to the base URL {peer.url}"))
+            length = int(self.headers.get("Content-Length", "0") or 0)
+            if length > MAX_BODY_BYTES:
+                return self._answer(413, _outcome("a Bundle of at most 20 MB"))
+            try:
+                document = json.loads(self.rfile.read(length))
+                answer = process_transaction(peer.store, document)
+            except (ValueError, BundleRefused) as exc:
+                return self._answer(400, _outcome(f"expected {exc}" if isinstance(exc, BundleRefused) else "JSON"))
+            peer.bundles += 1
+            self._answer(200, answer)
+
+        def _answer(self, status: int, document: dict[str, Any]) -> None:
+            data = json.dumps(document).encode()
+            self.send_response(status)
+            self.send_header("Content-Type", "application/fhir+json")
+            self.send_header("Content-Length", str(len(data)))
+            self.end_headers()
+            self.wfile.write(data)
+
+        def log_message(self, format: str, *args: Any) -> None:
+            """The stand-in prints its own one line per Bundle, not http.server's."""
+
+    return Handler

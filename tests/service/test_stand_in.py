@@ -1,0 +1,132 @@
+"""`dlco-bridge watch` delivering to `dlco-bridge stand-in`: files in, messages and resources out, refusals tried."""
+
+from __future__ import annotations
+
+import re
+import signal
+import subprocess
+import sys
+from collections.abc import Callable, Iterator
+from pathlib import Path
+
+import pytest
+
+from bridge.service.receiver import MllpPeer
+from tests.service.conftest import (
+    GOOD,
+    Site,
+    clean_environment,
+    cli,
+    drop,
+    fhir_destination,
+    free_port,
+    make_input,
+    mllp_destination,
+    wait_until,
+)
+
+MakeSite = Callable[..., Site]
+
+
+@pytest.fixture
+def stand_in(tmp_path: Path) -> Iterator[tuple[Path, int, str]]:
+    """The stand-in as a user runs it: its own process, ports chosen free, stopped with SIGTERM."""
+    folder, mllp_port, fhir_port = tmp_path / "stand-in", free_port(), free_port()
+    process = subprocess.Popen(
+        [sys.executable, "-m", "bridge", "stand-in", "--folder", str(folder),
+         "--mllp-port", str(mllp_port), "--fhir-port", str(fhir_port)],
+        stdout=subprocess.PIPE, stderr=subprocess.STDOUT, env=clean_environment(), text=True,
+    )  # fmt: skip
+    assert process.stdout is not None
+    first = process.stdout.readline()
+    assert f"MLLP on 127.0.0.1:{mllp_port}" in first, first
+    try:
+        yield folder, mllp_port, f"http://127.0.0.1:{fhir_port}/fhir"
+    finally:
+        process.send_signal(signal.SIGTERM)
+        process.communicate(timeout=10)
+
+
+@pytest.fixture
+def peers(tmp_path: Path) -> Iterator[tuple[MllpPeer, MllpPeer]]:
+    """Two in-process stand-in MLLP listeners whose answer the test changes."""
+    strict, patient = MllpPeer(tmp_path / "strict", answer="AR"), MllpPeer(tmp_path / "patient", answer="AR")
+    for peer in (strict, patient):
+        peer.start()
+    yield strict, patient
+    for peer in (strict, patient):
+        peer.stop()
+
+
+def test_watch_delivers_to_the_stand_in_and_a_resend_creates_nothing(make_site: MakeSite, stand_in) -> None:
+    """Three exports: three HL7 messages written, three DiagnosticReports kept; a copy under another name adds none."""
+    folder, mllp_port, fhir_url = stand_in
+    site = make_site(mllp_destination(mllp_port) + fhir_destination(fhir_url))
+    site.start()
+    for sample in GOOD[:3]:
+        drop(site.inbox, sample.name, sample.read_bytes())
+    wait_until(lambda: site.summary().delivered == 6, "six deliveries")
+    drop(site.inbox, "again-" + GOOD[0].name, GOOD[0].read_bytes())
+    wait_until(lambda: site.summary().duplicates == 1, "the duplicate recognised")
+    assert 0 == site.stop()
+
+    listed = cli("stand-in", "--folder", str(folder), "--list")
+    reports = [line for line in listed.stdout.splitlines() if line.startswith("DiagnosticReport/")]
+
+    assert (0, 3, 3) == (listed.returncode, len(reports), len(list((folder / "messages").glob("*.hl7"))))
+    log = site.stderr()
+    # The start-up log names each destination with its address, the health address and the ledger.
+    assert f"destination=records transport=mllp address=127.0.0.1:{mllp_port}" in log
+    assert f"destination=store transport=fhir-rest address={fhir_url}" in log
+    assert f"health=http://127.0.0.1:{site.metrics_port}/healthz" in log
+    assert f"ledger={site.ledger_path}" in log
+
+
+def test_a_correction_updates_the_resource_in_place(make_site: MakeSite, stand_in) -> None:
+    """A correction: Observations and report updated in place (v2); only a Provenance for the new file is new."""
+    # source: FHIR R4 http.html#cond-update (PUT Type?search updates the one match)
+    folder, _, fhir_url = stand_in
+    site = make_site(fhir_destination(fhir_url))
+    site.start()
+    drop(site.inbox, "first.json", make_input("FH-STAND-1", "FH-P-1"))
+    wait_until(lambda: site.summary().delivered == 1, "the first delivery")
+    before = cli("stand-in", "--folder", str(folder), "--list").stdout
+    drop(site.inbox, "second.json", make_input("FH-STAND-1", "FH-P-1", change=0.3))
+    wait_until(lambda: site.summary().delivered == 2, "the correction delivered")
+    site.stop()
+    after = cli("stand-in", "--folder", str(folder), "--list").stdout
+
+    def kinds(listing: str) -> dict[str, int]:
+        found: dict[str, int] = {}
+        for line in listing.splitlines():
+            if "/" in line.split(" ")[0]:
+                kind = line.split("/")[0]
+                found[kind] = found.get(kind, 0) + 1
+        return found
+
+    grown = {k: kinds(after)[k] - kinds(before).get(k, 0) for k in kinds(after)}
+    expected = {"Observation": 0, "DiagnosticReport": 0, "Provenance": 1}
+    assert expected == {k: grown.get(k, 0) for k in expected}
+    assert re.search(r"^DiagnosticReport/\d+ +v2 ", after, re.M)
+
+
+def test_ae_is_dead_lettered_and_ar_follows_each_destination_policy(make_site: MakeSite, peers) -> None:
+    """AE and AR dead-letter by default; with on_ar = "retry" an AR is retried until the receiver says AA."""
+    # source: HL7 v2.5.1 ch. 2 table 0008 (AE application error, AR application reject)
+    strict, patient = peers
+    site = make_site(
+        mllp_destination(strict.port, "strict") + mllp_destination(patient.port, "patient") + 'on_ar = "retry"\n'
+    )
+    site.start()
+    drop(site.inbox, "one.json", make_input("FH-AR-1", "FH-P-2"))
+    wait_until(lambda: site.summary().destinations.get("strict", None) and site.summary().rejected == 1, "strict AR")
+    wait_until(lambda: patient.received >= 3, "the AR retried")
+    assert 1 == site.summary().destinations["patient"].pending
+    patient.answer = "AA"
+    wait_until(lambda: site.summary().destinations["patient"].delivered == 1, "delivered once the receiver accepts")
+    strict.answer = "AE"
+    drop(site.inbox, "two.json", make_input("FH-AE-2", "FH-P-3"))
+    wait_until(lambda: site.summary().destinations["strict"].rejected == 2, "AE dead-lettered")
+    site.stop()
+
+    assert re.search(rf"will retry .*destination=patient .*address=127\.0\.0\.1:{patient.port}", site.stderr())
