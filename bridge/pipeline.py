@@ -22,7 +22,6 @@ from bridge.model import Outcome, OutputKind, Payload
 from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
 from bridge.science.derive import derive
-from bridge.science.normalise import normalise
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 
@@ -76,7 +75,7 @@ def process(
     if len(data) > settings.max_input_bytes:
         raise UnreadableInput("(file)", f"at most {settings.max_input_bytes} bytes, got {len(data)}", source)
     try:
-        session = normalise(read_export(data, source), tables.units)
+        session = read_export(data, source, tables.units)
     except InputError as exc:
         raise exc if exc.source else exc.with_source(source) from None
     derived = derive(session, tables)
