@@ -93,10 +93,16 @@ def process(
         raise ValueError("emitting needs the send time (now)")
     refuse_blocked(outcome, settings.blocking)
     correction = is_correction(session.test_id, sha256)
-    built: list[Payload] = []
-    for route in dict.fromkeys(routes):  # each route once, in the order asked
-        context = settings.emit.context(now, route.units, correction)
-        built.extend(payloads(outcome, tables, context, (route.kind,)))
+    asked = tuple(dict.fromkeys(routes))  # each route once, in the order asked
+    kinds_by_units: dict[UnitSystem, list[OutputKind]] = {}
+    for route in asked:
+        kinds_by_units.setdefault(route.units, []).append(route.kind)
+    made: dict[Route, Payload] = {}
+    for units, kinds in kinds_by_units.items():  # what is emitted is built once per unit system
+        context = settings.emit.context(now, units, correction)
+        for payload in payloads(outcome, tables, context, kinds):
+            made[Route(payload.kind, payload.units)] = payload
+    built = [made[route] for route in asked]
     if settings.validate_outputs:
         _validate(built, outcome)
     return outcome.model_copy(update={"payloads": tuple(built), "correction": correction})
