@@ -1,7 +1,8 @@
 """The one path: the bytes of one input -> :class:`bridge.model.Outcome` with its payloads (pure).
 
-Owns: the order of the steps, in one place: read -> normalise -> derive -> check -> gate ->
-emit (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
+Owns: the order of the steps, in one place: read (normalising every quantity on the parsed
+tree before the one validation) -> derive -> check -> gate -> emit, what is emitted built
+once per unit system (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
 ``convert`` and ``demo`` with the kinds asked for, ``watch`` with its destinations' routes);
 none calls the gate or an emitter on its own. No I/O: the shell reads the file, the clock and
 the ledger, and passes the bytes, the time and a correction test in.
