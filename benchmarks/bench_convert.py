@@ -52,7 +52,6 @@ from bridge.pipeline import PipelineSettings, Route, process
 from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
 from bridge.science.derive import derive
-from bridge.science.normalise import normalise
 from bridge.tables import Tables
 from bridge.tables.files import load_tables, samples_dir
 
@@ -325,7 +324,7 @@ def stage_breakdown(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]
         for i, data in enumerate(inputs):
             name = f"gen-{i}.json"
             t0 = clock()
-            session = normalise(read_export(data, name), tables.units)
+            session = read_export(data, name, tables.units)
             t1 = clock()
             derived = derive(session, tables)
             t2 = clock()

@@ -1,7 +1,8 @@
 """The one path: the bytes of one input -> :class:`bridge.model.Outcome` with its payloads (pure).
 
-Owns: the order of the steps, in one place: read -> normalise -> derive -> check -> gate ->
-emit (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
+Owns: the order of the steps, in one place: read (normalising every quantity on the parsed
+tree before the one validation) -> derive -> check -> gate -> emit, what is emitted built
+once per unit system (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
 ``convert`` and ``demo`` with the kinds asked for, ``watch`` with its destinations' routes);
 none calls the gate or an emitter on its own. No I/O: the shell reads the file, the clock and
 the ledger, and passes the bytes, the time and a correction test in.
@@ -22,7 +23,6 @@ from bridge.model import Outcome, OutputKind, Payload
 from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
 from bridge.science.derive import derive
-from bridge.science.normalise import normalise
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 
@@ -79,7 +79,7 @@ def process(
     if len(data) > settings.max_input_bytes:
         raise UnreadableInput("(file)", f"at most {settings.max_input_bytes} bytes, got {len(data)}", source)
     try:
-        session = normalise(read_export(data, source), tables.units)
+        session = read_export(data, source, tables.units)
     except InputError as exc:
         raise exc if exc.source else exc.with_source(source) from None
     derived = derive(session, tables)
@@ -97,10 +97,16 @@ def process(
         raise ValueError("emitting needs the send time (now)")
     refuse_blocked(outcome, settings.blocking, settings.allow)
     correction = is_correction(session.test_id, sha256)
-    built: list[Payload] = []
-    for route in dict.fromkeys(routes):  # each route once, in the order asked
-        context = settings.emit.context(now, route.units, correction)
-        built.extend(payloads(outcome, tables, context, (route.kind,)))
+    asked = tuple(dict.fromkeys(routes))  # each route once, in the order asked
+    kinds_by_units: dict[UnitSystem, list[OutputKind]] = {}
+    for route in asked:
+        kinds_by_units.setdefault(route.units, []).append(route.kind)
+    made: dict[Route, Payload] = {}
+    for units, kinds in kinds_by_units.items():  # what is emitted is built once per unit system
+        context = settings.emit.context(now, units, correction)
+        for payload in payloads(outcome, tables, context, kinds):
+            made[Route(payload.kind, payload.units)] = payload
+    built = [made[route] for route in asked]
     if settings.validate_outputs:
         _validate(built, outcome)
     return outcome.model_copy(update={"payloads": tuple(built), "correction": correction})

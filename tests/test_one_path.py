@@ -10,6 +10,7 @@ from pathlib import Path
 
 from bridge.cli import convert_files
 from bridge.config import load_settings
+from bridge.pipeline import Route, process
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
@@ -77,3 +78,18 @@ def test_convert_and_watch_write_byte_identical_payloads(tmp_path: Path):
     }
     assert 6 == len(written)
     assert written == queued
+
+
+def test_payloads_come_in_the_order_of_the_routes_each_once():
+    """Routes mixing unit systems give one payload per distinct route, in the order asked."""
+    data = (ROOT / "samples" / "01-healthy-adult.json").read_bytes()
+    routes = (Route("fhir", "si"), Route("hl7", "traditional"), Route("hl7", "si"), Route("fhir", "si"))
+
+    outcome = process(data, "01.json", load_tables(), now=NOW, routes=routes)
+
+    assert [("fhir", "si"), ("hl7", "traditional"), ("hl7", "si")] == [(p.kind, p.units) for p in outcome.payloads]
+    # DLCO 9.84 mmol/min/kPa x 2.987 = 29.39: the step 0.01 becomes 0.02987, so two decimals keep it no
+    # coarser (NIST SP 811 (2008) B.7.2): 29.39 mL/min/mm[Hg]
+    # source: GLI 2017 factor (tests/core/test_units.py); OBX-5 is the value (HL7 v2.5.1 ch. 7); OBX 1 is DLCO
+    first_obx = [next(s for s in p.data.decode().split("\r") if s.startswith("OBX|1|")) for p in outcome.payloads[1:]]
+    assert ["29.39", "9.84"] == [segment.split("|")[5] for segment in first_obx]

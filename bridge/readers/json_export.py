@@ -1,8 +1,10 @@
 """Reader for the neutral export format ``dlco-result/1`` (JSON), documented in docs/format.md.
 
-Owns: bytes -> :class:`bridge.model.Session` with units as the source wrote them (``normalise``
-resolves them). Numbers are parsed as decimals first so that the digits a lab reported
-(7.460) are kept. Every failure is one :class:`bridge.errors.InputError` naming the field.
+Owns: bytes -> :class:`bridge.model.Session`, every quantity in its canonical unit with the
+value and unit the source wrote kept. One pass: parse, count the reported digits, normalise
+the tree (:func:`bridge.science.normalise.normalise_tree`), validate the session once.
+Numbers are parsed as decimals first so that the digits a lab reported (7.460) are kept.
+Every failure is one :class:`bridge.errors.InputError` naming the field.
 """
 
 from __future__ import annotations
@@ -13,20 +15,24 @@ from typing import Any
 
 from pydantic import ValidationError
 
-from bridge.errors import InvalidField, MissingField, UnknownFormat, UnreadableInput
+from bridge.errors import InputError, InvalidField, MissingField, UnknownFormat, UnreadableInput
 from bridge.model import Session
 from bridge.readers.common import decode_text, first_validation_error, shown
+from bridge.science.normalise import normalise_tree
+from bridge.science.units import UnitCatalogue
 
 FORMAT = "dlco-result/1"
 
 
-def read_export(data: bytes, source: str = "") -> Session:
-    """Parse one ``dlco-result/1`` document into a session (units not yet normalised)."""
-    tree = _parse(data, source)
+def read_export(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
+    """Parse one ``dlco-result/1`` document into a session, every quantity in its canonical unit."""
+    tree = _decimals_in_place(_parse(data, source))
     try:
-        return Session.model_validate(_decimals_in_place(tree))
+        return Session.model_validate(normalise_tree(tree, catalogue))
     except ValidationError as exc:
         raise first_validation_error(exc, source) from None
+    except InputError as exc:
+        raise exc.with_source(source) from None
 
 
 def _parse(data: bytes, source: str) -> dict[str, Any]:

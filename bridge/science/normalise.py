@@ -1,8 +1,10 @@
-"""Normalisation: every quantity of a session to its canonical UCUM unit, originals kept.
+"""Normalisation: every quantity of a record to its canonical UCUM unit, originals kept.
 
-Owns: walking the record by the :class:`bridge.model.Measure` annotations, resolving unit
-spellings through the catalogue, converting, and refusing what cannot be a value of its field
-(unknown unit, wrong dimension, negative volume). Idempotent: normalising twice changes nothing.
+Owns: the step every reader runs on its parsed tree before the one validation of the
+:class:`bridge.model.Session` (:func:`normalise_tree`): quantity fields found by their
+:class:`bridge.model.Measure` annotations, unit spellings resolved through the catalogue,
+values converted, and what cannot be a value of its field refused (unknown unit, wrong
+dimension, negative volume). Idempotent: normalising twice changes nothing.
 Also owns :func:`express`, the inverse step emitters use to show a quantity in a chosen unit.
 """
 
@@ -11,30 +13,71 @@ from __future__ import annotations
 from functools import cache
 from typing import Annotated, Any, get_args, get_origin
 
-from pydantic import BaseModel
+from pydantic import BaseModel, ValidationError
 
 from bridge.errors import InvalidField, UnitError
-from bridge.model import Measure, Original, Quantity, Session
+from bridge.model import Measure, Quantity, Session
 from bridge.science.units import UnitCatalogue, UnitDef, decimals_after_conversion
 
 # A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.
 _Step = tuple[str, Measure | type[BaseModel], bool]
 
 
-def normalise(session: Session, catalogue: UnitCatalogue) -> Session:
-    """The session with every quantity in its canonical unit (see ``bridge.model``)."""
-    normalised: Session = _normalise_model(session, catalogue, "")
-    return normalised
+def normalise_tree(tree: dict[str, Any], catalogue: UnitCatalogue) -> dict[str, Any]:
+    """A parsed record (plain dicts and lists, as a reader builds it) with every quantity in its canonical unit.
+
+    Every reader calls this on its tree before the one validation of the :class:`Session`.
+    Each object at a quantity field is read as a :class:`Quantity` and replaced by its fields
+    in the canonical unit, original value and unit kept. Anything else (not an object, a
+    quantity object with a stray key or a value that is not a number) is left as it is for
+    the session's validation to refuse with its usual error. Raises UnitError or InvalidField
+    naming the field path. The tree given is not changed: the objects on the way are copied.
+    """
+    return _normalise_node(tree, Session, catalogue, "")
+
+
+def _normalise_node(node: dict[str, Any], model: type[BaseModel], units: UnitCatalogue, path: str) -> dict[str, Any]:
+    copy = dict(node)
+    for name, kind, is_tuple in plan_of(model):
+        value = node.get(name)
+        if value is None:
+            continue
+        where = f"{path}.{name}" if path else name
+        if isinstance(kind, Measure):
+            if type(value) is dict:
+                try:  # the model's own reading: the step takes exactly what the model would take
+                    quantity = Quantity.model_validate(value)
+                except ValidationError:
+                    continue  # the model's validation names the problem
+                copy[name] = canonical_fields(quantity, kind, units, where)
+        elif is_tuple:
+            if type(value) is list or type(value) is tuple:
+                copy[name] = [
+                    _normalise_node(item, kind, units, f"{where}[{i}]") if type(item) is dict else item
+                    for i, item in enumerate(value)
+                ]
+        elif type(value) is dict:
+            copy[name] = _normalise_node(value, kind, units, where)
+    return copy
 
 
 def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
     """One quantity in its canonical unit; the original value and unit are kept."""
+    return Quantity.model_validate(canonical_fields(quantity, measure, catalogue, path))
+
+
+def canonical_fields(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> dict[str, Any]:
+    """The fields of a quantity in its canonical unit, with the original value and unit (validated by the caller)."""
     unit = checked_unit(quantity.unit, quantity.value, measure, catalogue, path)
-    if quantity.unit == measure.canonical_unit and quantity.original is not None:
-        return quantity  # already normalised
-    original = quantity.original or Original(value=quantity.text(), unit=quantity.unit)
+    original = quantity.original
+    if original is None:
+        kept = {"value": quantity.text(), "unit": quantity.unit}
+    else:
+        kept = {"value": original.value, "unit": original.unit}
+    if quantity.unit == measure.canonical_unit and original is not None:  # already normalised
+        return {"value": quantity.value, "unit": quantity.unit, "decimals": quantity.decimals, "original": kept}
     value, decimals = in_canonical_unit(quantity.value, quantity.decimals, unit, measure, catalogue)
-    return Quantity(value=value, unit=measure.canonical_unit, decimals=decimals, original=original)
+    return {"value": value, "unit": measure.canonical_unit, "decimals": decimals, "original": kept}
 
 
 def checked_unit(unit_text: str, value: float, measure: Measure, catalogue: UnitCatalogue, path: str) -> UnitDef:
@@ -89,30 +132,6 @@ def _decimals_in(text: str) -> int:
 
 def _dimension(measure: Measure) -> str:
     return measure.dimension.replace("_", " ") + f" (e.g. {measure.canonical_unit})"
-
-
-def _normalise_model(obj: BaseModel, catalogue: UnitCatalogue, path: str) -> Any:
-    updates: dict[str, Any] = {}
-    for name, kind, is_tuple in plan_of(type(obj)):
-        value = getattr(obj, name)
-        if value is None:
-            continue
-        where = f"{path}.{name}" if path else name
-        new: Any
-        # Each step returns its input itself when nothing changed, and a value that differs
-        # from it otherwise: an identity test says whether to update (no model comparisons).
-        if isinstance(kind, Measure):
-            new = normalise_quantity(value, kind, catalogue, where)
-            changed = new is not value
-        elif is_tuple:
-            new = tuple(_normalise_model(item, catalogue, f"{where}[{i}]") for i, item in enumerate(value))
-            changed = any(a is not b for a, b in zip(new, value, strict=True))
-        else:
-            new = _normalise_model(value, catalogue, where)
-            changed = new is not value
-        if changed:
-            updates[name] = new
-    return obj.model_copy(update=updates) if updates else obj
 
 
 @cache

@@ -6,8 +6,9 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from bridge.model import Measure, Quantity
-from bridge.science.normalise import express, normalise, normalise_quantity
+from bridge.errors import UnitError
+from bridge.model import Measure, Quantity, Session
+from bridge.science.normalise import express, normalise_quantity, normalise_tree
 from bridge.science.units import decimals_after_conversion
 from bridge.tables.files import load_tables
 
@@ -97,9 +98,46 @@ def test_converted_rounding_step_is_never_coarser(decimals, pair):
 
 
 def test_normalising_twice_changes_nothing(sample_outcomes):
-    """normalise(normalise(x)) == normalise(x) on every sample."""
+    """A read session's own tree, normalised again and validated, is the same session (every sample)."""
     for outcome in sample_outcomes.values():
-        assert outcome.session == normalise(outcome.session, UNITS)
+        again = Session.model_validate(normalise_tree(outcome.session.model_dump(), UNITS))
+
+        assert outcome.session == again
+
+
+def test_tree_quantities_are_normalised_and_the_tree_is_left_alone():
+    """A DLCO object in the tree becomes mL/min/mm[Hg] with the lab's value and unit; the input is unchanged."""
+    tree = {"results": {"dlco": {"value": 7.46, "unit": "mmol/min/kPa", "decimals": 3}}}
+
+    normalised = normalise_tree(tree, UNITS)
+
+    dlco = normalised["results"]["dlco"]
+    # 7.460 x 2.987 = 22.283; the source's step 0.001 mmol/min/kPa is 0.002987 mL/min/mmHg, so 3 decimals
+    # keep the step no coarser (NIST SP 811 (2008) B.7.2); source: GLI 2017 factor (test_units)
+    assert (22.283, 3) == (round(dlco["value"], 3), dlco["decimals"])
+    assert ("mL/min/mm[Hg]", {"value": "7.460", "unit": "mmol/min/kPa"}) == (dlco["unit"], dlco["original"])
+    assert {"results": {"dlco": {"value": 7.46, "unit": "mmol/min/kPa", "decimals": 3}}} == tree
+
+
+def test_tree_step_leaves_what_it_does_not_recognise_for_validation():
+    """A quantity with a stray key, a number where an object belongs, an unknown block: left as they are."""
+    tree = {
+        "results": {"dlco": {"value": 7.46, "unit": "mmol/min/kPa", "colour": "red"}, "va": 6.5},
+        "conditions": "none",
+    }
+
+    assert tree == normalise_tree(tree, UNITS)
+
+
+def test_tree_step_names_the_field_of_a_unit_it_refuses():
+    """An unknown unit in the second manoeuvre is refused naming manoeuvres[1].breath_hold_time.unit."""
+    good = {"inspired_volume": {"value": 4, "unit": "L"}, "breath_hold_time": {"value": 10, "unit": "s"}}
+    bad = {"inspired_volume": {"value": 4, "unit": "L"}, "breath_hold_time": {"value": 10, "unit": "fortnight"}}
+
+    with pytest.raises(UnitError) as caught:
+        normalise_tree({"manoeuvres": [good, bad]}, UNITS)
+
+    assert "manoeuvres[1].breath_hold_time.unit" == caught.value.field
 
 
 @settings(max_examples=200)
