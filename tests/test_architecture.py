@@ -1,4 +1,4 @@
-"""Who may import whom (STYLE.md): the pure core stays pure, and the shell's parts stay apart.
+"""Who may import whom (DEVELOPERS.md, architecture): the pure core stays pure, and the shell's parts stay apart.
 
 The core has no I/O, clock, randomness or global state, and never imports the shell: not
 one module of it, so each shell package is banned whole. Every module of ``bridge/`` is

@@ -67,7 +67,7 @@ _NAMESPACE_BYTES = _NAMESPACE.bytes
 # There is no PFT code in that code system. Blood values (Hb, COHb) are not observations here
 # but components of the result they qualify (emit/observations.py, Supporting).
 _PROCEDURE = (OBSERVATION_CATEGORY, "procedure", "Procedure")
-# HL7 v2 table 0074 PF "Pulmonary Function" (DOMAIN.md 7.1: PFT IG DiagnosticReport uses v2-0074#PF)
+# HL7 v2 table 0074 PF "Pulmonary Function" (the diagnostic service section of a lung-function report)
 _PF = (V2_0074, "PF", "Pulmonary Function")
 _FLAG_DISPLAY = MappingProxyType({"L": "Low", "N": "Normal", "H": "High"})
 

@@ -214,7 +214,7 @@ def test_loinc_codes_of_the_main_quantities(fhir_outcomes, fhir_tables):
 
 def test_categories_and_interpretation(fhir_outcomes, fhir_tables):
     """Observations carry observation-category and v2-0074 PF; the flag becomes a v3 interpretation."""
-    # source: HL7 Terminology observation-category ("procedure") and v2-0074 ("PF"), DOMAIN.md 7.1
+    # source: HL7 Terminology CodeSystems observation-category ("procedure") and v2-0074 ("PF" Pulmonary Function)
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, GOLDEN_CONTEXT)
     dlco = _observation(bundle, "dlco")
     categories = [c["coding"][0]["code"] for c in dlco["category"]]
