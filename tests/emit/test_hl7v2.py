@@ -44,7 +44,8 @@ GOLDEN_CONTEXT = EmitContext(now=NOW)
 GOLDEN_DIR = Path(__file__).resolve().parent.parent / "golden" / "hl7"
 ROOT = Path(__file__).resolve().parents[2]
 STEMS = [p.stem for p in GOOD_SAMPLES]
-# hl7apy's copy of HL7 table 0396 lacks "UCUM", which OBX-6 uses by convention (HL7 v2.5.1 ch. 7: units in OBX-6 as CE with the coding system UCUM).
+# hl7apy's copy of HL7 table 0396 lacks "UCUM", which OBX-6 uses by convention
+# (HL7 v2.5.1 ch. 7: units in OBX-6 as CE, coding system UCUM).
 ALLOWED_WARNING = "Warning: Value UCUM not in table HL70396 in element OBX_6.CE_3"
 DELIMITER_NAME = "Mac^Amp&Pipe|Tilde~Back\\slash"
 
