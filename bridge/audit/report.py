@@ -13,6 +13,7 @@ import csv
 import html
 import io
 import json
+import re
 from collections.abc import Sequence
 from pathlib import Path
 from typing import IO, Any
@@ -28,6 +29,7 @@ from bridge.audit.reduce import ArchiveReduce
 from bridge.audit.rows import AuditFinding, Row
 from bridge.display.check_report import CAUTION
 
+_METADATA = re.compile(r"<metadata>.*?</metadata>", re.DOTALL)  # RDF names of the SVG writer: not needed
 FINDINGS_HEADER = ("source", "test_id", "check", "severity", "message")
 QUARANTINE_HEADER = ("file", "source", "test_id", "checks")
 
@@ -153,10 +155,10 @@ def _label(text: str) -> str:
 
 def _svg(figure: Any) -> str:
     buffer = io.StringIO()
-    figure.savefig(buffer, format="svg", metadata={"Date": None})
+    figure.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
     plt.close(figure)
     text = buffer.getvalue()
-    return text[text.index("<svg") :]
+    return _METADATA.sub("", text[text.index("<svg") :])
 
 
 def _plots(reduce: ArchiveReduce) -> list[tuple[str, str]]:

@@ -29,6 +29,7 @@ JUMPED = range(20, 26)  # ... whose last DLCO is written x2.987 in SI (no KCO, n
 CONFLICTING = range(30, 37)  # ... whose first test id appears again with other content
 COPIED = range(40, 42)  # ... whose first file is copied byte for byte (not a conflict)
 HB_WRONG = 8  # copies of sample 09, each its own patient
+RAW = 20  # copies of sample 06 (three manoeuvres with raw gas data), each its own patient
 SALTREACH_IN_SI = 3  # Saltreach writes traditional units but for these
 BRACKENFOLD_OTHER_SET = 4  # Brackenfold uses GLI 2017 but for these
 
@@ -45,12 +46,14 @@ PLANTED = Counter(
         "HB_ADJUSTMENT_WRONG_DIRECTION": HB_WRONG,
         "HB_ADJUSTMENT": HB_WRONG,  # sample 09: Hb 11.2 g/dL, the adjustment is noted
         "PRESSURE_ADJUSTMENT": HB_WRONG,  # sample 09: measured at 1800 m
+        "BREATH_HOLD_OUT_OF_TARGET": RAW,  # sample 06: manoeuvre 3 held 7.2 s
+        "MANOEUVRE_NOT_ACCEPTABLE": RAW,  # sample 06: manoeuvre 3, VI/VC 77 %
         "UNREADABLE_INPUT": 4,  # three half-written files and one binary file
         "UNKNOWN_FORMAT": 2,
     }
 )
 SESSIONS = {LOWMARSH: (600, 3), SALTREACH: (300, 3), BRACKENFOLD: (100, 2)}  # patients, sessions each
-READABLE = sum(p * s for p, s in SESSIONS.values()) + len(CONFLICTING) + len(COPIED) + HB_WRONG
+READABLE = sum(p * s for p, s in SESSIONS.values()) + len(CONFLICTING) + len(COPIED) + HB_WRONG + RAW
 CLEAN = READABLE - HB_WRONG  # the Hb errors are the only record findings of severity error
 
 
@@ -125,6 +128,11 @@ def write_archive(root: Path) -> None:
         doc["patient"]["id"] = f"FICT-HC{i:05d}"
         if i == 0:
             doc["patient"]["given"] = SCRIPT_NAME
+        (legacy / f"{doc['test_id']}.json").write_bytes(orjson.dumps(doc))
+    for i in range(RAW):
+        doc = _sample("06-three-manoeuvres.json")
+        doc["test_id"] = f"LM-RAW-{i:03d}"
+        doc["patient"]["id"] = f"FICT-RAW{i:05d}"
         (legacy / f"{doc['test_id']}.json").write_bytes(orjson.dumps(doc))
     broken = root / "broken"
     broken.mkdir()

@@ -85,5 +85,12 @@ def test_walk_goes_deeper_than_the_recursion_limit(tmp_path: Path):
         os.mkdir(folder)
     with open(folder + "/deep.json", "w") as handle:
         handle.write("{}")
+    try:
+        found = list(walk([tmp_path]))
+    finally:  # removed here level by level: pytest's clean-up of old temporary folders recurses too
+        os.remove(folder + "/deep.json")
+        while folder != str(tmp_path):
+            os.rmdir(folder)
+            folder = os.path.dirname(folder)
 
-    assert [folder + "/deep.json"] == list(walk([tmp_path]))
+    assert [str(tmp_path) + "/d" * 1500 + "/deep.json"] == found
