@@ -142,6 +142,7 @@ def build_parser() -> argparse.ArgumentParser:
     audit.add_argument("--report", type=Path, required=True, help="folder for findings.csv, summary.json, report.html")
     audit.add_argument("--workers", type=int, help="worker processes (default: the number of CPUs)")
     audit.add_argument("--emit", choices=("ndjson",), help="also write the clean sessions as FHIR R4 NDJSON")
+    audit.add_argument("--scheduler", help="run on an existing Dask cluster at this address (the [scale] extra)")
     _add_settings(audit, emits=False)
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
     watch = commands.add_parser("watch", help="run the watch-folder service")
@@ -341,9 +342,9 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
         audit = replace(audit, workers=args.workers)
     job = Job(settings.pipeline, settings.traditional_per_si, settings.units, datetime.now(UTC), audit.emit_ndjson)
     try:
-        summary = run_audit(args.paths, args.report, job, audit, progress=terminal())
-    except OSError as exc:
-        print(f"dlco-bridge: {args.report}: a writable report folder ({exc.strerror or exc})", file=sys.stderr)
+        summary = run_audit(args.paths, args.report, job, audit, progress=terminal(), scheduler=args.scheduler)
+    except OSError as exc:  # the report folder cannot be written, or the scheduler cannot be reached
+        print(f"dlco-bridge: audit could not run: {exc}", file=sys.stderr)
         return EXIT_SETUP
     print(
         f"{summary['files']} files, {summary['sessions_read']} sessions read, {summary['clean']} clean, "

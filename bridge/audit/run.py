@@ -4,8 +4,9 @@ Owns walking (``os.scandir``, iteratively: no recursion limit, one folder open a
 no listing held whole), chunking, the bounded pool of worker processes
 (``concurrent.futures.ProcessPoolExecutor``), what one worker does with one file
 (:func:`audit_file`: read, :func:`bridge.pipeline.process`, row, NDJSON of a clean session),
-the progress line on a terminal, and the order results are taken in: the order of the walk,
-whatever the number of workers, so that a run's files are the same for 1 or N workers.
+the same map on an existing Dask cluster (:func:`map_dask`), the progress line on a terminal,
+and the order results are taken in: the order of the walk, whatever the number of workers or
+the scheduler, so that a run's files are the same for 1 or N workers, local or on a cluster.
 
 Extension point for field maps (``--map``): a worker reads every file through
 :func:`audit_file`, which calls the one pipeline with the job's settings; when the pipeline
@@ -25,7 +26,7 @@ from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass
 from datetime import datetime
 from pathlib import Path
-from typing import TextIO
+from typing import Any, TextIO
 
 from bridge.audit.reduce import ArchiveReduce
 from bridge.audit.report import ReportWriter
@@ -168,6 +169,28 @@ def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) ->
             yield pending.popleft().result()
 
 
+def map_dask(chunks: Iterable[list[str]], job: Job, settings: AuditSettings, address: str) -> Iterator[ChunkResult]:
+    """The same chunks through an existing Dask cluster (the ``[scale]`` extra), results in submission order.
+
+    Every worker must see the files at the same paths (a shared file system). Raises
+    ``OSError`` when the scheduler cannot be reached.
+    """
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise OSError(f"--scheduler needs Dask: pip install 'dlco-bridge[scale]' ({exc})") from exc
+    with Client(address, set_as_default=False) as client:  # type: ignore[no-untyped-call]  # untyped upstream
+        workers = max(1, len(client.scheduler_info()["workers"]))
+        ahead = workers * max(1, settings.in_flight_per_worker)
+        pending: deque[Any] = deque()
+        for chunk in chunks:
+            pending.append(client.submit(audit_chunk, chunk, job, pure=False))
+            if len(pending) >= ahead:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
 class Progress:
     """A progress line on a terminal (files and files/s), at most a few times a second; silent otherwise."""
 
@@ -202,16 +225,21 @@ def run_audit(
     settings: AuditSettings = AuditSettings(),
     *,
     progress: TextIO | None = None,
+    scheduler: str | None = None,
 ) -> dict[str, object]:
     """Audit every file under ``paths`` and write the report folder; returns the summary written.
 
-    Raises ``OSError`` when the report folder cannot be written (the audit could not run).
+    ``scheduler``: the address of a Dask scheduler to run on instead of local processes (the
+    files written are the same). Raises ``OSError`` when the audit could not run: the report
+    folder cannot be written, or the scheduler cannot be reached.
     """
     writer = ReportWriter(report, ndjson=job.emit_ndjson)
     reduce = ArchiveReduce()
     shown = Progress(progress)
     try:
-        for result in map_local(chunked(walk(paths), settings.chunk_files), job, settings):
+        chunks = chunked(walk(paths), settings.chunk_files)
+        results = map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
+        for result in results:
             for row in result.rows:
                 reduce.add(row)
             writer.add(result.rows, result.ndjson)

@@ -32,7 +32,7 @@ def test_audit_that_cannot_write_its_report_exits_1(tmp_path: Path, capsys):
 
     code = main(["audit", str(samples_dir()), "--report", str(tmp_path / "taken" / "r"), "--workers", "1"])
 
-    assert (1, True) == (code, "a writable report folder" in capsys.readouterr().err)
+    assert (1, True) == (code, "audit could not run" in capsys.readouterr().err)
 
 
 def test_workers_below_one_is_a_usage_error(tmp_path: Path, capsys):
