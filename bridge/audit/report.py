@@ -155,7 +155,8 @@ def _label(text: str) -> str:
 
 def _svg(figure: Any) -> str:
     buffer = io.StringIO()
-    figure.savefig(buffer, format="svg", metadata={"Date": None, "Creator": None, "Format": None, "Type": None})
+    no_metadata = {"Date": None, "Creator": None, "Format": None, "Type": None}  # the same bytes every run
+    figure.savefig(buffer, format="svg", bbox_inches="tight", metadata=no_metadata)
     plt.close(figure)
     text = buffer.getvalue()
     return _METADATA.sub("", text[text.index("<svg") :])
@@ -206,8 +207,9 @@ def _plots(reduce: ArchiveReduce) -> list[tuple[str, str]]:
 
 
 STYLE = """
-body{font-family:system-ui,sans-serif;margin:2rem;max-width:70rem;color:#222}
-table{border-collapse:collapse;margin:.5rem 0 1.5rem}td,th{border:1px solid #ccc;padding:.2rem .5rem;text-align:left}
+body{font-family:system-ui,sans-serif;margin:2rem auto;padding:0 1rem;max-width:70rem;color:#222}
+table{border-collapse:collapse;margin:.5rem 0 1.5rem;max-width:100%}
+td,th{border:1px solid #ccc;padding:.2rem .5rem;text-align:left;vertical-align:top;overflow-wrap:break-word}
 td.n{text-align:right}.caution{border:2px solid #a60;padding:.5rem 1rem;background:#fff6e5}
 figure{margin:1rem 0}svg{max-width:100%;height:auto}
 """
