@@ -13,6 +13,7 @@ from types import MappingProxyType
 
 from bridge.errors import InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import Outcome, Quantity, Severity
+from bridge.science.reference import OutsideRange, Parameter, ReferenceEquations
 
 SEVERITY_RANK = MappingProxyType({Severity.INFO.value: 0, Severity.WARNING.value: 1, Severity.ERROR.value: 2})
 
@@ -21,6 +22,11 @@ UNREADABLE = "UNREADABLE_INPUT"  # not UTF-8, not JSON, empty, half-written, too
 UNKNOWN_FORMAT = "UNKNOWN_FORMAT"  # no reader recognises it
 INVALID_RECORD = "INVALID_RECORD"  # readable, but a field is missing or impossible
 INTERNAL_ERROR = "INTERNAL_ERROR"  # the bridge failed on it: a defect to report
+PREDICTED_NOT_FROM_SET = "PREDICTED_NOT_FROM_CLAIMED_SET"
+# A lab's predicted DLCO that claims GLI-2017 but is further than this from the GLI-2017 value
+# for the record's sex, age and height was computed otherwise (another set, another sex, a
+# transcription). Labs round ages and predicted values, which moves them by a few per cent at most.
+PREDICTED_TOLERANCE = 0.05  # relative (common practice)
 
 
 @dataclass(frozen=True, slots=True, order=True)
@@ -75,14 +81,44 @@ def _convention(quantity: Quantity | None) -> str:
     return "si" if unit.lower().startswith("mmol") else "traditional"
 
 
-def row_of(outcome: Outcome, file: str) -> Row:
-    """The row of one outcome of the pipeline."""
+def claims_gli_2017(reference_set: str) -> bool:
+    """Whether a lab's reference-set name says GLI-2017 (labs write it several ways)."""
+    text = reference_set.upper()
+    return "GLI" in text and "2017" in text
+
+
+def predicted_check(outcome: Outcome, equations: ReferenceEquations) -> AuditFinding | None:
+    """A predicted DLCO that claims GLI-2017 but is not the GLI-2017 value for this patient."""
+    session = outcome.session
+    predicted = session.results.predicted
+    if predicted is None or predicted.dlco is None or not claims_gli_2017(predicted.reference_set or ""):
+        return None
+    patient = session.patient
+    lms = equations.lms(Parameter.DLCO, patient.sex, outcome.derived.age_years, patient.height.value)
+    if isinstance(lms, OutsideRange):
+        return None  # the equations do not cover this patient: nothing to compare with
+    reported = predicted.dlco.value
+    if abs(reported / lms.predicted - 1) <= PREDICTED_TOLERANCE:
+        return None
+    message = (
+        f"results.predicted.dlco: {reported:.1f} mL/min/mmHg is said to be {predicted.reference_set}, but GLI-2017 "
+        f"predicts {lms.predicted:.1f} for a {patient.sex.value} of {outcome.derived.age_years:.0f} y and "
+        f"{patient.height.value:.0f} cm; check the set, the sex and the age the lab used."
+    )
+    return AuditFinding(session.lab.name, session.test_id, PREDICTED_NOT_FROM_SET, Severity.WARNING.value, message)
+
+
+def row_of(outcome: Outcome, file: str, equations: ReferenceEquations | None = None) -> Row:
+    """The row of one outcome of the pipeline (with ``equations``, its predicted values are checked too)."""
     session, derived = outcome.session, outcome.derived
     source = session.lab.name
     findings = tuple(
         AuditFinding(source, session.test_id, f.code, f.severity.value, f"{f.path}: {f.message}")
         for f in outcome.findings
     )
+    extra = predicted_check(outcome, equations) if equations is not None else None
+    if extra is not None:
+        findings = (*findings, extra)
     patient = session.patient
     name = " ".join(part for part in (patient.given, patient.family) if part)
     results = session.results

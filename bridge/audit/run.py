@@ -34,9 +34,10 @@ from bridge.audit.rows import Row, row_of, row_of_error
 from bridge.emit.fhir import to_ndjson
 from bridge.errors import InputError, ProcessingFailed, UnreadableInput
 from bridge.pipeline import PipelineSettings, process
+from bridge.science.reference import ReferenceEquations
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
-from bridge.tables.files import load_tables
+from bridge.tables.files import load_reference_equations, load_tables
 
 DEFAULT_WORKERS = os.cpu_count() or 1  # one worker per CPU
 
@@ -114,6 +115,12 @@ def _tables(traditional_per_si: float) -> Tables:
     return load_tables(traditional_per_si=traditional_per_si)
 
 
+@functools.cache
+def _equations() -> ReferenceEquations:
+    """The GLI-2017 reference equations, loaded once per worker process."""
+    return load_reference_equations()
+
+
 def read_file(path: str, limit: int) -> bytes:
     """The bytes of one file; anything the file system refuses is an :class:`UnreadableInput`."""
     try:
@@ -126,12 +133,14 @@ def read_file(path: str, limit: int) -> bytes:
     return data
 
 
-def audit_file(path: str, job: Job, tables: Tables) -> tuple[Row, dict[str, bytes]]:
+def audit_file(
+    path: str, job: Job, tables: Tables, equations: ReferenceEquations | None = None
+) -> tuple[Row, dict[str, bytes]]:
     """One file through the one pipeline: its row, and its NDJSON when it is clean and asked for."""
     try:
         data = read_file(path, job.pipeline.max_input_bytes)
         outcome = process(data, path, tables, job.pipeline)
-        row = row_of(outcome, path)
+        row = row_of(outcome, path, equations)
         if not (job.emit_ndjson and row.clean):
             return row, {}
         return row, to_ndjson([outcome], tables, job.pipeline.emit.context(job.now, job.units, False))
@@ -143,11 +152,11 @@ def audit_file(path: str, job: Job, tables: Tables) -> tuple[Row, dict[str, byte
 
 def audit_chunk(files: Sequence[str], job: Job) -> ChunkResult:
     """What a worker does with one chunk (a top-level function: it is pickled by name)."""
-    tables = _tables(job.traditional_per_si)
+    tables, equations = _tables(job.traditional_per_si), _equations()
     rows = []
     ndjson: dict[str, list[bytes]] = {}
     for path in files:
-        row, lines = audit_file(path, job, tables)
+        row, lines = audit_file(path, job, tables, equations)
         rows.append(row)
         for kind, text in lines.items():
             ndjson.setdefault(kind, []).append(text)

@@ -32,6 +32,7 @@ HB_WRONG = 8  # copies of sample 09, each its own patient
 RAW = 20  # copies of sample 06 (three manoeuvres with raw gas data), each its own patient
 SALTREACH_IN_SI = 3  # Saltreach writes traditional units but for these
 BRACKENFOLD_OTHER_SET = 4  # Brackenfold uses GLI 2017 but for these
+PREDICTED_OFF = range(50, 53)  # Lowmarsh patients whose first predicted DLCO, said to be GLI 2017, is 15 % high
 
 # What the audit must find: exactly these, no more, no fewer (hand-counted from the plan above).
 PLANTED = Counter(
@@ -48,6 +49,8 @@ PLANTED = Counter(
         "PRESSURE_ADJUSTMENT": HB_WRONG,  # sample 09: measured at 1800 m
         "BREATH_HOLD_OUT_OF_TARGET": RAW,  # sample 06: manoeuvre 3 held 7.2 s
         "MANOEUVRE_NOT_ACCEPTABLE": RAW,  # sample 06: manoeuvre 3, VI/VC 77 %
+        # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
+        "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
         "UNREADABLE_INPUT": 4,  # three half-written files and one binary file
         "UNKNOWN_FORMAT": 2,
     }
@@ -97,6 +100,9 @@ def _plant(doc: dict[str, Any], patient: int, visit: int) -> None:
         doc["patient"]["sex"] = "female"
     if patient in BIRTH_CHANGED and visit == 1:
         doc["patient"]["birth_date"] = "1981-01-16"
+    if patient in PREDICTED_OFF and visit == 0:
+        predicted = doc["results"]["predicted"]["dlco"]
+        predicted["value"] = round(predicted["value"] * 1.15, 2)
     if patient in JUMPED and visit == 2:
         results = doc["results"]
         results["dlco"]["value"] = round(results["dlco"]["value"] * TRADITIONAL_PER_SI, 2)

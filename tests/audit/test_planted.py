@@ -39,6 +39,8 @@ def test_the_archive_findings_name_the_planted_sessions(report: Path):
     assert {f"LM-{p:05d}-1" for p in planted.BIRTH_CHANGED} == ids("PATIENT_BIRTH_DATE_CHANGED")
     assert {f"LM-{p:05d}-2" for p in planted.JUMPED} == ids("SERIES_UNIT_JUMP")
     assert {f"LM-{p:05d}-0" for p in planted.CONFLICTING} == ids("DUPLICATE_TEST_ID_CONFLICT")
+    off = {f"LM-{p:05d}-0" for p in planted.PREDICTED_OFF} | {f"LM-{p:05d}-2" for p in planted.SEX_CHANGED}
+    assert off == ids("PREDICTED_NOT_FROM_CLAIMED_SET")
     sources = {(row["check"], row["source"]) for row in found if row["test_id"] == ""}
     assert {
         ("UNIT_CONVENTIONS_MIXED", planted.SALTREACH),
