@@ -158,6 +158,13 @@ def build_parser() -> argparse.ArgumentParser:
     show = commands.add_parser("show", help="an HL7 v2 message with field names, or a FHIR Bundle summarised")
     show.add_argument("file", type=Path, help="an ER7 HL7 v2 message or a FHIR Bundle (JSON)")
     commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
+    audit = commands.add_parser("audit", help="check a whole archive, write a report folder (and bulk FHIR NDJSON)")
+    audit.add_argument("paths", nargs="+", type=Path, help="export files or folders (walked to any depth)")
+    audit.add_argument("--report", type=Path, required=True, help="folder for findings.csv, summary.json, report.html")
+    audit.add_argument("--workers", type=int, help="worker processes (default: the number of CPUs)")
+    audit.add_argument("--emit", choices=("ndjson",), help="also write the clean sessions as FHIR R4 NDJSON")
+    audit.add_argument("--scheduler", help="run on an existing Dask cluster at this address (the [scale] extra)")
+    _add_settings(audit, emits=False)
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
     watch = commands.add_parser("watch", help="run the watch-folder service")
     watch.add_argument("--config", type=Path, help=config_help)
@@ -431,6 +438,30 @@ def cmd_schema(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
     return EXIT_OK
 
 
+def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    """Audit an archive; exit 0 whatever was found, 1 only when the report could not be written."""
+    from bridge.audit.run import AuditSettings, Job, run_audit, terminal  # matplotlib: only when auditing
+
+    if args.workers is not None and args.workers < 1:
+        print("dlco-bridge: --workers: at least 1", file=sys.stderr)
+        return EXIT_SETUP
+    audit = AuditSettings(emit_ndjson=args.emit == "ndjson")
+    if args.workers is not None:
+        audit = replace(audit, workers=args.workers)
+    job = Job(settings.pipeline, settings.traditional_per_si, settings.units, datetime.now(UTC), audit.emit_ndjson)
+    try:
+        summary = run_audit(args.paths, args.report, job, audit, progress=terminal(), scheduler=args.scheduler)
+    except OSError as exc:  # the report folder cannot be written, or the scheduler cannot be reached
+        print(f"dlco-bridge: audit could not run: {exc}", file=sys.stderr)
+        return EXIT_SETUP
+    print(
+        f"{summary['files']} files, {summary['sessions_read']} sessions read, {summary['clean']} clean, "
+        f"{summary['findings']} findings; report in {args.report / 'report.html'}"
+    )
+    print(CAUTION)
+    return EXIT_OK
+
+
 def build_transport(destination: Destination) -> Transport:
     """The transport of one destination (the CLI is the only place transports are built)."""
     tls = None
@@ -614,6 +645,7 @@ COMMANDS = {
     "demo": cmd_demo,
     "show": cmd_show,
     "schema": cmd_schema,
+    "audit": cmd_audit,
 }
 _NEEDS_CONFIG = ("watch", "status", "resend", "prune")
 

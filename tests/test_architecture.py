@@ -28,9 +28,13 @@ CORE = (
     "readers",
     "emit",
     "display",
+    "audit/__init__.py",
+    "audit/rows.py",
+    "audit/reduce.py",
+    "audit/stats.py",
 )
 # The shell: I/O and wiring. The core imports none of it, at any depth.
-SHELL = ("cli.py", "config.py", "tables/files.py", "service")
+SHELL = ("cli.py", "config.py", "tables/files.py", "service", "audit/run.py", "audit/report.py")
 # The public API's re-exports and ``python -m bridge``: neither core nor shell.
 ENTRY_POINTS = ("__init__.py", "__main__.py")
 

@@ -1,0 +1,264 @@
+"""The audit's shell: walk the archive, map the one pipeline over its files in worker processes.
+
+Owns walking (``os.scandir``, iteratively: no recursion limit, one folder open at a time,
+no listing held whole), chunking, the bounded pool of worker processes
+(``concurrent.futures.ProcessPoolExecutor``), what one worker does with one file
+(:func:`audit_file`: read, :func:`bridge.pipeline.process`, row, NDJSON of a clean session),
+the same map on an existing Dask cluster (:func:`map_dask`), the progress line on a terminal,
+and the order results are taken in: the order of the walk, whatever the number of workers or
+the scheduler, so that a run's files are the same for 1 or N workers, local or on a cluster.
+
+Extension point for field maps (``--map``): a worker reads every file through
+:func:`audit_file`, which calls the one pipeline with the job's settings; when the pipeline
+accepts a field map, the map goes on :class:`Job` and nowhere else changes.
+"""
+
+from __future__ import annotations
+
+import functools
+import multiprocessing
+import os
+import sys
+import time
+from collections import deque
+from collections.abc import Iterable, Iterator, Sequence
+from concurrent.futures import Future, ProcessPoolExecutor
+from dataclasses import dataclass
+from datetime import datetime
+from pathlib import Path
+from typing import Any, TextIO
+
+from bridge.audit.reduce import ArchiveReduce
+from bridge.audit.report import ReportWriter
+from bridge.audit.rows import Row, row_of, row_of_error
+from bridge.emit.fhir import to_ndjson
+from bridge.errors import InputError, ProcessingFailed, UnreadableInput
+from bridge.pipeline import PipelineSettings, process
+from bridge.science.reference import ReferenceEquations
+from bridge.science.units import UnitSystem
+from bridge.tables import Tables
+from bridge.tables.files import load_reference_equations, load_tables
+
+DEFAULT_WORKERS = os.cpu_count() or 1  # one worker per CPU
+
+
+@dataclass(frozen=True, slots=True)
+class AuditSettings:
+    """How the audit runs (defaults written here once; ``--help`` shows them)."""
+
+    workers: int = DEFAULT_WORKERS  # worker processes
+    chunk_files: int = 250  # files a worker takes at a time
+    in_flight_per_worker: int = 2  # chunks submitted ahead per worker: bounds memory
+    emit_ndjson: bool = False
+
+
+@dataclass(frozen=True, slots=True)
+class Job:
+    """What a worker needs besides the files; sent with every chunk (small, picklable)."""
+
+    pipeline: PipelineSettings
+    traditional_per_si: float
+    units: UnitSystem
+    now: datetime  # read once by the shell: every resource of the run carries the same time
+    emit_ndjson: bool
+
+
+@dataclass(frozen=True, slots=True)
+class ChunkResult:
+    """The rows of one chunk, in the chunk's order, and the NDJSON of its clean sessions."""
+
+    rows: tuple[Row, ...]
+    ndjson: tuple[tuple[str, bytes], ...]  # (resource type, lines), resource types sorted
+
+
+def walk(paths: Iterable[Path]) -> Iterator[str]:
+    """Every file under ``paths`` (hidden names skipped, symlinked folders not followed).
+
+    Iterative, one ``os.scandir`` open at a time; a folder that cannot be listed is yielded
+    itself, so that reading it becomes a finding rather than a crash.
+    """
+    for top in paths:
+        if not top.is_dir():
+            yield str(top)
+            continue
+        folders = [str(top)]
+        while folders:
+            folder = folders.pop()
+            try:
+                with os.scandir(folder) as entries:
+                    for entry in entries:
+                        if entry.name.startswith("."):
+                            continue
+                        if entry.is_dir(follow_symlinks=False):
+                            folders.append(entry.path)
+                        else:
+                            yield entry.path
+            except OSError:
+                yield folder
+
+
+def chunked(files: Iterable[str], size: int) -> Iterator[list[str]]:
+    """Consecutive lists of at most ``size`` files."""
+    chunk: list[str] = []
+    for file in files:
+        chunk.append(file)
+        if len(chunk) >= size:
+            yield chunk
+            chunk = []
+    if chunk:
+        yield chunk
+
+
+@functools.cache
+def _tables(traditional_per_si: float) -> Tables:
+    """The tables, loaded once per worker process."""
+    return load_tables(traditional_per_si=traditional_per_si)
+
+
+@functools.cache
+def _equations() -> ReferenceEquations:
+    """The GLI-2017 reference equations, loaded once per worker process."""
+    return load_reference_equations()
+
+
+def read_file(path: str, limit: int) -> bytes:
+    """The bytes of one file; anything the file system refuses is an :class:`UnreadableInput`."""
+    try:
+        with open(path, "rb") as handle:
+            data = handle.read(limit + 1)
+    except OSError as exc:
+        raise UnreadableInput("(file)", f"a readable file ({exc.strerror or exc})", path) from exc
+    if len(data) > limit:
+        raise UnreadableInput("(file)", f"at most {limit} bytes", path)
+    return data
+
+
+def audit_file(
+    path: str, job: Job, tables: Tables, equations: ReferenceEquations | None = None
+) -> tuple[Row, dict[str, bytes]]:
+    """One file through the one pipeline: its row, and its NDJSON when it is clean and asked for."""
+    try:
+        data = read_file(path, job.pipeline.max_input_bytes)
+        outcome = process(data, path, tables, job.pipeline)
+        row = row_of(outcome, path, equations)
+        if not (job.emit_ndjson and row.clean):
+            return row, {}
+        return row, to_ndjson([outcome], tables, job.pipeline.emit.context(job.now, job.units, False))
+    except InputError as exc:
+        return row_of_error(exc, path), {}
+    except Exception as exc:  # one file must never stop the others
+        return row_of_error(ProcessingFailed.wrapping(exc, path), path), {}
+
+
+def audit_chunk(files: Sequence[str], job: Job) -> ChunkResult:
+    """What a worker does with one chunk (a top-level function: it is pickled by name)."""
+    tables, equations = _tables(job.traditional_per_si), _equations()
+    rows = []
+    ndjson: dict[str, list[bytes]] = {}
+    for path in files:
+        row, lines = audit_file(path, job, tables, equations)
+        rows.append(row)
+        for kind, text in lines.items():
+            ndjson.setdefault(kind, []).append(text)
+    return ChunkResult(tuple(rows), tuple((kind, b"".join(parts)) for kind, parts in sorted(ndjson.items())))
+
+
+def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) -> Iterator[ChunkResult]:
+    """Chunks through a pool of worker processes; results in submission order, a bounded number ahead."""
+    workers = max(1, settings.workers)
+    ahead = workers * max(1, settings.in_flight_per_worker)
+    context = multiprocessing.get_context("forkserver")
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+        pending: deque[Future[ChunkResult]] = deque()
+        for chunk in chunks:
+            pending.append(pool.submit(audit_chunk, chunk, job))
+            if len(pending) >= ahead:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
+def map_dask(chunks: Iterable[list[str]], job: Job, settings: AuditSettings, address: str) -> Iterator[ChunkResult]:
+    """The same chunks through an existing Dask cluster (the ``[scale]`` extra), results in submission order.
+
+    Every worker must see the files at the same paths (a shared file system). Raises
+    ``OSError`` when the scheduler cannot be reached.
+    """
+    try:
+        from distributed import Client
+    except ImportError as exc:
+        raise OSError(f"--scheduler needs Dask: pip install 'dlco-bridge[scale]' ({exc})") from exc
+    with Client(address, set_as_default=False) as client:  # type: ignore[no-untyped-call]  # untyped upstream
+        workers = max(1, len(client.scheduler_info()["workers"]))
+        ahead = workers * max(1, settings.in_flight_per_worker)
+        pending: deque[Any] = deque()
+        for chunk in chunks:
+            pending.append(client.submit(audit_chunk, chunk, job, pure=False))
+            if len(pending) >= ahead:
+                yield pending.popleft().result()
+        while pending:
+            yield pending.popleft().result()
+
+
+class Progress:
+    """A progress line on a terminal (files and files/s), at most a few times a second; silent otherwise."""
+
+    def __init__(self, stream: TextIO | None) -> None:
+        self.stream = stream
+        self.files = 0
+        self.started = self.shown = time.monotonic()
+
+    def advance(self, files: int) -> None:
+        self.files += files
+        now = time.monotonic()
+        if self.stream is not None and now - self.shown >= 0.25:
+            self.shown = now
+            self._show(now)
+
+    def close(self) -> None:
+        if self.stream is not None:
+            self._show(time.monotonic())
+            self.stream.write("\n")
+
+    def _show(self, now: float) -> None:
+        assert self.stream is not None
+        rate = self.files / max(now - self.started, 1e-9)
+        self.stream.write(f"\raudit: {self.files:,} files, {rate:,.0f} files/s")
+        self.stream.flush()
+
+
+def run_audit(
+    paths: Sequence[Path],
+    report: Path,
+    job: Job,
+    settings: AuditSettings = AuditSettings(),
+    *,
+    progress: TextIO | None = None,
+    scheduler: str | None = None,
+) -> dict[str, object]:
+    """Audit every file under ``paths`` and write the report folder; returns the summary written.
+
+    ``scheduler``: the address of a Dask scheduler to run on instead of local processes (the
+    files written are the same). Raises ``OSError`` when the audit could not run: the report
+    folder cannot be written, or the scheduler cannot be reached.
+    """
+    writer = ReportWriter(report, ndjson=job.emit_ndjson)
+    reduce = ArchiveReduce()
+    shown = Progress(progress)
+    try:
+        chunks = chunked(walk(paths), settings.chunk_files)
+        results = map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
+        for result in results:
+            for row in result.rows:
+                reduce.add(row)
+            writer.add(result.rows, result.ndjson)
+            shown.advance(len(result.rows))
+    finally:
+        shown.close()
+        writer.close_streams()
+    return writer.finish(reduce, reduce.finish())
+
+
+def terminal(stream: TextIO = sys.stderr) -> TextIO | None:
+    """``stream`` when it is a terminal (the progress line), else None (quiet)."""
+    return stream if stream.isatty() else None

@@ -1,0 +1,40 @@
+"""``dlco-bridge audit`` on the command line: exit codes and bad input as findings."""
+
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+from bridge.cli import main
+from bridge.tables.files import samples_dir
+
+
+def test_audit_exits_0_and_reports_a_broken_export_and_a_foreign_file_as_findings(tmp_path: Path, capsys):
+    """A broken export (sample 08) and a TOML file beside a good export are findings, and the exit is 0."""
+    archive = tmp_path / "archive"
+    (archive / "service").mkdir(parents=True)
+    for name in ("01-healthy-adult.json", "08-malformed.json", "service/bridge.toml"):
+        (archive / name).write_bytes((samples_dir() / name).read_bytes())
+
+    code = main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1"])
+    with open(tmp_path / "r" / "findings.csv", newline="", encoding="utf-8") as handle:
+        refused = {(Path(row["source"]).name, row["check"]) for row in csv.DictReader(handle) if row["test_id"] == ""}
+
+    assert 0 == code
+    # source: samples/08-malformed.json has a date-time without a UTC offset (README, "What the samples show")
+    assert {("08-malformed.json", "INVALID_RECORD"), ("bridge.toml", "UNREADABLE_INPUT")} == refused
+    assert "report in" in capsys.readouterr().out
+
+
+def test_audit_that_cannot_write_its_report_exits_1(tmp_path: Path, capsys):
+    """A report folder that cannot be made (a file is in the way) stops the audit with exit 1 and one line."""
+    (tmp_path / "taken").write_text("a file, not a folder")
+
+    code = main(["audit", str(samples_dir()), "--report", str(tmp_path / "taken" / "r"), "--workers", "1"])
+
+    assert (1, True) == (code, "audit could not run" in capsys.readouterr().err)
+
+
+def test_workers_below_one_is_a_usage_error(tmp_path: Path, capsys):
+    """--workers 0 is refused before anything runs."""
+    assert 1 == main(["audit", str(samples_dir()), "--report", str(tmp_path), "--workers", "0"])
