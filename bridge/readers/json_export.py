@@ -22,7 +22,15 @@ FORMAT = "dlco-result/1"
 
 def read_export(data: bytes, source: str = "") -> Session:
     """Parse one ``dlco-result/1`` document into a session (units not yet normalised)."""
-    tree = _parse(data, source)
+    return session_from_tree(_parse(data, source), source)
+
+
+def session_from_tree(tree: dict[str, Any], source: str = "") -> Session:
+    """A parsed ``dlco-result/1`` tree (numbers as Decimal) -> Session; every reader ends here.
+
+    The field-map readers (``csv_export``, ``hl7v2_legacy``) build the same tree, so every
+    source goes through the same reported-digits rule and the same model validation.
+    """
     try:
         return Session.model_validate(_decimals_in_place(tree))
     except ValidationError as exc:
