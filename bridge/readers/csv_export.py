@@ -47,14 +47,16 @@ def read_csv_lines(
     reader = csv.reader(itertools.chain(head, lines), delimiter=delimiter, strict=True)
     header = _header(reader, fmap, source)
     rows = _rows(reader, len(header), source)
+    used = set(fmap.columns())
+    unused = tuple(f"column {c!r}" for c in header if c not in used)
     if fmap.rows == "session":
         for line, row in rows:
-            yield _session([(line, row)], header, fmap, catalogue, source)
+            yield _session([(line, row)], header, fmap, catalogue, source, unused)
         return
     assert fmap.group_by is not None  # checked by the map parser
     key = header.index(fmap.group_by)
     for _, group in itertools.groupby(rows, key=lambda item: item[1][key].strip()):
-        yield _session(list(group), header, fmap, catalogue, source)
+        yield _session(list(group), header, fmap, catalogue, source, unused)
 
 
 def _decoded(lines: Iterable[str], source: str, fmap: FieldMap) -> Iterator[str]:
@@ -131,6 +133,7 @@ def _session(
     fmap: FieldMap,
     catalogue: UnitCatalogue,
     source: str,
+    unused: tuple[str, ...],
 ) -> MappedRecord:
     """One session from its rows: session fields from the first row, one manoeuvre per row that has any.
 
@@ -147,5 +150,5 @@ def _session(
                 cells.extend(mine)
                 index += 1
     except InvalidField as exc:
-        return MappedRecord(where, (), error=exc.with_source(source))
-    return mapped_record(where, cells, fmap, catalogue, source)
+        return MappedRecord(where, (), error=exc.with_source(source), unused=unused)
+    return mapped_record(where, cells, fmap, catalogue, source, unused=unused)

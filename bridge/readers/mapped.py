@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import re
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime
 from decimal import Decimal
 from typing import Any
@@ -48,7 +48,8 @@ class MappedRecord:
     cells: tuple[Cell, ...]
     session: Session | None = None
     error: InputError | None = None
-    unmapped: tuple[str, ...] = ()  # source codes present in the record that the map does not name
+    unmapped: tuple[str, ...] = ()  # source codes present in the record that the map does not name (findings)
+    unused: tuple[str, ...] = ()  # source columns of the layout the map does not read (map check shows them)
 
 
 def mapped_record(
@@ -58,17 +59,19 @@ def mapped_record(
     catalogue: UnitCatalogue,
     source: str,
     unmapped: Sequence[str] = (),
+    unused: Sequence[str] = (),
 ) -> MappedRecord:
     """The session of one record, or the first error met building it (never raised)."""
+    found = MappedRecord(where, tuple(cells), unmapped=tuple(unmapped), unused=tuple(unused))
     try:
         tree = record_tree(cells, fmap, catalogue)  # errors name the cell's row and column or code
     except InputError as exc:
-        return MappedRecord(where, tuple(cells), error=exc.with_source(source), unmapped=tuple(unmapped))
+        return replace(found, error=exc.with_source(source))
     try:
         session = session_from_tree(tree)
     except InputError as exc:  # a canonical field the record lacks or cannot hold
-        return MappedRecord(where, tuple(cells), error=_at(exc, where, source), unmapped=tuple(unmapped))
-    return MappedRecord(where, tuple(cells), session=session, unmapped=tuple(unmapped))
+        return replace(found, error=_at(exc, where, source))
+    return replace(found, session=session)
 
 
 def _at(exc: InputError, where: str, source: str) -> InputError:

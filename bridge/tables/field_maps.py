@@ -10,6 +10,7 @@ docs/field-maps.md describes the format.
 
 from __future__ import annotations
 
+import fnmatch
 import re
 import types
 from collections.abc import Mapping
@@ -128,6 +129,20 @@ class FieldMap:
             if source.code is not None:
                 found.setdefault(source.code, []).append(source)
         return MappingProxyType({code: tuple(sources) for code, sources in found.items()})
+
+
+@dataclass(frozen=True, slots=True)
+class MapChoice:
+    """Which map reads which input: the first file-name pattern that matches, else the default.
+
+    No map at all means the input is ``dlco-result/1`` JSON; nothing is guessed from the content.
+    """
+
+    default: FieldMap | None = None
+    by_pattern: tuple[tuple[str, FieldMap], ...] = ()
+
+    def for_file(self, name: str) -> FieldMap | None:
+        return next((m for pattern, m in self.by_pattern if fnmatch.fnmatchcase(name, pattern)), self.default)
 
 
 # ---- the canonical fields, read from the model -------------------------------------------------
