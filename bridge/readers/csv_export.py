@@ -46,7 +46,7 @@ def read_csv_lines(
     delimiter = _delimiter(head, fmap, source)
     reader = csv.reader(itertools.chain(head, lines), delimiter=delimiter, strict=True)
     header = _header(reader, fmap, source)
-    rows = _rows(reader, len(header), source)
+    rows = _rows(reader, source)
     used = set(fmap.columns())
     unused = tuple(f"column {c!r}" for c in header if c not in used)
     if fmap.rows == "session":
@@ -97,9 +97,10 @@ def _header(reader: Iterator[list[str]], fmap: FieldMap, source: str) -> list[st
     return header
 
 
-def _rows(reader: Iterator[list[str]], width: int, source: str) -> Iterator[tuple[int, list[str]]]:
-    """(line, row) of every non-blank row; a row of the wrong width keeps its place as a short row."""
+def _rows(reader: Iterator[list[str]], source: str) -> Iterator[tuple[int, list[str]]]:
+    """(first line, row) of every non-blank row (a quoted line break makes a row span lines)."""
     while True:
+        start = getattr(reader, "line_num", 0) + 1
         try:
             row = next(reader)
         except StopIteration:
@@ -109,7 +110,7 @@ def _rows(reader: Iterator[list[str]], width: int, source: str) -> Iterator[tupl
             raise UnreadableInput(f"line {line}", f"RFC 4180 quoting ({exc})", source) from None
         if not any(cell.strip() for cell in row):
             continue
-        yield getattr(reader, "line_num", 0), row
+        yield start, row
 
 
 def _cells(header: Sequence[str], row: Sequence[str], line: int, fmap: FieldMap, manoeuvre: int | None) -> list[Cell]:

@@ -68,6 +68,10 @@ def _parsed(where: str, segments: list[str], fmap: FieldMap) -> hl7.Message:
     msh = segments[0]
     if not _MSH.match(msh) or len(msh) < 8:
         raise InvalidField(f"{where}: MSH", f"a message starting with MSH and its delimiters, got {msh[:12]!r}")
+    # source: HL7 v2.5.1 ch. 2.14.9.2 (MSH-2: component, repetition, escape, subcomponent characters)
+    encoding = msh[4:].split(msh[3], 1)[0]
+    if not 3 <= len(encoding) <= 5 or len(set(encoding)) != len(encoding) or any(c.isalnum() for c in encoding):
+        raise InvalidField(f"{where}: MSH-2", f"the encoding characters (such as ^~\\&), got {encoding!r}")
     try:
         message = hl7.parse("\r".join(segments))
         kind = (message.extract_field("MSH", 1, 9, 1, 1), message.extract_field("MSH", 1, 9, 1, 2))
