@@ -1,9 +1,12 @@
 """The one path: the bytes of one input -> :class:`bridge.model.Outcome` with its payloads (pure).
 
 Owns: the order of the steps, in one place: read -> normalise -> derive -> check -> gate ->
-emit (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
-``convert`` and ``demo`` with the kinds asked for, ``watch`` with its destinations' routes);
-none calls the gate or an emitter on its own. No I/O: the shell reads the file, the clock and
+emit (-> validate, when asked). Every command calls :func:`process` or :func:`process_all`
+(``check`` with no routes, ``convert`` and ``demo`` with the kinds asked for, ``watch`` with its
+destinations' routes); none calls the gate or an emitter on its own. The reader is chosen by
+``PipelineSettings.field_map``: none reads ``dlco-result/1`` JSON (one session); a field map
+reads a CSV export or a legacy HL7 v2 feed (many sessions: :func:`process_all` gives one
+outcome or error each, and :func:`process` is its one-session case). No I/O: the shell reads the file, the clock and
 the ledger, and passes the bytes, the time and a correction test in.
 """
 
