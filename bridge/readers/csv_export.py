@@ -14,11 +14,12 @@ import csv
 import io
 import itertools
 from collections.abc import Iterable, Iterator, Sequence
+from dataclasses import dataclass
 
 from bridge.errors import InvalidField, UnknownFormat, UnreadableInput
 from bridge.readers.mapped import Cell, MappedRecord, is_missing, mapped_record
 from bridge.science.units import UnitCatalogue
-from bridge.tables.field_maps import FieldMap
+from bridge.tables.field_maps import FieldMap, FieldSource
 
 SNIFF_LINES = 20  # lines shown to csv.Sniffer when the map says delimiter = "auto"
 SNIFF_DELIMITERS = ",;\t|"
@@ -47,16 +48,17 @@ def read_csv_lines(
     reader = csv.reader(itertools.chain(head, lines), delimiter=delimiter, strict=True)
     header = _header(reader, fmap, source)
     rows = _rows(reader, source)
+    plans = (_plan(header, fmap, False), _plan(header, fmap, True), len(header))
     used = set(fmap.columns())
     unused = tuple(f"column {c!r}" for c in header if c not in used)
     if fmap.rows == "session":
         for line, row in rows:
-            yield _session([(line, row)], header, fmap, catalogue, source, unused)
+            yield _session([(line, row)], plans, fmap, catalogue, source, unused)
         return
     assert fmap.group_by is not None  # checked by the map parser
     key = header.index(fmap.group_by)
     for _, group in itertools.groupby(rows, key=lambda item: item[1][key].strip()):
-        yield _session(list(group), header, fmap, catalogue, source, unused)
+        yield _session(list(group), plans, fmap, catalogue, source, unused)
 
 
 def _decoded(lines: Iterable[str], source: str, fmap: FieldMap) -> Iterator[str]:
@@ -113,24 +115,48 @@ def _rows(reader: Iterator[list[str]], source: str) -> Iterator[tuple[int, list[
         yield start, row
 
 
-def _cells(header: Sequence[str], row: Sequence[str], line: int, fmap: FieldMap, manoeuvre: int | None) -> list[Cell]:
-    """The cells of one row the map reads (session fields when ``manoeuvre`` is None, else its fields)."""
-    if len(row) != len(header):
-        raise InvalidField(f"line {line}", f"{len(header)} columns as in the header, got {len(row)}")
-    cells = []
-    for source in fmap.fields:
-        if source.target.per_manoeuvre != (manoeuvre is not None):
-            continue
-        where = f"line {line}, column {source.column!r}" if source.column is not None else f"line {line}, (constant)"
-        text = row[header.index(source.column)] if source.column is not None else str(source.value)
-        unit = row[header.index(source.unit_column)] if source.unit_column is not None else source.unit
-        cells.append(Cell(source, text, where, unit, manoeuvre))
-    return cells
+@dataclass(frozen=True, slots=True)
+class _Column:
+    """Where one field source sits in this file's rows (worked out once per file from the header)."""
+
+    source: FieldSource
+    index: int | None  # None: a constant
+    unit_index: int | None
+    label: str
+
+
+def _plan(header: list[str], fmap: FieldMap, per_manoeuvre: bool) -> tuple[_Column, ...]:
+    return tuple(
+        _Column(
+            source,
+            header.index(source.column) if source.column is not None else None,
+            header.index(source.unit_column) if source.unit_column is not None else None,
+            f"column {source.column!r}" if source.column is not None else "(constant)",
+        )
+        for source in fmap.fields
+        if source.target.per_manoeuvre == per_manoeuvre
+    )
+
+
+def _cells(plan: tuple[_Column, ...], width: int, row: Sequence[str], line: int, manoeuvre: int | None) -> list[Cell]:
+    """The cells of one row the plan reads (session fields, or one manoeuvre's)."""
+    if len(row) != width:
+        raise InvalidField(f"line {line}", f"{width} columns as in the header, got {len(row)}")
+    return [
+        Cell(
+            c.source,
+            row[c.index] if c.index is not None else str(c.source.value),
+            f"line {line}, {c.label}",
+            row[c.unit_index] if c.unit_index is not None else c.source.unit,
+            manoeuvre,
+        )
+        for c in plan
+    ]
 
 
 def _session(
     group: list[tuple[int, list[str]]],
-    header: list[str],
+    plans: tuple[tuple[_Column, ...], tuple[_Column, ...], int],
     fmap: FieldMap,
     catalogue: UnitCatalogue,
     source: str,
@@ -143,10 +169,11 @@ def _session(
     first, last = group[0][0], group[-1][0]
     where = f"line {first}" if first == last else f"lines {first}-{last}"
     try:
-        cells = _cells(header, group[0][1], first, fmap, None)
+        session_plan, manoeuvre_plan, width = plans
+        cells = _cells(session_plan, width, group[0][1], first, None)
         index = 0
         for line, row in group:
-            mine = _cells(header, row, line, fmap, index)
+            mine = _cells(manoeuvre_plan, width, row, line, index)
             if any(not is_missing(c.text, fmap) for c in mine):
                 cells.extend(mine)
                 index += 1

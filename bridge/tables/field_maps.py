@@ -58,10 +58,7 @@ class CanonicalField:
     kind: FieldKind
     dimension: str | None = None  # quantities only
     canonical_unit: str | None = None  # quantities only: the unit the core keeps it in
-
-    @property
-    def per_manoeuvre(self) -> bool:
-        return self.path.startswith(MANOEUVRES + ".")
+    per_manoeuvre: bool = False  # read once per manoeuvre (under ``manoeuvres.``)
 
 
 @dataclass(frozen=True, slots=True)
@@ -162,7 +159,9 @@ def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField])
         path = prefix + name
         measure = _measure(info.metadata, info.annotation)
         if measure is not None:
-            found[path] = CanonicalField(path, "quantity", measure.dimension, measure.canonical_unit)
+            found[path] = CanonicalField(
+                path, "quantity", measure.dimension, measure.canonical_unit, _in_manoeuvre(path)
+            )
             continue
         bare = _bare(info.annotation)
         if get_origin(bare) is tuple:
@@ -170,7 +169,11 @@ def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField])
         if isinstance(bare, type) and issubclass(bare, BaseModel) and bare is not Quantity:
             _walk(bare, path + ".", found)
         else:
-            found[path] = CanonicalField(path, _kind(bare))
+            found[path] = CanonicalField(path, _kind(bare), per_manoeuvre=_in_manoeuvre(path))
+
+
+def _in_manoeuvre(path: str) -> bool:
+    return path.startswith(MANOEUVRES + ".")
 
 
 def _kind(bare: Any) -> FieldKind:
