@@ -61,6 +61,9 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
         ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
         ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
+        ('map = "no-such-map.toml"\n', "map", "a field map file"),
+        ('[maps]\n"*.csv" = "no-such-map.toml"\n', 'maps."*.csv"', "a field map file"),
+        ('maps = "x.toml"\n', "maps", "a table of file-name pattern"),
     ],
     ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None,
 )
@@ -120,3 +123,13 @@ def test_a_missing_configuration_file_is_one_line(tmp_path, capsys):
 
     assert 1 == code
     assert f"{tmp_path / 'absent.toml'}: (file): a readable configuration file" in capsys.readouterr().err
+
+
+def test_maps_per_file_pattern_keep_their_order_and_resolve_beside_the_file():
+    """[maps] is read in the file's order (first match wins), paths relative to the configuration's folder."""
+    root = Path(__file__).resolve().parent.parent
+    text = '[maps]\n"*.hl7" = "mappings/maps/highcairn-hl7v23.toml"\n"*" = "mappings/maps/lowmarsh-csv.toml"\n'
+    settings = parse_settings(text, {}, base=root)
+    maps = root / "mappings" / "maps"
+    expected = (("*.hl7", maps / "highcairn-hl7v23.toml"), ("*", maps / "lowmarsh-csv.toml"))
+    assert expected == settings.maps
