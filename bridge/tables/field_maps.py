@@ -217,7 +217,7 @@ def _measure(metadata: list[Any], annotation: Any) -> Measure | None:
 _MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record"})
 _VALUE_KEYS = frozenset({"missing", "decimal", "date_format", "datetime_format", "time_zone"})
 _CSV_KEYS = frozenset({"delimiter", "encoding", "header_rows", "rows", "group_by"})
-_HL7_KEYS = frozenset({"versions"})
+_HL7_KEYS = frozenset({"versions", "encoding"})
 _SOURCE_KEYS = frozenset({"column", "at", "code", "value", "unit", "unit_column", "unit_from", "percent"})
 _SECTIONS = frozenset({"map", "values", "sex", "units", "csv", "hl7", "fields"})
 
@@ -325,7 +325,9 @@ def field_map(text: str, name: str, catalogue: UnitCatalogue) -> FieldMap:
         sex_codes=_sex_codes(check, check.table(data, "sex")),
         unit_aliases=aliases,
         delimiter=_delimiter(check, csv_part),
-        encoding=check.choice(csv_part, "encoding", "csv.encoding", ENCODINGS, "utf-8"),
+        encoding=check.choice(hl7_part, "encoding", "hl7.encoding", ENCODINGS, "utf-8")
+        if hl7
+        else check.choice(csv_part, "encoding", "csv.encoding", ENCODINGS, "utf-8"),
         header_rows=_count(check, csv_part, "header_rows", 1),
         rows=rows,  # type: ignore[arg-type]
         group_by=group_by if rows == "manoeuvre" else None,
