@@ -14,7 +14,8 @@ two legacy samples (``samples/legacy/``) by changing test ids and patient ids:
   messages: messages/s. Floor 1: python-hl7's ``hl7.parse`` alone on the same messages (already
   split). Floor 2: the rest of the pipeline on the sessions read.
 * **Memory**: ``read_csv_lines`` over ``--stream-rows`` rows generated line by line (never held
-  in memory), peak RSS after a tenth of them and after all: flat means streaming.
+  in memory), peak RSS after a tenth of them and after all: flat means streaming. Measured
+  first, before the other parts hold their inputs (peak RSS only ever grows).
 
 Timing: ``time.perf_counter``, one pass after a small warm-up; this is a script, not a test.
 """
@@ -32,7 +33,7 @@ import sys
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
-from typing import TypeVar
+from typing import Any, TypeVar
 
 import hl7
 
@@ -117,6 +118,7 @@ def bench_csv(rows: int, fmap: FieldMap, tables: Tables) -> dict[str, float]:
         "floor_csv_reader_rows_per_s": rows / floor_s,
         "ratio_to_csv_reader": real_s / floor_s,
         "map_ms_per_session": per_session_map * 1000,
+        "beyond_floor_ms_per_session": (real_s - floor_s) / len(sessions) * 1000,
         "rest_of_pipeline_ms_per_session": per_session_rest * 1000,
         "map_over_rest": per_session_map / per_session_rest,
     }
@@ -138,6 +140,7 @@ def bench_hl7(count: int, fmap: FieldMap, tables: Tables) -> dict[str, float]:
         "floor_hl7_parse_messages_per_s": count / floor_s,
         "ratio_to_hl7_parse": real_s / floor_s,
         "map_ms_per_session": per_session_map * 1000,
+        "beyond_floor_ms_per_session": (real_s - floor_s) / len(sessions) * 1000,
         "rest_of_pipeline_ms_per_session": per_session_rest * 1000,
         "map_over_rest": per_session_map / per_session_rest,
     }
@@ -170,11 +173,12 @@ def main(argv: list[str] | None = None) -> int:
     tables = load_tables()
     csv_map = field_map(CSV_MAP.read_text(encoding="utf-8"), CSV_MAP.name, tables.units)
     hl7_map = field_map(HL7_MAP.read_text(encoding="utf-8"), HL7_MAP.name, tables.units)
-    report = {
+    # The stream first: peak RSS is a high-water mark, so it is read before anything else is held.
+    report: dict[str, Any] = {
         "machine": f"{platform.python_implementation()} {platform.python_version()}, {platform.machine()}",
+        "stream": bench_stream(args.stream_rows, csv_map, tables),
         "csv": bench_csv(args.rows, csv_map, tables),
         "hl7": bench_hl7(args.messages, hl7_map, tables),
-        "stream": bench_stream(args.stream_rows, csv_map, tables),
     }
     if args.json:
         print(json.dumps(report))
@@ -189,8 +193,9 @@ def main(argv: list[str] | None = None) -> int:
           f"{floor:,.0f} messages/s (x{h['ratio_to_hl7_parse']:.1f})")  # fmt: skip
     for name, part in (("CSV", c), ("HL7", h)):
         rest = part["rest_of_pipeline_ms_per_session"]
-        print(f"{name:<4} map {part['map_ms_per_session']:.3f} ms/session vs rest of pipeline {rest:.3f} ms/session: "
-              f"map/rest = {part['map_over_rest']:.2f} (target <= 1)")  # fmt: skip
+        print(f"{name:<4} read {part['map_ms_per_session']:.3f} ms/session ({part['beyond_floor_ms_per_session']:.3f} "
+              f"beyond the floor) vs rest of pipeline {rest:.3f} ms/session: read/rest = {part['map_over_rest']:.2f} "
+              "(target <= 1)")  # fmt: skip
     tenth, whole = s["peak_rss_mib_after_tenth"], s["peak_rss_mib_after_all"]
     print(f"stream {s['rows']:,} rows ({s['sessions']:,} sessions): peak RSS {tenth:.0f} MiB after a tenth, "
           f"{whole:.0f} MiB after all ({s['rows_per_s_rest']:,.0f} rows/s)")  # fmt: skip
