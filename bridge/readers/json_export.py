@@ -39,6 +39,10 @@ def session_from_tree(tree: dict[str, Any], source: str = "") -> Session:
 
 def _parse(data: bytes, source: str) -> dict[str, Any]:
     """The parsed document (numbers as Decimal) after the top-level checks."""
+    first = data.removeprefix(b"\xef\xbb\xbf").lstrip()[:1]
+    if first and first not in (b"{", b"["):  # a CSV or HL7 file, say: never guessed at
+        expected = f"{FORMAT} JSON, or a field map that claims the file (--map; map or [maps])"
+        raise UnknownFormat("(file)", expected, source)
     text = decode_text(data, source)
     try:
         tree = json.loads(text, parse_float=Decimal)

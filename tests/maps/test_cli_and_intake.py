@@ -69,11 +69,12 @@ def test_convert_with_map_writes_one_message_per_session(tmp_path, capsys):
     assert (0, expected) == (code, sorted(p.name.removesuffix(".oru.hl7") for p in tmp_path.glob("*.oru.hl7")))
 
 
-def test_check_without_a_map_refuses_a_csv_file(capsys):
-    """A CSV file with no map chosen is refused (read as dlco-result/1), never guessed at."""
+def test_check_without_a_map_refuses_a_csv_file_as_an_unknown_format(capsys):
+    """A CSV file with no map chosen is UnknownFormat, never guessed at."""
     code = main(["check", str(CSV_SAMPLE)])
     _, err = capsys.readouterr()
-    assert (2, f"{CSV_SAMPLE}: ") == (code, err[: len(str(CSV_SAMPLE)) + 2])
+    expected = f"{CSV_SAMPLE}: (file): dlco-result/1 JSON, or a field map that claims the file (--map; map or [maps])"
+    assert (2, expected) == (code, err.strip())
 
 
 def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path):
