@@ -37,10 +37,13 @@ from bridge.config import (
 from bridge.display.bundle_summary import describe_bundle
 from bridge.display.check_report import CAUTION, outcome_json, outcome_text
 from bridge.display.hl7_fields import describe_er7
+from bridge.display.map_report import SHOWN_RECORDS, MapCheck, map_check_json, map_check_text
 from bridge.emit.outputs import file_stem
 from bridge.errors import BridgeError, ConfigError, InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
-from bridge.pipeline import Route, process
+from bridge.pipeline import Route, process_all
+from bridge.readers.csv_export import read_csv
+from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.schema import export_schema
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
@@ -52,7 +55,7 @@ from bridge.service.transports.file import FileTransport
 from bridge.service.transports.mllp import MllpTransport
 from bridge.service.transports.smart import SmartClient
 from bridge.tables import Tables
-from bridge.tables.files import load_tables, samples_dir
+from bridge.tables.files import load_field_map, load_map_choice, load_tables, samples_dir
 
 EXIT_OK = 0
 EXIT_SETUP = 1
@@ -77,6 +80,12 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
         "--max-input-bytes",
         type=int,
         help=f"largest input accepted (key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
+    )
+    parser.add_argument(
+        "--map",
+        type=lambda value: str(Path(value).absolute()),
+        help="read every input through this field map (mappings/maps/*.toml; CSV or legacy HL7 v2) "
+        "(key map; default: none, inputs are dlco-result/1 JSON; [maps] chooses one per file pattern)",
     )
     parser.add_argument(
         "--traditional-per-si",
@@ -130,7 +139,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
 
 # Flags that are settings; everything else on the command line is an argument of the command.
 _SETTING_FLAGS = (
-    "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to",
+    "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to", "map",
     "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
     "emit.receiving_facility", "emit.patient_reference",
 )  # fmt: skip
@@ -165,6 +174,17 @@ def build_parser() -> argparse.ArgumentParser:
     audit.add_argument("--emit", choices=("ndjson",), help="also write the clean sessions as FHIR R4 NDJSON")
     audit.add_argument("--scheduler", help="run on an existing Dask cluster at this address (the [scale] extra)")
     _add_settings(audit, emits=False)
+    maps = commands.add_parser("map", help="field maps: onboard a CSV or legacy HL7 v2 source without code")
+    map_commands = maps.add_subparsers(dest="map_command", required=True)
+    map_check = map_commands.add_parser(
+        "check", help="read a sample through a map: what each column or code feeds, what stays unused or empty"
+    )
+    map_check.add_argument("map_file", metavar="MAP", type=Path, help="the field map (TOML)")
+    map_check.add_argument("sample", metavar="SAMPLE", type=Path, help="a sample export of the source")
+    map_check.add_argument("--json", action="store_true", help="machine-readable output")
+    map_check.add_argument(
+        "--records", type=int, default=SHOWN_RECORDS, help=f"records shown field by field (default {SHOWN_RECORDS})"
+    )
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
     watch = commands.add_parser("watch", help="run the watch-folder service")
     watch.add_argument("--config", type=Path, help=config_help)
@@ -267,11 +287,15 @@ def run_inputs(
     (:class:`ProcessingFailed`) so that the other files are still processed.
     """
     now = now or datetime.now(UTC)  # the shell reads the clock once per run; the pipeline receives it
+    maps = load_map_choice(settings.field_map, settings.maps, tables.units)
     for path in expand(paths):
         try:
             data = read_input(path, settings.pipeline.max_input_bytes)
+            pipeline = replace(settings.pipeline, field_map=maps.for_file(path.name))
             # The record names its input by file name, as the service does; errors name the path given.
-            yield path, process(data, path.name, tables, settings.pipeline, now=now, routes=routes)
+            # A field map may find many sessions in one file: one result each.
+            for result in process_all(data, path.name, tables, pipeline, now=now, routes=routes):
+                yield path, result.with_source(str(path)) if isinstance(result, InputError) else result
         except InputError as exc:
             yield path, exc.with_source(str(path))
         except Exception as exc:  # one file must never stop the others
@@ -462,6 +486,28 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     return EXIT_OK
 
 
+def cmd_map(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    """``map check MAP SAMPLE``: an invalid map is a setup error (exit 1) naming its file, line and key."""
+    fmap = load_field_map(args.map_file, tables.units)
+    try:
+        data = read_input(args.sample, settings.pipeline.max_input_bytes)
+        reader = read_csv if fmap.format == "csv" else read_hl7
+        records = list(reader(data, args.sample.name, fmap, tables.units))
+        pipeline = replace(settings.pipeline, field_map=replace(fmap, on_bad_record="skip"))  # show every record
+        results = list(process_all(data, args.sample.name, tables, pipeline))
+    except InputError as exc:
+        print(exc.with_source(str(args.sample)).line(), file=sys.stderr)
+        return EXIT_BAD_INPUT
+    check = MapCheck(fmap, str(args.sample), tuple(zip(records, results, strict=True)))
+    if args.json:
+        document = {"caution": CAUTION, **map_check_json(check)}
+        sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
+    else:
+        sys.stdout.write(map_check_text(check, max(args.records, 0)))
+        print(CAUTION)
+    return EXIT_BAD_INPUT if any(isinstance(r, InputError) for r in results) else EXIT_OK
+
+
 def build_transport(destination: Destination) -> Transport:
     """The transport of one destination (the CLI is the only place transports are built)."""
     tls = None
@@ -646,6 +692,7 @@ COMMANDS = {
     "show": cmd_show,
     "schema": cmd_schema,
     "audit": cmd_audit,
+    "map": cmd_map,
 }
 _NEEDS_CONFIG = ("watch", "status", "resend", "prune")
 

@@ -127,6 +127,8 @@ class Settings:
     to: tuple[OutputKind, ...] = OUTPUT_KINDS  # what convert writes
     service: ServiceSettings | None = None
     source: str = "(defaults)"  # the configuration file read, if any
+    field_map: Path | None = None  # key map: read every input through this field map (CSV, legacy HL7)
+    maps: tuple[tuple[str, Path], ...] = ()  # [maps]: file-name pattern -> field map, first match wins
 
     def require_service(self) -> ServiceSettings:
         """The service settings; a configuration without them cannot run the service."""
@@ -151,7 +153,7 @@ def config_path(flag: Path | None, environ: Mapping[str, str]) -> Path | None:
 
 _SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
 _PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate"}
-_GENERAL_KEYS = {"units", "traditional_per_si", "to"}
+_GENERAL_KEYS = {"units", "traditional_per_si", "to", "map"}
 _TOP_LEVEL = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
 _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
@@ -229,7 +231,7 @@ class _Reader:
 
     def settings(self) -> Settings:
         d = self.data
-        unknown = sorted(set(d) - _TOP_LEVEL - {"emit", "destination"})
+        unknown = sorted(set(d) - _TOP_LEVEL - {"emit", "destination", "maps"})
         if unknown:
             raise self.fail(unknown[0], f"a known setting (every key is shown in {SAMPLE_CONFIG})")
         factor = self.number(
@@ -244,7 +246,21 @@ class _Reader:
             to=self.kinds("to", d.get("to", _default(Settings, "to"))),
             service=self.service() if self.wants_service() else None,
             source=self.source,
+            field_map=self.map_file("map", d["map"]) if d.get("map") else None,
+            maps=self.maps(d.get("maps", {})),
         )
+
+    def maps(self, table: Any) -> tuple[tuple[str, Path], ...]:
+        """``[maps]``: ``"*.csv" = "mappings/maps/x.toml"``, in the file's order (first match wins)."""
+        if not isinstance(table, dict):
+            raise self.fail("maps", 'a table of file-name pattern = field map file ("*.csv" = "maps/x.toml")')
+        return tuple((str(pattern), self.map_file(f'maps."{pattern}"', path)) for pattern, path in table.items())
+
+    def map_file(self, key: str, value: Any) -> Path:
+        path = self.path(key, value)
+        if not path.is_file():
+            raise self.fail(key, f"a field map file (mappings/maps/*.toml), got {str(value)!r}")
+        return path
 
     def pipeline(self) -> PipelineSettings:
         d, defaults = self.data, PipelineSettings()

@@ -1,32 +1,40 @@
 """The one path: the bytes of one input -> :class:`bridge.model.Outcome` with its payloads (pure).
 
 Owns: the order of the steps, in one place: read (normalising every quantity on the parsed
-tree before the one validation) -> derive -> check -> gate -> emit, what is emitted built
-once per unit system (-> validate, when asked). Every command calls :func:`process` (``check`` with no routes,
-``convert`` and ``demo`` with the kinds asked for, ``watch`` with its destinations' routes);
-none calls the gate or an emitter on its own. No I/O: the shell reads the file, the clock and
+tree before the one validation) -> derive -> check -> gate -> emit, what is emitted built once
+per unit system (-> validate, when asked). Every command calls :func:`process` or
+:func:`process_all` (``check`` with no routes, ``convert`` and ``demo`` with the kinds asked for,
+``watch`` with its destinations' routes); none calls the gate or an emitter on its own. The
+reader is chosen by ``PipelineSettings.field_map``: none reads ``dlco-result/1`` JSON (one
+session); a field map reads a CSV export or a legacy HL7 v2 feed (many sessions:
+:func:`process_all` gives one outcome or error each, and :func:`process` is its one-session
+case). No I/O: the shell reads the file, the clock and
 the ledger, and passes the bytes, the time and a correction test in.
 """
 
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime
 
 from bridge.emit.outputs import payloads, refuse_blocked
 from bridge.emit.settings import EmitSettings
 from bridge.emit.validation import problems
-from bridge.errors import InputError, OutputInvalid, UnreadableInput
-from bridge.model import Outcome, OutputKind, Payload
+from bridge.errors import InputError, InvalidField, OutputInvalid, UnreadableInput
+from bridge.model import Finding, Outcome, OutputKind, Payload, Session, Severity
+from bridge.readers.csv_export import read_csv
+from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
 from bridge.science.derive import derive
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
+from bridge.tables.field_maps import FieldMap
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
+UNMAPPED_CODE = "UNMAPPED_SOURCE_CODE"  # a field map reader met a source code its map does not name
 
 
 @dataclass(frozen=True, slots=True)
@@ -49,6 +57,7 @@ class PipelineSettings:
     blocking: frozenset[str] = frozenset()
     validate_outputs: bool = False  # check each payload with independent libraries (slow)
     emit: EmitSettings = field(default_factory=EmitSettings)
+    field_map: FieldMap | None = None  # read the input through this map (CSV, legacy HL7); None: dlco-result/1
 
 
 def _never(test_id: str, source_sha256: str) -> bool:
@@ -76,14 +85,96 @@ def process(
     be read, an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``) an independent
     validator finds a payload invalid.
     """
-    if len(data) > settings.max_input_bytes:
-        raise UnreadableInput("(file)", f"at most {settings.max_input_bytes} bytes, got {len(data)}", source)
+    if settings.field_map is not None:
+        results = list(process_all(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction))
+        if len(results) != 1:
+            raise InvalidField("(file)", f"one session, got {len(results)} (use process_all)", source)
+        if isinstance(results[0], InputError):
+            raise results[0]
+        return results[0]
+    _check_size(data, source, settings)
     try:
         session = read_export(data, source, tables.units)
     except InputError as exc:
         raise exc if exc.source else exc.with_source(source) from None
-    derived = derive(session, tables)
+    return _complete(session, hashlib.sha256(data).hexdigest(), source, tables, settings, now, routes, is_correction)
+
+
+def process_all(
+    data: bytes,
+    source: str,
+    tables: Tables,
+    settings: PipelineSettings = DEFAULT_SETTINGS,
+    *,
+    now: datetime | None = None,
+    routes: Sequence[Route] = (),
+    is_correction: Callable[[str, str], bool] = _never,
+) -> Iterator[Outcome | InputError]:
+    """:func:`process` for an input that may hold many sessions: one outcome (or error) per session.
+
+    Without ``settings.field_map`` the input is one ``dlco-result/1`` document. With a map, a
+    bad record (or a session a blocking finding refuses) is yielded as its InputError and the
+    next is taken; when the map says ``on_bad_record = "refuse"`` the first bad record is raised
+    instead, refusing the file (callers that must not act on part of a file collect first).
+    Raises InputError when the file as a whole cannot be read or is not the map's format.
+    """
+    fmap = settings.field_map
+    if fmap is None:
+        try:
+            yield process(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction)
+        except InputError as exc:
+            yield exc
+        return
+    _check_size(data, source, settings)
     sha256 = hashlib.sha256(data).hexdigest()
+    reader = read_csv if fmap.format == "csv" else read_hl7
+    for record in reader(data, source, fmap, tables.units):
+        try:
+            if record.error is not None:
+                raise record.error
+            assert record.session is not None  # a record holds a session or an error
+            outcome = _complete(record.session, sha256, source, tables, settings, now, routes, is_correction)
+        except InputError as exc:
+            if fmap.on_bad_record == "refuse":
+                raise
+            yield exc
+            continue
+        yield _with_unmapped(outcome, record.unmapped, fmap.name)
+
+
+def _with_unmapped(outcome: Outcome, unmapped: Sequence[str], map_name: str) -> Outcome:
+    """The outcome with one finding per source code the map does not name (its value was not read)."""
+    if not unmapped:
+        return outcome
+    found = tuple(
+        Finding(
+            code=UNMAPPED_CODE,
+            severity=Severity.WARNING,
+            path=where,
+            message=f"{outcome.source}: {where} is not in map {map_name}; its value was not read",
+        )
+        for where in unmapped
+    )
+    return outcome.model_copy(update={"findings": outcome.findings + found})
+
+
+def _check_size(data: bytes, source: str, settings: PipelineSettings) -> None:
+    if len(data) > settings.max_input_bytes:
+        raise UnreadableInput("(file)", f"at most {settings.max_input_bytes} bytes, got {len(data)}", source)
+
+
+def _complete(
+    session: Session,
+    sha256: str,
+    source: str,
+    tables: Tables,
+    settings: PipelineSettings,
+    now: datetime | None,
+    routes: Sequence[Route],
+    is_correction: Callable[[str, str], bool],
+) -> Outcome:
+    """Derive, check, gate and emit one normalised session."""
+    derived = derive(session, tables)
     outcome = Outcome(
         source=source,
         source_sha256=sha256,

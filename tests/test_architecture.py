@@ -25,6 +25,7 @@ CORE = (
     "tables/grades.py",
     "tables/codes.py",
     "tables/plausibility.py",
+    "tables/field_maps.py",
     "readers",
     "emit",
     "display",

@@ -71,6 +71,9 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ("allow = 3\n", "allow", "a list of finding codes"),
         ('[emit]\nhemoglobin_unit = "mmol/L"\n', "emit.hemoglobin_unit", "one of g/L, g/dL"),
         ('allow = ["OUT_OF_RANGE"]\nblocking = ["OUT_OF_RANGE"]\n', "allow", "not also blocking"),
+        ('map = "no-such-map.toml"\n', "map", "a field map file"),
+        ('[maps]\n"*.csv" = "no-such-map.toml"\n', 'maps."*.csv"', "a field map file"),
+        ('maps = "x.toml"\n', "maps", "a table of file-name pattern"),
     ],
     ids=lambda v: v if isinstance(v, str) and len(v) < 30 else None,
 )
@@ -155,3 +158,13 @@ def test_allow_comes_from_file_environment_and_repeated_flags():
     assert frozenset({"UNIT_MISLABEL_PROBABLE"}) == from_file.pipeline.allow
     assert frozenset({"A_CODE", "B_CODE"}) == from_env.pipeline.allow == from_flags.pipeline.allow
     assert frozenset() == PipelineSettings().allow  # the default: every ERROR finding refuses a record
+
+
+def test_maps_per_file_pattern_keep_their_order_and_resolve_beside_the_file():
+    """[maps] is read in the file's order (first match wins), paths relative to the configuration's folder."""
+    root = Path(__file__).resolve().parent.parent
+    text = '[maps]\n"*.hl7" = "mappings/maps/highcairn-hl7v23.toml"\n"*" = "mappings/maps/lowmarsh-csv.toml"\n'
+    settings = parse_settings(text, {}, base=root)
+    maps = root / "mappings" / "maps"
+    expected = (("*.hl7", maps / "highcairn-hl7v23.toml"), ("*", maps / "lowmarsh-csv.toml"))
+    assert expected == settings.maps

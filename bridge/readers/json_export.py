@@ -26,7 +26,17 @@ FORMAT = "dlco-result/1"
 
 def read_export(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
     """Parse one ``dlco-result/1`` document into a session, every quantity in its canonical unit."""
-    tree = _decimals_in_place(_parse(data, source))
+    return session_from_tree(_parse(data, source), catalogue, source)
+
+
+def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: str = "") -> Session:
+    """A parsed ``dlco-result/1`` tree (numbers as Decimal) -> Session; every reader ends here.
+
+    The field-map readers (``csv_export``, ``hl7v2_legacy``) build the same tree, so every
+    source goes through the same reported-digits rule, the same normalisation on the tree and
+    the same one model validation.
+    """
+    tree = _decimals_in_place(tree)
     try:
         return Session.model_validate(normalise_tree(tree, catalogue))
     except ValidationError as exc:
@@ -37,6 +47,10 @@ def read_export(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
 
 def _parse(data: bytes, source: str) -> dict[str, Any]:
     """The parsed document (numbers as Decimal) after the top-level checks."""
+    first = data.removeprefix(b"\xef\xbb\xbf").lstrip()[:1]
+    if first and first not in (b"{", b"["):  # a CSV or HL7 file, say: never guessed at
+        expected = f"{FORMAT} JSON, or a field map that claims the file (--map; map or [maps])"
+        raise UnknownFormat("(file)", expected, source)
     text = decode_text(data, source)
     try:
         tree = json.loads(text, parse_float=Decimal)

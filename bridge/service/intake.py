@@ -6,7 +6,10 @@ archive it; or quarantine it with ``<name>.error.json`` saying why in the same w
 ``check``. The same content dropped again is archived as a duplicate and sends nothing; new
 content for a test id already sent goes out as a correction. Any other exception met while
 processing one file (a bug the file exposes) quarantines that file as an internal error: one
-file never stops the feed.
+file never stops the feed. A file read through a field map (``map`` or ``[maps]`` in the
+settings) may hold many sessions: the messages of every good one are enqueued in the one ledger
+commit, each refused record gets its own ``<name>.<n>.error.json`` in quarantine (naming its row
+or message), and the file is archived; a file with no good session is quarantined whole.
 
 Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
 content the ledger knows only archives it (into the archive proper when it is the file a crash
@@ -24,7 +27,7 @@ import logging
 import time
 import traceback
 from collections.abc import Callable
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Literal
@@ -33,13 +36,15 @@ import orjson
 
 from bridge import __version__
 from bridge.config import Settings
-from bridge.errors import InputError, LedgerError, UnreadableInput
+from bridge.errors import InputError, InvalidField, LedgerError, UnreadableInput
 from bridge.model import Outcome, Payload
-from bridge.pipeline import Route, process
+from bridge.pipeline import Route, process, process_all
 from bridge.service.files import free_name, move_durably, write_atomically
 from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.service.metrics import Metrics
 from bridge.tables import Tables
+from bridge.tables.field_maps import FieldMap
+from bridge.tables.files import load_map_choice
 
 log = logging.getLogger("dlco_bridge.intake")
 
@@ -79,6 +84,7 @@ class Intake:
         self.on_enqueued = on_enqueued
         self.processor = processor
         self.routes = tuple(Route(d.payload, d.units) for d in self.service.destinations)
+        self.maps = load_map_choice(settings.field_map, settings.maps, tables.units)  # per inbox / file pattern
 
     def take(self, path: Path, complete_at: float) -> IntakeResult:
         """Process one file completely; never raises for what the file contains.
@@ -104,16 +110,20 @@ class Intake:
             # Every destination's payload is built before anything is recorded: one that
             # fails quarantines the file with nothing enqueued for any destination.
             now = datetime.fromtimestamp(self.clock(), UTC)
-            outcome = self.processor(
-                data,
-                path.name,
-                self.tables,
-                self.pipeline,
-                now=now,
-                routes=self.routes,
-                is_correction=self._is_correction,
-            )
-            messages = self._messages(outcome)
+            fmap = self.maps.for_file(path.name)
+            if fmap is None:
+                outcome = self.processor(
+                    data,
+                    path.name,
+                    self.tables,
+                    self.pipeline,
+                    now=now,
+                    routes=self.routes,
+                    is_correction=self._is_correction,
+                )
+                messages = self._messages(outcome)
+            else:  # a field map: every session of the file, collected before anything is recorded
+                outcome, messages, refused = self._sessions(data, path, fmap, now)
         except InputError as error:
             return self._quarantine(path, sha, error)
         except LedgerError:
@@ -124,7 +134,40 @@ class Intake:
             # quarantined as an internal error and the next one is taken. Not BaseException:
             # KeyboardInterrupt and SystemExit still stop the service.
             return self._quarantine(path, sha, error)
+        if fmap is not None:
+            self._quarantine_records(path, outcome.source_sha256, refused)
         return self._enqueue(path, outcome, messages, complete_at)
+
+    def _sessions(
+        self, data: bytes, path: Path, fmap: FieldMap, now: datetime
+    ) -> tuple[Outcome, list[NewMessage], list[InputError]]:
+        """Every session a map finds in the file: the first good outcome (the ledger's test id), all
+        good sessions' messages, and the refused records. No good session refuses the file; a map
+        with ``on_bad_record = "refuse"`` refuses it at its first bad record (raised by the pipeline)."""
+        pipeline = replace(self.pipeline, field_map=fmap)
+        results = list(process_all(data, path.name, self.tables, pipeline, now=now, routes=self.routes,
+                                   is_correction=self._is_correction))  # fmt: skip
+        good = [r for r in results if isinstance(r, Outcome)]
+        refused = [r for r in results if isinstance(r, InputError)]
+        if not good:
+            raise refused[0] if refused else InvalidField("(file)", "at least one session", path.name)
+        messages = [m for outcome in good for m in self._messages(outcome)]
+        correction = any(o.correction for o in good)
+        return good[0].model_copy(update={"correction": correction}), messages, refused
+
+    def _quarantine_records(self, path: Path, sha: str, refused: list[InputError]) -> None:
+        """One ``<name>.<n>.error.json`` per refused record (naming its row or message); the file is archived."""
+        for number, error in enumerate(refused, start=1):
+            reason, said, details = _input_error(path.name, error)
+            report = {"file": path.name, "sha256": sha, "record": number, **details,
+                      "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(), "version": __version__}  # fmt: skip
+            target = free_name(self.service.quarantine, f"{path.name}.{number}.error.json", sha[:12])
+            write_atomically(target, orjson.dumps(report, option=orjson.OPT_INDENT_2))
+            self.metrics.count("records_quarantined")
+            log.warning("record refused; the file's other sessions go on",
+                        extra={"event": "record_quarantined", "file": path.name,
+                               "reason": reason if self.service.log_patient_data else said,
+                               "report": target.name})  # fmt: skip
 
     def _read(self, path: Path) -> bytes:
         limit = self.pipeline.max_input_bytes

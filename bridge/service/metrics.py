@@ -21,6 +21,7 @@ from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage, Tra
 LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0)
 # files_failed_internal: quarantined because processing raised something other than an
 # InputError (a bug the file exposed); they are counted in files_quarantined as well.
+# records_quarantined: sessions a field map refused in a file whose other sessions went on.
 COUNTERS = (
     "files_seen",
     "files_processed",
@@ -28,6 +29,7 @@ COUNTERS = (
     "files_failed_internal",
     "files_duplicate",
     "corrections",
+    "records_quarantined",
 )
 
 

@@ -2,18 +2,20 @@
 
 Owns: finding the mappings folder (the installed copy inside the package, or the source
 tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.tables.Tables`;
-and reading the GLI-2017 reference tables (``mappings/gli2017/``) into
-:class:`bridge.science.reference.ReferenceEquations`.
+reading the GLI-2017 reference tables (``mappings/gli2017/``) into
+:class:`bridge.science.reference.ReferenceEquations`; and reading the field maps the settings name.
 """
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 
 from bridge.errors import MappingError
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
-from bridge.science.units import TRADITIONAL_PER_SI
+from bridge.science.units import TRADITIONAL_PER_SI, UnitCatalogue
 from bridge.tables import CodeTable, Plausibility, Tables
+from bridge.tables.field_maps import FieldMap, MapChoice, field_map
 from bridge.tables.grades import grade_table
 from bridge.tables.units import unit_catalogue
 
@@ -59,3 +61,29 @@ def load_reference_equations(folder: Path | None = None) -> ReferenceEquations:
     """Parse the GLI-2017 reference equations from ``gli2017/`` in the mappings folder."""
     folder = folder or mappings_dir()
     return ReferenceEquations.from_text(_text(folder, COEFFICIENTS_TABLE), _text(folder, SPLINES_TABLE))
+
+
+def load_field_map(path: Path, catalogue: UnitCatalogue) -> FieldMap:
+    """One field map file (``mappings/maps/*.toml`` or a site's own), checked; errors name the file."""
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise MappingError(str(path), "(file)", f"a readable field map ({exc.strerror})") from exc
+    return field_map(text, str(path), catalogue)
+
+
+def load_map_choice(
+    default: Path | None, by_pattern: Sequence[tuple[str, Path]], catalogue: UnitCatalogue
+) -> MapChoice:
+    """The maps the settings name (``map``, and ``[maps]`` per file pattern), each read once."""
+    loaded: dict[Path, FieldMap] = {}
+
+    def read(path: Path) -> FieldMap:
+        if path not in loaded:
+            loaded[path] = load_field_map(path, catalogue)
+        return loaded[path]
+
+    return MapChoice(
+        default=read(default) if default is not None else None,
+        by_pattern=tuple((pattern, read(path)) for pattern, path in by_pattern),
+    )

@@ -1,0 +1,147 @@
+"""What ``dlco-bridge map check`` prints: a sample read through a field map, for the engineer writing it (pure).
+
+Owns: the report of one sample: for the first few records, each source column or code beside
+the canonical field it fed and the value in the canonical unit (a wrong unit or a shifted column
+shows at a glance); the source columns or codes nothing uses; the canonical fields that stay
+empty in every record; each bad record's one line; and the findings. Text and JSON.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+from pydantic import BaseModel
+
+from bridge.errors import InputError
+from bridge.model import Outcome, Quantity, Session
+from bridge.readers.mapped import Cell, MappedRecord
+from bridge.tables.field_maps import MANOEUVRES, FieldMap, canonical_fields
+
+SHOWN_RECORDS = 3  # records shown field by field; the rest are counted
+
+
+@dataclass(frozen=True, slots=True)
+class MapCheck:
+    """A sample read through a map: each record with its pipeline result (outcome or error)."""
+
+    fmap: FieldMap
+    sample: str
+    records: tuple[tuple[MappedRecord, Outcome | InputError], ...]
+
+
+def value_at(session: Session, path: str, manoeuvre: int | None) -> Any:
+    """The value of a canonical field in a (normalised) session, or None."""
+    node: Any = session
+    parts = path.split(".")
+    if manoeuvre is not None:
+        if manoeuvre >= len(session.manoeuvres):
+            return None
+        node, parts = session.manoeuvres[manoeuvre], parts[1:]
+    for part in parts:
+        node = getattr(node, part, None)
+        if node is None:
+            return None
+    return node
+
+
+def _shown(value: Any) -> str:
+    if value is None:
+        return "(empty)"
+    if isinstance(value, Quantity):
+        return f"{value.text()} {value.unit}"
+    if isinstance(value, BaseModel):
+        return value.model_dump_json()
+    return str(value.value if hasattr(value, "value") and not isinstance(value, float | int) else value)
+
+
+def _row(cell: Cell, session: Session | None) -> dict[str, str]:
+    target = cell.source.target.path
+    field = target if cell.manoeuvre is None else target.replace(MANOEUVRES, f"{MANOEUVRES}[{cell.manoeuvre}]", 1)
+    written = cell.text + (f" [{cell.unit}]" if cell.unit and cell.source.target.kind == "quantity" else "")
+    value = value_at(session, target, cell.manoeuvre) if session is not None else None
+    return {"source": cell.source.origin, "written": written, "field": field, "value": _shown(value)}
+
+
+def _empty_fields(check: MapCheck) -> list[str]:
+    """Canonical fields no record filled (the map has no source for them, or every source was empty)."""
+    sessions = [r.session for _, r in check.records if isinstance(r, Outcome)]
+    empty = []
+    for path, target in canonical_fields().items():
+        if target.per_manoeuvre:
+            filled = any(value_at(s, path, i) is not None for s in sessions for i in range(len(s.manoeuvres)))
+        else:
+            filled = any(value_at(s, path, None) is not None for s in sessions)
+        if not filled:
+            empty.append(path)
+    return empty
+
+
+def _unused(check: MapCheck) -> list[str]:
+    seen: dict[str, None] = {}
+    for record, _ in check.records:
+        for item in (*record.unused, *record.unmapped):
+            seen.setdefault(item.split(", ", 1)[-1], None)
+    return list(seen)
+
+
+def map_check_json(check: MapCheck) -> dict[str, object]:
+    """The report as a JSON-ready tree."""
+    records = []
+    for record, result in check.records:
+        entry: dict[str, object] = {"where": record.where}
+        if isinstance(result, InputError):
+            entry["error"] = result.line()
+        else:
+            entry["test_id"] = result.session.test_id
+            entry["fields"] = [_row(c, result.session) for c in record.cells]
+            entry["findings"] = [f.model_dump(mode="json") for f in result.findings]
+        records.append(entry)
+    return {
+        "map": check.fmap.name,
+        "source": check.fmap.source,
+        "format": check.fmap.format,
+        "sample": check.sample,
+        "records": records,
+        "mapped": sum(1 for _, r in check.records if isinstance(r, Outcome)),
+        "refused": sum(1 for _, r in check.records if isinstance(r, InputError)),
+        "unused_sources": _unused(check),
+        "empty_fields": _empty_fields(check),
+    }
+
+
+def map_check_text(check: MapCheck, shown: int = SHOWN_RECORDS) -> str:
+    """The report for people: the first ``shown`` records field by field, then the summary."""
+    doc = map_check_json(check)
+    lines = [f"map {check.fmap.name} ({check.fmap.format}): {check.fmap.source}", f"sample {check.sample}", ""]
+    for entry in _records(doc)[:shown]:
+        if "error" in entry:
+            lines += [f"{entry['where']}: REFUSED  {entry['error']}", ""]
+            continue
+        lines.append(f"{entry['where']}: test {entry['test_id']}")
+        rows: Sequence[dict[str, str]] = entry["fields"]
+        widths = [max([len(r[k]) for r in rows] + [len(k)]) for k in ("source", "written", "field")]
+        for r in rows:
+            source, written, field = r["source"], r["written"], r["field"]
+            lines.append(f"  {source:<{widths[0]}}  {written:<{widths[1]}}  -> {field:<{widths[2]}}  = {r['value']}")
+        for finding in entry["findings"]:
+            lines.append(f"  {finding['severity'].upper()} {finding['code']}: {finding['message']}")
+        lines.append("")
+    rest = _records(doc)[shown:]
+    if rest:
+        lines.append(f"... {len(rest)} more record(s) not shown field by field")
+        lines += [f"{e['where']}: REFUSED  {e['error']}" for e in rest if "error" in e]
+        lines.append("")
+    lines.append(f"{doc['mapped']} record(s) mapped, {doc['refused']} refused")
+    unused = doc["unused_sources"]
+    lines.append("unused in the sample: " + (", ".join(unused) if isinstance(unused, list) and unused else "none"))
+    empty = doc["empty_fields"]
+    lines.append("canonical fields left empty: " + (", ".join(empty) if isinstance(empty, list) and empty else "none"))
+    return "\n".join(lines) + "\n"
+
+
+def _records(doc: dict[str, object]) -> list[dict[str, Any]]:
+    records = doc["records"]
+    assert isinstance(records, list)
+    return records

@@ -1,0 +1,171 @@
+"""Applying a field map to one record's texts: each text -> a typed value -> a ``dlco-result/1`` tree (pure).
+
+Owns: :class:`Cell` (one source text and the canonical field it feeds, with where it was found),
+:class:`MappedRecord` (one session as a field-map reader saw it), and the value transforms a map
+names: decimal comma, missing-value markers, percentages, date and date-time formats with the
+site's time zone, sex codes, unit spellings. The tree goes through
+:func:`bridge.readers.json_export.session_from_tree`, the JSON reader's own last step, so every
+source meets the same model validation; the pipeline normalises it as it does any session.
+Every failure is an :class:`bridge.errors.InputError` whose field names the row or message and
+the column or code.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, replace
+from datetime import datetime
+from decimal import Decimal
+from typing import Any
+from zoneinfo import ZoneInfo
+
+from bridge.errors import InputError, InvalidField, MissingField, UnitError
+from bridge.model import Session
+from bridge.readers.json_export import FORMAT, session_from_tree
+from bridge.science.units import UnitCatalogue
+from bridge.tables.field_maps import MANOEUVRES, FieldMap, FieldSource
+
+_NUMBER = re.compile(r"[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,3})?")
+
+
+@dataclass(frozen=True, slots=True)
+class Cell:
+    """One source text, the canonical field it feeds, and where it was found."""
+
+    source: FieldSource
+    text: str
+    where: str  # "line 4, column 'VI'" or "message 2, OBX 5 (code 'TLCO')"
+    unit: str | None = None  # the unit text the source gave (fixed, a unit column or OBX-6)
+    manoeuvre: int | None = None  # 0-based, for manoeuvre fields
+
+
+@dataclass(frozen=True, slots=True)
+class MappedRecord:
+    """One session read through a map: its cells, what nothing used, and the session or why not."""
+
+    where: str  # "lines 2-4" or "message 3"
+    cells: tuple[Cell, ...]
+    session: Session | None = None
+    error: InputError | None = None
+    unmapped: tuple[str, ...] = ()  # source codes present in the record that the map does not name (findings)
+    unused: tuple[str, ...] = ()  # source columns of the layout the map does not read (map check shows them)
+
+
+def mapped_record(
+    where: str,
+    cells: Sequence[Cell],
+    fmap: FieldMap,
+    catalogue: UnitCatalogue,
+    source: str,
+    unmapped: Sequence[str] = (),
+    unused: Sequence[str] = (),
+) -> MappedRecord:
+    """The session of one record, or the first error met building it (never raised)."""
+    found = MappedRecord(where, tuple(cells), unmapped=tuple(unmapped), unused=tuple(unused))
+    try:
+        tree = record_tree(cells, fmap, catalogue)  # errors name the cell's row and column or code
+    except InputError as exc:
+        return replace(found, error=exc.with_source(source))
+    try:
+        session = session_from_tree(tree, catalogue)
+    except InputError as exc:  # a canonical field the record lacks or cannot hold
+        return replace(found, error=_at(exc, where, source))
+    return replace(found, session=session)
+
+
+def _at(exc: InputError, where: str, source: str) -> InputError:
+    """The error with the record's place before its field (``lines 2-4: patient.height``)."""
+    clone = exc.with_source(source)
+    clone.field = f"{where}: {exc.field}"
+    Exception.__init__(clone, clone.line())
+    return clone
+
+
+def record_tree(cells: Iterable[Cell], fmap: FieldMap, catalogue: UnitCatalogue) -> dict[str, Any]:
+    """The ``dlco-result/1`` tree of one record; missing values are left out."""
+    tree: dict[str, Any] = {"format": FORMAT}
+    manoeuvres: dict[int, dict[str, Any]] = {}
+    for cell in cells:
+        value = cell_value(cell, fmap, catalogue)
+        if value is None:
+            continue
+        path = cell.source.target.path
+        if cell.manoeuvre is not None:
+            _put(manoeuvres.setdefault(cell.manoeuvre, {}), path.removeprefix(MANOEUVRES + "."), value)
+        else:
+            _put(tree, path, value)
+    if manoeuvres:
+        tree[MANOEUVRES] = [manoeuvres[i] for i in sorted(manoeuvres)]
+    return tree
+
+
+def _put(tree: dict[str, Any], path: str, value: Any) -> None:
+    *parents, last = path.split(".")
+    node = tree
+    for name in parents:
+        node = node.setdefault(name, {})
+    node[last] = value
+
+
+def is_missing(text: str, fmap: FieldMap) -> bool:
+    return text.strip() in fmap.missing
+
+
+def cell_value(cell: Cell, fmap: FieldMap, catalogue: UnitCatalogue) -> Any:
+    """The value of one cell as the tree holds it (None when the source wrote a missing marker)."""
+    text = cell.text.strip()
+    if text in fmap.missing:
+        return None
+    target = cell.source.target
+    if target.kind == "quantity":
+        return {"value": number(text, fmap, cell.where), "unit": unit_of(cell, fmap, catalogue)}
+    if target.kind == "number":
+        value = number(text, fmap, cell.where)
+        return value / 100 if cell.source.percent else value
+    if target.kind == "date":
+        return _moment(text, fmap.date_format, cell.where, "date").date().isoformat()
+    if target.kind == "datetime":
+        moment = _moment(text, fmap.datetime_format, cell.where, "date-time")
+        if moment.tzinfo is None:
+            moment = moment.replace(tzinfo=ZoneInfo(fmap.time_zone))
+        return moment.isoformat()
+    if target.kind == "sex":
+        sex = fmap.sex_codes.get(text)
+        if sex is None:
+            raise InvalidField(cell.where, f"a sex code of the map ({', '.join(fmap.sex_codes)}), got {text!r}")
+        return sex
+    return text
+
+
+def number(text: str, fmap: FieldMap, where: str) -> Decimal:
+    """A decimal number as written (digits kept), with the map's decimal separator."""
+    written = text.replace(",", ".") if fmap.decimal == "," and "." not in text else text
+    if not _NUMBER.fullmatch(written):
+        sep = "a decimal comma" if fmap.decimal == "," else "a decimal point"
+        raise InvalidField(where, f"a number with {sep}, got {text!r}")
+    return Decimal(written)
+
+
+def unit_of(cell: Cell, fmap: FieldMap, catalogue: UnitCatalogue) -> str:
+    """The unit spelling the tree carries: the map's alias target, else the source's own (known) spelling."""
+    written = (cell.unit or "").strip()
+    if not written or written in fmap.missing - {""}:
+        raise MissingField(cell.where, "a unit (the map reads it from the source, which gave none)")
+    spelling = fmap.unit_aliases.get(written, written)
+    unit = catalogue.resolve(spelling)
+    if unit is None:
+        raise UnitError(cell.where, written, "is not in mappings/units.toml nor in [units] of the map")
+    if unit.dimension != cell.source.target.dimension:
+        dimension = str(cell.source.target.dimension).replace("_", " ")
+        raise UnitError(
+            cell.where, written, f"is a {unit.dimension.replace('_', ' ')} unit; expected a {dimension} unit"
+        )
+    return spelling
+
+
+def _moment(text: str, fmt: str, where: str, what: str) -> datetime:
+    try:
+        return datetime.strptime(text, fmt)
+    except ValueError:
+        raise InvalidField(where, f"a {what} in the map's format {fmt}, got {text!r}") from None

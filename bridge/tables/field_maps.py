@@ -1,0 +1,468 @@
+"""Field maps (``mappings/maps/*.toml``) -> :class:`FieldMap`: where each canonical field comes from (pure).
+
+Owns: the list of canonical fields a map may fill (read from the record model, so it never
+drifts from ``bridge.model``), and checking a map's text: every section, key, canonical field,
+unit and value transform, each error a :class:`bridge.errors.MappingError` naming the map file,
+the line when it can be found, and the key at fault. The readers (``bridge.readers.csv_export``,
+``bridge.readers.hl7v2_legacy``) apply a map; this module only says what it means.
+docs/field-maps.md describes the format.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import re
+import types
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from datetime import date, datetime
+from functools import cache
+from types import MappingProxyType
+from typing import Annotated, Any, Literal, Union, get_args, get_origin
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from pydantic import AwareDatetime, BaseModel
+
+from bridge.errors import MappingError
+from bridge.model import Measure, Quantity, Session, Sex
+from bridge.science.units import UnitCatalogue
+from bridge.tables.toml import read_toml
+
+FieldKind = Literal["quantity", "number", "date", "datetime", "sex", "text"]
+MapFormat = Literal["csv", "hl7v2"]
+FORMATS: tuple[MapFormat, ...] = ("csv", "hl7v2")
+MANOEUVRES = "manoeuvres"  # canonical fields under this prefix are read once per manoeuvre
+OBX_UNIT = "OBX-6"  # ``unit_from`` of an HL7 code: the unit is in the OBX's own units field
+_HL7_LOCATION = re.compile(r"(?P<segment>[A-Z][A-Z0-9]{2})-(?P<field>[1-9][0-9]*)(?:\.(?P<component>[1-9][0-9]*))?")
+
+# Defaults of a map, written once.
+DEFAULT_MISSING = ("", "-", "n/a")  # common practice: how lab exports write "not measured"
+DEFAULT_DATE_FORMAT = "%Y-%m-%d"
+DEFAULT_DATETIME_FORMAT = "%Y-%m-%dT%H:%M"
+DEFAULT_HL7_DATE_FORMAT = "%Y%m%d"  # source: HL7 v2.5.1 ch. 2, DT/TS formats (YYYYMMDD[HHMM[SS]][+/-ZZZZ])
+DEFAULT_HL7_DATETIME_FORMAT = "%Y%m%d%H%M%z"
+DEFAULT_TIME_ZONE = "UTC"
+DEFAULT_SEX_CODES = MappingProxyType({"M": "male", "F": "female", "O": "other", "U": "unknown"})
+DEFAULT_HL7_VERSIONS = ("2.3", "2.3.1", "2.4", "2.5", "2.5.1")
+DEFAULT_DELIMITER = "auto"  # sniffed by the stdlib csv module among , ; tab |
+ENCODINGS = ("utf-8", "latin-1")  # utf-8 drops a byte-order mark
+ON_BAD_RECORD = ("skip", "refuse")
+ROWS = ("session", "manoeuvre")
+
+
+@dataclass(frozen=True, slots=True)
+class CanonicalField:
+    """One field of ``dlco-result/1`` a map can fill, e.g. ``manoeuvres.inspired_volume``."""
+
+    path: str
+    kind: FieldKind
+    dimension: str | None = None  # quantities only
+    canonical_unit: str | None = None  # quantities only: the unit the core keeps it in
+    per_manoeuvre: bool = False  # read once per manoeuvre (under ``manoeuvres.``)
+
+
+@dataclass(frozen=True, slots=True)
+class FieldSource:
+    """Where one canonical field comes from, and how its text becomes a value."""
+
+    target: CanonicalField
+    column: str | None = None  # CSV: the column header
+    at: str | None = None  # HL7: a segment location such as PID-5.2
+    code: str | None = None  # HL7: the local code in OBX-3.1
+    value: str | None = None  # the same value for every record
+    unit: str | None = None  # a fixed unit, as the source means it
+    unit_column: str | None = None  # CSV: the column that carries the unit
+    unit_from_obx: bool = False  # HL7: the unit is in OBX-6
+    percent: bool = False  # a gas fraction written as a percentage (0.3 means 0.003)
+
+    @property
+    def origin(self) -> str:
+        """How reports name the source of the field: a column, a code, a location or a constant."""
+        if self.column is not None:
+            return f"column {self.column!r}"
+        if self.code is not None:
+            return f"code {self.code!r}"
+        if self.at is not None:
+            return self.at
+        return "(constant)"
+
+
+@dataclass(frozen=True, slots=True)
+class FieldMap:
+    """One source layout: its format, how its text is read, and the source of each field."""
+
+    name: str  # the map file, as errors name it
+    source: str  # the lab or system whose exports it reads
+    format: MapFormat
+    fields: tuple[FieldSource, ...]
+    on_bad_record: Literal["skip", "refuse"] = "skip"
+    missing: frozenset[str] = frozenset(DEFAULT_MISSING)
+    decimal: str = "."
+    date_format: str = DEFAULT_DATE_FORMAT
+    datetime_format: str = DEFAULT_DATETIME_FORMAT
+    time_zone: str = DEFAULT_TIME_ZONE
+    sex_codes: Mapping[str, str] = field(default_factory=lambda: DEFAULT_SEX_CODES)
+    unit_aliases: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))  # spelling -> unit
+    # csv
+    delimiter: str = DEFAULT_DELIMITER
+    encoding: str = "utf-8"
+    header_rows: int = 1  # the column names are on the last of these rows
+    rows: Literal["session", "manoeuvre"] = "session"
+    group_by: str | None = None  # rows = "manoeuvre": the column holding the test id
+    # hl7v2
+    versions: tuple[str, ...] = DEFAULT_HL7_VERSIONS
+
+    def columns(self) -> tuple[str, ...]:
+        """Every CSV column the map reads (values and units), in map order."""
+        named = [c for f in self.fields for c in (f.column, f.unit_column) if c is not None]
+        if self.group_by is not None:
+            named.append(self.group_by)
+        return tuple(dict.fromkeys(named))
+
+    def codes(self) -> Mapping[str, tuple[FieldSource, ...]]:
+        """HL7 local code -> the field sources it feeds."""
+        found: dict[str, list[FieldSource]] = {}
+        for source in self.fields:
+            if source.code is not None:
+                found.setdefault(source.code, []).append(source)
+        return MappingProxyType({code: tuple(sources) for code, sources in found.items()})
+
+
+@dataclass(frozen=True, slots=True)
+class MapChoice:
+    """Which map reads which input: the first file-name pattern that matches, else the default.
+
+    No map at all means the input is ``dlco-result/1`` JSON; nothing is guessed from the content.
+    """
+
+    default: FieldMap | None = None
+    by_pattern: tuple[tuple[str, FieldMap], ...] = ()
+
+    def for_file(self, name: str) -> FieldMap | None:
+        return next((m for pattern, m in self.by_pattern if fnmatch.fnmatchcase(name, pattern)), self.default)
+
+
+# ---- the canonical fields, read from the model -------------------------------------------------
+
+
+@cache
+def canonical_fields() -> Mapping[str, CanonicalField]:
+    """Every field of ``dlco-result/1`` a map may fill, by dotted path (``format`` is implied)."""
+    found: dict[str, CanonicalField] = {}
+    _walk(Session, "", found)
+    del found["format"]
+    return MappingProxyType(found)
+
+
+def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField]) -> None:
+    for name, info in model.model_fields.items():
+        path = prefix + name
+        measure = _measure(info.metadata, info.annotation)
+        if measure is not None:
+            found[path] = CanonicalField(
+                path, "quantity", measure.dimension, measure.canonical_unit, _in_manoeuvre(path)
+            )
+            continue
+        bare = _bare(info.annotation)
+        if get_origin(bare) is tuple:
+            bare = _bare(get_args(bare)[0])
+        if isinstance(bare, type) and issubclass(bare, BaseModel) and bare is not Quantity:
+            _walk(bare, path + ".", found)
+        else:
+            found[path] = CanonicalField(path, _kind(bare), per_manoeuvre=_in_manoeuvre(path))
+
+
+def _in_manoeuvre(path: str) -> bool:
+    return path.startswith(MANOEUVRES + ".")
+
+
+def _kind(bare: Any) -> FieldKind:
+    if bare is Sex:
+        return "sex"
+    if bare is AwareDatetime or (isinstance(bare, type) and issubclass(bare, datetime)):
+        return "datetime"
+    if isinstance(bare, type) and issubclass(bare, date):
+        return "date"
+    if bare is float:
+        return "number"
+    return "text"
+
+
+def _bare(annotation: Any) -> Any:
+    """The type inside ``Optional[...]`` and ``Annotated[...]``."""
+    while True:
+        origin = get_origin(annotation)
+        if origin is Annotated:
+            annotation = get_args(annotation)[0]
+        elif origin is Union or origin is types.UnionType:
+            annotation = next(a for a in get_args(annotation) if a is not type(None))
+        else:
+            return annotation
+
+
+def _measure(metadata: list[Any], annotation: Any) -> Measure | None:
+    for item in metadata:
+        if isinstance(item, Measure):
+            return item
+    bare = annotation
+    while get_origin(bare) in (Union, types.UnionType):
+        bare = next(a for a in get_args(bare) if a is not type(None))
+    if get_origin(bare) is Annotated:
+        return next((m for m in bare.__metadata__ if isinstance(m, Measure)), None)
+    return None
+
+
+# ---- parsing a map ---------------------------------------------------------------------------
+
+_MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record"})
+_VALUE_KEYS = frozenset({"missing", "decimal", "date_format", "datetime_format", "time_zone"})
+_CSV_KEYS = frozenset({"delimiter", "encoding", "header_rows", "rows", "group_by"})
+_HL7_KEYS = frozenset({"versions", "encoding"})
+_SOURCE_KEYS = frozenset({"column", "at", "code", "value", "unit", "unit_column", "unit_from", "percent"})
+_SECTIONS = frozenset({"map", "values", "sex", "units", "csv", "hl7", "fields"})
+
+
+class _Checker:
+    """Typed access to one map's parsed text; every error names the file, line and key."""
+
+    def __init__(self, text: str, name: str) -> None:
+        self.lines = text.splitlines()
+        self.name = name
+
+    def fail(self, key: str, expected: str) -> MappingError:
+        line = self.line_of(key)
+        return MappingError(self.name, f"line {line}: {key}" if line else key, expected)
+
+    def line_of(self, key: str) -> int | None:
+        """The line that sets ``key`` (``values.decimal``, ``fields."patient.height".unit``), else its section's."""
+        if '."' in key:
+            section, rest = key.split('."', 1)
+            last = rest.split('"', 1)[0]
+        else:
+            section, _, last = key.partition(".")
+            section, last = (section, last.split(".")[0]) if last else ("", section)
+        start = 0
+        if section:
+            header = re.compile(rf"^\s*\[{re.escape(section)}\]\s*(#.*)?$")
+            found = next((i for i, t in enumerate(self.lines) if header.match(t)), None)
+            if found is None:
+                return None
+            start = found
+        target = re.compile(rf'^\s*"?{re.escape(last)}"?\s*=')
+        for i in range(start, len(self.lines)):
+            if i > start and section and self.lines[i].lstrip().startswith("["):
+                break
+            if target.match(self.lines[i]):
+                return i + 1
+        return start + 1 if section else None
+
+    def table(self, data: Mapping[str, Any], key: str) -> Mapping[str, Any]:
+        value = data.get(key, {})
+        if not isinstance(value, dict):
+            raise self.fail(key, "a table")
+        return value
+
+    def known(self, table: Mapping[str, Any], allowed: frozenset[str], prefix: str) -> None:
+        unknown = sorted(set(table) - allowed)
+        if unknown:
+            raise self.fail(f"{prefix}.{unknown[0]}" if prefix else unknown[0], f"one of {', '.join(sorted(allowed))}")
+
+    def text(self, table: Mapping[str, Any], key: str, where: str, default: str | None = None) -> str:
+        value = table.get(key, default)
+        if not isinstance(value, str) or (not value and default is None):
+            raise self.fail(where, "text" if default is not None else "non-empty text")
+        return value
+
+    def choice(self, table: Mapping[str, Any], key: str, where: str, options: tuple[str, ...], default: str) -> str:
+        value = table.get(key, default)
+        if value not in options:
+            raise self.fail(where, f"one of {', '.join(options)}, got {value!r}")
+        return str(value)
+
+
+def field_map(text: str, name: str, catalogue: UnitCatalogue) -> FieldMap:
+    """The map in ``text`` (the file ``name``), checked against the canonical fields and the unit catalogue."""
+    data = read_toml(text, name)
+    check = _Checker(text, name)
+    check.known(data, _SECTIONS, "")
+    head = check.table(data, "map")
+    check.known(head, _MAP_KEYS, "map")
+    fmt = check.choice(head, "format", "map.format", FORMATS, "")
+    values = check.table(data, "values")
+    check.known(values, _VALUE_KEYS, "values")
+    csv_part, hl7_part = check.table(data, "csv"), check.table(data, "hl7")
+    check.known(csv_part, _CSV_KEYS, "csv")
+    check.known(hl7_part, _HL7_KEYS, "hl7")
+    hl7 = fmt == "hl7v2"
+    aliases = _unit_aliases(check, check.table(data, "units"), catalogue)
+    fields = tuple(
+        _field_source(check, path, spec, fmt, aliases, catalogue) for path, spec in check.table(data, "fields").items()
+    )
+    if not fields:
+        raise check.fail("fields", "at least one canonical field")
+    zone = check.text(values, "time_zone", "values.time_zone", DEFAULT_TIME_ZONE)
+    try:
+        ZoneInfo(zone)
+    except (ZoneInfoNotFoundError, ValueError):
+        raise check.fail("values.time_zone", f"an IANA time zone such as Europe/London, got {zone!r}") from None
+    rows = check.choice(csv_part, "rows", "csv.rows", ROWS, "session")
+    group_by = csv_part.get("group_by")
+    if rows == "manoeuvre" and not isinstance(group_by, str):
+        raise check.fail("csv.group_by", 'the column holding the test id (needed with rows = "manoeuvre")')
+    built = FieldMap(
+        name=name,
+        source=check.text(head, "source", "map.source"),
+        format=fmt,  # type: ignore[arg-type]
+        fields=fields,
+        on_bad_record=check.choice(head, "on_bad_record", "map.on_bad_record", ON_BAD_RECORD, "skip"),  # type: ignore[arg-type]
+        missing=frozenset(_missing(check, values)),
+        decimal=check.choice(values, "decimal", "values.decimal", (".", ","), "."),
+        date_format=_format(check, values, "date_format", DEFAULT_HL7_DATE_FORMAT if hl7 else DEFAULT_DATE_FORMAT),
+        datetime_format=_format(
+            check, values, "datetime_format", DEFAULT_HL7_DATETIME_FORMAT if hl7 else DEFAULT_DATETIME_FORMAT
+        ),
+        time_zone=zone,
+        sex_codes=_sex_codes(check, check.table(data, "sex")),
+        unit_aliases=aliases,
+        delimiter=_delimiter(check, csv_part),
+        encoding=check.choice(hl7_part, "encoding", "hl7.encoding", ENCODINGS, "utf-8")
+        if hl7
+        else check.choice(csv_part, "encoding", "csv.encoding", ENCODINGS, "utf-8"),
+        header_rows=_count(check, csv_part, "header_rows", 1),
+        rows=rows,  # type: ignore[arg-type]
+        group_by=group_by if rows == "manoeuvre" else None,
+        versions=_versions(check, hl7_part),
+    )
+    _check_whole(check, built)
+    return built
+
+
+def _field_source(
+    check: _Checker, path: str, spec: Any, fmt: str, aliases: Mapping[str, str], catalogue: UnitCatalogue
+) -> FieldSource:
+    where = f'fields."{path}"'
+    target = canonical_fields().get(path)
+    if target is None:
+        raise check.fail(where, "a canonical field of dlco-result/1 (docs/field-maps.md lists them)")
+    if isinstance(spec, str):  # shorthand: "column name" or "LOCALCODE"
+        spec = {"column": spec} if fmt == "csv" else {"code": spec}
+    if not isinstance(spec, dict):
+        raise check.fail(where, 'a table such as { column = "..." }')
+    check.known(spec, _SOURCE_KEYS, where)
+    allowed = ("column", "value") if fmt == "csv" else ("at", "code", "value")
+    given = [k for k in ("column", "at", "code", "value") if k in spec]
+    if len(given) != 1 or given[0] not in allowed:
+        raise check.fail(where, f"exactly one of {', '.join(allowed)} for a {fmt} map")
+    for key in (*given, "unit", "unit_column", "unit_from"):
+        if key in spec and (not isinstance(spec[key], str) or (key != "value" and not spec[key])):
+            raise check.fail(f"{where}.{key}", "non-empty text")
+    at = spec.get("at")
+    if at is not None and not _HL7_LOCATION.fullmatch(at):
+        raise check.fail(f"{where}.at", f"a location such as PID-5.2 (segment-field.component), got {at!r}")
+    if at is not None and at.startswith("OBX"):
+        raise check.fail(f"{where}.at", "a segment other than OBX (OBX values are mapped by code)")
+    if target.per_manoeuvre and fmt == "csv" and "value" in spec:
+        raise check.fail(where, "a column (a manoeuvre field cannot be a constant)")
+    unit_from = spec.get("unit_from")
+    if unit_from is not None and (fmt != "hl7v2" or unit_from != OBX_UNIT or "code" not in spec):
+        raise check.fail(f"{where}.unit_from", f'"{OBX_UNIT}" on an HL7 code')
+    if "unit_column" in spec and fmt != "csv":
+        raise check.fail(f"{where}.unit_column", "only in a csv map (HL7 codes use unit_from)")
+    unit_ways = [k for k in ("unit", "unit_column", "unit_from") if k in spec]
+    if target.kind == "quantity" and len(unit_ways) != 1:
+        raise check.fail(where, "its unit: one of unit, unit_column or unit_from (a quantity needs a unit)")
+    if target.kind != "quantity" and unit_ways:
+        raise check.fail(f"{where}.{unit_ways[0]}", f"no unit ({path} is not a quantity)")
+    if "unit" in spec:
+        _check_unit(check, f"{where}.unit", spec["unit"], target, aliases, catalogue)
+    percent = spec.get("percent", False)
+    if not isinstance(percent, bool) or (percent and target.kind != "number"):
+        raise check.fail(f"{where}.percent", "true or false, and true only on a gas fraction")
+    if "value" in spec and target.kind == "quantity":
+        raise check.fail(f"{where}.value", "a column or code (quantities are read from the source)")
+    return FieldSource(
+        target=target,
+        column=spec.get("column"),
+        at=at,
+        code=spec.get("code"),
+        value=spec.get("value"),
+        unit=spec.get("unit"),
+        unit_column=spec.get("unit_column"),
+        unit_from_obx=unit_from is not None,
+        percent=percent,
+    )
+
+
+def _check_unit(
+    check: _Checker, where: str, unit: str, target: CanonicalField, aliases: Mapping[str, str], catalogue: UnitCatalogue
+) -> None:
+    found = catalogue.resolve(aliases.get(unit, unit))
+    if found is None:
+        raise check.fail(where, f"a unit in mappings/units.toml or in [units] of this map, got {unit!r}")
+    if found.dimension != target.dimension:
+        raise check.fail(where, f"a {str(target.dimension).replace('_', ' ')} unit, got {unit!r} ({found.dimension})")
+
+
+def _unit_aliases(check: _Checker, table: Mapping[str, Any], catalogue: UnitCatalogue) -> Mapping[str, str]:
+    for alias, code in table.items():
+        if not isinstance(code, str) or catalogue.resolve(code) is None:
+            raise check.fail(f'units."{alias}"', f"a unit of mappings/units.toml, got {code!r}")
+    return MappingProxyType(dict(table))
+
+
+def _sex_codes(check: _Checker, table: Mapping[str, Any]) -> Mapping[str, str]:
+    if not table:
+        return DEFAULT_SEX_CODES
+    allowed = tuple(s.value for s in Sex)
+    for code, sex in table.items():
+        if sex not in allowed:
+            raise check.fail(f'sex."{code}"', f"one of {', '.join(allowed)}, got {sex!r}")
+    return MappingProxyType(dict(table))
+
+
+def _missing(check: _Checker, values: Mapping[str, Any]) -> tuple[str, ...]:
+    raw = values.get("missing", list(DEFAULT_MISSING))
+    if not isinstance(raw, list) or not all(isinstance(m, str) for m in raw):
+        raise check.fail("values.missing", 'a list of texts that mean "no value", such as ["", "-", "n/a"]')
+    return tuple(raw)
+
+
+def _format(check: _Checker, values: Mapping[str, Any], key: str, default: str) -> str:
+    fmt = check.text(values, key, f"values.{key}", default)
+    if "%" not in fmt:
+        raise check.fail(f"values.{key}", f"a strftime format such as %d.%m.%Y, got {fmt!r}")
+    return fmt
+
+
+def _delimiter(check: _Checker, table: Mapping[str, Any]) -> str:
+    value = table.get("delimiter", DEFAULT_DELIMITER)
+    if value != DEFAULT_DELIMITER and (not isinstance(value, str) or len(value) != 1 or value in '"\r\n'):
+        raise check.fail("csv.delimiter", f'"auto" or one character other than a quote or line break, got {value!r}')
+    return str(value)
+
+
+def _count(check: _Checker, table: Mapping[str, Any], key: str, default: int) -> int:
+    value = table.get(key, default)
+    if not isinstance(value, int) or isinstance(value, bool) or not 1 <= value <= 20:
+        raise check.fail(f"csv.{key}", f"a whole number from 1 to 20, got {value!r}")
+    return value
+
+
+def _versions(check: _Checker, table: Mapping[str, Any]) -> tuple[str, ...]:
+    raw = table.get("versions", list(DEFAULT_HL7_VERSIONS))
+    if not isinstance(raw, list) or not raw or not all(v in DEFAULT_HL7_VERSIONS for v in raw):
+        raise check.fail("hl7.versions", f"a list from {', '.join(DEFAULT_HL7_VERSIONS)}")
+    return tuple(raw)
+
+
+def _check_whole(check: _Checker, built: FieldMap) -> None:
+    """What only the whole map can show: required fields and the session key."""
+    mapped = {f.target.path for f in built.fields}
+    for required in ("test_id", "performed_at", "lab.name", "patient.id", "patient.id_system", "patient.sex",
+                     "patient.birth_date", "patient.height"):  # fmt: skip
+        if required not in mapped:
+            raise check.fail("fields", f'a source for the required field "{required}"')
+    if built.rows == "manoeuvre":
+        test_id = next(f for f in built.fields if f.target.path == "test_id")
+        if test_id.column != built.group_by:
+            raise check.fail("csv.group_by", f'the column of "test_id" ({test_id.column!r})')

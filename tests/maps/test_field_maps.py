@@ -1,0 +1,104 @@
+"""Field map files: the bundled maps read, and a broken map is one error naming file, line and key."""
+
+from __future__ import annotations
+
+import pytest
+
+from bridge.errors import MappingError
+from bridge.tables.field_maps import MapChoice, canonical_fields, field_map
+from tests.maps.conftest import CSV_MAP, SMALL_CSV_MAP
+
+
+def _small(**replace: str) -> str:
+    text = SMALL_CSV_MAP.format(delimiter=",", decimal=".", map_extra="", csv_extra="")
+    for old, new in replace.items():
+        text = text.replace(old, new)
+    return text
+
+
+def _error(text: str, tables) -> str:
+    with pytest.raises(MappingError) as caught:
+        field_map(text, "maps/site.toml", tables.units)
+    return str(caught.value)
+
+
+CASES = {
+    "unknown canonical field": (
+        {'"patient.height"': '"patient.shoe_size"'},
+        'maps/site.toml: line 26: fields."patient.shoe_size": a canonical field of dlco-result/1 '
+        "(docs/field-maps.md lists them)",
+    ),
+    "unknown unit": (
+        {'unit = "cm"': 'unit = "hands"'},
+        'maps/site.toml: line 26: fields."patient.height".unit: a unit in mappings/units.toml or in [units] of '
+        "this map, got 'hands'",
+    ),
+    "unit of the wrong dimension": (
+        {'unit = "cm"': 'unit = "kg"'},
+        "maps/site.toml: line 26: fields.\"patient.height\".unit: a length unit, got 'kg' (mass)",
+    ),
+    "quantity without a unit": (
+        {', unit = "cm"': ""},
+        'maps/site.toml: line 26: fields."patient.height": its unit: one of unit, unit_column or unit_from '
+        "(a quantity needs a unit)",
+    ),
+    "bad transform": (
+        {'{ column = "height", unit = "cm" }': '{ column = "height", unit = "cm", percent = true }'},
+        'maps/site.toml: line 26: fields."patient.height".percent: true or false, and true only on a gas fraction',
+    ),
+    "bad decimal separator": (
+        {'decimal = "."': 'decimal = "·"'},
+        "maps/site.toml: line 12: values.decimal: one of ., ,, got '·'",
+    ),
+    "unknown key": (
+        {'format = "csv"': 'format = "csv"\ncolour = "blue"'},
+        "maps/site.toml: line 5: map.colour: one of format, name, on_bad_record, source",
+    ),
+    "unknown format": (
+        {'format = "csv"': 'format = "xlsx"'},
+        "maps/site.toml: line 4: map.format: one of csv, hl7v2, got 'xlsx'",
+    ),
+    "bad time zone": (
+        {"Europe/London": "Mars/Olympus"},
+        "maps/site.toml: line 15: values.time_zone: an IANA time zone such as Europe/London, got 'Mars/Olympus'",
+    ),
+    "broken TOML": ({'"test_id" = {': '"test_id" = '}, "maps/site.toml: file: valid TOML"),
+}
+
+
+@pytest.mark.parametrize("case", CASES, ids=list(CASES))
+def test_a_broken_map_names_file_line_and_key(case, tables):
+    """Each mistake is one MappingError naming the map file, the line and the key at fault."""
+    change, expected = CASES[case]
+    assert expected == _error(_small(**change), tables)[: len(expected)]
+
+
+def test_the_bundled_maps_read(tables):
+    """Both maps in mappings/maps/ are valid."""
+    from tests.maps.conftest import HL7_MAP
+
+    names = [field_map(p.read_text(encoding="utf-8"), p.name, tables.units).format for p in (CSV_MAP, HL7_MAP)]
+    assert ["csv", "hl7v2"] == names
+
+
+def test_canonical_fields_follow_the_model():
+    """The fields a map may fill are those of docs/format.md, e.g. manoeuvre volumes and predicted values."""
+    fields = canonical_fields()
+    assert ("quantity", "volume", "L") == (
+        fields["manoeuvres.inspired_volume"].kind,
+        fields["manoeuvres.inspired_volume"].dimension,
+        fields["manoeuvres.inspired_volume"].canonical_unit,
+    )
+    assert ("number", "date", "datetime", "sex") == (
+        fields["manoeuvres.alveolar_co_fraction"].kind,
+        fields["patient.birth_date"].kind,
+        fields["performed_at"].kind,
+        fields["patient.sex"].kind,
+    )
+    assert "format" not in fields
+
+
+def test_the_first_matching_pattern_chooses_the_map(tables, csv_map, hl7_map):
+    """[maps] is read in order; a file no pattern matches takes the default (here none: JSON)."""
+    choice = MapChoice(default=None, by_pattern=(("*.csv", csv_map), ("lab-*", hl7_map)))
+    assert [csv_map, hl7_map, None] == [choice.for_file(n) for n in ("lab-1.csv", "lab-1.hl7", "x.json")]
