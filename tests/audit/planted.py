@@ -51,8 +51,8 @@ PLANTED = Counter(
         "MANOEUVRE_NOT_ACCEPTABLE": RAW,  # sample 06: manoeuvre 3, VI/VC 77 %
         # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
         "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
-        "UNREADABLE_INPUT": 4,  # three half-written files and one binary file
-        "UNKNOWN_FORMAT": 2,
+        "UNREADABLE_INPUT": 3,  # three half-written files
+        "UNKNOWN_FORMAT": 3,  # two other formats and one binary file (no reader claims either)
     }
 )
 SESSIONS = {LOWMARSH: (600, 3), SALTREACH: (300, 3), BRACKENFOLD: (100, 2)}  # patients, sessions each

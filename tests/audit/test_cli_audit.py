@@ -10,7 +10,7 @@ from bridge.tables.files import samples_dir
 
 
 def test_audit_exits_0_and_reports_a_broken_export_and_a_foreign_file_as_findings(tmp_path: Path, capsys):
-    """A broken export (sample 08) and a TOML file beside a good export are findings, and the exit is 0."""
+    """A broken export (sample 08) and a TOML file (a format no reader claims) are findings, and the exit is 0."""
     archive = tmp_path / "archive"
     (archive / "service").mkdir(parents=True)
     for name in ("01-healthy-adult.json", "08-malformed.json", "service/bridge.toml"):
@@ -22,7 +22,7 @@ def test_audit_exits_0_and_reports_a_broken_export_and_a_foreign_file_as_finding
 
     assert 0 == code
     # source: samples/08-malformed.json has a date-time without a UTC offset (README, "What the samples show")
-    assert {("08-malformed.json", "INVALID_RECORD"), ("bridge.toml", "UNREADABLE_INPUT")} == refused
+    assert {("08-malformed.json", "INVALID_RECORD"), ("bridge.toml", "UNKNOWN_FORMAT")} == refused
     assert "report in" in capsys.readouterr().out
 
 

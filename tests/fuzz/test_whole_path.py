@@ -20,6 +20,7 @@ import os
 import re
 from collections import Counter
 from datetime import UTC, datetime
+from pathlib import Path
 from typing import Any
 
 import hl7
@@ -77,14 +78,20 @@ def budget(share: str) -> settings:
 
 # ---------- the whole path ----------
 
+ROOT = Path(__file__).resolve().parents[2]
 TABLES = load_tables()
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 SOURCE = "fuzz.json"
 # Both unit systems and both output kinds; the SI run also emits the Patient (conditional create),
 # so names are checked. A site may block no finding at all, so every outcome must be emittable:
 # nothing is blocked here.
-SI_SITE = PipelineSettings(blocking=frozenset(), emit=EmitSettings(patient_reference="conditional-create"))
-TRADITIONAL_SITE = PipelineSettings(blocking=frozenset(), emit=EmitSettings(patient_reference="identifier"))
+# Every ERROR code docs/findings.md documents is allowed, so records that carry one go through to
+# the emitters too (as preliminary values): the fuzz must reach that path as well.
+ERROR_CODES = frozenset(
+    re.findall(r"^\| `([A-Z_]+)` \| error \|", (ROOT / "docs" / "findings.md").read_text(encoding="utf-8"), re.M)
+)
+SI_SITE = PipelineSettings(allow=ERROR_CODES, emit=EmitSettings(patient_reference="conditional-create"))
+TRADITIONAL_SITE = PipelineSettings(allow=ERROR_CODES, emit=EmitSettings(patient_reference="identifier"))
 RUNS = (
     (SI_SITE, (Route("fhir", "si"), Route("hl7", "si"))),
     (TRADITIONAL_SITE, (Route("fhir", "traditional"), Route("hl7", "traditional"))),

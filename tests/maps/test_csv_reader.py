@@ -85,8 +85,16 @@ def test_decimal_comma_keeps_the_reported_digits(tables):
     fmap = small_csv_map(tables, delimiter=";", decimal=",")
     first = next(read_csv(_written(rows[:1], ";"), "x.csv", fmap, tables.units))
     assert first.session is not None
-    assert (24.6, 2, "mL/min/mmHg") == (first.session.results.dlco.value, first.session.results.dlco.decimals,
-                                        first.session.results.dlco.unit)  # fmt: skip
+    dlco = first.session.results.dlco
+    assert dlco is not None and dlco.original is not None
+    # read and normalised in one step: the canonical UCUM unit, the lab's own text kept as the original
+    assert (24.6, 2, "mL/min/mm[Hg]", "24.60", "mL/min/mmHg") == (
+        dlco.value,
+        dlco.decimals,
+        dlco.unit,
+        dlco.original.value,
+        dlco.original.unit,
+    )
 
 
 def test_a_file_without_the_maps_columns_is_not_its_format(tables):
