@@ -1,0 +1,53 @@
+"""The console script ``dlco-bridge``: the composition root (shell).
+
+Owns: ``main`` -- the settings object for the run through ``bridge.config`` (configuration file,
+environment, then the flags ``parser`` defines), the tables, and the command: ``files`` (check,
+convert, demo, show, schema, map check, audit) or ``service`` (watch, status, resend, prune,
+stand-in). Exit 0 when every input was read, 2 when one could not be (one line per bad input on
+stderr), 1 on a usage or setup error.
+"""
+
+from __future__ import annotations
+
+import os
+import sys
+from collections.abc import Sequence
+
+from bridge.cli.files import cmd_audit, cmd_check, cmd_convert, cmd_demo, cmd_map, cmd_schema, cmd_show, convert_files
+from bridge.cli.parser import EXIT_BAD_INPUT, EXIT_OK, EXIT_SETUP, build_parser, settings_of
+from bridge.cli.service import cmd_prune, cmd_resend, cmd_stand_in, cmd_status, cmd_watch
+from bridge.config import CONFIG_ENV, SAMPLE_CONFIG
+from bridge.errors import BridgeError, ConfigError
+from bridge.tables.files import load_tables
+
+__all__ = ["EXIT_BAD_INPUT", "EXIT_OK", "EXIT_SETUP", "build_parser", "convert_files", "main"]
+
+
+COMMANDS = {
+    "stand-in": cmd_stand_in,
+    "prune": cmd_prune,
+    "watch": cmd_watch,
+    "status": cmd_status,
+    "resend": cmd_resend,
+    "check": cmd_check,
+    "convert": cmd_convert,
+    "demo": cmd_demo,
+    "show": cmd_show,
+    "schema": cmd_schema,
+    "audit": cmd_audit,
+    "map": cmd_map,
+}
+_NEEDS_CONFIG = ("watch", "status", "resend", "prune")
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        settings = settings_of(args, os.environ)
+        if args.command in _NEEDS_CONFIG and settings.source.startswith("("):
+            raise ConfigError("--config", f"a configuration file (--config FILE or ${CONFIG_ENV}; see {SAMPLE_CONFIG})")
+        tables = load_tables(traditional_per_si=settings.traditional_per_si)
+        return COMMANDS[args.command](args, settings, tables)
+    except BridgeError as exc:
+        print(f"dlco-bridge: {exc}", file=sys.stderr)
+        return EXIT_SETUP

@@ -1,0 +1,221 @@
+"""The argument parser, the exit codes, and the one settings object for a run (shell)."""
+
+from __future__ import annotations
+
+import argparse
+from collections.abc import Mapping
+from pathlib import Path
+
+from bridge import __version__
+from bridge.config import (
+    CONFIG_ENV,
+    SAMPLE_CONFIG,
+    UNIT_SYSTEMS,
+    ServiceSettings,
+    Settings,
+    config_path,
+    load_settings,
+)
+from bridge.display.check_report import CAUTION
+from bridge.display.map_report import SHOWN_RECORDS
+from bridge.service.receiver import ANSWERS, StandInSettings
+
+EXIT_OK = 0
+EXIT_SETUP = 1
+EXIT_BAD_INPUT = 2
+DEFAULTS = Settings()  # shown in --help; the values themselves are written in the settings classes
+DEFAULTS_SERVICE = ServiceSettings(Path(), Path(), Path(), Path(), ())
+
+
+def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
+    """Flags that override the configuration file and the environment (``None``: not given)."""
+    parser.add_argument(
+        "--config",
+        type=Path,
+        help=f"configuration file (TOML); default: ${CONFIG_ENV}, else none (see {SAMPLE_CONFIG})",
+    )
+    parser.add_argument(
+        "--units",
+        choices=UNIT_SYSTEMS,
+        help=f"units to show or write (key units; default {DEFAULTS.units})",
+    )
+    parser.add_argument(
+        "--max-input-bytes",
+        type=int,
+        help=f"largest input accepted (key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
+    )
+    parser.add_argument(
+        "--map",
+        type=lambda value: str(Path(value).absolute()),
+        help="read every input through this field map (mappings/maps/*.toml; CSV or legacy HL7 v2) "
+        "(key map; default: none, inputs are dlco-result/1 JSON; [maps] chooses one per file pattern)",
+    )
+    parser.add_argument(
+        "--traditional-per-si",
+        type=float,
+        help="mL/min/mmHg per mmol/min/kPa, 2.987 or 2.986 "
+        f"(key traditional_per_si; default {DEFAULTS.traditional_per_si})",
+    )
+    if not emits:
+        return
+    parser.add_argument(
+        "--allow",
+        action="append",
+        metavar="CODE",
+        help="an ERROR finding code to write anyway, the value marked preliminary with the finding; "
+        "repeat or separate with commas (key allow; default "
+        f"{','.join(sorted(DEFAULTS.pipeline.allow)) or 'none'}: "
+        "every ERROR finding keeps a record from being written)",
+    )
+    parser.add_argument(
+        "--blocking",
+        help="codes of lesser (warning, info) findings that also keep a record from being written, "
+        f"comma-separated (key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'})",
+    )
+    parser.add_argument(
+        "--validate",
+        action="store_const",
+        const=True,
+        help="check every Bundle with fhir.resources and every ORU with hl7apy STRICT before writing it "
+        "(key validate; needs the [validate] extra)",
+    )
+    site = DEFAULTS.pipeline.emit
+    for key, what in (
+        ("sending_application", "MSH-3"),
+        ("sending_facility", "MSH-4"),
+        ("receiving_application", "MSH-5"),
+        ("receiving_facility", "MSH-6"),
+    ):
+        parser.add_argument(
+            "--" + key.replace("_", "-"),
+            dest="emit." + key,
+            help=f"HL7 {what} (key emit.{key}; default {getattr(site, key)})",
+        )
+    parser.add_argument(
+        "--patient-reference",
+        dest="emit.patient_reference",
+        choices=("identifier", "conditional-create"),
+        help=f"FHIR: refer to the patient by identifier, or create it if absent "
+        f"(key emit.patient_reference; default {site.patient_reference})",
+    )
+
+
+# Flags that are settings; everything else on the command line is an argument of the command.
+_SETTING_FLAGS = (
+    "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to", "map",
+    "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
+    "emit.receiving_facility", "emit.patient_reference",
+)  # fmt: skip
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="dlco-bridge",
+        description="Carry single-breath DLCO results from lab exports into FHIR R4 and HL7 v2, checked.",
+        epilog=CAUTION,
+    )
+    parser.add_argument("--version", action="version", version=f"dlco-bridge {__version__}")
+    commands = parser.add_subparsers(dest="command", required=True)
+    check = commands.add_parser("check", help="read, normalise, recompute and report findings")
+    check.add_argument("files", nargs="+", type=Path, help="export files or folders")
+    check.add_argument("--json", action="store_true", help="machine-readable output")
+    _add_settings(check, emits=False)
+    convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
+    convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
+    convert.add_argument("--to", help=f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})")
+    convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
+    _add_settings(convert, emits=True)
+    demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
+    _add_settings(demo, emits=True)
+    show = commands.add_parser("show", help="an HL7 v2 message with field names, or a FHIR Bundle summarised")
+    show.add_argument("file", type=Path, help="an ER7 HL7 v2 message or a FHIR Bundle (JSON)")
+    commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
+    audit = commands.add_parser("audit", help="check a whole archive, write a report folder (and bulk FHIR NDJSON)")
+    audit.add_argument("paths", nargs="+", type=Path, help="export files or folders (walked to any depth)")
+    audit.add_argument("--report", type=Path, required=True, help="folder for findings.csv, summary.json, report.html")
+    audit.add_argument("--workers", type=int, help="worker processes (default: the number of CPUs)")
+    audit.add_argument("--emit", choices=("ndjson",), help="also write the clean sessions as FHIR R4 NDJSON")
+    audit.add_argument("--scheduler", help="run on an existing Dask cluster at this address (the [scale] extra)")
+    _add_settings(audit, emits=False)
+    maps = commands.add_parser("map", help="field maps: onboard a CSV or legacy HL7 v2 source without code")
+    map_commands = maps.add_subparsers(dest="map_command", required=True)
+    map_check = map_commands.add_parser(
+        "check", help="read a sample through a map: what each column or code feeds, what stays unused or empty"
+    )
+    map_check.add_argument("map_file", metavar="MAP", type=Path, help="the field map (TOML)")
+    map_check.add_argument("sample", metavar="SAMPLE", type=Path, help="a sample export of the source")
+    map_check.add_argument("--json", action="store_true", help="machine-readable output")
+    map_check.add_argument(
+        "--records", type=int, default=SHOWN_RECORDS, help=f"records shown field by field (default {SHOWN_RECORDS})"
+    )
+    config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
+    watch = commands.add_parser("watch", help="run the watch-folder service")
+    watch.add_argument("--config", type=Path, help=config_help)
+    status = commands.add_parser("status", help="what the service's ledger holds: pending, delivered, rejected")
+    status.add_argument("--config", type=Path, help=config_help)
+    status.add_argument("--json", action="store_true", help="machine-readable output")
+    resend = commands.add_parser("resend", help="queue an outbox message (or every rejected one) again")
+    resend.add_argument("--config", type=Path, help=config_help)
+    which = resend.add_mutually_exclusive_group(required=True)
+    which.add_argument("id", nargs="?", type=int, help="outbox id (see status --json)")
+    which.add_argument("--rejected", action="store_true", help="every dead-lettered message")
+    _add_prune(commands, config_help)
+    _add_stand_in(commands)
+    return parser
+
+
+def _add_stand_in(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    defaults = StandInSettings(Path())
+    stand_in = commands.add_parser(
+        "stand-in",
+        help="a loopback MLLP listener and FHIR endpoint to try a feed against (never started by watch)",
+        description="Listen on 127.0.0.1 only: MLLP (each message written to FOLDER/messages/ and answered) and "
+        "a FHIR endpoint taking transaction Bundles (kept in FOLDER/resources.sqlite3). Runs until Ctrl-C/SIGTERM. "
+        "For trials and rehearsals, not for patient data in production.",
+    )
+    stand_in.add_argument("--folder", type=Path, required=True, help="where received messages and resources are kept")
+    stand_in.add_argument(
+        "--mllp-port",
+        type=int,
+        default=defaults.mllp_port,
+        help=f"MLLP port on 127.0.0.1 (default {defaults.mllp_port})",
+    )
+    stand_in.add_argument(
+        "--fhir-port",
+        type=int,
+        default=defaults.fhir_port,
+        help=f"FHIR port on 127.0.0.1, base URL http://127.0.0.1:PORT/fhir (default {defaults.fhir_port})",
+    )
+    stand_in.add_argument(
+        "--answer",
+        choices=ANSWERS,
+        default=defaults.answer,
+        help=f"MSA-1 of every ACK: AA accepts, AE and AR rehearse refusals (default {defaults.answer})",
+    )
+    stand_in.add_argument("--list", action="store_true", help="list the FHIR resources kept in FOLDER, then exit")
+
+
+def _add_prune(commands: argparse._SubParsersAction[argparse.ArgumentParser], config_help: str) -> None:
+    service = DEFAULTS_SERVICE
+    prune = commands.add_parser(
+        "prune",
+        help="remove delivered payloads and old ledger rows; duplicates stay recognisable",
+        description="Remove the payloads and attempt history of messages delivered more than DAYS ago; forget "
+        "delivered messages and their inputs after duplicate_memory_days (default "
+        f"{service.duplicate_memory_days:g}). Pending and rejected messages are never pruned. "
+        "Run it with the service stopped (or set retention_days and let the service prune).",
+    )
+    prune.add_argument("--config", type=Path, help=config_help)
+    prune.add_argument(
+        "--older-than",
+        type=float,
+        required=True,
+        metavar="DAYS",
+        help="prune what was delivered more than DAYS days ago (0 or more)",
+    )
+
+
+def settings_of(args: argparse.Namespace, environ: Mapping[str, str]) -> Settings:
+    """The one settings object for this run: configuration file, environment, then flags."""
+    flags = {key: getattr(args, key) for key in _SETTING_FLAGS if hasattr(args, key)}
+    return load_settings(config_path(getattr(args, "config", None), environ), environ, flags)
