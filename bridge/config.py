@@ -22,8 +22,8 @@ import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
-from typing import Any, Literal
-from urllib.parse import urlsplit, urlunsplit
+from typing import Any
+from urllib.parse import urlsplit
 
 from bridge.emit.hl7v2 import IS_LENGTH
 from bridge.emit.observations import HEMOGLOBIN_UNITS
@@ -32,14 +32,16 @@ from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings
 from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
+from bridge.service.settings import (
+    ANSWER_POLICIES,
+    TRANSPORT_KINDS,
+    Destination,
+    ServiceSettings,
+)
 
 ENV_PREFIX = "DLCO_BRIDGE_"
 CONFIG_ENV = ENV_PREFIX + "CONFIG"  # the configuration file, when --config is not given
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
-TransportKind = Literal["file", "mllp", "fhir-rest"]
-AnswerPolicy = Literal["dead-letter", "retry"]
-ANSWER_POLICIES: tuple[AnswerPolicy, ...] = ("dead-letter", "retry")
-TRANSPORT_KINDS: tuple[TransportKind, ...] = ("file", "mllp", "fhir-rest")
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
 PROCESSING_IDS = ("P", "T", "D")  # source: HL7 v2.5.1 table 0103 (production, training, debugging)
 _HL7_DELIMITERS = re.compile(r"[|^~\\&\x00-\x1f\x7f]")
@@ -51,70 +53,6 @@ _SYSTEM_URI = re.compile(
     r"|urn:oid:[0-2](\.(0|[1-9][0-9]*))+"
     r"|urn:uuid:[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}"
 )
-
-
-@dataclass(frozen=True, slots=True)
-class Destination:
-    """One receiver: what it gets (payload, units) and how (transport)."""
-
-    name: str
-    payload: OutputKind
-    units: UnitSystem
-    transport: TransportKind
-    folder: Path | None = None  # file
-    host: str = "127.0.0.1"  # mllp
-    port: int = 0
-    base_url: str = ""  # fhir-rest
-    token_env: str = ""  # name of the environment variable holding the bearer token
-    token: str | None = field(default=None, repr=False)  # read from token_env at load time
-    ca_file: Path | None = None
-    cert_file: Path | None = None
-    key_file: Path | None = None
-    connect_timeout: float = 10.0
-    read_timeout: float = 30.0
-    on_ae: AnswerPolicy = "dead-letter"  # mllp: what an AE/CE answer means
-    on_ar: AnswerPolicy = "dead-letter"  # mllp: what an AR/CR answer means (some receivers: "busy")
-    on_busy: AnswerPolicy = "retry"  # fhir-rest: HTTP 429/503 (Retry-After honoured when retried)
-    client_id: str = ""  # fhir-rest, SMART Backend Services: OAuth 2.0 client credentials with a JWT
-    token_url: str = ""
-    private_key_file: Path | None = None  # PEM, RSA (RS384) or EC P-384 (ES384)
-    scopes: str = "system/*.write"
-
-    @property
-    def address(self) -> str:
-        """Where it delivers, for logs: host:port, the URL (without credentials) or the folder."""
-        if self.transport == "mllp":
-            return f"{self.host}:{self.port}"
-        if self.transport == "fhir-rest":
-            parts = urlsplit(self.base_url)
-            host = parts.hostname or ""
-            return urlunsplit(parts._replace(netloc=f"{host}:{parts.port}" if parts.port else host))
-        return str(self.folder)
-
-
-@dataclass(frozen=True, slots=True)
-class ServiceSettings:
-    """What only ``watch``, ``status`` and ``resend`` need: folders, ledger, receivers, loops."""
-
-    inbox: Path
-    archive: Path
-    quarantine: Path
-    state: Path
-    destinations: tuple[Destination, ...]
-    rescan_seconds: float = 5.0
-    stable_seconds: float = 1.0
-    retry_base_seconds: float = 1.0
-    retry_cap_seconds: float = 300.0
-    metrics_port: int = 0  # 0: no health/metrics endpoint
-    metrics_host: str = "127.0.0.1"
-    log_format: Literal["text", "json"] = "text"
-    log_patient_data: bool = False
-    retention_days: float = 0.0  # 0: keep delivered payloads; else prune them (and old rows) after so many days
-    duplicate_memory_days: float = 3650.0  # how long input hashes and control ids are kept to recognise a resend
-
-    @property
-    def ledger_path(self) -> Path:
-        return self.state / "ledger.sqlite3"
 
 
 @dataclass(frozen=True, slots=True)

@@ -7,18 +7,11 @@ from collections.abc import Mapping
 from pathlib import Path
 
 from bridge import __version__
-from bridge.config import (
-    CONFIG_ENV,
-    SAMPLE_CONFIG,
-    UNIT_SYSTEMS,
-    ServiceSettings,
-    Settings,
-    config_path,
-    load_settings,
-)
+from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
 from bridge.service.receiver import ANSWERS, StandInSettings
+from bridge.service.settings import ServiceSettings
 
 EXIT_OK = 0
 EXIT_SETUP = 1

@@ -11,15 +11,13 @@ from dataclasses import asdict
 import orjson
 
 from bridge.cli.parser import EXIT_BAD_INPUT, EXIT_OK
-from bridge.config import (
-    Destination,
-    Settings,
-)
+from bridge.config import Settings
 from bridge.errors import ConfigError
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
 from bridge.service.receiver import FhirPeer, MllpPeer, ResourceStore, StandInSettings
 from bridge.service.runner import Service
+from bridge.service.settings import Destination
 from bridge.service.transports.base import TlsOptions, Transport
 from bridge.service.transports.fhir_rest import FhirRestTransport
 from bridge.service.transports.file import FileTransport

@@ -20,12 +20,13 @@ from pathlib import Path
 
 from watchdog.observers import Observer
 
-from bridge.config import ServiceSettings, Settings
+from bridge.config import Settings
 from bridge.service.delivery import Backoff, deliver_due
 from bridge.service.files import remove_strays
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
+from bridge.service.settings import ServiceSettings
 from bridge.service.transports.base import Transport
 from bridge.service.watcher import Readiness, is_candidate, pair_moves_quickly
 from bridge.tables import Tables

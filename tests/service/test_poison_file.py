@@ -20,7 +20,7 @@ from typing import TYPE_CHECKING, Any
 import pytest
 
 from bridge import __version__
-from bridge.config import ServiceSettings, parse_settings
+from bridge.config import parse_settings
 from bridge.emit.outputs import payloads
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process
@@ -28,6 +28,7 @@ from bridge.service.intake import Intake, Processor
 from bridge.service.ledger import Ledger
 from bridge.service.logs import JsonFormatter
 from bridge.service.metrics import Metrics
+from bridge.service.settings import ServiceSettings
 from bridge.tables import Tables
 from bridge.tables.files import load_tables
 from tests.service.conftest import GOOD, drop, file_destination, make_input, mllp_destination, wait_until
