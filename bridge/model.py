@@ -276,6 +276,25 @@ class ManoeuvreAssessment(Frozen):
     grade_reasons: tuple[str, ...] = ()
 
 
+class ReferenceValue(Frozen):
+    """One result compared with a reference set: predicted, limits of normal, z-score, band (canonical units).
+
+    ``compared`` is the value the z-score and per cent predicted rest on: the measured value, or
+    the value adjusted to sea level when a pressure adjustment applies (``basis`` says which).
+    """
+
+    reference_set: Text
+    basis: Literal["measured", "pressure_adjusted"]
+    compared: Quantity
+    predicted: Quantity
+    lln: Quantity
+    uln: Quantity
+    z_score: float = Field(allow_inf_nan=False)
+    percent_predicted: Quantity
+    impairment: Literal["normal", "mild", "moderate", "severe"]
+    flag: Literal["L", "N", "H"]
+
+
 class Derived(Frozen):
     """Values the bridge recomputed from the record, in canonical units."""
 
@@ -301,6 +320,12 @@ class Derived(Frozen):
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None
     va_percent_predicted: Quantity | None = None
+    # GLI-2017 reference values of the results (bridge.science.reference); None where there is no
+    # result, and all None with ``reference_not_computed`` saying why when the equations do not apply.
+    reference_dlco: ReferenceValue | None = None
+    reference_kco: ReferenceValue | None = None
+    reference_va: ReferenceValue | None = None
+    reference_not_computed: str | None = None
 
 
 OutputKind = Literal["fhir", "hl7"]
