@@ -237,8 +237,9 @@ def _observation(
         resource["interpretation"] = [{"coding": [_coding(INTERPRETATION, item.flag, _FLAG_DISPLAY[item.flag])]}]
     if item.notes or context.correction:
         resource["note"] = [{"text": text} for text in _item_notes(item, context)]
-    if item.low is not None:
-        resource["referenceRange"] = [{"low": _quantity(item.low), "text": LLN_TEXT}]
+    ranges = _ranges(item)
+    if ranges:
+        resource["referenceRange"] = ranges
     if item.derived_from:
         resource["derivedFrom"] = [{"reference": full_urls[key]} for key in item.derived_from]
     if item.supporting:
@@ -249,6 +250,19 @@ def _observation(
             for value in item.supporting
         ]
     return resource
+
+
+def _ranges(item: ResultItem) -> list[Resource]:
+    """referenceRange: the GLI-2017 LLN-ULN (or the lab's LLN), then the lab's LLN from its own set."""
+    ranges: list[Resource] = []
+    if item.low is not None:
+        first: Resource = {"low": _quantity(item.low)}
+        if item.high is not None:
+            first["high"] = _quantity(item.high)
+        first["text"] = item.range_text or LLN_TEXT
+        ranges.append(first)
+    ranges.extend({"low": _quantity(low), "text": text} for low, text in item.other_ranges)
+    return ranges
 
 
 def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
