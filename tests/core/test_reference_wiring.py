@@ -157,3 +157,19 @@ def test_a_plausible_value_is_not_accused(tables: Tables):
     outcome = _run(tables, _swapped(18.0, 2.77, "mL/min/mm[Hg]"))
 
     assert "UNIT_MISLABEL_PROBABLE" not in {f.code for f in outcome.findings}
+
+
+def test_check_report_shows_gli_beside_the_lab(tables: Tables):
+    """check's text shows GLI-2017 predicted, LLN, z-score and band next to the lab's predicted and LLN."""
+    from bridge.display.check_report import outcome_text
+
+    outcome = process((SAMPLES / "01-healthy-adult.json").read_bytes(), "01-healthy-adult.json", tables)
+    lines = outcome_text(outcome, tables, "traditional").splitlines()
+    gli = next(line for line in lines if line.strip().startswith("DLCO GLI-2017"))
+    lab = next(line for line in lines if line.strip().startswith("DLCO lab"))
+
+    # source: R package pft vignette (same man, 45 y, 178 cm): predicted 30.3, LLN 23.4 mL/min/mmHg
+    assert "predicted 30.3 mL/min/mmHg" in gli and "LLN 23.4 mL/min/mmHg" in gli
+    assert "(normal)" in gli and "z -0.2" in gli
+    # the lab's 10.15 mmol/min/kPa x 2.987 = 30.32 mL/min/mmHg  # source: ERS/ATS 2017 conversion factor
+    assert "predicted 30.32 mL/min/mmHg" in lab
