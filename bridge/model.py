@@ -294,6 +294,11 @@ class ReferenceValue(Frozen):
     impairment: Literal["normal", "mild", "moderate", "severe"]
     flag: Literal["L", "N", "H"]
 
+    @property
+    def band(self) -> str:
+        """The band as people read it: the impairment, or "above the ULN" (the bands grade low values only)."""
+        return "above the ULN" if self.flag == "H" else self.impairment
+
 
 class Derived(Frozen):
     """Values the bridge recomputed from the record, in canonical units."""

@@ -90,7 +90,7 @@ def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list
             lines.append(
                 f"    {label + ' GLI-2017':<32}predicted {_brief(ref.predicted, tables, units)}  "
                 f"LLN {_brief(ref.lln, tables, units)}  ULN {_brief(ref.uln, tables, units)}  "
-                f"z {ref.z_score:.2f} ({ref.impairment})  {ref.percent_predicted.text()} %  [{basis}]"
+                f"z {ref.z_score:.2f} ({ref.band})  {ref.percent_predicted.text()} %  [{basis}]"
             )
         lab_predicted = getattr(pred, name) if pred is not None else None
         lab_lln = getattr(pred.lower_limits, name) if pred is not None and pred.lower_limits is not None else None

@@ -311,7 +311,7 @@ def build_content(
             Quantity(value=round(reference.z_score, 2), unit=Z_SCORE_UNIT, decimals=2),
             derived_from=(*compared, f"{name}_predicted"),
             computed=True,
-            notes=(f"{reference.reference_set} z-score: {reference.impairment}, from the {_basis(reference)}.",),
+            notes=(f"{reference.reference_set} z-score: {reference.band}, from the {_basis(reference)}.",),
         )
     # The lab's own predicted values (another reference set): kept under keys of their own.
     if pred is not None:
@@ -376,7 +376,7 @@ def _reference_note(reference: ReferenceValue, show: Callable[[Quantity], Quanti
     return (
         f"{reference.reference_set}: predicted {_text(show(reference.predicted))}, "
         f"LLN {_text(show(reference.lln))}, ULN {_text(show(reference.uln))}, z-score {reference.z_score:.2f} "
-        f"({reference.impairment}), {reference.percent_predicted.text()} % predicted, "
+        f"({reference.band}), {reference.percent_predicted.text()} % predicted, "
         f"from the {_basis(reference)}; computed by {BRIDGE_NAME}."
     )
 
@@ -463,7 +463,7 @@ def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity]
     if pred is not None and pred.reference_set:
         notes.append(f"Reference values: {pred.reference_set}.")
     graded = [
-        f"{label} z {r.z_score:.2f} ({r.impairment})"
+        f"{label} z {r.z_score:.2f} ({r.band})"
         for label, r in (("DLCO", d.reference_dlco), ("KCO", d.reference_kco), ("VA", d.reference_va))
         if r is not None
     ]

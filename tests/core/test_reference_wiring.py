@@ -173,3 +173,12 @@ def test_check_report_shows_gli_beside_the_lab(tables: Tables):
     assert "(normal)" in gli and "z -0.2" in gli
     # the lab's 10.15 mmol/min/kPa x 2.987 = 30.32 mL/min/mmHg  # source: ERS/ATS 2017 conversion factor
     assert "predicted 30.32 mL/min/mmHg" in lab
+
+
+def test_a_value_above_the_uln_is_flagged_h_and_not_called_normal(tables: Tables):
+    """DLCO 74.7 mL/min/mmHg for the vignette man (predicted 30.3, ULN 38.3): flag H, band "above the ULN"."""
+    # source: R package pft vignette, ULN 38.3 mL/min/mmHg; HL7 table 0078 H above the upper limit
+    reference = _run(tables, _swapped(74.7, 11.5, "mL/min/mm[Hg]")).derived.reference_dlco
+
+    assert reference is not None
+    assert ("H", "above the ULN") == (reference.flag, reference.band)
