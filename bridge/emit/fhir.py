@@ -333,8 +333,11 @@ def _summary(content: ReportContent) -> str:
     value = f"DLCO {dlco.quantity.text()} {dlco.quantity.unit}"
     if dlco.low is None or dlco.flag is None:
         return f"{value}; no lower limit of normal reported."
+    source = f"; {dlco.range_text}" if dlco.range_text else ""  # which reference set the limit comes from
+    if dlco.flag == "H" and dlco.high is not None:
+        return f"{value}, above the upper limit of normal ({dlco.high.text()}{source})."
     relation = "below" if dlco.flag == "L" else "at or above"
-    return f"{value}, {relation} the lower limit of normal ({dlco.low.text()})."
+    return f"{value}, {relation} the lower limit of normal ({dlco.low.text()}{source})."
 
 
 # ---------- Patient ----------

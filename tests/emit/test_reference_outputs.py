@@ -126,3 +126,13 @@ def test_outside_the_equations_nothing_gli_and_the_reason_in_the_report(tables: 
     assert [] == _observations(bundle, "DLCO-Z") + _observations(bundle, "19910-9")
     assert "REFERENCE_NOT_COMPUTED" in report["conclusion"]
     assert "REFERENCE_NOT_COMPUTED" in er7
+
+
+def test_report_summary_names_the_limit_and_its_set(tables: Tables):
+    """The DiagnosticReport's first line says DLCO is below the GLI-2017 LLN (22.0 < 23.4) and names the set."""
+    # source: R package pft vignette, LLN 23.4 mL/min/mmHg for this man
+    bundle, _ = _outputs(_vignette_man(), tables)
+    report = next(e["resource"] for e in bundle["entry"] if e["resource"]["resourceType"] == "DiagnosticReport")
+    first = report["conclusion"].splitlines()[0]
+
+    assert first.startswith("DLCO 22.0 mL/min/mm[Hg], below the lower limit of normal (23.4; GLI-2017")
