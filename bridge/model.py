@@ -276,6 +276,30 @@ class ManoeuvreAssessment(Frozen):
     grade_reasons: tuple[str, ...] = ()
 
 
+class ReferenceValue(Frozen):
+    """One result compared with a reference set: predicted, limits of normal, z-score, band (canonical units).
+
+    ``compared`` is the value the z-score and per cent predicted rest on: the measured value, or
+    the value adjusted to sea level when a pressure adjustment applies (``basis`` says which).
+    """
+
+    reference_set: Text
+    basis: Literal["measured", "pressure_adjusted"]
+    compared: Quantity
+    predicted: Quantity
+    lln: Quantity
+    uln: Quantity
+    z_score: float = Field(allow_inf_nan=False)
+    percent_predicted: Quantity
+    impairment: Literal["normal", "mild", "moderate", "severe"]
+    flag: Literal["L", "N", "H"]
+
+    @property
+    def band(self) -> str:
+        """The band as people read it: the impairment, or "above the ULN" (the bands grade low values only)."""
+        return "above the ULN" if self.flag == "H" else self.impairment
+
+
 class Derived(Frozen):
     """Values the bridge recomputed from the record, in canonical units."""
 
@@ -301,6 +325,12 @@ class Derived(Frozen):
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None
     va_percent_predicted: Quantity | None = None
+    # GLI-2017 reference values of the results (bridge.science.reference); None where there is no
+    # result, and all None with ``reference_not_computed`` saying why when the equations do not apply.
+    reference_dlco: ReferenceValue | None = None
+    reference_kco: ReferenceValue | None = None
+    reference_va: ReferenceValue | None = None
+    reference_not_computed: str | None = None
 
 
 OutputKind = Literal["fhir", "hl7"]

@@ -11,7 +11,7 @@ from typing import Any
 from pydantic import BaseModel
 
 from bridge.display.unit_text import for_people
-from bridge.model import Finding, Outcome, Quantity, Severity
+from bridge.model import Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
@@ -43,9 +43,9 @@ _DERIVED_LABELS = (
     ("kco_pressure_adjusted", "KCO adjusted to sea level"),
     ("dlco_from_manoeuvres", "DLCO from manoeuvre gas data"),
     ("va_from_manoeuvres", "VA from manoeuvre gas data"),
-    ("dlco_percent_predicted", "DLCO % predicted"),
-    ("kco_percent_predicted", "KCO % predicted"),
-    ("va_percent_predicted", "VA % predicted"),
+    ("dlco_percent_predicted", "DLCO % of the lab's predicted"),
+    ("kco_percent_predicted", "KCO % of the lab's predicted"),
+    ("va_percent_predicted", "VA % of the lab's predicted"),
 )
 
 
@@ -78,6 +78,38 @@ def _row(label: str, quantity: Quantity | None, tables: Tables, units: UnitSyste
     return [] if quantity is None else [f"    {label:<32}{_text(quantity, tables, units)}"]
 
 
+def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list[str]:
+    """GLI-2017 predicted, LLN, ULN, z-score and band of each result, the lab's own values beside them."""
+    d, pred = outcome.derived, outcome.session.results.predicted
+    lab_set = pred.reference_set or "reference set not stated" if pred is not None else None
+    lines = ["  reference values (GLI-2017 computed by dlco-bridge" + (f"; the lab's: {lab_set})" if lab_set else ")")]
+    for name, label in (("dlco", "DLCO"), ("kco", "KCO"), ("va", "VA")):
+        ref: ReferenceValue | None = getattr(d, f"reference_{name}")
+        if ref is not None:
+            basis = "adjusted to sea level" if ref.basis == "pressure_adjusted" else "measured"
+            lines.append(
+                f"    {label + ' GLI-2017':<32}predicted {_brief(ref.predicted, tables, units)}  "
+                f"LLN {_brief(ref.lln, tables, units)}  ULN {_brief(ref.uln, tables, units)}  "
+                f"z {ref.z_score:.2f} ({ref.band})  {ref.percent_predicted.text()} %  [{basis}]"
+            )
+        lab_predicted = getattr(pred, name) if pred is not None else None
+        lab_lln = getattr(pred.lower_limits, name) if pred is not None and pred.lower_limits is not None else None
+        if lab_predicted is not None or lab_lln is not None:
+            parts = [f"predicted {_brief(lab_predicted, tables, units)}"] if lab_predicted is not None else []
+            parts += [f"LLN {_brief(lab_lln, tables, units)}"] if lab_lln is not None else []
+            percent = getattr(d, f"{name}_percent_predicted")
+            parts += [f"{percent.text()} %"] if percent is not None else []
+            lines.append(f"    {label + ' lab':<32}" + "  ".join(parts))
+    if d.reference_not_computed is not None:
+        lines.append(f"    GLI-2017 not computed: {d.reference_not_computed}")
+    return lines if len(lines) > 1 else []
+
+
+def _brief(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
+    q = shown(quantity, tables, units)
+    return f"{q.text()} {for_people(q.unit)}"
+
+
 def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     """A readable report of one outcome: record, recomputed values, findings."""
     s, d = outcome.session, outcome.derived
@@ -91,13 +123,7 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     ]
     for name, label in _RESULT_LABELS:
         lines += _row(label, getattr(s.results, name), tables, units)
-    pred = s.results.predicted
-    if pred is not None:
-        lines.append(f"  predicted ({pred.reference_set or 'reference set not stated'})")
-        for name, label in (("dlco", "DLCO"), ("kco", "KCO"), ("va", "VA")):
-            lines += _row(label, getattr(pred, name), tables, units)
-            if pred.lower_limits is not None:
-                lines += _row(f"{label} LLN", getattr(pred.lower_limits, name), tables, units)
+    lines += _reference_rows(outcome, tables, units)
     lines.append("  conditions")
     for name, label in _CONDITION_LABELS:
         lines += _row(label, getattr(s.conditions, name), tables, units)

@@ -237,8 +237,9 @@ def _observation(
         resource["interpretation"] = [{"coding": [_coding(INTERPRETATION, item.flag, _FLAG_DISPLAY[item.flag])]}]
     if item.notes or context.correction:
         resource["note"] = [{"text": text} for text in _item_notes(item, context)]
-    if item.low is not None:
-        resource["referenceRange"] = [{"low": _quantity(item.low), "text": LLN_TEXT}]
+    ranges = _ranges(item)
+    if ranges:
+        resource["referenceRange"] = ranges
     if item.derived_from:
         resource["derivedFrom"] = [{"reference": full_urls[key]} for key in item.derived_from]
     if item.supporting:
@@ -249,6 +250,19 @@ def _observation(
             for value in item.supporting
         ]
     return resource
+
+
+def _ranges(item: ResultItem) -> list[Resource]:
+    """referenceRange: the GLI-2017 LLN-ULN (or the lab's LLN), then the lab's LLN from its own set."""
+    ranges: list[Resource] = []
+    if item.low is not None:
+        first: Resource = {"low": _quantity(item.low)}
+        if item.high is not None:
+            first["high"] = _quantity(item.high)
+        first["text"] = item.range_text or LLN_TEXT
+        ranges.append(first)
+    ranges.extend({"low": _quantity(low), "text": text} for low, text in item.other_ranges)
+    return ranges
 
 
 def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
@@ -319,8 +333,11 @@ def _summary(content: ReportContent) -> str:
     value = f"DLCO {dlco.quantity.text()} {dlco.quantity.unit}"
     if dlco.low is None or dlco.flag is None:
         return f"{value}; no lower limit of normal reported."
+    source = f"; {dlco.range_text}" if dlco.range_text else ""  # which reference set the limit comes from
+    if dlco.flag == "H" and dlco.high is not None:
+        return f"{value}, above the upper limit of normal ({dlco.high.text()}{source})."
     relation = "below" if dlco.flag == "L" else "at or above"
-    return f"{value}, {relation} the lower limit of normal ({dlco.low.text()})."
+    return f"{value}, {relation} the lower limit of normal ({dlco.low.text()}{source})."
 
 
 # ---------- Patient ----------

@@ -22,7 +22,8 @@ Decisions:
   trailing ``...``; identifiers, codes and names are never truncated: an over-long one raises
   :class:`~bridge.errors.InvalidField` (record data), :class:`~bridge.errors.ConfigError`
   (site settings) or :class:`~bridge.errors.MappingError` (code tables).
-* OBX-7 uses the v2.5.1 form ``>lower`` for a lower limit of normal with no upper limit
+* OBX-7 is ``LLN-ULN`` for a GLI-2017 range (both limits known); else it uses the v2.5.1 form
+  ``>lower`` for a lower limit of normal with no upper limit
   (# from memory: OBX-7 forms "lower-upper", "> lower", "< upper"). The LLN itself counts as
   normal (flag N), which ``>`` states a hair too strictly; no ``>=`` form exists in 2.5.1.
 * PID-5 is required in 2.5.1: a record without names gets ``^^^^^^U`` (name type
@@ -237,7 +238,12 @@ def _obx(set_id: int, item: ResultItem, status: str, observed: str, performer: s
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _unit_text(quantity.unit, item.key)
     coded = _coded(item.code, item.key)
-    low = f">{numeric_text(low_q.text())}" if low_q is not None else ""
+    # OBX-7 "LLN-ULN" when both limits are known (GLI-2017), ">LLN" for a lower limit alone; the
+    # reference set and the lab's own limit are named in the item's NTEs (build_content).
+    if low_q is not None and item.high is not None:
+        low = f"{numeric_text(low_q.text())}-{numeric_text(item.high.text())}"
+    else:
+        low = f">{numeric_text(low_q.text())}" if low_q is not None else ""
     flag = item.flag or ""  # HL7 table 0078
     # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
     # (HL7 table 0085), -14 date/time of the observation, -23 performing organisation (XON).

@@ -2,7 +2,9 @@
 
 Owns: choosing which quantities of an outcome become observations, their code, their value
 in the destination's units (the lab's own digits when it reported in those units), the
-reference range (lower limit of normal), the abnormal flag, what a derived value was derived
+reference range (GLI-2017 LLN-ULN, else the lab's lower limit of normal), the abnormal flag,
+the GLI-2017 predicted value, per cent predicted and z-score beside the lab's own predicted
+values (each labelled with its reference set), what a derived value was derived
 from, and the notes (findings, adjustments). Both the FHIR and the HL7 v2 emitters render this
 list, so the two outputs always carry the same content. Pure.
 """
@@ -16,7 +18,7 @@ from datetime import datetime
 from types import MappingProxyType
 from typing import Literal
 
-from bridge.model import Finding, Outcome, Quantity, Severity
+from bridge.model import Derived, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Code, Tables
@@ -27,7 +29,7 @@ COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 # The one place that says the emitted bytes changed: bump it with every change of what the
 # same input produces (codes, values, identifiers, layout). It is part of the HL7 control id
 # (MSH-10), so a receiver that drops repeated MSH-10s still takes the newer output.
-OUTPUT_REVISION = 2
+OUTPUT_REVISION = 3
 # A placeholder base for the site's own identifier and code systems (RFC 2606 reserves
 # ``.example``): every site sets ``emit.system_base`` to a URL it controls.
 DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
@@ -79,6 +81,11 @@ class EmitContext:
 
 
 Flag = Literal["L", "H", "N"]
+# UCUM annotation for a z-score: a dimensionless number.  # source: UCUM, curly-brace annotations
+Z_SCORE_UNIT = "{Zscore}"
+GLI_SOURCE = "GLI-2017 (Stanojevic et al., Eur Respir J 2017;50:1700010, corrected 2020)"
+GLI_RANGE_TEXT = "GLI-2017 LLN-ULN (5th-95th percentile)"
+LAB_RANGE_TEXT = "LLN (5th percentile)"
 HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
 
 
@@ -110,6 +117,10 @@ class ResultItem:
     quantity: Quantity
     low: Quantity | None = None  # lower limit of normal, same unit
     flag: Flag | None = None
+    high: Quantity | None = None  # upper limit of normal (GLI-2017 only), same unit
+    range_text: str | None = None  # what the range is and which reference set it comes from
+    # The lab's own lower limit from another reference set, kept beside the GLI-2017 range: (LLN, text).
+    other_ranges: tuple[tuple[Quantity, str], ...] = ()
     derived_from: tuple[str, ...] = ()
     computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
     notes: tuple[str, ...] = ()
@@ -153,6 +164,8 @@ def build_content(
                 targets[code] = hemoglobin_unit
 
     def show(q: Quantity) -> Quantity:
+        if q.unit == Z_SCORE_UNIT:
+            return q  # a plain number in every unit system
         target = targets.get(q.unit)
         if target is None:
             target = targets[q.unit] = cat.display_unit(cat.units[q.unit].dimension, units)
@@ -183,6 +196,8 @@ def build_content(
         path: str = "",
         notes: tuple[str, ...] = (),
         replaces_lab_value: bool = False,
+        reference: ReferenceValue | None = None,
+        reference_set: str | None = None,
     ) -> None:
         """One item; ``replaces_lab_value``: the findings at ``path`` are about the lab's value,
         which this recomputed value replaces, so they are carried as notes but do not question it."""
@@ -194,20 +209,50 @@ def build_content(
             paths[key] = path
         shown = show(q)
         flag: Flag | None = None
-        low_shown = None
-        if low is not None:
+        low_shown = high_shown = None
+        range_text = None
+        others: tuple[tuple[Quantity, str], ...] = ()
+        range_notes: tuple[str, ...] = ()
+        lab_range = f"{LAB_RANGE_TEXT}, {reference_set or 'reference set not named by the lab'}"
+        if reference is not None:  # GLI-2017: the range and the flag from the z-score; the lab's LLN beside it
+            low_shown, high_shown, flag = show(reference.lln), show(reference.uln), reference.flag
+            range_text = GLI_RANGE_TEXT
+            range_notes = (_reference_note(reference, show),)
+            if low is not None:
+                others = ((show(low), lab_range),)
+                range_notes += (f"{lab_range}: {_text(show(low))}, as reported by the lab.",)
+        elif low is not None:
             low_shown = show(low)
             flag = "L" if shown.value < low_shown.value else "N"
+            range_text = lab_range if reference_set else LAB_RANGE_TEXT
         found = by_path.get(path) if path and by_path else None
         extra = tuple(found) if found else ()
         if computed and not any(BRIDGE_NAME in note for note in notes + extra):
             extra += (COMPUTED_NOTE,)  # both outputs say which values the lab did not report
-        items.append(ResultItem(key, codes[key], shown, low_shown, flag, derived_from, computed, notes + extra))
+        items.append(
+            ResultItem(
+                key,
+                codes[key],
+                shown,
+                low_shown,
+                flag,
+                derived_from=derived_from,
+                computed_here=computed,
+                notes=notes + extra + range_notes,
+                high=high_shown,
+                range_text=range_text,
+                other_ranges=others,
+            )
+        )
 
-    add("dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco")
-    add("va", r.va, low=lln.va if lln else None, path="results.va")
+    lab_set = pred.reference_set if pred is not None else None
+    ref = {"dlco": d.reference_dlco, "kco": d.reference_kco, "va": d.reference_va}
+    add(
+        "dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco", reference=ref["dlco"], reference_set=lab_set
+    )
+    add("va", r.va, low=lln.va if lln else None, path="results.va", reference=ref["va"], reference_set=lab_set)
     if r.kco is not None:
-        add("kco", r.kco, low=lln.kco if lln else None, path="results.kco")
+        add("kco", r.kco, low=lln.kco if lln else None, path="results.kco", reference=ref["kco"], reference_set=lab_set)
     else:
         add(
             "kco",
@@ -215,6 +260,8 @@ def build_content(
             low=lln.kco if lln else None,
             derived_from=("dlco", "va"),
             computed=True,
+            reference=ref["kco"],
+            reference_set=lab_set,
         )
     if d.dlco_hb_adjusted is not None:
         # The bridge's own Cotes adjustment whenever Hb is known: a lab's value (possibly the
@@ -244,21 +291,61 @@ def build_content(
         computed=True,
         notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), PIO2 = FIO2 x (PB - 47), computed by dlco-bridge",),
     )
+    # GLI-2017, computed here: predicted, per cent predicted and z-score of each result.
+    for name in ("dlco", "kco", "va"):
+        reference = ref[name]
+        if reference is None:
+            continue
+        compared = _compared_from(name, reference, d)
+        note = (f"Reference set {GLI_SOURCE}.",)
+        add(f"{name}_predicted", reference.predicted, computed=True, notes=note)
+        add(
+            f"{name}_percent_predicted",
+            reference.percent_predicted,
+            derived_from=(*compared, f"{name}_predicted"),
+            computed=True,
+            notes=note,
+        )
+        add(
+            f"{name}_z_score",
+            Quantity(value=round(reference.z_score, 2), unit=Z_SCORE_UNIT, decimals=2),
+            derived_from=(*compared, f"{name}_predicted"),
+            computed=True,
+            notes=(f"{reference.reference_set} z-score: {reference.band}, from the {_basis(reference)}.",),
+        )
+    # The lab's own predicted values (another reference set): kept under keys of their own.
     if pred is not None:
-        add("dlco_predicted", pred.dlco)
-        add("kco_predicted", pred.kco)
-        add("va_predicted", pred.va)
+        lab_note = (f"Reference set {lab_set or 'not named by the lab'}: the lab's predicted value, as reported.",)
+        add("lab_dlco_predicted", pred.dlco, notes=lab_note)
+        add("lab_kco_predicted", pred.kco, notes=lab_note)
+        add("lab_va_predicted", pred.va, notes=lab_note)
+    lab_pct_note = (
+        f"Per cent of the lab's predicted value (reference set {lab_set or 'not named'}), computed by {BRIDGE_NAME}.",
+    )
     # Per cent predicted compares the value adjusted to sea level when there is one (S17).
     sea_level = ("dlco_pressure_adjusted",) if d.dlco_pressure_adjusted is not None else ("dlco",)
     add(
-        "dlco_percent_predicted",
+        "lab_dlco_percent_predicted",
         d.dlco_percent_predicted,
-        derived_from=(*sea_level, "dlco_predicted"),
+        derived_from=(*sea_level, "lab_dlco_predicted"),
         computed=True,
+        notes=lab_pct_note,
     )
     kco_from = ("kco", "barometric_pressure") if d.kco_pressure_adjusted is not None else ("kco",)
-    add("kco_percent_predicted", d.kco_percent_predicted, derived_from=(*kco_from, "kco_predicted"), computed=True)
-    add("va_percent_predicted", d.va_percent_predicted, derived_from=("va", "va_predicted"), computed=True)
+    add(
+        "lab_kco_percent_predicted",
+        d.kco_percent_predicted,
+        derived_from=(*kco_from, "lab_kco_predicted"),
+        computed=True,
+        notes=lab_pct_note,
+    )
+    add(
+        "lab_va_percent_predicted",
+        d.va_percent_predicted,
+        derived_from=("va", "lab_va_predicted"),
+        computed=True,
+        notes=lab_pct_note,
+    )
     add("tlc", r.tlc)
     add("barometric_pressure", c.barometric_pressure)
     blood = {
@@ -282,6 +369,31 @@ def build_content(
 
 def _text(q: Quantity) -> str:
     return f"{q.text()} {q.unit}"
+
+
+def _reference_note(reference: ReferenceValue, show: Callable[[Quantity], Quantity]) -> str:
+    """The GLI-2017 values of a result in one sentence, in the destination's units."""
+    return (
+        f"{reference.reference_set}: predicted {_text(show(reference.predicted))}, "
+        f"LLN {_text(show(reference.lln))}, ULN {_text(show(reference.uln))}, z-score {reference.z_score:.2f} "
+        f"({reference.band}), {reference.percent_predicted.text()} % predicted, "
+        f"from the {_basis(reference)}; computed by {BRIDGE_NAME}."
+    )
+
+
+def _compared_from(name: str, reference: ReferenceValue, d: Derived) -> tuple[str, ...]:
+    """The items a GLI-2017 value rests on: the result, or its value adjusted to sea level."""
+    if reference.basis == "measured":
+        return (name,)
+    if name == "dlco" and d.dlco_pressure_adjusted is not None:
+        return ("dlco_pressure_adjusted",)
+    return (name, "barometric_pressure")
+
+
+def _basis(reference: ReferenceValue) -> str:
+    if reference.basis == "measured":
+        return "measured value"
+    return "measured value adjusted to sea level"
 
 
 def _questioned(items: list[ResultItem], paths: dict[str, str], errors: list[Finding]) -> list[ResultItem]:
@@ -350,6 +462,13 @@ def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity]
     pred = s.results.predicted
     if pred is not None and pred.reference_set:
         notes.append(f"Reference values: {pred.reference_set}.")
+    graded = [
+        f"{label} z {r.z_score:.2f} ({r.band})"
+        for label, r in (("DLCO", d.reference_dlco), ("KCO", d.reference_kco), ("VA", d.reference_va))
+        if r is not None
+    ]
+    if graded:
+        notes.append(f"Reference values computed by {BRIDGE_NAME}: {GLI_SOURCE}; " + ", ".join(graded) + ".")
     notes.extend(_finding_note(f, say) for f in outcome.findings if f.path not in attached)
     return tuple(notes)
 

@@ -14,6 +14,7 @@ from collections.abc import Callable, Iterator
 from bridge.model import Derived, Finding, Quantity, Session, Severity
 from bridge.science.derive import age_in_years, gas_conditions, hb_factor
 from bridge.science.physiology import COHB_BASELINE_PERCENT
+from bridge.science.reference import Lms, Parameter
 from bridge.tables import Tables
 
 # Relative difference tolerated between a reported and a recomputed value (rounding of the
@@ -30,6 +31,12 @@ BREATH_HOLD_TARGET_S = (8.0, 12.0)  # source: ATS/ERS 2005 Table 6 (10 +/- 2 s)
 # relabelled value well inside what is seen.  # common practice (no published threshold)
 PERCENT_PREDICTED_PLAUSIBLE = (30.0, 160.0)
 PERCENT_PREDICTED_RELABELLED = (40.0, 140.0)
+# Unit-mislabel evidence from the GLI-2017 equations when the lab sent no predicted value: a
+# z-score this far out has a probability below 1e-6 in the reference population, while the value
+# in the other unit system lies within the range that healthy and diseased values reach.
+# common practice (no published threshold)
+MISLABEL_Z = 5.0
+RELABELLED_Z = 3.0
 LOW_PRESSURE_MMHG = 700.0  # flag the altitude adjustment below this PB (about 700 m)  # common practice
 
 Rule = Callable[[Session, Derived, Tables], Iterator[Finding]]
@@ -171,6 +178,7 @@ def _mislabel_evidence(
         relabelled_low, relabelled_high = PERCENT_PREDICTED_RELABELLED
         if not low <= percent <= high and any(relabelled_low <= p <= relabelled_high for p in percents):
             yield f"it is {percent:.0f} % of the lab's own predicted value", {}, False
+    yield from _reference_evidence(session, derived, tables, path, factor)
     bound = tables.plausibility.bounds.get(path)
     relabelled = (value.value / factor, value.value * factor)
     if (
@@ -183,6 +191,34 @@ def _mislabel_evidence(
             {"stated": value, "low": _bound(bound.low, bound.unit), "high": _bound(bound.high, bound.unit)},
             False,
         )
+
+
+def _reference_evidence(
+    session: Session, derived: Derived, tables: Tables, path: str, factor: float
+) -> Iterator[tuple[str, dict[str, Quantity], bool]]:
+    """The GLI-2017 predicted value as yardstick: far outside what the equations allow, normal in the other unit."""
+    is_dlco = path == "results.dlco"
+    reference = derived.reference_dlco if is_dlco else derived.reference_kco
+    parameter = Parameter.DLCO if is_dlco else Parameter.KCO_TRAD
+    if reference is None or abs(reference.z_score) <= MISLABEL_Z:
+        return
+    patient = session.patient
+    lms = tables.reference.lms(parameter, patient.sex, age_in_years(session), patient.height.value)
+    if not isinstance(lms, Lms):
+        return
+    compared = reference.compared.value
+    for relabelled in (compared / factor, compared * factor):
+        z = lms.z_score(relabelled)
+        if isinstance(z, float) and abs(z) < RELABELLED_Z:
+            ratio = compared / reference.predicted.value
+            yield (
+                f"it is {ratio:.2f}x the {reference.reference_set} predicted value {{gli_predicted}} "
+                f"(z-score {reference.z_score:.1f}, beyond what the equations allow), "
+                f"while in the other unit system its z-score would be {z:.1f}",
+                {"gli_predicted": reference.predicted},
+                True,
+            )
+            return
 
 
 def check_recomputed(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
@@ -421,6 +457,18 @@ def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterato
         )
 
 
+def check_reference(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    """Say why no GLI-2017 reference values were computed (sex, age, height, a value that is not positive)."""
+    if derived.reference_not_computed is None:
+        return
+    yield _finding(
+        "REFERENCE_NOT_COMPUTED",
+        Severity.INFO,
+        "patient",
+        f"no GLI-2017 predicted values, limits of normal or z-scores: {derived.reference_not_computed}.",
+    )
+
+
 DEFAULT_RULES: tuple[Rule, ...] = (
     check_unit_mislabel,
     check_kco,
@@ -431,6 +479,7 @@ DEFAULT_RULES: tuple[Rule, ...] = (
     check_carboxyhaemoglobin,
     check_pressure,
     check_quality,
+    check_reference,
 )
 
 

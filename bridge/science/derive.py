@@ -3,7 +3,8 @@
 Owns: turning the record's quantities into the plain numbers ``physiology`` and ``quality``
 work on, and their answers back into quantities (canonical units, see ``bridge.model``):
 KCO, Hb-, COHb- and pressure-adjusted DLCO, per-manoeuvre VA and DLCO from the gas data,
-grades and the reported mean. Inputs must be normalised first. Pure.
+grades and the reported mean, and the GLI-2017 reference values of DLCO, KCO and VA (the
+equations are ``tables.reference``). Inputs must be normalised first. Pure.
 """
 
 from __future__ import annotations
@@ -12,9 +13,19 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from bridge.model import Derived, Manoeuvre, ManoeuvreAssessment, Quantity, Session, Sex, number_text
+from bridge.model import (
+    Derived,
+    Manoeuvre,
+    ManoeuvreAssessment,
+    Quantity,
+    ReferenceValue,
+    Session,
+    Sex,
+    number_text,
+)
 from bridge.science import physiology as phys
 from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
+from bridge.science.reference import UNITS, Lms, OutsideRange, Parameter, ReferenceEquations, abnormal_flag, impairment
 from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
@@ -22,6 +33,8 @@ DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"
 # Room temperature assumed for ATPD gas when the export does not say.  # common practice
 DEFAULT_ROOM_TEMPERATURE_C = 23.0
+# The name outputs give the reference set of bridge.science.reference (Stanojevic et al., ERJ 2017;50:1700010).
+REFERENCE_SET = "GLI-2017"
 
 
 @dataclass(frozen=True, slots=True)
@@ -61,6 +74,7 @@ def derive(session: Session, tables: Tables) -> Derived:
     pressure = _pressure_factor(session, gas)
     dlco_at_sea_level = _adjusted(measured, pressure, tables.units)
     kco_at_sea_level = _adjusted(session.results.kco, pressure, tables.units)
+    kco = _kco(session)
     dlco_from: Quantity | None = None
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
@@ -85,7 +99,7 @@ def derive(session: Session, tables: Tables) -> Derived:
         va_from = _mean_of(computed, selection.indices, 0, "L")
     return Derived(
         age_years=round(age, 2),
-        kco=_kco(session),
+        kco=kco,
         dlco_hb_adjusted=_scaled(measured, hb_factor(session, age)),
         dlco_pressure_adjusted=dlco_at_sea_level,
         kco_pressure_adjusted=kco_at_sea_level,
@@ -102,6 +116,77 @@ def derive(session: Session, tables: Tables) -> Derived:
         dlco_percent_predicted=_percent(dlco_at_sea_level or measured, _pred(session, "dlco")),
         kco_percent_predicted=_percent(kco_at_sea_level or session.results.kco, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
+        **_references(session, age, tables.reference, dlco_at_sea_level, kco, pressure, tables.units),
+    )
+
+
+def _references(
+    session: Session,
+    age: float,
+    equations: ReferenceEquations,
+    dlco_at_sea_level: Quantity | None,
+    kco: Quantity | None,
+    pressure: float | None,
+    catalogue: UnitCatalogue,
+) -> dict[str, ReferenceValue | str | None]:
+    """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none.
+
+    ERS/ATS 2017 DLCO standard and Stanojevic et al. 2017: the measured DLCO and KCO are adjusted
+    to sea level (standard PIO2) before they are compared with the predicted values.
+    """
+    r = session.results
+    reported_kco: Quantity | None
+    if r.kco is not None:
+        reported_kco, kco_at_sea_level = r.kco, _adjusted(r.kco, pressure, catalogue)
+    else:  # DLCO/VA computed here follows DLCO: adjusted exactly when DLCO is
+        reported_kco, kco_at_sea_level = kco, (_scaled(kco, pressure) if dlco_at_sea_level is not None else None)
+    wanted = (
+        ("reference_dlco", Parameter.DLCO, "DLCO", r.dlco, dlco_at_sea_level),
+        ("reference_kco", Parameter.KCO_TRAD, "KCO", reported_kco, kco_at_sea_level),
+        ("reference_va", Parameter.VA, "VA", r.va, None),
+    )
+    fields: dict[str, ReferenceValue | str | None] = {}
+    reasons: list[str] = []
+    for name, parameter, label, value, adjusted in wanted:
+        if value is None:
+            continue
+        lms = equations.lms(parameter, session.patient.sex, age, session.patient.height.value)
+        if isinstance(lms, OutsideRange):  # the person is outside the equations: the same reason for each
+            reasons.append(lms.reason)
+            continue
+        found = _reference(parameter, lms, value, adjusted)
+        if isinstance(found, OutsideRange):
+            reasons.append(f"{label}: {found.reason}")
+        else:
+            fields[name] = found
+    if reasons:
+        fields["reference_not_computed"] = "; ".join(dict.fromkeys(reasons))
+    return fields
+
+
+def _reference(
+    parameter: Parameter, lms: Lms, value: Quantity, adjusted: Quantity | None
+) -> ReferenceValue | OutsideRange:
+    compared = adjusted or value
+    z = lms.z_score(compared.value)
+    percent = lms.percent_predicted(compared.value)
+    if isinstance(z, OutsideRange):
+        return z
+    if isinstance(percent, OutsideRange):
+        return percent
+    unit = UNITS[parameter]
+    decimals = 1 if parameter is Parameter.DLCO else 2
+    return ReferenceValue(
+        reference_set=REFERENCE_SET,
+        basis="measured" if adjusted is None else "pressure_adjusted",
+        compared=compared,
+        predicted=Quantity(value=lms.predicted, unit=unit, decimals=decimals),
+        lln=Quantity(value=lms.lln, unit=unit, decimals=decimals),
+        uln=Quantity(value=lms.uln, unit=unit, decimals=decimals),
+        z_score=z,
+        percent_predicted=Quantity(value=percent, unit="%", decimals=0),
+        impairment=impairment(z).value,
+        flag=abnormal_flag(z),
     )
 
 

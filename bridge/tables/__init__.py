@@ -1,8 +1,9 @@
 """The tables in ``mappings/`` as typed values: what every core step receives (pure).
 
 Owns: the :class:`Tables` bundle. Each table's text is parsed by one module here (``units``,
-``grades``, ``plausibility``, ``codes``, through the one TOML error path in ``toml``); reading
-the files from disk is ``bridge.tables.files``, the only module of this package that does I/O.
+``grades``, ``plausibility``, ``codes``, through the one TOML error path in ``toml``; the GLI-2017
+reference equations by ``bridge.science.reference``); reading the files from disk is
+``bridge.tables.files``, the only module of this package that does I/O.
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from bridge.science.quality import GradeTable
+from bridge.science.reference import ReferenceEquations
 from bridge.science.units import UnitCatalogue
 from bridge.tables.codes import Code, CodeTable
 from bridge.tables.plausibility import Bound, Plausibility
@@ -25,3 +27,4 @@ class Tables:
     grades: GradeTable
     plausibility: Plausibility
     codes: CodeTable
+    reference: ReferenceEquations  # GLI-2017: predicted, LLN, ULN, z-scores of DLCO, KCO and VA

@@ -54,6 +54,7 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
         grades=grade_table(_text(folder, "quality_grades.toml")),
         plausibility=Plausibility.from_toml(_text(folder, "plausibility.toml"), units),
         codes=CodeTable.from_toml(_text(folder, "codes.toml")),
+        reference=load_reference_equations(folder),
     )
 
 

@@ -25,7 +25,8 @@ SCRIPT_NAME = "<script>alert('planted')</script>"
 
 SEX_CHANGED = range(5)  # Lowmarsh patients whose last session says female
 BIRTH_CHANGED = range(10, 14)  # ... whose second session has another birth date
-JUMPED = range(20, 26)  # ... whose last DLCO is written x2.987 in SI (no KCO, no predicted to betray it)
+JUMPED = range(20, 26)  # ... whose last DLCO is written x2.987 in SI (no KCO and no lab predicted value;
+# the GLI-2017 predicted value from sex, age and height betrays it as a probable unit mislabel)
 CONFLICTING = range(30, 37)  # ... whose first test id appears again with other content
 COPIED = range(40, 42)  # ... whose first file is copied byte for byte (not a conflict)
 HB_WRONG = 8  # copies of sample 09, each its own patient
@@ -40,6 +41,9 @@ PLANTED = Counter(
         "PATIENT_SEX_CHANGED": len(SEX_CHANGED),
         "PATIENT_BIRTH_DATE_CHANGED": len(BIRTH_CHANGED),
         "SERIES_UNIT_JUMP": len(JUMPED),
+        # source: GLI-2017 equations (Stanojevic et al., ERJ 2017): ~262 mL/min/mmHg lies far outside
+        # the predicted distribution while 262 / 2.987 lies inside it
+        "UNIT_MISLABEL_PROBABLE": len(JUMPED),
         "OUT_OF_RANGE": len(JUMPED),  # ~262 mL/min/mmHg is beyond the plausible DLCO range of the record check
         "DUPLICATE_TEST_ID_CONFLICT": len(CONFLICTING),
         "UNIT_CONVENTIONS_MIXED": 1,  # Saltreach
@@ -57,7 +61,7 @@ PLANTED = Counter(
 )
 SESSIONS = {LOWMARSH: (600, 3), SALTREACH: (300, 3), BRACKENFOLD: (100, 2)}  # patients, sessions each
 READABLE = sum(p * s for p, s in SESSIONS.values()) + len(CONFLICTING) + len(COPIED) + HB_WRONG + RAW
-CLEAN = READABLE - HB_WRONG  # the Hb errors are the only record findings of severity error
+CLEAN = READABLE - HB_WRONG - len(JUMPED)  # the record findings of severity error: Hb wrong way, unit mislabels
 
 
 def _sample(name: str) -> dict[str, Any]:

@@ -61,13 +61,14 @@ def test_summary_counts_files_sessions_and_clean_ones(report: Path):
 
 
 def test_ndjson_holds_the_clean_sessions_and_lists_the_others(report: Path):
-    """One DiagnosticReport per clean session; quarantined.csv lists the Hb errors and the unreadable files."""
+    """One DiagnosticReport per clean session; quarantined.csv lists the error records and the unreadable files."""
     reports = (report / "ndjson" / "DiagnosticReport.ndjson").read_text().splitlines()
     with open(report / "ndjson" / "quarantined.csv", newline="", encoding="utf-8") as handle:
         quarantined = list(csv.DictReader(handle))
 
     assert planted.CLEAN == len(reports)
-    assert planted.HB_WRONG + 6 == len(quarantined)
+    # the Hb wrong-way and unit-mislabel records, and six files that could not be read as sessions
+    assert planted.HB_WRONG + len(planted.JUMPED) + 6 == len(quarantined)
 
 
 def test_one_worker_writes_the_same_files_as_two(archive: Path, report: Path, tmp_path: Path):

@@ -221,7 +221,11 @@ def test_categories_and_interpretation(fhir_outcomes, fhir_tables):
 
     assert categories == ["procedure", "PF"]
     assert dlco["interpretation"][0]["coding"][0]["code"] == "N"
-    assert dlco["referenceRange"][0]["text"] == "LLN (5th percentile)"
+    # GLI-2017 LLN-ULN first, the lab's own LLN (another reference set) beside it
+    assert [r["text"] for r in dlco["referenceRange"]] == [
+        "GLI-2017 LLN-ULN (5th-95th percentile)",
+        "LLN (5th percentile), GLI 2017 (TLCO, Caucasian)",
+    ]
 
 
 def _observation(bundle: dict[str, Any], key: str) -> dict[str, Any]:
@@ -426,7 +430,7 @@ def test_computed_values_say_so(fhir_outcomes, fhir_tables):
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, GOLDEN_CONTEXT)
     notes = [n["text"] for n in _observation(bundle, "dlco_percent_predicted").get("note", [])]
 
-    assert notes == ["Computed by dlco-bridge from the reported values."]
+    assert notes[-1] == "Computed by dlco-bridge from the reported values."
 
 
 def test_report_conclusion_carries_summary_and_notes(fhir_outcomes, fhir_tables):

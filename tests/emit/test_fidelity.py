@@ -32,20 +32,23 @@ def _outputs(name: str, tables: Tables, settings: PipelineSettings, routes=BOTH)
     return json.loads(by_kind["fhir"]), hl7.parse(by_kind["hl7"].decode("utf-8"))
 
 
-def _observation(bundle: dict[str, Any], loinc: str) -> dict[str, Any]:
+def _observation(bundle: dict[str, Any], loinc: str, which: int | None = None) -> dict[str, Any]:
+    """The one Observation with this code; with ``which``, the which-th of several (GLI-2017's, then the lab's)."""
     found = [
         e["resource"]
         for e in bundle["entry"]
         if e["resource"]["resourceType"] == "Observation" and e["resource"]["code"]["coding"][0]["code"] == loinc
     ]
+    if which is not None:
+        return found[which]
     assert 1 == len(found)
     return found[0]
 
 
-def _obx_and_ntes(message: Any, code: str) -> tuple[Any, list[str]]:
-    """The OBX whose OBX-3 identifier is ``code`` and the NTE-3 texts that follow it."""
+def _obx_and_ntes(message: Any, code: str, which: int = 0) -> tuple[Any, list[str]]:
+    """The (which-th) OBX whose OBX-3 identifier is ``code`` and the NTE-3 texts that follow it."""
     segments = list(message)
-    i = next(i for i, s in enumerate(segments) if str(s[0]) == "OBX" and str(s[3]).startswith(code + "^"))
+    i = [i for i, s in enumerate(segments) if str(s[0]) == "OBX" and str(s[3]).startswith(code + "^")][which]
     notes = []
     for s in segments[i + 1 :]:
         if str(s[0]) != "NTE":
@@ -111,11 +114,11 @@ def test_altitude_percent_predicted_in_both_outputs(tables: Tables):
     #   DLCO 36.4 x 0.904768 / 33.0 = 99.8 % -> 100; KCO 5.13 x 0.904768 / 4.79 = 96.9 % -> 97
     bundle, message = _outputs("03-high-altitude.json", tables, PipelineSettings())
 
-    # source: LOINC 98130-8 (DLCO/predicted) and 98203-3 (KCO/predicted)
-    assert 100 == _observation(bundle, "98130-8")["valueQuantity"]["value"]
-    assert 97 == _observation(bundle, "98203-3")["valueQuantity"]["value"]
-    assert "100" == str(_obx_and_ntes(message, "98130-8")[0][5])
-    assert "97" == str(_obx_and_ntes(message, "98203-3")[0][5])
+    # source: LOINC 98130-8 (DLCO/predicted) and 98203-3 (KCO/predicted); the lab's come after GLI-2017's
+    assert 100 == _observation(bundle, "98130-8", which=1)["valueQuantity"]["value"]
+    assert 97 == _observation(bundle, "98203-3", which=1)["valueQuantity"]["value"]
+    assert "100" == str(_obx_and_ntes(message, "98130-8", which=1)[0][5])
+    assert "97" == str(_obx_and_ntes(message, "98203-3", which=1)[0][5])
 
 
 def test_si_dlco_keeps_its_resolution_in_traditional_outputs(tables: Tables):

@@ -136,7 +136,8 @@ def test_obx_round_trip_python_hl7(stem, units, sample_outcomes, tables):
             item.code.code,
             item.quantity.text(),
             item.quantity.unit,
-            f">{item.low.text()}" if item.low else "",
+            # HL7 v2.5.1 ch. 7, OBX-7 forms "lower-upper" and ">lower"  # from memory
+            (f"{item.low.text()}-{item.high.text()}" if item.high else f">{item.low.text()}") if item.low else "",
             item.flag or "",
         )
         for item in items
@@ -481,12 +482,13 @@ def test_over_long_display_text_is_cut_whole_escapes(sample_outcomes, tables, tm
 
 
 def test_values_computed_by_the_bridge_say_so(sample_outcomes, tables):
-    """A % predicted the lab did not report is followed by an NTE saying the bridge computed it."""
+    """A % predicted the lab did not report is followed by NTEs: its reference set, then that the bridge computed it."""
     # common practice: a receiver must be able to tell a lab-reported value from a derived one
     segments = to_oru(sample_outcomes["01-healthy-adult"], tables, GOLDEN_CONTEXT).split("\r")
     obx = next(i for i, s in enumerate(segments) if s.startswith("OBX|") and "|98130-8^" in s)
 
-    assert "NTE|1|L|Computed by dlco-bridge from the reported values." == segments[obx + 1]
+    assert segments[obx + 1].startswith("NTE|1|L|Reference set GLI-2017 ")
+    assert "NTE|2|L|Computed by dlco-bridge from the reported values." == segments[obx + 2]
 
 
 # ---------- identity of the order, the lab and the patient (issue 8, item 10) ----------
