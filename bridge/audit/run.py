@@ -23,7 +23,7 @@ import time
 from collections import deque
 from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from datetime import datetime
 from pathlib import Path
 from typing import Any, TextIO
@@ -33,11 +33,12 @@ from bridge.audit.report import ReportWriter
 from bridge.audit.rows import Row, row_of, row_of_error
 from bridge.emit.fhir import to_ndjson
 from bridge.errors import InputError, ProcessingFailed, UnreadableInput
-from bridge.pipeline import PipelineSettings, process
+from bridge.pipeline import PipelineSettings, process_all
 from bridge.science.reference import ReferenceEquations
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
-from bridge.tables.files import load_reference_equations, load_tables
+from bridge.tables.field_maps import MapChoice
+from bridge.tables.files import load_map_choice, load_reference_equations, load_tables
 
 DEFAULT_WORKERS = os.cpu_count() or 1  # one worker per CPU
 
@@ -61,6 +62,10 @@ class Job:
     units: UnitSystem
     now: datetime  # read once by the shell: every resource of the run carries the same time
     emit_ndjson: bool
+    # The field maps by file path (--map / map, and [maps]); each worker reads them once. None and
+    # no patterns: every input is dlco-result/1 JSON.
+    map_default: Path | None = None
+    map_patterns: tuple[tuple[str, Path], ...] = ()
 
 
 @dataclass(frozen=True, slots=True)
@@ -116,6 +121,12 @@ def _tables(traditional_per_si: float) -> Tables:
 
 
 @functools.cache
+def _maps(default: Path | None, patterns: tuple[tuple[str, Path], ...], traditional_per_si: float) -> MapChoice:
+    """The field maps, read once per worker process."""
+    return load_map_choice(default, patterns, _tables(traditional_per_si).units)
+
+
+@functools.cache
 def _equations() -> ReferenceEquations:
     """The GLI-2017 reference equations, loaded once per worker process."""
     return load_reference_equations()
@@ -135,19 +146,32 @@ def read_file(path: str, limit: int) -> bytes:
 
 def audit_file(
     path: str, job: Job, tables: Tables, equations: ReferenceEquations | None = None
-) -> tuple[Row, dict[str, bytes]]:
-    """One file through the one pipeline: its row, and its NDJSON when it is clean and asked for."""
+) -> tuple[list[Row], dict[str, bytes]]:
+    """One file through the one pipeline: a row per session (or refusal), and the NDJSON of the clean ones.
+
+    A file read through a field map may hold many sessions; each bad record is a row of its own.
+    """
+    rows: list[Row] = []
+    clean = []
     try:
         data = read_file(path, job.pipeline.max_input_bytes)
-        outcome = process(data, path, tables, job.pipeline)
-        row = row_of(outcome, path, equations)
-        if not (job.emit_ndjson and row.clean):
-            return row, {}
-        return row, to_ndjson([outcome], tables, job.pipeline.emit.context(job.now, job.units, False))
+        maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
+        pipeline = replace(job.pipeline, field_map=maps.for_file(os.path.basename(path)))
+        for result in process_all(data, path, tables, pipeline):
+            if isinstance(result, InputError):
+                rows.append(row_of_error(result, path))
+                continue
+            row = row_of(result, path, equations)
+            rows.append(row)
+            if job.emit_ndjson and row.clean:
+                clean.append(result)
     except InputError as exc:
-        return row_of_error(exc, path), {}
+        rows.append(row_of_error(exc, path))
     except Exception as exc:  # one file must never stop the others
-        return row_of_error(ProcessingFailed.wrapping(exc, path), path), {}
+        rows.append(row_of_error(ProcessingFailed.wrapping(exc, path), path))
+    if not clean:
+        return rows, {}
+    return rows, to_ndjson(clean, tables, job.pipeline.emit.context(job.now, job.units, False))
 
 
 def audit_chunk(files: Sequence[str], job: Job) -> ChunkResult:
@@ -156,8 +180,8 @@ def audit_chunk(files: Sequence[str], job: Job) -> ChunkResult:
     rows = []
     ndjson: dict[str, list[bytes]] = {}
     for path in files:
-        row, lines = audit_file(path, job, tables, equations)
-        rows.append(row)
+        file_rows, lines = audit_file(path, job, tables, equations)
+        rows.extend(file_rows)
         for kind, text in lines.items():
             ndjson.setdefault(kind, []).append(text)
     return ChunkResult(tuple(rows), tuple((kind, b"".join(parts)) for kind, parts in sorted(ndjson.items())))

@@ -249,7 +249,11 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     audit = AuditSettings(emit_ndjson=args.emit == "ndjson")
     if args.workers is not None:
         audit = replace(audit, workers=args.workers)
-    job = Job(settings.pipeline, settings.traditional_per_si, settings.units, datetime.now(UTC), audit.emit_ndjson)
+    load_map_choice(settings.field_map, settings.maps, tables.units)  # a broken map stops the audit here
+    now, units = datetime.now(UTC), settings.units
+    job = Job(
+        settings.pipeline, settings.traditional_per_si, units, now, audit.emit_ndjson, settings.field_map, settings.maps
+    )
     try:
         summary = run_audit(args.paths, args.report, job, audit, progress=terminal(), scheduler=args.scheduler)
     except OSError as exc:  # the report folder cannot be written, or the scheduler cannot be reached

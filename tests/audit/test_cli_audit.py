@@ -38,3 +38,23 @@ def test_audit_that_cannot_write_its_report_exits_1(tmp_path: Path, capsys):
 def test_workers_below_one_is_a_usage_error(tmp_path: Path, capsys):
     """--workers 0 is refused before anything runs."""
     assert 1 == main(["audit", str(samples_dir()), "--report", str(tmp_path), "--workers", "0"])
+
+
+def test_audit_reads_a_legacy_hl7_feed_through_its_map(tmp_path: Path, capsys):
+    """audit --map reads every session of the invented legacy HL7 feed, one row each, none refused as a format."""
+    root = Path(__file__).resolve().parents[2]
+    archive = tmp_path / "archive"
+    archive.mkdir()
+    feed = next((root / "samples" / "legacy").glob("*.hl7"))
+    (archive / feed.name).write_bytes(feed.read_bytes())
+    hl7_map = root / "mappings" / "maps" / "highcairn-hl7v23.toml"
+
+    code = main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1", "--map", str(hl7_map)])
+    with open(tmp_path / "r" / "findings.csv", newline="", encoding="utf-8") as handle:
+        checks = {row["check"] for row in csv.DictReader(handle)}
+    summary = (tmp_path / "r" / "summary.json").read_text()
+    capsys.readouterr()
+
+    assert 0 == code
+    assert "UNKNOWN_FORMAT" not in checks
+    assert '"sessions_read": 4' in summary  # the feed carries four sessions (samples/legacy, docs/field-maps.md)
