@@ -61,8 +61,11 @@ SEED = 20260310
 NOW = datetime(2026, 3, 10, 12, tzinfo=UTC)
 CONTEXT = EmitContext(now=NOW)
 ROUTES = (Route("fhir", "traditional"), Route("hl7", "traditional"))
-# Nothing blocked: every generated session goes through to both emitters, as the floor does.
-SETTINGS = PipelineSettings(blocking=frozenset())
+# Nothing refused: every ERROR code the checks can raise is allowed, so every generated session
+# goes through to both emitters (as preliminary values where an error was allowed), as the floor does.
+SETTINGS = PipelineSettings(
+    allow=frozenset({"UNIT_MISLABEL_PROBABLE", "HB_ADJUSTMENT_WRONG_DIRECTION", "NO_ACCEPTABLE_MANOEUVRE"})
+)
 
 
 def convert(data: bytes, name: str, tables: Tables) -> tuple[Any, ...]:
