@@ -19,7 +19,7 @@ from bridge.config import (
     Settings,
 )
 from bridge.display.bundle_summary import describe_bundle
-from bridge.display.check_report import CAUTION, outcome_json, outcome_text
+from bridge.display.check_report import CAUTION, finding_text, outcome_json, outcome_text
 from bridge.display.hl7_fields import describe_er7
 from bridge.display.map_report import MapCheck, map_check_json, map_check_text
 from bridge.emit.outputs import file_stem
@@ -186,7 +186,7 @@ def cmd_demo(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
         print(f"  {status:<8} {path.name} -> {names}")
         for finding in result.findings:
             label = "NOTE" if finding.severity is Severity.INFO else finding.severity.value.upper()
-            print(f"           {label} {finding.code}: {finding.message}")
+            print(f"           {label} {finding.code}: {finding_text(finding, tables, settings.units)}")
     good = sum(1 for _, r, _ in converted if not isinstance(r, InputError))
     print(f"\n  {good} sessions converted, {len(converted) - good} refused; outputs in {out}")
     print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7\n")
