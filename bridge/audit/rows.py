@@ -25,7 +25,7 @@ INTERNAL_ERROR = "INTERNAL_ERROR"  # the bridge failed on it: a defect to report
 PREDICTED_NOT_FROM_SET = "PREDICTED_NOT_FROM_CLAIMED_SET"
 # A lab's predicted DLCO that claims GLI-2017 but is further than this from the GLI-2017 value
 # for the record's sex, age and height was computed otherwise (another set, another sex, a
-# transcription). Labs round ages and predicted values, which moves them by a few per cent at most.
+# copying error). Labs round ages and predicted values, which moves them by a few per cent at most.
 PREDICTED_TOLERANCE = 0.05  # relative (common practice)
 
 
