@@ -168,3 +168,14 @@ def test_maps_per_file_pattern_keep_their_order_and_resolve_beside_the_file():
     maps = root / "mappings" / "maps"
     expected = (("*.hl7", maps / "highcairn-hl7v23.toml"), ("*", maps / "lowmarsh-csv.toml"))
     assert expected == settings.maps
+
+
+def test_the_sample_configuration_reads_where_the_service_guide_copies_it(tmp_path):
+    """docs/service.md copies samples/service/bridge.toml into another folder: it still reads (no path it names breaks)."""
+    copy = tmp_path / "trial" / "bridge.toml"
+    copy.parent.mkdir()
+    copy.write_bytes(SAMPLE_CONFIG.read_bytes())
+
+    settings = load_settings(copy, {"FHIR_STORE_TOKEN": "x"})
+
+    assert tmp_path / "trial" / "run" / "inbox" == settings.require_service().inbox
