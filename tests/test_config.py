@@ -171,7 +171,7 @@ def test_maps_per_file_pattern_keep_their_order_and_resolve_beside_the_file():
 
 
 def test_the_sample_configuration_reads_where_the_service_guide_copies_it(tmp_path):
-    """docs/service.md copies samples/service/bridge.toml into another folder: it still reads (no path it names breaks)."""
+    """docs/service.md copies samples/service/bridge.toml into another folder, where it still reads."""
     copy = tmp_path / "trial" / "bridge.toml"
     copy.parent.mkdir()
     copy.write_bytes(SAMPLE_CONFIG.read_bytes())
