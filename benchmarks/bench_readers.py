@@ -36,6 +36,7 @@ import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
 from typing import Any, TypeVar
+from zoneinfo import ZoneInfo
 
 import hl7
 
@@ -182,8 +183,8 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--json", action="store_true")
     args = parser.parse_args(argv)
     tables = load_tables()
-    csv_map = field_map(CSV_MAP.read_text(encoding="utf-8"), CSV_MAP.name, tables.units)
-    hl7_map = field_map(HL7_MAP.read_text(encoding="utf-8"), HL7_MAP.name, tables.units)
+    csv_map = field_map(CSV_MAP.read_text(encoding="utf-8"), CSV_MAP.name, tables.units, ZoneInfo)
+    hl7_map = field_map(HL7_MAP.read_text(encoding="utf-8"), HL7_MAP.name, tables.units, ZoneInfo)
     # The stream first: peak RSS is a high-water mark, so it is read before anything else is held.
     report: dict[str, Any] = {
         "machine": f"{platform.python_implementation()} {platform.python_version()}, {platform.machine()}",

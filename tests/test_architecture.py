@@ -56,6 +56,7 @@ BANNED_IO = {
     "pathlib",
     "shutil",
     "tempfile",
+    "zoneinfo",  # reads the time-zone database: the shell resolves zones and passes them in
 }
 BANNED_SHELL = {"bridge." + name.removesuffix(".py").replace("/", ".") for name in SHELL}
 # uuid5 (deterministic, from content) is allowed; uuid1/uuid4 read the clock or randomness.

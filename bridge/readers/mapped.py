@@ -18,7 +18,6 @@ from dataclasses import dataclass, replace
 from datetime import datetime
 from decimal import Decimal
 from typing import Any
-from zoneinfo import ZoneInfo
 
 from bridge.errors import InputError, InvalidField, MissingField, UnitError
 from bridge.model import Session
@@ -128,7 +127,7 @@ def cell_value(cell: Cell, fmap: FieldMap, catalogue: UnitCatalogue) -> Any:
     if target.kind == "datetime":
         moment = _moment(text, fmap.datetime_format, cell.where, "date-time")
         if moment.tzinfo is None:
-            moment = moment.replace(tzinfo=ZoneInfo(fmap.time_zone))
+            moment = moment.replace(tzinfo=fmap.zone)
         return moment.isoformat()
     if target.kind == "sex":
         sex = fmap.sex_codes.get(text)

@@ -13,13 +13,12 @@ from __future__ import annotations
 import fnmatch
 import re
 import types
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from datetime import date, datetime
+from datetime import UTC, date, datetime, tzinfo
 from functools import cache
 from types import MappingProxyType
 from typing import Annotated, Any, Literal, Union, get_args, get_origin
-from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from pydantic import AwareDatetime, BaseModel
 
@@ -101,6 +100,7 @@ class FieldMap:
     date_format: str = DEFAULT_DATE_FORMAT
     datetime_format: str = DEFAULT_DATETIME_FORMAT
     time_zone: str = DEFAULT_TIME_ZONE
+    zone: tzinfo = UTC  # time_zone resolved by the shell's zone lookup (the core reads no tz database)
     sex_codes: Mapping[str, str] = field(default_factory=lambda: DEFAULT_SEX_CODES)
     unit_aliases: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))  # spelling -> unit
     # csv
@@ -280,8 +280,13 @@ class _Checker:
         return str(value)
 
 
-def field_map(text: str, name: str, catalogue: UnitCatalogue) -> FieldMap:
-    """The map in ``text`` (the file ``name``), checked against the canonical fields and the unit catalogue."""
+def field_map(text: str, name: str, catalogue: UnitCatalogue, zone_of: Callable[[str], tzinfo]) -> FieldMap:
+    """The map in ``text`` (the file ``name``), checked against the canonical fields and the unit catalogue.
+
+    ``zone_of`` resolves an IANA time-zone name (the shell passes ``zoneinfo.ZoneInfo``: reading the
+    time-zone database is I/O the core leaves to it); it raises LookupError or ValueError for a
+    name it does not know.
+    """
     data = read_toml(text, name)
     check = _Checker(text, name)
     check.known(data, _SECTIONS, "")
@@ -302,8 +307,8 @@ def field_map(text: str, name: str, catalogue: UnitCatalogue) -> FieldMap:
         raise check.fail("fields", "at least one canonical field")
     zone = check.text(values, "time_zone", "values.time_zone", DEFAULT_TIME_ZONE)
     try:
-        ZoneInfo(zone)
-    except (ZoneInfoNotFoundError, ValueError):
+        resolved = zone_of(zone)
+    except (LookupError, ValueError):
         raise check.fail("values.time_zone", f"an IANA time zone such as Europe/London, got {zone!r}") from None
     rows = check.choice(csv_part, "rows", "csv.rows", ROWS, "session")
     group_by = csv_part.get("group_by")
@@ -322,6 +327,7 @@ def field_map(text: str, name: str, catalogue: UnitCatalogue) -> FieldMap:
             check, values, "datetime_format", DEFAULT_HL7_DATETIME_FORMAT if hl7 else DEFAULT_DATETIME_FORMAT
         ),
         time_zone=zone,
+        zone=resolved,
         sex_codes=_sex_codes(check, check.table(data, "sex")),
         unit_aliases=aliases,
         delimiter=_delimiter(check, csv_part),

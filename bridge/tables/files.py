@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from pathlib import Path
+from zoneinfo import ZoneInfo
 
 from bridge.errors import MappingError
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
@@ -70,7 +71,7 @@ def load_field_map(path: Path, catalogue: UnitCatalogue) -> FieldMap:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise MappingError(str(path), "(file)", f"a readable field map ({exc.strerror})") from exc
-    return field_map(text, str(path), catalogue)
+    return field_map(text, str(path), catalogue, ZoneInfo)
 
 
 def load_map_choice(

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from zoneinfo import ZoneInfo
+
 import pytest
 
 from bridge.errors import MappingError
@@ -18,7 +20,7 @@ def _small(**replace: str) -> str:
 
 def _error(text: str, tables) -> str:
     with pytest.raises(MappingError) as caught:
-        field_map(text, "maps/site.toml", tables.units)
+        field_map(text, "maps/site.toml", tables.units, ZoneInfo)
     return str(caught.value)
 
 
@@ -77,7 +79,9 @@ def test_the_bundled_maps_read(tables):
     """Both maps in mappings/maps/ are valid."""
     from tests.maps.conftest import HL7_MAP
 
-    names = [field_map(p.read_text(encoding="utf-8"), p.name, tables.units).format for p in (CSV_MAP, HL7_MAP)]
+    names = [
+        field_map(p.read_text(encoding="utf-8"), p.name, tables.units, ZoneInfo).format for p in (CSV_MAP, HL7_MAP)
+    ]
     assert ["csv", "hl7v2"] == names
 
 
