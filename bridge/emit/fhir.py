@@ -110,30 +110,34 @@ class _Parts:
 
     id_prefix: str  # observation identifier up to the key: ``lab-slug.test-id.``
     identifier_system: str
-    system_token: str  # the identifier system as the first part of a token search value
+    # The conditional query of an entry up to its key, escaped and percent-encoded once per
+    # Bundle: both steps work character by character, so prefix and key may be encoded apart.
+    query_prefix: str
     status: str
     effective: str
     issued: str
     performer: str
     correction: bool
-    patient: Patient
-    patient_url: str | None  # the conditionally created Patient's fullUrl; None: by identifier
+    # The subject reference: the conditionally created Patient's fullUrl, or a conditional
+    # reference by the patient's identifier (see ``subject``).
+    subject_reference: str
 
     @classmethod
     def of(cls, outcome: Outcome, context: EmitContext, patient_url: str | None) -> _Parts:
         session = outcome.session
         lab = session.lab
+        id_prefix = observation_identifier(outcome, "")
+        patient = session.patient
         return cls(
-            id_prefix=observation_identifier(outcome, ""),
+            id_prefix=id_prefix,
             identifier_system=context.observation_system,
-            system_token=_token_part(context.observation_system),
+            query_prefix=f"identifier={_token_part(context.observation_system)}|{_token_part(id_prefix)}",
             status=_status(context),
             effective=_instant(session.performed_at),
             issued=_instant(context.now),
             performer=f"{lab.name}, {lab.site}" if lab.site else lab.name,
             correction=context.correction,
-            patient=session.patient,
-            patient_url=patient_url,
+            subject_reference=patient_url or "Patient?" + _token_query(patient.id_system, patient.id),
         )
 
     def identifier(self, key: str) -> str:
@@ -144,7 +148,7 @@ class _Parts:
 
     def entry(self, full_url: str, resource: Resource, kind: str, key: str) -> Resource:
         """Entry with its request: conditional create, or conditional update for a correction."""
-        query = f"identifier={self.system_token}|{_token_part(self.identifier(key))}"  # _token_query, system once
+        query = self.query_prefix + _token_part(key)  # _token_query of the identifier
         if self.correction:
             request = {"method": "PUT", "url": f"{kind}?{query}"}
         else:
@@ -158,10 +162,7 @@ class _Parts:
         does not resolve; ``Patient?identifier=system|value`` in a transaction is replaced by the
         one matching Patient's id, and fails the transaction if there is none or several.
         """
-        if self.patient_url is None:
-            reference = "Patient?" + _token_query(self.patient.id_system, self.patient.id)
-            return {"reference": reference, "type": "Patient"}
-        return {"reference": self.patient_url, "type": "Patient"}
+        return {"reference": self.subject_reference, "type": "Patient"}
 
     def lab(self) -> list[Resource]:
         """The performer list: the lab."""
