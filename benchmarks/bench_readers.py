@@ -47,7 +47,8 @@ from bridge.readers.mapped import MappedRecord
 from bridge.science.checks import run_checks
 from bridge.science.derive import derive
 from bridge.tables import Tables
-from bridge.tables.field_maps import FieldMap, field_map
+from bridge.tables.field_map_model import FieldMap
+from bridge.tables.field_map_parser import field_map
 from bridge.tables.files import load_tables
 
 ROOT = Path(__file__).resolve().parent.parent

@@ -31,7 +31,7 @@ from bridge.science.checks import run_checks
 from bridge.science.derive import derive
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
-from bridge.tables.field_maps import FieldMap
+from bridge.tables.field_map_model import FieldMap
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
 UNMAPPED_CODE = "UNMAPPED_SOURCE_CODE"  # a field map reader met a source code its map does not name

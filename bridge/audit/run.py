@@ -37,7 +37,7 @@ from bridge.pipeline import PipelineSettings, process_all
 from bridge.science.reference import ReferenceEquations
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
-from bridge.tables.field_maps import MapChoice
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_map_choice, load_reference_equations, load_tables
 
 DEFAULT_WORKERS = os.cpu_count() or 1  # one worker per CPU

@@ -17,7 +17,8 @@ from pydantic import BaseModel
 from bridge.errors import InputError
 from bridge.model import Outcome, Quantity, Session
 from bridge.readers.mapped import Cell, MappedRecord
-from bridge.tables.field_maps import MANOEUVRES, FieldMap, canonical_fields
+from bridge.tables.canonical_fields import MANOEUVRES, canonical_fields
+from bridge.tables.field_map_model import FieldMap
 
 SHOWN_RECORDS = 3  # records shown field by field; the rest are counted
 

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from bridge.errors import InvalidField, UnknownFormat, UnreadableInput
 from bridge.readers.mapped import Cell, MappedRecord, is_missing, mapped_record
 from bridge.science.units import UnitCatalogue
-from bridge.tables.field_maps import FieldMap, FieldSource
+from bridge.tables.field_map_model import FieldMap, FieldSource
 
 SNIFF_LINES = 20  # lines shown to csv.Sniffer when the map says delimiter = "auto"
 SNIFF_DELIMITERS = ",;\t|"

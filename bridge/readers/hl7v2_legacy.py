@@ -19,7 +19,7 @@ import hl7
 from bridge.errors import InputError, InvalidField, UnknownFormat, UnreadableInput
 from bridge.readers.mapped import Cell, MappedRecord, mapped_record
 from bridge.science.units import UnitCatalogue
-from bridge.tables.field_maps import FieldMap
+from bridge.tables.field_map_model import FieldMap
 
 # source: HL7 v2.5.1 appendix C (MLLP): a message is framed by <VT> ... <FS><CR>
 _SEGMENT = re.compile(r"[^\r\n\x0b\x1c]+")

@@ -23,7 +23,8 @@ from bridge.errors import InputError, InvalidField, MissingField, UnitError
 from bridge.model import Session
 from bridge.readers.json_export import FORMAT, session_from_tree
 from bridge.science.units import UnitCatalogue
-from bridge.tables.field_maps import MANOEUVRES, FieldMap, FieldSource
+from bridge.tables.canonical_fields import MANOEUVRES
+from bridge.tables.field_map_model import FieldMap, FieldSource
 
 _NUMBER = re.compile(r"[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,3})?")
 

@@ -43,7 +43,7 @@ from bridge.service.files import free_name, move_durably, write_atomically
 from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.service.metrics import Metrics
 from bridge.tables import Tables
-from bridge.tables.field_maps import FieldMap
+from bridge.tables.field_map_model import FieldMap
 from bridge.tables.files import load_map_choice
 
 log = logging.getLogger("dlco_bridge.intake")

@@ -20,7 +20,11 @@ class Code:
 
 @dataclass(frozen=True, slots=True)
 class CodeTable:
-    """Observation codes per quantity key, the panel code and the code-system URIs."""
+    """Observation codes per quantity key, the panel code and the URI of each published code system.
+
+    ``systems`` has no "local" entry: the site's settings name the system of local codes
+    (``emit.local_code_system``, else under ``emit.system_base``).
+    """
 
     codes: Mapping[str, Code]
     panel: Code
@@ -30,13 +34,16 @@ class CodeTable:
     def from_toml(cls, text: str, name: str = "codes.toml") -> CodeTable:
         data = read_toml(text, name)
         systems = dict(data.get("systems", {}))
-        if set(systems) != {"loinc", "local"}:
-            raise MappingError(name, "systems", "exactly the keys loinc and local")
-        codes = {key: _code(name, f"codes.{key}", entry, systems) for key, entry in data.get("codes", {}).items()}
-        return cls(codes, _code(name, "panel", data.get("panel", {}), systems), systems)
+        if "local" in systems:
+            raise MappingError(name, "systems.local", "no entry (emit.local_code_system or emit.system_base names it)")
+        if set(systems) != {"loinc"}:
+            raise MappingError(name, "systems", "exactly the key loinc")
+        names = (*systems, "local")  # a local code's URI comes from the site's settings
+        codes = {key: _code(name, f"codes.{key}", entry, names) for key, entry in data.get("codes", {}).items()}
+        return cls(codes, _code(name, "panel", data.get("panel", {}), names), systems)
 
 
-def _code(name: str, where: str, entry: Mapping[str, object], systems: Mapping[str, str]) -> Code:
+def _code(name: str, where: str, entry: Mapping[str, object], systems: tuple[str, ...]) -> Code:
     system, code, display = entry.get("system"), entry.get("code"), entry.get("display")
     if system not in systems or not isinstance(code, str) or not code or not isinstance(display, str):
         raise MappingError(name, where, f"system ({' or '.join(systems)}), code and display")

@@ -16,7 +16,8 @@ from bridge.errors import MappingError
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
 from bridge.science.units import TRADITIONAL_PER_SI, UnitCatalogue
 from bridge.tables import CodeTable, Plausibility, Tables
-from bridge.tables.field_maps import FieldMap, MapChoice, field_map
+from bridge.tables.field_map_model import FieldMap, MapChoice
+from bridge.tables.field_map_parser import field_map
 from bridge.tables.grades import grade_table
 from bridge.tables.units import unit_catalogue
 

@@ -25,7 +25,7 @@ from hypothesis import strategies as st
 from bridge.errors import InputError, ProcessingFailed
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, Route, process_all
-from bridge.tables.field_maps import field_map
+from bridge.tables.field_map_parser import field_map
 from bridge.tables.files import load_tables
 from tests.maps.conftest import CSV_MAP, CSV_SAMPLE, HL7_MAP, HL7_SAMPLE
 

@@ -8,7 +8,8 @@ from zoneinfo import ZoneInfo
 import pytest
 
 from bridge.tables import Tables
-from bridge.tables.field_maps import FieldMap, field_map
+from bridge.tables.field_map_model import FieldMap
+from bridge.tables.field_map_parser import field_map
 
 ROOT = Path(__file__).resolve().parents[2]
 MAPS = ROOT / "mappings" / "maps"

@@ -7,7 +7,9 @@ from zoneinfo import ZoneInfo
 import pytest
 
 from bridge.errors import MappingError
-from bridge.tables.field_maps import MapChoice, canonical_fields, field_map
+from bridge.tables.canonical_fields import canonical_fields
+from bridge.tables.field_map_model import MapChoice
+from bridge.tables.field_map_parser import field_map
 from tests.maps.conftest import CSV_MAP, SMALL_CSV_MAP
 
 

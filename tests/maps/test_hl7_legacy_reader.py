@@ -11,7 +11,7 @@ from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process_all
 from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.tables import Tables
-from bridge.tables.field_maps import FieldMap
+from bridge.tables.field_map_model import FieldMap
 from tests.maps.conftest import HL7_SAMPLE
 
 TEXT = HL7_SAMPLE.read_text(encoding="utf-8")

@@ -9,7 +9,7 @@ import pytest
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process, process_all
 from bridge.tables import Tables
-from bridge.tables.field_maps import FieldMap
+from bridge.tables.field_map_model import FieldMap
 from tests.maps.conftest import CSV_SAMPLE, HL7_SAMPLE, ROOT
 
 # The sessions each legacy sample encodes, in file order (written from the JSON samples by hand).

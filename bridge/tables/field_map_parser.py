@@ -1,218 +1,45 @@
-"""Field maps (``mappings/maps/*.toml``) -> :class:`FieldMap`: where each canonical field comes from (pure).
+"""Field maps (``mappings/maps/*.toml``) -> :class:`FieldMap`: parsing and checking a map's text (pure).
 
-Owns: the list of canonical fields a map may fill (read from the record model, so it never
-drifts from ``bridge.model``), and checking a map's text: every section, key, canonical field,
-unit and value transform, each error a :class:`bridge.errors.MappingError` naming the map file,
-the line when it can be found, and the key at fault. The readers (``bridge.readers.csv_export``,
-``bridge.readers.hl7v2_legacy``) apply a map; this module only says what it means.
+Owns: :func:`field_map`, which checks every section, key, canonical field, unit and value
+transform of a map, each error a :class:`bridge.errors.MappingError` naming the map file, the
+line when it can be found, and the key at fault. The data model it builds is
+``bridge.tables.field_map_model``; the fields a map may fill are ``bridge.tables.canonical_fields``.
 docs/field-maps.md describes the format.
 """
 
 from __future__ import annotations
 
-import fnmatch
 import re
-import types
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
-from datetime import UTC, date, datetime, tzinfo
-from functools import cache
+from datetime import tzinfo
 from types import MappingProxyType
-from typing import Annotated, Any, Literal, Union, get_args, get_origin
-
-from pydantic import AwareDatetime, BaseModel
+from typing import Any
 
 from bridge.errors import MappingError
-from bridge.model import Measure, Quantity, Session, Sex
+from bridge.model import Sex
 from bridge.science.units import UnitCatalogue
+from bridge.tables.canonical_fields import CanonicalField, canonical_fields
+from bridge.tables.field_map_model import (
+    DEFAULT_DATE_FORMAT,
+    DEFAULT_DATETIME_FORMAT,
+    DEFAULT_DELIMITER,
+    DEFAULT_HL7_DATE_FORMAT,
+    DEFAULT_HL7_DATETIME_FORMAT,
+    DEFAULT_HL7_VERSIONS,
+    DEFAULT_MISSING,
+    DEFAULT_SEX_CODES,
+    DEFAULT_TIME_ZONE,
+    ENCODINGS,
+    FORMATS,
+    ON_BAD_RECORD,
+    ROWS,
+    FieldMap,
+    FieldSource,
+)
 from bridge.tables.toml import read_toml
 
-FieldKind = Literal["quantity", "number", "date", "datetime", "sex", "text"]
-MapFormat = Literal["csv", "hl7v2"]
-FORMATS: tuple[MapFormat, ...] = ("csv", "hl7v2")
-MANOEUVRES = "manoeuvres"  # canonical fields under this prefix are read once per manoeuvre
 OBX_UNIT = "OBX-6"  # ``unit_from`` of an HL7 code: the unit is in the OBX's own units field
 _HL7_LOCATION = re.compile(r"(?P<segment>[A-Z][A-Z0-9]{2})-(?P<field>[1-9][0-9]*)(?:\.(?P<component>[1-9][0-9]*))?")
-
-# Defaults of a map, written once.
-DEFAULT_MISSING = ("", "-", "n/a")  # common practice: how lab exports write "not measured"
-DEFAULT_DATE_FORMAT = "%Y-%m-%d"
-DEFAULT_DATETIME_FORMAT = "%Y-%m-%dT%H:%M"
-DEFAULT_HL7_DATE_FORMAT = "%Y%m%d"  # source: HL7 v2.5.1 ch. 2, DT/TS formats (YYYYMMDD[HHMM[SS]][+/-ZZZZ])
-DEFAULT_HL7_DATETIME_FORMAT = "%Y%m%d%H%M%z"
-DEFAULT_TIME_ZONE = "UTC"
-DEFAULT_SEX_CODES = MappingProxyType({"M": "male", "F": "female", "O": "other", "U": "unknown"})
-DEFAULT_HL7_VERSIONS = ("2.3", "2.3.1", "2.4", "2.5", "2.5.1")
-DEFAULT_DELIMITER = "auto"  # sniffed by the stdlib csv module among , ; tab |
-ENCODINGS = ("utf-8", "latin-1")  # utf-8 drops a byte-order mark
-ON_BAD_RECORD = ("skip", "refuse")
-ROWS = ("session", "manoeuvre")
-
-
-@dataclass(frozen=True, slots=True)
-class CanonicalField:
-    """One field of ``dlco-result/1`` a map can fill, e.g. ``manoeuvres.inspired_volume``."""
-
-    path: str
-    kind: FieldKind
-    dimension: str | None = None  # quantities only
-    canonical_unit: str | None = None  # quantities only: the unit the core keeps it in
-    per_manoeuvre: bool = False  # read once per manoeuvre (under ``manoeuvres.``)
-
-
-@dataclass(frozen=True, slots=True)
-class FieldSource:
-    """Where one canonical field comes from, and how its text becomes a value."""
-
-    target: CanonicalField
-    column: str | None = None  # CSV: the column header
-    at: str | None = None  # HL7: a segment location such as PID-5.2
-    code: str | None = None  # HL7: the local code in OBX-3.1
-    value: str | None = None  # the same value for every record
-    unit: str | None = None  # a fixed unit, as the source means it
-    unit_column: str | None = None  # CSV: the column that carries the unit
-    unit_from_obx: bool = False  # HL7: the unit is in OBX-6
-    percent: bool = False  # a gas fraction written as a percentage (0.3 means 0.003)
-
-    @property
-    def origin(self) -> str:
-        """How reports name the source of the field: a column, a code, a location or a constant."""
-        if self.column is not None:
-            return f"column {self.column!r}"
-        if self.code is not None:
-            return f"code {self.code!r}"
-        if self.at is not None:
-            return self.at
-        return "(constant)"
-
-
-@dataclass(frozen=True, slots=True)
-class FieldMap:
-    """One source layout: its format, how its text is read, and the source of each field."""
-
-    name: str  # the map file, as errors name it
-    source: str  # the lab or system whose exports it reads
-    format: MapFormat
-    fields: tuple[FieldSource, ...]
-    on_bad_record: Literal["skip", "refuse"] = "skip"
-    missing: frozenset[str] = frozenset(DEFAULT_MISSING)
-    decimal: str = "."
-    date_format: str = DEFAULT_DATE_FORMAT
-    datetime_format: str = DEFAULT_DATETIME_FORMAT
-    time_zone: str = DEFAULT_TIME_ZONE
-    zone: tzinfo = UTC  # time_zone resolved by the shell's zone lookup (the core reads no tz database)
-    sex_codes: Mapping[str, str] = field(default_factory=lambda: DEFAULT_SEX_CODES)
-    unit_aliases: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))  # spelling -> unit
-    # csv
-    delimiter: str = DEFAULT_DELIMITER
-    encoding: str = "utf-8"
-    header_rows: int = 1  # the column names are on the last of these rows
-    rows: Literal["session", "manoeuvre"] = "session"
-    group_by: str | None = None  # rows = "manoeuvre": the column holding the test id
-    # hl7v2
-    versions: tuple[str, ...] = DEFAULT_HL7_VERSIONS
-
-    def columns(self) -> tuple[str, ...]:
-        """Every CSV column the map reads (values and units), in map order."""
-        named = [c for f in self.fields for c in (f.column, f.unit_column) if c is not None]
-        if self.group_by is not None:
-            named.append(self.group_by)
-        return tuple(dict.fromkeys(named))
-
-    def codes(self) -> Mapping[str, tuple[FieldSource, ...]]:
-        """HL7 local code -> the field sources it feeds."""
-        found: dict[str, list[FieldSource]] = {}
-        for source in self.fields:
-            if source.code is not None:
-                found.setdefault(source.code, []).append(source)
-        return MappingProxyType({code: tuple(sources) for code, sources in found.items()})
-
-
-@dataclass(frozen=True, slots=True)
-class MapChoice:
-    """Which map reads which input: the first file-name pattern that matches, else the default.
-
-    No map at all means the input is ``dlco-result/1`` JSON; nothing is guessed from the content.
-    """
-
-    default: FieldMap | None = None
-    by_pattern: tuple[tuple[str, FieldMap], ...] = ()
-
-    def for_file(self, name: str) -> FieldMap | None:
-        return next((m for pattern, m in self.by_pattern if fnmatch.fnmatchcase(name, pattern)), self.default)
-
-
-# ---- the canonical fields, read from the model -------------------------------------------------
-
-
-@cache
-def canonical_fields() -> Mapping[str, CanonicalField]:
-    """Every field of ``dlco-result/1`` a map may fill, by dotted path (``format`` is implied)."""
-    found: dict[str, CanonicalField] = {}
-    _walk(Session, "", found)
-    del found["format"]
-    return MappingProxyType(found)
-
-
-def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField]) -> None:
-    for name, info in model.model_fields.items():
-        path = prefix + name
-        measure = _measure(info.metadata, info.annotation)
-        if measure is not None:
-            found[path] = CanonicalField(
-                path, "quantity", measure.dimension, measure.canonical_unit, _in_manoeuvre(path)
-            )
-            continue
-        bare = _bare(info.annotation)
-        if get_origin(bare) is tuple:
-            bare = _bare(get_args(bare)[0])
-        if isinstance(bare, type) and issubclass(bare, BaseModel) and bare is not Quantity:
-            _walk(bare, path + ".", found)
-        else:
-            found[path] = CanonicalField(path, _kind(bare), per_manoeuvre=_in_manoeuvre(path))
-
-
-def _in_manoeuvre(path: str) -> bool:
-    return path.startswith(MANOEUVRES + ".")
-
-
-def _kind(bare: Any) -> FieldKind:
-    if bare is Sex:
-        return "sex"
-    if bare is AwareDatetime or (isinstance(bare, type) and issubclass(bare, datetime)):
-        return "datetime"
-    if isinstance(bare, type) and issubclass(bare, date):
-        return "date"
-    if bare is float:
-        return "number"
-    return "text"
-
-
-def _bare(annotation: Any) -> Any:
-    """The type inside ``Optional[...]`` and ``Annotated[...]``."""
-    while True:
-        origin = get_origin(annotation)
-        if origin is Annotated:
-            annotation = get_args(annotation)[0]
-        elif origin is Union or origin is types.UnionType:
-            annotation = next(a for a in get_args(annotation) if a is not type(None))
-        else:
-            return annotation
-
-
-def _measure(metadata: list[Any], annotation: Any) -> Measure | None:
-    for item in metadata:
-        if isinstance(item, Measure):
-            return item
-    bare = annotation
-    while get_origin(bare) in (Union, types.UnionType):
-        bare = next(a for a in get_args(bare) if a is not type(None))
-    if get_origin(bare) is Annotated:
-        return next((m for m in bare.__metadata__ if isinstance(m, Measure)), None)
-    return None
-
-
-# ---- parsing a map ---------------------------------------------------------------------------
 
 _MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record"})
 _VALUE_KEYS = frozenset({"missing", "decimal", "date_format", "datetime_format", "time_zone"})
