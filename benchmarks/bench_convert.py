@@ -47,7 +47,8 @@ import orjson
 
 from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7v2 import control_id, to_oru
-from bridge.emit.observations import EmitContext, build_content
+from bridge.emit.observations import build_content
+from bridge.emit.settings import EmitContext
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, Route, process
 from bridge.readers.json_export import read_export

@@ -12,7 +12,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from bridge.emit.fhir import bundle_json, to_bundle
-from bridge.emit.observations import EmitContext
+from bridge.emit.settings import EmitContext
 from bridge.pipeline import process
 from bridge.tables.files import load_tables
 

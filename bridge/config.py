@@ -26,8 +26,7 @@ from typing import Any
 from urllib.parse import urlsplit
 
 from bridge.emit.hl7v2 import IS_LENGTH
-from bridge.emit.observations import HEMOGLOBIN_UNITS
-from bridge.emit.settings import EmitSettings
+from bridge.emit.settings import HEMOGLOBIN_UNITS, EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings

@@ -31,7 +31,7 @@ from typing import Any, TextIO
 from bridge.audit.reduce import ArchiveReduce
 from bridge.audit.report import ReportWriter
 from bridge.audit.rows import Row, row_of, row_of_error
-from bridge.emit.fhir import to_ndjson
+from bridge.emit.fhir_ndjson import to_ndjson
 from bridge.errors import InputError, ProcessingFailed, UnreadableInput
 from bridge.pipeline import PipelineSettings, process_all
 from bridge.science.reference import ReferenceEquations

@@ -59,14 +59,8 @@ from types import MappingProxyType
 from urllib.parse import urlsplit
 
 from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
-from bridge.emit.observations import (
-    OUTPUT_REVISION,
-    EmitContext,
-    ReportContent,
-    ResultItem,
-    build_content,
-    supporting_text,
-)
+from bridge.emit.observations import OUTPUT_REVISION, ReportContent, ResultItem, build_content, supporting_text
+from bridge.emit.settings import EmitContext
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.model import Outcome, Patient, Sex
 from bridge.tables import Code, Tables

@@ -11,10 +11,8 @@ list, so the two outputs always carry the same content. Pure.
 
 from __future__ import annotations
 
-import re
 from collections.abc import Callable
 from dataclasses import dataclass, field, replace
-from datetime import datetime
 from types import MappingProxyType
 from typing import Literal
 
@@ -23,61 +21,12 @@ from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Code, Tables
 
-PatientReference = Literal["conditional-create", "identifier"]
 BRIDGE_NAME = "dlco-bridge"
 COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 # The one place that says the emitted bytes changed: bump it with every change of what the
 # same input produces (codes, values, identifiers, layout). It is part of the HL7 control id
 # (MSH-10), so a receiver that drops repeated MSH-10s still takes the newer output.
 OUTPUT_REVISION = 3
-# A placeholder base for the site's own identifier and code systems (RFC 2606 reserves
-# ``.example``): every site sets ``emit.system_base`` to a URL it controls.
-DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
-DEFAULT_SENDING_FACILITY = "PFT-LAB"
-
-
-@dataclass(frozen=True, slots=True)
-class EmitContext:
-    """Everything an emitter needs that is not in the record: time, identity, site settings.
-
-    The shell builds it (it reads the clock and the configuration); emitters never do.
-    """
-
-    now: datetime
-    units: UnitSystem = "traditional"
-    sending_application: str = "DLCO-BRIDGE"
-    sending_facility: str = DEFAULT_SENDING_FACILITY
-    receiving_application: str = "RECORDS"
-    receiving_facility: str = "HOSPITAL"
-    system_base: str = DEFAULT_SYSTEM_BASE  # the site's URL under which its own systems live
-    local_code_system: str | None = None  # FHIR URI for local codes; None: <system_base>/local-code
-    identifier_system: str | None = None  # observation identifiers; None: <system_base>/observation-id
-    patient_reference: PatientReference = "identifier"
-    correction: bool = False  # new content for a test id that was already sent
-    processing_id: str = "P"  # HL7 MSH-11: P production, T training, D debugging
-    lab_facilities: tuple[tuple[str, str], ...] = ()  # (lab name as exported, HL7 facility id)
-    patient_identifier_type: str = "MR"  # HL7 PID-3 CX.5 (table 0203): MR medical record number
-
-    @property
-    def observation_system(self) -> str:
-        """Identifier system of the observations and reports the bridge emits."""
-        return self.identifier_system or f"{self.system_base}/observation-id"
-
-    @property
-    def local_system(self) -> str:
-        """Code system of the local codes (``system = "local"`` in codes.toml)."""
-        return self.local_code_system or f"{self.system_base}/local-code"
-
-    @property
-    def source_system(self) -> str:
-        """Identifier system of an input file's SHA-256 (FHIR Provenance.entity)."""
-        return f"{self.system_base}/source-file"
-
-    def facility_of(self, lab_name: str) -> str:
-        """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
-        return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)
-
-    hemoglobin_unit: str | None = None  # g/L or g/dL; None: the unit system's display unit
 
 
 Flag = Literal["L", "H", "N"]
@@ -86,7 +35,6 @@ Z_SCORE_UNIT = "{Zscore}"
 GLI_SOURCE = "GLI-2017 (Stanojevic et al., Eur Respir J 2017;50:1700010, corrected 2020)"
 GLI_RANGE_TEXT = "GLI-2017 LLN-ULN (5th-95th percentile)"
 LAB_RANGE_TEXT = "LLN (5th percentile)"
-HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
 
 
 @dataclass(frozen=True, slots=True)
@@ -471,24 +419,3 @@ def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity]
         notes.append(f"Reference values computed by {BRIDGE_NAME}: {GLI_SOURCE}; " + ", ".join(graded) + ".")
     notes.extend(_finding_note(f, say) for f in outcome.findings if f.path not in attached)
     return tuple(notes)
-
-
-def lab_slug(name: str) -> str:
-    """``Lowmarsh Respiratory Lab (fictional)`` -> ``lowmarsh-respiratory-lab-fictional``."""
-    return re.sub(r"[^a-z0-9]+", "-", name.lower()).strip("-") or "lab"
-
-
-def observation_identifier(outcome: Outcome, key: str) -> str:
-    """Stable identifier value of one observation: lab + test id + quantity key.
-
-    Test ids are unique per lab only, so the lab is part of it; written as a slug so the
-    value needs no escaping in FHIR search URLs.
-    """
-    return f"{lab_slug(outcome.session.lab.name)}.{outcome.session.test_id}.{key}"
-
-
-def code_system_uri(code: Code, tables: Tables, context: EmitContext) -> str:
-    """The FHIR Coding.system of a code: LOINC from codes.toml, local codes from the site."""
-    if code.system == "local":
-        return context.local_system
-    return tables.codes.systems[code.system]

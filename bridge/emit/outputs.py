@@ -12,7 +12,8 @@ from collections.abc import Collection, Sequence
 
 from bridge.emit.fhir import bundle_json, require_aware
 from bridge.emit.hl7v2 import control_id, to_oru
-from bridge.emit.observations import EmitContext, build_content
+from bridge.emit.observations import build_content
+from bridge.emit.settings import EmitContext
 from bridge.errors import BlockedByFinding, MissingField
 from bridge.model import Outcome, OutputKind, Payload, Severity
 from bridge.tables import Tables

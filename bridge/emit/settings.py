@@ -2,24 +2,31 @@
 
 Owns: :class:`EmitSettings` (sending and receiving application and facility, the facility id of
 each lab, the site's base URL for its own identifier and code systems, how the patient is
-referred to, the patient identifier type, the HL7 processing id) and turning them, with the
-time the shell read and the destination's units, into the emitters' :class:`EmitContext`.
-Checking the values is ``bridge.config``'s job when it reads them.
+referred to, the patient identifier type, the HL7 processing id, the haemoglobin unit) and
+:class:`EmitContext`, what an emitter is given for one message: these settings with the time
+the shell read, the destination's units and whether it is a correction. Checking the values
+is ``bridge.config``'s job when it reads them.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from datetime import datetime
+from typing import Literal
 
-from bridge.emit.observations import DEFAULT_SENDING_FACILITY, DEFAULT_SYSTEM_BASE, EmitContext, PatientReference
 from bridge.science.units import UnitSystem
+
+PatientReference = Literal["conditional-create", "identifier"]
+# A placeholder base for the site's own identifier and code systems (RFC 2606 reserves
+# ``.example``): every site sets ``emit.system_base`` to a URL it controls.
+DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
+HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
 
 
 @dataclass(frozen=True, slots=True)
 class EmitSettings:
     sending_application: str = "DLCO-BRIDGE"
-    sending_facility: str = DEFAULT_SENDING_FACILITY  # MSH-4 for a lab not in lab_facilities
+    sending_facility: str = "PFT-LAB"  # MSH-4 for a lab not in lab_facilities
     receiving_application: str = "RECORDS"
     receiving_facility: str = "HOSPITAL"
     system_base: str = DEFAULT_SYSTEM_BASE  # an https:// URL the site controls; the default is a placeholder
@@ -52,3 +59,51 @@ class EmitSettings:
             patient_identifier_type=self.patient_identifier_type,
             hemoglobin_unit=self.hemoglobin_unit,
         )
+
+
+_SITE = EmitSettings()  # the defaults, read by EmitContext's fields: written once, above
+
+
+@dataclass(frozen=True, slots=True)
+class EmitContext:
+    """Everything an emitter needs that is not in the record: time, identity, site settings.
+
+    The shell builds it (it reads the clock and the configuration), usually with
+    :meth:`EmitSettings.context`; emitters never do. The site's fields mean what they mean
+    in :class:`EmitSettings` and default to its defaults.
+    """
+
+    now: datetime
+    units: UnitSystem = "traditional"
+    sending_application: str = _SITE.sending_application
+    sending_facility: str = _SITE.sending_facility
+    receiving_application: str = _SITE.receiving_application
+    receiving_facility: str = _SITE.receiving_facility
+    system_base: str = _SITE.system_base
+    local_code_system: str | None = _SITE.local_code_system
+    identifier_system: str | None = _SITE.identifier_system
+    patient_reference: PatientReference = _SITE.patient_reference
+    correction: bool = False  # new content for a test id that was already sent
+    processing_id: str = _SITE.processing_id
+    lab_facilities: tuple[tuple[str, str], ...] = _SITE.lab_facilities
+    patient_identifier_type: str = _SITE.patient_identifier_type
+    hemoglobin_unit: str | None = _SITE.hemoglobin_unit
+
+    @property
+    def observation_system(self) -> str:
+        """Identifier system of the observations and reports the bridge emits."""
+        return self.identifier_system or f"{self.system_base}/observation-id"
+
+    @property
+    def local_system(self) -> str:
+        """Code system of the local codes (``system = "local"`` in codes.toml)."""
+        return self.local_code_system or f"{self.system_base}/local-code"
+
+    @property
+    def source_system(self) -> str:
+        """Identifier system of an input file's SHA-256 (FHIR Provenance.entity)."""
+        return f"{self.system_base}/source-file"
+
+    def facility_of(self, lab_name: str) -> str:
+        """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
+        return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)

@@ -33,8 +33,9 @@ from fhir.resources.R4B.bundle import Bundle
 from fhirpathpy import evaluate
 from ucumvert import get_ucum_parser
 
-from bridge.emit.fhir import bundle_json, to_bundle, to_ndjson
-from bridge.emit.observations import EmitContext
+from bridge.emit.fhir import bundle_json, to_bundle
+from bridge.emit.fhir_ndjson import to_ndjson
+from bridge.emit.settings import EmitContext
 from bridge.model import Outcome
 from bridge.pipeline import process
 from bridge.tables import Tables

@@ -30,8 +30,9 @@ from ucumvert import parse_ucum
 from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7text import escape, escape_formatted, split_fields, split_segments, unescape
 from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_text, to_oru
-from bridge.emit.observations import OUTPUT_REVISION, EmitContext, build_content
+from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.outputs import payloads
+from bridge.emit.settings import EmitContext
 from bridge.errors import ConfigError, InvalidField
 from bridge.model import Outcome
 from bridge.pipeline import process
