@@ -37,8 +37,11 @@ def _carried_text(value: str) -> str:
     return value
 
 
+_WHITE_SPACE = re.compile(r"\s")
+
+
 def _uri(value: str) -> str:
-    if not value or any(c.isspace() for c in value) or _NOT_CARRIED.search(value):
+    if not value or _WHITE_SPACE.search(value) or _NOT_CARRIED.search(value):
         raise ValueError("a URI or OID without white space")
     return value
 

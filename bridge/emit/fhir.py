@@ -141,7 +141,9 @@ class _Parts:
 
     def entry(self, full_url: str, resource: Resource, kind: str, key: str) -> Resource:
         """Entry with its request: conditional create, or conditional update for a correction."""
-        query = self.query_prefix + token_part(key)  # token_query of the identifier, its prefix encoded once
+        # token_query of the identifier: the prefix encoded once per Bundle; a key needs no
+        # encoding (the code table admits only lower-case letters, digits and underscores).
+        query = self.query_prefix + key
         if self.correction:
             request = {"method": "PUT", "url": f"{kind}?{query}"}
         else:

@@ -55,6 +55,7 @@ import re
 from collections.abc import Iterable
 from datetime import date, datetime
 from decimal import Decimal
+from functools import cache
 from types import MappingProxyType
 from urllib.parse import urlsplit
 
@@ -266,11 +267,15 @@ def _components(*parts: str) -> str:
     return "^".join(parts).rstrip("^")
 
 
+# The CE of a code and the text of a unit depend on the code table's entries alone (immutable):
+# each is built once per process, not once per OBX.
+@cache
 def _unit_text(unit: str, key: str) -> str:
     """OBX-6 text of a UCUM code."""
     return _code_text(unit, "units.toml", f"unit of {key}")
 
 
+@cache
 def _coded(code: Code, key: str) -> str:
     """CE: identifier^text^coding system (OBR-4, OBX-3)."""
     identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")

@@ -2,11 +2,16 @@
 
 from __future__ import annotations
 
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass
 
 from bridge.errors import MappingError
 from bridge.tables.toml import read_toml
+
+# A quantity key becomes part of observation identifiers and FHIR search URLs as it is written,
+# so it is limited to characters that need no escaping in either.
+_KEY = re.compile(r"[a-z][a-z0-9_]*")
 
 
 @dataclass(frozen=True, slots=True)
@@ -40,6 +45,9 @@ class CodeTable:
             raise MappingError(name, "systems", "exactly the key loinc")
         names = (*systems, "local")  # a local code's URI comes from the site's settings
         codes = {key: _code(name, f"codes.{key}", entry, names) for key, entry in data.get("codes", {}).items()}
+        for key in codes:
+            if not _KEY.fullmatch(key):
+                raise MappingError(name, f"codes.{key}", "a key of lower-case letters, digits and underscores")
         return cls(codes, _code(name, "panel", data.get("panel", {}), names), systems)
 
 

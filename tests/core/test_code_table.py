@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from urllib.parse import quote
+
 import pytest
 
 from bridge.errors import MappingError
@@ -70,3 +72,20 @@ def test_a_code_of_an_unknown_system_is_refused():
 
     with pytest.raises(MappingError, match=r"^codes\.toml: codes\.va: system \(loinc or local\), code and display$"):
         CodeTable.from_toml(text)
+
+
+@pytest.mark.parametrize("key", ["DLCO", "dlco-sb", "dlco|x", "dlco x", "2dlco", "dlço"])
+def test_a_key_that_would_need_escaping_is_refused(key: str):
+    """Keys go into identifiers and FHIR search URLs unencoded, so only a-z, 0-9 and _ are taken."""
+    # source: RFC 3986 section 2.3, unreserved characters (letters, digits, - . _ ~): the table
+    # keeps to the lower-case letters, digits and underscore among them
+    text = WITHOUT_LOCAL.replace("[codes.va]", f'[codes."{key}"]')
+
+    with pytest.raises(MappingError, match=r"a key of lower-case letters, digits and underscores"):
+        CodeTable.from_toml(text)
+
+
+def test_every_bundled_key_is_used_unencoded_in_the_fhir_search(tables: Tables):
+    """What the FHIR emitter relies on: percent-encoding leaves every bundled key unchanged."""
+    # source: Python's urllib.parse.quote, RFC 3986 percent-encoding
+    assert [key for key in tables.codes.codes if quote(key, safe="") != key] == []
