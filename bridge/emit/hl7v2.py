@@ -43,7 +43,7 @@ Decisions:
 * Blood values (Hb, COHb) are not results of the PFT order, so they get no OBX of their own
   (OBX-11 has no status for "supporting data": table 0085): an NTE after the OBX of the result
   they qualify carries each, saying so.
-* MSH-10 hashes the input's content, the units, original or correction, and
+* MSH-10 hashes the input's content, the test (lab and test id), the units, original or correction, and
   :data:`~bridge.emit.observations.OUTPUT_REVISION`: a resend is recognisable; a newer
   bridge's different output is not dropped as a duplicate.
 """
@@ -60,6 +60,7 @@ from types import MappingProxyType
 from urllib.parse import urlsplit
 
 from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
+from bridge.emit.identifiers import observation_identifier
 from bridge.emit.observations import OUTPUT_REVISION, ReportContent, ResultItem, build_content, supporting_text
 from bridge.emit.settings import EmitContext
 from bridge.errors import ConfigError, InvalidField, MappingError
@@ -114,9 +115,14 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
 
 
 def control_id(outcome: Outcome, context: EmitContext, revision: int = OUTPUT_REVISION) -> str:
-    """MSH-10: the same for a resend of the same content, new for a correction, other units or a new output revision."""
+    """MSH-10: the same for a resend of the same content, new for a correction, other units or a new output revision.
+
+    The test (lab and test id) is part of it: a file read through a field map may hold many
+    sessions, each its own message with its own control id.
+    """
     flag = "correction" if context.correction else "original"
-    basis = f"{outcome.source_sha256}|{context.units}|{flag}|revision {revision}"
+    test = observation_identifier(outcome, "")
+    basis = f"{outcome.source_sha256}|{test}|{context.units}|{flag}|revision {revision}"
     return hashlib.sha256(basis.encode("utf-8")).hexdigest()[:CONTROL_ID_LENGTH]
 
 

@@ -26,7 +26,7 @@ COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 # The one place that says the emitted bytes changed: bump it with every change of what the
 # same input produces (codes, values, identifiers, layout). It is part of the HL7 control id
 # (MSH-10), so a receiver that drops repeated MSH-10s still takes the newer output.
-OUTPUT_REVISION = 3
+OUTPUT_REVISION = 4
 
 
 Flag = Literal["L", "H", "N"]

@@ -593,6 +593,18 @@ def test_blood_values_are_notes_not_results(sample_outcomes, tables, tmp_path):
 # ---------- control ids across upgrades (issue 8, item 12) ----------
 
 
+def test_two_sessions_of_one_file_get_their_own_control_ids(sample_outcomes):
+    """A file of many sessions (a field map's CSV) gives each session's message its own MSH-10."""
+    # source: HL7 v2.5.1 ch. 2, MSH-10: unique per message from one sender; a receiver (and the
+    # outbox) drops a repeated id as a duplicate, so the second session would be lost
+    outcome = sample_outcomes["01-healthy-adult"]
+    other = outcome.model_copy(update={"session": outcome.session.model_copy(update={"test_id": "OTHER-1"})})
+    context = EmitContext(now=NOW)
+
+    assert outcome.source_sha256 == other.source_sha256  # the same file
+    assert control_id(outcome, context) != control_id(other, context)
+
+
 def test_control_id_changes_with_the_output_revision(sample_outcomes):
     """A newer output revision gives a new MSH-10 for the same input; the same revision repeats it."""
     # source: HL7 v2.5.1 ch. 2, MSH-10 message control id: a receiver may drop a repeated id as a duplicate

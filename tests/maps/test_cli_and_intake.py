@@ -101,3 +101,35 @@ def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path
     assert ("processed", ["LOW-2026-0003"], 1) == (result.result, pending, len(reports))
     assert "lowmarsh.csv: line 2, column 'Born': a date in the map's format %d.%m.%Y, got '1965-08-19'" == reason
     assert [] == list(service.inbox.iterdir())
+
+
+def test_a_later_file_for_the_second_session_of_a_many_session_file_is_a_correction(tmp_path):
+    """Every test id of a many-session file counts for correction detection, not only the first.
+
+    The sample holds LOW-2026-0002 then LOW-2026-0003; a later file with new content for
+    LOW-2026-0003 alone is a correction (HL7 v2.5.1 OBR-25 / OBX-11 "C": corrected results).
+    """
+    # source: HL7 v2.5.1 chapter 7, tables 0123 and 0085 (C: correction of a result already sent)
+    config = (
+        'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n'
+        f'[maps]\n"*.csv" = "{CSV_MAP}"\n'
+        '[destination.drop]\npayload = "hl7"\ntransport = "file"\nfolder = "out"\n'
+    )
+    settings = parse_settings(config, {}, base=tmp_path)
+    service = settings.require_service()
+    service.inbox.mkdir()
+    lines = CSV_SAMPLE.read_bytes().split(b"\n")
+    header, second = lines[0], [line for line in lines if line.startswith(b"LOW-2026-0003;")]
+    first = service.inbox / "lowmarsh.csv"
+    first.write_bytes(CSV_SAMPLE.read_bytes())
+    later = service.inbox / "lowmarsh-0003-corrected.csv"
+    # the reported TLCO of LOW-2026-0003, 9,77 -> 9,87 mmol/min/kPa: new content for that test
+    later.write_bytes(b"\n".join([header, *(line.replace(b";9,77;", b";9,87;") for line in second)]) + b"\n")
+    with Ledger.open(service.ledger_path) as ledger:
+        intake = Intake(settings, load_tables(), ledger, Metrics(time.time))
+        results = [intake.take(path, time.time()).result for path in (first, later)]
+        pending = [(row.test_id, row.message_id) for row in ledger.rows("pending")]
+
+    assert ["processed", "correction"] == results
+    assert ["LOW-2026-0002", "LOW-2026-0003", "LOW-2026-0003"] == [test_id for test_id, _ in pending]
+    assert len({message_id for _, message_id in pending}) == 3  # each message has a control id of its own

@@ -2,7 +2,8 @@
 
 Owns opening the file (create and migrate it, or only check its version for a reader) and
 what spans inputs and outbox: recording an input together with its messages in one
-transaction, and the summary ``status`` and ``/metrics`` report. Everything else it inherits
+transaction, the latest accepted input of a test id (to recognise a correction), and the
+summary ``status`` and ``/metrics`` report. Everything else it inherits
 from :class:`.inputs.InputLedger`, :class:`.outbox.OutboxLedger` and
 :class:`.retention.RetentionLedger`. It must not read inputs,
 build messages, talk to receivers or log.
@@ -16,7 +17,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from bridge.service.ledger.database import configure, connect, translated
-from bridge.service.ledger.inputs import InputLedger, NewInput, input_counts, insert_input
+from bridge.service.ledger.inputs import InputLedger, InputRecord, NewInput, input_counts, input_record, insert_input
 from bridge.service.ledger.outbox import (
     DestinationSummary,
     NewMessage,
@@ -91,6 +92,19 @@ class Ledger(InputLedger, OutboxLedger, RetentionLedger):
             if not insert_input(conn, new, now):
                 return ids_of_input(conn, new.sha256)
             return [enqueue(conn, message, new.sha256, now) for message in messages]
+
+    def last_for_test(self, test_id: str) -> InputRecord | None:
+        """The latest accepted input that carried ``test_id``, to recognise a correction.
+
+        A one-session input names its test id in its own row; a file of many sessions names
+        only its first there, and every test id in its messages.
+        """
+        row = self._one(
+            "SELECT * FROM inputs WHERE state <> 'quarantined' AND (test_id = ? OR sha256 IN "
+            "(SELECT input_sha256 FROM outbox WHERE test_id = ?)) ORDER BY first_seen DESC, rowid DESC LIMIT 1",
+            (test_id, test_id),
+        )
+        return None if row is None else input_record(row)
 
     def summary(self) -> LedgerSummary:
         """Inputs and outbox rows counted, and the age of the oldest pending message."""

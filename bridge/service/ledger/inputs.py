@@ -1,9 +1,9 @@
 """The inputs the service has read, by the SHA-256 of their content.
 
 Owns the ``inputs`` and ``repeated_drops`` rows: what became of each content (processed,
-correction, quarantined), the latest accepted input of a test id (to recognise a
-correction), and each time the same content was dropped again. It must not touch the outbox:
-recording an input together with its messages is one transaction of the :class:`Ledger`.
+correction, quarantined) and each time the same content was dropped again. It must not touch
+the outbox: recording an input together with its messages is one transaction of the
+:class:`Ledger`, and so is finding the latest input of a test id (to recognise a correction).
 """
 
 from __future__ import annotations
@@ -46,16 +46,7 @@ class InputLedger(Database):
     def seen(self, sha256: str) -> InputRecord | None:
         """The input with this content hash, if it was ever recorded."""
         row = self._one("SELECT * FROM inputs WHERE sha256 = ?", (sha256,))
-        return None if row is None else _input(row)
-
-    def last_for_test(self, test_id: str) -> InputRecord | None:
-        """The latest accepted input for ``test_id``, to recognise a correction."""
-        row = self._one(
-            "SELECT * FROM inputs WHERE test_id = ? AND state <> 'quarantined' "
-            "ORDER BY first_seen DESC, rowid DESC LIMIT 1",
-            (test_id,),
-        )
-        return None if row is None else _input(row)
+        return None if row is None else input_record(row)
 
     def record_quarantine(self, sha256: str, source: str, reason: str) -> None:
         """Remember that this input was quarantined, and why."""
@@ -94,7 +85,7 @@ def input_counts(conn: sqlite3.Connection) -> dict[str, int]:
     return counts
 
 
-def _input(row: sqlite3.Row) -> InputRecord:
+def input_record(row: sqlite3.Row) -> InputRecord:
     return InputRecord(
         sha256=row["sha256"],
         source=row["source"],

@@ -83,6 +83,11 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
         "CREATE INDEX inputs_by_age ON inputs (first_seen)",
         "CREATE INDEX repeated_drops_by_age ON repeated_drops (at)",
     ),
+    (
+        # A file of many sessions (a field map's CSV or HL7 batch) is one input row under its
+        # first test id; its messages carry every test id. Correction detection looks there.
+        "CREATE INDEX outbox_by_test ON outbox (test_id, input_sha256)",
+    ),
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 
