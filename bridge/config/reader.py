@@ -22,6 +22,7 @@ from bridge.emit.settings import EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings
+from bridge.science.derive import REFERENCE_BASES
 from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 from bridge.service.settings import (
     ANSWER_POLICIES,
@@ -29,6 +30,7 @@ from bridge.service.settings import (
     Destination,
     ServiceSettings,
 )
+from bridge.tables.files import repeatability_criteria
 
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
@@ -62,7 +64,7 @@ def _default(cls: type, name: str) -> Any:
 
 
 _SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
-_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate"}
+_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate", "repeatability", "reference_basis"}
 _GENERAL_KEYS = {"units", "traditional_per_si", "to", "map"}
 TOP_LEVEL_KEYS = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
 _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
@@ -125,6 +127,12 @@ class SettingsReader(ValueChecker):
             allow=allow,
             validate_outputs=validate,
             emit=self.emit(d.get("emit", {})),
+            repeatability=self.choice(
+                "repeatability", d.get("repeatability", defaults.repeatability), repeatability_criteria()
+            ),
+            reference_basis=self.choice(  # type: ignore[arg-type]
+                "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
+            ),
         )
 
     def emit(self, e: Any) -> EmitSettings:

@@ -26,6 +26,7 @@ from bridge.science.findings import (
     relative_difference,
 )
 from bridge.science.physiology import COHB_BASELINE_PERCENT
+from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.tables import Tables
 
 ADJUSTMENT_TOLERANCE = 0.02
@@ -135,11 +136,15 @@ def check_pressure(session: Session, derived: Derived, tables: Tables) -> Iterat
         )
     adjusted = derived.dlco_pressure_adjusted
     if adjusted is not None and gas.pb_mmhg < LOW_PRESSURE_MMHG:
+        uses = {  # what per cent predicted compares follows the site's reference_basis
+            "pressure_adjusted": "per cent predicted uses it.",
+            "hb_and_pressure_adjusted": "per cent predicted uses it, adjusted to standard Hb as well.",
+        }.get(derived.dlco_basis or "", "per cent predicted uses the measured value.")
         yield finding_with_values(
             "PRESSURE_ADJUSTMENT",
             Severity.INFO,
             "conditions.barometric_pressure",
-            "measured at PB {pb}: DLCO adjusted to sea level (PIO2 {pio2}) is {adjusted}; per cent predicted uses it.",
+            "measured at PB {pb}: DLCO adjusted to sea level (PIO2 {pio2}) is {adjusted}; " + uses,
             pb=message_quantity(gas.pb_mmhg, PRESSURE_UNIT, 0),
             pio2=message_quantity(150.0, PRESSURE_UNIT, 0),
             adjusted=message_quantity(adjusted.value, DLCO_UNIT, 1),
@@ -171,14 +176,17 @@ def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterato
         used = [a for a in derived.manoeuvres if a.index in derived.reported_manoeuvres and a.dlco is not None]
         dlcos = [a.dlco.value for a in used if a.dlco is not None]
         numbers = ", ".join(str(a.index + 1) for a in used)
+        rule = tables.grades.criterion(derived.repeatability_criterion or DEFAULT_REPEATABILITY)
+        highest = rule.max_percent_of_highest
+        percent = f" or {highest:g} % of the highest" if highest is not None else ""
         yield finding_with_values(
             "NOT_REPEATABLE",
             Severity.WARNING,
             "manoeuvres",
-            f"manoeuvres {numbers}, which make the reported value, span {{span}}, "
-            "more than the {limit} the standard allows.",
+            f"manoeuvres {numbers}, which make the reported value, span {{span}}: not repeatable by the "
+            f"{rule.standard} criterion (within {{limit}}{percent}).",
             span=message_quantity(max(dlcos) - min(dlcos), DLCO_UNIT, 1),
-            limit=bound_quantity(tables.grades.max_dlco_difference, DLCO_UNIT),
+            limit=bound_quantity(rule.max_dlco_difference, DLCO_UNIT),
         )
 
 
@@ -194,6 +202,19 @@ def check_reference(session: Session, derived: Derived, tables: Tables) -> Itera
     )
 
 
+def check_reference_basis(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    """Say when the adjustment reference_basis asks for could not be made (the measured value is compared)."""
+    if derived.reference_basis_fallback is None:
+        return
+    yield finding(
+        "REFERENCE_BASIS_FALLBACK",
+        Severity.INFO,
+        "conditions.hemoglobin",
+        "per cent predicted and z-scores compare the measured DLCO and KCO: the site compares them adjusted "
+        f"to standard Hb (reference_basis hb_adjusted), but {derived.reference_basis_fallback}.",
+    )
+
+
 DEFAULT_RULES: tuple[Rule, ...] = (
     check_unit_mislabel,
     check_kco,
@@ -205,6 +226,7 @@ DEFAULT_RULES: tuple[Rule, ...] = (
     check_pressure,
     check_quality,
     check_reference,
+    check_reference_basis,
 )
 
 

@@ -3,17 +3,21 @@
 Owns: turning the record's quantities into the plain numbers ``physiology`` and ``quality``
 work on, and their answers back into quantities (canonical units, see ``bridge.model``):
 KCO, Hb-, COHb- and pressure-adjusted DLCO, per-manoeuvre VA and DLCO from the gas data,
-grades and the reported mean, and the GLI-2017 reference values of DLCO, KCO and VA (the
-equations are ``tables.reference``). Inputs must be normalised first. Pure.
+grades and the reported mean (repeatable by the criterion the caller names), and the GLI-2017
+reference values of DLCO, KCO and VA (the equations are ``tables.reference``), compared on the
+basis the caller names (``reference_basis``). Inputs must be normalised first. Pure.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Literal
 
 from bridge.model import (
+    ComparedBasis,
     Derived,
     Manoeuvre,
     ManoeuvreAssessment,
@@ -24,7 +28,14 @@ from bridge.model import (
     number_text,
 )
 from bridge.science import physiology as phys
-from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
+from bridge.science.quality import (
+    DEFAULT_REPEATABILITY,
+    Grade,
+    ManoeuvreFacts,
+    Selection,
+    grade_manoeuvres,
+    select_reported,
+)
 from bridge.science.reference import UNITS, Lms, OutsideRange, Parameter, ReferenceEquations, abnormal_flag, impairment
 from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
@@ -35,6 +46,22 @@ KCO_UNIT = "mL/min/mm[Hg]/L"
 DEFAULT_ROOM_TEMPERATURE_C = 23.0
 # The name outputs give the reference set of bridge.science.reference (Stanojevic et al., ERJ 2017;50:1700010).
 REFERENCE_SET = "GLI-2017"
+# Which value per cent predicted and the z-scores of DLCO and KCO compare (the setting
+# reference_basis): adjusted to sea level (the default: ERS/ATS 2017 DLCO standard; Stanojevic
+# et al. 2017 recommend TLCO adjusted to standard pressure and not for Hb), as measured, or
+# adjusted to standard Hb (Cotes) and, where the pressure adjustment applies, to sea level too.
+ReferenceBasis = Literal["pressure_adjusted", "measured", "hb_adjusted"]
+REFERENCE_BASES: tuple[ReferenceBasis, ...] = ("pressure_adjusted", "measured", "hb_adjusted")
+DEFAULT_REFERENCE_BASIS: ReferenceBasis = "pressure_adjusted"
+# How people read a compared basis (check, the outputs' notes, findings).
+BASIS_WORDS: Mapping[ComparedBasis, str] = MappingProxyType(
+    {
+        "measured": "measured",
+        "pressure_adjusted": "adjusted to sea level",
+        "hb_adjusted": "adjusted to standard Hb",
+        "hb_and_pressure_adjusted": "adjusted to standard Hb and to sea level",
+    }
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,8 +93,29 @@ def gas_conditions(session: Session) -> GasConditions:
     return GasConditions(pb, pb_assumed, DEFAULT_ROOM_TEMPERATURE_C, True)
 
 
-def derive(session: Session, tables: Tables) -> Derived:
-    """Everything recomputable from a normalised session."""
+@dataclass(frozen=True, slots=True)
+class Compared:
+    """The DLCO and KCO that per cent predicted and the z-scores compare, and on what basis."""
+
+    dlco: Quantity | None
+    dlco_basis: ComparedBasis | None
+    kco: Quantity | None
+    kco_basis: ComparedBasis | None
+    fallback: str | None  # why the asked adjustment could not be made
+
+
+def derive(
+    session: Session,
+    tables: Tables,
+    *,
+    repeatability: str = DEFAULT_REPEATABILITY,
+    reference_basis: ReferenceBasis = DEFAULT_REFERENCE_BASIS,
+) -> Derived:
+    """Everything recomputable from a normalised session.
+
+    ``repeatability``: the name of the repeatability criterion (mappings/quality_grades.toml);
+    ``reference_basis``: which value per cent predicted and the z-scores compare.
+    """
     age = age_in_years(session)
     gas = gas_conditions(session)
     measured = session.results.dlco
@@ -93,14 +141,16 @@ def derive(session: Session, tables: Tables) -> Derived:
             )
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
-        selection = _selection(computed, grades, tables)
+        selection = _selection(computed, grades, tables, repeatability)
         not_evaluated = _not_evaluated(grades, selection.indices)
         dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
         va_from = _mean_of(computed, selection.indices, 0, "L")
+    hb = hb_factor(session, age)
+    compared = _compared(session, reference_basis, kco, pressure, hb, dlco_at_sea_level, kco_at_sea_level)
     return Derived(
         age_years=round(age, 2),
         kco=kco,
-        dlco_hb_adjusted=_scaled(measured, hb_factor(session, age)),
+        dlco_hb_adjusted=_scaled(measured, hb),
         dlco_pressure_adjusted=dlco_at_sea_level,
         kco_pressure_adjusted=kco_at_sea_level,
         dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
@@ -111,50 +161,96 @@ def derive(session: Session, tables: Tables) -> Derived:
         reported_manoeuvres=selection.indices if selection else (),
         grade_not_evaluated=not_evaluated,
         repeatable=selection.repeatable if selection else None,
+        repeatability_criterion=repeatability if selection else None,
         quality_caution=selection.caution if selection else None,
-        # S17: the measured value is adjusted to sea level before it is compared with predicted.
-        dlco_percent_predicted=_percent(dlco_at_sea_level or measured, _pred(session, "dlco")),
-        kco_percent_predicted=_percent(kco_at_sea_level or session.results.kco, _pred(session, "kco")),
+        dlco_percent_predicted=_percent(compared.dlco, _pred(session, "dlco")),
+        kco_percent_predicted=_percent(compared.kco if session.results.kco else None, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
-        **_references(session, age, tables.reference, dlco_at_sea_level, kco, pressure, tables.units),
+        dlco_basis=compared.dlco_basis,
+        kco_basis=compared.kco_basis,
+        reference_basis_fallback=compared.fallback,
+        **_references(session, age, tables.reference, compared),
     )
+
+
+def _compared(
+    session: Session,
+    basis: ReferenceBasis,
+    kco: Quantity | None,
+    pressure: float | None,
+    hb: float | None,
+    dlco_at_sea_level: Quantity | None,
+    kco_at_sea_level: Quantity | None,
+) -> Compared:
+    """The DLCO and KCO per cent predicted and the z-scores compare, as ``basis`` asks.
+
+    KCO is the reported one, else DLCO/VA computed here (adjusted exactly when DLCO is). Where
+    the asked adjustment cannot be made (no Hb for "hb_adjusted"), the measured values are
+    compared and ``fallback`` says why. No pressure or altitude, or an adjustment that does not
+    change the value at its reported precision: the pressure adjustment does not apply, silently.
+    """
+    r = session.results
+    dlco, reported_kco = r.dlco, r.kco or kco
+    if r.kco is None and kco is not None and dlco_at_sea_level is not None:
+        kco_at_sea_level = _scaled(kco, pressure)
+    if dlco is None and reported_kco is None:
+        return Compared(None, None, None, None, None)
+    if basis == "measured":
+        return Compared(dlco, _basis_of(dlco, "measured"), reported_kco, _basis_of(reported_kco, "measured"), None)
+    if basis == "pressure_adjusted":
+        return Compared(
+            dlco_at_sea_level or dlco,
+            _basis_of(dlco, "pressure_adjusted" if dlco_at_sea_level else "measured"),
+            kco_at_sea_level or reported_kco,
+            _basis_of(reported_kco, "pressure_adjusted" if kco_at_sea_level else "measured"),
+            None,
+        )
+    if hb is None:
+        why = (
+            "no haemoglobin was reported"
+            if session.conditions.hemoglobin is None
+            else (f"sex {session.patient.sex.value!r} has no Hb adjustment")
+        )
+        return Compared(dlco, _basis_of(dlco, "measured"), reported_kco, _basis_of(reported_kco, "measured"), why)
+    dlco_factor = hb * pressure if dlco_at_sea_level is not None and pressure is not None else hb
+    kco_factor = hb * pressure if kco_at_sea_level is not None and pressure is not None else hb
+    return Compared(
+        _scaled(dlco, dlco_factor),
+        _basis_of(dlco, "hb_and_pressure_adjusted" if dlco_factor != hb else "hb_adjusted"),
+        _scaled(reported_kco, kco_factor),
+        _basis_of(reported_kco, "hb_and_pressure_adjusted" if kco_factor != hb else "hb_adjusted"),
+        None,
+    )
+
+
+def _basis_of(value: Quantity | None, basis: ComparedBasis) -> ComparedBasis | None:
+    return basis if value is not None else None
 
 
 def _references(
-    session: Session,
-    age: float,
-    equations: ReferenceEquations,
-    dlco_at_sea_level: Quantity | None,
-    kco: Quantity | None,
-    pressure: float | None,
-    catalogue: UnitCatalogue,
+    session: Session, age: float, equations: ReferenceEquations, compared: Compared
 ) -> dict[str, ReferenceValue | str | None]:
     """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none.
 
-    ERS/ATS 2017 DLCO standard and Stanojevic et al. 2017: the measured DLCO and KCO are adjusted
-    to sea level (standard PIO2) before they are compared with the predicted values.
+    DLCO and KCO are compared as ``compared`` holds them (the site's reference_basis); VA as measured.
     """
     r = session.results
-    reported_kco: Quantity | None
-    if r.kco is not None:
-        reported_kco, kco_at_sea_level = r.kco, _adjusted(r.kco, pressure, catalogue)
-    else:  # DLCO/VA computed here follows DLCO: adjusted exactly when DLCO is
-        reported_kco, kco_at_sea_level = kco, (_scaled(kco, pressure) if dlco_at_sea_level is not None else None)
+    va_basis: ComparedBasis | None = "measured" if r.va is not None else None
     wanted = (
-        ("reference_dlco", Parameter.DLCO, "DLCO", r.dlco, dlco_at_sea_level),
-        ("reference_kco", Parameter.KCO_TRAD, "KCO", reported_kco, kco_at_sea_level),
-        ("reference_va", Parameter.VA, "VA", r.va, None),
+        ("reference_dlco", Parameter.DLCO, "DLCO", compared.dlco, compared.dlco_basis),
+        ("reference_kco", Parameter.KCO_TRAD, "KCO", compared.kco, compared.kco_basis),
+        ("reference_va", Parameter.VA, "VA", r.va, va_basis),
     )
     fields: dict[str, ReferenceValue | str | None] = {}
     reasons: list[str] = []
-    for name, parameter, label, value, adjusted in wanted:
-        if value is None:
+    for name, parameter, label, value, basis in wanted:
+        if value is None or basis is None:
             continue
         lms = equations.lms(parameter, session.patient.sex, age, session.patient.height.value)
         if isinstance(lms, OutsideRange):  # the person is outside the equations: the same reason for each
             reasons.append(lms.reason)
             continue
-        found = _reference(parameter, lms, value, adjusted)
+        found = _reference(parameter, lms, value, basis)
         if isinstance(found, OutsideRange):
             reasons.append(f"{label}: {found.reason}")
         else:
@@ -165,9 +261,8 @@ def _references(
 
 
 def _reference(
-    parameter: Parameter, lms: Lms, value: Quantity, adjusted: Quantity | None
+    parameter: Parameter, lms: Lms, compared: Quantity, basis: ComparedBasis
 ) -> ReferenceValue | OutsideRange:
-    compared = adjusted or value
     z = lms.z_score(compared.value)
     percent = lms.percent_predicted(compared.value)
     if isinstance(z, OutsideRange):
@@ -178,7 +273,7 @@ def _reference(
     decimals = 1 if parameter is Parameter.DLCO else 2
     return ReferenceValue(
         reference_set=REFERENCE_SET,
-        basis="measured" if adjusted is None else "pressure_adjusted",
+        basis=basis,
         compared=compared,
         predicted=Quantity(value=lms.predicted, unit=unit, decimals=decimals),
         lln=Quantity(value=lms.lln, unit=unit, decimals=decimals),
@@ -265,12 +360,12 @@ def _not_evaluated(grades: Sequence[Grade], indices: Sequence[int]) -> tuple[str
 
 
 def _selection(
-    computed: Sequence[tuple[float | None, float | None]], grades: Sequence[Grade], tables: Tables
+    computed: Sequence[tuple[float | None, float | None]], grades: Sequence[Grade], tables: Tables, criterion: str
 ) -> Selection:
     usable = [i for i, (_, dlco) in enumerate(computed) if dlco is not None]
     dlcos = [dlco if dlco is not None else 0.0 for _, dlco in computed]
     masked = [g if i in usable else Grade("F", ("no DLCO from gas data",)) for i, g in enumerate(grades)]
-    return select_reported(masked, dlcos, tables.grades)
+    return select_reported(masked, dlcos, tables.grades, criterion)
 
 
 def _mean_of(
