@@ -71,6 +71,11 @@ _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
 
 
+def _name(value: Any) -> Any:
+    """A criterion name written as a number in TOML (``repeatability = 2005``) is the same name."""
+    return str(value) if isinstance(value, int) and not isinstance(value, bool) else value
+
+
 class SettingsReader(ValueChecker):
     """Typed access to the merged settings tree, each error naming its key."""
 
@@ -128,7 +133,7 @@ class SettingsReader(ValueChecker):
             validate_outputs=validate,
             emit=self.emit(d.get("emit", {})),
             repeatability=self.choice(
-                "repeatability", d.get("repeatability", defaults.repeatability), repeatability_criteria()
+                "repeatability", _name(d.get("repeatability", defaults.repeatability)), repeatability_criteria()
             ),
             reference_basis=self.choice(  # type: ignore[arg-type]
                 "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
