@@ -28,7 +28,8 @@ from bridge.readers.csv_export import read_csv
 from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
-from bridge.science.derive import DEFAULT_REFERENCE_BASIS, ReferenceBasis, derive
+from bridge.science.compared import DEFAULT_REFERENCE_BASIS, ReferenceBasis
+from bridge.science.derive import derive
 from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables

@@ -10,7 +10,7 @@ from bridge import __version__
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
-from bridge.science.derive import REFERENCE_BASES
+from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
 from bridge.tables.files import repeatability_criteria

@@ -22,7 +22,7 @@ from bridge.emit.settings import EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings
-from bridge.science.derive import REFERENCE_BASES
+from bridge.science.compared import REFERENCE_BASES
 from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 from bridge.service.settings import (
     ANSWER_POLICIES,

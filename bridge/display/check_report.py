@@ -12,7 +12,7 @@ from pydantic import BaseModel
 
 from bridge.display.unit_text import for_people
 from bridge.model import Finding, Outcome, Quantity, ReferenceValue, Severity
-from bridge.science.derive import BASIS_WORDS
+from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables

@@ -19,7 +19,7 @@ from types import MappingProxyType
 from typing import Literal
 
 from bridge.model import ComparedBasis, Derived, Finding, Outcome, Quantity, ReferenceValue, Severity
-from bridge.science.derive import BASIS_WORDS
+from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
 from bridge.science.quality import DEFAULT_REPEATABILITY, GradeTable
 from bridge.science.units import UnitSystem

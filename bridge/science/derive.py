@@ -3,31 +3,36 @@
 Owns: turning the record's quantities into the plain numbers ``physiology`` and ``quality``
 work on, and their answers back into quantities (canonical units, see ``bridge.model``):
 KCO, Hb-, COHb- and pressure-adjusted DLCO, per-manoeuvre VA and DLCO from the gas data,
-grades and the reported mean (repeatable by the criterion the caller names), and the GLI-2017
-reference values of DLCO, KCO and VA (the equations are ``tables.reference``), compared on the
-basis the caller names (``reference_basis``). Inputs must be normalised first. Pure.
+grades and the reported mean (repeatable by the criterion the caller names), and the values
+DLCO and KCO may be compared as, from which ``bridge.science.compared`` chooses what the caller's
+``reference_basis`` names and computes the GLI-2017 reference values (the equations are
+``tables.reference``). Inputs must be normalised first. Pure.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
-from types import MappingProxyType
-from typing import Literal
 
 from bridge.model import (
-    ComparedBasis,
     Derived,
     Manoeuvre,
     ManoeuvreAssessment,
     Quantity,
-    ReferenceValue,
     Session,
     Sex,
     number_text,
 )
 from bridge.science import physiology as phys
+from bridge.science.compared import (
+    DEFAULT_REFERENCE_BASIS,
+    Candidates,
+    ReferenceBasis,
+    compare,
+    no_hb_adjustment,
+    references,
+)
 from bridge.science.quality import (
     DEFAULT_REPEATABILITY,
     Grade,
@@ -36,7 +41,6 @@ from bridge.science.quality import (
     grade_manoeuvres,
     select_reported,
 )
-from bridge.science.reference import UNITS, Lms, OutsideRange, Parameter, ReferenceEquations, abnormal_flag, impairment
 from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
@@ -44,24 +48,6 @@ DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"
 # Room temperature assumed for ATPD gas when the export does not say.  # common practice
 DEFAULT_ROOM_TEMPERATURE_C = 23.0
-# The name outputs give the reference set of bridge.science.reference (Stanojevic et al., ERJ 2017;50:1700010).
-REFERENCE_SET = "GLI-2017"
-# Which value per cent predicted and the z-scores of DLCO and KCO compare (the setting
-# reference_basis): adjusted to sea level (the default: ERS/ATS 2017 DLCO standard; Stanojevic
-# et al. 2017 recommend TLCO adjusted to standard pressure and not for Hb), as measured, or
-# adjusted to standard Hb (Cotes) and, where the pressure adjustment applies, to sea level too.
-ReferenceBasis = Literal["pressure_adjusted", "measured", "hb_adjusted"]
-REFERENCE_BASES: tuple[ReferenceBasis, ...] = ("pressure_adjusted", "measured", "hb_adjusted")
-DEFAULT_REFERENCE_BASIS: ReferenceBasis = "pressure_adjusted"
-# How people read a compared basis (check, the outputs' notes, findings).
-BASIS_WORDS: Mapping[ComparedBasis, str] = MappingProxyType(
-    {
-        "measured": "measured",
-        "pressure_adjusted": "adjusted to sea level",
-        "hb_adjusted": "adjusted to standard Hb",
-        "hb_and_pressure_adjusted": "adjusted to standard Hb and to sea level",
-    }
-)
 
 
 @dataclass(frozen=True, slots=True)
@@ -91,17 +77,6 @@ def gas_conditions(session: Session) -> GasConditions:
     if c.room_temperature is not None:
         return GasConditions(pb, pb_assumed, c.room_temperature.value, False)
     return GasConditions(pb, pb_assumed, DEFAULT_ROOM_TEMPERATURE_C, True)
-
-
-@dataclass(frozen=True, slots=True)
-class Compared:
-    """The DLCO and KCO that per cent predicted and the z-scores compare, and on what basis."""
-
-    dlco: Quantity | None
-    dlco_basis: ComparedBasis | None
-    kco: Quantity | None
-    kco_basis: ComparedBasis | None
-    fallback: str | None  # why the asked adjustment could not be made
 
 
 def derive(
@@ -146,7 +121,17 @@ def derive(
         dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
         va_from = _mean_of(computed, selection.indices, 0, "L")
     hb = hb_factor(session, age)
-    compared = _compared(session, reference_basis, kco, pressure, hb, dlco_at_sea_level, kco_at_sea_level)
+    compared = compare(
+        reference_basis,
+        _candidates(session.results.dlco, dlco_at_sea_level, hb, pressure),
+        _candidates(
+            session.results.kco or kco,
+            _kco_at_sea_level(session, kco, pressure, kco_at_sea_level, dlco_at_sea_level),
+            hb,
+            pressure,
+        ),
+        None if hb is not None else no_hb_adjustment(session),
+    )
     return Derived(
         age_years=round(age, 2),
         kco=kco,
@@ -169,120 +154,27 @@ def derive(
         dlco_basis=compared.dlco_basis,
         kco_basis=compared.kco_basis,
         reference_basis_fallback=compared.fallback,
-        **_references(session, age, tables.reference, compared),
+        **references(session, age, tables.reference, compared),
     )
 
 
-def _compared(
-    session: Session,
-    basis: ReferenceBasis,
-    kco: Quantity | None,
-    pressure: float | None,
-    hb: float | None,
-    dlco_at_sea_level: Quantity | None,
-    kco_at_sea_level: Quantity | None,
-) -> Compared:
-    """The DLCO and KCO per cent predicted and the z-scores compare, as ``basis`` asks.
-
-    KCO is the reported one, else DLCO/VA computed here (adjusted exactly when DLCO is). Where
-    the asked adjustment cannot be made (no Hb for "hb_adjusted"), the measured values are
-    compared and ``fallback`` says why. No pressure or altitude, or an adjustment that does not
-    change the value at its reported precision: the pressure adjustment does not apply, silently.
-    """
-    r = session.results
-    dlco, reported_kco = r.dlco, r.kco or kco
-    if r.kco is None and kco is not None and dlco_at_sea_level is not None:
-        kco_at_sea_level = _scaled(kco, pressure)
-    if dlco is None and reported_kco is None:
-        return Compared(None, None, None, None, None)
-    if basis == "measured":
-        return Compared(dlco, _basis_of(dlco, "measured"), reported_kco, _basis_of(reported_kco, "measured"), None)
-    if basis == "pressure_adjusted":
-        return Compared(
-            dlco_at_sea_level or dlco,
-            _basis_of(dlco, "pressure_adjusted" if dlco_at_sea_level else "measured"),
-            kco_at_sea_level or reported_kco,
-            _basis_of(reported_kco, "pressure_adjusted" if kco_at_sea_level else "measured"),
-            None,
-        )
-    if hb is None:
-        why = (
-            "no haemoglobin was reported"
-            if session.conditions.hemoglobin is None
-            else (f"sex {session.patient.sex.value!r} has no Hb adjustment")
-        )
-        return Compared(dlco, _basis_of(dlco, "measured"), reported_kco, _basis_of(reported_kco, "measured"), why)
-    dlco_factor = hb * pressure if dlco_at_sea_level is not None and pressure is not None else hb
-    kco_factor = hb * pressure if kco_at_sea_level is not None and pressure is not None else hb
-    return Compared(
-        _scaled(dlco, dlco_factor),
-        _basis_of(dlco, "hb_and_pressure_adjusted" if dlco_factor != hb else "hb_adjusted"),
-        _scaled(reported_kco, kco_factor),
-        _basis_of(reported_kco, "hb_and_pressure_adjusted" if kco_factor != hb else "hb_adjusted"),
-        None,
-    )
+def _candidates(
+    measured: Quantity | None, at_sea_level: Quantity | None, hb: float | None, pressure: float | None
+) -> Candidates:
+    """The values a result may be compared as; the sea-level ones only where the pressure adjustment applies."""
+    both = None
+    if hb is not None and pressure is not None and at_sea_level is not None:
+        both = _scaled(measured, hb * pressure)
+    return Candidates(measured, at_sea_level, _scaled(measured, hb), both)
 
 
-def _basis_of(value: Quantity | None, basis: ComparedBasis) -> ComparedBasis | None:
-    return basis if value is not None else None
-
-
-def _references(
-    session: Session, age: float, equations: ReferenceEquations, compared: Compared
-) -> dict[str, ReferenceValue | str | None]:
-    """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none.
-
-    DLCO and KCO are compared as ``compared`` holds them (the site's reference_basis); VA as measured.
-    """
-    r = session.results
-    va_basis: ComparedBasis | None = "measured" if r.va is not None else None
-    wanted = (
-        ("reference_dlco", Parameter.DLCO, "DLCO", compared.dlco, compared.dlco_basis),
-        ("reference_kco", Parameter.KCO_TRAD, "KCO", compared.kco, compared.kco_basis),
-        ("reference_va", Parameter.VA, "VA", r.va, va_basis),
-    )
-    fields: dict[str, ReferenceValue | str | None] = {}
-    reasons: list[str] = []
-    for name, parameter, label, value, basis in wanted:
-        if value is None or basis is None:
-            continue
-        lms = equations.lms(parameter, session.patient.sex, age, session.patient.height.value)
-        if isinstance(lms, OutsideRange):  # the person is outside the equations: the same reason for each
-            reasons.append(lms.reason)
-            continue
-        found = _reference(parameter, lms, value, basis)
-        if isinstance(found, OutsideRange):
-            reasons.append(f"{label}: {found.reason}")
-        else:
-            fields[name] = found
-    if reasons:
-        fields["reference_not_computed"] = "; ".join(dict.fromkeys(reasons))
-    return fields
-
-
-def _reference(
-    parameter: Parameter, lms: Lms, compared: Quantity, basis: ComparedBasis
-) -> ReferenceValue | OutsideRange:
-    z = lms.z_score(compared.value)
-    percent = lms.percent_predicted(compared.value)
-    if isinstance(z, OutsideRange):
-        return z
-    if isinstance(percent, OutsideRange):
-        return percent
-    unit = UNITS[parameter]
-    decimals = 1 if parameter is Parameter.DLCO else 2
-    return ReferenceValue(
-        reference_set=REFERENCE_SET,
-        basis=basis,
-        compared=compared,
-        predicted=Quantity(value=lms.predicted, unit=unit, decimals=decimals),
-        lln=Quantity(value=lms.lln, unit=unit, decimals=decimals),
-        uln=Quantity(value=lms.uln, unit=unit, decimals=decimals),
-        z_score=z,
-        percent_predicted=Quantity(value=percent, unit="%", decimals=0),
-        impairment=impairment(z).value,
-        flag=abnormal_flag(z),
-    )
+def _kco_at_sea_level(
+    session: Session, kco: Quantity | None, pressure: float | None, reported: Quantity | None, dlco: Quantity | None
+) -> Quantity | None:
+    """KCO at sea level: the reported KCO's (``reported``), else DLCO/VA computed here, adjusted when DLCO is."""
+    if session.results.kco is not None:
+        return reported
+    return _scaled(kco, pressure) if dlco is not None else None
 
 
 def _q(value: float, unit: str, decimals: int) -> Quantity | None:
