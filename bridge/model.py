@@ -279,15 +279,21 @@ class ManoeuvreAssessment(Frozen):
     grade_reasons: tuple[str, ...] = ()
 
 
+# Which value a per cent predicted or z-score compares: the measured one, or adjusted to sea level,
+# to standard haemoglobin, or both.
+ComparedBasis = Literal["measured", "pressure_adjusted", "hb_adjusted", "hb_and_pressure_adjusted"]
+
+
 class ReferenceValue(Frozen):
     """One result compared with a reference set: predicted, limits of normal, z-score, band (canonical units).
 
     ``compared`` is the value the z-score and per cent predicted rest on: the measured value, or
-    the value adjusted to sea level when a pressure adjustment applies (``basis`` says which).
+    the value adjusted as the site's ``reference_basis`` asks, where that adjustment applies
+    (``basis`` says which).
     """
 
     reference_set: Text
-    basis: Literal["measured", "pressure_adjusted"]
+    basis: ComparedBasis
     compared: Quantity
     predicted: Quantity
     lln: Quantity
@@ -322,12 +328,19 @@ class Derived(Frozen):
     # reported value, whether they agree within the standard's limit, and the caution to show.
     reported_manoeuvres: tuple[int, ...] = ()
     repeatable: bool | None = None  # None: fewer than two manoeuvres to compare
+    # The criterion ``repeatable`` was decided by (a name in mappings/quality_grades.toml), with manoeuvres.
+    repeatability_criterion: str | None = None
     # Criteria the session grade does not rest on (no VC: "VI/VC not evaluated: no vital capacity").
     grade_not_evaluated: tuple[str, ...] = ()
     quality_caution: str | None = None
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None
     va_percent_predicted: Quantity | None = None
+    # The value per cent predicted and the GLI-2017 z-scores of DLCO and KCO compare (None: no such result).
+    dlco_basis: ComparedBasis | None = None
+    kco_basis: ComparedBasis | None = None
+    # Why the adjustment the site's reference_basis asks for could not be made (the measured value is compared).
+    reference_basis_fallback: str | None = None
     # GLI-2017 reference values of the results (bridge.science.reference); None where there is no
     # result, and all None with ``reference_not_computed`` saying why when the equations do not apply.
     reference_dlco: ReferenceValue | None = None

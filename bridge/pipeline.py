@@ -28,7 +28,9 @@ from bridge.readers.csv_export import read_csv
 from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
+from bridge.science.compared import DEFAULT_REFERENCE_BASIS, ReferenceBasis
 from bridge.science.derive import derive
+from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 from bridge.tables.field_map_model import FieldMap
@@ -58,6 +60,14 @@ class PipelineSettings:
     validate_outputs: bool = False  # check each payload with independent libraries (slow)
     emit: EmitSettings = field(default_factory=EmitSettings)
     field_map: FieldMap | None = None  # read the input through this map (CSV, legacy HL7); None: dlco-result/1
+    # The repeatability criterion (a name in mappings/quality_grades.toml); a field map that
+    # names its own wins for the inputs read through it.
+    repeatability: str = DEFAULT_REPEATABILITY
+    reference_basis: ReferenceBasis = DEFAULT_REFERENCE_BASIS  # what per cent predicted and z-scores compare
+
+    def repeatability_for(self, fmap: FieldMap | None) -> str:
+        """The criterion for inputs read through ``fmap`` (None: dlco-result/1 JSON): the map's, else the site's."""
+        return fmap.repeatability if fmap is not None and fmap.repeatability is not None else self.repeatability
 
 
 def _never(test_id: str, source_sha256: str) -> bool:
@@ -174,7 +184,12 @@ def _complete(
     is_correction: Callable[[str, str], bool],
 ) -> Outcome:
     """Derive, check, gate and emit one normalised session."""
-    derived = derive(session, tables)
+    derived = derive(
+        session,
+        tables,
+        repeatability=settings.repeatability_for(settings.field_map),
+        reference_basis=settings.reference_basis,
+    )
     outcome = Outcome(
         source=source,
         source_sha256=sha256,

@@ -179,3 +179,47 @@ def test_the_sample_configuration_reads_where_the_service_guide_copies_it(tmp_pa
     settings = load_settings(copy, {"FHIR_STORE_TOKEN": "x"})
 
     assert tmp_path / "trial" / "run" / "inbox" == settings.require_service().inbox
+
+
+def test_repeatability_and_reference_basis_from_file_environment_and_flags():
+    """The two ways of judging a result: the file's choice, the environment's over it, the flag's over both."""
+    text = 'repeatability = "2005"\nreference_basis = "measured"\n'
+    environ = {"DLCO_BRIDGE_REPEATABILITY": "2017", "DLCO_BRIDGE_REFERENCE_BASIS": "hb_adjusted"}
+
+    from_file = parse_settings(text, {}).pipeline
+    from_env = parse_settings(text, environ).pipeline
+    from_flag = parse_settings(text, environ, {"repeatability": "2005", "reference_basis": "pressure_adjusted"})
+
+    assert ("2005", "measured") == (from_file.repeatability, from_file.reference_basis)
+    assert ("2017", "hb_adjusted") == (from_env.repeatability, from_env.reference_basis)
+    assert ("2005", "pressure_adjusted") == (from_flag.pipeline.repeatability, from_flag.pipeline.reference_basis)
+    # the defaults: the current standard, and the value adjusted to sea level
+    assert ("2017", "pressure_adjusted") == (PipelineSettings().repeatability, PipelineSettings().reference_basis)
+    assert "2005" == parse_settings("repeatability = 2005\n", {}).pipeline.repeatability  # a number is the name
+
+
+@pytest.mark.parametrize(
+    ("text", "environ", "message"),
+    [
+        ('repeatability = "2010"\n', {}, "site.toml: repeatability: one of 2017, 2005, got '2010'"),
+        ("repeatability = 2010\n", {}, "site.toml: repeatability: one of 2017, 2005, got '2010'"),  # a number
+        (
+            "",
+            {"DLCO_BRIDGE_REFERENCE_BASIS": "hb"},
+            "site.toml: reference_basis: one of pressure_adjusted, measured, hb_adjusted, got 'hb'",
+        ),
+    ],
+    ids=["unknown criterion", "unknown criterion as a number", "unknown basis"],
+)
+def test_a_bad_repeatability_or_reference_basis_names_key_and_expected_values(text, environ, message):
+    """One line: the file, the key, the values it may take and the value given."""
+    assert message == str(_error(text, environ))
+
+
+def test_check_takes_the_repeatability_flag(capsys):
+    """check --repeatability 2005 says the criterion beside the verdict (sample 06: trials 28.49 and 29.89)."""
+    code = main(["check", str(ROOT / "samples" / "06-three-manoeuvres.json"), "--repeatability", "2005"])
+
+    assert 0 == code
+    out = capsys.readouterr().out
+    assert "repeatable (ATS/ERS 2005: within 3 mL/min/mmHg or 10 % of the highest)" in out

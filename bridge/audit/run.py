@@ -123,7 +123,7 @@ def _tables(traditional_per_si: float) -> Tables:
 @functools.cache
 def _maps(default: Path | None, patterns: tuple[tuple[str, Path], ...], traditional_per_si: float) -> MapChoice:
     """The field maps, read once per worker process."""
-    return load_map_choice(default, patterns, _tables(traditional_per_si).units)
+    return load_map_choice(default, patterns, _tables(traditional_per_si))
 
 
 @functools.cache

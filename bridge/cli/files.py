@@ -64,7 +64,7 @@ def run_inputs(
     (:class:`ProcessingFailed`) so that the other files are still processed.
     """
     now = now or datetime.now(UTC)  # the shell reads the clock once per run; the pipeline receives it
-    maps = load_map_choice(settings.field_map, settings.maps, tables.units)
+    maps = load_map_choice(settings.field_map, settings.maps, tables)
     for path in expand(paths):
         try:
             data = read_input(path, settings.pipeline.max_input_bytes)
@@ -249,7 +249,7 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     audit = AuditSettings(emit_ndjson=args.emit == "ndjson")
     if args.workers is not None:
         audit = replace(audit, workers=args.workers)
-    load_map_choice(settings.field_map, settings.maps, tables.units)  # a broken map stops the audit here
+    load_map_choice(settings.field_map, settings.maps, tables)  # a broken map stops the audit here
     now, units = datetime.now(UTC), settings.units
     job = Job(
         settings.pipeline, settings.traditional_per_si, units, now, audit.emit_ndjson, settings.field_map, settings.maps
@@ -269,7 +269,7 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
 
 def cmd_map(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     """``map check MAP SAMPLE``: an invalid map is a setup error (exit 1) naming its file, line and key."""
-    fmap = load_field_map(args.map_file, tables.units)
+    fmap = load_field_map(args.map_file, tables)
     try:
         data = read_input(args.sample, settings.pipeline.max_input_bytes)
         reader = read_csv if fmap.format == "csv" else read_hl7

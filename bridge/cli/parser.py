@@ -10,8 +10,10 @@ from bridge import __version__
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
+from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
+from bridge.tables.files import repeatability_criteria
 
 EXIT_OK = 0
 EXIT_SETUP = 1
@@ -49,6 +51,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
         help="mL/min/mmHg per mmol/min/kPa, 2.987 or 2.986 "
         f"(key traditional_per_si; default {DEFAULTS.traditional_per_si})",
     )
+    _add_science(parser)
     if not emits:
         return
     parser.add_argument(
@@ -93,9 +96,28 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
     )
 
 
+def _add_science(parser: argparse.ArgumentParser) -> None:
+    """The flags that choose how results are judged: the repeatability criterion and the reference basis."""
+    parser.add_argument(
+        "--repeatability",
+        choices=repeatability_criteria(),
+        help="the criterion that says which manoeuvres are repeatable, named in mappings/quality_grades.toml "
+        "(2017: ERS/ATS 2017; 2005: ATS/ERS 2005, for legacy data); a field map's own [map] repeatability "
+        f"wins for the inputs it reads (key repeatability; default {DEFAULTS.pipeline.repeatability})",
+    )
+    parser.add_argument(
+        "--reference-basis",
+        choices=REFERENCE_BASES,
+        help="the DLCO and KCO that per cent predicted and z-scores compare: adjusted to sea level, as measured, "
+        "or adjusted to standard Hb (and to sea level where that applies); without Hb the measured value, "
+        f"with a finding (key reference_basis; default {DEFAULTS.pipeline.reference_basis})",
+    )
+
+
 # Flags that are settings; everything else on the command line is an argument of the command.
 _SETTING_FLAGS = (
     "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to", "map",
+    "repeatability", "reference_basis",
     "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
     "emit.receiving_facility", "emit.patient_reference",
 )  # fmt: skip
@@ -144,6 +166,7 @@ def build_parser() -> argparse.ArgumentParser:
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
     watch = commands.add_parser("watch", help="run the watch-folder service")
     watch.add_argument("--config", type=Path, help=config_help)
+    _add_science(watch)
     status = commands.add_parser("status", help="what the service's ledger holds: pending, delivered, rejected")
     status.add_argument("--config", type=Path, help=config_help)
     status.add_argument("--json", action="store_true", help="machine-readable output")

@@ -12,6 +12,7 @@ from pydantic import BaseModel
 
 from bridge.display.unit_text import for_people
 from bridge.model import Finding, Outcome, Quantity, ReferenceValue, Severity
+from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
@@ -86,7 +87,7 @@ def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list
     for name, label in (("dlco", "DLCO"), ("kco", "KCO"), ("va", "VA")):
         ref: ReferenceValue | None = getattr(d, f"reference_{name}")
         if ref is not None:
-            basis = "adjusted to sea level" if ref.basis == "pressure_adjusted" else "measured"
+            basis = BASIS_WORDS[ref.basis]
             lines.append(
                 f"    {label + ' GLI-2017':<32}predicted {_brief(ref.predicted, tables, units)}  "
                 f"LLN {_brief(ref.lln, tables, units)}  ULN {_brief(ref.uln, tables, units)}  "
@@ -143,6 +144,8 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     if d.reported_manoeuvres:
         used = ", ".join(str(i + 1) for i in d.reported_manoeuvres)
         verdict = {True: "repeatable", False: "not repeatable", None: "nothing to compare with"}[d.repeatable]
+        if d.repeatable is not None and d.repeatability_criterion is not None:
+            verdict += f" ({tables.grades.criterion(d.repeatability_criterion).description})"
         lines.append(f"    reported value from manoeuvre(s) {used}: {verdict}")
     if d.quality_caution is not None:
         lines.append(f"    interpret with caution: {d.quality_caution}")

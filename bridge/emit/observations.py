@@ -16,8 +16,10 @@ from dataclasses import dataclass, field, replace
 from types import MappingProxyType
 from typing import Literal
 
-from bridge.model import Derived, Finding, Outcome, Quantity, ReferenceValue, Severity
+from bridge.model import ComparedBasis, Derived, Finding, Outcome, Quantity, ReferenceValue, Severity
+from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
+from bridge.science.quality import DEFAULT_REPEATABILITY, GradeTable
 from bridge.science.units import UnitSystem
 from bridge.tables import Code, Tables
 
@@ -244,7 +246,7 @@ def build_content(
         reference = ref[name]
         if reference is None:
             continue
-        compared = _compared_from(name, reference, d)
+        compared = _compared_from(name, reference.basis, d)
         note = (f"Reference set {GLI_SOURCE}.",)
         add(f"{name}_predicted", reference.predicted, computed=True, notes=note)
         add(
@@ -270,20 +272,18 @@ def build_content(
     lab_pct_note = (
         f"Per cent of the lab's predicted value (reference set {lab_set or 'not named'}), computed by {BRIDGE_NAME}.",
     )
-    # Per cent predicted compares the value adjusted to sea level when there is one (S17).
-    sea_level = ("dlco_pressure_adjusted",) if d.dlco_pressure_adjusted is not None else ("dlco",)
+    # Per cent predicted compares the value the site's reference_basis names (S17: adjusted to sea level).
     add(
         "lab_dlco_percent_predicted",
         d.dlco_percent_predicted,
-        derived_from=(*sea_level, "lab_dlco_predicted"),
+        derived_from=(*_compared_from("dlco", d.dlco_basis, d), "lab_dlco_predicted"),
         computed=True,
         notes=lab_pct_note,
     )
-    kco_from = ("kco", "barometric_pressure") if d.kco_pressure_adjusted is not None else ("kco",)
     add(
         "lab_kco_percent_predicted",
         d.kco_percent_predicted,
-        derived_from=(*kco_from, "lab_kco_predicted"),
+        derived_from=(*_compared_from("kco", d.kco_basis, d), "lab_kco_predicted"),
         computed=True,
         notes=lab_pct_note,
     )
@@ -312,7 +312,7 @@ def build_content(
         attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
     else:
         attached = set()  # no finding to attach: nothing to collect
-    return ReportContent(tuple(items), _report_notes(outcome, attached, say))
+    return ReportContent(tuple(items), _report_notes(outcome, attached, say, tables.grades))
 
 
 def _text(q: Quantity) -> str:
@@ -329,19 +329,22 @@ def _reference_note(reference: ReferenceValue, show: Callable[[Quantity], Quanti
     )
 
 
-def _compared_from(name: str, reference: ReferenceValue, d: Derived) -> tuple[str, ...]:
-    """The items a GLI-2017 value rests on: the result, or its value adjusted to sea level."""
-    if reference.basis == "measured":
+def _compared_from(name: str, basis: ComparedBasis | None, d: Derived) -> tuple[str, ...]:
+    """The items a per cent predicted or z-score rests on: the result, or its adjusted value and what adjusted it."""
+    if basis is None or basis == "measured":
         return (name,)
-    if name == "dlco" and d.dlco_pressure_adjusted is not None:
-        return ("dlco_pressure_adjusted",)
-    return (name, "barometric_pressure")
+    if basis == "pressure_adjusted":
+        if name == "dlco" and d.dlco_pressure_adjusted is not None:
+            return ("dlco_pressure_adjusted",)
+        return (name, "barometric_pressure")
+    hb = ("dlco_hb_adjusted",) if name == "dlco" and d.dlco_hb_adjusted is not None else (name, "hemoglobin")
+    return (*hb, "barometric_pressure") if basis == "hb_and_pressure_adjusted" else hb
 
 
 def _basis(reference: ReferenceValue) -> str:
     if reference.basis == "measured":
         return "measured value"
-    return "measured value adjusted to sea level"
+    return f"measured value {BASIS_WORDS[reference.basis]}"
 
 
 def _questioned(items: list[ResultItem], paths: dict[str, str], errors: list[Finding]) -> list[ResultItem]:
@@ -398,12 +401,14 @@ def supporting_text(value: Supporting) -> str:
     )
 
 
-def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity], str]) -> tuple[str, ...]:
+def _report_notes(
+    outcome: Outcome, attached: set[str], say: Callable[[Quantity], str], grades: GradeTable
+) -> tuple[str, ...]:
     """Report-level notes: quality grade, reference set, and the findings no item carries."""
     notes: list[str] = []
     d, s = outcome.derived, outcome.session
     if d.session_grade is not None:
-        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated)
+        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated) + _repeatability_note(d, grades)
         notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres{basis}).")
     if d.quality_caution is not None:
         notes.append(f"Interpret with caution: {d.quality_caution}.")
@@ -419,3 +424,17 @@ def _report_notes(outcome: Outcome, attached: set[str], say: Callable[[Quantity]
         notes.append(f"Reference values computed by {BRIDGE_NAME}: {GLI_SOURCE}; " + ", ".join(graded) + ".")
     notes.extend(_finding_note(f, say) for f in outcome.findings if f.path not in attached)
     return tuple(notes)
+
+
+def _repeatability_note(d: Derived, grades: GradeTable) -> str:
+    """``; repeatable by the ATS/ERS 2005 criterion, ...`` when a criterion other than the default decided it.
+
+    Under the default criterion a repeatable session says nothing more (the caution and the
+    NOT_REPEATABLE finding name the criterion when it is not repeatable); under another one the
+    reported mean rests on a limit a reader would not assume, so the grade note names it either way.
+    """
+    name = d.repeatability_criterion
+    if d.repeatable is None or name is None or name == DEFAULT_REPEATABILITY:
+        return ""
+    rule = grades.criterion(name)
+    return f"; {'repeatable' if d.repeatable else 'not repeatable'} by the {rule.standard} criterion, {rule.limits}"

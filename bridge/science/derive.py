@@ -3,8 +3,10 @@
 Owns: turning the record's quantities into the plain numbers ``physiology`` and ``quality``
 work on, and their answers back into quantities (canonical units, see ``bridge.model``):
 KCO, Hb-, COHb- and pressure-adjusted DLCO, per-manoeuvre VA and DLCO from the gas data,
-grades and the reported mean, and the GLI-2017 reference values of DLCO, KCO and VA (the
-equations are ``tables.reference``). Inputs must be normalised first. Pure.
+grades and the reported mean (repeatable by the criterion the caller names), and the values
+DLCO and KCO may be compared as, from which ``bridge.science.compared`` chooses what the caller's
+``reference_basis`` names and computes the GLI-2017 reference values (the equations are
+``tables.reference``). Inputs must be normalised first. Pure.
 """
 
 from __future__ import annotations
@@ -18,14 +20,27 @@ from bridge.model import (
     Manoeuvre,
     ManoeuvreAssessment,
     Quantity,
-    ReferenceValue,
     Session,
     Sex,
     number_text,
 )
 from bridge.science import physiology as phys
-from bridge.science.quality import Grade, ManoeuvreFacts, Selection, grade_manoeuvres, select_reported
-from bridge.science.reference import UNITS, Lms, OutsideRange, Parameter, ReferenceEquations, abnormal_flag, impairment
+from bridge.science.compared import (
+    DEFAULT_REFERENCE_BASIS,
+    Candidates,
+    ReferenceBasis,
+    compare,
+    no_hb_adjustment,
+    references,
+)
+from bridge.science.quality import (
+    DEFAULT_REPEATABILITY,
+    Grade,
+    ManoeuvreFacts,
+    Selection,
+    grade_manoeuvres,
+    select_reported,
+)
 from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
@@ -33,8 +48,6 @@ DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"
 # Room temperature assumed for ATPD gas when the export does not say.  # common practice
 DEFAULT_ROOM_TEMPERATURE_C = 23.0
-# The name outputs give the reference set of bridge.science.reference (Stanojevic et al., ERJ 2017;50:1700010).
-REFERENCE_SET = "GLI-2017"
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,8 +79,18 @@ def gas_conditions(session: Session) -> GasConditions:
     return GasConditions(pb, pb_assumed, DEFAULT_ROOM_TEMPERATURE_C, True)
 
 
-def derive(session: Session, tables: Tables) -> Derived:
-    """Everything recomputable from a normalised session."""
+def derive(
+    session: Session,
+    tables: Tables,
+    *,
+    repeatability: str = DEFAULT_REPEATABILITY,
+    reference_basis: ReferenceBasis = DEFAULT_REFERENCE_BASIS,
+) -> Derived:
+    """Everything recomputable from a normalised session.
+
+    ``repeatability``: the name of the repeatability criterion (mappings/quality_grades.toml);
+    ``reference_basis``: which value per cent predicted and the z-scores compare.
+    """
     age = age_in_years(session)
     gas = gas_conditions(session)
     measured = session.results.dlco
@@ -93,14 +116,26 @@ def derive(session: Session, tables: Tables) -> Derived:
             )
             for i, ((va, dlco), g) in enumerate(zip(computed, grades, strict=True))
         )
-        selection = _selection(computed, grades, tables)
+        selection = _selection(computed, grades, tables, repeatability)
         not_evaluated = _not_evaluated(grades, selection.indices)
         dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
         va_from = _mean_of(computed, selection.indices, 0, "L")
+    hb = hb_factor(session, age)
+    compared = compare(
+        reference_basis,
+        _candidates(session.results.dlco, dlco_at_sea_level, hb, pressure),
+        _candidates(
+            session.results.kco or kco,
+            _kco_at_sea_level(session, kco, pressure, kco_at_sea_level, dlco_at_sea_level),
+            hb,
+            pressure,
+        ),
+        None if hb is not None else no_hb_adjustment(session),
+    )
     return Derived(
         age_years=round(age, 2),
         kco=kco,
-        dlco_hb_adjusted=_scaled(measured, hb_factor(session, age)),
+        dlco_hb_adjusted=_scaled(measured, hb),
         dlco_pressure_adjusted=dlco_at_sea_level,
         kco_pressure_adjusted=kco_at_sea_level,
         dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
@@ -111,83 +146,35 @@ def derive(session: Session, tables: Tables) -> Derived:
         reported_manoeuvres=selection.indices if selection else (),
         grade_not_evaluated=not_evaluated,
         repeatable=selection.repeatable if selection else None,
+        repeatability_criterion=repeatability if selection else None,
         quality_caution=selection.caution if selection else None,
-        # S17: the measured value is adjusted to sea level before it is compared with predicted.
-        dlco_percent_predicted=_percent(dlco_at_sea_level or measured, _pred(session, "dlco")),
-        kco_percent_predicted=_percent(kco_at_sea_level or session.results.kco, _pred(session, "kco")),
+        dlco_percent_predicted=_percent(compared.dlco, _pred(session, "dlco")),
+        kco_percent_predicted=_percent(compared.kco if session.results.kco else None, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
-        **_references(session, age, tables.reference, dlco_at_sea_level, kco, pressure, tables.units),
+        dlco_basis=compared.dlco_basis,
+        kco_basis=compared.kco_basis,
+        reference_basis_fallback=compared.fallback,
+        **references(session, age, tables.reference, compared),
     )
 
 
-def _references(
-    session: Session,
-    age: float,
-    equations: ReferenceEquations,
-    dlco_at_sea_level: Quantity | None,
-    kco: Quantity | None,
-    pressure: float | None,
-    catalogue: UnitCatalogue,
-) -> dict[str, ReferenceValue | str | None]:
-    """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none.
-
-    ERS/ATS 2017 DLCO standard and Stanojevic et al. 2017: the measured DLCO and KCO are adjusted
-    to sea level (standard PIO2) before they are compared with the predicted values.
-    """
-    r = session.results
-    reported_kco: Quantity | None
-    if r.kco is not None:
-        reported_kco, kco_at_sea_level = r.kco, _adjusted(r.kco, pressure, catalogue)
-    else:  # DLCO/VA computed here follows DLCO: adjusted exactly when DLCO is
-        reported_kco, kco_at_sea_level = kco, (_scaled(kco, pressure) if dlco_at_sea_level is not None else None)
-    wanted = (
-        ("reference_dlco", Parameter.DLCO, "DLCO", r.dlco, dlco_at_sea_level),
-        ("reference_kco", Parameter.KCO_TRAD, "KCO", reported_kco, kco_at_sea_level),
-        ("reference_va", Parameter.VA, "VA", r.va, None),
-    )
-    fields: dict[str, ReferenceValue | str | None] = {}
-    reasons: list[str] = []
-    for name, parameter, label, value, adjusted in wanted:
-        if value is None:
-            continue
-        lms = equations.lms(parameter, session.patient.sex, age, session.patient.height.value)
-        if isinstance(lms, OutsideRange):  # the person is outside the equations: the same reason for each
-            reasons.append(lms.reason)
-            continue
-        found = _reference(parameter, lms, value, adjusted)
-        if isinstance(found, OutsideRange):
-            reasons.append(f"{label}: {found.reason}")
-        else:
-            fields[name] = found
-    if reasons:
-        fields["reference_not_computed"] = "; ".join(dict.fromkeys(reasons))
-    return fields
+def _candidates(
+    measured: Quantity | None, at_sea_level: Quantity | None, hb: float | None, pressure: float | None
+) -> Candidates:
+    """The values a result may be compared as; the sea-level ones only where the pressure adjustment applies."""
+    both = None
+    if hb is not None and pressure is not None and at_sea_level is not None:
+        both = _scaled(measured, hb * pressure)
+    return Candidates(measured, at_sea_level, _scaled(measured, hb), both)
 
 
-def _reference(
-    parameter: Parameter, lms: Lms, value: Quantity, adjusted: Quantity | None
-) -> ReferenceValue | OutsideRange:
-    compared = adjusted or value
-    z = lms.z_score(compared.value)
-    percent = lms.percent_predicted(compared.value)
-    if isinstance(z, OutsideRange):
-        return z
-    if isinstance(percent, OutsideRange):
-        return percent
-    unit = UNITS[parameter]
-    decimals = 1 if parameter is Parameter.DLCO else 2
-    return ReferenceValue(
-        reference_set=REFERENCE_SET,
-        basis="measured" if adjusted is None else "pressure_adjusted",
-        compared=compared,
-        predicted=Quantity(value=lms.predicted, unit=unit, decimals=decimals),
-        lln=Quantity(value=lms.lln, unit=unit, decimals=decimals),
-        uln=Quantity(value=lms.uln, unit=unit, decimals=decimals),
-        z_score=z,
-        percent_predicted=Quantity(value=percent, unit="%", decimals=0),
-        impairment=impairment(z).value,
-        flag=abnormal_flag(z),
-    )
+def _kco_at_sea_level(
+    session: Session, kco: Quantity | None, pressure: float | None, reported: Quantity | None, dlco: Quantity | None
+) -> Quantity | None:
+    """KCO at sea level: the reported KCO's (``reported``), else DLCO/VA computed here, adjusted when DLCO is."""
+    if session.results.kco is not None:
+        return reported
+    return _scaled(kco, pressure) if dlco is not None else None
 
 
 def _q(value: float, unit: str, decimals: int) -> Quantity | None:
@@ -265,12 +252,12 @@ def _not_evaluated(grades: Sequence[Grade], indices: Sequence[int]) -> tuple[str
 
 
 def _selection(
-    computed: Sequence[tuple[float | None, float | None]], grades: Sequence[Grade], tables: Tables
+    computed: Sequence[tuple[float | None, float | None]], grades: Sequence[Grade], tables: Tables, criterion: str
 ) -> Selection:
     usable = [i for i, (_, dlco) in enumerate(computed) if dlco is not None]
     dlcos = [dlco if dlco is not None else 0.0 for _, dlco in computed]
     masked = [g if i in usable else Grade("F", ("no DLCO from gas data",)) for i, g in enumerate(grades)]
-    return select_reported(masked, dlcos, tables.grades)
+    return select_reported(masked, dlcos, tables.grades, criterion)
 
 
 def _mean_of(

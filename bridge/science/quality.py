@@ -1,9 +1,11 @@
 """Manoeuvre quality grades, repeatability, and which manoeuvres make the reported value.
 
-Owns: applying the grade table (``mappings/quality_grades.toml``, parsed here from text) to
-the facts of each manoeuvre, and the 2017 reporting rule: the mean of two or more repeatable
-grade-A manoeuvres; one grade A alone; otherwise the mean of the best-graded acceptable ones
-with a caution. Pure: plain numbers in, grades and indices out.
+Owns: applying the grade table (``mappings/quality_grades.toml``, parsed by
+``bridge.tables.grades``) to the facts of each manoeuvre, and the 2017 reporting rule: the mean
+of two or more repeatable grade-A manoeuvres; one grade A alone; otherwise the mean of the
+best-graded acceptable ones with a caution. "Repeatable" follows a named criterion of the table:
+the ERS/ATS 2017 one by default, the ATS/ERS 2005 one for legacy data when a site or a field map
+selects it. Pure: plain numbers in, grades and indices out.
 
 A criterion without its evidence (no vital capacity for VI/VC, no sample-collection time) is
 *not evaluated*: the manoeuvre is graded on the criteria that can be evaluated, and its grade
@@ -18,6 +20,11 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 FAIL_GRADE = "F"
+# The repeatability criterion used unless a site or a field map names another (a criterion of
+# mappings/quality_grades.toml; the table must carry it).
+DEFAULT_REPEATABILITY = "2017"
+# Differences are compared after rounding away floating-point noise, so 22.1 - 20.1 is 2.0.
+_DIFFERENCE_DIGITS = 9
 
 
 @dataclass(frozen=True, slots=True)
@@ -32,10 +39,56 @@ class GradeRule:
 
 
 @dataclass(frozen=True, slots=True)
+class RepeatabilityCriterion:
+    """When two acceptable manoeuvres agree: DLCO within an absolute limit, or within a per cent of the higher.
+
+    Both limits are inclusive; a criterion without ``max_percent_of_highest`` has the absolute limit only.
+    """
+
+    name: str  # how settings and field maps select it: "2017", "2005"
+    standard: str  # how outputs name it: "ERS/ATS 2017"
+    max_dlco_difference: float  # mL/min/mmHg
+    max_percent_of_highest: float | None = None
+
+    def agree(self, a: float, b: float) -> bool:
+        """True when DLCO values ``a`` and ``b`` (mL/min/mmHg) are repeatable by this criterion."""
+        difference = round(abs(a - b), _DIFFERENCE_DIGITS)
+        if difference <= self.max_dlco_difference:
+            return True
+        if self.max_percent_of_highest is None:
+            return False
+        return difference <= round(self.max_percent_of_highest * max(a, b) / 100.0, _DIFFERENCE_DIGITS)
+
+    @property
+    def limits(self) -> str:
+        """The limits in words: ``within 3 mL/min/mmHg or 10 % of the highest``."""
+        limits = f"within {self.max_dlco_difference:g} mL/min/mmHg"
+        if self.max_percent_of_highest is not None:
+            limits += f" or {self.max_percent_of_highest:g} % of the highest"
+        return limits
+
+    @property
+    def description(self) -> str:
+        """The criterion in words: ``ATS/ERS 2005: within 3 mL/min/mmHg or 10 % of the highest``."""
+        return f"{self.standard}: {self.limits}"
+
+
+@dataclass(frozen=True, slots=True)
 class GradeTable:
     rules: tuple[GradeRule, ...]
-    max_dlco_difference: float  # mL/min/mmHg
+    criteria: tuple[RepeatabilityCriterion, ...]  # the named repeatability criteria, in table order
     acceptable_grades: tuple[str, ...]
+
+    @property
+    def criterion_names(self) -> tuple[str, ...]:
+        return tuple(c.name for c in self.criteria)
+
+    def criterion(self, name: str) -> RepeatabilityCriterion:
+        """The criterion named ``name``; names are checked where settings and maps are read."""
+        found = next((c for c in self.criteria if c.name == name), None)
+        if found is None:
+            raise ValueError(f"repeatability criterion {name!r}: expected one of {', '.join(self.criterion_names)}")
+        return found
 
 
 @dataclass(frozen=True, slots=True)
@@ -132,16 +185,22 @@ class Selection:
     caution: str | None
 
 
-def select_reported(grades: Sequence[Grade], dlcos: Sequence[float], table: GradeTable) -> Selection:
-    """Apply the 2017 reporting rule to graded manoeuvres and their DLCO (mL/min/mmHg)."""
+def select_reported(
+    grades: Sequence[Grade], dlcos: Sequence[float], table: GradeTable, criterion: str = DEFAULT_REPEATABILITY
+) -> Selection:
+    """Apply the 2017 reporting rule to graded manoeuvres and their DLCO (mL/min/mmHg).
+
+    ``criterion``: the name of the repeatability criterion in ``table`` that says which agree.
+    """
+    rule = table.criterion(criterion)
     rank = {grade: i for i, grade in enumerate(table.acceptable_grades)}
     best = table.acceptable_grades[0]
     top = [i for i, g in enumerate(grades) if g.grade == best]
     if len(top) >= 2:
-        pair = _repeatable_subset(top, dlcos, table.max_dlco_difference)
+        pair = _repeatable_subset(top, dlcos, rule)
         if pair:
             return Selection(pair, best, True, None)
-        caution = f"grade-{best} manoeuvres differ by more than {table.max_dlco_difference:g} mL/min/mmHg"
+        caution = f"grade-{best} manoeuvres not repeatable ({rule.description})"
         return Selection(tuple(top), best, False, caution)
     if len(top) == 1:
         return Selection(tuple(top), best, None, None)
@@ -150,16 +209,20 @@ def select_reported(grades: Sequence[Grade], dlcos: Sequence[float], table: Grad
         return Selection((), FAIL_GRADE, None, "no acceptable manoeuvre")
     chosen = tuple(sorted(usable[:2]))
     worst = max((grades[i].grade for i in chosen), key=lambda g: rank[g])
-    repeatable = abs(dlcos[chosen[0]] - dlcos[chosen[1]]) <= table.max_dlco_difference if len(chosen) == 2 else None
+    repeatable = rule.agree(dlcos[chosen[0]], dlcos[chosen[1]]) if len(chosen) == 2 else None
     return Selection(chosen, worst, repeatable, f"no grade-{best} manoeuvre; best grade {worst}")
 
 
-def _repeatable_subset(indices: Sequence[int], dlcos: Sequence[float], limit: float) -> tuple[int, ...]:
-    """The largest group of manoeuvres whose DLCO values lie within ``limit`` of each other."""
+def _repeatable_subset(indices: Sequence[int], dlcos: Sequence[float], rule: RepeatabilityCriterion) -> tuple[int, ...]:
+    """The largest group of manoeuvres whose DLCO values are repeatable with each other.
+
+    Agreement with the lowest value of a group is agreement of every pair in it: both limits
+    grow with the higher value, so a value that agrees with the lowest agrees with any between.
+    """
     ordered = sorted(indices, key=lambda i: dlcos[i])
     best: tuple[int, ...] = ()
     for start in range(len(ordered)):
-        group = [i for i in ordered[start:] if dlcos[i] - dlcos[ordered[start]] <= limit]
+        group = [i for i in ordered[start:] if rule.agree(dlcos[ordered[start]], dlcos[i])]
         if len(group) > len(best):
             best = tuple(sorted(group))
     return best if len(best) >= 2 else ()

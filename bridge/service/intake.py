@@ -84,7 +84,7 @@ class Intake:
         self.on_enqueued = on_enqueued
         self.processor = processor
         self.routes = tuple(Route(d.payload, d.units) for d in self.service.destinations)
-        self.maps = load_map_choice(settings.field_map, settings.maps, tables.units)  # per inbox / file pattern
+        self.maps = load_map_choice(settings.field_map, settings.maps, tables)  # per inbox / file pattern
 
     def take(self, path: Path, complete_at: float) -> IntakeResult:
         """Process one file completely; never raises for what the file contains.

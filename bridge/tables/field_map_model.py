@@ -71,6 +71,7 @@ class FieldMap:
     format: MapFormat
     fields: tuple[FieldSource, ...]
     on_bad_record: Literal["skip", "refuse"] = "skip"
+    repeatability: str | None = None  # the repeatability criterion for this source; None: the site's
     missing: frozenset[str] = frozenset(DEFAULT_MISSING)
     decimal: str = "."
     date_format: str = DEFAULT_DATE_FORMAT

@@ -10,7 +10,7 @@ docs/field-maps.md describes the format.
 from __future__ import annotations
 
 import re
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Collection, Mapping
 from datetime import tzinfo
 from types import MappingProxyType
 from typing import Any
@@ -41,7 +41,7 @@ from bridge.tables.toml import read_toml
 OBX_UNIT = "OBX-6"  # ``unit_from`` of an HL7 code: the unit is in the OBX's own units field
 _HL7_LOCATION = re.compile(r"(?P<segment>[A-Z][A-Z0-9]{2})-(?P<field>[1-9][0-9]*)(?:\.(?P<component>[1-9][0-9]*))?")
 
-_MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record"})
+_MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record", "repeatability"})
 _VALUE_KEYS = frozenset({"missing", "decimal", "date_format", "datetime_format", "time_zone"})
 _CSV_KEYS = frozenset({"delimiter", "encoding", "header_rows", "rows", "group_by"})
 _HL7_KEYS = frozenset({"versions", "encoding"})
@@ -107,12 +107,19 @@ class _Checker:
         return str(value)
 
 
-def field_map(text: str, name: str, catalogue: UnitCatalogue, zone_of: Callable[[str], tzinfo]) -> FieldMap:
+def field_map(
+    text: str,
+    name: str,
+    catalogue: UnitCatalogue,
+    zone_of: Callable[[str], tzinfo],
+    criteria: Collection[str] = (),
+) -> FieldMap:
     """The map in ``text`` (the file ``name``), checked against the canonical fields and the unit catalogue.
 
     ``zone_of`` resolves an IANA time-zone name (the shell passes ``zoneinfo.ZoneInfo``: reading the
     time-zone database is I/O the core leaves to it); it raises LookupError or ValueError for a
-    name it does not know.
+    name it does not know. ``criteria``: the repeatability criteria a map may name in ``[map]
+    repeatability`` (``GradeTable.criterion_names``, passed by the shell); a map naming another is refused.
     """
     data = read_toml(text, name)
     check = _Checker(text, name)
@@ -147,6 +154,7 @@ def field_map(text: str, name: str, catalogue: UnitCatalogue, zone_of: Callable[
         format=fmt,  # type: ignore[arg-type]
         fields=fields,
         on_bad_record=check.choice(head, "on_bad_record", "map.on_bad_record", ON_BAD_RECORD, "skip"),  # type: ignore[arg-type]
+        repeatability=_repeatability(check, head, criteria),
         missing=frozenset(_missing(check, values)),
         decimal=check.choice(values, "decimal", "values.decimal", (".", ","), "."),
         date_format=_format(check, values, "date_format", DEFAULT_HL7_DATE_FORMAT if hl7 else DEFAULT_DATE_FORMAT),
@@ -224,6 +232,13 @@ def _field_source(
         unit_from_obx=unit_from is not None,
         percent=percent,
     )
+
+
+def _repeatability(check: _Checker, head: Mapping[str, Any], criteria: Collection[str]) -> str | None:
+    """``[map] repeatability``: a criterion of mappings/quality_grades.toml for this source's inputs, or none."""
+    if "repeatability" not in head:
+        return None
+    return check.choice(head, "repeatability", "map.repeatability", tuple(criteria), "")
 
 
 def _check_unit(

@@ -14,7 +14,7 @@ from zoneinfo import ZoneInfo
 
 from bridge.errors import MappingError
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
-from bridge.science.units import TRADITIONAL_PER_SI, UnitCatalogue
+from bridge.science.units import TRADITIONAL_PER_SI
 from bridge.tables import CodeTable, Plausibility, Tables
 from bridge.tables.field_map_model import FieldMap, MapChoice
 from bridge.tables.field_map_parser import field_map
@@ -66,24 +66,27 @@ def load_reference_equations(folder: Path | None = None) -> ReferenceEquations:
     return ReferenceEquations.from_text(_text(folder, COEFFICIENTS_TABLE), _text(folder, SPLINES_TABLE))
 
 
-def load_field_map(path: Path, catalogue: UnitCatalogue) -> FieldMap:
+def repeatability_criteria(folder: Path | None = None) -> tuple[str, ...]:
+    """The names of the repeatability criteria in ``quality_grades.toml`` (what settings may select)."""
+    return grade_table(_text(folder or mappings_dir(), "quality_grades.toml")).criterion_names
+
+
+def load_field_map(path: Path, tables: Tables) -> FieldMap:
     """One field map file (``mappings/maps/*.toml`` or a site's own), checked; errors name the file."""
     try:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise MappingError(str(path), "(file)", f"a readable field map ({exc.strerror})") from exc
-    return field_map(text, str(path), catalogue, ZoneInfo)
+    return field_map(text, str(path), tables.units, ZoneInfo, tables.grades.criterion_names)
 
 
-def load_map_choice(
-    default: Path | None, by_pattern: Sequence[tuple[str, Path]], catalogue: UnitCatalogue
-) -> MapChoice:
+def load_map_choice(default: Path | None, by_pattern: Sequence[tuple[str, Path]], tables: Tables) -> MapChoice:
     """The maps the settings name (``map``, and ``[maps]`` per file pattern), each read once."""
     loaded: dict[Path, FieldMap] = {}
 
     def read(path: Path) -> FieldMap:
         if path not in loaded:
-            loaded[path] = load_field_map(path, catalogue)
+            loaded[path] = load_field_map(path, tables)
         return loaded[path]
 
     return MapChoice(

@@ -5,19 +5,31 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 from bridge.errors import MappingError
-from bridge.science.quality import GradeRule, GradeTable
+from bridge.science.quality import DEFAULT_REPEATABILITY, GradeRule, GradeTable, RepeatabilityCriterion
 from bridge.tables.toml import read_toml
 
 
 def grade_table(text: str, name: str = "quality_grades.toml") -> GradeTable:
-    """The grade rules and the repeatability rule; a broken table is a MappingError."""
+    """The grade rules and the named repeatability criteria; a broken table is a MappingError."""
     data = read_toml(text, name)
     try:
         rules = tuple(_rule(entry) for entry in data["grade"])
         repeat = data["repeatability"]
-        return GradeTable(rules, float(repeat["max_dlco_difference_ml_min_mmhg"]), tuple(repeat["acceptable_grades"]))
-    except (KeyError, TypeError, ValueError) as exc:
+        criteria = tuple(_criterion(key, entry) for key, entry in repeat["criteria"].items())
+        table = GradeTable(rules, criteria, tuple(repeat["acceptable_grades"]))
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
         raise MappingError(name, "grade table", f"grades and repeatability as documented ({exc})") from exc
+    if DEFAULT_REPEATABILITY not in table.criterion_names:
+        raise MappingError(name, "repeatability.criteria", f'the default criterion "{DEFAULT_REPEATABILITY}"')
+    return table
+
+
+def _criterion(name: str, entry: Mapping[str, object]) -> RepeatabilityCriterion:
+    absolute = float(entry["max_dlco_difference_ml_min_mmhg"])  # type: ignore[arg-type]
+    percent = _optional_float(entry.get("max_percent_of_highest"))
+    if absolute < 0 or (percent is not None and not 0 < percent < 100):
+        raise ValueError(f"criterion {name}: a limit >= 0 mL/min/mmHg and a per cent between 0 and 100")
+    return RepeatabilityCriterion(name, str(entry["standard"]), absolute, percent)
 
 
 def _rule(entry: Mapping[str, object]) -> GradeRule:

@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import pytest
+
+from bridge.errors import MappingError
 from bridge.science.quality import Grade, ManoeuvreFacts, grade_manoeuvres, select_reported
-from bridge.tables.files import load_tables
+from bridge.tables.files import load_tables, mappings_dir
+from bridge.tables.grades import grade_table
 
 TABLE = load_tables().grades
 
@@ -107,3 +111,74 @@ def test_without_sample_collection_time_the_grade_says_so():
     grade = grade_manoeuvres([_facts(4.75, sample=None)], 5.0, TABLE)[0]
 
     assert ("sample collection time not evaluated: not reported",) == grade.reasons
+
+
+# --- repeatability criteria ---------------------------------------------------------------------
+# sources: "2017": ERS/ATS 2017 DLCO standard (Graham et al., ERJ 2017;49:1600016), two acceptable
+# manoeuvres within 2 mL/min/mmHg (secondary rendering). "2005": ATS/ERS 2005 DLCO standard
+# (MacIntyre et al., ERJ 2005;26:720-735), within 3 mL/min/mmHg or 10 % of the highest value
+# (from memory). Each pair is (criterion, DLCO a, DLCO b, repeatable), with the arithmetic by hand.
+REPEATABILITY_PAIRS = [
+    ("2017", 24.5, 26.5, True),  # 2.0 apart: the limit is inclusive
+    ("2017", 24.5, 26.51, False),  # 2.01 apart
+    ("2017", 20.1, 22.1, True),  # 2.0 apart on paper (2.0000000000000018 in binary floating point)
+    ("2017", 36.0, 40.0, False),  # 4.0 apart
+    ("2005", 20.0, 23.0, True),  # 3.0 apart (10 % of 23.0 is only 2.3): the absolute limit
+    ("2005", 20.0, 23.01, False),  # 3.01 apart, and 10 % of 23.01 is 2.301
+    ("2005", 36.0, 40.0, True),  # 4.0 apart = exactly 10 % of the highest, 40.0
+    ("2005", 35.99, 40.0, False),  # 4.01 apart: over 10 % of 40.0 (4.0) and over 3
+    ("2005", 45.0, 50.0, True),  # 5.0 apart = 10 % of 50.0
+    ("2005", 44.9, 50.0, False),  # 5.1 apart
+]
+
+
+@pytest.mark.parametrize(("criterion", "a", "b", "repeatable"), REPEATABILITY_PAIRS)
+def test_repeatability_at_the_boundaries(criterion: str, a: float, b: float, repeatable: bool):
+    """Two grade-A manoeuvres: repeatable exactly at each limit, not just past it, in either order."""
+    for dlcos in ([a, b], [b, a]):
+        chosen = select_reported([Grade("A", ()), Grade("A", ())], dlcos, TABLE, criterion)
+
+        assert repeatable is chosen.repeatable
+        assert (0, 1) == chosen.indices  # both make the value either way: the caution says why
+        assert (chosen.caution is None) is repeatable
+
+
+def test_lower_grades_are_compared_with_the_chosen_criterion():
+    """Grades B and C 4.0 apart at 40: repeatable by 2005 (10 % of the highest), not by 2017."""
+    grades = [Grade("B", ()), Grade("C", ())]
+
+    assert select_reported(grades, [40.0, 36.0], TABLE, "2005").repeatable is True
+    assert select_reported(grades, [40.0, 36.0], TABLE, "2017").repeatable is False
+
+
+def test_the_caution_names_the_criterion():
+    """Grade-A manoeuvres 3.5 apart at 25: the caution says which standard they fail."""
+    caution = select_reported([Grade("A", ()), Grade("A", ())], [25.0, 28.5], TABLE, "2005").caution
+
+    assert "grade-A manoeuvres not repeatable (ATS/ERS 2005: within 3 mL/min/mmHg or 10 % of the highest)" == caution
+
+
+def test_the_default_criterion_is_2017():
+    """Without a name, the ERS/ATS 2017 limit of 2 mL/min/mmHg applies (2.5 apart: not repeatable)."""
+    assert select_reported([Grade("A", ()), Grade("A", ())], [25.0, 27.5], TABLE).repeatable is False
+    assert ("2017", "2005") == TABLE.criterion_names
+
+
+@pytest.mark.parametrize(
+    ("change", "where"),
+    [
+        (('[repeatability.criteria."2017"]', '[repeatability.criteria."2016"]'), "repeatability.criteria"),
+        (("max_percent_of_highest = 10.0", "max_percent_of_highest = 110.0"), "grade table"),
+        (('standard = "ATS/ERS 2005"\n', ""), "grade table"),
+    ],
+    ids=["no default criterion", "per cent over 100", "no standard"],
+)
+def test_a_broken_criterion_is_refused(change: tuple[str, str], where: str):
+    """The grade table must carry the default criterion, a per cent between 0 and 100, and each standard's name."""
+    text = (mappings_dir() / "quality_grades.toml").read_text(encoding="utf-8")
+    assert change[0] in text
+
+    with pytest.raises(MappingError) as caught:
+        grade_table(text.replace(*change))
+
+    assert where in str(caught.value)

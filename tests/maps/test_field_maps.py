@@ -56,7 +56,7 @@ CASES = {
     ),
     "unknown key": (
         {'format = "csv"': 'format = "csv"\ncolour = "blue"'},
-        "maps/site.toml: line 5: map.colour: one of format, name, on_bad_record, source",
+        "maps/site.toml: line 5: map.colour: one of format, name, on_bad_record, repeatability, source",
     ),
     "unknown format": (
         {'format = "csv"': 'format = "xlsx"'},

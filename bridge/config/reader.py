@@ -1,35 +1,27 @@
-"""The one settings object: TOML, then the environment, then command-line flags (shell).
+"""The merged settings tree -> one frozen :class:`Settings` (shell).
 
-Owns: reading ``bridge.toml``, ``DLCO_BRIDGE_*`` environment variables and the flags the CLI
-passes, in that order of precedence, into one frozen :class:`Settings`; checking every value
-when it is read (a bad configuration stops the command before any file is touched, with the
-file, key and what was expected); and saying where each setting came from. It is the only
-module that reads the environment. Defaults live with the value objects they belong to
-(:class:`bridge.pipeline.PipelineSettings`, :class:`bridge.emit.settings.EmitSettings`, the
-dataclasses below), written once.
-
-Names: a top-level key ``inbox`` is ``DLCO_BRIDGE_INBOX``; a key of a section is
-``DLCO_BRIDGE_<SECTION>_<KEY>`` (``DLCO_BRIDGE_EMIT_SENDING_FACILITY``); a key of a
-destination is ``DLCO_BRIDGE_DESTINATION_<NAME>_<KEY>`` (``DLCO_BRIDGE_DESTINATION_RECORDS_PORT``).
-Flags use the same keys (``--sending-facility`` is ``emit.sending_facility``).
+Owns: :class:`Settings`, the keys each part of it accepts, and turning the tree that
+``bridge.config`` merged from TOML, environment and flags into typed settings objects (the
+pipeline's, the emitters', the service's and each destination's), every value checked by
+``bridge.config.values`` as it is read. Defaults live with the value objects they belong to
+(:class:`bridge.pipeline.PipelineSettings`, :class:`bridge.emit.settings.EmitSettings`,
+:class:`Settings` below), written once.
 """
 
 from __future__ import annotations
 
 import importlib.util
-import re
-import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
-from urllib.parse import urlsplit
 
-from bridge.emit.hl7v2 import IS_LENGTH
+from bridge.config.values import ValueChecker
 from bridge.emit.settings import HEMOGLOBIN_UNITS, EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings
+from bridge.science.compared import REFERENCE_BASES
 from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 from bridge.service.settings import (
     ANSWER_POLICIES,
@@ -37,21 +29,11 @@ from bridge.service.settings import (
     Destination,
     ServiceSettings,
 )
+from bridge.tables.files import repeatability_criteria
 
-ENV_PREFIX = "DLCO_BRIDGE_"
-CONFIG_ENV = ENV_PREFIX + "CONFIG"  # the configuration file, when --config is not given
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
 PROCESSING_IDS = ("P", "T", "D")  # source: HL7 v2.5.1 table 0103 (production, training, debugging)
-_HL7_DELIMITERS = re.compile(r"[|^~\\&\x00-\x1f\x7f]")
-# Systems the site names: a URL it controls, or a registered URN namespace that needs no owner
-# (source: RFC 3001 urn:oid:, RFC 4122 urn:uuid:); never an unregistered urn:<name>: (RFC 8141
-# section 5.1: NIDs are registered with IANA).
-_SYSTEM_URI = re.compile(
-    r"https?://[A-Za-z0-9.-]+(:[0-9]+)?(/\S*)?"
-    r"|urn:oid:[0-2](\.(0|[1-9][0-9]*))+"
-    r"|urn:uuid:[0-9a-f]{8}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{4}-[0-9a-f]{12}"
-)
 
 
 @dataclass(frozen=True, slots=True)
@@ -80,95 +62,29 @@ def _default(cls: type, name: str) -> Any:
     return next(f.default for f in fields(cls) if f.name == name)
 
 
-def config_path(flag: Path | None, environ: Mapping[str, str]) -> Path | None:
-    """The configuration file: ``--config``, else ``DLCO_BRIDGE_CONFIG``, else none."""
-    if flag is not None:
-        return flag
-    named = environ.get(CONFIG_ENV)
-    return Path(named) if named else None
-
-
 _SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
-_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate"}
+_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate", "repeatability", "reference_basis"}
 _GENERAL_KEYS = {"units", "traditional_per_si", "to", "map"}
-_TOP_LEVEL = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
+TOP_LEVEL_KEYS = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
 _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
 
 
-def load_settings(path: Path | None, environ: Mapping[str, str], flags: Mapping[str, Any] | None = None) -> Settings:
-    """Settings from a TOML file (if any), with ``DLCO_BRIDGE_*`` variables, then ``flags`` on top."""
-    if path is None:
-        return parse_settings("", environ, flags, source="(no configuration file)")
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise ConfigError("(file)", f"a readable configuration file ({exc.strerror})", str(path)) from exc
-    return parse_settings(text, environ, flags, source=str(path), base=path.parent)
+def _name(value: Any) -> Any:
+    """A criterion name written as a number in TOML (``repeatability = 2005``) is the same name."""
+    return str(value) if isinstance(value, int) and not isinstance(value, bool) else value
 
 
-def parse_settings(
-    text: str,
-    environ: Mapping[str, str],
-    flags: Mapping[str, Any] | None = None,
-    source: str = "bridge.toml",
-    base: Path = Path(),
-) -> Settings:
-    """:func:`load_settings` on the text of a configuration file."""
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError("(syntax)", f"valid TOML: {exc}", source) from exc
-    merged = _with_flags(_with_environment(data, environ), flags or {})
-    return _Reader(merged, source, base, environ).settings()
-
-
-def _with_environment(data: dict[str, Any], environ: Mapping[str, str]) -> dict[str, Any]:
-    """Overlay ``DLCO_BRIDGE_*`` variables (values stay text; the reader converts them)."""
-    merged: dict[str, Any] = {k: (dict(v) if isinstance(v, dict) else v) for k, v in data.items()}
-    destinations = {k: dict(v) for k, v in data.get("destination", {}).items() if isinstance(v, dict)}
-    for name, value in environ.items():
-        if not name.startswith(ENV_PREFIX) or name == CONFIG_ENV:
-            continue
-        key = name[len(ENV_PREFIX) :].lower()
-        if key.startswith("destination_"):
-            dest, _, dest_key = key[len("destination_") :].partition("_")
-            match = next((d for d in destinations if d.lower() == dest), dest)
-            destinations.setdefault(match, {})[dest_key] = value
-        elif key.startswith("emit_"):
-            merged.setdefault("emit", {})[key[len("emit_") :]] = value
-        elif key in _TOP_LEVEL:
-            merged[key] = value
-    if destinations:
-        merged["destination"] = destinations
-    return merged
-
-
-def _with_flags(data: dict[str, Any], flags: Mapping[str, Any]) -> dict[str, Any]:
-    """Overlay command-line flags (``None``: not given); ``emit.x`` keys go into ``[emit]``."""
-    for key, value in flags.items():
-        if value is None:
-            continue
-        section, _, name = key.rpartition(".")
-        if section:
-            data.setdefault(section, {})[name] = value
-        else:
-            data[key] = value
-    return data
-
-
-class _Reader:
+class SettingsReader(ValueChecker):
     """Typed access to the merged settings tree, each error naming its key."""
 
     def __init__(self, data: dict[str, Any], source: str, base: Path, environ: Mapping[str, str]) -> None:
-        self.data, self.source, self.base, self.environ = data, source, base, environ
-
-    def fail(self, key: str, expected: str) -> ConfigError:
-        return ConfigError(key, expected, self.source)
+        super().__init__(source, base)
+        self.data, self.environ = data, environ
 
     def settings(self) -> Settings:
         d = self.data
-        unknown = sorted(set(d) - _TOP_LEVEL - {"emit", "destination", "maps"})
+        unknown = sorted(set(d) - TOP_LEVEL_KEYS - {"emit", "destination", "maps"})
         if unknown:
             raise self.fail(unknown[0], f"a known setting (every key is shown in {SAMPLE_CONFIG})")
         factor = self.number(
@@ -215,6 +131,12 @@ class _Reader:
             allow=allow,
             validate_outputs=validate,
             emit=self.emit(d.get("emit", {})),
+            repeatability=self.choice(
+                "repeatability", _name(d.get("repeatability", defaults.repeatability)), repeatability_criteria()
+            ),
+            reference_basis=self.choice(  # type: ignore[arg-type]
+                "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
+            ),
         )
 
     def emit(self, e: Any) -> EmitSettings:
@@ -368,83 +290,3 @@ class _Reader:
             "private_key_file": self.path(f"{where}.private_key_file", v["private_key_file"]),
             "scopes": scopes,
         }
-
-    # ---- one checker per kind of value ----
-
-    def path(self, key: str, value: Any) -> Path:
-        if not isinstance(value, str | Path) or not str(value):
-            raise self.fail(key, "a folder path")
-        path = Path(value).expanduser()
-        return path if path.is_absolute() else self.base / path
-
-    def number(self, key: str, value: Any, low: float | None = None) -> float:
-        try:
-            number = float(value)
-        except (TypeError, ValueError):
-            raise self.fail(key, f"a number, got {value!r}") from None
-        if number != number or (low is not None and number < low):  # NaN, or below the floor
-            raise self.fail(
-                key, f"a number >= {low:g}, got {value!r}" if low is not None else f"a number, got {value!r}"
-            )
-        return number
-
-    def port(self, key: str, value: Any, allow_zero: bool) -> int:
-        number = self.number(key, value)
-        if number != int(number) or not (0 if allow_zero else 1) <= number <= 65535:
-            raise self.fail(key, f"a port number 1-65535, got {value!r}")
-        return int(number)
-
-    def loopback(self, key: str, value: Any) -> str:
-        # Health and metrics carry operational data only; they stay on this machine.
-        if value not in ("127.0.0.1", "localhost", "::1"):
-            raise self.fail(key, f"a loopback address (127.0.0.1, localhost or ::1), got {value!r}")
-        return str(value)
-
-    def choice(self, key: str, value: Any, options: tuple[str, ...]) -> str:
-        if value not in options:
-            raise self.fail(key, f"one of {', '.join(options)}, got {value!r}")
-        return str(value)
-
-    def flag(self, key: str, value: Any) -> bool:
-        if isinstance(value, bool):
-            return value
-        if isinstance(value, str) and value.lower() in ("true", "false", "1", "0", "yes", "no"):
-            return value.lower() in ("true", "1", "yes")
-        raise self.fail(key, f"true or false, got {value!r}")
-
-    def words(self, key: str, value: Any) -> tuple[str, ...]:
-        if isinstance(value, str):
-            return tuple(w.strip() for w in value.split(",") if w.strip())
-        if isinstance(value, list | tuple) and all(isinstance(w, str) for w in value):
-            return tuple(w for item in value for w in self.words(key, item))  # a repeated flag: a list
-        raise self.fail(key, "a list of finding codes")
-
-    def kinds(self, key: str, value: Any) -> tuple[OutputKind, ...]:
-        words = self.words(key, value)
-        unknown = [w for w in words if w not in OUTPUT_KINDS]
-        if unknown or not words:
-            raise self.fail(key, f"fhir, hl7 or fhir,hl7, got {value!r}")
-        return tuple(k for k in OUTPUT_KINDS if k in words)
-
-    def hl7_namespace(self, key: str, value: str) -> None:
-        # source: HL7 v2.5.1 ch. 2, HD.1 namespace id is an IS of at most 20 characters; the
-        # delimiters (| ^ ~ \ &) are refused rather than escaped, so every receiver sees the name as set
-        if not 1 <= len(value) <= IS_LENGTH or _HL7_DELIMITERS.search(value):
-            raise self.fail(key, f"1 to {IS_LENGTH} characters without | ^ ~ \\ & or control characters, got {value!r}")
-
-    def uri(self, key: str, value: str) -> None:
-        # source: FHIR R4 datatypes, Identifier.system and Coding.system are of type uri
-        if not _SYSTEM_URI.fullmatch(value):
-            raise self.fail(
-                key, f"an absolute URI: https://... the site controls, urn:oid:... or urn:uuid:..., got {value!r}"
-            )
-
-    def system_base(self, key: str, value: str) -> None:
-        parts = urlsplit(value)
-        if parts.scheme not in ("http", "https") or not parts.netloc or value.endswith("/") or parts.query:
-            raise self.fail(key, f"an https:// URL the site controls, without a trailing / or query, got {value!r}")
-
-    def url(self, key: str, value: str) -> None:
-        parts = urlsplit(value)
-        if parts.scheme not in ("http", "https") or not parts.netloc:
-            raise self.fail(key, f"an http:// or https:// URL, got {value!r}")

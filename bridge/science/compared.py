@@ -1,0 +1,152 @@
+"""Which DLCO and KCO per cent predicted and the z-scores compare, and their GLI-2017 values (pure).
+
+Owns: the setting ``reference_basis`` (its values and default, written once), choosing among the
+values a result may be compared as (measured, adjusted to sea level, to standard Hb, to both)
+the one the setting names -- or the measured value, with the reason, when the record cannot
+give it -- and the GLI-2017 reference values of DLCO, KCO and VA for what is compared. ``derive``
+computes the candidate values; this module only chooses and compares.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Literal
+
+from bridge.model import ComparedBasis, Quantity, ReferenceValue, Session, Sex
+from bridge.science.reference import UNITS, Lms, OutsideRange, Parameter, ReferenceEquations, abnormal_flag, impairment
+
+# The name outputs give the reference set of bridge.science.reference (Stanojevic et al., ERJ 2017;50:1700010).
+REFERENCE_SET = "GLI-2017"
+# Which value per cent predicted and the z-scores of DLCO and KCO compare (the setting
+# reference_basis): adjusted to sea level (the default: ERS/ATS 2017 DLCO standard; Stanojevic
+# et al. 2017 recommend TLCO adjusted to standard pressure and not for Hb), as measured, or
+# adjusted to standard Hb (Cotes) and, where the pressure adjustment applies, to sea level too.
+ReferenceBasis = Literal["pressure_adjusted", "measured", "hb_adjusted"]
+REFERENCE_BASES: tuple[ReferenceBasis, ...] = ("pressure_adjusted", "measured", "hb_adjusted")
+DEFAULT_REFERENCE_BASIS: ReferenceBasis = "pressure_adjusted"
+# How people read a compared basis (check, the outputs' notes, findings).
+BASIS_WORDS: Mapping[ComparedBasis, str] = MappingProxyType(
+    {
+        "measured": "measured",
+        "pressure_adjusted": "adjusted to sea level",
+        "hb_adjusted": "adjusted to standard Hb",
+        "hb_and_pressure_adjusted": "adjusted to standard Hb and to sea level",
+    }
+)
+
+
+@dataclass(frozen=True, slots=True)
+class Candidates:
+    """The values one result may be compared as (None where that value does not exist or does not apply)."""
+
+    measured: Quantity | None
+    at_sea_level: Quantity | None  # only where the pressure adjustment applies
+    hb_adjusted: Quantity | None  # only with an Hb factor
+    hb_and_sea_level: Quantity | None  # only with both
+
+
+@dataclass(frozen=True, slots=True)
+class Compared:
+    """The DLCO and KCO that per cent predicted and the z-scores compare, and on what basis."""
+
+    dlco: Quantity | None
+    dlco_basis: ComparedBasis | None
+    kco: Quantity | None
+    kco_basis: ComparedBasis | None
+    fallback: str | None  # why the asked adjustment could not be made
+
+
+def compare(basis: ReferenceBasis, dlco: Candidates, kco: Candidates, no_hb: str | None) -> Compared:
+    """The DLCO and KCO to compare as ``basis`` asks.
+
+    ``no_hb``: why there is no Hb factor (None: there is one). With "hb_adjusted" and no factor the
+    measured values are compared -- not the sea-level ones: the site asked for a comparison the
+    record cannot give, and ``fallback`` says so rather than a silent half-adjustment. Without a
+    pressure or altitude, or where that adjustment does not change the value at its reported
+    precision, the pressure adjustment does not apply, silently.
+    """
+    if basis == "hb_adjusted" and no_hb is not None:
+        something = dlco.measured is not None or kco.measured is not None
+        return Compared(*_chosen("measured", dlco), *_chosen("measured", kco), no_hb if something else None)
+    return Compared(*_chosen(basis, dlco), *_chosen(basis, kco), None)
+
+
+def _chosen(basis: ReferenceBasis, values: Candidates) -> tuple[Quantity | None, ComparedBasis | None]:
+    if values.measured is None:
+        return None, None
+    if basis == "pressure_adjusted" and values.at_sea_level is not None:
+        return values.at_sea_level, "pressure_adjusted"
+    if basis == "hb_adjusted" and values.hb_and_sea_level is not None:
+        return values.hb_and_sea_level, "hb_and_pressure_adjusted"
+    if basis == "hb_adjusted" and values.hb_adjusted is not None:
+        return values.hb_adjusted, "hb_adjusted"
+    return values.measured, "measured"
+
+
+def no_hb_adjustment(session: Session) -> str:
+    """Why a session has no Hb factor (see ``derive.hb_factor``), as the end of a sentence."""
+    if session.conditions.hemoglobin is None:
+        return "no haemoglobin was reported"
+    if session.patient.sex not in (Sex.MALE, Sex.FEMALE):
+        return f"the Hb adjustment depends on sex, and sex is {session.patient.sex.value!r}"
+    return "the haemoglobin reported is not a positive number"
+
+
+def references(
+    session: Session, age: float, equations: ReferenceEquations, compared: Compared
+) -> dict[str, ReferenceValue | str | None]:
+    """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none.
+
+    DLCO and KCO are compared as ``compared`` holds them (the site's reference_basis); VA as measured.
+    """
+    r = session.results
+    va_basis: ComparedBasis | None = "measured" if r.va is not None else None
+    wanted = (
+        ("reference_dlco", Parameter.DLCO, "DLCO", compared.dlco, compared.dlco_basis),
+        ("reference_kco", Parameter.KCO_TRAD, "KCO", compared.kco, compared.kco_basis),
+        ("reference_va", Parameter.VA, "VA", r.va, va_basis),
+    )
+    fields: dict[str, ReferenceValue | str | None] = {}
+    reasons: list[str] = []
+    for name, parameter, label, value, basis in wanted:
+        if value is None or basis is None:
+            continue
+        lms = equations.lms(parameter, session.patient.sex, age, session.patient.height.value)
+        if isinstance(lms, OutsideRange):  # the person is outside the equations: the same reason for each
+            reasons.append(lms.reason)
+            continue
+        found = _reference(parameter, lms, value, basis)
+        if isinstance(found, OutsideRange):
+            reasons.append(f"{label}: {found.reason}")
+        else:
+            fields[name] = found
+    if reasons:
+        fields["reference_not_computed"] = "; ".join(dict.fromkeys(reasons))
+    return fields
+
+
+def _reference(
+    parameter: Parameter, lms: Lms, compared: Quantity, basis: ComparedBasis
+) -> ReferenceValue | OutsideRange:
+    z = lms.z_score(compared.value)
+    percent = lms.percent_predicted(compared.value)
+    if isinstance(z, OutsideRange):
+        return z
+    if isinstance(percent, OutsideRange):
+        return percent
+    unit = UNITS[parameter]
+    decimals = 1 if parameter is Parameter.DLCO else 2
+    return ReferenceValue(
+        reference_set=REFERENCE_SET,
+        basis=basis,
+        compared=compared,
+        predicted=Quantity(value=lms.predicted, unit=unit, decimals=decimals),
+        lln=Quantity(value=lms.lln, unit=unit, decimals=decimals),
+        uln=Quantity(value=lms.uln, unit=unit, decimals=decimals),
+        z_score=z,
+        percent_predicted=Quantity(value=percent, unit="%", decimals=0),
+        impairment=impairment(z).value,
+        flag=abnormal_flag(z),
+    )
