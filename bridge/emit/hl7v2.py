@@ -59,9 +59,11 @@ from functools import cache
 from types import MappingProxyType
 from urllib.parse import urlsplit
 
+from bridge.emit.content import ReportContent, ResultItem
 from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.emit.identifiers import observation_identifier
-from bridge.emit.observations import OUTPUT_REVISION, ReportContent, ResultItem, build_content, supporting_text
+from bridge.emit.notes import supporting_text
+from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.settings import EmitContext
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.model import Outcome, Patient, Sex

@@ -5,97 +5,45 @@ in the destination's units (the lab's own digits when it reported in those units
 reference range (GLI-2017 LLN-ULN, else the lab's lower limit of normal), the abnormal flag,
 the GLI-2017 predicted value, per cent predicted and z-score beside the lab's own predicted
 values (each labelled with its reference set), what a derived value was derived
-from, and the notes (findings, adjustments). Both the FHIR and the HL7 v2 emitters render this
-list, so the two outputs always carry the same content. Pure.
+from, and which notes go with each (findings, adjustments; their wording is ``notes``, the
+shapes ``content``). Both the FHIR and the HL7 v2 emitters render this list, so the two
+outputs always carry the same content. Pure.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from types import MappingProxyType
-from typing import Literal
 
+from bridge.emit.content import Flag, ReportContent, ResultItem, Supporting
+from bridge.emit.notes import (
+    BRIDGE_NAME,
+    COMPUTED_NOTE,
+    GLI_RANGE_TEXT,
+    GLI_SOURCE,
+    LAB_RANGE_TEXT,
+    basis_text,
+    finding_note,
+    quantity_text,
+    reference_note,
+    report_notes,
+)
 from bridge.model import ComparedBasis, Derived, Finding, Outcome, Quantity, ReferenceValue, Severity
-from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
-from bridge.science.quality import DEFAULT_REPEATABILITY, GradeTable
 from bridge.science.units import UnitSystem
-from bridge.tables import Code, Tables
+from bridge.tables import Tables
 
-BRIDGE_NAME = "dlco-bridge"
-COMPUTED_NOTE = "Computed by dlco-bridge from the reported values."
 # The one place that says the emitted bytes changed: bump it with every change of what the
 # same input produces (codes, values, identifiers, layout). It is part of the HL7 control id
 # (MSH-10), so a receiver that drops repeated MSH-10s still takes the newer output.
 OUTPUT_REVISION = 4
-
-
-Flag = Literal["L", "H", "N"]
 # UCUM annotation for a z-score: a dimensionless number.  # source: UCUM, curly-brace annotations
 Z_SCORE_UNIT = "{Zscore}"
-GLI_SOURCE = "GLI-2017 (Stanojevic et al., Eur Respir J 2017;50:1700010, corrected 2020)"
-GLI_RANGE_TEXT = "GLI-2017 LLN-ULN (5th-95th percentile)"
-LAB_RANGE_TEXT = "LLN (5th percentile)"
-
-
-@dataclass(frozen=True, slots=True)
-class Supporting:
-    """A blood value the export carried with the test (Hb, COHb): context for a result, never a result itself.
-
-    The PFT lab did not measure it at the time of the test, so it is not emitted as an
-    observation of its own: FHIR carries it as a ``component`` of the result it qualifies,
-    HL7 v2 as an NTE after that result's OBX (see :func:`supporting_text`).
-    """
-
-    key: str  # "hemoglobin" or "carboxyhemoglobin"
-    code: Code
-    quantity: Quantity
 
 
 # Which result each blood value qualifies: Hb and COHb both bear on the measured DLCO (ERS/ATS
 # 2017 DLCO standard: report them with it); Hb is the input of the Hb-adjusted DLCO.
 _SUPPORTED_BY = MappingProxyType({"dlco": ("hemoglobin", "carboxyhemoglobin"), "dlco_hb_adjusted": ("hemoglobin",)})
-
-
-@dataclass(frozen=True, slots=True)
-class ResultItem:
-    """One quantity to emit, in the destination's units."""
-
-    key: str  # stable key, e.g. "dlco"; also part of the observation identifier
-    code: Code
-    quantity: Quantity
-    low: Quantity | None = None  # lower limit of normal, same unit
-    flag: Flag | None = None
-    high: Quantity | None = None  # upper limit of normal (GLI-2017 only), same unit
-    range_text: str | None = None  # what the range is and which reference set it comes from
-    # The lab's own lower limit from another reference set, kept beside the GLI-2017 range: (LLN, text).
-    other_ranges: tuple[tuple[Quantity, str], ...] = ()
-    derived_from: tuple[str, ...] = ()
-    computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
-    notes: tuple[str, ...] = ()
-    supporting: tuple[Supporting, ...] = ()  # blood values that qualify this result (not results)
-    # True: an ERROR finding the site allowed through (``allow``) concerns this value or one it
-    # was derived from; the emitters then send it as preliminary, never as final.
-    questionable: bool = False
-
-
-@dataclass(frozen=True, slots=True)
-class ReportContent:
-    """Everything an emitter renders for one outcome."""
-
-    items: tuple[ResultItem, ...]
-    notes: tuple[str, ...] = field(default=())
-
-    @property
-    def questionable(self) -> bool:
-        """Whether any item carries an allowed ERROR finding (the report is then not final)."""
-        return any(item.questionable for item in self.items)
-
-
-def _finding_note(finding: Finding, say: Callable[[Quantity], str]) -> str:
-    """A finding as a note, its quantities in the destination's units."""
-    return f"{finding.severity.value.upper()} {finding.code} ({finding.path}): {finding.text(say)}"
 
 
 def build_content(
@@ -124,12 +72,12 @@ def build_content(
         return express(q, target, cat)
 
     def say(q: Quantity) -> str:
-        return _text(show(q))
+        return quantity_text(show(q))
 
     by_path: dict[str, list[str]] = {}
     for finding in outcome.findings:
         if finding.severity is not Severity.INFO:
-            by_path.setdefault(finding.path, []).append(_finding_note(finding, say))
+            by_path.setdefault(finding.path, []).append(finding_note(finding, say))
 
     items: list[ResultItem] = []
     paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
@@ -167,10 +115,10 @@ def build_content(
         if reference is not None:  # GLI-2017: the range and the flag from the z-score; the lab's LLN beside it
             low_shown, high_shown, flag = show(reference.lln), show(reference.uln), reference.flag
             range_text = GLI_RANGE_TEXT
-            range_notes = (_reference_note(reference, show),)
+            range_notes = (reference_note(reference, show),)
             if low is not None:
                 others = ((show(low), lab_range),)
-                range_notes += (f"{lab_range}: {_text(show(low))}, as reported by the lab.",)
+                range_notes += (f"{lab_range}: {quantity_text(show(low))}, as reported by the lab.",)
         elif low is not None:
             low_shown = show(low)
             flag = "L" if shown.value < low_shown.value else "N"
@@ -217,7 +165,7 @@ def build_content(
         # The bridge's own Cotes adjustment whenever Hb is known: a lab's value (possibly the
         # wrong way round) is never forwarded as the Hb-adjusted result; it is named in a note.
         lab_value = r.dlco_hb_adjusted
-        said = f"; the lab reported {_text(show(lab_value))}" if lab_value is not None else ""
+        said = f"; the lab reported {quantity_text(show(lab_value))}" if lab_value is not None else ""
         add(
             "dlco_hb_adjusted",
             d.dlco_hb_adjusted,
@@ -261,7 +209,7 @@ def build_content(
             Quantity(value=round(reference.z_score, 2), unit=Z_SCORE_UNIT, decimals=2),
             derived_from=(*compared, f"{name}_predicted"),
             computed=True,
-            notes=(f"{reference.reference_set} z-score: {reference.band}, from the {_basis(reference)}.",),
+            notes=(f"{reference.reference_set} z-score: {reference.band}, from the {basis_text(reference)}.",),
         )
     # The lab's own predicted values (another reference set): kept under keys of their own.
     if pred is not None:
@@ -312,21 +260,7 @@ def build_content(
         attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
     else:
         attached = set()  # no finding to attach: nothing to collect
-    return ReportContent(tuple(items), _report_notes(outcome, attached, say, tables.grades))
-
-
-def _text(q: Quantity) -> str:
-    return f"{q.text()} {q.unit}"
-
-
-def _reference_note(reference: ReferenceValue, show: Callable[[Quantity], Quantity]) -> str:
-    """The GLI-2017 values of a result in one sentence, in the destination's units."""
-    return (
-        f"{reference.reference_set}: predicted {_text(show(reference.predicted))}, "
-        f"LLN {_text(show(reference.lln))}, ULN {_text(show(reference.uln))}, z-score {reference.z_score:.2f} "
-        f"({reference.band}), {reference.percent_predicted.text()} % predicted, "
-        f"from the {_basis(reference)}; computed by {BRIDGE_NAME}."
-    )
+    return ReportContent(tuple(items), report_notes(outcome, attached, say, tables.grades))
 
 
 def _compared_from(name: str, basis: ComparedBasis | None, d: Derived) -> tuple[str, ...]:
@@ -339,12 +273,6 @@ def _compared_from(name: str, basis: ComparedBasis | None, d: Derived) -> tuple[
         return (name, "barometric_pressure")
     hb = ("dlco_hb_adjusted",) if name == "dlco" and d.dlco_hb_adjusted is not None else (name, "hemoglobin")
     return (*hb, "barometric_pressure") if basis == "hb_and_pressure_adjusted" else hb
-
-
-def _basis(reference: ReferenceValue) -> str:
-    if reference.basis == "measured":
-        return "measured value"
-    return f"measured value {BASIS_WORDS[reference.basis]}"
 
 
 def _questioned(items: list[ResultItem], paths: dict[str, str], errors: list[Finding]) -> list[ResultItem]:
@@ -391,50 +319,3 @@ def _keep_present_sources(item: ResultItem, present: set[str]) -> ResultItem:
 def _with_supporting(item: ResultItem, blood: dict[str, Supporting]) -> ResultItem:
     supporting = tuple(blood[key] for key in _SUPPORTED_BY.get(item.key, ()) if key in blood)
     return replace(item, supporting=supporting) if supporting else item
-
-
-def supporting_text(value: Supporting) -> str:
-    """The note that carries a blood value in HL7 v2 (after the OBX of the result it qualifies)."""
-    return (
-        f"{value.code.display} {value.quantity.text()} {value.quantity.unit} ({value.code.code}), "
-        "reported with the test: supporting data, not a result of this test."
-    )
-
-
-def _report_notes(
-    outcome: Outcome, attached: set[str], say: Callable[[Quantity], str], grades: GradeTable
-) -> tuple[str, ...]:
-    """Report-level notes: quality grade, reference set, and the findings no item carries."""
-    notes: list[str] = []
-    d, s = outcome.derived, outcome.session
-    if d.session_grade is not None:
-        basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated) + _repeatability_note(d, grades)
-        notes.append(f"Test quality grade {d.session_grade} ({len(s.manoeuvres)} manoeuvres{basis}).")
-    if d.quality_caution is not None:
-        notes.append(f"Interpret with caution: {d.quality_caution}.")
-    pred = s.results.predicted
-    if pred is not None and pred.reference_set:
-        notes.append(f"Reference values: {pred.reference_set}.")
-    graded = [
-        f"{label} z {r.z_score:.2f} ({r.band})"
-        for label, r in (("DLCO", d.reference_dlco), ("KCO", d.reference_kco), ("VA", d.reference_va))
-        if r is not None
-    ]
-    if graded:
-        notes.append(f"Reference values computed by {BRIDGE_NAME}: {GLI_SOURCE}; " + ", ".join(graded) + ".")
-    notes.extend(_finding_note(f, say) for f in outcome.findings if f.path not in attached)
-    return tuple(notes)
-
-
-def _repeatability_note(d: Derived, grades: GradeTable) -> str:
-    """``; repeatable by the ATS/ERS 2005 criterion, ...`` when a criterion other than the default decided it.
-
-    Under the default criterion a repeatable session says nothing more (the caution and the
-    NOT_REPEATABLE finding name the criterion when it is not repeatable); under another one the
-    reported mean rests on a limit a reader would not assume, so the grade note names it either way.
-    """
-    name = d.repeatability_criterion
-    if d.repeatable is None or name is None or name == DEFAULT_REPEATABILITY:
-        return ""
-    rule = grades.criterion(name)
-    return f"; {'repeatable' if d.repeatable else 'not repeatable'} by the {rule.standard} criterion, {rule.limits}"
