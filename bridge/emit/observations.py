@@ -50,41 +50,58 @@ def build_content(
     outcome: Outcome, tables: Tables, units: UnitSystem, hemoglobin_unit: str | None = None
 ) -> ReportContent:
     """The items and notes to emit for one outcome, in ``units`` (haemoglobin in ``hemoglobin_unit`` if set)."""
-    s, d = outcome.session, outcome.derived
-    r, c = s.results, s.conditions
-    pred = r.predicted
-    lln = pred.lower_limits if pred is not None else None
-    cat = tables.units
-    targets: dict[str, str] = {}  # unit -> the unit it is shown in, looked up once per call
-    if hemoglobin_unit is not None:
-        for code, unit in cat.units.items():
-            if unit.dimension == "mass_concentration":
-                targets[code] = hemoglobin_unit
+    b = _Builder(outcome, tables, units, hemoglobin_unit)
+    _results(b)
+    _adjusted_results(b)
+    _gli_values(b)
+    _lab_predicted_values(b)
+    b.add("tlc", outcome.session.results.tlc)
+    b.add("barometric_pressure", outcome.session.conditions.barometric_pressure)
+    return b.content()
 
-    def show(q: Quantity) -> Quantity:
+
+class _Builder:
+    """The items of one outcome as they are added, and what the notes and the error marks need.
+
+    One per :func:`build_content` call; never shared.
+    """
+
+    def __init__(self, outcome: Outcome, tables: Tables, units: UnitSystem, hemoglobin_unit: str | None) -> None:
+        self.outcome, self.tables, self.units = outcome, tables, units
+        self.codes = tables.codes.codes
+        catalogue = tables.units
+        self.targets: dict[str, str] = {}  # unit -> the unit it is shown in, looked up once per call
+        if hemoglobin_unit is not None:
+            for code, unit in catalogue.units.items():
+                if unit.dimension == "mass_concentration":
+                    self.targets[code] = hemoglobin_unit
+        self.by_path: dict[str, list[str]] = {}  # record path -> the notes of its WARNING and ERROR findings
+        for finding in outcome.findings:
+            if finding.severity is not Severity.INFO:
+                self.by_path.setdefault(finding.path, []).append(finding_note(finding, self.say))
+        self.items: list[ResultItem] = []
+        self.paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
+        self.replaced: set[str] = set()  # paths of lab values not forwarded: their errors question nothing
+        predicted = outcome.session.results.predicted
+        self.lab_set = predicted.reference_set if predicted is not None else None
+
+    def show(self, q: Quantity) -> Quantity:
+        """The quantity in the destination's units."""
         if q.unit == Z_SCORE_UNIT:
             return q  # a plain number in every unit system
-        target = targets.get(q.unit)
+        catalogue = self.tables.units
+        target = self.targets.get(q.unit)
         if target is None:
-            target = targets[q.unit] = cat.display_unit(cat.units[q.unit].dimension, units)
+            target = self.targets[q.unit] = catalogue.display_unit(catalogue.units[q.unit].dimension, self.units)
         if q.unit == target:
             return q  # what express() returns for the same unit
-        return express(q, target, cat)
+        return express(q, target, catalogue)
 
-    def say(q: Quantity) -> str:
-        return quantity_text(show(q))
-
-    by_path: dict[str, list[str]] = {}
-    for finding in outcome.findings:
-        if finding.severity is not Severity.INFO:
-            by_path.setdefault(finding.path, []).append(finding_note(finding, say))
-
-    items: list[ResultItem] = []
-    paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
-    replaced: set[str] = set()  # paths of lab values not forwarded: their errors question nothing
-    codes = tables.codes.codes
+    def say(self, q: Quantity) -> str:
+        return quantity_text(self.show(q))
 
     def add(
+        self,
         key: str,
         q: Quantity | None,
         *,
@@ -95,23 +112,23 @@ def build_content(
         notes: tuple[str, ...] = (),
         replaces_lab_value: bool = False,
         reference: ReferenceValue | None = None,
-        reference_set: str | None = None,
     ) -> None:
         """One item; ``replaces_lab_value``: the findings at ``path`` are about the lab's value,
         which this recomputed value replaces, so they are carried as notes but do not question it."""
         if q is None:
             return
         if replaces_lab_value:
-            replaced.add(path)
+            self.replaced.add(path)
         elif path:
-            paths[key] = path
+            self.paths[key] = path
+        show = self.show
         shown = show(q)
         flag: Flag | None = None
         low_shown = high_shown = None
         range_text = None
         others: tuple[tuple[Quantity, str], ...] = ()
         range_notes: tuple[str, ...] = ()
-        lab_range = f"{LAB_RANGE_TEXT}, {reference_set or 'reference set not named by the lab'}"
+        lab_range = f"{LAB_RANGE_TEXT}, {self.lab_set or 'reference set not named by the lab'}"
         if reference is not None:  # GLI-2017: the range and the flag from the z-score; the lab's LLN beside it
             low_shown, high_shown, flag = show(reference.lln), show(reference.uln), reference.flag
             range_text = GLI_RANGE_TEXT
@@ -122,15 +139,15 @@ def build_content(
         elif low is not None:
             low_shown = show(low)
             flag = "L" if shown.value < low_shown.value else "N"
-            range_text = lab_range if reference_set else LAB_RANGE_TEXT
-        found = by_path.get(path) if path and by_path else None
+            range_text = lab_range if self.lab_set else LAB_RANGE_TEXT
+        found = self.by_path.get(path) if path and self.by_path else None
         extra = tuple(found) if found else ()
         if computed and not any(BRIDGE_NAME in note for note in notes + extra):
             extra += (COMPUTED_NOTE,)  # both outputs say which values the lab did not report
-        items.append(
+        self.items.append(
             ResultItem(
                 key,
-                codes[key],
+                self.codes[key],
                 shown,
                 low_shown,
                 flag,
@@ -143,30 +160,49 @@ def build_content(
             )
         )
 
-    lab_set = pred.reference_set if pred is not None else None
-    ref = {"dlco": d.reference_dlco, "kco": d.reference_kco, "va": d.reference_va}
-    add(
-        "dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco", reference=ref["dlco"], reference_set=lab_set
-    )
-    add("va", r.va, low=lln.va if lln else None, path="results.va", reference=ref["va"], reference_set=lab_set)
+    def content(self) -> ReportContent:
+        """The items with their blood values and error marks, and the report's notes."""
+        outcome, c = self.outcome, self.outcome.session.conditions
+        blood = {
+            key: Supporting(key, self.codes[key], self.show(q))
+            for key, q in (("hemoglobin", c.hemoglobin), ("carboxyhemoglobin", c.carboxyhemoglobin))
+            if q is not None
+        }
+        present = {item.key for item in self.items}  # blood values are not items: derivedFrom drops them
+        items = [_keep_present_sources(item, present) if item.derived_from else item for item in self.items]
+        if blood:
+            items = [_with_supporting(item, blood) for item in items]
+        errors = [f for f in outcome.findings if f.severity is Severity.ERROR and f.path not in self.replaced]
+        items = _questioned(items, self.paths, errors)
+        attached: set[str] = set()  # the record paths whose finding notes an item carries
+        if self.by_path:
+            carried = {note for item in items for note in item.notes}
+            attached = {path for path, notes in self.by_path.items() if carried.intersection(notes)}
+        return ReportContent(tuple(items), report_notes(outcome, attached, self.say, self.tables.grades))
+
+
+def _results(b: _Builder) -> None:
+    """DLCO, VA and KCO as the lab reported them (KCO computed when it did not), with their ranges."""
+    r, d = b.outcome.session.results, b.outcome.derived
+    lln = r.predicted.lower_limits if r.predicted is not None else None
+    b.add("dlco", r.dlco, low=lln.dlco if lln else None, path="results.dlco", reference=d.reference_dlco)
+    b.add("va", r.va, low=lln.va if lln else None, path="results.va", reference=d.reference_va)
     if r.kco is not None:
-        add("kco", r.kco, low=lln.kco if lln else None, path="results.kco", reference=ref["kco"], reference_set=lab_set)
+        b.add("kco", r.kco, low=lln.kco if lln else None, path="results.kco", reference=d.reference_kco)
     else:
-        add(
-            "kco",
-            d.kco,
-            low=lln.kco if lln else None,
-            derived_from=("dlco", "va"),
-            computed=True,
-            reference=ref["kco"],
-            reference_set=lab_set,
-        )
+        kco_lln = lln.kco if lln else None
+        b.add("kco", d.kco, low=kco_lln, derived_from=("dlco", "va"), computed=True, reference=d.reference_kco)
+
+
+def _adjusted_results(b: _Builder) -> None:
+    """DLCO adjusted to standard haemoglobin and to sea level."""
+    r, d = b.outcome.session.results, b.outcome.derived
     if d.dlco_hb_adjusted is not None:
         # The bridge's own Cotes adjustment whenever Hb is known: a lab's value (possibly the
         # wrong way round) is never forwarded as the Hb-adjusted result; it is named in a note.
         lab_value = r.dlco_hb_adjusted
-        said = f"; the lab reported {quantity_text(show(lab_value))}" if lab_value is not None else ""
-        add(
+        said = f"; the lab reported {b.say(lab_value)}" if lab_value is not None else ""
+        b.add(
             "dlco_hb_adjusted",
             d.dlco_hb_adjusted,
             derived_from=("dlco", "hemoglobin"),
@@ -176,91 +212,61 @@ def build_content(
             replaces_lab_value=True,
         )
     else:  # the bridge cannot recompute it (no usable sex): the lab's value, with its findings
-        add(
-            "dlco_hb_adjusted",
-            r.dlco_hb_adjusted,
-            derived_from=("dlco", "hemoglobin"),
-            path="results.dlco_hb_adjusted",
+        b.add(
+            "dlco_hb_adjusted", r.dlco_hb_adjusted, derived_from=("dlco", "hemoglobin"), path="results.dlco_hb_adjusted"
         )
-    add(
+    b.add(
         "dlco_pressure_adjusted",
         d.dlco_pressure_adjusted,
         derived_from=("dlco", "barometric_pressure"),
         computed=True,
         notes=("DLCO x (1 + 0.0031 (PIO2 - 150)), PIO2 = FIO2 x (PB - 47), computed by dlco-bridge",),
     )
-    # GLI-2017, computed here: predicted, per cent predicted and z-score of each result.
-    for name in ("dlco", "kco", "va"):
-        reference = ref[name]
+
+
+def _gli_values(b: _Builder) -> None:
+    """GLI-2017, computed here: predicted, per cent predicted and z-score of each result."""
+    d = b.outcome.derived
+    for name, reference in (("dlco", d.reference_dlco), ("kco", d.reference_kco), ("va", d.reference_va)):
         if reference is None:
             continue
         compared = _compared_from(name, reference.basis, d)
         note = (f"Reference set {GLI_SOURCE}.",)
-        add(f"{name}_predicted", reference.predicted, computed=True, notes=note)
-        add(
+        b.add(f"{name}_predicted", reference.predicted, computed=True, notes=note)
+        b.add(
             f"{name}_percent_predicted",
             reference.percent_predicted,
             derived_from=(*compared, f"{name}_predicted"),
             computed=True,
             notes=note,
         )
-        add(
+        b.add(
             f"{name}_z_score",
             Quantity(value=round(reference.z_score, 2), unit=Z_SCORE_UNIT, decimals=2),
             derived_from=(*compared, f"{name}_predicted"),
             computed=True,
             notes=(f"{reference.reference_set} z-score: {reference.band}, from the {basis_text(reference)}.",),
         )
-    # The lab's own predicted values (another reference set): kept under keys of their own.
+
+
+def _lab_predicted_values(b: _Builder) -> None:
+    """The lab's own predicted values (another reference set), under keys of their own, and per cent of them."""
+    pred, d = b.outcome.session.results.predicted, b.outcome.derived
     if pred is not None:
-        lab_note = (f"Reference set {lab_set or 'not named by the lab'}: the lab's predicted value, as reported.",)
-        add("lab_dlco_predicted", pred.dlco, notes=lab_note)
-        add("lab_kco_predicted", pred.kco, notes=lab_note)
-        add("lab_va_predicted", pred.va, notes=lab_note)
-    lab_pct_note = (
-        f"Per cent of the lab's predicted value (reference set {lab_set or 'not named'}), computed by {BRIDGE_NAME}.",
+        lab_note = (f"Reference set {b.lab_set or 'not named by the lab'}: the lab's predicted value, as reported.",)
+        b.add("lab_dlco_predicted", pred.dlco, notes=lab_note)
+        b.add("lab_kco_predicted", pred.kco, notes=lab_note)
+        b.add("lab_va_predicted", pred.va, notes=lab_note)
+    note = (
+        f"Per cent of the lab's predicted value (reference set {b.lab_set or 'not named'}), computed by {BRIDGE_NAME}.",
     )
     # Per cent predicted compares the value the site's reference_basis names (S17: adjusted to sea level).
-    add(
-        "lab_dlco_percent_predicted",
-        d.dlco_percent_predicted,
-        derived_from=(*_compared_from("dlco", d.dlco_basis, d), "lab_dlco_predicted"),
-        computed=True,
-        notes=lab_pct_note,
-    )
-    add(
-        "lab_kco_percent_predicted",
-        d.kco_percent_predicted,
-        derived_from=(*_compared_from("kco", d.kco_basis, d), "lab_kco_predicted"),
-        computed=True,
-        notes=lab_pct_note,
-    )
-    add(
-        "lab_va_percent_predicted",
-        d.va_percent_predicted,
-        derived_from=("va", "lab_va_predicted"),
-        computed=True,
-        notes=lab_pct_note,
-    )
-    add("tlc", r.tlc)
-    add("barometric_pressure", c.barometric_pressure)
-    blood = {
-        key: Supporting(key, codes[key], show(q))
-        for key, q in (("hemoglobin", c.hemoglobin), ("carboxyhemoglobin", c.carboxyhemoglobin))
-        if q is not None
-    }
-    present = {item.key for item in items}  # blood values are not items: derivedFrom drops them
-    items = [_keep_present_sources(item, present) if item.derived_from else item for item in items]
-    if blood:
-        items = [_with_supporting(item, blood) for item in items]
-    errors = [f for f in outcome.findings if f.severity is Severity.ERROR and f.path not in replaced]
-    items = _questioned(items, paths, errors)
-    if by_path:
-        carried = {note for item in items for note in item.notes}
-        attached = {path for path, notes in by_path.items() if carried.intersection(notes)}
-    else:
-        attached = set()  # no finding to attach: nothing to collect
-    return ReportContent(tuple(items), report_notes(outcome, attached, say, tables.grades))
+    dlco_from = (*_compared_from("dlco", d.dlco_basis, d), "lab_dlco_predicted")
+    kco_from = (*_compared_from("kco", d.kco_basis, d), "lab_kco_predicted")
+    b.add("lab_dlco_percent_predicted", d.dlco_percent_predicted, derived_from=dlco_from, computed=True, notes=note)
+    b.add("lab_kco_percent_predicted", d.kco_percent_predicted, derived_from=kco_from, computed=True, notes=note)
+    va_from = ("va", "lab_va_predicted")
+    b.add("lab_va_percent_predicted", d.va_percent_predicted, derived_from=va_from, computed=True, notes=note)
 
 
 def _compared_from(name: str, basis: ComparedBasis | None, d: Derived) -> tuple[str, ...]:
