@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import json
 import time
+from pathlib import Path
 
 from bridge.cli import main
-from bridge.config import parse_settings
+from bridge.config import Settings, parse_settings
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
@@ -81,16 +82,22 @@ def test_check_without_a_map_refuses_a_csv_file_as_an_unknown_format(capsys):
     assert (2, expected) == (code, err.strip())
 
 
-def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path):
-    """A CSV with one bad session: the good one is enqueued, the bad one gets its report, the file is archived."""
+def _service_reading_csv_through_the_map(tmp_path: Path) -> Settings:
+    """A service whose inbox reads ``*.csv`` through the bundled CSV map, one HL7 file destination."""
     config = (
         'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n'
         f'[maps]\n"*.csv" = "{CSV_MAP}"\n'
         '[destination.drop]\npayload = "hl7"\ntransport = "file"\nfolder = "out"\n'
     )
     settings = parse_settings(config, {}, base=tmp_path)
+    settings.require_service().inbox.mkdir()
+    return settings
+
+
+def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path):
+    """A CSV with one bad session: the good one is enqueued, the bad one gets its report, the file is archived."""
+    settings = _service_reading_csv_through_the_map(tmp_path)
     service = settings.require_service()
-    service.inbox.mkdir()
     path = service.inbox / "lowmarsh.csv"
     path.write_bytes(CSV_SAMPLE.read_bytes().replace(b"19.08.1965", b"1965-08-19"))  # row 1: not the map's format
     with Ledger.open(service.ledger_path) as ledger:
@@ -110,14 +117,8 @@ def test_a_later_file_for_the_second_session_of_a_many_session_file_is_a_correct
     LOW-2026-0003 alone is a correction (HL7 v2.5.1 OBR-25 / OBX-11 "C": corrected results).
     """
     # source: HL7 v2.5.1 chapter 7, tables 0123 and 0085 (C: correction of a result already sent)
-    config = (
-        'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n'
-        f'[maps]\n"*.csv" = "{CSV_MAP}"\n'
-        '[destination.drop]\npayload = "hl7"\ntransport = "file"\nfolder = "out"\n'
-    )
-    settings = parse_settings(config, {}, base=tmp_path)
+    settings = _service_reading_csv_through_the_map(tmp_path)
     service = settings.require_service()
-    service.inbox.mkdir()
     lines = CSV_SAMPLE.read_bytes().split(b"\n")
     header, second = lines[0], [line for line in lines if line.startswith(b"LOW-2026-0003;")]
     first = service.inbox / "lowmarsh.csv"
