@@ -25,6 +25,7 @@ import pytest
 from hl7.mllp import HL7StreamReader, HL7StreamWriter, start_hl7_server  # type: ignore[import-untyped]
 
 from bridge.service.ledger import Ledger
+from bridge.service.receiver.fhir_peer import operation_outcome
 
 LOOPBACK = "127.0.0.1"
 
@@ -259,13 +260,6 @@ class FhirEndpoint:
     url: str = ""
 
 
-def _outcome(text: str) -> dict[str, Any]:
-    return {
-        "resourceType": "OperationOutcome",
-        "issue": [{"severity": "error", "code": "invalid", "diagnostics": text}],
-    }
-
-
 def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
     class Handler(BaseHTTPRequestHandler):
         def do_POST(self) -> None:  # the name http.server dispatches to
@@ -275,13 +269,13 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
             if endpoint.mode == "slow":
                 time.sleep(endpoint.delay)
             if endpoint.mode == "unavailable":
-                return self._answer(503, _outcome("the store is restarting"))
+                return self._answer(503, operation_outcome("the store is restarting"))
             if endpoint.mode == "throttled":
-                return self._answer(429, _outcome("too many requests"))
+                return self._answer(429, operation_outcome("too many requests"))
             bundle = json.loads(body)
             is_transaction = bundle.get("resourceType") == "Bundle" and bundle.get("type") == "transaction"
             if endpoint.mode == "reject" or not is_transaction:
-                return self._answer(400, _outcome("Observation.code: unknown code"))
+                return self._answer(400, operation_outcome("Observation.code: unknown code"))
             endpoint.bundles.append(bundle)
             entries = [{"response": {"status": "201 Created"}} for _ in bundle.get("entry", [])]
             self._answer(

@@ -98,7 +98,8 @@ class FhirPeer:
         self.server.server_close()
 
 
-def _outcome(text: str) -> dict[str, Any]:
+def operation_outcome(text: str) -> dict[str, Any]:
+    """A FHIR R4 OperationOutcome with one error issue (code ``invalid``) saying ``text``."""
     return {
         "resourceType": "OperationOutcome",
         "issue": [{"severity": "error", "code": "invalid", "diagnostics": text}],
@@ -109,15 +110,17 @@ def _handler(peer: FhirPeer) -> type[BaseHTTPRequestHandler]:
     class Handler(BaseHTTPRequestHandler):
         def do_POST(self) -> None:  # the name http.server dispatches to
             if self.path.rstrip("/") != "/fhir":
-                return self._answer(404, _outcome(f"POST to the base URL {peer.url}"))
+                return self._answer(404, operation_outcome(f"POST to the base URL {peer.url}"))
             length = int(self.headers.get("Content-Length", "0") or 0)
             if length > MAX_BODY_BYTES:
-                return self._answer(413, _outcome("a Bundle of at most 20 MB"))
+                return self._answer(413, operation_outcome("a Bundle of at most 20 MB"))
             try:
                 document = json.loads(self.rfile.read(length))
                 answer = process_transaction(peer.store, document)
             except (ValueError, BundleRefused) as exc:
-                return self._answer(400, _outcome(f"expected {exc}" if isinstance(exc, BundleRefused) else "JSON"))
+                return self._answer(
+                    400, operation_outcome(f"expected {exc}" if isinstance(exc, BundleRefused) else "JSON")
+                )
             peer.bundles += 1
             self._answer(200, answer)
 
