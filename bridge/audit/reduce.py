@@ -1,11 +1,12 @@
 """The keyed streaming reduce over an archive's rows, and the checks across records (pure).
 
-Owns :class:`ArchiveReduce`: rows go in one at a time, in any order; it keeps per test id,
-per patient and per source only what the checks across the archive need (a few short values
-per session, never a record), counts findings by check, source and severity, keeps the worst
-findings for the report, and gathers the numbers the plots draw. :meth:`ArchiveReduce.finish`
-returns the archive's own findings, sorted, so that the result does not depend on the order
-the rows arrived in.
+Owns :class:`ArchiveReduce`: rows go in one at a time, in any order; it counts findings by
+check, source and severity, keeps the worst findings for the report, the unit conventions and
+reference sets per source, and the numbers the plots draw. What the checks across records need
+of every session (its content hash per test id, its :class:`Visit` per patient) is kept by the
+shell outside memory (``bridge.audit.index``) and handed back, sorted, to
+:meth:`ArchiveReduce.finish`, which returns the archive's own findings, sorted, so that the
+result does not depend on the order the rows arrived in.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ import heapq
 import itertools
 from array import array
 from collections import Counter, defaultdict
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 from bridge.audit.rows import AuditFinding, Row
@@ -41,7 +43,7 @@ _Key = tuple[int, tuple[int, ...], tuple[int, ...], tuple[int, ...], tuple[int, 
 
 
 @dataclass(frozen=True, slots=True, order=True)
-class _Visit:
+class Visit:
     """One session of one patient, as the patient checks see it (ordered by time, then file)."""
 
     performed_at: str
@@ -76,9 +78,6 @@ class ArchiveReduce:
     by_source: Counter[tuple[str, str]] = field(default_factory=Counter)
     by_severity: Counter[str] = field(default_factory=Counter)
     plots: Plots = field(default_factory=Plots)
-    _contents: dict[tuple[str, str], dict[str, str]] = field(default_factory=dict)  # (source, test id) -> sha -> file
-    _visits: defaultdict[str, list[_Visit]] = field(default_factory=lambda: defaultdict(list))
-    _names: dict[str, str] = field(default_factory=dict)
     _conventions: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
     _reference_sets: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
     _worst: list[tuple[_Key, AuditFinding, str]] = field(default_factory=list)
@@ -91,13 +90,6 @@ class ArchiveReduce:
             return
         self.readable += 1
         self.clean += row.clean
-        contents = self._contents.setdefault((row.source, row.test_id), {})
-        if row.sha256 not in contents or row.file < contents[row.sha256]:
-            contents[row.sha256] = row.file
-        self._visits[row.patient].append(
-            _Visit(row.performed_at, row.file, row.source, row.test_id, row.sex, row.birth_date, row.dlco)
-        )
-        self._names.setdefault(row.patient, row.patient_name)
         if row.dlco_convention:
             self._conventions[row.source][row.dlco_convention] += 1
         if row.reference_set:
@@ -138,47 +130,23 @@ class ArchiveReduce:
         """The worst findings kept, worst first: severity, then check, source, test id."""
         return [(finding, name) for _, finding, name in sorted(self._worst, reverse=True)]
 
-    def finish(self) -> list[AuditFinding]:
-        """The findings across the archive, sorted; they are counted as well."""
+    def finish(
+        self,
+        contents: Iterable[tuple[str, str, Mapping[str, str]]],
+        patients: Iterable[tuple[str, Sequence[Visit]]],
+    ) -> list[AuditFinding]:
+        """The findings across the archive, sorted; they are counted as well.
+
+        ``contents``: per (source, test id), each content hash with the first file (by name)
+        that carried it; ``patients``: per patient, every visit in order. Both come from the
+        shell's index of the rows that were added.
+        """
         found = sorted(
-            [*self._duplicates(), *self._patients(), *self._sources()],
+            [*_duplicates(contents), *_patients(patients), *self._sources()],
             key=lambda f: (f.source, f.test_id, f.check, f.message),
         )
         for finding in found:
             self.count((finding,))
-        return found
-
-    def _duplicates(self) -> list[AuditFinding]:
-        found = []
-        for (source, test_id), contents in self._contents.items():
-            if len(contents) > 1:
-                files = sorted(contents.values())
-                found.append(
-                    AuditFinding(
-                        source, test_id, DUPLICATE_TEST_ID, Severity.ERROR.value,
-                        f"test id {test_id} has {len(files)} different contents: {', '.join(files)}; "
-                        "decide which one is the result before migrating it.",
-                    )
-                )  # fmt: skip
-        return found
-
-    def _patients(self) -> list[AuditFinding]:
-        found: list[AuditFinding] = []
-        for patient, visits in self._visits.items():
-            visits.sort()
-            first = visits[0]
-            for attribute, check in (("sex", SEX_CHANGED), ("birth_date", BIRTH_DATE_CHANGED)):
-                changed = next((v for v in visits if getattr(v, attribute) != getattr(first, attribute)), None)
-                if changed is not None:
-                    found.append(
-                        AuditFinding(
-                            changed.source, changed.test_id, check, Severity.ERROR.value,
-                            f"patient {patient.split('|')[-1]}: {attribute.replace('_', ' ')} is "
-                            f"{getattr(changed, attribute)} here but {getattr(first, attribute)} in test "
-                            f"{first.test_id} ({first.performed_at[:10]}); one of them is another person or a typo.",
-                        )
-                    )  # fmt: skip
-            found.extend(_jumps(patient, visits))
         return found
 
     def _sources(self) -> list[AuditFinding]:
@@ -195,7 +163,48 @@ class ArchiveReduce:
         return found
 
 
-def _jumps(patient: str, visits: list[_Visit]) -> list[AuditFinding]:
+def visit_of(row: Row) -> Visit:
+    """What the patient checks need of one readable row."""
+    return Visit(row.performed_at, row.file, row.source, row.test_id, row.sex, row.birth_date, row.dlco)
+
+
+def _duplicates(contents: Iterable[tuple[str, str, Mapping[str, str]]]) -> list[AuditFinding]:
+    """The same test id with different contents (each content named by its first file)."""
+    found = []
+    for source, test_id, files_by_content in contents:
+        if len(files_by_content) > 1:
+            files = sorted(files_by_content.values())
+            found.append(
+                AuditFinding(
+                    source, test_id, DUPLICATE_TEST_ID, Severity.ERROR.value,
+                    f"test id {test_id} has {len(files)} different contents: {', '.join(files)}; "
+                    "decide which one is the result before migrating it.",
+                )
+            )  # fmt: skip
+    return found
+
+
+def _patients(patients: Iterable[tuple[str, Sequence[Visit]]]) -> list[AuditFinding]:
+    """A patient whose sex or birth date changes between sessions, or whose DLCO series jumps."""
+    found: list[AuditFinding] = []
+    for patient, visits in patients:
+        first = visits[0]
+        for attribute, check in (("sex", SEX_CHANGED), ("birth_date", BIRTH_DATE_CHANGED)):
+            changed = next((v for v in visits if getattr(v, attribute) != getattr(first, attribute)), None)
+            if changed is not None:
+                found.append(
+                    AuditFinding(
+                        changed.source, changed.test_id, check, Severity.ERROR.value,
+                        f"patient {patient.split('|')[-1]}: {attribute.replace('_', ' ')} is "
+                        f"{getattr(changed, attribute)} here but {getattr(first, attribute)} in test "
+                        f"{first.test_id} ({first.performed_at[:10]}); one of them is another person or a typo.",
+                    )
+                )  # fmt: skip
+        found.extend(_jumps(patient, visits))
+    return found
+
+
+def _jumps(patient: str, visits: Sequence[Visit]) -> list[AuditFinding]:
     """A DLCO series that moves by about the SI/traditional factor between consecutive sessions."""
     found = []
     series = [v for v in visits if v.dlco is not None and v.dlco > 0]

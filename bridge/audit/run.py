@@ -28,6 +28,7 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any, TextIO
 
+from bridge.audit.index import ArchiveIndex
 from bridge.audit.reduce import ArchiveReduce
 from bridge.audit.report import ReportWriter
 from bridge.audit.rows import Row, row_of, row_of_error
@@ -269,18 +270,23 @@ def run_audit(
     writer = ReportWriter(report, ndjson=job.emit_ndjson)
     reduce = ArchiveReduce()
     shown = Progress(progress)
-    try:
-        chunks = chunked(walk(paths), settings.chunk_files)
-        results = map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
-        for result in results:
-            for row in result.rows:
-                reduce.add(row)
-            writer.add(result.rows, result.ndjson)
-            shown.advance(len(result.rows))
-    finally:
-        shown.close()
-        writer.close_streams()
-    return writer.finish(reduce, reduce.finish())
+    with ArchiveIndex(report) as index:
+        try:
+            chunks = chunked(walk(paths), settings.chunk_files)
+            results = (
+                map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
+            )
+            for result in results:
+                for row in result.rows:
+                    reduce.add(row)
+                index.add(result.rows)
+                writer.add(result.rows, result.ndjson)
+                shown.advance(len(result.rows))
+        finally:
+            shown.close()
+            writer.close_streams()
+        archive = reduce.finish(index.contents(), index.patients())
+    return writer.finish(reduce, archive)
 
 
 def terminal(stream: TextIO = sys.stderr) -> TextIO | None:

@@ -1,0 +1,87 @@
+"""What the checks across an archive need of every session, kept on disk (shell).
+
+Owns a temporary SQLite file in the report folder: per readable row its content hash under
+(source, test id) and its :class:`~bridge.audit.reduce.Visit` under its patient. Memory stays
+flat whatever the archive's size; SQLite sorts on disk. At the end it hands both back sorted,
+one test id or one patient at a time, to :meth:`bridge.audit.reduce.ArchiveReduce.finish`,
+and the file is removed.
+"""
+
+from __future__ import annotations
+
+import itertools
+import os
+import sqlite3
+import tempfile
+from collections.abc import Iterator, Sequence
+from pathlib import Path
+
+from bridge.audit.reduce import Visit, visit_of
+from bridge.audit.rows import Row
+
+_SCHEMA = (
+    "CREATE TABLE contents (source TEXT, test_id TEXT, sha256 TEXT, file TEXT)",
+    "CREATE TABLE visits (patient TEXT, performed_at TEXT, file TEXT, source TEXT, test_id TEXT, "
+    "sex TEXT, birth_date TEXT, dlco REAL)",
+)
+_CACHE_KIB = 16 * 1024  # SQLite's page cache; beyond it, sorting spills to temporary files
+
+
+class ArchiveIndex:
+    """A temporary index of the rows of one audit; use it as a context manager (the file is removed)."""
+
+    def __init__(self, folder: Path) -> None:
+        handle, name = tempfile.mkstemp(prefix=".audit-index-", suffix=".sqlite", dir=folder)
+        os.close(handle)
+        self.path = Path(name)
+        self._conn = sqlite3.connect(self.path)
+        # A scratch file, rebuilt by the next run: no journal, no syncs.
+        for pragma in ("journal_mode = OFF", "synchronous = OFF", "temp_store = FILE", f"cache_size = -{_CACHE_KIB}"):
+            self._conn.execute(f"PRAGMA {pragma}")
+        for statement in _SCHEMA:
+            self._conn.execute(statement)
+
+    def __enter__(self) -> ArchiveIndex:
+        return self
+
+    def __exit__(self, *_: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        self._conn.close()
+        self.path.unlink(missing_ok=True)
+
+    def add(self, rows: Sequence[Row]) -> None:
+        """Index the readable rows of one chunk."""
+        readable = [row for row in rows if row.readable]
+        with self._conn:
+            self._conn.executemany(
+                "INSERT INTO contents VALUES (?, ?, ?, ?)",
+                [(row.source, row.test_id, row.sha256, row.file) for row in readable],
+            )
+            self._conn.executemany(
+                "INSERT INTO visits VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                [(row.patient, *_fields(visit_of(row))) for row in readable],
+            )
+
+    def contents(self) -> Iterator[tuple[str, str, dict[str, str]]]:
+        """Per (source, test id), in order: each content hash with the first file (by name) that carried it."""
+        cursor = self._conn.execute(
+            "SELECT source, test_id, sha256, min(file) FROM contents "
+            "GROUP BY source, test_id, sha256 ORDER BY source, test_id, sha256"
+        )
+        for (source, test_id), group in itertools.groupby(cursor, key=lambda r: (r[0], r[1])):
+            yield source, test_id, {sha: file for _, _, sha, file in group}
+
+    def patients(self) -> Iterator[tuple[str, list[Visit]]]:
+        """Per patient, in order: every visit, ordered as :class:`Visit` orders (time, then file)."""
+        cursor = self._conn.execute(
+            "SELECT patient, performed_at, file, source, test_id, sex, birth_date, dlco FROM visits "
+            "ORDER BY patient, performed_at, file, source, test_id, sex, birth_date, dlco"
+        )
+        for patient, group in itertools.groupby(cursor, key=lambda r: r[0]):
+            yield patient, [Visit(*fields[1:]) for fields in group]
+
+
+def _fields(visit: Visit) -> tuple[str, str, str, str, str, str, float | None]:
+    return (visit.performed_at, visit.file, visit.source, visit.test_id, visit.sex, visit.birth_date, visit.dlco)
