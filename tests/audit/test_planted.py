@@ -97,3 +97,13 @@ def test_walk_goes_deeper_than_the_recursion_limit(tmp_path: Path):
             folder = os.path.dirname(folder)
 
     assert [str(tmp_path) + "/d" * 1500 + "/deep.json"] == found
+
+
+def test_the_plots_carry_their_points_as_one_image_each(report: Path):
+    """Thousands of points, yet the page holds one embedded PNG per scatter plot and one for the box plot's
+    outliers, not an element per point."""
+    page = (report / "report.html").read_text(encoding="utf-8")
+    # source: matplotlib documentation, Artist.set_rasterized: a rasterised artist is written to a
+    # vector file (SVG) as one embedded bitmap
+    assert 3 == page.count('xlink:href="data:image/png;base64,')
+    assert len(page) < 2_000_000  # about 3,000 sessions: the points no longer scale the page
