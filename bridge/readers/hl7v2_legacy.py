@@ -88,15 +88,22 @@ def _parsed(where: str, segments: list[str], fmap: FieldMap) -> hl7.Message:
 
 
 def _cells(where: str, message: hl7.Message, fmap: FieldMap) -> tuple[list[Cell], list[str]]:
+    first: dict[str, hl7.Segment] = {}  # each segment name's first segment, found in one pass
+    observations: list[hl7.Segment] = []
+    for segment in message:
+        name = str(segment[0])
+        first.setdefault(name, segment)
+        if name == "OBX":
+            observations.append(segment)
     cells: list[Cell] = []
     for source in fmap.fields:
         if source.value is not None:
             cells.append(Cell(source, source.value, f"{where}, (constant)"))
         elif source.at is not None:
-            cells.append(Cell(source, _located(message, source.at), f"{where}, {source.at}", source.unit))
+            cells.append(Cell(source, _located(first, source.at), f"{where}, {source.at}", source.unit))
     codes = fmap.codes()
     unmapped: list[str] = []
-    for index, obx in enumerate(_segments(message, "OBX"), start=1):
+    for index, obx in enumerate(observations, start=1):
         code = _field(obx, 3, 1)
         if code not in codes:
             unmapped.append(f"{where}, OBX {index} (code {code!r})")
@@ -109,19 +116,12 @@ def _cells(where: str, message: hl7.Message, fmap: FieldMap) -> tuple[list[Cell]
     return cells, unmapped
 
 
-def _segments(message: hl7.Message, name: str) -> list[hl7.Segment]:
-    try:
-        return list(message.segments(name))
-    except KeyError:
-        return []
-
-
-def _located(message: hl7.Message, at: str) -> str:
-    """The text at a location such as ``PID-5.2`` (first repetition; empty when absent)."""
+def _located(first: dict[str, hl7.Segment], at: str) -> str:
+    """The text at a location such as ``PID-5.2`` in the first segment of that name (empty when absent)."""
     name, _, rest = at.partition("-")
     field, _, component = rest.partition(".")
-    found = _segments(message, name)
-    return _field(found[0], int(field), int(component or 1)) if found else ""
+    segment = first.get(name)
+    return _field(segment, int(field), int(component or 1)) if segment is not None else ""
 
 
 def _field(segment: hl7.Segment, field: int, component: int) -> str:
