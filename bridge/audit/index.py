@@ -14,6 +14,7 @@ import os
 import sqlite3
 import tempfile
 from collections.abc import Iterator, Sequence
+from dataclasses import astuple
 from pathlib import Path
 
 from bridge.audit.reduce import Visit, visit_of
@@ -61,7 +62,7 @@ class ArchiveIndex:
             )
             self._conn.executemany(
                 "INSERT INTO visits VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                [(row.patient, *_fields(visit_of(row))) for row in readable],
+                [(row.patient, *astuple(visit_of(row))) for row in readable],
             )
 
     def contents(self) -> Iterator[tuple[str, str, dict[str, str]]]:
@@ -75,13 +76,9 @@ class ArchiveIndex:
 
     def patients(self) -> Iterator[tuple[str, list[Visit]]]:
         """Per patient, in order: every visit, ordered as :class:`Visit` orders (time, then file)."""
-        cursor = self._conn.execute(
+        cursor = self._conn.execute(  # the columns after patient are Visit's fields, in order
             "SELECT patient, performed_at, file, source, test_id, sex, birth_date, dlco FROM visits "
             "ORDER BY patient, performed_at, file, source, test_id, sex, birth_date, dlco"
         )
         for patient, group in itertools.groupby(cursor, key=lambda r: r[0]):
             yield patient, [Visit(*fields[1:]) for fields in group]
-
-
-def _fields(visit: Visit) -> tuple[str, str, str, str, str, str, float | None]:
-    return (visit.performed_at, visit.file, visit.source, visit.test_id, visit.sex, visit.birth_date, visit.dlco)
