@@ -179,7 +179,7 @@ class FhirRestTransport:
             timeout=httpx.Timeout(read_timeout, connect=connect_timeout),
             verify=client_tls_context(tls or TlsOptions()),
             follow_redirects=False,  # a redirected POST is a configuration mistake
-            trust_env=False,  # settings come from config.py only, not ambient variables
+            trust_env=False,  # settings come from bridge.config only, not ambient variables
         )
         self.busy = busy
         self._clock = clock
