@@ -28,6 +28,7 @@ CORE = (
     "tables/canonical_fields.py",
     "tables/field_map_model.py",
     "tables/field_map_parser.py",
+    "tables/field_map_texts.py",
     "readers",
     "emit",
     "display",

@@ -21,11 +21,11 @@ from bridge.config import (
 from bridge.display.bundle_summary import describe_bundle
 from bridge.display.check_report import CAUTION, finding_text, outcome_json, outcome_text
 from bridge.display.hl7_fields import describe_er7
-from bridge.display.map_report import MapCheck, map_check_json, map_check_text
+from bridge.display.map_report import MapCheck, map_check_json, map_check_text, passes
 from bridge.emit.outputs import file_stem
 from bridge.errors import InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
-from bridge.pipeline import Route, process_all
+from bridge.pipeline import PipelineSettings, Route, process_all
 from bridge.readers.csv_export import read_csv
 from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.schema import export_schema
@@ -268,22 +268,42 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
 
 
 def cmd_map(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
-    """``map check MAP SAMPLE``: an invalid map is a setup error (exit 1) naming its file, line and key."""
+    """``map check MAP SAMPLE``: an invalid map is a setup error (exit 1) naming its file, line and key.
+
+    Each record goes through the pipeline twice: as ``check`` (every finding, for the report) and as
+    ``convert`` with the same settings (what would be sent); exit 2 unless :func:`passes`.
+    """
     fmap = load_field_map(args.map_file, tables)
+    name = args.sample.name
     try:
         data = read_input(args.sample, settings.pipeline.max_input_bytes)
         reader = read_csv if fmap.format == "csv" else read_hl7
-        records = list(reader(data, args.sample.name, fmap, tables.units))
-        pipeline = replace(settings.pipeline, field_map=replace(fmap, on_bad_record="skip"))  # show every record
-        results = list(process_all(data, args.sample.name, tables, pipeline))
+        records = list(reader(data, name, fmap, tables.units))
+        shown = replace(settings.pipeline, field_map=replace(fmap, on_bad_record="skip"))  # show every record
+        results = list(process_all(data, name, tables, shown))
+        decisions = _as_convert(data, name, replace(settings.pipeline, field_map=fmap), settings, tables)
     except InputError as exc:
         print(exc.with_source(str(args.sample)).line(), file=sys.stderr)
         return EXIT_BAD_INPUT
-    check = MapCheck(fmap, str(args.sample), tuple(zip(records, results, strict=True)))
+    decided = (*decisions, *[None] * (len(records) - len(decisions)))  # None: "refuse" stopped the file before it
+    check = MapCheck(fmap, str(args.sample), tuple(zip(records, results, strict=True)), decided)
     if args.json:
         document = {"caution": CAUTION, **map_check_json(check)}
         sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
     else:
         sys.stdout.write(map_check_text(check, max(args.records, 0)))
         print(CAUTION)
-    return EXIT_BAD_INPUT if any(isinstance(r, InputError) for r in results) else EXIT_OK
+    return EXIT_OK if passes(check) else EXIT_BAD_INPUT
+
+
+def _as_convert(
+    data: bytes, name: str, pipeline: PipelineSettings, settings: Settings, tables: Tables
+) -> list[Outcome | InputError]:
+    """The pipeline's decision on each record as ``convert`` would take it (its routes, gate and ``on_bad_record``)."""
+    routes = [Route(kind, settings.units) for kind in settings.to]
+    decided: list[Outcome | InputError] = []
+    try:
+        decided.extend(process_all(data, name, tables, pipeline, now=datetime.now(UTC), routes=routes))
+    except InputError as exc:  # on_bad_record = "refuse": the first refused record refuses the rest of the file
+        decided.append(exc)
+    return decided

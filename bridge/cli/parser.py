@@ -20,9 +20,10 @@ EXIT_SETUP = 1
 EXIT_BAD_INPUT = 2
 DEFAULTS = Settings()  # shown in --help; the values themselves are written in the settings classes
 DEFAULTS_SERVICE = ServiceSettings(Path(), Path(), Path(), Path(), ())
+TO_HELP = f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})"
 
 
-def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
+def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: bool = True) -> None:
     """Flags that override the configuration file and the environment (``None``: not given)."""
     parser.add_argument(
         "--config",
@@ -39,12 +40,8 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
         type=int,
         help=f"largest input accepted (key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
     )
-    parser.add_argument(
-        "--map",
-        type=lambda value: str(Path(value).absolute()),
-        help="read every input through this field map (mappings/maps/*.toml; CSV or legacy HL7 v2) "
-        "(key map; default: none, inputs are dlco-result/1 JSON; [maps] chooses one per file pattern)",
-    )
+    if chooses_map:
+        _add_map(parser)
     parser.add_argument(
         "--traditional-per-si",
         type=float,
@@ -96,6 +93,15 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
     )
 
 
+def _add_map(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument(
+        "--map",
+        type=lambda value: str(Path(value).absolute()),
+        help="read every input through this field map (mappings/maps/*.toml; CSV or legacy HL7 v2) "
+        "(key map; default: none, inputs are dlco-result/1 JSON; [maps] chooses one per file pattern)",
+    )
+
+
 def _add_science(parser: argparse.ArgumentParser) -> None:
     """The flags that choose how results are judged: the repeatability criterion and the reference basis."""
     parser.add_argument(
@@ -137,7 +143,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_settings(check, emits=False)
     convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
-    convert.add_argument("--to", help=f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})")
+    convert.add_argument("--to", help=TO_HELP)
     convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
     _add_settings(convert, emits=True)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
@@ -155,7 +161,11 @@ def build_parser() -> argparse.ArgumentParser:
     maps = commands.add_parser("map", help="field maps: onboard a CSV or legacy HL7 v2 source without code")
     map_commands = maps.add_subparsers(dest="map_command", required=True)
     map_check = map_commands.add_parser(
-        "check", help="read a sample through a map: what each column or code feeds, what stays unused or empty"
+        "check",
+        help="read a sample through a map: what each column or code feeds, what stays unused or empty, "
+        "and what convert would do with each record",
+        description="Exit 0 when every record of the sample is readable and convert (with the same settings) "
+        "would send at least one; 2 when a record is unreadable or none would be sent; 1 when the map is invalid.",
     )
     map_check.add_argument("map_file", metavar="MAP", type=Path, help="the field map (TOML)")
     map_check.add_argument("sample", metavar="SAMPLE", type=Path, help="a sample export of the source")
@@ -163,6 +173,8 @@ def build_parser() -> argparse.ArgumentParser:
     map_check.add_argument(
         "--records", type=int, default=SHOWN_RECORDS, help=f"records shown field by field (default {SHOWN_RECORDS})"
     )
+    map_check.add_argument("--to", help=TO_HELP)
+    _add_settings(map_check, emits=True, chooses_map=False)
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
     watch = commands.add_parser("watch", help="run the watch-folder service")
     watch.add_argument("--config", type=Path, help=config_help)

@@ -2,8 +2,11 @@
 
 Owns: the report of one sample: for the first few records, each source column or code beside
 the canonical field it fed and the value in the canonical unit (a wrong unit or a shifted column
-shows at a glance); the source columns or codes nothing uses; the canonical fields that stay
-empty in every record; each bad record's one line; and the findings. Text and JSON.
+shows at a glance; a field built from several columns shows the text they make together); the
+source columns or codes nothing uses; the canonical fields that stay empty in every record; each
+bad record's one line; the findings; and what ``convert`` would do with each record (sent,
+refused by the gate, unreadable), taken from the pipeline's own decision, with the verdict
+(:func:`passes`) that sets the exit status. Text and JSON.
 """
 
 from __future__ import annotations
@@ -14,22 +17,56 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from bridge.errors import InputError
+from bridge.errors import BlockedByFinding, InputError
 from bridge.model import Outcome, Quantity, Session
 from bridge.readers.mapped import Cell, MappedRecord
 from bridge.tables.canonical_fields import MANOEUVRES, canonical_fields
 from bridge.tables.field_map_model import FieldMap
 
 SHOWN_RECORDS = 3  # records shown field by field; the rest are counted
+# What convert would do with a record, as the pipeline decided it.
+SENT, GATE, UNREADABLE, NOT_READ = "sent", "refused by the gate", "unreadable", "not read"
 
 
 @dataclass(frozen=True, slots=True)
 class MapCheck:
-    """A sample read through a map: each record with its pipeline result (outcome or error)."""
+    """A sample read through a map: each record with its pipeline results.
+
+    ``records`` pairs each record with the pipeline's result without outputs (as ``check``: the
+    session's values and every finding); ``decisions`` holds, per record, the pipeline's result
+    with the outputs ``convert`` would write (an outcome: sent; an error: refused), or None where
+    the map's ``on_bad_record = "refuse"`` stopped the file before the record.
+    """
 
     fmap: FieldMap
     sample: str
     records: tuple[tuple[MappedRecord, Outcome | InputError], ...]
+    decisions: tuple[Outcome | InputError | None, ...]
+
+
+def decision(result: Outcome | InputError | None) -> str:
+    """What convert does with a record: sent, refused by the gate (a finding keeps it back), unreadable, not read."""
+    if result is None:
+        return NOT_READ
+    if isinstance(result, Outcome):
+        return SENT
+    return GATE if isinstance(result, BlockedByFinding) else UNREADABLE
+
+
+def counts(check: MapCheck) -> dict[str, int]:
+    """How many records convert would send, refuse by the gate, find unreadable, or not read."""
+    decided = [decision(d) for d in check.decisions]
+    return {kind: decided.count(kind) for kind in (SENT, GATE, UNREADABLE, NOT_READ)}
+
+
+def passes(check: MapCheck) -> bool:
+    """The sample shows a working map: every record readable and at least one that convert would send.
+
+    A record refused by the gate for its own findings does not fail the map; every record refused does
+    (a wrong unit or a shifted column makes every record an error finding).
+    """
+    found = counts(check)
+    return found[SENT] > 0 and found[UNREADABLE] == 0 and found[NOT_READ] == 0
 
 
 def value_at(session: Session, path: str, manoeuvre: int | None) -> Any:
@@ -90,23 +127,29 @@ def _unused(check: MapCheck) -> list[str]:
 def map_check_json(check: MapCheck) -> dict[str, object]:
     """The report as a JSON-ready tree."""
     records = []
-    for record, result in check.records:
-        entry: dict[str, object] = {"where": record.where}
+    for (record, result), decided in zip(check.records, check.decisions, strict=True):
+        entry: dict[str, object] = {"where": record.where, "decision": decision(decided)}
         if isinstance(result, InputError):
             entry["error"] = result.line()
         else:
             entry["test_id"] = result.session.test_id
             entry["fields"] = [_row(c, result.session) for c in record.cells]
             entry["findings"] = [f.model_dump(mode="json") for f in result.findings]
+            if isinstance(decided, InputError):
+                entry["refused"] = decided.line()
         records.append(entry)
+    found = counts(check)
     return {
         "map": check.fmap.name,
         "source": check.fmap.source,
         "format": check.fmap.format,
         "sample": check.sample,
         "records": records,
-        "mapped": sum(1 for _, r in check.records if isinstance(r, Outcome)),
-        "refused": sum(1 for _, r in check.records if isinstance(r, InputError)),
+        "sent": found[SENT],
+        "refused_by_gate": found[GATE],
+        "unreadable": found[UNREADABLE],
+        "not_read": found[NOT_READ],
+        "passed": passes(check),
         "unused_sources": _unused(check),
         "empty_fields": _empty_fields(check),
     }
@@ -128,18 +171,33 @@ def map_check_text(check: MapCheck, shown: int = SHOWN_RECORDS) -> str:
             lines.append(f"  {source:<{widths[0]}}  {written:<{widths[1]}}  -> {field:<{widths[2]}}  = {r['value']}")
         for finding in entry["findings"]:
             lines.append(f"  {finding['severity'].upper()} {finding['code']}: {finding['message']}")
+        lines.append(f"  convert: {entry['decision']}" + (f"  {entry['refused']}" if "refused" in entry else ""))
         lines.append("")
     rest = _records(doc)[shown:]
     if rest:
         lines.append(f"... {len(rest)} more record(s) not shown field by field")
         lines += [f"{e['where']}: REFUSED  {e['error']}" for e in rest if "error" in e]
+        lines += [f"{e['where']}: {e['decision'].upper()}  {e['refused']}" for e in rest if "refused" in e]
         lines.append("")
-    lines.append(f"{doc['mapped']} record(s) mapped, {doc['refused']} refused")
+    lines.append(_summary(doc))
     unused = doc["unused_sources"]
     lines.append("unused in the sample: " + (", ".join(unused) if isinstance(unused, list) and unused else "none"))
     empty = doc["empty_fields"]
     lines.append("canonical fields left empty: " + (", ".join(empty) if isinstance(empty, list) and empty else "none"))
     return "\n".join(lines) + "\n"
+
+
+def _summary(doc: dict[str, object]) -> str:
+    """What convert would do with the sample's records, and whether that shows a working map."""
+    said = f"convert would send {doc['sent']} record(s); {doc['refused_by_gate']} refused by the gate"
+    said += f", {doc['unreadable']} unreadable" + (f", {doc['not_read']} not read" if doc["not_read"] else "")
+    if doc["passed"]:
+        return said
+    if not doc["sent"]:
+        return said + "\nNO RECORD WOULD BE SENT: check each field's column and unit above"
+    if doc["unreadable"]:
+        return said + "\nA RECORD IS UNREADABLE: its line above names the row and column or code"
+    return said + '\nTHE FILE IS REFUSED at its first refused record (on_bad_record = "refuse")'
 
 
 def _records(doc: dict[str, object]) -> list[dict[str, Any]]:

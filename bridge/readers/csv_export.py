@@ -11,13 +11,14 @@ one session's rows are held at a time. Quoting is the stdlib ``csv`` module's (R
 from __future__ import annotations
 
 import csv
+import difflib
 import io
 import itertools
 from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
 from bridge.errors import InvalidField, UnknownFormat, UnreadableInput
-from bridge.readers.mapped import Cell, MappedRecord, is_missing, mapped_record
+from bridge.readers.mapped import Cell, MappedRecord, encoding_error, is_missing, joined_text, mapped_record
 from bridge.science.units import UnitCatalogue
 from bridge.tables.field_map_model import FieldMap, FieldSource
 
@@ -29,8 +30,11 @@ def read_csv(data: bytes, source: str, fmap: FieldMap, catalogue: UnitCatalogue)
     """Every session of a delimited export held in memory (see :func:`read_csv_lines`)."""
     if not data.strip():
         raise UnreadableInput("(file)", "a non-empty export, got an empty file", source)
-    stream = io.TextIOWrapper(io.BytesIO(data), encoding=text_encoding(fmap), newline="")
-    return read_csv_lines(stream, source, fmap, catalogue)
+    try:
+        text = data.decode(text_encoding(fmap))
+    except UnicodeDecodeError as exc:  # decoded whole, so the error names the byte in the file
+        raise encoding_error(data, exc, fmap, "csv.encoding", source) from None
+    return read_csv_lines(io.StringIO(text, newline=""), source, fmap, catalogue)
 
 
 def text_encoding(fmap: FieldMap) -> str:
@@ -95,8 +99,20 @@ def _header(reader: Iterator[list[str]], fmap: FieldMap, source: str) -> list[st
         raise UnreadableInput("(header)", f"a delimited header ({exc})", source) from None
     missing = [c for c in fmap.columns() if c not in header]
     if missing:
-        raise UnknownFormat("(header)", f"the columns of map {fmap.name}; missing {missing[0]!r}", source)
+        raise UnknownFormat("(header)", _not_in_header(missing[0], header, fmap), source)
     return header
+
+
+def _not_in_header(column: str, header: Sequence[str], fmap: FieldMap) -> str:
+    """What the header lacks: the column, the map line and field that name it, and the closest column there is."""
+    named = next((f for f in fmap.fields if column in (*f.columns, f.unit_column)), None)
+    where = ""
+    if named is not None:
+        where = f' (map line {named.line}, fields."{named.target.path}")' if named.line else f" ({named.target.path})"
+    by_lower = {name.lower(): name for name in reversed(header) if name}
+    close = difflib.get_close_matches(column.lower(), list(by_lower), n=1)
+    nearest = f"closest in the header: {by_lower[close[0]]!r}" if close else "no column of the header is close"
+    return f"the columns of map {fmap.name}; missing {column!r}{where}; {nearest}"
 
 
 def _rows(reader: Iterator[list[str]], source: str) -> Iterator[tuple[int, list[str]]]:
@@ -120,7 +136,7 @@ class _Column:
     """Where one field source sits in this file's rows (worked out once per file from the header)."""
 
     source: FieldSource
-    index: int | None  # None: a constant
+    indices: tuple[int, ...]  # the column or columns (joined); (): a constant
     unit_index: int | None
     label: str
 
@@ -129,23 +145,25 @@ def _plan(header: list[str], fmap: FieldMap, per_manoeuvre: bool) -> tuple[_Colu
     return tuple(
         _Column(
             source,
-            header.index(source.column) if source.column is not None else None,
+            tuple(header.index(column) for column in source.columns),
             header.index(source.unit_column) if source.unit_column is not None else None,
-            f"column {source.column!r}" if source.column is not None else "(constant)",
+            source.origin,
         )
         for source in fmap.fields
         if source.target.per_manoeuvre == per_manoeuvre
     )
 
 
-def _cells(plan: tuple[_Column, ...], width: int, row: Sequence[str], line: int, manoeuvre: int | None) -> list[Cell]:
+def _cells(
+    plan: tuple[_Column, ...], width: int, row: Sequence[str], line: int, manoeuvre: int | None, fmap: FieldMap
+) -> list[Cell]:
     """The cells of one row the plan reads (session fields, or one manoeuvre's)."""
     if len(row) != width:
         raise InvalidField(f"line {line}", f"{width} columns as in the header, got {len(row)}")
     return [
         Cell(
             c.source,
-            row[c.index] if c.index is not None else str(c.source.value),
+            joined_text([row[i] for i in c.indices], c.source, fmap) if c.indices else str(c.source.value),
             f"line {line}, {c.label}",
             row[c.unit_index] if c.unit_index is not None else c.source.unit,
             manoeuvre,
@@ -170,10 +188,10 @@ def _session(
     where = f"line {first}" if first == last else f"lines {first}-{last}"
     try:
         session_plan, manoeuvre_plan, width = plans
-        cells = _cells(session_plan, width, group[0][1], first, None)
+        cells = _cells(session_plan, width, group[0][1], first, None, fmap)
         index = 0
         for line, row in group:
-            mine = _cells(manoeuvre_plan, width, row, line, index)
+            mine = _cells(manoeuvre_plan, width, row, line, index, fmap)
             if any(not is_missing(c.text, fmap) for c in mine):
                 cells.extend(mine)
                 index += 1

@@ -17,7 +17,7 @@ from collections.abc import Iterator
 import hl7
 
 from bridge.errors import InputError, InvalidField, UnknownFormat, UnreadableInput
-from bridge.readers.mapped import Cell, MappedRecord, mapped_record
+from bridge.readers.mapped import Cell, MappedRecord, encoding_error, joined_text, mapped_record
 from bridge.science.units import UnitCatalogue
 from bridge.tables.field_map_model import FieldMap
 
@@ -33,7 +33,7 @@ def read_hl7(data: bytes, source: str, fmap: FieldMap, catalogue: UnitCatalogue)
     try:
         text = data.decode("utf-8-sig" if fmap.encoding == "utf-8" else fmap.encoding)
     except UnicodeDecodeError as exc:
-        raise UnreadableInput(f"byte {exc.start}", f"{fmap.encoding} text as the map says", source) from None
+        raise encoding_error(data, exc, fmap, "hl7.encoding", source) from None
     for number, segments in enumerate(messages(text), start=1):
         yield _record(number, segments, fmap, catalogue, source)
 
@@ -99,8 +99,9 @@ def _cells(where: str, message: hl7.Message, fmap: FieldMap) -> tuple[list[Cell]
     for source in fmap.fields:
         if source.value is not None:
             cells.append(Cell(source, source.value, f"{where}, (constant)"))
-        elif source.at is not None:
-            cells.append(Cell(source, _located(first, source.at), f"{where}, {source.at}", source.unit))
+        elif source.locations:
+            text = joined_text([_located(first, at) for at in source.locations], source, fmap)
+            cells.append(Cell(source, text, f"{where}, {source.origin}", source.unit))
     codes = fmap.codes()
     unmapped: list[str] = []
     for index, obx in enumerate(observations, start=1):

@@ -19,12 +19,12 @@ from datetime import datetime
 from decimal import Decimal
 from typing import Any
 
-from bridge.errors import InputError, InvalidField, MissingField, UnitError
+from bridge.errors import InputError, InvalidField, MissingField, UnitError, UnreadableInput
 from bridge.model import Session
 from bridge.readers.json_export import FORMAT, session_from_tree
 from bridge.science.units import UnitCatalogue
 from bridge.tables.canonical_fields import MANOEUVRES
-from bridge.tables.field_map_model import FieldMap, FieldSource
+from bridge.tables.field_map_model import ENCODINGS, FieldMap, FieldSource, has_time
 
 _NUMBER = re.compile(r"[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,3})?")
 
@@ -124,9 +124,11 @@ def cell_value(cell: Cell, fmap: FieldMap, catalogue: UnitCatalogue) -> Any:
         value = number(text, fmap, cell.where)
         return value / 100 if cell.source.percent else value
     if target.kind == "date":
-        return _moment(text, fmap.date_format, cell.where, "date").date().isoformat()
+        return _moment(text, fmap.formats_for(cell.source), cell.where, "date")[0].date().isoformat()
     if target.kind == "datetime":
-        moment = _moment(text, fmap.datetime_format, cell.where, "date-time")
+        moment, fmt = _moment(text, fmap.formats_for(cell.source), cell.where, "date-time")
+        if not has_time(fmt) and cell.source.assume_time is not None:  # the map says which time (never guessed)
+            moment = datetime.combine(moment.date(), cell.source.assume_time)
         if moment.tzinfo is None:
             moment = moment.replace(tzinfo=fmap.zone)
         return moment.isoformat()
@@ -164,8 +166,53 @@ def unit_of(cell: Cell, fmap: FieldMap, catalogue: UnitCatalogue) -> str:
     return spelling
 
 
-def _moment(text: str, fmt: str, where: str, what: str) -> datetime:
-    try:
-        return datetime.strptime(text, fmt)
-    except ValueError:
-        raise InvalidField(where, f"a {what} in the map's format {fmt}, got {text!r}") from None
+def _moment(text: str, formats: Sequence[str], where: str, what: str) -> tuple[datetime, str]:
+    """The moment the first format that reads ``text`` gives, and that format."""
+    for fmt in formats:
+        try:
+            return datetime.strptime(text, fmt), fmt
+        except ValueError:
+            continue
+    shown = f"format {formats[0]}" if len(formats) == 1 else f"formats {' or '.join(formats)}"
+    raise InvalidField(where, f"a {what} in the map's {shown}, got {text!r}")
+
+
+def joined_text(texts: Sequence[str], source: FieldSource, fmap: FieldMap) -> str:
+    """The text of a field read from one or several sources: the written parts joined (a missing part left out).
+
+    A field whose every part is missing is missing (its first part's marker stands for it).
+    """
+    if len(texts) == 1:
+        return texts[0]
+    written = [t.strip() for t in texts if not is_missing(t, fmap)]
+    return source.join.join(written) if written else texts[0] if texts else ""
+
+
+def encoding_error(data: bytes, exc: UnicodeDecodeError, fmap: FieldMap, key: str, source: str) -> UnreadableInput:
+    """The file is not in the map's encoding: the byte offset, the byte, and the encoding the bytes read as."""
+    likely = likely_encoding(data)
+    got = f"got byte 0x{data[exc.start]:02x}" if exc.start < len(data) else "got a truncated character"
+    if likely not in ENCODINGS:
+        advice = f"; the file looks like {likely}, which a map does not read: export it as UTF-8"
+    else:
+        advice = f'; the file reads as {likely} (set encoding = "{likely}")' if likely != fmap.encoding else ""
+    return UnreadableInput(f"byte {exc.start}", f"{fmap.encoding} text as the map says ({key}), {got}{advice}", source)
+
+
+def likely_encoding(data: bytes) -> str:
+    """The encoding the bytes most likely are: UTF-16 when a byte-order mark says so; UTF-8 if they decode
+    as it; else cp1252 if they use its printable bytes 0x80-0x9F (Windows quotes, dashes, the euro sign);
+    else Latin-1, which reads any byte."""
+    # source: Unicode Standard, section 23.8 (U+FEFF as a byte-order mark: FF FE or FE FF opens UTF-16)
+    if data[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        return "utf-16"
+    # source: WHATWG Encoding Standard, windows-1252 index (0x80-0x9F are C1 controls in ISO 8859-1)
+    for codec in ("utf-8", "cp1252"):
+        if codec == "cp1252" and not any(0x80 <= b <= 0x9F for b in data):
+            continue
+        try:
+            data.decode(codec)
+        except UnicodeDecodeError:
+            continue
+        return codec
+    return "latin-1"

@@ -10,9 +10,10 @@ docs/field-maps.md describes the format.
 from __future__ import annotations
 
 import fnmatch
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import UTC, tzinfo
+from datetime import UTC, time, tzinfo
 from types import MappingProxyType
 from typing import Literal
 
@@ -23,17 +24,25 @@ FORMATS: tuple[MapFormat, ...] = ("csv", "hl7v2")
 
 # Defaults of a map, written once.
 DEFAULT_MISSING = ("", "-", "n/a")  # common practice: how lab exports write "not measured"
-DEFAULT_DATE_FORMAT = "%Y-%m-%d"
-DEFAULT_DATETIME_FORMAT = "%Y-%m-%dT%H:%M"
-DEFAULT_HL7_DATE_FORMAT = "%Y%m%d"  # source: HL7 v2.5.1 ch. 2, DT/TS formats (YYYYMMDD[HHMM[SS]][+/-ZZZZ])
-DEFAULT_HL7_DATETIME_FORMAT = "%Y%m%d%H%M%z"
+DEFAULT_DATE_FORMAT = ("%Y-%m-%d",)
+DEFAULT_DATETIME_FORMAT = ("%Y-%m-%dT%H:%M",)
+DEFAULT_HL7_DATE_FORMAT = ("%Y%m%d",)  # source: HL7 v2.5.1 ch. 2, DT/TS formats (YYYYMMDD[HHMM[SS]][+/-ZZZZ])
+DEFAULT_HL7_DATETIME_FORMAT = ("%Y%m%d%H%M%z",)
+DEFAULT_JOIN = " "  # what stands between the texts of a field read from several columns or locations
 DEFAULT_TIME_ZONE = "UTC"
 DEFAULT_SEX_CODES = MappingProxyType({"M": "male", "F": "female", "O": "other", "U": "unknown"})
 DEFAULT_HL7_VERSIONS = ("2.3", "2.3.1", "2.4", "2.5", "2.5.1")
 DEFAULT_DELIMITER = "auto"  # sniffed by the stdlib csv module among , ; tab |
-ENCODINGS = ("utf-8", "latin-1")  # utf-8 drops a byte-order mark
+ENCODINGS = ("utf-8", "latin-1", "cp1252")  # utf-8 drops a byte-order mark; cp1252: Windows Western European
 ON_BAD_RECORD = ("skip", "refuse")
 ROWS = ("session", "manoeuvre")
+# source: Python documentation, datetime "strftime() and strptime() Format Codes" (the codes that read a time of day)
+TIME_DIRECTIVES = frozenset("HIMSXc")
+
+
+def has_time(fmt: str) -> bool:
+    """Whether a strptime format reads a time of day (``%d.%m.%Y`` does not; ``%d.%m.%Y %H:%M`` does)."""
+    return not TIME_DIRECTIVES.isdisjoint(re.findall(r"%(.)", fmt.replace("%%", "")))
 
 
 @dataclass(frozen=True, slots=True)
@@ -43,16 +52,36 @@ class FieldSource:
     target: CanonicalField
     column: str | None = None  # CSV: the column header
     at: str | None = None  # HL7: a segment location such as PID-5.2
+    joined_columns: tuple[str, ...] = ()  # CSV: several columns whose texts are joined (column is None)
+    joined_locations: tuple[str, ...] = ()  # HL7: several locations whose texts are joined (at is None)
+    join: str = DEFAULT_JOIN  # what stands between the joined texts
     code: str | None = None  # HL7: the local code in OBX-3.1
     value: str | None = None  # the same value for every record
     unit: str | None = None  # a fixed unit, as the source means it
     unit_column: str | None = None  # CSV: the column that carries the unit
     unit_from_obx: bool = False  # HL7: the unit is in OBX-6
     percent: bool = False  # a gas fraction written as a percentage (0.3 means 0.003)
+    formats: tuple[str, ...] = ()  # dates and date-times: the field's own strptime formats (): the map's
+    assume_time: time | None = None  # a date-time read with a date-only format: the time of day it takes
+    line: int | None = None  # the line of the map that names this field (errors point to it)
+
+    @property
+    def columns(self) -> tuple[str, ...]:
+        """CSV: the column or columns the value is read from (several are joined); () for a constant."""
+        return self.joined_columns or ((self.column,) if self.column is not None else ())
+
+    @property
+    def locations(self) -> tuple[str, ...]:
+        """HL7: the segment location or locations the value is read from (several are joined)."""
+        return self.joined_locations or ((self.at,) if self.at is not None else ())
 
     @property
     def origin(self) -> str:
         """How reports name the source of the field: a column, a code, a location or a constant."""
+        if self.joined_columns:
+            return "columns " + " + ".join(repr(c) for c in self.joined_columns)
+        if self.joined_locations:
+            return " + ".join(self.joined_locations)
         if self.column is not None:
             return f"column {self.column!r}"
         if self.code is not None:
@@ -74,8 +103,8 @@ class FieldMap:
     repeatability: str | None = None  # the repeatability criterion for this source; None: the site's
     missing: frozenset[str] = frozenset(DEFAULT_MISSING)
     decimal: str = "."
-    date_format: str = DEFAULT_DATE_FORMAT
-    datetime_format: str = DEFAULT_DATETIME_FORMAT
+    date_format: tuple[str, ...] = DEFAULT_DATE_FORMAT  # strptime formats, tried in order
+    datetime_format: tuple[str, ...] = DEFAULT_DATETIME_FORMAT
     time_zone: str = DEFAULT_TIME_ZONE
     zone: tzinfo = UTC  # time_zone resolved by the shell's zone lookup (the core reads no tz database)
     sex_codes: Mapping[str, str] = field(default_factory=lambda: DEFAULT_SEX_CODES)
@@ -91,10 +120,16 @@ class FieldMap:
 
     def columns(self) -> tuple[str, ...]:
         """Every CSV column the map reads (values and units), in map order."""
-        named = [c for f in self.fields for c in (f.column, f.unit_column) if c is not None]
+        named = [c for f in self.fields for c in (*f.columns, f.unit_column) if c is not None]
         if self.group_by is not None:
             named.append(self.group_by)
         return tuple(dict.fromkeys(named))
+
+    def formats_for(self, source: FieldSource) -> tuple[str, ...]:
+        """The strptime formats that read a date or date-time field, in order: its own, else the map's."""
+        if source.formats:
+            return source.formats
+        return self.datetime_format if source.target.kind == "datetime" else self.date_format
 
     def codes(self) -> Mapping[str, tuple[FieldSource, ...]]:
         """HL7 local code -> the field sources it feeds."""

@@ -36,16 +36,17 @@ from bridge.tables.field_map_model import (
     FieldMap,
     FieldSource,
 )
+from bridge.tables.field_map_texts import check_location, check_times_of_day, date_reading, formats, joined_sources
 from bridge.tables.toml import read_toml
 
 OBX_UNIT = "OBX-6"  # ``unit_from`` of an HL7 code: the unit is in the OBX's own units field
-_HL7_LOCATION = re.compile(r"(?P<segment>[A-Z][A-Z0-9]{2})-(?P<field>[1-9][0-9]*)(?:\.(?P<component>[1-9][0-9]*))?")
 
 _MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record", "repeatability"})
 _VALUE_KEYS = frozenset({"missing", "decimal", "date_format", "datetime_format", "time_zone"})
 _CSV_KEYS = frozenset({"delimiter", "encoding", "header_rows", "rows", "group_by"})
 _HL7_KEYS = frozenset({"versions", "encoding"})
 _SOURCE_KEYS = frozenset({"column", "at", "code", "value", "unit", "unit_column", "unit_from", "percent"})
+_TEXT_KEYS = frozenset({"join", "format", "assume_time"})  # bridge.tables.field_map_texts
 _SECTIONS = frozenset({"map", "values", "sex", "units", "csv", "hl7", "fields"})
 
 
@@ -157,9 +158,15 @@ def field_map(
         repeatability=_repeatability(check, head, criteria),
         missing=frozenset(_missing(check, values)),
         decimal=check.choice(values, "decimal", "values.decimal", (".", ","), "."),
-        date_format=_format(check, values, "date_format", DEFAULT_HL7_DATE_FORMAT if hl7 else DEFAULT_DATE_FORMAT),
-        datetime_format=_format(
-            check, values, "datetime_format", DEFAULT_HL7_DATETIME_FORMAT if hl7 else DEFAULT_DATETIME_FORMAT
+        date_format=formats(
+            check, values, "date_format", "values.date_format", DEFAULT_HL7_DATE_FORMAT if hl7 else DEFAULT_DATE_FORMAT
+        ),
+        datetime_format=formats(
+            check,
+            values,
+            "datetime_format",
+            "values.datetime_format",
+            DEFAULT_HL7_DATETIME_FORMAT if hl7 else DEFAULT_DATETIME_FORMAT,
         ),
         time_zone=zone,
         zone=resolved,
@@ -189,19 +196,18 @@ def _field_source(
         spec = {"column": spec} if fmt == "csv" else {"code": spec}
     if not isinstance(spec, dict):
         raise check.fail(where, 'a table such as { column = "..." }')
-    check.known(spec, _SOURCE_KEYS, where)
+    check.known(spec, _SOURCE_KEYS | _TEXT_KEYS, where)
     allowed = ("column", "value") if fmt == "csv" else ("at", "code", "value")
     given = [k for k in ("column", "at", "code", "value") if k in spec]
     if len(given) != 1 or given[0] not in allowed:
         raise check.fail(where, f"exactly one of {', '.join(allowed)} for a {fmt} map")
-    for key in (*given, "unit", "unit_column", "unit_from"):
+    joined = joined_sources(check, where, spec, target)  # column = ["Date", "Time"]: several sources, joined
+    for key in (*([] if joined else given), "unit", "unit_column", "unit_from"):
         if key in spec and (not isinstance(spec[key], str) or (key != "value" and not spec[key])):
             raise check.fail(f"{where}.{key}", "non-empty text")
-    at = spec.get("at")
-    if at is not None and not _HL7_LOCATION.fullmatch(at):
-        raise check.fail(f"{where}.at", f"a location such as PID-5.2 (segment-field.component), got {at!r}")
-    if at is not None and at.startswith("OBX"):
-        raise check.fail(f"{where}.at", "a segment other than OBX (OBX values are mapped by code)")
+    at = None if joined else spec.get("at")
+    if at is not None:
+        check_location(check, f"{where}.at", at)
     if target.per_manoeuvre and fmt == "csv" and "value" in spec:
         raise check.fail(where, "a column (a manoeuvre field cannot be a constant)")
     unit_from = spec.get("unit_from")
@@ -223,7 +229,7 @@ def _field_source(
         raise check.fail(f"{where}.value", "a column or code (quantities are read from the source)")
     return FieldSource(
         target=target,
-        column=spec.get("column"),
+        column=None if joined else spec.get("column"),
         at=at,
         code=spec.get("code"),
         value=spec.get("value"),
@@ -231,6 +237,9 @@ def _field_source(
         unit_column=spec.get("unit_column"),
         unit_from_obx=unit_from is not None,
         percent=percent,
+        line=check.line_of(where),
+        **joined,
+        **date_reading(check, where, spec, target),
     )
 
 
@@ -275,13 +284,6 @@ def _missing(check: _Checker, values: Mapping[str, Any]) -> tuple[str, ...]:
     return tuple(raw)
 
 
-def _format(check: _Checker, values: Mapping[str, Any], key: str, default: str) -> str:
-    fmt = check.text(values, key, f"values.{key}", default)
-    if "%" not in fmt:
-        raise check.fail(f"values.{key}", f"a strftime format such as %d.%m.%Y, got {fmt!r}")
-    return fmt
-
-
 def _delimiter(check: _Checker, table: Mapping[str, Any]) -> str:
     value = table.get("delimiter", DEFAULT_DELIMITER)
     if value != DEFAULT_DELIMITER and (not isinstance(value, str) or len(value) != 1 or value in '"\r\n'):
@@ -312,5 +314,7 @@ def _check_whole(check: _Checker, built: FieldMap) -> None:
             raise check.fail("fields", f'a source for the required field "{required}"')
     if built.rows == "manoeuvre":
         test_id = next(f for f in built.fields if f.target.path == "test_id")
-        if test_id.column != built.group_by:
-            raise check.fail("csv.group_by", f'the column of "test_id" ({test_id.column!r})')
+        if built.group_by not in test_id.columns:
+            named = " or ".join(repr(c) for c in test_id.columns) or "none: it is a constant"
+            raise check.fail("csv.group_by", f'a column of "test_id" ({named})')
+    check_times_of_day(check, built)

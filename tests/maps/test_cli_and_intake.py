@@ -34,10 +34,13 @@ def _cells(line: str) -> list[str]:
 
 
 def test_map_check_json_lists_unused_codes_and_empty_fields(capsys):
-    """--json: the unmapped HL7 code and the fields no message filled, for machines."""
+    """--json: the unmapped HL7 code, the fields no message filled, and what convert would do, for machines.
+
+    HC-19-0077 (sample 09's twin) carries an ERROR finding, so the gate keeps it back; the map is fine (exit 0)."""
     code = main(["map", "check", str(HL7_MAP), str(HL7_SAMPLE), "--json"])
     doc = json.loads(capsys.readouterr().out)
-    assert (0, 4, 0, ["OBX 13 (code 'HCCOMM')"]) == (code, doc["mapped"], doc["refused"], doc["unused_sources"])
+    decided = (doc["sent"], doc["refused_by_gate"], doc["unreadable"])
+    assert (0, (3, 1, 0), ["OBX 13 (code 'HCCOMM')"]) == (code, decided, doc["unused_sources"])
     assert "manoeuvres.inspired_volume" in doc["empty_fields"]
 
 

@@ -12,7 +12,7 @@ from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process_all
 from bridge.readers.csv_export import read_csv
 from bridge.tables import Tables
-from tests.maps.conftest import small_csv_map
+from tests.maps.conftest import SMALL_CSV_MAP, small_csv_map
 
 HEADER = ["id", "when", "patient", "family", "sex", "born", "height", "dlco", "dlco unit"]
 # Names that need RFC 4180 quoting: an embedded delimiter, a doubled quote, a line break, a non-ASCII letter.
@@ -70,12 +70,41 @@ def test_encodings(encoding, bom, map_encoding, tables):
     assert expected == _families(data, tables, delimiter=";", csv_extra=f'encoding = "{map_encoding}"')
 
 
-def test_a_latin_1_file_read_as_utf_8_is_refused_naming_the_encoding(tables):
-    """Bytes that are not UTF-8 under a UTF-8 map: one line naming the setting."""
+def test_a_latin_1_file_read_as_utf_8_is_refused_naming_the_byte_and_the_likely_encoding(tables):
+    """Bytes that are not UTF-8 under a UTF-8 map: one line naming the byte offset, the setting and Latin-1."""
     data = _written(_rows(), ";", "latin-1")
+    offset = data.index(b"\xe9")  # source: ISO/IEC 8859-1 code table (é is 0xE9; UTF-8 writes it C3 A9)
     with pytest.raises(UnreadableInput) as caught:
         _families(data, tables, delimiter=";")
-    assert "x.csv: (file): utf-8 text as the map says (csv.encoding)" == str(caught.value)
+    expected = (
+        f"x.csv: byte {offset}: utf-8 text as the map says (csv.encoding), got byte 0xe9; "
+        'the file reads as latin-1 (set encoding = "latin-1")'
+    )
+    assert expected == str(caught.value)
+
+
+def test_a_windows_1252_file_is_named_as_such_and_reads_with_that_encoding(tables):
+    """Typographic quotes (0x84, 0x93 in Windows-1252) suggest cp1252, and a map saying cp1252 reads the names."""
+    # source: WHATWG Encoding Standard, index windows-1252 (0x84 = U+201E, 0x93 = U+201C; C1 controls in ISO 8859-1)
+    names = ["\u201eFictive\u201c", "Fictivé"]
+    rows = [[*row[:3], name, *row[4:]] for row, name in zip(_rows(), names, strict=False)]
+    data = _written(rows, ";", "cp1252")
+    with pytest.raises(UnreadableInput) as caught:
+        _families(data, tables, delimiter=";")
+    suggested = 'the file reads as cp1252 (set encoding = "cp1252")'
+    assert (True, names) == (
+        str(caught.value).endswith(suggested),
+        _families(data, tables, delimiter=";", csv_extra='encoding = "cp1252"'),
+    )
+
+
+def test_a_utf_16_file_is_named_and_not_read_as_latin_1(tables):
+    """A UTF-16 byte-order mark: the line says to export as UTF-8 rather than suggest a single-byte encoding."""
+    data = _written(_rows(), ";", "utf-16")  # Python's utf-16 codec writes the byte-order mark first
+    with pytest.raises(UnreadableInput) as caught:
+        _families(data, tables, delimiter=";")
+    expected = "x.csv: byte 0: utf-8 text as the map says (csv.encoding), got byte 0xff; the file looks like utf-16"
+    assert expected == str(caught.value)[: len(expected)]
 
 
 def test_decimal_comma_keeps_the_reported_digits(tables):
@@ -102,7 +131,26 @@ def test_a_file_without_the_maps_columns_is_not_its_format(tables):
     data = b"id,when,patient\nT-1,2026-03-02 09:15,FICT-1\n"
     with pytest.raises(UnknownFormat) as caught:
         _families(data, tables)
-    assert "x.csv: (header): the columns of map small.toml; missing 'family'" == str(caught.value)
+    line = next(i for i, t in enumerate(SMALL_CSV_MAP.splitlines(), 1) if t.startswith('"patient.family"'))
+    expected = (
+        f"x.csv: (header): the columns of map small.toml; missing 'family' (map line {line}, "
+        'fields."patient.family"); no column of the header is close'
+    )
+    assert expected == str(caught.value)
+
+
+def test_a_misspelt_column_names_the_map_line_the_field_and_the_closest_column(tables):
+    """A header that writes 'Family name' where the map reads 'family': the map line, the field and the near miss."""
+    data = b"id,when,patient,Family name,sex,born,height,dlco,dlco unit\n"
+    with pytest.raises(UnknownFormat) as caught:
+        _families(data, tables)
+    # the map line: counted in the map's text itself
+    line = next(i for i, t in enumerate(SMALL_CSV_MAP.splitlines(), 1) if t.startswith('"patient.family"'))
+    expected = (
+        f"x.csv: (header): the columns of map small.toml; missing 'family' (map line {line}, "
+        "fields.\"patient.family\"); closest in the header: 'Family name'"
+    )
+    assert expected == str(caught.value)
 
 
 # ---- bad rows: one line naming the file, the row and the column; the other rows go on -------------
