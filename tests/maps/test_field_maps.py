@@ -46,9 +46,54 @@ CASES = {
         'maps/site.toml: line 26: fields."patient.height": its unit: one of unit, unit_column or unit_from '
         "(a quantity needs a unit)",
     ),
-    "bad transform": (
+    "percent on a field that is not a gas fraction": (
         {'{ column = "height", unit = "cm" }': '{ column = "height", unit = "cm", percent = true }'},
         'maps/site.toml: line 26: fields."patient.height".percent: true or false, and true only on a gas fraction',
+    ),
+    "a date-time whose format reads no time of day": (
+        {'datetime_format = "%Y-%m-%d %H:%M"': 'datetime_format = "%Y-%m-%d"'},
+        "maps/site.toml: line 19: fields.\"performed_at\": a time of day: values.datetime_format '%Y-%m-%d' reads "
+        'a date only; read the time too (column = ["date column", "time column"], format = "%d.%m.%Y %H:%M") '
+        'or say the time to assume (assume_time = "00:00")',
+    ),
+    "a date-time field's own date-only format": (
+        {'{ column = "when" }': '{ column = "when", format = ["%Y-%m-%d %H:%M", "%Y-%m-%d"] }'},
+        'maps/site.toml: line 19: fields."performed_at": a time of day: fields."performed_at".format '
+        "'%Y-%m-%d' reads a date only",
+    ),
+    "assume_time with a format that reads a time": (
+        {'{ column = "when" }': '{ column = "when", assume_time = "12:00" }'},
+        'maps/site.toml: line 19: fields."performed_at".assume_time: a date-only format to apply it to '
+        "(values.datetime_format reads a time)",
+    ),
+    "assume_time that is not a time of day": (
+        {'{ column = "when" }': '{ column = "when", format = "%Y-%m-%d", assume_time = "noon" }'},
+        'maps/site.toml: line 19: fields."performed_at".assume_time: a time of day "HH:MM" on a date-time field, '
+        "got 'noon'",
+    ),
+    "format on a field that is not a date": (
+        {'{ column = "patient" }': '{ column = "patient", format = "%Y" }'},
+        'maps/site.toml: line 21: fields."patient.id".format: no format (patient.id is not a date or date-time)',
+    ),
+    "several columns for a quantity": (
+        {'{ column = "height", unit = "cm" }': '{ column = ["height", "inches"], unit = "cm" }'},
+        'maps/site.toml: line 26: fields."patient.height".column: one source (only text, date and date-time '
+        "fields are joined)",
+    ),
+    "a list of one column": (
+        {'{ column = "family" }': '{ column = ["family"] }'},
+        'maps/site.toml: line 23: fields."patient.family".column: non-empty text, or a list of two or more',
+    ),
+    "join without several columns": (
+        {'{ column = "family" }': '{ column = "family", join = "-" }'},
+        'maps/site.toml: line 23: fields."patient.family".join: text, beside a list of columns or locations',
+    ),
+    "csv group_by not a column of test_id": (
+        {
+            '"test_id" = { column = "id" }': '"test_id" = { column = ["site", "id"] }',
+            'delimiter = ","': 'delimiter = ","\nrows = "manoeuvre"\ngroup_by = "number"',
+        },
+        "maps/site.toml: line 10: csv.group_by: a column of \"test_id\" ('site' or 'id')",
     ),
     "bad decimal separator": (
         {'decimal = "."': 'decimal = "·"'},
