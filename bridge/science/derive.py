@@ -105,7 +105,7 @@ def derive(
     not_evaluated: tuple[str, ...] = ()
     if session.manoeuvres:  # without manoeuvres: no grades, nothing selected, no means
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
-        grades = _grades(session, computed, tables)
+        grades = _grades(session, computed, tables, gas)
         assessments = tuple(
             ManoeuvreAssessment(
                 index=i,
@@ -226,7 +226,7 @@ def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[floa
 
 
 def _grades(
-    session: Session, computed: Sequence[tuple[float | None, float | None]], tables: Tables
+    session: Session, computed: Sequence[tuple[float | None, float | None]], tables: Tables, gas: GasConditions
 ) -> tuple[Grade, ...]:
     if not session.manoeuvres:
         return ()
@@ -236,7 +236,7 @@ def _grades(
     largest_vc = max(capacities) if capacities else None
     facts = [
         ManoeuvreFacts(
-            inspired_volume_l=m.inspired_volume.value,
+            inspired_volume_l=_inspired_volume_btps(session, m, gas),
             breath_hold_s=m.breath_hold_time.value,
             sample_collection_s=m.sample_collection_time.value if m.sample_collection_time else None,
             va_l=va,
@@ -244,6 +244,21 @@ def _grades(
         for m, (va, _) in zip(session.manoeuvres, computed, strict=True)
     ]
     return grade_manoeuvres(facts, largest_vc, tables.grades)
+
+
+def _inspired_volume_btps(session: Session, m: Manoeuvre, gas: GasConditions) -> float:
+    """VI in the vital capacity's conditions (BTPS), so VI/VC compares like with like.
+
+    An inspired volume measured ATPD (dry spirometer gas at room temperature, the export's
+    default) is about 12 % smaller than the same gas in the lung; compared with a BTPS vital
+    capacity as it stands it would lower VI/VC and the grade.
+    """
+    vi = m.inspired_volume.value
+    if session.method.inspired_volume_condition == "BTPS":
+        return vi
+    if gas.pb_mmhg <= phys.PH2O_BODY_MMHG or gas.room_temperature_c <= -phys.ZERO_CELSIUS_K:
+        return vi  # no gas-condition factor exists; the equations refuse these conditions too
+    return phys.btps_from_atpd_l(vi, gas.pb_mmhg, gas.room_temperature_c)
 
 
 def _not_evaluated(grades: Sequence[Grade], indices: Sequence[int]) -> tuple[str, ...]:

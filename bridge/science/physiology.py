@@ -100,6 +100,16 @@ def btps_from_stpd_l(volume_stpd_l: float, pb_mmhg: float) -> float:
     return volume_stpd_l / stpd_from_btps_l(1.0, pb_mmhg)
 
 
+def btps_from_atpd_l(volume_atpd_l: float, pb_mmhg: float, room_temperature_c: float) -> float:
+    """Dry gas at room temperature to body conditions: x PB/(PB - 47) x 310/(273 + T).
+
+    The BTPS factor of S05 Table 5 (H2O removed from the sample) without the tracer dilution:
+    what takes an inspired volume, measured ATPD, to the conditions of a vital capacity.
+    """
+    warm = BODY_TEMPERATURE_K / (ZERO_CELSIUS_K + room_temperature_c)
+    return volume_atpd_l * pb_mmhg / (pb_mmhg - PH2O_BODY_MMHG) * warm
+
+
 def atpd_from_btps_l(volume_btps_l: float, pb_mmhg: float, room_temperature_c: float) -> float:
     """Dry gas at room temperature and PB from body conditions: x (PB - 47)/PB x (273 + T)/310."""
     dry = (pb_mmhg - PH2O_BODY_MMHG) / pb_mmhg
