@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Literal
 
 from bridge.model import (
     Derived,
@@ -44,6 +45,7 @@ from bridge.science.quality import (
 from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
+DeadSpaceSource = Literal["stated", "estimated", "unknown"]
 DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"
 # Room temperature assumed for ATPD gas when the export does not say.  # common practice
@@ -184,6 +186,20 @@ def _q(value: float, unit: str, decimals: int) -> Quantity | None:
     return Quantity(value=value, unit=unit, decimals=decimals)
 
 
+def anatomic_dead_space(session: Session, m: Manoeuvre) -> tuple[float, DeadSpaceSource]:
+    """The manoeuvre's anatomic dead space in L, and where it comes from.
+
+    ``stated``: the export's; ``estimated``: 2.2 mL per kg of the patient's weight (the export
+    omits it); ``unknown``: neither is given, nothing is subtracted (VA comes out too large).
+    """
+    if m.anatomic_dead_space is not None:
+        return m.anatomic_dead_space.value, "stated"
+    weight = session.patient.weight
+    if weight is not None and weight.value > 0:
+        return phys.anatomic_dead_space_estimate_l(weight.value), "estimated"
+    return 0.0, "unknown"
+
+
 def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[float | None, float | None]:
     """(VA BTPS in L, DLCO in mL/min/mmHg) from one manoeuvre's gas data; None where impossible.
 
@@ -207,7 +223,7 @@ def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[floa
         gas.pb_mmhg,
         gas.room_temperature_c,
         instrument_dead_space_l=m.instrument_dead_space.value if m.instrument_dead_space else 0.0,
-        anatomic_dead_space_l=m.anatomic_dead_space.value if m.anatomic_dead_space else 0.0,
+        anatomic_dead_space_l=anatomic_dead_space(session, m)[0],
         handling=session.method.sample_gas,
         fa_co2=session.conditions.alveolar_co2_fraction or phys.DEFAULT_ALVEOLAR_CO2_FRACTION,
     )

@@ -27,6 +27,13 @@ BODY_TEMPERATURE_K = 310.0
 ZERO_CELSIUS_K = 273.0  # S05 Table 5 writes 273, not 273.15
 MINUTE_ML_PER_L_S = 60_000.0  # 1000 mL/L x 60 s/min
 
+# Anatomic dead space estimated from body weight when it was not measured: 2.2 mL per kg.
+# source: GLI-2017 TLCO practical recommendations (Stanojevic et al., ERJ 2017;50:1700010, summary
+# table): dead space "measured from the tracer gas washout or estimated using body size". The
+# figure 2.2 mL/kg and that it means the body weight as measured (not an ideal weight) are
+# from memory: the 2017 DLCO standard's text saying so was not read.  # from memory
+ANATOMIC_DEAD_SPACE_ML_PER_KG = 2.2
+
 # Haemoglobin adjustment, Cotes form (DM/(theta*VC) = 0.7): factor (k + Hb) / (1.7 Hb)
 COTES_SLOPE = 1.7  # from memory (constants cross-checked: factor is 1 at the standard Hb)
 COTES_K_MALE_G_DL = 10.22  # 0.7 x 14.6 g/dL, males >= 15 y  # from memory
@@ -48,6 +55,11 @@ COHB_FULL_PERCENT = 100.0
 def initial_alveolar_co_fraction(fi_co: float, fi_tracer: float, fa_tracer: float) -> float:
     """FA,CO,0: inspired CO diluted exactly as the inert tracer (S05, S17)."""
     return fi_co * fa_tracer / fi_tracer
+
+
+def anatomic_dead_space_estimate_l(weight_kg: float) -> float:
+    """VD,anat estimated from body weight: 2.2 mL/kg (83 kg: 0.1826 L)."""
+    return ANATOMIC_DEAD_SPACE_ML_PER_KG * weight_kg / 1000.0
 
 
 def water_vapour_pressure_mmhg(temperature_c: float) -> float:

@@ -239,3 +239,49 @@ def test_three_grade_a_manoeuvres_with_a_repeatable_pair_are_not_flagged(tables:
     assert ["A", "A", "A"] == [a.grade for a in outcome.derived.manoeuvres]
     assert (0, 1) == outcome.derived.reported_manoeuvres
     assert "NOT_REPEATABLE" not in _codes(outcome)
+
+
+def _without_anatomic_dead_space(doc):
+    for manoeuvre in doc["manoeuvres"]:
+        del manoeuvre["anatomic_dead_space"]
+
+
+def test_missing_anatomic_dead_space_is_estimated_from_body_weight(tables: Tables):
+    """Sample 06 without its 150 mL: 2.2 mL/kg x 83 kg = 182.6 mL is subtracted, VA 6.33 L (not 6.60 L), and said."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5: VA,BTPS = (VI,ATPD - VD,INST - VD,ANAT) x FI,Tr/FA,Tr
+    #   x PB/(PB - 47) x 310/(273 + T); GLI-2017 practical recommendations: dead space measured or
+    #   estimated from body size; 2.2 mL/kg  # from memory (the 2017 standard's text was not read)
+    # Hand, sample 06: PB = 101.1 x 760 / 101.325 = 758.31 mmHg; PB/(PB - 47) = 1.066076;
+    #   310/295 = 1.050847; VD,ANAT = 2.2 x 83 = 182.6 mL
+    #   manoeuvre 1: (4.62 - 0.070 - 0.1826) x 0.003/0.00231 x 1.066076 x 1.050847 = 6.3542 L
+    #   manoeuvre 2: (4.55 - 0.070 - 0.1826) x 0.003/0.00229 x 1.066076 x 1.050847 = 6.3069 L
+    #   mean of the two grade-A manoeuvres: 6.3306 L (with 150 mL: 6.378; with nothing: 6.597)
+    outcome = _variant("06-three-manoeuvres", _without_anatomic_dead_space, tables)
+    found = [f for f in outcome.findings if f.code == "ANATOMIC_DEAD_SPACE_ESTIMATED"]
+
+    assert 6.3306 == pytest.approx(outcome.derived.va_from_manoeuvres.value, abs=5e-4)
+    assert [Severity.INFO] == [f.severity for f in found]
+    assert "183 mL" in found[0].message and "83 kg" in found[0].message
+
+
+def test_missing_dead_space_and_weight_is_said(tables: Tables):
+    """Neither dead space nor weight: nothing is subtracted (VA 6.60 L) and the finding says VA is too large."""
+    # source: as above; hand: (4.62 - 0.070) x 1.298701 x 1.120282 = 6.6198 L, (4.55 - 0.070) x
+    #   1.310044 x 1.120282 = 6.5749 L, mean 6.5974 L
+
+    def neither(doc):
+        _without_anatomic_dead_space(doc)
+        del doc["patient"]["weight"]
+
+    outcome = _variant("06-three-manoeuvres", neither, tables)
+
+    assert 6.5974 == pytest.approx(outcome.derived.va_from_manoeuvres.value, abs=5e-4)
+    assert "ANATOMIC_DEAD_SPACE_UNKNOWN" in _codes(outcome)
+    assert "ANATOMIC_DEAD_SPACE_ESTIMATED" not in _codes(outcome)
+
+
+def test_stated_anatomic_dead_space_needs_no_finding(sample_outcomes):
+    """Sample 06 states 150 mL for every manoeuvre: no dead-space finding."""
+    codes = _codes(sample_outcomes["06-three-manoeuvres"])
+
+    assert not {"ANATOMIC_DEAD_SPACE_ESTIMATED", "ANATOMIC_DEAD_SPACE_UNKNOWN"} & codes
