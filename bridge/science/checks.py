@@ -14,7 +14,7 @@ from collections.abc import Iterator
 
 from bridge.model import Derived, Finding, Session, Severity
 from bridge.science.consistency import check_bounds, check_kco, check_recomputed, check_unit_mislabel
-from bridge.science.derive import age_in_years, gas_conditions, hb_factor
+from bridge.science.derive import age_in_years, anatomic_dead_space, gas_conditions, hb_factor
 from bridge.science.findings import (
     DLCO_UNIT,
     PRESSURE_UNIT,
@@ -25,7 +25,7 @@ from bridge.science.findings import (
     message_quantity,
     relative_difference,
 )
-from bridge.science.physiology import COHB_BASELINE_PERCENT
+from bridge.science.physiology import ANATOMIC_DEAD_SPACE_ML_PER_KG, COHB_BASELINE_PERCENT
 from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.tables import Tables
 
@@ -151,6 +151,34 @@ def check_pressure(session: Session, derived: Derived, tables: Tables) -> Iterat
         )
 
 
+def check_dead_space(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    """Say when the anatomic dead space subtracted from VI was estimated from body weight, or not known."""
+    sources = [anatomic_dead_space(session, m) for m in session.manoeuvres]
+    missing = [str(i + 1) for i, (_, source) in enumerate(sources) if source != "stated"]
+    if not missing:
+        return
+    which = f"manoeuvre {missing[0]} states" if len(missing) == 1 else f"manoeuvres {', '.join(missing)} state"
+    volume, source = sources[int(missing[0]) - 1]
+    if source == "estimated":
+        yield finding_with_values(
+            "ANATOMIC_DEAD_SPACE_ESTIMATED",
+            Severity.INFO,
+            "manoeuvres",
+            f"{which} no anatomic dead space: VA was recomputed with {{estimate}} "
+            f"({ANATOMIC_DEAD_SPACE_ML_PER_KG:g} mL per kg of the weight {{weight}}).",
+            estimate=message_quantity(volume * 1000.0, "mL", 0),
+            weight=session.patient.weight,  # type: ignore[arg-type]  # "estimated" needs a weight
+        )
+    else:
+        yield finding(
+            "ANATOMIC_DEAD_SPACE_UNKNOWN",
+            Severity.INFO,
+            "manoeuvres",
+            f"{which} no anatomic dead space and the patient's weight is missing: VA was recomputed "
+            f"without one, so it is too large by about {ANATOMIC_DEAD_SPACE_ML_PER_KG:g} mL per kg of body weight.",
+        )
+
+
 def check_quality(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
     if not session.manoeuvres:
         return
@@ -224,6 +252,7 @@ DEFAULT_RULES: tuple[Rule, ...] = (
     check_haemoglobin,
     check_carboxyhaemoglobin,
     check_pressure,
+    check_dead_space,
     check_quality,
     check_reference,
     check_reference_basis,

@@ -45,6 +45,13 @@ PERCENT_PREDICTED_RELABELLED = (40.0, 140.0)
 # common practice (no published threshold)
 MISLABEL_Z = 5.0
 RELABELLED_Z = 3.0
+# A possible mislabel (warning, below the error tier): the GLI-2017 z-score lies beyond +/-4 as
+# labelled (two-sided probability 6.3e-5 in the reference population, about 1 in 16,000; the
+# error tier's +/-5 is 5.7e-7), while read in the other unit system it lies within +/-1.96, the
+# central 95 % of that population. Severe disease reaches z -4 as well, so this asks a person to
+# check the unit; it never stops a record.  # common practice (no published threshold)
+POSSIBLE_MISLABEL_Z = 4.0
+POSSIBLE_RELABELLED_Z = 1.96
 
 
 def check_kco(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
@@ -99,11 +106,13 @@ def check_unit_mislabel(session: Session, derived: Derived, tables: Tables) -> I
             "nothing else in the record says which.",
         )
         return
+    probable = set()
     for path in accused:
         value, evidence = suspects[path]
         texts = ([mutual] if mutual else []) + [text for text, _, _ in evidence]
         if mutual is None and not any(strong for _, _, strong in evidence) and len(evidence) < 2:
             continue
+        probable.add(path)
         stated = value.original.unit if value.original else value.unit
         values = {name: q for _, found, _ in evidence for name, q in found.items()}
         yield finding_with_values(
@@ -114,6 +123,42 @@ def check_unit_mislabel(session: Session, derived: Derived, tables: Tables) -> I
             "(SI and traditional units swapped?): " + "; ".join(texts) + ".",
             **values,
         )
+    for path, (value, _) in suspects.items():
+        if path not in probable:
+            yield from _possible_mislabel(session, derived, tables, path, value)
+
+
+def _possible_mislabel(
+    session: Session, derived: Derived, tables: Tables, path: str, value: Quantity
+) -> Iterator[Finding]:
+    """The warning tier: far outside the GLI-2017 range as labelled, typical in the other unit system."""
+    is_dlco = path == "results.dlco"
+    reference = derived.reference_dlco if is_dlco else derived.reference_kco
+    if reference is None or abs(reference.z_score) <= POSSIBLE_MISLABEL_Z:
+        return
+    patient = session.patient
+    parameter = Parameter.DLCO if is_dlco else Parameter.KCO_TRAD
+    lms = tables.reference.lms(parameter, patient.sex, age_in_years(session), patient.height.value)
+    if not isinstance(lms, Lms):
+        return
+    stated = value.original.unit if value.original else value.unit
+    source = tables.units.resolve(stated)
+    labelled_traditional = source is None or source.code == value.unit
+    factor = tables.units.traditional_per_si
+    # Labelled traditional, the number may be SI (the value is factor x larger); labelled SI, the reverse.
+    other = reference.compared.value * factor if labelled_traditional else reference.compared.value / factor
+    other_unit = ("mmol/min/kPa" if labelled_traditional else "mL/min/mm[Hg]") + ("" if is_dlco else "/L")
+    z = lms.z_score(other)
+    if not isinstance(z, float) or abs(z) >= POSSIBLE_RELABELLED_Z:
+        return
+    yield finding(
+        "UNIT_MISLABEL_POSSIBLE",
+        Severity.WARNING,
+        path,
+        f"{path} is labelled {stated!r} and may carry the wrong unit (SI and traditional "
+        f"swapped?): its {reference.reference_set} z-score is {reference.z_score:.1f} as labelled and would "
+        f"be {z:+.1f} read as {other_unit}; check the unit at the source.",
+    )
 
 
 def _mislabel_evidence(

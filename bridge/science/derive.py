@@ -14,6 +14,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Literal
 
 from bridge.model import (
     Derived,
@@ -44,6 +45,7 @@ from bridge.science.quality import (
 from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
+DeadSpaceSource = Literal["stated", "estimated", "unknown"]
 DLCO_UNIT = "mL/min/mm[Hg]"
 KCO_UNIT = "mL/min/mm[Hg]/L"
 # Room temperature assumed for ATPD gas when the export does not say.  # common practice
@@ -105,7 +107,7 @@ def derive(
     not_evaluated: tuple[str, ...] = ()
     if session.manoeuvres:  # without manoeuvres: no grades, nothing selected, no means
         computed = [_recompute(session, m, gas) for m in session.manoeuvres]
-        grades = _grades(session, computed, tables)
+        grades = _grades(session, computed, tables, gas)
         assessments = tuple(
             ManoeuvreAssessment(
                 index=i,
@@ -184,6 +186,20 @@ def _q(value: float, unit: str, decimals: int) -> Quantity | None:
     return Quantity(value=value, unit=unit, decimals=decimals)
 
 
+def anatomic_dead_space(session: Session, m: Manoeuvre) -> tuple[float, DeadSpaceSource]:
+    """The manoeuvre's anatomic dead space in L, and where it comes from.
+
+    ``stated``: the export's; ``estimated``: 2.2 mL per kg of the patient's weight (the export
+    omits it); ``unknown``: neither is given, nothing is subtracted (VA comes out too large).
+    """
+    if m.anatomic_dead_space is not None:
+        return m.anatomic_dead_space.value, "stated"
+    weight = session.patient.weight
+    if weight is not None and weight.value > 0:
+        return phys.anatomic_dead_space_estimate_l(weight.value), "estimated"
+    return 0.0, "unknown"
+
+
 def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[float | None, float | None]:
     """(VA BTPS in L, DLCO in mL/min/mmHg) from one manoeuvre's gas data; None where impossible.
 
@@ -207,7 +223,7 @@ def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[floa
         gas.pb_mmhg,
         gas.room_temperature_c,
         instrument_dead_space_l=m.instrument_dead_space.value if m.instrument_dead_space else 0.0,
-        anatomic_dead_space_l=m.anatomic_dead_space.value if m.anatomic_dead_space else 0.0,
+        anatomic_dead_space_l=anatomic_dead_space(session, m)[0],
         handling=session.method.sample_gas,
         fa_co2=session.conditions.alveolar_co2_fraction or phys.DEFAULT_ALVEOLAR_CO2_FRACTION,
     )
@@ -226,7 +242,7 @@ def _recompute(session: Session, m: Manoeuvre, gas: GasConditions) -> tuple[floa
 
 
 def _grades(
-    session: Session, computed: Sequence[tuple[float | None, float | None]], tables: Tables
+    session: Session, computed: Sequence[tuple[float | None, float | None]], tables: Tables, gas: GasConditions
 ) -> tuple[Grade, ...]:
     if not session.manoeuvres:
         return ()
@@ -236,7 +252,7 @@ def _grades(
     largest_vc = max(capacities) if capacities else None
     facts = [
         ManoeuvreFacts(
-            inspired_volume_l=m.inspired_volume.value,
+            inspired_volume_l=_inspired_volume_btps(session, m, gas),
             breath_hold_s=m.breath_hold_time.value,
             sample_collection_s=m.sample_collection_time.value if m.sample_collection_time else None,
             va_l=va,
@@ -244,6 +260,21 @@ def _grades(
         for m, (va, _) in zip(session.manoeuvres, computed, strict=True)
     ]
     return grade_manoeuvres(facts, largest_vc, tables.grades)
+
+
+def _inspired_volume_btps(session: Session, m: Manoeuvre, gas: GasConditions) -> float:
+    """VI in the vital capacity's conditions (BTPS), so VI/VC compares like with like.
+
+    An inspired volume measured ATPD (dry spirometer gas at room temperature, the export's
+    default) is about 12 % smaller than the same gas in the lung; compared with a BTPS vital
+    capacity as it stands it would lower VI/VC and the grade.
+    """
+    vi = m.inspired_volume.value
+    if session.method.inspired_volume_condition == "BTPS":
+        return vi
+    if gas.pb_mmhg <= phys.PH2O_BODY_MMHG or gas.room_temperature_c <= -phys.ZERO_CELSIUS_K:
+        return vi  # no gas-condition factor exists; the equations refuse these conditions too
+    return phys.btps_from_atpd_l(vi, gas.pb_mmhg, gas.room_temperature_c)
 
 
 def _not_evaluated(grades: Sequence[Grade], indices: Sequence[int]) -> tuple[str, ...]:

@@ -6,10 +6,12 @@ in the parameter names (``_l``, ``_mmhg``, ``_s``, ``_g_dl``); DLCO is in mL/min
 Every constant recalled without a verified source is a named constant below marked
 ``# from memory`` so it can be corrected in one place.
 
-Sources (full references in docs/sources.md):
+Sources (full references, where each was read and what was not: docs/sources.md):
   S05 -- MacIntyre et al., ATS/ERS standardisation of single-breath DLCO, ERJ 2005;26:720-735
   S17 -- Graham et al., 2017 ERS/ATS standards for single-breath CO uptake, ERJ 2017;49:1600016
+  GLI -- Stanojevic et al., GLI reference values for TLCO, ERJ 2017;50:1700010
   KC86 -- Kanner & Crapo, Am Rev Respir Dis 1986;133:676-8
+  ANT -- Antoine constants of water, 1-100 degC
 """
 
 from __future__ import annotations
@@ -22,22 +24,30 @@ from bridge.model import SampleGasHandling
 PH2O_BODY_MMHG = 47.0
 # source: S05 Table 5 -- alveolar CO2 fraction assumed when not measured.
 DEFAULT_ALVEOLAR_CO2_FRACTION = 0.05
-STANDARD_PB_MMHG = 760.0
-BODY_TEMPERATURE_K = 310.0
-ZERO_CELSIUS_K = 273.0  # S05 Table 5 writes 273, not 273.15
+STANDARD_PB_MMHG = 760.0  # source: S05 Table 5 -- the STPD factors PB/760
+BODY_TEMPERATURE_K = 310.0  # source: S05 Table 5 -- the BTPS factors 310/(273 + T)
+ZERO_CELSIUS_K = 273.0  # source: S05 Table 5 writes 273, not 273.15
 MINUTE_ML_PER_L_S = 60_000.0  # 1000 mL/L x 60 s/min
+
+# Anatomic dead space estimated from body weight when it was not measured: 2.2 mL per kg.
+# source: GLI-2017 TLCO practical recommendations (Stanojevic et al., ERJ 2017;50:1700010, summary
+# table): dead space "measured from the tracer gas washout or estimated using body size". The
+# figure 2.2 mL/kg and that it means the body weight as measured (not an ideal weight) are
+# from memory: the 2017 DLCO standard's text saying so was not read.  # from memory
+ANATOMIC_DEAD_SPACE_ML_PER_KG = 2.2
 
 # Haemoglobin adjustment, Cotes form (DM/(theta*VC) = 0.7): factor (k + Hb) / (1.7 Hb)
 COTES_SLOPE = 1.7  # from memory (constants cross-checked: factor is 1 at the standard Hb)
 COTES_K_MALE_G_DL = 10.22  # 0.7 x 14.6 g/dL, males >= 15 y  # from memory
 COTES_K_FEMALE_CHILD_G_DL = 9.38  # 0.7 x 13.4 g/dL, females and children < 15 y  # from memory
-COTES_ADULT_MALE_AGE = 15.0
+COTES_ADULT_MALE_AGE = 15.0  # from memory
 
 # Inspired-PO2 adjustment of the measured DLCO to sea level: DLCO x (1 + 0.0031 (PIO2 - 150)),
-# PIO2 = 0.21 x (PB - 47).  # source: S17, altitude adjustment (slope and reference from memory)
+# PIO2 = 0.21 x (PB - 47), attributed to S17 (its text was not read; its reporting table, read,
+# requires DLCO adjusted for PB). KC86 (abstract read) gives the alveolar form, 1 + 0.0035 (PAO2 - 120).
 PIO2_SLOPE_PER_MMHG = 0.0031  # from memory
 PIO2_REFERENCE_MMHG = 150.0  # from memory
-FIO2_AIR = 0.21  # source: S17 writes PIO2 = 0.21 x (PB - 47); 150 mmHg is 0.21 x (760 - 47) rounded
+FIO2_AIR = 0.21  # from memory (S17's PIO2 = 0.21 x (PB - 47)); 150 mmHg is 0.21 x (760 - 47) rounded
 
 # Carboxyhaemoglobin: reference subjects carry a baseline COHb; S05 adjusts the predicted DLCO
 # by (102 % - COHb %), i.e. to a 2 % baseline. The same baseline is the COHb_RAISED threshold.
@@ -50,10 +60,15 @@ def initial_alveolar_co_fraction(fi_co: float, fi_tracer: float, fa_tracer: floa
     return fi_co * fa_tracer / fi_tracer
 
 
+def anatomic_dead_space_estimate_l(weight_kg: float) -> float:
+    """VD,anat estimated from body weight: 2.2 mL/kg (83 kg: 0.1826 L)."""
+    return ANATOMIC_DEAD_SPACE_ML_PER_KG * weight_kg / 1000.0
+
+
 def water_vapour_pressure_mmhg(temperature_c: float) -> float:
     """Saturated water-vapour pressure at room temperature (Antoine equation for water).
 
-    # from memory: A=8.07131, B=1730.63, C=233.426 (mmHg, degC, valid 1-100 degC)
+    # source: ANT -- A=8.07131, B=1730.63, C=233.426 (mmHg, degC, valid 1-100 degC)
     """
     return 10 ** (8.07131 - 1730.63 / (233.426 + temperature_c))
 
@@ -72,7 +87,10 @@ def alveolar_volume_btps_l(
 ) -> float:
     """VA (BTPS) by tracer dilution with the gas-condition factor of S05 Table 5.
 
-    The inspired volume is ATPD (dry spirometer gas at room temperature).
+    The inspired volume is ATPD (dry spirometer gas at room temperature; S05 Table 5, footnote).
+    One branch per row of the table, in the form the table prints; the CO2 correction of the
+    alveolar sample (H2O and CO2 removed) is its second row, FI,Tr (1 + FA,CO2) / FS,Tr, with
+    FA,CO2 = 0.05 when not measured (the note under that row).
     """
     effective = inspired_volume_l - instrument_dead_space_l - anatomic_dead_space_l
     dilution = fi_tracer / fa_tracer
@@ -98,6 +116,16 @@ def stpd_from_btps_l(volume_btps_l: float, pb_mmhg: float) -> float:
 
 def btps_from_stpd_l(volume_stpd_l: float, pb_mmhg: float) -> float:
     return volume_stpd_l / stpd_from_btps_l(1.0, pb_mmhg)
+
+
+def btps_from_atpd_l(volume_atpd_l: float, pb_mmhg: float, room_temperature_c: float) -> float:
+    """Dry gas at room temperature to body conditions: x PB/(PB - 47) x 310/(273 + T).
+
+    The BTPS factor of S05 Table 5 (H2O removed from the sample) without the tracer dilution:
+    what takes an inspired volume, measured ATPD, to the conditions of a vital capacity.
+    """
+    warm = BODY_TEMPERATURE_K / (ZERO_CELSIUS_K + room_temperature_c)
+    return volume_atpd_l * pb_mmhg / (pb_mmhg - PH2O_BODY_MMHG) * warm
 
 
 def atpd_from_btps_l(volume_btps_l: float, pb_mmhg: float, room_temperature_c: float) -> float:

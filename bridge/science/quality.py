@@ -29,11 +29,13 @@ _DIFFERENCE_DIGITS = 9
 
 @dataclass(frozen=True, slots=True)
 class GradeRule:
+    """The limits of one grade: VI/VC >= a floor, breath-hold within a range, sample collection under a limit."""
+
     grade: str
-    vi_vc_min_percent: float
-    sample_collection_max_s: float
-    breath_hold_s: tuple[float, float] | None = None
-    vi_vc_min_percent_if_va_close: float | None = None
+    vi_vc_min_percent: float  # inclusive
+    sample_collection_below_s: float  # strict
+    breath_hold_s: tuple[float, float] | None = None  # inclusive; None: any breath-hold
+    vi_vc_min_percent_if_va_close: float | None = None  # the floor when VA agrees with the largest acceptable VA
     va_close_ml: float = 0.0
     va_close_percent: float = 0.0
 
@@ -121,15 +123,18 @@ def grade_manoeuvres(
 ) -> tuple[Grade, ...]:
     """Grade every manoeuvre of a session; VI/VC is against the session's largest measured VC.
 
-    ``largest_vc_l`` None: no vital capacity was measured, VI/VC is not evaluated.
+    ``largest_vc_l`` None: no vital capacity was measured, VI/VC is not evaluated. The lower
+    VI/VC floor of the best grade applies when a manoeuvre's VA agrees with the largest VA of the
+    other acceptable manoeuvres: those that meet the best grade's limits on their own.
     """
     first = [_grade(m, largest_vc_l, table, close_va=False) for m in manoeuvres]
-    acceptable = [i for i, g in enumerate(first) if g.grade in table.acceptable_grades]
+    best = table.rules[0]
+    acceptable = [i for i, g in enumerate(first) if g.grade == best.grade]
     result = []
     for i, facts in enumerate(manoeuvres):
-        others = [manoeuvres[j].va_l for j in acceptable if j != i]
-        close = any(_va_close(facts.va_l, other, table.rules[0]) for other in others)
-        result.append(_grade(facts, largest_vc_l, table, close_va=close) if close else first[i])
+        others = [va for j in acceptable if j != i and (va := manoeuvres[j].va_l) is not None]
+        close = bool(others) and _va_close(facts.va_l, max(others), best)
+        result.append(_grade(facts, largest_vc_l, table, close_va=True) if close else first[i])
     return tuple(result)
 
 
@@ -137,7 +142,7 @@ def _grade(facts: ManoeuvreFacts, largest_vc_l: float | None, table: GradeTable,
     vi_vc: float | None = None
     if largest_vc_l is not None:
         # A VC that is not positive cannot show VI/VC meets any floor.
-        vi_vc = 100.0 * facts.inspired_volume_l / largest_vc_l if largest_vc_l > 0 else 0.0
+        vi_vc = round(100.0 * facts.inspired_volume_l / largest_vc_l, _DIFFERENCE_DIGITS) if largest_vc_l > 0 else 0.0
     caveats = (() if vi_vc is not None else (VI_VC_NOT_EVALUATED,)) + (
         () if facts.sample_collection_s is not None else (SAMPLE_NOT_EVALUATED,)
     )
@@ -163,16 +168,17 @@ def _misses(rule: GradeRule, facts: ManoeuvreFacts, vi_vc: float | None, close_v
         if not low <= facts.breath_hold_s <= high:
             misses.append(f"breath-hold {facts.breath_hold_s:.1f} s is outside {low:g}-{high:g} s")
     sample = facts.sample_collection_s
-    if sample is not None and sample > rule.sample_collection_max_s:
-        misses.append(f"sample collection {sample:.1f} s is over {rule.sample_collection_max_s:g} s")
+    if sample is not None and not sample < rule.sample_collection_below_s:
+        misses.append(f"sample collection {sample:.1f} s is not under {rule.sample_collection_below_s:g} s")
     return misses
 
 
-def _va_close(va: float | None, other: float | None, rule: GradeRule) -> bool:
-    if va is None or other is None or rule.vi_vc_min_percent_if_va_close is None:
+def _va_close(va: float | None, largest: float, rule: GradeRule) -> bool:
+    """VA within ``va_close_ml`` or ``va_close_percent`` of ``largest``, whichever is greater."""
+    if va is None or rule.vi_vc_min_percent_if_va_close is None:
         return False
-    diff = abs(va - other)
-    return diff * 1000.0 <= rule.va_close_ml or diff <= rule.va_close_percent / 100.0 * max(va, other)
+    tolerance = max(rule.va_close_ml / 1000.0, rule.va_close_percent / 100.0 * largest)
+    return round(abs(va - largest), _DIFFERENCE_DIGITS) <= round(tolerance, _DIFFERENCE_DIGITS)
 
 
 @dataclass(frozen=True, slots=True)

@@ -37,7 +37,7 @@ def _rule(entry: Mapping[str, object]) -> GradeRule:
     return GradeRule(
         grade=str(entry["grade"]),
         vi_vc_min_percent=float(entry["vi_vc_min_percent"]),  # type: ignore[arg-type]
-        sample_collection_max_s=float(entry["sample_collection_max_s"]),  # type: ignore[arg-type]
+        sample_collection_below_s=float(entry["sample_collection_below_s"]),  # type: ignore[arg-type]
         breath_hold_s=(float(bht[0]), float(bht[1])) if isinstance(bht, list) else None,
         vi_vc_min_percent_if_va_close=_optional_float(entry.get("vi_vc_min_percent_if_va_close")),
         va_close_ml=float(entry.get("va_close_ml", 0.0)),  # type: ignore[arg-type]

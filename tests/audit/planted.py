@@ -52,7 +52,7 @@ PLANTED = Counter(
         "HB_ADJUSTMENT": HB_WRONG,  # sample 09: Hb 11.2 g/dL, the adjustment is noted
         "PRESSURE_ADJUSTMENT": HB_WRONG,  # sample 09: measured at 1800 m
         "BREATH_HOLD_OUT_OF_TARGET": RAW,  # sample 06: manoeuvre 3 held 7.2 s
-        "MANOEUVRE_NOT_ACCEPTABLE": RAW,  # sample 06: manoeuvre 3, VI/VC 77 %
+        "MANOEUVRE_NOT_ACCEPTABLE": RAW,  # sample 06: manoeuvre 3, VI/VC 78 % (VI at BTPS)
         # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
         "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
         "UNREADABLE_INPUT": 3,  # three half-written files

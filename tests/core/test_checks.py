@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import json
+from datetime import date
 from pathlib import Path
+from typing import Any
 
 import pytest
+from pyspiro import GLI_2017
 
 from bridge.model import Severity
 from bridge.pipeline import process
@@ -239,3 +242,117 @@ def test_three_grade_a_manoeuvres_with_a_repeatable_pair_are_not_flagged(tables:
     assert ["A", "A", "A"] == [a.grade for a in outcome.derived.manoeuvres]
     assert (0, 1) == outcome.derived.reported_manoeuvres
     assert "NOT_REPEATABLE" not in _codes(outcome)
+
+
+def _without_anatomic_dead_space(doc):
+    for manoeuvre in doc["manoeuvres"]:
+        del manoeuvre["anatomic_dead_space"]
+
+
+def test_missing_anatomic_dead_space_is_estimated_from_body_weight(tables: Tables):
+    """Sample 06 without its 150 mL: 2.2 mL/kg x 83 kg = 182.6 mL is subtracted, VA 6.33 L (not 6.60 L), and said."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5: VA,BTPS = (VI,ATPD - VD,INST - VD,ANAT) x FI,Tr/FA,Tr
+    #   x PB/(PB - 47) x 310/(273 + T); GLI-2017 practical recommendations: dead space measured or
+    #   estimated from body size; 2.2 mL/kg  # from memory (the 2017 standard's text was not read)
+    # Hand, sample 06: PB = 101.1 x 760 / 101.325 = 758.31 mmHg; PB/(PB - 47) = 1.066076;
+    #   310/295 = 1.050847; VD,ANAT = 2.2 x 83 = 182.6 mL
+    #   manoeuvre 1: (4.62 - 0.070 - 0.1826) x 0.003/0.00231 x 1.066076 x 1.050847 = 6.3542 L
+    #   manoeuvre 2: (4.55 - 0.070 - 0.1826) x 0.003/0.00229 x 1.066076 x 1.050847 = 6.3069 L
+    #   mean of the two grade-A manoeuvres: 6.3306 L (with 150 mL: 6.378; with nothing: 6.597)
+    outcome = _variant("06-three-manoeuvres", _without_anatomic_dead_space, tables)
+    found = [f for f in outcome.findings if f.code == "ANATOMIC_DEAD_SPACE_ESTIMATED"]
+
+    assert 6.3306 == pytest.approx(outcome.derived.va_from_manoeuvres.value, abs=5e-4)
+    assert [Severity.INFO] == [f.severity for f in found]
+    assert "183 mL" in found[0].message and "83 kg" in found[0].message
+
+
+def test_missing_dead_space_and_weight_is_said(tables: Tables):
+    """Neither dead space nor weight: nothing is subtracted (VA 6.60 L) and the finding says VA is too large."""
+    # source: as above; hand: (4.62 - 0.070) x 1.298701 x 1.120282 = 6.6198 L, (4.55 - 0.070) x
+    #   1.310044 x 1.120282 = 6.5749 L, mean 6.5974 L
+
+    def neither(doc):
+        _without_anatomic_dead_space(doc)
+        del doc["patient"]["weight"]
+
+    outcome = _variant("06-three-manoeuvres", neither, tables)
+
+    assert 6.5974 == pytest.approx(outcome.derived.va_from_manoeuvres.value, abs=5e-4)
+    assert "ANATOMIC_DEAD_SPACE_UNKNOWN" in _codes(outcome)
+    assert "ANATOMIC_DEAD_SPACE_ESTIMATED" not in _codes(outcome)
+
+
+def test_stated_anatomic_dead_space_needs_no_finding(sample_outcomes):
+    """Sample 06 states 150 mL for every manoeuvre: no dead-space finding."""
+    codes = _codes(sample_outcomes["06-three-manoeuvres"])
+
+    assert not {"ANATOMIC_DEAD_SPACE_ESTIMATED", "ANATOMIC_DEAD_SPACE_UNKNOWN"} & codes
+
+
+# The migration case: male, 52 y, 168 cm, DLCO 11.11 mL/min/mmHg, VA 6.58 L, KCO 1.69 (= 11.11 / 6.58,
+# so the record agrees with itself): SI numbers under traditional labels.
+MISLABEL_BIRTH, MISLABEL_DAY = date(1974, 3, 1), date(2026, 3, 2)
+MISLABEL_AGE = (MISLABEL_DAY - MISLABEL_BIRTH).days / 365.25  # 52.003 y on the day of the test
+
+
+def _labelled_traditional(dlco: float):
+    def change(doc):
+        doc["patient"].update(sex="male", birth_date=MISLABEL_BIRTH.isoformat(), height={"value": 168, "unit": "cm"})
+        doc["performed_at"] = f"{MISLABEL_DAY.isoformat()}T09:15:00+00:00"
+        doc["conditions"] = {}
+        doc["manoeuvres"] = []
+        doc["results"] = {
+            "dlco": {"value": dlco, "unit": "mL/min/mm[Hg]"},
+            "va": {"value": 6.58, "unit": "L"},
+            "kco": {"value": round(dlco / 6.58, 2), "unit": "mL/min/mm[Hg]/L"},
+        }
+
+    return change
+
+
+def _gli_z(parameter: Any, value: float) -> float:
+    """The GLI-2017 z-score of ``value`` for the 52-year-old man, from pyspiro."""
+    return float(GLI_2017().zscore(1, MISLABEL_AGE, 168.0, parameter, value))  # pyspiro: 1 = male
+
+
+def test_a_possible_unit_mislabel_is_a_warning_with_both_z_scores(tables: Tables):
+    """DLCO z -4.6 as labelled, +1.7 read as mmol/min/kPa: a warning on DLCO (and KCO), not the error tier."""
+    # source: GLI-2017 (Stanojevic et al. 2017, corrected 2020) via pyspiro: the z-scores of both
+    #   readings; by hand the other reading is 11.11 x 2.987 = 33.19 mL/min/mmHg and
+    #   1.69 x 2.987 = 5.05 mL/min/mmHg/L (SI -> traditional factor, ATS/ERS 2005 standard)
+    outcome = _variant("01-healthy-adult", _labelled_traditional(11.11), tables)
+    warned = {f.path: f for f in outcome.findings if f.code == "UNIT_MISLABEL_POSSIBLE"}
+    dlco_labelled = _gli_z(GLI_2017.Parameters.DLCO.value, 11.11)  # -4.58
+    dlco_other = _gli_z(GLI_2017.Parameters.DLCO.value, 11.11 * 2.987)  # +1.67
+    kco_labelled = _gli_z(GLI_2017.Parameters.KCO_trad.value, 1.69)  # -4.94
+    kco_other = _gli_z(GLI_2017.Parameters.KCO_trad.value, 1.69 * 2.987)  # +0.78
+
+    assert {"results.dlco", "results.kco"} == set(warned)
+    assert all(f.severity == Severity.WARNING for f in warned.values())
+    assert f"{dlco_labelled:.1f} as labelled" in warned["results.dlco"].message
+    assert f"{dlco_other:+.1f} read as mmol/min/kPa" in warned["results.dlco"].message
+    assert f"{kco_labelled:.1f} as labelled" in warned["results.kco"].message
+    assert f"{kco_other:+.1f} read as mmol/min/kPa/L" in warned["results.kco"].message
+    assert "UNIT_MISLABEL_PROBABLE" not in _codes(outcome)
+
+
+def test_a_low_value_the_other_unit_would_not_make_typical_is_not_warned(tables: Tables):
+    """DLCO 12.0: z -4.2 as labelled but +2.2 read as SI, outside the central 95 %: no mislabel finding."""
+    # source: GLI-2017 via pyspiro (hand: 12.0 x 2.987 = 35.84 mL/min/mmHg)
+    assert _gli_z(GLI_2017.Parameters.DLCO.value, 12.0) < -4.0 < 1.96 < _gli_z(GLI_2017.Parameters.DLCO.value, 35.84)
+
+    outcome = _variant("01-healthy-adult", _labelled_traditional(12.0), tables)
+
+    assert not [f for f in outcome.findings if f.path == "results.dlco" and "MISLABEL" in f.code]
+
+
+def test_the_error_tier_is_unchanged_beyond_z_5(tables: Tables):
+    """DLCO 10.0: z -5.05 as labelled, +0.94 as SI: the strict tier's error, no warning beside it."""
+    # source: GLI-2017 via pyspiro (hand: 10.0 x 2.987 = 29.87 mL/min/mmHg)
+    assert _gli_z(GLI_2017.Parameters.DLCO.value, 10.0) < -5.0
+
+    outcome = _variant("01-healthy-adult", _labelled_traditional(10.0), tables)
+    dlco = {f.code for f in outcome.findings if f.path == "results.dlco"}
+
+    assert {"UNIT_MISLABEL_PROBABLE"} == dlco & {"UNIT_MISLABEL_PROBABLE", "UNIT_MISLABEL_POSSIBLE"}

@@ -98,7 +98,7 @@ def _without_vital_capacity(doc):
 def test_session_without_vital_capacity_grades_on_what_it_has(tables):
     """Sample 06 without VC: no manoeuvre's VI/VC is evaluated; the session grade and the notes say what it rests on."""
     # source: ERS/ATS 2017 DLCO standard grade table (VI/VC against the subject's VC); hand check:
-    #   with VC 4.8 L manoeuvre 3 has VI/VC 3.71 / 4.8 = 77 %, so no inspired volume may stand in for VC
+    #   with VC 5.3 L manoeuvre 3 has VI/VC 4.16 (BTPS) / 5.3 = 78 %, so no inspired volume may stand in for VC
     import json
     from pathlib import Path
 
@@ -114,3 +114,38 @@ def test_session_without_vital_capacity_grades_on_what_it_has(tables):
     assert all("VI/VC not evaluated: no vital capacity" in m.grade_reasons for m in d.manoeuvres)
     assert ("VI/VC not evaluated: no vital capacity",) == d.grade_not_evaluated
     assert any(n.startswith("Test quality grade") and "VI/VC not evaluated" in n for n in notes)
+
+
+def _layout_with_vi_4_10_and_vc_4_80(document: dict[str, Any]) -> None:
+    """Sample 06's first manoeuvre with VI 4.10 L ATPD against a VC of 4.80 L BTPS (the other two left out)."""
+    first = document["manoeuvres"][0]
+    first["inspired_volume"]["value"] = 4.10
+    first["vital_capacity"]["value"] = 4.80
+    first.pop("reported")
+    document["manoeuvres"] = [first]
+
+
+def test_vi_at_atpd_is_taken_to_btps_before_vi_vc(tables: Tables):
+    """VI 4.10 L ATPD against VC 4.80 L BTPS is 96 % (grade A), not 85 % (grade B) as the raw numbers say."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5 (VI is measured ATPD; the BTPS factor is
+    #   PB/(PB - 47) x 310/(273 + T)); the VC of a spirometer is BTPS (docs/format.md). By hand,
+    #   sample 06's conditions: PB 101.1 kPa = 101.1 x 760 / 101.325 = 758.31 mmHg, T 22 degC:
+    #   758.31 / 711.31 = 1.06608; 310 / 295 = 1.05085; factor 1.12029
+    #   VI BTPS = 4.10 x 1.12029 = 4.593 L; VI/VC = 4.593 / 4.80 = 95.7 % (>= 90 %: grade A, with
+    #   breath-hold 10.1 s and sample collection 2.9 s); raw 4.10 / 4.80 = 85.4 % would be grade B.
+    outcome = process(_variant(_layout_with_vi_4_10_and_vc_4_80), "06-vi-atpd.json", tables)
+
+    assert ["A"] == [m.grade for m in outcome.derived.manoeuvres]
+
+
+def test_vi_already_at_btps_is_compared_as_it_is(tables: Tables):
+    """The same numbers stated BTPS: VI/VC is 4.10 / 4.80 = 85.4 %, grade B (85-90 %, no other manoeuvre)."""
+    # source: ERS/ATS 2017 grade B floor of 85 % (mappings/quality_grades.toml); hand: 4.10 / 4.80 = 0.854
+
+    def btps(document: dict[str, Any]) -> None:
+        _layout_with_vi_4_10_and_vc_4_80(document)
+        document["method"]["inspired_volume_condition"] = "BTPS"
+
+    outcome = process(_variant(btps), "06-vi-btps.json", tables)
+
+    assert ["B"] == [m.grade for m in outcome.derived.manoeuvres]

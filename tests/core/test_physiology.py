@@ -154,3 +154,11 @@ def test_atpd_btps_round_trip():
     back = atpd * 740.0 / (740.0 - 47) * 310 / (273 + 22)
 
     assert back == pytest.approx(5.0)
+
+
+def test_btps_from_atpd_is_the_table_5_factor():
+    """4.10 L ATPD at 758.31 mmHg and 22 degC is 4.593 L BTPS."""
+    # source: ATS/ERS 2005 DLCO standard, Table 5: x PB/(PB - 47) x 310/(273 + T). By hand:
+    #   758.31 / 711.31 = 1.066075; 310 / 295 = 1.050847; 4.10 x 1.066075 x 1.050847 = 4.5932
+    assert 4.5932 == pytest.approx(phys.btps_from_atpd_l(4.10, 758.31, 22.0), abs=5e-5)
+    assert 4.10 == pytest.approx(phys.atpd_from_btps_l(phys.btps_from_atpd_l(4.10, 758.31, 22.0), 758.31, 22.0))
