@@ -27,6 +27,11 @@ Clinical or data-quality problems are never exceptions: they are ``Finding`` val
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:  # only a type: errors import nothing of the project at run time
+    from bridge.model import Outcome
+
 
 class BridgeError(Exception):
     """Root of every error dlco-bridge raises on purpose."""
@@ -37,7 +42,12 @@ class InputError(BridgeError):
 
     ``source`` names the file (or message), ``field`` the path inside it, ``expected`` says
     what would have been accepted. ``str()`` is the one-line form ``source: field: expected``.
+    ``outcome`` is the record as read and checked when the refusal came only at the gate or
+    while emitting (None when the input did not become a record): a caller that reports on
+    every record (the audit) still sees its findings.
     """
+
+    outcome: Outcome | None = None
 
     def __init__(self, field: str, expected: str, source: str = "") -> None:
         self.field = field
@@ -86,7 +96,14 @@ class UnitError(InputError):
 
 
 class BlockedByFinding(InputError):
-    """An ERROR finding the site did not allow, or one it marks as blocking; nothing is emitted."""
+    """An ERROR finding the site did not allow, or one it marks as blocking; nothing is emitted.
+
+    ``code`` is the finding's code.
+    """
+
+    def __init__(self, field: str, expected: str, source: str = "", *, code: str = "") -> None:
+        self.code = code
+        super().__init__(field, expected, source)
 
 
 class OutputInvalid(InputError):
