@@ -27,11 +27,6 @@ Clinical or data-quality problems are never exceptions: they are ``Finding`` val
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
-if TYPE_CHECKING:  # only a type: errors import nothing of the project at run time
-    from bridge.model import Outcome
-
 
 class BridgeError(Exception):
     """Root of every error dlco-bridge raises on purpose."""
@@ -47,7 +42,7 @@ class InputError(BridgeError):
     every record (the audit) still sees its findings.
     """
 
-    outcome: Outcome | None = None
+    outcome: object | None = None  # a bridge.model.Outcome (errors import nothing of the project)
 
     def __init__(self, field: str, expected: str, source: str = "") -> None:
         self.field = field

@@ -195,14 +195,16 @@ def _svg(figure: Any) -> str:
     return _METADATA.sub("", text[text.index("<svg") :])
 
 
-def shown_range(*arrays: Any) -> tuple[float, float, int]:
+def shown_range(*arrays: Any, floor: float = 0.5) -> tuple[float, float, int]:
     """The range that shows the bulk of the values (1st to 99th percentile, with a margin) and how many lie outside.
 
-    With no value beyond the margin the whole range is shown and none is counted outside.
+    With no value beyond the margin the whole range is shown and none is counted outside; the
+    margin is at least ``floor`` (in the values' unit), so that values that all agree still
+    show on a readable scale.
     """
     values = np.concatenate([np.asarray(a, dtype=np.float64) for a in arrays])
     low, high = (float(v) for v in np.percentile(values, CLIP_PERCENTILES))
-    margin = max(high - low, abs(high) * 0.05, 1e-9) * 0.15
+    margin = max((high - low) * 0.15, floor)
     low, high = low - margin, high + margin
     outside = int(np.count_nonzero((values < low) | (values > high)))
     if outside == 0:
@@ -248,7 +250,7 @@ def _kco(reduce: ArchiveReduce) -> tuple[str, str]:
         return "", "No pairs: no session reported KCO together with DLCO and VA."
     figure, axes = plt.subplots(figsize=(7, 3.8))
     axes.scatter(ratio, kco, s=6, alpha=0.5, rasterized=True, label="session")
-    low, high, _ = shown_range(ratio, kco)
+    low, high, _ = shown_range(ratio, kco, floor=0.1)
     axes.plot([low, high], [low, high], color="black", linewidth=0.8, label="KCO = DLCO / VA")
     axes.set_xlim(low, high)
     axes.set_ylim(low, high)
@@ -318,7 +320,8 @@ def _plots(reduce: ArchiveReduce) -> str:
 
 STYLE = """
 body{font-family:system-ui,sans-serif;margin:2rem auto;padding:0 1rem;max-width:72rem;color:#222}
-table{border-collapse:collapse;margin:.5rem 0 1.5rem;max-width:100%}
+table{border-collapse:collapse;margin:.5rem 0 1.5rem;max-width:100%}th{white-space:nowrap}
+section.check table{width:100%}
 td,th{border:1px solid #ccc;padding:.2rem .5rem;text-align:left;vertical-align:top;overflow-wrap:anywhere}
 td.n{text-align:right}.caution{border:2px solid #a60;padding:.5rem 1rem;background:#fff6e5}
 .tiles{display:flex;gap:1rem;flex-wrap:wrap}

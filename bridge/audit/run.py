@@ -166,7 +166,7 @@ def audit_file(path: str, job: Job, tables: Tables) -> list[Row]:
 def _row(result: Outcome | InputError, path: str, record: str) -> Row:
     if isinstance(result, Outcome):
         return row_of(result, path, record)
-    if result.outcome is not None:  # refused at the gate, or while building its hand-over
+    if isinstance(result.outcome, Outcome):  # refused at the gate, or while building its hand-over
         return row_of(result.outcome, path, record, refused=result)
     return row_of_error(result, path, record)
 
