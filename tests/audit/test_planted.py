@@ -60,12 +60,26 @@ def test_summary_counts_files_sessions_and_clean_ones(report: Path):
     """summary.json counts every file, the sessions read and the clean ones (hand-counted plan)."""
     summary = json.loads((report / "summary.json").read_text())
 
-    assert (planted.READABLE + planted.UNREADABLE, planted.READABLE, planted.CLEAN) == (
+    assert (planted.FILES, planted.READABLE, planted.CLEAN) == (
         summary["files"],
         summary["sessions_read"],
         summary["clean"],
     )
     assert dict(planted.PLANTED) == summary["findings_by_check"]
+
+
+def test_the_export_of_many_sessions_is_one_file_whose_findings_name_their_record(report: Path):
+    """The CSV export's findings name the export and the record in it: 1 (sample 04's twin), 2 (sample 06's)."""
+    exported = {
+        (r["record"], r["test_id"], r["check"]) for r in _findings(report) if r["file"].endswith(planted.EXPORT)
+    }
+
+    # source: samples/legacy/lowmarsh-results.csv, its first session is LOW-2026-0002, its second LOW-2026-0003
+    assert {
+        ("1", "LOW-2026-0002", "COHB_RAISED"),
+        ("2", "LOW-2026-0003", "BREATH_HOLD_OUT_OF_TARGET"),
+        ("2", "LOW-2026-0003", "MANOEUVRE_NOT_ACCEPTABLE"),
+    } == exported
 
 
 def test_the_answer_counts_what_can_migrate_what_needs_a_decision_and_what_cannot_be_read(report: Path):
