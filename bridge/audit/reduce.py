@@ -1,12 +1,15 @@
 """The keyed streaming reduce over an archive's rows, and the checks across records (pure).
 
-Owns :class:`ArchiveReduce`: rows go in one at a time, in any order; it counts findings by
-check, source and severity, keeps the worst findings for the report, the unit conventions and
-reference sets per source, and the numbers the plots draw. What the checks across records need
+Owns :class:`ArchiveReduce`: rows go in one at a time (in the walk's order: the first findings
+of each check, kept as the page's examples, are the first met); it counts findings by check,
+source and severity, keeps the unit conventions and reference sets per source (with the first
+file of each), and the numbers the plots draw. What the checks across records need
 of every session (its content hash per test id, its :class:`Visit` per patient) is kept by the
 shell outside memory (``bridge.audit.index``) and handed back, sorted, to
 :meth:`ArchiveReduce.finish`, which returns the archive's own findings, sorted, so that the
-result does not depend on the order the rows arrived in.
+result does not depend on the order the rows arrived in. Then :func:`held_by_archive` says which
+sessions those findings keep out of the hand-over (the gate's rule), and :class:`Answer` counts
+what can migrate as it is, what needs a decision, what cannot be read.
 """
 
 from __future__ import annotations

@@ -2,7 +2,9 @@
 
 Owns :class:`AuditFinding` (one line of ``findings.csv``) and :class:`Row`, built from an
 :class:`~bridge.model.Outcome` or from the :class:`~bridge.errors.InputError` that refused the
-input. A row carries numbers and short text only, so that worker processes send little back.
+input. A row carries numbers and short text only (and the record's hand-over, when one is
+asked for), so that worker processes send little back. A row names its file and, in a file of
+many sessions, the record within it; ``source`` is always the lab (empty when none was read).
 """
 
 from __future__ import annotations
