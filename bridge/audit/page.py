@@ -318,7 +318,7 @@ def _plots(reduce: ArchiveReduce) -> str:
     return '<section id="plots"><h2>Plots</h2>' + "".join(figures) + "</section>"
 
 
-STYLE = """
+_BASE_STYLE = """
 body{font-family:system-ui,sans-serif;margin:2rem auto;padding:0 1rem;max-width:72rem;color:#222}
 table{border-collapse:collapse;margin:.5rem 0 1.5rem;max-width:100%}th{white-space:nowrap}
 section.check table{width:100%}
@@ -327,12 +327,21 @@ td.n{text-align:right}.caution{border:2px solid #a60;padding:.5rem 1rem;backgrou
 .tiles{display:flex;gap:1rem;flex-wrap:wrap}
 .tile{border:2px solid;border-radius:.4rem;padding:.6rem 1rem;min-width:14rem}
 .tile .big{display:block;font-size:2rem;font-weight:700}
-.tile.ready{border-color:#1a9850}.tile.decision{border-color:#e08214}.tile.unreadable{border-color:#b2182b}
+.tile.ready{border-color:#1a9850}
 .sev{font-size:.8rem;padding:.05rem .4rem;border-radius:.3rem;color:#fff;vertical-align:middle}
-.sev.error{background:#b2182b}.sev.warning{background:#e08214;color:#000}.sev.info{background:#4575b4}
+.sev.warning{color:#000}
 .count{font-weight:400;color:#555}.count::before{content:"× "}
 figure{margin:1rem 0}svg{max-width:100%;height:auto}.empty{color:#555;font-style:italic}
 """
+
+
+# the severity colours, written once (SEVERITY_COLOURS): the badges, and the tiles of what is held or unreadable
+STYLE = (
+    _BASE_STYLE
+    + "".join(f".sev.{severity}{{background:{colour}}}" for severity, colour in SEVERITY_COLOURS.items())
+    + f".tile.decision{{border-color:{SEVERITY_COLOURS['warning']}}}"
+    + f".tile.unreadable{{border-color:{SEVERITY_COLOURS['error']}}}\n"
+)
 
 
 def page(summary: Mapping[str, Any], reduce: ArchiveReduce, known: Mapping[str, Meaning] | None = None) -> str:
