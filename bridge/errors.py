@@ -37,7 +37,12 @@ class InputError(BridgeError):
 
     ``source`` names the file (or message), ``field`` the path inside it, ``expected`` says
     what would have been accepted. ``str()`` is the one-line form ``source: field: expected``.
+    ``outcome`` is the record as read and checked when the refusal came only at the gate or
+    while emitting (None when the input did not become a record): a caller that reports on
+    every record (the audit) still sees its findings.
     """
+
+    outcome: object | None = None  # a bridge.model.Outcome (errors import nothing of the project)
 
     def __init__(self, field: str, expected: str, source: str = "") -> None:
         self.field = field
@@ -86,7 +91,14 @@ class UnitError(InputError):
 
 
 class BlockedByFinding(InputError):
-    """An ERROR finding the site did not allow, or one it marks as blocking; nothing is emitted."""
+    """An ERROR finding the site did not allow, or one it marks as blocking; nothing is emitted.
+
+    ``code`` is the finding's code.
+    """
+
+    def __init__(self, field: str, expected: str, source: str = "", *, code: str = "") -> None:
+        self.code = code
+        super().__init__(field, expected, source)
 
 
 class OutputInvalid(InputError):

@@ -349,7 +349,9 @@ class Derived(Frozen):
     reference_not_computed: str | None = None
 
 
-OutputKind = Literal["fhir", "hl7"]
+# "ndjson" is the audit's hand-over (the resources of one outcome, one per line): a route of the
+# pipeline like the others, but not a message a destination or convert sends (OUTPUT_KINDS).
+OutputKind = Literal["fhir", "hl7", "ndjson"]
 OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
 
 

@@ -86,17 +86,22 @@ def process(
     now: datetime | None = None,
     routes: Sequence[Route] = (),
     is_correction: Callable[[str, str], bool] = _never,
+    gate: bool = False,
 ) -> Outcome:
     """Read, normalise, derive, check, gate and emit one input.
 
-    ``routes`` empty: nothing is emitted and no gate applies (``check``). Otherwise ``now`` is
+    ``routes`` empty: nothing is emitted and no gate applies (``check``) unless ``gate`` asks for
+    it (the audit: which records the gate would refuse, without building what it does not write). Otherwise ``now`` is
     the send time the shell read, and ``is_correction(test_id, sha256)`` says whether this
     content replaces a result already sent. Raises :class:`InputError` when the input cannot
     be read, an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``) an independent
-    validator finds a payload invalid.
+    validator finds a payload invalid; an error raised at the gate or while emitting carries the
+    checked record as ``outcome``.
     """
     if settings.field_map is not None:
-        results = list(process_all(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction))
+        results = list(
+            process_all(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction, gate=gate)
+        )
         if len(results) != 1:
             raise InvalidField("(file)", f"one session, got {len(results)} (use process_all)", source)
         if isinstance(results[0], InputError):
@@ -107,7 +112,8 @@ def process(
         session = read_export(data, source, tables.units)
     except InputError as exc:
         raise exc if exc.source else exc.with_source(source) from None
-    return _complete(session, hashlib.sha256(data).hexdigest(), source, tables, settings, now, routes, is_correction)
+    sha256 = hashlib.sha256(data).hexdigest()
+    return _complete(session, sha256, source, tables, settings, now, routes, is_correction, gate)
 
 
 def process_all(
@@ -119,6 +125,7 @@ def process_all(
     now: datetime | None = None,
     routes: Sequence[Route] = (),
     is_correction: Callable[[str, str], bool] = _never,
+    gate: bool = False,
 ) -> Iterator[Outcome | InputError]:
     """:func:`process` for an input that may hold many sessions: one outcome (or error) per session.
 
@@ -131,7 +138,9 @@ def process_all(
     fmap = settings.field_map
     if fmap is None:
         try:
-            yield process(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction)
+            yield process(
+                data, source, tables, settings, now=now, routes=routes, is_correction=is_correction, gate=gate
+            )
         except InputError as exc:
             yield exc
         return
@@ -143,7 +152,7 @@ def process_all(
             if record.error is not None:
                 raise record.error
             assert record.session is not None  # a record holds a session or an error
-            outcome = _complete(record.session, sha256, source, tables, settings, now, routes, is_correction)
+            outcome = _complete(record.session, sha256, source, tables, settings, now, routes, is_correction, gate)
         except InputError as exc:
             if fmap.on_bad_record == "refuse":
                 raise
@@ -182,6 +191,7 @@ def _complete(
     now: datetime | None,
     routes: Sequence[Route],
     is_correction: Callable[[str, str], bool],
+    gate: bool = False,
 ) -> Outcome:
     """Derive, check, gate and emit one normalised session."""
     derived = derive(
@@ -197,11 +207,28 @@ def _complete(
         derived=derived,
         findings=run_checks(session, derived, tables),
     )
-    if not routes:
+    if not routes and not gate:
         return outcome
+    try:
+        refuse_blocked(outcome, settings.blocking, settings.allow)
+        return outcome if not routes else _emit(outcome, tables, settings, now, routes, is_correction)
+    except InputError as exc:
+        exc.outcome = outcome  # the record as checked: the audit counts its findings all the same
+        raise
+
+
+def _emit(
+    outcome: Outcome,
+    tables: Tables,
+    settings: PipelineSettings,
+    now: datetime | None,
+    routes: Sequence[Route],
+    is_correction: Callable[[str, str], bool],
+) -> Outcome:
+    """Build (and validate, when asked) every payload the routes ask for, of an outcome the gate let through."""
     if now is None:
         raise ValueError("emitting needs the send time (now)")
-    refuse_blocked(outcome, settings.blocking, settings.allow)
+    session, sha256 = outcome.session, outcome.source_sha256
     correction = is_correction(session.test_id, sha256)
     asked = tuple(dict.fromkeys(routes))  # each route once, in the order asked
     kinds_by_units: dict[UnitSystem, list[OutputKind]] = {}
@@ -223,6 +250,9 @@ def _validate(built: Sequence[Payload], outcome: Outcome) -> None:
     for payload in built:
         found = problems(payload)
         if found:
-            what = "FHIR Bundle (fhir.resources R4B)" if payload.kind == "fhir" else "ORU^R01 (hl7apy STRICT)"
+            what = {
+                "fhir": "FHIR Bundle (fhir.resources R4B)",
+                "ndjson": "FHIR resource (fhir.resources R4B)",
+            }.get(payload.kind, "ORU^R01 (hl7apy STRICT)")
             more = f" (+{len(found) - 1} more)" if len(found) > 1 else ""
             raise OutputInvalid("(output)", f"a valid {what}: {found[0]}{more}", outcome.source)

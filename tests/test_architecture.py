@@ -38,7 +38,16 @@ CORE = (
     "audit/stats.py",
 )
 # The shell: I/O and wiring. The core imports none of it, at any depth.
-SHELL = ("cli", "config", "tables/files.py", "service", "audit/run.py", "audit/report.py", "audit/index.py")
+SHELL = (
+    "cli",
+    "config",
+    "tables/files.py",
+    "service",
+    "audit/run.py",
+    "audit/report.py",
+    "audit/page.py",
+    "audit/index.py",
+)
 # The public API's re-exports and ``python -m bridge``: neither core nor shell.
 ENTRY_POINTS = ("__init__.py", "__main__.py")
 

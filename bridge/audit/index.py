@@ -1,10 +1,12 @@
 """What the checks across an archive need of every session, kept on disk (shell).
 
 Owns a temporary SQLite file in the report folder: per readable row its content hash under
-(source, test id) and its :class:`~bridge.audit.reduce.Visit` under its patient. Memory stays
-flat whatever the archive's size; SQLite sorts on disk. At the end it hands both back sorted,
-one test id or one patient at a time, to :meth:`bridge.audit.reduce.ArchiveReduce.finish`,
-and the file is removed.
+(source, test id) and its :class:`~bridge.audit.reduce.Visit` under its patient; per row, in
+the walk's order, what the hand-over needs (file, record, test id, the gate's verdict, the
+record's NDJSON when asked for). Memory stays flat whatever the archive's size; SQLite sorts on
+disk. At the end it hands the first two back sorted, one test id or one patient at a time, to
+:meth:`bridge.audit.reduce.ArchiveReduce.finish`, then the rows in the walk's order to the
+hand-over (written after the checks across records), and the file is removed.
 """
 
 from __future__ import annotations
@@ -14,7 +16,7 @@ import os
 import sqlite3
 import tempfile
 from collections.abc import Iterator, Sequence
-from dataclasses import astuple
+from dataclasses import astuple, dataclass
 from pathlib import Path
 
 from bridge.audit.reduce import Visit, visit_of
@@ -22,8 +24,10 @@ from bridge.audit.rows import Row
 
 _SCHEMA = (
     "CREATE TABLE contents (source TEXT, test_id TEXT, sha256 TEXT, file TEXT)",
-    "CREATE TABLE visits (patient TEXT, performed_at TEXT, file TEXT, source TEXT, test_id TEXT, "
+    "CREATE TABLE visits (patient TEXT, performed_at TEXT, file TEXT, record TEXT, source TEXT, test_id TEXT, "
     "sex TEXT, birth_date TEXT, dlco REAL)",
+    "CREATE TABLE records (seq INTEGER PRIMARY KEY, file TEXT, record TEXT, source TEXT, test_id TEXT, "
+    "readable INTEGER, held TEXT, ndjson BLOB)",
 )
 _CACHE_KIB = 16 * 1024  # SQLite's page cache; beyond it, sorting spills to temporary files
 
@@ -41,6 +45,7 @@ class ArchiveIndex:
             self._conn.execute(f"PRAGMA {pragma}")
         for statement in _SCHEMA:
             self._conn.execute(statement)
+        self._seq = 0
 
     def __enter__(self) -> ArchiveIndex:
         return self
@@ -53,15 +58,24 @@ class ArchiveIndex:
         self.path.unlink(missing_ok=True)
 
     def add(self, rows: Sequence[Row]) -> None:
-        """Index the readable rows of one chunk."""
+        """Index the rows of one chunk (chunks in the walk's order)."""
         readable = [row for row in rows if row.readable]
+        first, self._seq = self._seq, self._seq + len(rows)
         with self._conn:
+            self._conn.executemany(
+                "INSERT INTO records VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                [
+                    (first + i, row.file, row.record, row.source, row.test_id, row.readable, " ".join(row.held),
+                     row.ndjson or None)
+                    for i, row in enumerate(rows)
+                ],
+            )  # fmt: skip
             self._conn.executemany(
                 "INSERT INTO contents VALUES (?, ?, ?, ?)",
                 [(row.source, row.test_id, row.sha256, row.file) for row in readable],
             )
             self._conn.executemany(
-                "INSERT INTO visits VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                "INSERT INTO visits VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 [(row.patient, *astuple(visit_of(row))) for row in readable],
             )
 
@@ -77,8 +91,32 @@ class ArchiveIndex:
     def patients(self) -> Iterator[tuple[str, list[Visit]]]:
         """Per patient, in order: every visit, ordered as :class:`Visit` orders (time, then file)."""
         cursor = self._conn.execute(  # the columns after patient are Visit's fields, in order
-            "SELECT patient, performed_at, file, source, test_id, sex, birth_date, dlco FROM visits "
-            "ORDER BY patient, performed_at, file, source, test_id, sex, birth_date, dlco"
+            "SELECT patient, performed_at, file, record, source, test_id, sex, birth_date, dlco FROM visits "
+            "ORDER BY patient, performed_at, file, record, source, test_id, sex, birth_date, dlco"
         )
         for patient, group in itertools.groupby(cursor, key=lambda r: r[0]):
             yield patient, [Visit(*fields[1:]) for fields in group]
+
+    def records(self) -> Iterator[IndexedRecord]:
+        """Every row in the walk's order, each saying whether it is the first of its (source, test id)."""
+        cursor = self._conn.execute(
+            "SELECT file, record, source, test_id, readable, held, ndjson, "
+            "seq = min(seq) OVER (PARTITION BY source, test_id) FROM records ORDER BY seq"
+        )
+        for file, record, source, test_id, readable, held, ndjson, first in cursor:
+            yield IndexedRecord(file, record, source, test_id, bool(readable), tuple(held.split()), ndjson or b"",
+                                bool(first))  # fmt: skip
+
+
+@dataclass(frozen=True, slots=True)
+class IndexedRecord:
+    """One row as the hand-over needs it."""
+
+    file: str
+    record: str
+    source: str
+    test_id: str
+    readable: bool
+    held: tuple[str, ...]  # the gate's codes
+    ndjson: bytes
+    first: bool  # the first row (in the walk's order) of its source and test id

@@ -1,24 +1,27 @@
 """The keyed streaming reduce over an archive's rows, and the checks across records (pure).
 
-Owns :class:`ArchiveReduce`: rows go in one at a time, in any order; it counts findings by
-check, source and severity, keeps the worst findings for the report, the unit conventions and
-reference sets per source, and the numbers the plots draw. What the checks across records need
+Owns :class:`ArchiveReduce`: rows go in one at a time (in the walk's order: the first findings
+of each check, kept as the page's examples, are the first met); it counts findings by check,
+source and severity, keeps the unit conventions and reference sets per source (with the first
+file of each), and the numbers the plots draw. What the checks across records need
 of every session (its content hash per test id, its :class:`Visit` per patient) is kept by the
 shell outside memory (``bridge.audit.index``) and handed back, sorted, to
 :meth:`ArchiveReduce.finish`, which returns the archive's own findings, sorted, so that the
-result does not depend on the order the rows arrived in.
+result does not depend on the order the rows arrived in. Then :func:`held_by_archive` says which
+sessions those findings keep out of the hand-over (the gate's rule), and :class:`Answer` counts
+what can migrate as it is, what needs a decision, what cannot be read.
 """
 
 from __future__ import annotations
 
-import heapq
 import itertools
 from array import array
 from collections import Counter, defaultdict
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
 from bridge.audit.rows import AuditFinding, Row
+from bridge.emit.outputs import blocked_because
 from bridge.model import Severity
 
 DUPLICATE_TEST_ID = "DUPLICATE_TEST_ID_CONFLICT"
@@ -37,9 +40,7 @@ TRADITIONAL_PER_SI = 2.987
 # relative, so that honest change between visits (tens of per cent) on top of a mislabel still shows,
 # while a true tripling or fall to a third between two sessions does not happen (common practice)
 SERIES_JUMP_TOLERANCE = 0.15
-WORST_KEPT = 200  # findings shown in the report's "worst first" table
-
-_Key = tuple[int, tuple[int, ...], tuple[int, ...], tuple[int, ...], tuple[int, ...]]
+EXAMPLES_KEPT = 3  # findings shown per check on the page (the first met; every one is in findings.csv)
 
 
 @dataclass(frozen=True, slots=True, order=True)
@@ -48,6 +49,7 @@ class Visit:
 
     performed_at: str
     file: str
+    record: str
     source: str
     test_id: str
     sex: str
@@ -71,7 +73,8 @@ class Plots:
 class ArchiveReduce:
     """Accumulates rows; :meth:`finish` gives the findings across the archive."""
 
-    files: int = 0
+    files: int = 0  # files (and folders that could not be listed): a file of many sessions counts once
+    records: int = 0  # rows: one per session read, per bad record, per file that did not become a record
     readable: int = 0
     clean: int = 0
     by_check: Counter[str] = field(default_factory=Counter)
@@ -80,40 +83,39 @@ class ArchiveReduce:
     plots: Plots = field(default_factory=Plots)
     _conventions: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
     _reference_sets: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
-    _worst: list[tuple[_Key, AuditFinding, str]] = field(default_factory=list)
+    _first_file: dict[tuple[str, str], str] = field(default_factory=dict)  # (source, convention or set): first file
+    # per check, the first findings met, with the patient's name (for the page)
+    examples: dict[str, list[tuple[AuditFinding, str]]] = field(default_factory=dict)
 
     def add(self, row: Row) -> None:
-        """Take one row into the counts, the keyed state and the plot arrays."""
-        self.files += 1
+        """Take one row into the counts, the keyed state and the plot arrays (:meth:`add_files` counts files)."""
+        self.records += 1
         self.count(row.findings, row.patient_name, row.performed_at[:7])
         if not row.readable:
             return
         self.readable += 1
         self.clean += row.clean
-        if row.dlco_convention:
-            self._conventions[row.source][row.dlco_convention] += 1
-        if row.reference_set:
-            self._reference_sets[row.source][row.reference_set] += 1
+        for kinds, kind in ((self._conventions, row.dlco_convention), (self._reference_sets, row.reference_set)):
+            if kind:
+                kinds[row.source][kind] += 1
+                self._first_file.setdefault((row.source, kind), row.file)
         self._add_plots(row)
 
+    def add_files(self, files: int) -> None:
+        """Count files read (one each, however many sessions a file holds)."""
+        self.files += files
+
     def count(self, findings: tuple[AuditFinding, ...], patient_name: str = "", month: str = "") -> None:
-        """Count findings and keep the worst of them (with the patient's name, for the report)."""
+        """Count findings and keep the first few of each check (with the patient's name, for the page)."""
         for finding in findings:
             self.by_check[finding.check] += 1
             self.by_source[(finding.source, finding.check)] += 1
             self.by_severity[finding.severity] += 1
             if month:
                 self.plots.findings_by_month[(month, finding.severity)] += 1
-            if len(self._worst) >= WORST_KEPT and finding.rank < self._worst[0][0][0]:
-                continue  # cheaper than building the key: it cannot be among the worst
-            # heapq keeps the smallest first: the least bad finding is the one pushed out
-            key: _Key = (finding.rank, _inverse(finding.check), _inverse(finding.source), _inverse(finding.test_id),
-                   _inverse(finding.message))  # fmt: skip
-            item = (key, finding, patient_name)
-            if len(self._worst) < WORST_KEPT:
-                heapq.heappush(self._worst, item)
-            elif key > self._worst[0][0]:
-                heapq.heapreplace(self._worst, item)
+            kept = self.examples.setdefault(finding.check, [])
+            if len(kept) < EXAMPLES_KEPT:
+                kept.append((finding, patient_name))
 
     def _add_plots(self, row: Row) -> None:
         plots = self.plots
@@ -125,10 +127,6 @@ class ArchiveReduce:
             plots.dlco_over_va.append(row.dlco / row.va)
         if row.dlco_percent_predicted is not None:
             plots.percent_predicted.setdefault(row.source, array("d")).append(row.dlco_percent_predicted)
-
-    def worst(self) -> list[tuple[AuditFinding, str]]:
-        """The worst findings kept, worst first: severity, then check, source, test id."""
-        return [(finding, name) for _, finding, name in sorted(self._worst, reverse=True)]
 
     def finish(
         self,
@@ -143,7 +141,7 @@ class ArchiveReduce:
         """
         found = sorted(
             [*_duplicates(contents), *_patients(patients), *self._sources()],
-            key=lambda f: (f.source, f.test_id, f.check, f.message),
+            key=lambda f: (f.source, f.test_id, f.check, f.file, f.message),
         )
         for finding in found:
             self.count((finding,))
@@ -157,15 +155,65 @@ class ArchiveReduce:
         ):
             for source, counts in kinds.items():
                 if len(counts) > 1:
-                    listed = ", ".join(f"{name} ({n})" for name, n in sorted(counts.items()))
+                    first = self._first_file
+                    listed = ", ".join(f"{k} ({n}, first in {first[(source, k)]})" for k, n in sorted(counts.items()))
+                    rarest = min(counts.items(), key=lambda item: (item[1], item[0]))[0]
                     message = f"{len(counts)} {what} within one source: {listed}; check each against the lab's own."
-                    found.append(AuditFinding(source, "", check, Severity.WARNING.value, message))
+                    file = self._first_file[(source, rarest)]  # the file to start with: the rarer kind's first
+                    found.append(AuditFinding(file, "", source, "", check, Severity.WARNING.value, message))
         return found
+
+
+def held_by_archive(
+    archive: Iterable[AuditFinding], blocking: Collection[str] = (), allow: Collection[str] = ()
+) -> dict[tuple[str, str], tuple[str, ...]]:
+    """Per (source, test id), the codes of the findings across records that keep the session out of the hand-over.
+
+    The gate's one rule (``bridge.emit.outputs.blocked_because``): an error not allowed, or a
+    code marked blocking; a conflicting test id is kept out whatever is allowed, every version
+    of it, until someone decides which one is the result. Findings about a whole source hold nothing.
+    """
+    held: dict[tuple[str, str], tuple[str, ...]] = {}
+    for finding in archive:
+        if not finding.test_id:
+            continue
+        if finding.check == DUPLICATE_TEST_ID or blocked_because(
+            finding.check, Severity(finding.severity), blocking, allow
+        ):
+            key = (finding.source, finding.test_id)
+            held[key] = tuple(sorted({*held.get(key, ()), finding.check}))
+    return held
+
+
+@dataclass(slots=True)
+class Answer:
+    """What the audit's page opens with: how many records can migrate as they are, need a decision, cannot be read."""
+
+    ready: int = 0  # handed over: the gate and the checks across records let it through, first of its test id
+    decision: int = 0  # read, but kept out: the gate refused it or a check across records holds it
+    copies: int = 0  # another file of a test id already handed over, byte for byte the same content
+    unreadable: int = 0  # no record: the file (or the record in it) could not be read
+    why: Counter[str] = field(default_factory=Counter)  # the records needing a decision, by the code that holds them
+
+    def settle(self, readable: bool, held: Sequence[str], first: bool) -> str:
+        """Count one record: "unreadable", "decision", "copy" or "ready" (the hand-over takes the last)."""
+        if not readable:
+            self.unreadable += 1
+            return "unreadable"
+        if held:
+            self.decision += 1
+            self.why.update(held)
+            return "decision"
+        if not first:
+            self.copies += 1
+            return "copy"
+        self.ready += 1
+        return "ready"
 
 
 def visit_of(row: Row) -> Visit:
     """What the patient checks need of one readable row."""
-    return Visit(row.performed_at, row.file, row.source, row.test_id, row.sex, row.birth_date, row.dlco)
+    return Visit(row.performed_at, row.file, row.record, row.source, row.test_id, row.sex, row.birth_date, row.dlco)
 
 
 def _duplicates(contents: Iterable[tuple[str, str, Mapping[str, str]]]) -> list[AuditFinding]:
@@ -176,7 +224,7 @@ def _duplicates(contents: Iterable[tuple[str, str, Mapping[str, str]]]) -> list[
             files = sorted(files_by_content.values())
             found.append(
                 AuditFinding(
-                    source, test_id, DUPLICATE_TEST_ID, Severity.ERROR.value,
+                    files[0], "", source, test_id, DUPLICATE_TEST_ID, Severity.ERROR.value,
                     f"test id {test_id} has {len(files)} different contents: {', '.join(files)}; "
                     "decide which one is the result before migrating it.",
                 )
@@ -194,10 +242,11 @@ def _patients(patients: Iterable[tuple[str, Sequence[Visit]]]) -> list[AuditFind
             if changed is not None:
                 found.append(
                     AuditFinding(
-                        changed.source, changed.test_id, check, Severity.ERROR.value,
+                        changed.file, changed.record, changed.source, changed.test_id, check, Severity.ERROR.value,
                         f"patient {patient.split('|')[-1]}: {attribute.replace('_', ' ')} is "
                         f"{getattr(changed, attribute)} here but {getattr(first, attribute)} in test "
-                        f"{first.test_id} ({first.performed_at[:10]}); one of them is another person or a typo.",
+                        f"{first.test_id} ({first.performed_at[:10]}, {first.file}); "
+                        "one of them is another person or a typo.",
                     )
                 )  # fmt: skip
         found.extend(_jumps(patient, visits))
@@ -215,15 +264,10 @@ def _jumps(patient: str, visits: Sequence[Visit]) -> list[AuditFinding]:
             if abs(ratio / factor - 1) <= SERIES_JUMP_TOLERANCE:
                 found.append(
                     AuditFinding(
-                        after.source, after.test_id, SERIES_JUMP, Severity.ERROR.value,
+                        after.file, after.record, after.source, after.test_id, SERIES_JUMP, Severity.ERROR.value,
                         f"DLCO {after.dlco:.1f} mL/min/mmHg is {ratio:.3f} x the previous session's "
-                        f"{before.dlco:.1f} (test {before.test_id}): about the mL/min/mmHg per mmol/min/kPa "
-                        "factor, so one of the two was probably labelled in the wrong unit.",
+                        f"{before.dlco:.1f} (test {before.test_id}, {before.file}): about the mL/min/mmHg "
+                        "per mmol/min/kPa factor, so one of the two was probably labelled in the wrong unit.",
                     )
                 )  # fmt: skip
     return found
-
-
-def _inverse(text: str) -> tuple[int, ...]:
-    """A key that sorts text backwards, so that among equally bad findings A comes before B."""
-    return (*(-ord(c) for c in text), 1)

@@ -2,7 +2,9 @@
 
 Owns :class:`AuditFinding` (one line of ``findings.csv``) and :class:`Row`, built from an
 :class:`~bridge.model.Outcome` or from the :class:`~bridge.errors.InputError` that refused the
-input. A row carries numbers and short text only, so that worker processes send little back.
+input. A row carries numbers and short text only (and the record's hand-over, when one is
+asked for), so that worker processes send little back. A row names its file and, in a file of
+many sessions, the record within it; ``source`` is always the lab (empty when none was read).
 """
 
 from __future__ import annotations
@@ -11,9 +13,8 @@ from dataclasses import dataclass
 from datetime import UTC
 from types import MappingProxyType
 
-from bridge.errors import InputError, ProcessingFailed, UnknownFormat, UnreadableInput
+from bridge.errors import BlockedByFinding, InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import Outcome, Quantity, Severity
-from bridge.science.reference import OutsideRange, Parameter, ReferenceEquations
 
 SEVERITY_RANK = MappingProxyType({Severity.INFO.value: 0, Severity.WARNING.value: 1, Severity.ERROR.value: 2})
 
@@ -22,17 +23,15 @@ UNREADABLE = "UNREADABLE_INPUT"  # not UTF-8, not JSON, empty, half-written, too
 UNKNOWN_FORMAT = "UNKNOWN_FORMAT"  # no reader recognises it
 INVALID_RECORD = "INVALID_RECORD"  # readable, but a field is missing or impossible
 INTERNAL_ERROR = "INTERNAL_ERROR"  # the bridge failed on it: a defect to report
-PREDICTED_NOT_FROM_SET = "PREDICTED_NOT_FROM_CLAIMED_SET"
-# A lab's predicted DLCO that claims GLI-2017 but is further than this from the GLI-2017 value
-# for the record's sex, age and height was computed otherwise (another set, another sex, a
-# copying error). Labs round ages and predicted values, which moves them by a few per cent at most.
-PREDICTED_TOLERANCE = 0.05  # relative (common practice)
 
 
 @dataclass(frozen=True, slots=True, order=True)
 class AuditFinding:
-    """One line of ``findings.csv``: ``source`` is the lab (the file, when no lab could be read)."""
+    """One line of ``findings.csv``: the file (and the record within a file of many sessions) it
+    concerns, ``source`` the lab that produced the record (empty when none could be read)."""
 
+    file: str
+    record: str  # the record's number within a file of many sessions (1-based); "" for a one-session file
     source: str
     test_id: str
     check: str
@@ -52,8 +51,12 @@ class Row:
     file: str
     source: str
     findings: tuple[AuditFinding, ...]
+    record: str = ""  # within a file of many sessions, the record's number (1-based)
     readable: bool = True
-    clean: bool = False  # readable and no finding of severity error: handed over in bulk
+    # The codes for which the site's gate (allow/blocking, bridge.emit.outputs) refused the record;
+    # empty: the gate lets it through (the findings across records may still hold it back).
+    held: tuple[str, ...] = ()
+    ndjson: bytes = b""  # the record's hand-over (the pipeline's ndjson route), when asked for
     test_id: str = ""
     sha256: str = ""
     patient: str = ""  # identifier system | identifier
@@ -69,6 +72,11 @@ class Row:
     reference_set: str = ""
     dlco_percent_predicted: float | None = None
 
+    @property
+    def clean(self) -> bool:
+        """Read, and let through by the site's gate."""
+        return self.readable and not self.held
+
 
 def _value(quantity: Quantity | None) -> float | None:
     return None if quantity is None else quantity.value
@@ -81,44 +89,22 @@ def _convention(quantity: Quantity | None) -> str:
     return "si" if unit.lower().startswith("mmol") else "traditional"
 
 
-def claims_gli_2017(reference_set: str) -> bool:
-    """Whether a lab's reference-set name says GLI-2017 (labs write it several ways)."""
-    text = reference_set.upper()
-    return "GLI" in text and "2017" in text
-
-
-def predicted_check(outcome: Outcome, equations: ReferenceEquations) -> AuditFinding | None:
-    """A predicted DLCO that claims GLI-2017 but is not the GLI-2017 value for this patient."""
-    session = outcome.session
-    predicted = session.results.predicted
-    if predicted is None or predicted.dlco is None or not claims_gli_2017(predicted.reference_set or ""):
-        return None
-    patient = session.patient
-    lms = equations.lms(Parameter.DLCO, patient.sex, outcome.derived.age_years, patient.height.value)
-    if isinstance(lms, OutsideRange):
-        return None  # the equations do not cover this patient: nothing to compare with
-    reported = predicted.dlco.value
-    if abs(reported / lms.predicted - 1) <= PREDICTED_TOLERANCE:
-        return None
-    message = (
-        f"results.predicted.dlco: {reported:.1f} mL/min/mmHg is said to be {predicted.reference_set}, but GLI-2017 "
-        f"predicts {lms.predicted:.1f} for a {patient.sex.value} of {outcome.derived.age_years:.0f} y and "
-        f"{patient.height.value:.0f} cm; check the set, the sex and the age the lab used."
-    )
-    return AuditFinding(session.lab.name, session.test_id, PREDICTED_NOT_FROM_SET, Severity.WARNING.value, message)
-
-
-def row_of(outcome: Outcome, file: str, equations: ReferenceEquations | None = None) -> Row:
-    """The row of one outcome of the pipeline (with ``equations``, its predicted values are checked too)."""
+def row_of(outcome: Outcome, file: str, record: str = "", refused: InputError | None = None) -> Row:
+    """The row of one outcome of the pipeline; ``refused``: the error the gate (or emitting) raised for it."""
     session, derived = outcome.session, outcome.derived
     source = session.lab.name
     findings = tuple(
-        AuditFinding(source, session.test_id, f.code, f.severity.value, f"{f.path}: {f.message}")
+        AuditFinding(file, record, source, session.test_id, f.code, f.severity.value, f"{f.path}: {f.message}")
         for f in outcome.findings
     )
-    extra = predicted_check(outcome, equations) if equations is not None else None
-    if extra is not None:
-        findings = (*findings, extra)
+    held: tuple[str, ...] = ()
+    if isinstance(refused, BlockedByFinding):
+        held = (refused.code,)
+    elif refused is not None:  # built, but what was built could not be (an output without results, invalid)
+        check = _check_of(refused)
+        held = (check,)
+        findings += (AuditFinding(file, record, source, session.test_id, check, Severity.ERROR.value, refused.line()),)
+    ndjson = next((p.data for p in outcome.payloads if p.kind == "ndjson"), b"")
     patient = session.patient
     name = " ".join(part for part in (patient.given, patient.family) if part)
     results = session.results
@@ -127,7 +113,9 @@ def row_of(outcome: Outcome, file: str, equations: ReferenceEquations | None = N
         file=file,
         source=source,
         findings=findings,
-        clean=all(f.severity != Severity.ERROR.value for f in findings),
+        record=record,
+        held=held,
+        ndjson=ndjson,
         test_id=session.test_id,
         sha256=outcome.source_sha256,
         patient=f"{patient.id_system}|{patient.id}",
@@ -145,15 +133,18 @@ def row_of(outcome: Outcome, file: str, equations: ReferenceEquations | None = N
     )
 
 
-def row_of_error(error: InputError, file: str) -> Row:
-    """The row of an input the pipeline refused: one finding naming the file and the reason."""
+def _check_of(error: InputError) -> str:
     if isinstance(error, ProcessingFailed):
-        check = INTERNAL_ERROR
-    elif isinstance(error, UnknownFormat):
-        check = UNKNOWN_FORMAT
-    elif isinstance(error, UnreadableInput):
-        check = UNREADABLE
-    else:
-        check = INVALID_RECORD
-    finding = AuditFinding(file, "", check, Severity.ERROR.value, error.with_source(file).line())
-    return Row(file=file, source=file, findings=(finding,), readable=False)
+        return INTERNAL_ERROR
+    if isinstance(error, UnknownFormat):
+        return UNKNOWN_FORMAT
+    if isinstance(error, UnreadableInput):
+        return UNREADABLE
+    return INVALID_RECORD
+
+
+def row_of_error(error: InputError, file: str, record: str = "") -> Row:
+    """The row of an input the pipeline refused: one finding naming the file and the reason."""
+    check = _check_of(error)
+    finding = AuditFinding(file, record, "", "", check, Severity.ERROR.value, error.with_source(file).line())
+    return Row(file=file, source="", findings=(finding,), record=record, readable=False, held=(check,))

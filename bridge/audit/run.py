@@ -3,14 +3,13 @@
 Owns walking (``os.scandir``, iteratively: no recursion limit, one folder open at a time,
 no listing held whole), chunking, the bounded pool of worker processes
 (``concurrent.futures.ProcessPoolExecutor``), what one worker does with one file
-(:func:`audit_file`: read, :func:`bridge.pipeline.process`, row, NDJSON of a clean session),
+(:func:`audit_file`: read, :func:`bridge.pipeline.process_all` through the site's gate, with the
+``ndjson`` route when the hand-over is asked for, one row per session),
 the same map on an existing Dask cluster (:func:`map_dask`), the progress line on a terminal,
 and the order results are taken in: the order of the walk, whatever the number of workers or
 the scheduler, so that a run's files are the same for 1 or N workers, local or on a cluster.
-
-Extension point for field maps (``--map``): a worker reads every file through
-:func:`audit_file`, which calls the one pipeline with the job's settings; when the pipeline
-accepts a field map, the map goes on :class:`Job` and nowhere else changes.
+After the walk: the checks across records, then the hand-over (NDJSON and ``quarantined.csv``,
+written only now, so that a conflicting test id is kept out of it), then the page.
 """
 
 from __future__ import annotations
@@ -28,18 +27,18 @@ from datetime import datetime
 from pathlib import Path
 from typing import Any, TextIO
 
+from bridge import __version__
 from bridge.audit.index import ArchiveIndex
-from bridge.audit.reduce import ArchiveReduce
+from bridge.audit.reduce import ArchiveReduce, held_by_archive
 from bridge.audit.report import ReportWriter
 from bridge.audit.rows import Row, row_of, row_of_error
-from bridge.emit.fhir_ndjson import to_ndjson
 from bridge.errors import InputError, ProcessingFailed, UnreadableInput
-from bridge.pipeline import PipelineSettings, process_all
-from bridge.science.reference import ReferenceEquations
+from bridge.model import Outcome
+from bridge.pipeline import PipelineSettings, Route, process_all
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 from bridge.tables.field_map_model import MapChoice
-from bridge.tables.files import load_map_choice, load_reference_equations, load_tables
+from bridge.tables.files import load_map_choice, load_tables
 
 DEFAULT_WORKERS = os.cpu_count() or 1  # one worker per CPU
 
@@ -71,10 +70,10 @@ class Job:
 
 @dataclass(frozen=True, slots=True)
 class ChunkResult:
-    """The rows of one chunk, in the chunk's order, and the NDJSON of its clean sessions."""
+    """The rows of one chunk (each with its hand-over, when asked for), in the chunk's order, and its file count."""
 
     rows: tuple[Row, ...]
-    ndjson: tuple[tuple[str, bytes], ...]  # (resource type, lines), resource types sorted
+    files: int
 
 
 def walk(paths: Iterable[Path]) -> Iterator[str]:
@@ -127,12 +126,6 @@ def _maps(default: Path | None, patterns: tuple[tuple[str, Path], ...], traditio
     return load_map_choice(default, patterns, _tables(traditional_per_si))
 
 
-@functools.cache
-def _equations() -> ReferenceEquations:
-    """The GLI-2017 reference equations, loaded once per worker process."""
-    return load_reference_equations()
-
-
 def read_file(path: str, limit: int) -> bytes:
     """The bytes of one file; anything the file system refuses is an :class:`UnreadableInput`."""
     try:
@@ -145,47 +138,44 @@ def read_file(path: str, limit: int) -> bytes:
     return data
 
 
-def audit_file(
-    path: str, job: Job, tables: Tables, equations: ReferenceEquations | None = None
-) -> tuple[list[Row], dict[str, bytes]]:
-    """One file through the one pipeline: a row per session (or refusal), and the NDJSON of the clean ones.
+def audit_file(path: str, job: Job, tables: Tables) -> list[Row]:
+    """One file through the one pipeline and the site's gate: a row per session (or refusal).
 
-    A file read through a field map may hold many sessions; each bad record is a row of its own.
+    A file read through a field map may hold many sessions (numbered rows: the record within
+    the file); each bad record is a row of its own. A session the gate refuses keeps its
+    findings (the error carries the checked record) and names the codes that held it.
     """
     rows: list[Row] = []
-    clean = []
+    routes = (Route("ndjson", job.units),) if job.emit_ndjson else ()
     try:
         data = read_file(path, job.pipeline.max_input_bytes)
         maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
         pipeline = replace(job.pipeline, field_map=maps.for_file(os.path.basename(path)))
-        for result in process_all(data, path, tables, pipeline):
-            if isinstance(result, InputError):
-                rows.append(row_of_error(result, path))
-                continue
-            row = row_of(result, path, equations)
-            rows.append(row)
-            if job.emit_ndjson and row.clean:
-                clean.append(result)
-    except InputError as exc:
-        rows.append(row_of_error(exc, path))
+        many = pipeline.field_map is not None
+        for number, result in enumerate(
+            process_all(data, path, tables, pipeline, now=job.now, routes=routes, gate=True), start=1
+        ):
+            rows.append(_row(result, path, str(number) if many else ""))
+    except InputError as exc:  # the file as a whole (or, for a map that refuses bad records, its first bad one)
+        rows.append(_row(exc, path, str(len(rows) + 1) if rows or exc.outcome is not None else ""))
     except Exception as exc:  # one file must never stop the others
         rows.append(row_of_error(ProcessingFailed.wrapping(exc, path), path))
-    if not clean:
-        return rows, {}
-    return rows, to_ndjson(clean, tables, job.pipeline.emit.context(job.now, job.units, False))
+    return rows
+
+
+def _row(result: Outcome | InputError, path: str, record: str) -> Row:
+    if isinstance(result, Outcome):
+        return row_of(result, path, record)
+    if isinstance(result.outcome, Outcome):  # refused at the gate, or while building its hand-over
+        return row_of(result.outcome, path, record, refused=result)
+    return row_of_error(result, path, record)
 
 
 def audit_chunk(files: Sequence[str], job: Job) -> ChunkResult:
     """What a worker does with one chunk (a top-level function: it is pickled by name)."""
-    tables, equations = _tables(job.traditional_per_si), _equations()
-    rows = []
-    ndjson: dict[str, list[bytes]] = {}
-    for path in files:
-        file_rows, lines = audit_file(path, job, tables, equations)
-        rows.extend(file_rows)
-        for kind, text in lines.items():
-            ndjson.setdefault(kind, []).append(text)
-    return ChunkResult(tuple(rows), tuple((kind, b"".join(parts)) for kind, parts in sorted(ndjson.items())))
+    tables = _tables(job.traditional_per_si)
+    rows = [row for path in files for row in audit_file(path, job, tables)]
+    return ChunkResult(tuple(rows), len(files))
 
 
 def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) -> Iterator[ChunkResult]:
@@ -265,7 +255,8 @@ def run_audit(
 
     ``scheduler``: the address of a Dask scheduler to run on instead of local processes (the
     files written are the same). Raises ``OSError`` when the audit could not run: the report
-    folder cannot be written, or the scheduler cannot be reached.
+    folder cannot be written (or is not empty and holds no earlier report), or the scheduler
+    cannot be reached.
     """
     writer = ReportWriter(report, ndjson=job.emit_ndjson)
     reduce = ArchiveReduce()
@@ -277,16 +268,40 @@ def run_audit(
                 map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
             )
             for result in results:
+                reduce.add_files(result.files)
                 for row in result.rows:
                     reduce.add(row)
                 index.add(result.rows)
-                writer.add(result.rows, result.ndjson)
-                shown.advance(len(result.rows))
+                writer.add(result.rows)
+                shown.advance(result.files)
         finally:
             shown.close()
-            writer.close_streams()
         archive = reduce.finish(index.contents(), index.patients())
-    return writer.finish(reduce, archive)
+        answer = writer.hand_over(index.records(), held_by_archive(archive, job.pipeline.blocking, job.pipeline.allow))
+    return writer.finish(reduce, archive, answer, about_the_run(paths, job))
+
+
+def about_the_run(paths: Sequence[Path], job: Job) -> dict[str, object]:
+    """The settings, paths, tool version and date of a run, as the page and summary.json show them.
+
+    Not the number of workers or the scheduler: 1 or N workers, local or on a cluster, write the same files.
+    """
+    pipeline = job.pipeline
+    maps = [str(job.map_default)] if job.map_default is not None else []
+    maps += [f"{pattern} = {path}" for pattern, path in job.map_patterns]
+    return {
+        "tool": f"dlco-bridge {__version__}",
+        "date": job.now.isoformat(timespec="seconds"),
+        "paths": [str(p) for p in paths],
+        "field_maps": maps,
+        "units": job.units,
+        "traditional_per_si": job.traditional_per_si,
+        "allow": sorted(pipeline.allow),
+        "blocking": sorted(pipeline.blocking),
+        "reference_basis": pipeline.reference_basis,
+        "repeatability": pipeline.repeatability,
+        "hand_over": "ndjson" if job.emit_ndjson else "none",
+    }
 
 
 def terminal(stream: TextIO = sys.stderr) -> TextIO | None:

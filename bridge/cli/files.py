@@ -260,7 +260,8 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
         print(f"dlco-bridge: audit could not run: {exc}", file=sys.stderr)
         return EXIT_SETUP
     print(
-        f"{summary['files']} files, {summary['sessions_read']} sessions read, {summary['clean']} clean, "
+        f"{summary['files']} files, {summary['records']} records: {summary['ready']} can migrate as they are, "
+        f"{summary['need_decision']} need a decision, {summary['unreadable']} cannot be read; "
         f"{summary['findings']} findings; report in {args.report / 'report.html'}"
     )
     print(CAUTION)

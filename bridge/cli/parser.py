@@ -51,20 +51,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: 
     _add_science(parser)
     if not emits:
         return
-    parser.add_argument(
-        "--allow",
-        action="append",
-        metavar="CODE",
-        help="an ERROR finding code to write anyway, the value marked preliminary with the finding; "
-        "repeat or separate with commas (key allow; default "
-        f"{','.join(sorted(DEFAULTS.pipeline.allow)) or 'none'}: "
-        "every ERROR finding keeps a record from being written)",
-    )
-    parser.add_argument(
-        "--blocking",
-        help="codes of lesser (warning, info) findings that also keep a record from being written, "
-        f"comma-separated (key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'})",
-    )
+    _add_gate(parser)
     parser.add_argument(
         "--validate",
         action="store_const",
@@ -99,6 +86,24 @@ def _add_map(parser: argparse.ArgumentParser) -> None:
         type=lambda value: str(Path(value).absolute()),
         help="read every input through this field map (mappings/maps/*.toml; CSV or legacy HL7 v2) "
         "(key map; default: none, inputs are dlco-result/1 JSON; [maps] chooses one per file pattern)",
+    )
+
+
+def _add_gate(parser: argparse.ArgumentParser) -> None:
+    """The gate's flags: which findings keep a record from being written (convert, demo, the audit's hand-over)."""
+    parser.add_argument(
+        "--allow",
+        action="append",
+        metavar="CODE",
+        help="an ERROR finding code to write anyway, the value marked preliminary with the finding; "
+        "repeat or separate with commas (key allow; default "
+        f"{','.join(sorted(DEFAULTS.pipeline.allow)) or 'none'}: "
+        "every ERROR finding keeps a record from being written)",
+    )
+    parser.add_argument(
+        "--blocking",
+        help="codes of lesser (warning, info) findings that also keep a record from being written, "
+        f"comma-separated (key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'})",
     )
 
 
@@ -155,9 +160,14 @@ def build_parser() -> argparse.ArgumentParser:
     audit.add_argument("paths", nargs="+", type=Path, help="export files or folders (walked to any depth)")
     audit.add_argument("--report", type=Path, required=True, help="folder for findings.csv, summary.json, report.html")
     audit.add_argument("--workers", type=int, help="worker processes (default: the number of CPUs)")
-    audit.add_argument("--emit", choices=("ndjson",), help="also write the clean sessions as FHIR R4 NDJSON")
+    audit.add_argument(
+        "--emit",
+        choices=("ndjson",),
+        help="also hand over the sessions that can migrate as they are, as FHIR R4 NDJSON",
+    )
     audit.add_argument("--scheduler", help="run on an existing Dask cluster at this address (the [scale] extra)")
     _add_settings(audit, emits=False)
+    _add_gate(audit)  # the hand-over goes through the same gate as convert
     maps = commands.add_parser("map", help="field maps: onboard a CSV or legacy HL7 v2 source without code")
     map_commands = maps.add_subparsers(dest="map_command", required=True)
     map_check = map_commands.add_parser(

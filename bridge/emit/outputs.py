@@ -1,6 +1,7 @@
 """The payloads one outcome becomes, per output kind, and the blocking-finding gate (pure).
 
-Owns: ``fhir`` -> transaction Bundle JSON, ``hl7`` -> ORU^R01 ER7 (CR-separated), their
+Owns: ``fhir`` -> transaction Bundle JSON, ``hl7`` -> ORU^R01 ER7 (CR-separated),
+``ndjson`` -> the resources of the Bundle one per line (the audit's bulk hand-over), their
 stable message ids and file stems, and refusing an outcome that carries an ERROR finding the
 site did not allow, or a finding it marks as blocking. Called only by ``bridge.pipeline``.
 """
@@ -11,6 +12,7 @@ import re
 from collections.abc import Collection, Sequence
 
 from bridge.emit.fhir import bundle_json, require_aware
+from bridge.emit.fhir_ndjson import ndjson_lines
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
@@ -20,12 +22,26 @@ from bridge.tables import Tables
 
 FHIR_JSON = "application/fhir+json"
 HL7_V2_ER7 = "x-application/hl7-v2+er7"
+FHIR_NDJSON = "application/fhir+ndjson"
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
 
 
 def file_stem(test_id: str) -> str:
     """A test id made safe as a file name (no path separators, no leading dot)."""
     return _UNSAFE.sub("_", test_id).lstrip(".") or "_"
+
+
+def blocked_because(code: str, severity: Severity, blocking: Collection[str] = (), allow: Collection[str] = ()) -> str:
+    """Why a finding of this code and severity keeps its record from being emitted ("" when it does not).
+
+    The one rule of the gate: an ERROR finding not in ``allow``, or any finding in ``blocking``.
+    The audit applies it to its findings across records too.
+    """
+    if code in blocking:
+        return "is configured as blocking"
+    if severity is Severity.ERROR and code not in allow:
+        return f"is an error finding (send it anyway, marked preliminary, with --allow {code})"
+    return ""
 
 
 def refuse_blocked(outcome: Outcome, blocking: Collection[str] = (), allow: Collection[str] = ()) -> None:
@@ -35,13 +51,14 @@ def refuse_blocked(outcome: Outcome, blocking: Collection[str] = (), allow: Coll
     preliminary status (``build_content``); any other ERROR keeps the record from being emitted.
     """
     for finding in outcome.findings:
-        if finding.code in blocking:
-            why = "is configured as blocking"
-        elif finding.severity is Severity.ERROR and finding.code not in allow:
-            why = f"is an error finding (send it anyway, marked preliminary, with --allow {finding.code})"
-        else:
-            continue
-        raise BlockedByFinding(finding.path, f"not emitted: {finding.code} {why} ({finding.message})", outcome.source)
+        why = blocked_because(finding.code, finding.severity, blocking, allow)
+        if why:
+            raise BlockedByFinding(
+                finding.path,
+                f"not emitted: {finding.code} {why} ({finding.message})",
+                outcome.source,
+                code=finding.code,
+            )
 
 
 def payloads(
@@ -57,7 +74,12 @@ def payloads(
         # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
         raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)
     for kind in kinds:
-        if kind == "fhir":
+        if kind == "ndjson":
+            require_aware(context.now)
+            data = ndjson_lines(outcome, tables, context, content)
+            stem = file_stem(outcome.session.test_id)
+            built.append(Payload(kind=kind, units=context.units, message_id=stem, content_type=FHIR_NDJSON, data=data))
+        elif kind == "fhir":
             require_aware(context.now)  # as bundle_json: the time is checked before anything is built
             stem = f"{file_stem(outcome.session.test_id)}"
             data = bundle_json(outcome, tables, context, content)

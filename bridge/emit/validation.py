@@ -20,6 +20,8 @@ def problems(payload: Payload) -> list[str]:
     """What the independent validator finds wrong with one payload (empty when it is valid)."""
     if payload.kind == "fhir":
         return _bundle_problems(payload.data)
+    if payload.kind == "ndjson":
+        return _resources_problems(payload.data)
     return _oru_problems(payload.data.decode("utf-8"))
 
 
@@ -34,6 +36,24 @@ def _bundle_problems(data: bytes) -> list[str]:
     except ValidationError as exc:
         return [f"{'.'.join(str(p) for p in e['loc'])}: {e['msg']}" for e in exc.errors(include_url=False)]
     return []
+
+
+def _resources_problems(data: bytes) -> list[str]:
+    """Each NDJSON line as the ``fhir.resources`` R4B model of its own type."""
+    try:
+        import orjson
+        from fhir.resources.R4B import get_fhir_model_class
+        from pydantic import ValidationError
+    except ImportError as exc:
+        raise ConfigError("--validate", "the optional extra: pip install 'dlco-bridge[validate]'") from exc
+    found = []
+    for number, line in enumerate(data.splitlines(), start=1):
+        kind = orjson.loads(line)["resourceType"]
+        try:
+            get_fhir_model_class(kind).model_validate_json(line)
+        except ValidationError as exc:
+            found += [f"line {number} ({kind}): {e['msg']}" for e in exc.errors(include_url=False)]
+    return found
 
 
 def _oru_problems(er7: str) -> list[str]:

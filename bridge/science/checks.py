@@ -33,6 +33,10 @@ ADJUSTMENT_TOLERANCE = 0.02
 HB_NOTE_THRESHOLD = 0.05  # mention the Hb adjustment when it moves DLCO by more than 5 %  # common practice
 BREATH_HOLD_TARGET_S = (8.0, 12.0)  # source: ATS/ERS 2005 Table 6 (10 +/- 2 s)
 LOW_PRESSURE_MMHG = 700.0  # flag the altitude adjustment below this PB (about 700 m)  # common practice
+# A lab's predicted DLCO that claims GLI-2017 but is further than this from the GLI-2017 value
+# for the record's sex, age and height was computed otherwise (another set, another sex, a
+# copying error). Labs round ages and predicted values, which moves them by a few per cent at most.
+PREDICTED_TOLERANCE = 0.05  # relative (common practice)
 
 
 def check_breath_hold(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
@@ -243,6 +247,36 @@ def check_reference_basis(session: Session, derived: Derived, tables: Tables) ->
     )
 
 
+def claims_gli_2017(reference_set: str) -> bool:
+    """Whether a lab's reference-set name says GLI-2017 (labs write it several ways)."""
+    text = reference_set.upper()
+    return "GLI" in text and "2017" in text
+
+
+def check_predicted_set(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:
+    """A lab's predicted DLCO that claims GLI-2017 but is not the GLI-2017 value for this patient."""
+    predicted = session.results.predicted
+    reference = derived.reference_dlco
+    if predicted is None or predicted.dlco is None or reference is None:
+        return  # nothing claimed, or the equations do not cover this patient: nothing to compare with
+    if not claims_gli_2017(predicted.reference_set or ""):
+        return
+    gli = reference.predicted.value
+    if abs(predicted.dlco.value / gli - 1) <= PREDICTED_TOLERANCE:
+        return
+    patient = session.patient
+    yield finding_with_values(
+        "PREDICTED_NOT_FROM_CLAIMED_SET",
+        Severity.WARNING,
+        "results.predicted.dlco",
+        f"the lab's predicted DLCO {{reported}} is said to be {predicted.reference_set}, but GLI-2017 predicts "
+        f"{{gli}} for a {patient.sex.value} of {derived.age_years:.0f} y and {patient.height.value:.0f} cm; "
+        "check the set, the sex and the age the lab used.",
+        reported=predicted.dlco,
+        gli=message_quantity(gli, DLCO_UNIT, 1),
+    )
+
+
 DEFAULT_RULES: tuple[Rule, ...] = (
     check_unit_mislabel,
     check_kco,
@@ -256,6 +290,7 @@ DEFAULT_RULES: tuple[Rule, ...] = (
     check_quality,
     check_reference,
     check_reference_basis,
+    check_predicted_set,
 )
 
 

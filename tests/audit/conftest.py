@@ -9,10 +9,13 @@ import pytest
 
 from bridge.audit.run import AuditSettings, Job, run_audit
 from bridge.pipeline import PipelineSettings
+from bridge.tables.files import mappings_dir
 from tests.audit.planted import write_archive
 
 NOW = datetime(2026, 12, 1, 12, tzinfo=UTC)
-JOB = Job(PipelineSettings(), 2.987, "traditional", NOW, emit_ndjson=True)
+# CSV exports are read through Lowmarsh's field map; every other file is dlco-result/1 JSON
+CSV_MAP = (("*.csv", mappings_dir() / "maps" / "lowmarsh-csv.toml"),)
+JOB = Job(PipelineSettings(), 2.987, "traditional", NOW, emit_ndjson=True, map_patterns=CSV_MAP)
 
 
 @pytest.fixture(scope="session")

@@ -34,6 +34,10 @@ RAW = 20  # copies of sample 06 (three manoeuvres with raw gas data), each its o
 SALTREACH_IN_SI = 3  # Saltreach writes traditional units but for these
 BRACKENFOLD_OTHER_SET = 4  # Brackenfold uses GLI 2017 but for these
 PREDICTED_OFF = range(50, 53)  # Lowmarsh patients whose first predicted DLCO, said to be GLI 2017, is 15 % high
+# A file of many sessions read through its field map: Lowmarsh's CSV export, which holds the sessions of
+# samples 04 and 06 (source: docs/field-maps.md, "the legacy samples", twins field by field)
+EXPORT = "lowmarsh-results.csv"
+EXPORT_SESSIONS = 2
 
 # What the audit must find: exactly these, no more, no fewer (hand-counted from the plan above).
 PLANTED = Counter(
@@ -51,8 +55,9 @@ PLANTED = Counter(
         "HB_ADJUSTMENT_WRONG_DIRECTION": HB_WRONG,
         "HB_ADJUSTMENT": HB_WRONG,  # sample 09: Hb 11.2 g/dL, the adjustment is noted
         "PRESSURE_ADJUSTMENT": HB_WRONG,  # sample 09: measured at 1800 m
-        "BREATH_HOLD_OUT_OF_TARGET": RAW,  # sample 06: manoeuvre 3 held 7.2 s
-        "MANOEUVRE_NOT_ACCEPTABLE": RAW,  # sample 06: manoeuvre 3, VI/VC 78 % (VI at BTPS)
+        "BREATH_HOLD_OUT_OF_TARGET": RAW + 1,  # sample 06 (and its twin in the export): manoeuvre 3 held 7.2 s
+        "MANOEUVRE_NOT_ACCEPTABLE": RAW + 1,  # sample 06 (and its twin): manoeuvre 3, VI/VC 78 % (VI at BTPS)
+        "COHB_RAISED": 1,  # the export's twin of sample 04: COHb 8.5 %
         # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
         "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
         "UNREADABLE_INPUT": 3,  # three half-written files
@@ -60,8 +65,15 @@ PLANTED = Counter(
     }
 )
 SESSIONS = {LOWMARSH: (600, 3), SALTREACH: (300, 3), BRACKENFOLD: (100, 2)}  # patients, sessions each
-READABLE = sum(p * s for p, s in SESSIONS.values()) + len(CONFLICTING) + len(COPIED) + HB_WRONG + RAW
+READABLE = sum(p * s for p, s in SESSIONS.values()) + len(CONFLICTING) + len(COPIED) + HB_WRONG + RAW + EXPORT_SESSIONS
 CLEAN = READABLE - HB_WRONG - len(JUMPED)  # the record findings of severity error: Hb wrong way, unit mislabels
+UNREADABLE = 6  # three half-written files, two other formats, one binary file
+FILES = READABLE - EXPORT_SESSIONS + 1 + UNREADABLE  # one file a session, but the export: one file of two
+# Kept out of the hand-over for a decision: the records the gate refuses, every version of a conflicting
+# test id, and the sessions the patient checks name (errors across records)
+DECISION = HB_WRONG + len(JUMPED) + 2 * len(CONFLICTING) + len(SEX_CHANGED) + len(BIRTH_CHANGED)
+COPIES = len(COPIED)  # byte-identical copies: handed over once
+READY = READABLE - DECISION - COPIES
 
 
 def _sample(name: str) -> dict[str, Any]:
@@ -136,14 +148,16 @@ def write_archive(root: Path) -> None:
         doc = copy.deepcopy(_sample("09-legacy-hb-wrong-direction.json"))
         doc["test_id"] = f"HC-LEGACY-{i:03d}"
         doc["patient"]["id"] = f"FICT-HC{i:05d}"
-        if i == 0:
-            doc["patient"]["given"] = SCRIPT_NAME
+        doc["patient"]["given"] = SCRIPT_NAME  # every one: whichever the page shows as an example carries it
         (legacy / f"{doc['test_id']}.json").write_bytes(orjson.dumps(doc))
     for i in range(RAW):
         doc = _sample("06-three-manoeuvres.json")
         doc["test_id"] = f"LM-RAW-{i:03d}"
         doc["patient"]["id"] = f"FICT-RAW{i:05d}"
         (legacy / f"{doc['test_id']}.json").write_bytes(orjson.dumps(doc))
+    exports = root / "exports"
+    exports.mkdir()
+    (exports / EXPORT).write_bytes((samples_dir() / "legacy" / EXPORT).read_bytes())
     broken = root / "broken"
     broken.mkdir()
     whole = orjson.dumps(session(LOWMARSH, 9000, 0))

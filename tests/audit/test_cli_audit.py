@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import csv
+import json
 from pathlib import Path
 
 from bridge.cli import main
@@ -18,7 +19,7 @@ def test_audit_exits_0_and_reports_a_broken_export_and_a_foreign_file_as_finding
 
     code = main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1"])
     with open(tmp_path / "r" / "findings.csv", newline="", encoding="utf-8") as handle:
-        refused = {(Path(row["source"]).name, row["check"]) for row in csv.DictReader(handle) if row["test_id"] == ""}
+        refused = {(Path(row["file"]).name, row["check"]) for row in csv.DictReader(handle) if row["test_id"] == ""}
 
     assert 0 == code
     # source: samples/08-malformed.json has a date-time without a UTC offset (README, "What the samples show")
@@ -52,9 +53,10 @@ def test_audit_reads_a_legacy_hl7_feed_through_its_map(tmp_path: Path, capsys):
     code = main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1", "--map", str(hl7_map)])
     with open(tmp_path / "r" / "findings.csv", newline="", encoding="utf-8") as handle:
         checks = {row["check"] for row in csv.DictReader(handle)}
-    summary = (tmp_path / "r" / "summary.json").read_text()
+    summary = json.loads((tmp_path / "r" / "summary.json").read_text())
     capsys.readouterr()
 
     assert 0 == code
     assert "UNKNOWN_FORMAT" not in checks
-    assert '"sessions_read": 4' in summary  # the feed carries four sessions (samples/legacy, docs/field-maps.md)
+    # the feed carries four sessions (samples/legacy, docs/field-maps.md), in one file
+    assert (1, 4) == (summary["files"], summary["sessions_read"])

@@ -50,9 +50,9 @@ def test_visits_come_back_per_patient_in_time_then_file_order(tmp_path: Path):
         (
             "sys|P1",
             [
-                Visit("2021-05-01T09:00:00+00:00", "y.json", "Lab A", "T-2", "female", "1970-01-01", None),
-                Visit("2022-05-01T09:00:00+00:00", "x.json", "Lab A", "T-1", "male", "1970-01-01", 20.0),
-                Visit("2022-05-01T09:00:00+00:00", "z.json", "Lab A", "T-3", "female", "1970-01-01", 20.0),
+                Visit("2021-05-01T09:00:00+00:00", "y.json", "", "Lab A", "T-2", "female", "1970-01-01", None),
+                Visit("2022-05-01T09:00:00+00:00", "x.json", "", "Lab A", "T-1", "male", "1970-01-01", 20.0),
+                Visit("2022-05-01T09:00:00+00:00", "z.json", "", "Lab A", "T-3", "female", "1970-01-01", 20.0),
             ],
         )
     ] == patients

@@ -311,6 +311,16 @@ def _labelled_traditional(dlco: float):
     return change
 
 
+def _predicted_dlco_times(factor: float, reference_set: str | None = None):
+    def change(doc):
+        predicted = doc["results"]["predicted"]
+        predicted["dlco"]["value"] = round(predicted["dlco"]["value"] * factor, 2)
+        if reference_set is not None:
+            predicted["reference_set"] = reference_set
+
+    return change
+
+
 def _gli_z(parameter: Any, value: float) -> float:
     """The GLI-2017 z-score of ``value`` for the 52-year-old man, from pyspiro."""
     return float(GLI_2017().zscore(1, MISLABEL_AGE, 168.0, parameter, value))  # pyspiro: 1 = male
@@ -356,3 +366,21 @@ def test_the_error_tier_is_unchanged_beyond_z_5(tables: Tables):
     dlco = {f.code for f in outcome.findings if f.path == "results.dlco"}
 
     assert {"UNIT_MISLABEL_PROBABLE"} == dlco & {"UNIT_MISLABEL_PROBABLE", "UNIT_MISLABEL_POSSIBLE"}
+
+
+def test_a_predicted_value_said_to_be_gli_2017_but_far_from_it_is_flagged(tables: Tables):
+    """Sample 01's predicted DLCO (said GLI 2017) raised 15 % is no longer the GLI-2017 value for its patient."""
+    # Hand reasoning: sample 01 has no finding, so GLI-2017 predicts within 5 % of its 10.15 mmol/min/kPa,
+    # i.e. at most 10.15 / 0.95 = 10.68; 10.15 x 1.15 = 11.67 is 11.67 / 10.68 = 1.093, more than 5 % above it.
+    outcome = _variant("01-healthy-adult", _predicted_dlco_times(1.15), tables)
+    (found,) = [f for f in outcome.findings if f.code == "PREDICTED_NOT_FROM_CLAIMED_SET"]
+
+    assert ("warning", "results.predicted.dlco") == (found.severity.value, found.path)
+    assert "GLI 2017 (TLCO, Caucasian)" in found.message
+
+
+def test_a_predicted_value_of_another_set_is_not_recomputed(tables: Tables):
+    """The same 15 % raise under a set that is not GLI-2017 is not compared: only GLI-2017 is recomputed."""
+    other = _variant("01-healthy-adult", _predicted_dlco_times(1.15, "ECSC 1993 (as the lab named it)"), tables)
+
+    assert "PREDICTED_NOT_FROM_CLAIMED_SET" not in _codes(other)
