@@ -46,9 +46,13 @@ def test_a_table_without_a_local_system_loads():
     assert Code("loinc", "19911-7", "Diffusion capacity.carbon monoxide") == table.codes["dlco"]
 
 
+# source: HL7 FHIR R4 terminology, "Using SNOMED CT with HL7 Standards": the SNOMED CT system URI
+SNOMED_URI = "http://snomed.info/sct"
+
+
 def test_the_bundled_table_names_no_local_system(tables: Tables):
     """The bundled codes.toml carries no local-system URI that nothing would read."""
-    assert {"loinc": LOINC_URI} == dict(tables.codes.systems)
+    assert {"loinc": LOINC_URI, "snomed": SNOMED_URI} == dict(tables.codes.systems)
     assert "local" in {code.system for code in tables.codes.codes.values()}
 
 
@@ -64,12 +68,12 @@ def test_a_table_without_loinc_is_refused():
     """LOINC's URI stays required: FHIR codings of LOINC codes need it."""
     text = WITHOUT_LOCAL.replace(f'loinc = "{LOINC_URI}"', "")
 
-    with pytest.raises(MappingError, match=r"^codes\.toml: systems: exactly the key loinc$"):
+    with pytest.raises(MappingError, match=r"^codes\.toml: systems: the key loinc, and of snomed those codes name$"):
         CodeTable.from_toml(text)
 
 
 def test_a_code_of_an_unknown_system_is_refused():
-    """Only loinc and local are systems a code may name."""
+    """Only the systems the table names, and local, are systems a code may name."""
     text = WITHOUT_LOCAL.replace('system = "local"', 'system = "snomed"')
 
     with pytest.raises(MappingError, match=r"^codes\.toml: codes\.va: system \(loinc or local\), code and display$"):
