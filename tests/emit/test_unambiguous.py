@@ -22,6 +22,7 @@ from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.parser import parse_message
 from pyspiro import GLI_2017
 
+from bridge.display.bundle_summary import describe_bundle
 from bridge.display.check_report import outcome_text
 from bridge.emit.settings import EmitSettings
 from bridge.pipeline import PipelineSettings, Route, process
@@ -326,3 +327,15 @@ def test_a_pressure_in_hpa_goes_out_at_its_own_step(tables: Tables):
 
     assert ("100.8", "kPa") == (str(pressure["valueQuantity"]["value"]), pressure["valueQuantity"]["code"])
     assert "100.8" == str(obx[5])
+
+
+def test_show_says_a_stated_absence(tables: Tables):
+    """show summarises an Observation without a value by its dataAbsentReason, not as a blank value."""
+    # source: FHIR R4 Observation.dataAbsentReason (obs-6: present only when value[x] is absent)
+    document = _document("01-healthy-adult")
+    document["patient"]["birth_date"] = "1939-06-01"  # 86 y: outside GLI-2017
+    bundle, _ = _outputs(document, tables)
+    lines = [line for line in describe_bundle(bundle).splitlines() if line.strip().startswith("19910-9")]
+
+    assert 1 == len(lines)
+    assert "no value (not-applicable)" in lines[0]
