@@ -201,6 +201,11 @@ class Predicted(Frozen):
     """Predicted values as the lab reported them, and the reference set they came from."""
 
     reference_set: Text | None = None
+    # True: the lab's predicted values (and limits) are already adjusted to the altitude of the
+    # test, so they are compared with the DLCO and KCO as measured there, never with the values
+    # adjusted to sea level (the adjustment is not applied twice). False (the default): they are
+    # sea-level values, like GLI-2017's.
+    altitude_adjusted: bool = False
     dlco: DiffusingCapacity | None = None
     kco: TransferCoefficient | None = None
     va: Volume | None = None
@@ -315,10 +320,14 @@ class Derived(Frozen):
     age_years: float
     kco: Quantity | None = None
     dlco_hb_adjusted: Quantity | None = None
-    # Adjusted to sea level (PIO2 150 mmHg) only when that differs from the measured value at
-    # its reported precision; per cent predicted then uses them.
+    # Adjusted to sea level (PIO2 150 mmHg) whenever a barometric pressure or an altitude is
+    # given, whatever the numbers; to standard Hb (Cotes) whenever there is an Hb factor; both
+    # when both apply. Each name is the key of the result that carries it (compared.basis_key).
     dlco_pressure_adjusted: Quantity | None = None
     kco_pressure_adjusted: Quantity | None = None
+    kco_hb_adjusted: Quantity | None = None
+    dlco_hb_pressure_adjusted: Quantity | None = None
+    kco_hb_pressure_adjusted: Quantity | None = None
     dlco_cohb_adjusted: Quantity | None = None
     dlco_from_manoeuvres: Quantity | None = None
     va_from_manoeuvres: Quantity | None = None
@@ -333,12 +342,17 @@ class Derived(Frozen):
     # Criteria the session grade does not rest on (no VC: "VI/VC not evaluated: no vital capacity").
     grade_not_evaluated: tuple[str, ...] = ()
     quality_caution: str | None = None
+    # Per cent of the lab's own predicted values, of the DLCO and KCO compared as ``lab_basis`` says.
     dlco_percent_predicted: Quantity | None = None
     kco_percent_predicted: Quantity | None = None
     va_percent_predicted: Quantity | None = None
-    # The value per cent predicted and the GLI-2017 z-scores of DLCO and KCO compare (None: no such result).
+    # The value per cent predicted and the GLI-2017 z-scores of DLCO and KCO compare (None: no such
+    # result); one basis for both (compared.compare).
     dlco_basis: ComparedBasis | None = None
     kco_basis: ComparedBasis | None = None
+    # The value the lab's own predicted values compare: the same, but as measured at altitude when
+    # the lab's predicted values are already altitude-adjusted (None: no predicted values from the lab).
+    lab_basis: ComparedBasis | None = None
     # Why the adjustment the site's reference_basis asks for could not be made (the measured value is compared).
     reference_basis_fallback: str | None = None
     # GLI-2017 reference values of the results (bridge.science.reference); None where there is no

@@ -216,6 +216,24 @@ def test_a_bad_repeatability_or_reference_basis_names_key_and_expected_values(te
     assert message == str(_error(text, environ))
 
 
+def test_charted_predicted_from_file_environment_and_flags():
+    """Whose predicted values are charted: the file's choice, the environment's over it, the flag's over both."""
+    text = '[emit]\ncharted_predicted = "lab"\n'
+    environ = {"DLCO_BRIDGE_EMIT_CHARTED_PREDICTED": "gli-2017"}
+
+    assert "lab" == parse_settings(text, {}).pipeline.emit.charted_predicted
+    assert "gli-2017" == parse_settings(text, environ).pipeline.emit.charted_predicted
+    assert "lab" == parse_settings(text, environ, {"emit.charted_predicted": "lab"}).pipeline.emit.charted_predicted
+    assert "gli-2017" == PipelineSettings().emit.charted_predicted  # the default: the bridge's GLI-2017 values
+
+
+def test_a_bad_charted_predicted_names_key_and_expected_values():
+    """One line: the file, the key, the values it may take and the value given."""
+    message = "site.toml: emit.charted_predicted: one of gli-2017, lab, got 'both'"
+
+    assert message == str(_error("", {"DLCO_BRIDGE_EMIT_CHARTED_PREDICTED": "both"}))
+
+
 def test_check_takes_the_repeatability_flag(capsys):
     """check --repeatability 2005 says the criterion beside the verdict (sample 06: trials 28.49 and 29.89)."""
     code = main(["check", str(ROOT / "samples" / "06-three-manoeuvres.json"), "--repeatability", "2005"])

@@ -10,6 +10,7 @@ from bridge import __version__
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
+from bridge.emit.settings import CHARTED_PREDICTED
 from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
@@ -78,6 +79,15 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: 
         help=f"FHIR: refer to the patient by identifier, or create it if absent "
         f"(key emit.patient_reference; default {site.patient_reference})",
     )
+    parser.add_argument(
+        "--charted-predicted",
+        dest="emit.charted_predicted",
+        choices=CHARTED_PREDICTED,
+        help="whose predicted values, per cent predicted and range are charted, one per quantity: the GLI-2017 "
+        "values computed by dlco-bridge or the lab's own; the other set is named in the notes; outside the "
+        "GLI-2017 equations' range their results are sent without a value, saying why "
+        f"(key emit.charted_predicted; default {site.charted_predicted})",
+    )
 
 
 def _add_map(parser: argparse.ArgumentParser) -> None:
@@ -130,7 +140,7 @@ _SETTING_FLAGS = (
     "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to", "map",
     "repeatability", "reference_basis",
     "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
-    "emit.receiving_facility", "emit.patient_reference",
+    "emit.receiving_facility", "emit.patient_reference", "emit.charted_predicted",
 )  # fmt: skip
 
 

@@ -17,7 +17,7 @@ from pathlib import Path
 from typing import Any
 
 from bridge.config.values import ValueChecker
-from bridge.emit.settings import HEMOGLOBIN_UNITS, EmitSettings
+from bridge.emit.settings import CHARTED_PREDICTED, HEMOGLOBIN_UNITS, EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind
 from bridge.pipeline import PipelineSettings
@@ -168,6 +168,9 @@ class SettingsReader(ValueChecker):
                 self.uri(f"emit.{key}", values[key])
         if "hemoglobin_unit" in values:
             self.choice("emit.hemoglobin_unit", values["hemoglobin_unit"], HEMOGLOBIN_UNITS)
+        self.choice(
+            "emit.charted_predicted", values.get("charted_predicted", defaults.charted_predicted), CHARTED_PREDICTED
+        )
         return EmitSettings(**values, lab_facilities=facilities)  # type: ignore[arg-type]
 
     def facilities(self, key: str, value: Any) -> tuple[tuple[str, str], ...]:

@@ -56,6 +56,9 @@ def _observation(resource: dict[str, Any]) -> str:
     quantity = resource.get("valueQuantity", {})
     unit = for_people(str(quantity.get("code", quantity.get("unit", ""))))  # people read the trade's spelling
     value = f"{quantity.get('value', '-')} {unit}".strip()
+    absent = [c.get("code") for c in resource.get("dataAbsentReason", {}).get("coding", [])]
+    if absent:  # a stated absence (FHIR R4 Observation.dataAbsentReason)
+        value = f"no value ({absent[0]})"
     flags = [c.get("code") for i in resource.get("interpretation", []) for c in i.get("coding", [])]
     low = next((r.get("low", {}) for r in resource.get("referenceRange", []) if "low" in r), None)
     parts = [f"{_code(resource):<52}", f"{value:<24}"]

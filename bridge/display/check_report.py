@@ -11,7 +11,7 @@ from typing import Any
 from pydantic import BaseModel
 
 from bridge.display.unit_text import for_people
-from bridge.model import Finding, Outcome, Quantity, ReferenceValue, Severity
+from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
 from bridge.science.units import UnitSystem
@@ -42,11 +42,17 @@ _DERIVED_LABELS = (
     ("dlco_cohb_adjusted", "DLCO adjusted for COHb"),
     ("dlco_pressure_adjusted", "DLCO adjusted to sea level"),
     ("kco_pressure_adjusted", "KCO adjusted to sea level"),
+    ("kco_hb_adjusted", "KCO adjusted to standard Hb"),
+    ("dlco_hb_pressure_adjusted", "DLCO adjusted to Hb, sea level"),
+    ("kco_hb_pressure_adjusted", "KCO adjusted to Hb, sea level"),
     ("dlco_from_manoeuvres", "DLCO from manoeuvre gas data"),
     ("va_from_manoeuvres", "VA from manoeuvre gas data"),
-    ("dlco_percent_predicted", "DLCO % of the lab's predicted"),
-    ("kco_percent_predicted", "KCO % of the lab's predicted"),
-    ("va_percent_predicted", "VA % of the lab's predicted"),
+)
+# Per cent of the lab's predicted values: each shown with the value it compares.
+_LAB_PERCENT_LABELS = (
+    ("dlco", "DLCO % of the lab's predicted"),
+    ("kco", "KCO % of the lab's predicted"),
+    ("va", "VA % of the lab's predicted"),
 )
 
 
@@ -79,10 +85,20 @@ def _row(label: str, quantity: Quantity | None, tables: Tables, units: UnitSyste
     return [] if quantity is None else [f"    {label:<32}{_text(quantity, tables, units)}"]
 
 
+def _lab_basis(outcome: Outcome, name: str) -> ComparedBasis:
+    """The value the lab's own predicted value of ``name`` is compared with."""
+    return (outcome.derived.lab_basis if name != "va" else None) or "measured"
+
+
 def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list[str]:
-    """GLI-2017 predicted, LLN, ULN, z-score and band of each result, the lab's own values beside them."""
+    """GLI-2017 predicted, LLN, ULN, z-score and band of each result, the lab's own values beside them.
+
+    Every comparison says in brackets which value it compares (measured, adjusted to sea level, ...).
+    """
     d, pred = outcome.derived, outcome.session.results.predicted
     lab_set = pred.reference_set or "reference set not stated" if pred is not None else None
+    if lab_set and pred is not None and pred.altitude_adjusted:
+        lab_set += ", predicted values adjusted to the altitude of the test"
     lines = ["  reference values (GLI-2017 computed by dlco-bridge" + (f"; the lab's: {lab_set})" if lab_set else ")")]
     for name, label in (("dlco", "DLCO"), ("kco", "KCO"), ("va", "VA")):
         ref: ReferenceValue | None = getattr(d, f"reference_{name}")
@@ -100,7 +116,8 @@ def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list
             parts += [f"LLN {_brief(lab_lln, tables, units)}"] if lab_lln is not None else []
             percent = getattr(d, f"{name}_percent_predicted")
             parts += [f"{percent.text()} %"] if percent is not None else []
-            lines.append(f"    {label + ' lab':<32}" + "  ".join(parts))
+            basis = f"  [{BASIS_WORDS[_lab_basis(outcome, name)]}]" if percent is not None else ""
+            lines.append(f"    {label + ' lab':<32}" + "  ".join(parts) + basis)
     if d.reference_not_computed is not None:
         lines.append(f"    GLI-2017 not computed: {d.reference_not_computed}")
     return lines if len(lines) > 1 else []
@@ -131,6 +148,10 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     lines.append("  recomputed by dlco-bridge")
     for name, label in _DERIVED_LABELS:
         lines += _row(label, getattr(d, name), tables, units)
+    for name, label in _LAB_PERCENT_LABELS:
+        percent = getattr(d, f"{name}_percent_predicted")
+        if percent is not None:
+            lines.append(f"    {label:<32}{percent.text()} %  [{BASIS_WORDS[_lab_basis(outcome, name)]}]")
     for m in d.manoeuvres:
         parts = [f"grade {m.grade}" + (f" ({'; '.join(m.grade_reasons)})" if m.grade_reasons else "")]
         if m.va is not None:

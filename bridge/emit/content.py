@@ -19,16 +19,19 @@ Flag = Literal["L", "H", "N"]
 
 @dataclass(frozen=True, slots=True)
 class Supporting:
-    """A blood value the export carried with the test (Hb, COHb): context for a result, never a result itself.
+    """A blood value the export carried with the test and a result was computed from (the Hb of the Hb adjustment).
 
-    The PFT lab did not measure it at the time of the test, so it is not emitted as an
-    observation of its own: FHIR carries it as a ``component`` of the result it qualifies,
-    HL7 v2 as an NTE after that result's OBX (see :func:`supporting_text`).
+    The PFT lab did not measure it at the time of the test and the export gives it no time of
+    its own, so it is never a result of its own (a stand-alone blood result timed at the test
+    would duplicate the blood lab's result in the chart): FHIR carries it as a contained
+    Observation of the result computed from it, named in that result's ``derivedFrom``
+    (``#hb``); HL7 v2 as an NTE after that result's OBX (see ``notes.supporting_text``).
     """
 
-    key: str  # "hemoglobin" or "carboxyhemoglobin"
+    key: str  # "hemoglobin"
     code: Code
     quantity: Quantity
+    local_id: str  # the contained resource's id in FHIR ("hb")
 
 
 @dataclass(frozen=True, slots=True)
@@ -37,17 +40,20 @@ class ResultItem:
 
     key: str  # stable key, e.g. "dlco"; also part of the observation identifier
     code: Code
-    quantity: Quantity
+    # None: a stated absence (``absent`` says why): the result is sent without a value, as FHIR
+    # dataAbsentReason and HL7 OBX-11 X, so the set of results never depends on the numbers.
+    quantity: Quantity | None
+    # The range and flag sit on the value they describe (the one per cent predicted and the
+    # z-score compare), never on another basis of the same quantity.
     low: Quantity | None = None  # lower limit of normal, same unit
     flag: Flag | None = None
     high: Quantity | None = None  # upper limit of normal (GLI-2017 only), same unit
     range_text: str | None = None  # what the range is and which reference set it comes from
-    # The lab's own lower limit from another reference set, kept beside the GLI-2017 range: (LLN, text).
-    other_ranges: tuple[tuple[Quantity, str], ...] = ()
     derived_from: tuple[str, ...] = ()
     computed_here: bool = False  # True: recomputed by the bridge, not reported by the lab
     notes: tuple[str, ...] = ()
-    supporting: tuple[Supporting, ...] = ()  # blood values that qualify this result (not results)
+    supporting: tuple[Supporting, ...] = ()  # blood values this result was computed from (not results)
+    absent: str | None = None  # why there is no value (with ``quantity`` None)
     # True: an ERROR finding the site allowed through (``allow``) concerns this value or one it
     # was derived from; the emitters then send it as preliminary, never as final.
     questionable: bool = False
@@ -59,6 +65,7 @@ class ReportContent:
 
     items: tuple[ResultItem, ...]
     notes: tuple[str, ...] = field(default=())
+    summary_key: str = "dlco"  # the DLCO result the reference range is on (the report's one-line summary)
 
     @property
     def questionable(self) -> bool:

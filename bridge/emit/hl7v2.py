@@ -41,8 +41,15 @@ Decisions:
   (XON.1 its name, XON.10 its facility id); PID-3 carries CX.5 the identifier type code
   (table 0203, ``emit.patient_identifier_type``, MR by default).
 * Blood values (Hb, COHb) are not results of the PFT order, so they get no OBX of their own
-  (OBX-11 has no status for "supporting data": table 0085): an NTE after the OBX of the result
-  they qualify carries each, saying so.
+  (OBX-11 has no status for "supporting data": table 0085; an OBX of the report would be filed
+  as a blood result timed at the test, duplicating the blood lab's): the Hb an adjusted value
+  used travels in an NTE after that value's OBX, the COHb in an NTE after the DLCO's.
+* A result the reference equations cannot give (a person outside their range) is an OBX
+  without a value (OBX-2 and OBX-5 empty) with OBX-11 X, "results cannot be obtained for this
+  observation" (table 0085), and the reason in the NTE after it: the set of OBX segments
+  depends on the inputs present, never on the numbers.
+* OBX-3 carries the standard code beside a local one as the CE's alternate identifier
+  (components 4-6, coding system SCT for SNOMED CT, table 0396); OBX-17 the technique (CE).
 * MSH-10 hashes the input's content, the test (lab and test id), the units, original or correction, and
   :data:`~bridge.emit.observations.OUTPUT_REVISION`: a resend is recognisable; a newer
   bridge's different output is not dropped as a duplicate.
@@ -81,7 +88,8 @@ PRELIMINARY = "P"  # HL7 tables 0085 (OBX-11) and 0123 (OBR-25): preliminary
 FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
 ELLIPSIS = "..."
 
-CODING_SYSTEMS = MappingProxyType({"loinc": "LN", "local": "L"})  # HL7 table 0396
+CODING_SYSTEMS = MappingProxyType({"loinc": "LN", "snomed": "SCT", "local": "L"})  # HL7 table 0396
+CANNOT_BE_OBTAINED = "X"  # HL7 table 0085 (OBX-11): results cannot be obtained for this observation
 UNIT_SYSTEM = "UCUM"
 SEX_CODES = MappingProxyType({Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"})  # HL7 table 0001
 COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
@@ -96,7 +104,7 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     is already at hand (another emitter built it), otherwise it is built here.
     """
     if content is None:
-        content = build_content(outcome, tables, context.units, context.hemoglobin_unit)
+        content = build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
     status = "C" if context.correction else "F"
     lab = outcome.session.lab.name
     key = "lab_facilities" if any(name == lab for name, _ in context.lab_facilities) else "sending_facility"
@@ -235,26 +243,33 @@ def _observations(content: ReportContent, status: str, observed: str, performer:
 
 
 def _obx(set_id: int, item: ResultItem, status: str, observed: str, performer: str) -> str:
+    """OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status (HL7 table
+    0085), -14 date/time of the observation, -17 method (CE), -23 performing organisation (XON).
+
+    OBX-4 stays empty: no code repeats under the OBR (build_content sends one result per code).
+    Without a value (a stated absence) OBX-2, -5 and -6 are empty and OBX-11 is X.
+    """
+    fields = [""] * 23
+    fields[0], fields[2], fields[13], fields[22] = str(set_id), _coded(item.code, item.key), observed, performer
+    if item.code.method is not None:
+        fields[16] = _coded(item.code.method, f"{item.key}.method")
     quantity, low_q = item.quantity, item.low
+    if quantity is None:
+        fields[10] = CANNOT_BE_OBTAINED
+        return "OBX|" + FIELD_SEPARATOR.join(fields)  # the last field is never empty: nothing to trim
     value = numeric_text(quantity.text())
     if len(value) > NM_LENGTH:
         raise InvalidField(item.key, f"a value of at most {NM_LENGTH} characters for HL7 NM, got {value}")
     unit = _unit_text(quantity.unit, item.key)
-    coded = _coded(item.code, item.key)
     # OBX-7 "LLN-ULN" when both limits are known (GLI-2017), ">LLN" for a lower limit alone; the
-    # reference set and the lab's own limit are named in the item's NTEs (build_content).
+    # reference set and the other set's values are named in the item's NTEs (build_content).
     if low_q is not None and item.high is not None:
         low = f"{numeric_text(low_q.text())}-{numeric_text(item.high.text())}"
     else:
         low = f">{numeric_text(low_q.text())}" if low_q is not None else ""
-    flag = item.flag or ""  # HL7 table 0078
-    # OBX-1 set id, -2 NM, -3 code, -5 value, -6 unit^unit^UCUM, -7 range, -8 flag, -11 status
-    # (HL7 table 0085), -14 date/time of the observation, -23 performing organisation (XON).
-    # Written out: the last field is never empty, so nothing would be trimmed (see _segment).
-    return (
-        f"OBX|{set_id}|NM|{coded}||{value}|{unit}^{unit}^{UNIT_SYSTEM}|{low}|{flag}|||{status}|||{observed}"
-        f"|||||||||{performer}"
-    )
+    fields[1], fields[4], fields[5], fields[6] = "NM", value, f"{unit}^{unit}^{UNIT_SYSTEM}", low
+    fields[7], fields[10] = item.flag or "", status  # HL7 table 0078; table 0085
+    return "OBX|" + FIELD_SEPARATOR.join(fields)
 
 
 def _ntes(notes: Iterable[str]) -> list[str]:
@@ -285,9 +300,14 @@ def _unit_text(unit: str, key: str) -> str:
 
 @cache
 def _coded(code: Code, key: str) -> str:
-    """CE: identifier^text^coding system (OBR-4, OBX-3)."""
+    """CE: identifier^text^coding system, then the standard code's as the alternate (OBR-4, OBX-3, OBX-17)."""
     identifier = _code_text(code.code, "codes.toml", f"codes.{key}.code")
-    return _components(identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system])
+    parts = [identifier, _free_text(code.display, ST_LENGTH), CODING_SYSTEMS[code.system]]
+    if code.standard is not None:
+        standard = code.standard
+        alternate = _code_text(standard.code, "codes.toml", f"codes.{key}.standard.code")
+        parts += [alternate, _free_text(standard.display, ST_LENGTH), CODING_SYSTEMS[standard.system]]
+    return _components(*parts)
 
 
 def _code_text(text: str, table: str, where: str) -> str:

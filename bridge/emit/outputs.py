@@ -69,7 +69,11 @@ def payloads(
     What is emitted (:func:`build_content`) is built once and rendered by each emitter.
     """
     built = []
-    content = build_content(outcome, tables, context.units, context.hemoglobin_unit) if kinds else None
+    content = (
+        build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
+        if kinds
+        else None
+    )
     if content is not None and not content.items:
         # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
         raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)

@@ -2,7 +2,8 @@
 
 Owns: :class:`EmitSettings` (sending and receiving application and facility, the facility id of
 each lab, the site's base URL for its own identifier and code systems, how the patient is
-referred to, the patient identifier type, the HL7 processing id, the haemoglobin unit) and
+referred to, the patient identifier type, the HL7 processing id, the haemoglobin unit, whose
+predicted values are charted) and
 :class:`EmitContext`, what an emitter is given for one message: these settings with the time
 the shell read, the destination's units and whether it is a correction. Checking the values
 is ``bridge.config``'s job when it reads them.
@@ -21,6 +22,11 @@ PatientReference = Literal["conditional-create", "identifier"]
 # ``.example``): every site sets ``emit.system_base`` to a URL it controls.
 DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
 HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
+# Whose predicted values are charted, one per quantity (the other set goes into the notes): the
+# GLI-2017 values computed by the bridge, or the lab's own as exported.
+ChartedPredicted = Literal["gli-2017", "lab"]
+CHARTED_PREDICTED: tuple[ChartedPredicted, ...] = ("gli-2017", "lab")
+DEFAULT_CHARTED_PREDICTED: ChartedPredicted = "gli-2017"
 
 
 @dataclass(frozen=True, slots=True)
@@ -39,6 +45,9 @@ class EmitSettings:
     # Haemoglobin is sent (and named in notes) in this unit, g/L or g/dL (HEMOGLOBIN_UNITS);
     # None: the unit system's display unit in mappings/units.toml.
     hemoglobin_unit: str | None = None
+    # Whose predicted value, per cent predicted and range are charted (CHARTED_PREDICTED); outside
+    # the GLI-2017 equations' range the GLI-2017 results are sent as a stated absence, not replaced.
+    charted_predicted: ChartedPredicted = DEFAULT_CHARTED_PREDICTED
 
     def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
         """The emitters' context for one message: these settings plus the time the shell read."""
@@ -58,6 +67,7 @@ class EmitSettings:
             lab_facilities=self.lab_facilities,
             patient_identifier_type=self.patient_identifier_type,
             hemoglobin_unit=self.hemoglobin_unit,
+            charted_predicted=self.charted_predicted,
         )
 
 
@@ -88,6 +98,7 @@ class EmitContext:
     lab_facilities: tuple[tuple[str, str], ...] = _SITE.lab_facilities
     patient_identifier_type: str = _SITE.patient_identifier_type
     hemoglobin_unit: str | None = _SITE.hemoglobin_unit
+    charted_predicted: ChartedPredicted = _SITE.charted_predicted
 
     @property
     def observation_system(self) -> str:

@@ -37,14 +37,49 @@ BASIS_WORDS: Mapping[ComparedBasis, str] = MappingProxyType(
 )
 
 
+# The key of a value compared on each basis: the Derived field that holds it and the key of the
+# result that carries it in the outputs (``dlco`` as measured, ``dlco_pressure_adjusted``, ...).
+_SUFFIX: Mapping[ComparedBasis, str] = MappingProxyType(
+    {
+        "measured": "",
+        "pressure_adjusted": "_pressure_adjusted",
+        "hb_adjusted": "_hb_adjusted",
+        "hb_and_pressure_adjusted": "_hb_pressure_adjusted",
+    }
+)
+# What is left of a basis when the predicted value it is compared with already allows for altitude.
+_AT_ALTITUDE: Mapping[ComparedBasis, ComparedBasis] = MappingProxyType(
+    {"pressure_adjusted": "measured", "hb_and_pressure_adjusted": "hb_adjusted"}
+)
+
+
+def basis_key(name: str, basis: ComparedBasis) -> str:
+    """``dlco`` compared as ``pressure_adjusted`` -> ``dlco_pressure_adjusted`` (see ``_SUFFIX``)."""
+    return name + _SUFFIX[basis]
+
+
+def at_altitude(basis: ComparedBasis) -> ComparedBasis:
+    """The basis without the adjustment to sea level: for a lab's predicted value already altitude-adjusted."""
+    return _AT_ALTITUDE.get(basis, basis)
+
+
 @dataclass(frozen=True, slots=True)
 class Candidates:
     """The values one result may be compared as (None where that value does not exist or does not apply)."""
 
     measured: Quantity | None
-    at_sea_level: Quantity | None  # only where the pressure adjustment applies
+    at_sea_level: Quantity | None  # whenever a pressure or an altitude is given
     hb_adjusted: Quantity | None  # only with an Hb factor
     hb_and_sea_level: Quantity | None  # only with both
+
+    def value(self, basis: ComparedBasis) -> Quantity | None:
+        """The value compared as ``basis``."""
+        return {
+            "measured": self.measured,
+            "pressure_adjusted": self.at_sea_level,
+            "hb_adjusted": self.hb_adjusted,
+            "hb_and_pressure_adjusted": self.hb_and_sea_level,
+        }[basis]
 
 
 @dataclass(frozen=True, slots=True)
@@ -58,31 +93,43 @@ class Compared:
     fallback: str | None  # why the asked adjustment could not be made
 
 
-def compare(basis: ReferenceBasis, dlco: Candidates, kco: Candidates, no_hb: str | None) -> Compared:
-    """The DLCO and KCO to compare as ``basis`` asks.
+def one_basis(asked: ReferenceBasis, has_pressure: bool, no_hb: str | None) -> tuple[ComparedBasis, str | None]:
+    """The one basis DLCO and KCO of a record are compared on, and why the asked one could not be had.
+
+    It depends on the setting and on which inputs the record has (a pressure or altitude, an Hb
+    factor), never on the values, so DLCO and KCO of one record always share it.
+    """
+    if asked == "pressure_adjusted":
+        return ("pressure_adjusted" if has_pressure else "measured"), None
+    if asked == "hb_adjusted":
+        if no_hb is not None:
+            return "measured", no_hb
+        return ("hb_and_pressure_adjusted" if has_pressure else "hb_adjusted"), None
+    return "measured", None
+
+
+def compare(
+    basis: ReferenceBasis, dlco: Candidates, kco: Candidates, no_hb: str | None, *, has_pressure: bool
+) -> Compared:
+    """The DLCO and KCO to compare as ``basis`` asks, both on one basis (:func:`one_basis`).
 
     ``no_hb``: why there is no Hb factor (None: there is one). With "hb_adjusted" and no factor the
     measured values are compared -- not the sea-level ones: the site asked for a comparison the
     record cannot give, and ``fallback`` says so rather than a silent half-adjustment. Without a
-    pressure or altitude, or where that adjustment does not change the value at its reported
-    precision, the pressure adjustment does not apply, silently.
+    pressure or altitude the pressure adjustment does not apply, silently.
     """
-    if basis == "hb_adjusted" and no_hb is not None:
-        something = dlco.measured is not None or kco.measured is not None
-        return Compared(*_chosen("measured", dlco), *_chosen("measured", kco), no_hb if something else None)
-    return Compared(*_chosen(basis, dlco), *_chosen(basis, kco), None)
+    chosen, fallback = one_basis(basis, has_pressure, no_hb)
+    something = dlco.measured is not None or kco.measured is not None
+    return Compared(*_chosen(chosen, dlco), *_chosen(chosen, kco), fallback if something else None)
 
 
-def _chosen(basis: ReferenceBasis, values: Candidates) -> tuple[Quantity | None, ComparedBasis | None]:
+def _chosen(basis: ComparedBasis, values: Candidates) -> tuple[Quantity | None, ComparedBasis | None]:
     if values.measured is None:
         return None, None
-    if basis == "pressure_adjusted" and values.at_sea_level is not None:
-        return values.at_sea_level, "pressure_adjusted"
-    if basis == "hb_adjusted" and values.hb_and_sea_level is not None:
-        return values.hb_and_sea_level, "hb_and_pressure_adjusted"
-    if basis == "hb_adjusted" and values.hb_adjusted is not None:
-        return values.hb_adjusted, "hb_adjusted"
-    return values.measured, "measured"
+    value = values.value(basis)
+    if value is None:  # an adjusted value that cannot be carried (an overflow): the measured one
+        return values.measured, "measured"
+    return value, basis
 
 
 def no_hb_adjustment(session: Session) -> str:

@@ -2,11 +2,13 @@
 
 Owns: turning the record's quantities into the plain numbers ``physiology`` and ``quality``
 work on, and their answers back into quantities (canonical units, see ``bridge.model``):
-KCO, Hb-, COHb- and pressure-adjusted DLCO, per-manoeuvre VA and DLCO from the gas data,
-grades and the reported mean (repeatable by the criterion the caller names), and the values
-DLCO and KCO may be compared as, from which ``bridge.science.compared`` chooses what the caller's
-``reference_basis`` names and computes the GLI-2017 reference values (the equations are
-``tables.reference``). Inputs must be normalised first. Pure.
+KCO, Hb-, COHb- and pressure-adjusted DLCO (and KCO), per-manoeuvre VA and DLCO from the gas
+data, grades and the reported mean (repeatable by the criterion the caller names), and the
+values DLCO and KCO may be compared as, from which ``bridge.science.compared`` chooses what the
+caller's ``reference_basis`` names and computes the GLI-2017 reference values (the equations are
+``tables.reference``). Which values exist depends on which inputs are present, never on the
+numbers: the value at sea level whenever a pressure or altitude is given. Inputs must be
+normalised first. Pure.
 """
 
 from __future__ import annotations
@@ -17,19 +19,20 @@ from dataclasses import dataclass
 from typing import Literal
 
 from bridge.model import (
+    ComparedBasis,
     Derived,
     Manoeuvre,
     ManoeuvreAssessment,
     Quantity,
     Session,
     Sex,
-    number_text,
 )
 from bridge.science import physiology as phys
 from bridge.science.compared import (
     DEFAULT_REFERENCE_BASIS,
     Candidates,
     ReferenceBasis,
+    at_altitude,
     compare,
     no_hb_adjustment,
     references,
@@ -42,7 +45,6 @@ from bridge.science.quality import (
     grade_manoeuvres,
     select_reported,
 )
-from bridge.science.units import UnitCatalogue
 from bridge.tables import Tables
 
 DeadSpaceSource = Literal["stated", "estimated", "unknown"]
@@ -97,9 +99,10 @@ def derive(
     gas = gas_conditions(session)
     measured = session.results.dlco
     pressure = _pressure_factor(session, gas)
-    dlco_at_sea_level = _adjusted(measured, pressure, tables.units)
-    kco_at_sea_level = _adjusted(session.results.kco, pressure, tables.units)
+    hb = hb_factor(session, age)
     kco = _kco(session)
+    dlco_values = _candidates(measured, hb, pressure)
+    kco_values = _candidates(session.results.kco or kco, hb, pressure)
     dlco_from: Quantity | None = None
     va_from: Quantity | None = None
     assessments: tuple[ManoeuvreAssessment, ...] = ()
@@ -122,24 +125,27 @@ def derive(
         not_evaluated = _not_evaluated(grades, selection.indices)
         dlco_from = _mean_of(computed, selection.indices, 1, DLCO_UNIT)
         va_from = _mean_of(computed, selection.indices, 0, "L")
-    hb = hb_factor(session, age)
     compared = compare(
         reference_basis,
-        _candidates(session.results.dlco, dlco_at_sea_level, hb, pressure),
-        _candidates(
-            session.results.kco or kco,
-            _kco_at_sea_level(session, kco, pressure, kco_at_sea_level, dlco_at_sea_level),
-            hb,
-            pressure,
-        ),
+        dlco_values,
+        kco_values,
         None if hb is not None else no_hb_adjustment(session),
+        has_pressure=pressure is not None,
     )
+    predicted = session.results.predicted
+    lab_basis: ComparedBasis | None = None
+    if predicted is not None:
+        basis = compared.dlco_basis or compared.kco_basis or "measured"
+        lab_basis = at_altitude(basis) if predicted.altitude_adjusted else basis
     return Derived(
         age_years=round(age, 2),
         kco=kco,
-        dlco_hb_adjusted=_scaled(measured, hb),
-        dlco_pressure_adjusted=dlco_at_sea_level,
-        kco_pressure_adjusted=kco_at_sea_level,
+        dlco_hb_adjusted=dlco_values.hb_adjusted,
+        dlco_pressure_adjusted=dlco_values.at_sea_level,
+        kco_pressure_adjusted=kco_values.at_sea_level,
+        kco_hb_adjusted=kco_values.hb_adjusted,
+        dlco_hb_pressure_adjusted=dlco_values.hb_and_sea_level,
+        kco_hb_pressure_adjusted=kco_values.hb_and_sea_level,
         dlco_cohb_adjusted=_scaled(measured, _cohb_factor(session)),
         dlco_from_manoeuvres=dlco_from,
         va_from_manoeuvres=va_from,
@@ -150,33 +156,21 @@ def derive(
         repeatable=selection.repeatable if selection else None,
         repeatability_criterion=repeatability if selection else None,
         quality_caution=selection.caution if selection else None,
-        dlco_percent_predicted=_percent(compared.dlco, _pred(session, "dlco")),
-        kco_percent_predicted=_percent(compared.kco if session.results.kco else None, _pred(session, "kco")),
+        dlco_percent_predicted=_percent(dlco_values.value(lab_basis) if lab_basis else None, _pred(session, "dlco")),
+        kco_percent_predicted=_percent(kco_values.value(lab_basis) if lab_basis else None, _pred(session, "kco")),
         va_percent_predicted=_percent(session.results.va, _pred(session, "va")),
         dlco_basis=compared.dlco_basis,
         kco_basis=compared.kco_basis,
+        lab_basis=lab_basis,
         reference_basis_fallback=compared.fallback,
         **references(session, age, tables.reference, compared),
     )
 
 
-def _candidates(
-    measured: Quantity | None, at_sea_level: Quantity | None, hb: float | None, pressure: float | None
-) -> Candidates:
-    """The values a result may be compared as; the sea-level ones only where the pressure adjustment applies."""
-    both = None
-    if hb is not None and pressure is not None and at_sea_level is not None:
-        both = _scaled(measured, hb * pressure)
-    return Candidates(measured, at_sea_level, _scaled(measured, hb), both)
-
-
-def _kco_at_sea_level(
-    session: Session, kco: Quantity | None, pressure: float | None, reported: Quantity | None, dlco: Quantity | None
-) -> Quantity | None:
-    """KCO at sea level: the reported KCO's (``reported``), else DLCO/VA computed here, adjusted when DLCO is."""
-    if session.results.kco is not None:
-        return reported
-    return _scaled(kco, pressure) if dlco is not None else None
+def _candidates(measured: Quantity | None, hb: float | None, pressure: float | None) -> Candidates:
+    """The values a result may be compared as: adjusted to sea level whenever there is a pressure factor."""
+    both = hb * pressure if hb is not None and pressure is not None else None
+    return Candidates(measured, _scaled(measured, pressure), _scaled(measured, hb), _scaled(measured, both))
 
 
 def _q(value: float, unit: str, decimals: int) -> Quantity | None:
@@ -335,29 +329,6 @@ def _cohb_factor(session: Session) -> float | None:
     if cohb is None or not 0 <= cohb.value < phys.COHB_FULL_PERCENT:
         return None
     return phys.cohb_adjustment_factor(cohb.value)
-
-
-def _adjusted(quantity: Quantity | None, factor: float | None, catalogue: UnitCatalogue) -> Quantity | None:
-    """The pressure-adjusted value; None when it equals the measured one at the reported precision.
-
-    The precision is the lab's: in the unit and with the digits it reported (24.8 mmol/min/kPa
-    at 760.6 mmHg stays 24.8), so a test near sea level gets no second, barely different value.
-    """
-    adjusted = _scaled(quantity, factor)
-    if quantity is None or adjusted is None:
-        return None
-    original = quantity.original
-    source = catalogue.resolve(original.unit) if original is not None else None
-    if original is not None and source is not None and source.dimension == catalogue.units[quantity.unit].dimension:
-        in_lab_unit = catalogue.convert(adjusted.value, quantity.unit, source.code)
-        same = number_text(in_lab_unit, _decimals_in(original.value)) == original.value
-    else:
-        same = number_text(adjusted.value, quantity.decimals) == quantity.text()
-    return None if same else adjusted
-
-
-def _decimals_in(text: str) -> int:
-    return len(text.partition(".")[2])
 
 
 def _scaled(quantity: Quantity | None, factor: float | None) -> Quantity | None:

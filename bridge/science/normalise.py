@@ -111,7 +111,13 @@ def in_canonical_unit(
 
 
 def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity:
-    """The quantity shown in ``unit``; the lab's own digits when it reported in that unit."""
+    """The quantity shown in ``unit``; the lab's own digits when it reported in that unit.
+
+    A value the lab reported in a third unit is converted from what the lab wrote, not from the
+    canonical value: each conversion rounds to a step no coarser than its source's (NIST SP 811
+    B.7.2), so going through the canonical unit could only add digits the lab never measured
+    (1008 hPa -> 756.1 mm[Hg] -> 100.80 kPa; from the lab's value, 100.8 kPa).
+    """
     if quantity.unit == unit:
         return quantity
     original = quantity.original
@@ -119,6 +125,10 @@ def express(quantity: Quantity, unit: str, catalogue: UnitCatalogue) -> Quantity
         source = catalogue.resolve(original.unit)
         if source is not None and source.code == unit:
             return Quantity(value=float(original.value), unit=unit, decimals=_decimals_in(original.value))
+        if source is not None and source.dimension == catalogue.units[unit].dimension:
+            factor = catalogue.factor_between(source.code, unit)
+            decimals = decimals_after_conversion(_decimals_in(original.value), factor)
+            return Quantity(value=float(original.value) * factor, unit=unit, decimals=decimals, original=original)
     factor = catalogue.factor_between(quantity.unit, unit)
     value = quantity.value * factor
     decimals = decimals_after_conversion(quantity.decimals, factor)

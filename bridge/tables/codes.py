@@ -1,4 +1,9 @@
-"""``mappings/codes.toml``: the code of each emitted quantity, the panel code, the code systems (pure)."""
+"""``mappings/codes.toml``: the code of each emitted quantity, the panel code, the code systems (pure).
+
+A code may carry the standard code of the same concept beside it (``[codes.x.standard]``: a
+SNOMED CT code beside a local one) and the technique it was measured by (``method``, a name in
+``[methods]``: FHIR ``Observation.method``, HL7 v2 OBX-17).
+"""
 
 from __future__ import annotations
 
@@ -14,13 +19,23 @@ from bridge.tables.toml import read_toml
 _KEY = re.compile(r"[a-z][a-z0-9_]*")
 
 
+# The published code systems a table may name (besides "local", whose URI the site's settings give).
+KNOWN_SYSTEMS = ("loinc", "snomed")
+
+
 @dataclass(frozen=True, slots=True)
 class Code:
-    """One coded concept: ``system`` is "loinc" or "local" (resolved per destination)."""
+    """One coded concept: ``system`` is "loinc", "snomed" or "local" (resolved per destination).
+
+    ``standard``: the same concept in a published system, sent beside a local code; ``method``:
+    the technique of the measurement.
+    """
 
     system: str
     code: str
     display: str
+    standard: Code | None = None
+    method: Code | None = None
 
 
 @dataclass(frozen=True, slots=True)
@@ -41,18 +56,47 @@ class CodeTable:
         systems = dict(data.get("systems", {}))
         if "local" in systems:
             raise MappingError(name, "systems.local", "no entry (emit.local_code_system or emit.system_base names it)")
-        if set(systems) != {"loinc"}:
-            raise MappingError(name, "systems", "exactly the key loinc")
+        if "loinc" not in systems or not set(systems) <= set(KNOWN_SYSTEMS):
+            raise MappingError(
+                name, "systems", f"the key loinc, and of {', '.join(KNOWN_SYSTEMS[1:])} those codes name"
+            )
         names = (*systems, "local")  # a local code's URI comes from the site's settings
-        codes = {key: _code(name, f"codes.{key}", entry, names) for key, entry in data.get("codes", {}).items()}
-        for key in codes:
+        published = tuple(systems)  # a standard code or a method is never local
+        methods = {
+            key: _code(name, f"methods.{key}", entry, published) for key, entry in data.get("methods", {}).items()
+        }
+        codes = {}
+        for key, entry in data.get("codes", {}).items():
+            where = f"codes.{key}"
             if not _KEY.fullmatch(key):
-                raise MappingError(name, f"codes.{key}", "a key of lower-case letters, digits and underscores")
+                raise MappingError(name, where, "a key of lower-case letters, digits and underscores")
+            standard = entry.get("standard")
+            method = entry.get("method")
+            if method is not None and method not in methods:
+                raise MappingError(name, f"{where}.method", f"a name in [methods] ({', '.join(methods) or 'none'})")
+            codes[key] = _code(
+                name,
+                where,
+                entry,
+                names,
+                standard=_code(name, f"{where}.standard", standard, published) if standard is not None else None,
+                method=methods[method] if method is not None else None,
+            )
         return cls(codes, _code(name, "panel", data.get("panel", {}), names), systems)
 
 
-def _code(name: str, where: str, entry: Mapping[str, object], systems: tuple[str, ...]) -> Code:
+def _code(
+    name: str,
+    where: str,
+    entry: Mapping[str, object],
+    systems: tuple[str, ...],
+    *,
+    standard: Code | None = None,
+    method: Code | None = None,
+) -> Code:
+    if not isinstance(entry, Mapping):
+        raise MappingError(name, where, f"a table of system ({' or '.join(systems)}), code and display")
     system, code, display = entry.get("system"), entry.get("code"), entry.get("display")
     if system not in systems or not isinstance(code, str) or not code or not isinstance(display, str):
         raise MappingError(name, where, f"system ({' or '.join(systems)}), code and display")
-    return Code(str(system), code, display)
+    return Code(str(system), code, display, standard, method)

@@ -114,16 +114,6 @@ def test_percent_predicted_uses_the_sea_level_value(sample_outcomes):
     assert "4.64" == derived.kco_pressure_adjusted.text()
 
 
-def test_sea_level_test_gets_no_second_dlco(sample_outcomes):
-    """Sample 07 at 760.6 mmHg: the adjusted DLCO equals the reported 24.8 at its precision, so none is derived."""
-    # source: ERS/ATS 2017 DLCO standard, PIO2 = 0.21 (PB - 47). Hand computation: 101.4 kPa x 7.50062
-    #   = 760.56 mmHg; 0.21 x (760.56 - 47) = 149.848; 1 + 0.0031 x (149.848 - 150) = 0.999529;
-    #   24.8 x 0.999529 = 24.788 -> 24.8, the reported value (today's 0.2093 gave 74.1 -> 73.9 mL/min/mmHg)
-    derived = sample_outcomes["07-unit-mislabel"].derived
-
-    assert None is derived.dlco_pressure_adjusted
-
-
 def test_raised_cohb(sample_outcomes):
     """COHb 8.5 % is flagged with the adjusted DLCO."""
     outcome = sample_outcomes["04-raised-cohb"]

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+from pathlib import Path
 from urllib.parse import quote
 
 import pytest
@@ -46,9 +48,13 @@ def test_a_table_without_a_local_system_loads():
     assert Code("loinc", "19911-7", "Diffusion capacity.carbon monoxide") == table.codes["dlco"]
 
 
+# source: HL7 FHIR R4 terminology, "Using SNOMED CT with HL7 Standards": the SNOMED CT system URI
+SNOMED_URI = "http://snomed.info/sct"
+
+
 def test_the_bundled_table_names_no_local_system(tables: Tables):
     """The bundled codes.toml carries no local-system URI that nothing would read."""
-    assert {"loinc": LOINC_URI} == dict(tables.codes.systems)
+    assert {"loinc": LOINC_URI, "snomed": SNOMED_URI} == dict(tables.codes.systems)
     assert "local" in {code.system for code in tables.codes.codes.values()}
 
 
@@ -64,12 +70,12 @@ def test_a_table_without_loinc_is_refused():
     """LOINC's URI stays required: FHIR codings of LOINC codes need it."""
     text = WITHOUT_LOCAL.replace(f'loinc = "{LOINC_URI}"', "")
 
-    with pytest.raises(MappingError, match=r"^codes\.toml: systems: exactly the key loinc$"):
+    with pytest.raises(MappingError, match=r"^codes\.toml: systems: the key loinc, and of snomed those codes name$"):
         CodeTable.from_toml(text)
 
 
 def test_a_code_of_an_unknown_system_is_refused():
-    """Only loinc and local are systems a code may name."""
+    """Only the systems the table names, and local, are systems a code may name."""
     text = WITHOUT_LOCAL.replace('system = "local"', 'system = "snomed"')
 
     with pytest.raises(MappingError, match=r"^codes\.toml: codes\.va: system \(loinc or local\), code and display$"):
@@ -99,3 +105,61 @@ def test_every_key_the_table_admits_needs_no_encoding_in_a_fhir_search(key: str)
     assert key in table.codes
     assert key == quote(key, safe="")
     assert not set(key) & set("\\|,$")
+
+
+# ---------- standard codes beside local ones, and methods (issue 28, item 5) ----------
+
+WITH_STANDARD = (
+    WITHOUT_LOCAL.replace(f'loinc = "{LOINC_URI}"', f'loinc = "{LOINC_URI}"\nsnomed = "http://snomed.info/sct"')
+    + """
+method = "single_breath"
+
+[codes.va.standard]
+system = "snomed"
+code = "251953007"
+display = "Alveolar volume"
+
+[methods.single_breath]
+system = "snomed"
+code = "264284001"
+display = "Single-breath technique"
+"""
+)
+
+
+def test_a_standard_code_and_a_method_load_with_their_code():
+    """[codes.va.standard] and method = "single_breath" ([methods]) travel with the local VA code."""
+    # source: PFT IG AlveolarVolume.fsh (SNOMED CT 251953007); MII ValueSet mii-vs-lufu-sct-technique (264284001)
+    va = CodeTable.from_toml(WITH_STANDARD).codes["va"]
+
+    assert Code("snomed", "251953007", "Alveolar volume") == va.standard
+    assert Code("snomed", "264284001", "Single-breath technique") == va.method
+
+
+def test_an_unknown_method_is_refused_naming_the_methods():
+    """A method must be a name in [methods]."""
+    text = WITH_STANDARD.replace('method = "single_breath"', 'method = "rebreathing"')
+
+    with pytest.raises(
+        MappingError, match=r"^codes\.toml: codes\.va\.method: a name in \[methods\] \(single_breath\)$"
+    ):
+        CodeTable.from_toml(text)
+
+
+def test_a_standard_code_is_never_local():
+    """The code beside a local one is a published one: a local "standard" is refused."""
+    text = WITH_STANDARD.replace('[codes.va.standard]\nsystem = "snomed"', '[codes.va.standard]\nsystem = "local"')
+
+    with pytest.raises(MappingError, match=r"^codes\.toml: codes\.va\.standard: system \(loinc or snomed\)"):
+        CodeTable.from_toml(text)
+
+
+def test_every_published_code_of_the_bundled_table_names_its_source():
+    """Each LOINC or SNOMED CT entry of mappings/codes.toml has a "source:" comment in its table."""
+    text = (Path(__file__).resolve().parents[2] / "mappings" / "codes.toml").read_text(encoding="utf-8")
+    tables = re.split(r"\n(?=\[)", text)
+    published = [t for t in tables if re.search(r'^system = "(loinc|snomed)"', t, re.MULTILINE)]
+    unsourced = [t.splitlines()[0] for t in published if "# source:" not in t]
+
+    assert len(published) > 10
+    assert [] == unsourced

@@ -208,8 +208,8 @@ def test_loinc_codes_of_the_main_quantities(fhir_outcomes, fhir_tables):
         "kco": "19916-6",
         "dlco_hb_adjusted": "19913-3",
     }.items() <= (_codes_by_key(anaemic).items())
-    assert ["718-7"] == [c["code"]["coding"][0]["code"] for c in _observation(anaemic, "dlco_hb_adjusted")["component"]]
-    assert ["718-7", "20563-3"] == [c["code"]["coding"][0]["code"] for c in _observation(cohb, "dlco")["component"]]
+    assert ["718-7"] == [c["code"]["coding"][0]["code"] for c in _observation(anaemic, "dlco_hb_adjusted")["contained"]]
+    assert any("(20563-3)" in n["text"] for n in _observation(cohb, "dlco")["note"])
     assert panel == [{"system": LOINC, "code": "81458-2", "display": "Pulmonary function test panel"}]
 
 
@@ -217,16 +217,14 @@ def test_categories_and_interpretation(fhir_outcomes, fhir_tables):
     """Observations carry observation-category and v2-0074 PF; the flag becomes a v3 interpretation."""
     # source: HL7 Terminology CodeSystems observation-category ("procedure") and v2-0074 ("PF" Pulmonary Function)
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, GOLDEN_CONTEXT)
-    dlco = _observation(bundle, "dlco")
+    dlco = _observation(bundle, "dlco_pressure_adjusted")  # sample 01 gives a pressure: compared at sea level
     categories = [c["coding"][0]["code"] for c in dlco["category"]]
 
     assert categories == ["procedure", "PF"]
     assert dlco["interpretation"][0]["coding"][0]["code"] == "N"
-    # GLI-2017 LLN-ULN first, the lab's own LLN (another reference set) beside it
-    assert [r["text"] for r in dlco["referenceRange"]] == [
-        "GLI-2017 LLN-ULN (5th-95th percentile)",
-        "LLN (5th percentile), GLI 2017 (TLCO, Caucasian)",
-    ]
+    # the charted set's range only (GLI-2017 by default); the lab's own LLN is in a note
+    assert [r["text"] for r in dlco["referenceRange"]] == ["GLI-2017 LLN-ULN (5th-95th percentile)"]
+    assert any(n["text"].startswith("The lab's reference values") for n in dlco["note"])
 
 
 def _observation(bundle: dict[str, Any], key: str) -> dict[str, Any]:
@@ -413,12 +411,15 @@ def test_provenance_names_the_source_hash_and_targets_every_entry(fhir_outcomes,
 
 
 def test_derived_from_points_at_sibling_entries(fhir_bundles):
-    """Every derivedFrom and DiagnosticReport.result reference resolves to a fullUrl in the Bundle."""
+    """Every derivedFrom and DiagnosticReport.result reference resolves to a fullUrl or a contained resource."""
+    # source: FHIR R4 references.html, "Contained Resources": a reference "#id" names a resource
+    # contained in the same resource
     missing = [
         ref
         for b in fhir_bundles
-        for ref in evaluate(b, "Bundle.entry.resource.select(derivedFrom | result | target).reference", [])
-        if ref not in {e["fullUrl"] for e in b["entry"]}
+        for e in b["entry"]
+        for ref in evaluate(e["resource"], "select(derivedFrom | result | target).reference", [])
+        if ref not in {e["fullUrl"] for e in b["entry"]} | _contained_refs(e["resource"])
     ]
     derived = [len(evaluate(b, "Bundle.entry.resource.derivedFrom", [])) for b in fhir_bundles]
 
@@ -435,11 +436,13 @@ def test_computed_values_say_so(fhir_outcomes, fhir_tables):
 
 
 def test_report_conclusion_carries_summary_and_notes(fhir_outcomes, fhir_tables):
-    """DiagnosticReport.conclusion is a summary line followed by the report notes."""
+    """DiagnosticReport.conclusion is a summary line (the DLCO the range sits on) followed by the report notes."""
     bundle = to_bundle(fhir_outcomes["06-three-manoeuvres"], fhir_tables, GOLDEN_CONTEXT)
     lines = _resources(bundle, "DiagnosticReport")[0]["conclusion"].splitlines()
 
-    assert lines[0].startswith("DLCO 9.77 mmol/min/kPa")
+    # sample 06 gives a pressure: the GLI-2017 range sits on the DLCO adjusted to sea level
+    assert lines[0].startswith("DLCO adjusted to standard barometric pressure ")
+    assert "lower limit of normal" in lines[0]
     assert lines[1] == "Test quality grade A (3 manoeuvres)."
     assert any("MANOEUVRE_NOT_ACCEPTABLE" in line for line in lines)
 
@@ -474,7 +477,9 @@ def test_ndjson_one_resource_per_line_with_resolvable_references(fhir_outcomes, 
     files = to_ndjson(outcomes, fhir_tables, GOLDEN_CONTEXT)
     resources = {kind: [json.loads(line) for line in data.splitlines()] for kind, data in files.items()}
     ids = {f"{kind}/{r['id']}" for kind, rows in resources.items() for r in rows}
-    refs = {ref for rows in resources.values() for ref in _references(rows)}
+    refs = {ref for rows in resources.values() for ref in _references(rows) if not ref.startswith("#")}
+    # source: FHIR R4 references.html, "Contained Resources": "#id" resolves inside the same resource
+    local = [(ref, _contained_refs(r)) for rows in resources.values() for r in rows for ref in _references([r])]
 
     assert list(files) == ["DiagnosticReport", "Observation", "Patient", "Provenance"]
     assert all(data.endswith(b"\n") and b"\n\n" not in data for data in files.values())
@@ -484,7 +489,13 @@ def test_ndjson_one_resource_per_line_with_resolvable_references(fhir_outcomes, 
         len(resources["Provenance"]),
     ) == (2, 2, 2)
     assert set() == refs - ids
+    assert [] == [ref for ref, contained in local if ref.startswith("#") and ref not in contained]
     assert {r["resourceType"] for r in resources["Observation"]} == {"Observation"}
+
+
+def _contained_refs(resource: dict[str, Any]) -> set[str]:
+    """The local references ("#id") that resolve to a resource contained in ``resource``."""
+    return {f"#{c['id']}" for c in resource.get("contained", [])}
 
 
 def _references(node: Any) -> Iterator[str]:
@@ -530,15 +541,19 @@ def test_every_reference_resolves_on_a_server(fhir_bundles):
     # source: FHIR R4 bundle.html, "Resolving references in Bundles" (a reference matches an entry's
     # fullUrl); http.html#trules, "Conditional References" (Type?search, resolved by the server in a
     # transaction); references.html: a Reference.identifier alone is a logical reference not resolved
+    # references.html, "Contained Resources": "#id" names a resource contained in the same resource
     unresolved = []
     for bundle in fhir_bundles:
         urls = {e["fullUrl"] for e in bundle["entry"]}
-        for node in _references_with_targets(bundle):
-            ref = node.get("reference")
-            if ref is None and "display" in node and "identifier" not in node:
-                continue  # a display-only reference (performer, Provenance agent): names, points nowhere
-            if ref is None or not (ref in urls or (_CONDITIONAL.fullmatch(ref) and ref.startswith("Patient?"))):
-                unresolved.append(node)
+        for entry in bundle["entry"]:
+            local = _contained_refs(entry["resource"])
+            for node in _references_with_targets(entry["resource"]):
+                ref = node.get("reference")
+                if ref is None and "display" in node and "identifier" not in node:
+                    continue  # a display-only reference (performer, Provenance agent): names, points nowhere
+                conditional = ref is not None and _CONDITIONAL.fullmatch(ref) and ref.startswith("Patient?")
+                if ref is None or not (ref in urls or ref in local or conditional):
+                    unresolved.append(node)
 
     assert [] == unresolved
 
@@ -588,26 +603,24 @@ def test_the_site_base_names_every_own_system(fhir_outcomes, fhir_tables):
 # ---------- blood values (issue 8, item 11) ----------
 
 
-def test_blood_values_are_components_not_observations(fhir_outcomes, fhir_tables, fhir_validators):
-    """Hb is a component of the DLCO and Hb-adjusted Observations, not an Observation of the PFT lab."""
-    # source: FHIR R4 observation.html, Observation.component ("results ... that are not separable"
-    # from the observation); derivedFrom only to a resource that exists (none: the export names no Hb result)
+def test_blood_values_are_contained_in_what_used_them(fhir_outcomes, fhir_tables, fhir_validators):
+    """The Hb an adjusted DLCO used is a contained Observation it names in derivedFrom (#hb); no component, no entry."""
+    # source: FHIR R4 observation.html, Observation.component: parts of one observation sharing its
+    # subject and time (a blood haemoglobin is not); resource.html, Resource.contained and
+    # references.html "Contained Resources" (a contained resource is referred to as "#id", dom-3)
     bundle = to_bundle(fhir_outcomes["02-anaemic-patient"], fhir_tables, GOLDEN_CONTEXT)
-    codes = {c for o in _resources(bundle, "Observation") for c in evaluate(o, "Observation.code.coding.code", [])}
-    component = {
-        "code": {
-            "coding": [{"system": LOINC, "code": "718-7", "display": "Hemoglobin [Mass/volume] in Blood"}],
-            "text": "Hemoglobin [Mass/volume] in Blood",
-        },
-        # samples/02-anaemic-patient.json: 8.9 g/dl
-        "valueQuantity": {"value": Decimal("8.9"), "unit": "g/dL", "system": UCUM, "code": "g/dL"},
-    }
+    entries = {c for o in _resources(bundle, "Observation") for c in evaluate(o, "Observation.code.coding.code", [])}
     adjusted = _observation(bundle, "dlco_hb_adjusted")
+    (hb,) = adjusted["contained"]
 
-    assert set() == codes & {"718-7", "20563-3"}  # source: LOINC 718-7 Hb, 20563-3 COHb
-    assert [component] == _observation(bundle, "dlco")["component"]
-    assert [component] == adjusted["component"]
-    assert [{"reference": _entry_url(bundle, "dlco")}] == adjusted["derivedFrom"]
+    assert set() == entries & {"718-7", "20563-3"}  # source: LOINC 718-7 Hb, 20563-3 COHb
+    assert [] == [o for o in _resources(bundle, "Observation") if "component" in o]
+    assert ("hb", "718-7") == (hb["id"], hb["code"]["coding"][0]["code"])
+    # samples/02-anaemic-patient.json: 8.9 g/dl
+    assert {"value": Decimal("8.9"), "unit": "g/dL", "system": UCUM, "code": "g/dL"} == hb["valueQuantity"]
+    assert "effectiveDateTime" not in hb  # the export gives the Hb no time of its own
+    assert [{"reference": _entry_url(bundle, "dlco")}, {"reference": "#hb"}] == adjusted["derivedFrom"]
+    assert "contained" not in _observation(bundle, "dlco")  # the measured DLCO used no Hb
     assert [] == _errors(fhir_validators["Observation"], adjusted)
 
 

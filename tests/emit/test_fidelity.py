@@ -83,10 +83,10 @@ def test_bridge_hb_adjusted_dlco_replaces_the_labs_wrong_value(tables: Tables):
     obx, ntes = _obx_and_ntes(message, "19913-3")
 
     assert 19.6 == adjusted["valueQuantity"]["value"]
-    # Hb is a blood result carried as a component of the value it qualifies, not an Observation of
-    # this test (FHIR R4 Observation.component); derivedFrom names the DLCO Observation.
-    assert {_full_url(bundle, "19911-7")} == {r["reference"] for r in adjusted["derivedFrom"]}
-    hb = [c for c in adjusted["component"] if c["code"]["coding"][0]["code"] == "718-7"]  # source: LOINC 718-7
+    # Hb is a blood result the adjustment used, contained in the adjusted value and named in its
+    # derivedFrom beside the DLCO Observation (FHIR R4 Resource.contained, references "#id").
+    assert {_full_url(bundle, "19911-7"), "#hb"} == {r["reference"] for r in adjusted["derivedFrom"]}
+    hb = [c for c in adjusted["contained"] if c["code"]["coding"][0]["code"] == "718-7"]  # source: LOINC 718-7
     assert [11.2] == [c["valueQuantity"]["value"] for c in hb]
     assert any("dlco-bridge" in n["text"] and "15.5" in n["text"] for n in adjusted["note"])
     assert any("HB_ADJUSTMENT_WRONG_DIRECTION" in n["text"] for n in adjusted["note"])
@@ -108,17 +108,18 @@ def test_bridge_hb_adjusted_dlco_is_emitted_whenever_hb_is_known(tables: Tables)
 
 
 def test_altitude_percent_predicted_in_both_outputs(tables: Tables):
-    """Sample 03 at 615 mmHg: DLCO and KCO per cent predicted are 100 and 97 (sea-level values), not 110 and 107."""
+    """Sample 03 at 615 mmHg, the lab's values charted: DLCO and KCO 100 and 97 % (at sea level), not 110 and 107."""
     # source: ERS/ATS 2017 DLCO standard (measured value adjusted to sea level before comparison;
     #   PIO2 = 0.21 (PB - 47)). Hand computation: 1 + 0.0031 x (0.21 x 568 - 150) = 0.904768;
     #   DLCO 36.4 x 0.904768 / 33.0 = 99.8 % -> 100; KCO 5.13 x 0.904768 / 4.79 = 96.9 % -> 97
-    bundle, message = _outputs("03-high-altitude.json", tables, PipelineSettings())
+    settings = PipelineSettings(emit=EmitSettings(charted_predicted="lab"))
+    bundle, message = _outputs("03-high-altitude.json", tables, settings)
 
-    # source: LOINC 98130-8 (DLCO/predicted) and 98203-3 (KCO/predicted); the lab's come after GLI-2017's
-    assert 100 == _observation(bundle, "98130-8", which=1)["valueQuantity"]["value"]
-    assert 97 == _observation(bundle, "98203-3", which=1)["valueQuantity"]["value"]
-    assert "100" == str(_obx_and_ntes(message, "98130-8", which=1)[0][5])
-    assert "97" == str(_obx_and_ntes(message, "98203-3", which=1)[0][5])
+    # source: LOINC 98130-8 (DLCO/predicted) and 98203-3 (KCO/predicted): one of each, the lab's
+    assert 100 == _observation(bundle, "98130-8")["valueQuantity"]["value"]
+    assert 97 == _observation(bundle, "98203-3")["valueQuantity"]["value"]
+    assert "100" == str(_obx_and_ntes(message, "98130-8")[0][5])
+    assert "97" == str(_obx_and_ntes(message, "98203-3")[0][5])
 
 
 def test_si_dlco_keeps_its_resolution_in_traditional_outputs(tables: Tables):
@@ -156,11 +157,11 @@ def test_haemoglobin_goes_out_in_the_unit_the_site_chose(tables: Tables, unit: s
     # source: 1 g/dL = 10 g/L (SI prefixes); LOINC 718-7 haemoglobin mass/volume; UCUM g/L, g/dL
     settings = PipelineSettings(emit=EmitSettings(hemoglobin_unit=unit))
     bundle, message = _outputs("04-raised-cohb.json", tables, settings, SI)
-    # Hb travels as a component of the DLCO it qualifies (FHIR R4 Observation.component) and as
-    # the NTE after the DLCO's OBX in HL7, in the unit the site chose.
-    dlco = _observation(bundle, "19911-7")  # source: LOINC 19911-7 DLCO
-    hb = [c["valueQuantity"] for c in dlco["component"] if c["code"]["coding"][0]["code"] == "718-7"]
-    _, ntes = _obx_and_ntes(message, "19911-7")
+    # Hb travels contained in the DLCO adjusted with it (FHIR R4 Resource.contained) and as the
+    # NTE after that value's OBX in HL7, in the unit the site chose.
+    adjusted = _observation(bundle, "19913-3")  # source: LOINC 19913-3 DLCO adjusted for hemoglobin
+    hb = [c["valueQuantity"] for c in adjusted["contained"] if c["code"]["coding"][0]["code"] == "718-7"]
+    _, ntes = _obx_and_ntes(message, "19913-3")
 
     assert [(expected, unit)] == [(q["value"], q["code"]) for q in hb]
     assert any(f"{expected} {unit} (718-7)" in text for text in ntes)
