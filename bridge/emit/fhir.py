@@ -35,7 +35,7 @@ import orjson
 
 from bridge.emit.content import ReportContent, ResultItem
 from bridge.emit.fhir_references import full_url, token, token_part, token_query
-from bridge.emit.identifiers import code_system_uri, observation_identifier
+from bridge.emit.identifiers import code_system_uri, observation_identifier, session_identifier
 from bridge.emit.notes import BRIDGE_NAME
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
@@ -85,7 +85,7 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
         entries.append(parts.entry(full_urls[item.key], resource, "Observation", item.key))
     report = _report(parts, content, tables, context, [full_urls[i.key] for i in content.items])
     entries.append(parts.entry(parts.full_url("report"), report, "DiagnosticReport", "report"))
-    entries.append(_provenance_entry(outcome, context.source_system, parts, [e["fullUrl"] for e in entries]))
+    entries.append(_provenance_entry(outcome, context, parts, [e["fullUrl"] for e in entries]))
     return {"resourceType": "Bundle", "type": "transaction", "entry": entries}
 
 
@@ -331,8 +331,18 @@ def _patient_entry(patient: Patient) -> Resource:
 # ---------- Provenance ----------
 
 
-def _provenance_entry(outcome: Outcome, source_system: str, parts: _Parts, targets: list[str]) -> Resource:
-    value = f"sha256:{outcome.source_sha256}"
+def _provenance_entry(outcome: Outcome, context: EmitContext, parts: _Parts, targets: list[str]) -> Resource:
+    """The Provenance of one session: its entries as targets, the source file and the session as entities.
+
+    Keyed on the session (the file's SHA-256 with the lab and test id), not on the file alone: a
+    file read through a field map holds many sessions, and each gets its own Provenance naming
+    its own resources (FHIR R4 Provenance: ``target`` the resources the activity produced;
+    ``entity`` what it used). The file's entity keeps the plain hash, so a search by the file's
+    hash finds every session's Provenance.
+    """
+    file_value = f"sha256:{outcome.source_sha256}"
+    session_value = session_identifier(outcome)
+    session_system = context.session_system
     resource: Resource = {
         "resourceType": "Provenance",
         "target": [{"reference": url} for url in targets],
@@ -346,16 +356,26 @@ def _provenance_entry(outcome: Outcome, source_system: str, parts: _Parts, targe
         "entity": [
             {
                 "role": "source",
-                "what": {"identifier": {"system": source_system, "value": value}, "display": outcome.source},
-            }
+                "what": {
+                    "identifier": {"system": context.source_system, "value": file_value},
+                    "display": outcome.source,
+                },
+            },
+            {
+                "role": "source",
+                "what": {
+                    "identifier": {"system": session_system, "value": session_value},
+                    "display": f"{outcome.source}, test {outcome.session.test_id}",
+                },
+            },
         ],
     }
     request = {
         "method": "POST",
         "url": "Provenance",
-        "ifNoneExist": "entity:identifier=" + token(source_system, value),
+        "ifNoneExist": "entity:identifier=" + token(session_system, session_value),
     }
-    return {"fullUrl": full_url(source_system, value), "resource": resource, "request": request}
+    return {"fullUrl": full_url(session_system, session_value), "resource": resource, "request": request}
 
 
 _PRELIMINARY = "preliminary"

@@ -104,6 +104,11 @@ class EmitContext:
         """Identifier system of an input file's SHA-256 (FHIR Provenance.entity)."""
         return f"{self.system_base}/source-file"
 
+    @property
+    def session_system(self) -> str:
+        """Identifier system of one session of an input file (FHIR Provenance.entity, its conditional key)."""
+        return f"{self.system_base}/source-session"
+
     def facility_of(self, lab_name: str) -> str:
         """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
         return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)
