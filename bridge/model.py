@@ -216,6 +216,11 @@ class Results(Frozen):
     predicted: Predicted | None = None
 
 
+# A path to one value of the record, as findings name it, and an HL7 table 0085 code.
+StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z_]+(\[\d+\])?)+$")]
+StatusCode = Annotated[str, Field(pattern=r"^[A-Z]$")]
+
+
 class Session(Frozen):
     """One DLCO test session: the hub every reader produces and every emitter consumes."""
 
@@ -229,6 +234,15 @@ class Session(Frozen):
     conditions: Conditions = Conditions()
     manoeuvres: tuple[Manoeuvre, ...] = ()
     results: Results = Results()
+    # The lab's own status of single values: an HL7 v2.5.1 table 0085 code (as in OBX-11) by the
+    # value's path (``results.dlco``, ``manoeuvres[0].reported.dlco``); a value without one is final.
+    # mappings/result_status.toml says what each code does (bridge.science.lab_status).
+    lab_status: dict[StatusPath, StatusCode] = Field(
+        default_factory=dict,
+        description="The lab's status of single values, by path (results.dlco): a code of HL7 v2.5.1 table 0085 "
+        "(OBX-11); a value without one is final. docs/format.md says what each code does.",
+        json_schema_extra={"additionalProperties": False},
+    )
 
     @field_validator("performed_at")
     @classmethod

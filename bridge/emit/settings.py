@@ -4,8 +4,8 @@ Owns: :class:`EmitSettings` (sending and receiving application and facility, the
 each lab, the site's base URL for its own identifier and code systems, how the patient is
 referred to, the patient identifier type, the HL7 processing id, the haemoglobin unit) and
 :class:`EmitContext`, what an emitter is given for one message: these settings with the time
-the shell read, the destination's units and whether it is a correction. Checking the values
-is ``bridge.config``'s job when it reads them.
+the shell read, the destination's units, whether it is a correction and what was sent before.
+Checking the values is ``bridge.config``'s job when it reads them.
 """
 
 from __future__ import annotations
@@ -40,8 +40,10 @@ class EmitSettings:
     # None: the unit system's display unit in mappings/units.toml.
     hemoglobin_unit: str | None = None
 
-    def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
-        """The emitters' context for one message: these settings plus the time the shell read."""
+    def context(
+        self, now: datetime, units: UnitSystem, correction: bool = False, earlier: tuple[tuple[str, str], ...] = ()
+    ) -> EmitContext:
+        """The emitters' context for one message: these settings, the time the shell read, the ledger's record."""
         return EmitContext(
             now=now.replace(microsecond=0),
             units=units,
@@ -54,6 +56,7 @@ class EmitSettings:
             identifier_system=self.identifier_system,
             patient_reference=self.patient_reference,
             correction=correction,
+            earlier=earlier,
             processing_id=self.processing_id,
             lab_facilities=self.lab_facilities,
             patient_identifier_type=self.patient_identifier_type,
@@ -84,6 +87,9 @@ class EmitContext:
     identifier_system: str | None = _SITE.identifier_system
     patient_reference: PatientReference = _SITE.patient_reference
     correction: bool = False  # new content for a test id that was already sent
+    # What was sent before for this test: (identifier value, status as last sent: "final", "C",
+    # "entered-in-error" ...), from the ledger; empty when nothing was or the ledger keeps no record.
+    earlier: tuple[tuple[str, str], ...] = ()
     processing_id: str = _SITE.processing_id
     lab_facilities: tuple[tuple[str, str], ...] = _SITE.lab_facilities
     patient_identifier_type: str = _SITE.patient_identifier_type

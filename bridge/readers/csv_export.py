@@ -123,6 +123,7 @@ class _Column:
     index: int | None  # None: a constant
     unit_index: int | None
     label: str
+    status_index: int | None = None  # the column with the lab's status of this value
 
 
 def _plan(header: list[str], fmap: FieldMap, per_manoeuvre: bool) -> tuple[_Column, ...]:
@@ -132,6 +133,7 @@ def _plan(header: list[str], fmap: FieldMap, per_manoeuvre: bool) -> tuple[_Colu
             header.index(source.column) if source.column is not None else None,
             header.index(source.unit_column) if source.unit_column is not None else None,
             f"column {source.column!r}" if source.column is not None else "(constant)",
+            header.index(source.status_column) if source.status_column is not None else None,
         )
         for source in fmap.fields
         if source.target.per_manoeuvre == per_manoeuvre
@@ -149,6 +151,7 @@ def _cells(plan: tuple[_Column, ...], width: int, row: Sequence[str], line: int,
             f"line {line}, {c.label}",
             row[c.unit_index] if c.unit_index is not None else c.source.unit,
             manoeuvre,
+            row[c.status_index] if c.status_index is not None else None,
         )
         for c in plan
     ]
