@@ -367,14 +367,34 @@ OutputKind = Literal["fhir", "hl7"]
 OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
 
 
+class Carried(Frozen):
+    """One resource (FHIR) or OBX segment (HL7 v2) of a payload, as sent: what the ledger keeps of it.
+
+    ``value`` is the value's text exactly as sent, ``status`` the status as sent (FHIR
+    ``final``, ``corrected``, ``entered-in-error`` ...; an OBX-11 letter), ``digest`` the
+    SHA-256 (hex) of the resource's compact JSON or of the segment's text.
+    """
+
+    resource_type: str  # FHIR resource type, or "OBX"
+    identifier_system: str
+    identifier_value: str
+    code_system: str | None = None
+    code: str | None = None
+    value: str | None = None
+    unit: str | None = None
+    status: str = ""
+    digest: str
+
+
 class Payload(Frozen):
-    """One message built for one outcome: its kind, units, stable id and bytes."""
+    """One message built for one outcome: its kind, units, stable id, bytes and what it carries."""
 
     kind: OutputKind
     units: Literal["si", "traditional"]
     message_id: str  # stable: the same content gives the same id
     content_type: str
     data: bytes
+    carried: tuple[Carried, ...] = ()
 
 
 class Outcome(Frozen):
