@@ -36,7 +36,7 @@ from bridge.tables import Tables
 # The one place that says the emitted bytes changed: bump it with every change of what the
 # same input produces (codes, values, identifiers, layout). It is part of the HL7 control id
 # (MSH-10), so a receiver that drops repeated MSH-10s still takes the newer output.
-OUTPUT_REVISION = 4
+OUTPUT_REVISION = 5
 # UCUM annotation for a z-score: a dimensionless number.  # source: UCUM, curly-brace annotations
 Z_SCORE_UNIT = "{Zscore}"
 

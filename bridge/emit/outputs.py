@@ -81,7 +81,8 @@ def payloads(
             er7 = to_oru(outcome, tables, context, content)
             keys = [item.key for item in content.items]
             keys += [gone.key for gone in resolve(outcome, content, tables, context).withdrawn]  # OBX order
-            ids = [observation_identifier(outcome, key) for key in keys]
+            prefix = observation_identifier(outcome, "")  # lab slug and test id, once
+            ids = [prefix + key for key in keys]
             built.append(
                 Payload(
                     kind="hl7",
