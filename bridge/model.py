@@ -221,6 +221,11 @@ class Results(Frozen):
     predicted: Predicted | None = None
 
 
+# A path to one value of the record, as findings name it, and an HL7 table 0085 code.
+StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z_]+(\[\d+\])?)+$")]
+StatusCode = Annotated[str, Field(pattern=r"^[A-Z]$")]
+
+
 class Session(Frozen):
     """One DLCO test session: the hub every reader produces and every emitter consumes."""
 
@@ -234,6 +239,15 @@ class Session(Frozen):
     conditions: Conditions = Conditions()
     manoeuvres: tuple[Manoeuvre, ...] = ()
     results: Results = Results()
+    # The lab's own status of single values: an HL7 v2.5.1 table 0085 code (as in OBX-11) by the
+    # value's path (``results.dlco``, ``manoeuvres[0].reported.dlco``); a value without one is final.
+    # mappings/result_status.toml says what each code does (bridge.science.lab_status).
+    lab_status: dict[StatusPath, StatusCode] = Field(
+        default_factory=dict,
+        description="The lab's status of single values, by path (results.dlco): a code of HL7 v2.5.1 table 0085 "
+        "(OBX-11); a value without one is final. docs/format.md says what each code does.",
+        json_schema_extra={"additionalProperties": False},
+    )
 
     @field_validator("performed_at")
     @classmethod
@@ -369,14 +383,34 @@ OutputKind = Literal["fhir", "hl7", "ndjson"]
 OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
 
 
+class Carried(Frozen):
+    """One resource (FHIR) or OBX segment (HL7 v2) of a payload, as sent: what the ledger keeps of it.
+
+    ``value`` is the value's text exactly as sent, ``status`` the status as sent (FHIR
+    ``final``, ``corrected``, ``entered-in-error`` ...; an OBX-11 letter), ``digest`` the
+    SHA-256 (hex) of the resource's compact JSON or of the segment's text.
+    """
+
+    resource_type: str  # FHIR resource type, or "OBX"
+    identifier_system: str
+    identifier_value: str
+    code_system: str | None = None
+    code: str | None = None
+    value: str | None = None
+    unit: str | None = None
+    status: str = ""
+    digest: str
+
+
 class Payload(Frozen):
-    """One message built for one outcome: its kind, units, stable id and bytes."""
+    """One message built for one outcome: its kind, units, stable id, bytes and what it carries."""
 
     kind: OutputKind
     units: Literal["si", "traditional"]
     message_id: str  # stable: the same content gives the same id
     content_type: str
     data: bytes
+    carried: tuple[Carried, ...] = ()
 
 
 class Outcome(Frozen):

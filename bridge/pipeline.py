@@ -1,7 +1,8 @@
 """The one path: the bytes of one input -> :class:`bridge.model.Outcome` with its payloads (pure).
 
 Owns: the order of the steps, in one place: read (normalising every quantity on the parsed
-tree before the one validation) -> derive -> check -> gate -> emit, what is emitted built once
+tree before the one validation) -> the lab's own status of each value (a value it marked not
+to be sent is taken out) -> derive -> check -> gate -> emit, what is emitted built once
 per unit system (-> validate, when asked). Every command calls :func:`process` or
 :func:`process_all` (``check`` with no routes, ``convert`` and ``demo`` with the kinds asked for,
 ``watch`` with its destinations' routes); none calls the gate or an emitter on its own. The
@@ -30,6 +31,7 @@ from bridge.readers.json_export import read_export
 from bridge.science.checks import run_checks
 from bridge.science.compared import DEFAULT_REFERENCE_BASIS, ReferenceBasis
 from bridge.science.derive import derive
+from bridge.science.lab_status import apply_lab_status
 from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
@@ -74,6 +76,14 @@ def _never(test_id: str, source_sha256: str) -> bool:
     return False
 
 
+def _nothing_sent(test_id: str) -> tuple[tuple[str, str], ...]:
+    return ()
+
+
+# What was sent before for a test id: (identifier value, status as last sent) pairs (the ledger's record).
+SentBefore = Callable[[str], tuple[tuple[str, str], ...]]
+
+
 DEFAULT_SETTINGS = PipelineSettings()
 
 
@@ -87,20 +97,32 @@ def process(
     routes: Sequence[Route] = (),
     is_correction: Callable[[str, str], bool] = _never,
     gate: bool = False,
+    sent_before: SentBefore = _nothing_sent,
 ) -> Outcome:
     """Read, normalise, derive, check, gate and emit one input.
 
     ``routes`` empty: nothing is emitted and no gate applies (``check``) unless ``gate`` asks for
     it (the audit: which records the gate would refuse, without building what it does not write). Otherwise ``now`` is
     the send time the shell read, and ``is_correction(test_id, sha256)`` says whether this
-    content replaces a result already sent. Raises :class:`InputError` when the input cannot
-    be read, an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``) an independent
-    validator finds a payload invalid; an error raised at the gate or while emitting carries the
-    checked record as ``outcome``.
+    content replaces a result already sent, and ``sent_before(test_id)`` what was sent for it
+    (so a correction withdraws what it no longer gives; ``bridge.emit.status``). Raises
+    :class:`InputError` when the input cannot be read, an ERROR finding not allowed (or a blocking
+    one) refuses it, or (with ``validate_outputs``) an independent validator finds a payload
+    invalid; an error raised at the gate or while emitting carries the checked record as ``outcome``.
     """
     if settings.field_map is not None:
         results = list(
-            process_all(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction, gate=gate)
+            process_all(
+                data,
+                source,
+                tables,
+                settings,
+                now=now,
+                routes=routes,
+                is_correction=is_correction,
+                gate=gate,
+                sent_before=sent_before,
+            )
         )
         if len(results) != 1:
             raise InvalidField("(file)", f"one session, got {len(results)} (use process_all)", source)
@@ -113,7 +135,7 @@ def process(
     except InputError as exc:
         raise exc if exc.source else exc.with_source(source) from None
     sha256 = hashlib.sha256(data).hexdigest()
-    return _complete(session, sha256, source, tables, settings, now, routes, is_correction, gate)
+    return _complete(session, sha256, source, tables, settings, now, routes, (is_correction, sent_before), gate)
 
 
 def process_all(
@@ -126,6 +148,7 @@ def process_all(
     routes: Sequence[Route] = (),
     is_correction: Callable[[str, str], bool] = _never,
     gate: bool = False,
+    sent_before: SentBefore = _nothing_sent,
 ) -> Iterator[Outcome | InputError]:
     """:func:`process` for an input that may hold many sessions: one outcome (or error) per session.
 
@@ -139,7 +162,15 @@ def process_all(
     if fmap is None:
         try:
             yield process(
-                data, source, tables, settings, now=now, routes=routes, is_correction=is_correction, gate=gate
+                data,
+                source,
+                tables,
+                settings,
+                now=now,
+                routes=routes,
+                is_correction=is_correction,
+                gate=gate,
+                sent_before=sent_before,
             )
         except InputError as exc:
             yield exc
@@ -152,7 +183,8 @@ def process_all(
             if record.error is not None:
                 raise record.error
             assert record.session is not None  # a record holds a session or an error
-            outcome = _complete(record.session, sha256, source, tables, settings, now, routes, is_correction, gate)
+            history = (is_correction, sent_before)
+            outcome = _complete(record.session, sha256, source, tables, settings, now, routes, history, gate)
         except InputError as exc:
             if fmap.on_bad_record == "refuse":
                 raise
@@ -190,10 +222,11 @@ def _complete(
     settings: PipelineSettings,
     now: datetime | None,
     routes: Sequence[Route],
-    is_correction: Callable[[str, str], bool],
+    history: tuple[Callable[[str, str], bool], SentBefore],
     gate: bool = False,
 ) -> Outcome:
-    """Derive, check, gate and emit one normalised session."""
+    """Apply the lab's statuses, derive, check, gate and emit one normalised session."""
+    session, status_findings = apply_lab_status(session, tables.result_status, source)
     derived = derive(
         session,
         tables,
@@ -205,13 +238,13 @@ def _complete(
         source_sha256=sha256,
         session=session,
         derived=derived,
-        findings=run_checks(session, derived, tables),
+        findings=status_findings + run_checks(session, derived, tables),
     )
     if not routes and not gate:
         return outcome
     try:
         refuse_blocked(outcome, settings.blocking, settings.allow)
-        return outcome if not routes else _emit(outcome, tables, settings, now, routes, is_correction)
+        return outcome if not routes else _emit(outcome, tables, settings, now, routes, history)
     except InputError as exc:
         exc.outcome = outcome  # the record as checked: the audit counts its findings all the same
         raise
@@ -223,20 +256,22 @@ def _emit(
     settings: PipelineSettings,
     now: datetime | None,
     routes: Sequence[Route],
-    is_correction: Callable[[str, str], bool],
+    history: tuple[Callable[[str, str], bool], SentBefore],
 ) -> Outcome:
     """Build (and validate, when asked) every payload the routes ask for, of an outcome the gate let through."""
     if now is None:
         raise ValueError("emitting needs the send time (now)")
     session, sha256 = outcome.session, outcome.source_sha256
+    is_correction, sent_before = history
     correction = is_correction(session.test_id, sha256)
+    earlier = sent_before(session.test_id)
     asked = tuple(dict.fromkeys(routes))  # each route once, in the order asked
     kinds_by_units: dict[UnitSystem, list[OutputKind]] = {}
     for route in asked:
         kinds_by_units.setdefault(route.units, []).append(route.kind)
     made: dict[Route, Payload] = {}
     for units, kinds in kinds_by_units.items():  # what is emitted is built once per unit system
-        context = settings.emit.context(now, units, correction)
+        context = settings.emit.context(now, units, correction, earlier)
         for payload in payloads(outcome, tables, context, kinds):
             made[Route(payload.kind, payload.units)] = payload
     built = [made[route] for route in asked]

@@ -25,6 +25,7 @@ CORE = (
     "tables/grades.py",
     "tables/codes.py",
     "tables/plausibility.py",
+    "tables/result_status.py",
     "tables/canonical_fields.py",
     "tables/field_map_model.py",
     "tables/field_map_parser.py",

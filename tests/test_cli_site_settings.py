@@ -97,6 +97,9 @@ def test_prune_and_status_on_a_small_ledger(tmp_path: Path, capsys):
     status = capsys.readouterr().out
 
     assert 0 == code
-    assert "1 payload and 1 attempt record removed (delivered over 0 days ago); 0 messages and 0 inputs" in out
+    assert (
+        "1 payload and 1 attempt record removed (delivered over 0 days ago); 0 messages, 0 inputs and "
+        "0 superseded records of sent resources forgotten" in out
+    )
     assert status.startswith(f"ledger {tmp_path / 'st' / 'ledger.sqlite3'}  0.")
     assert " MB (0.0 MB of payloads, " in status

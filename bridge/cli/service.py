@@ -132,7 +132,8 @@ def cmd_prune(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     print(
         f"ledger {service.ledger_path}: {_count(result.payloads, 'payload')} and "
         f"{_count(result.attempts, 'attempt record')} removed (delivered over {args.older_than:g} days ago); "
-        f"{_count(result.messages, 'message')} and {_count(result.inputs, 'input')} forgotten "
+        f"{_count(result.messages, 'message')}, {_count(result.inputs, 'input')} and "
+        f"{_count(result.sent_records, 'superseded record')} of sent resources forgotten "
         f"(over {max(service.duplicate_memory_days, args.older_than):g} days); "
         f"{_megabytes(result.bytes_before)} -> {_megabytes(result.bytes_after)}"
         + (" after VACUUM" if result.vacuumed else "")

@@ -35,11 +35,12 @@ from typing import Any
 import orjson
 
 from bridge.emit.content import ReportContent, ResultItem, Supporting
-from bridge.emit.fhir_references import full_url, token, token_part, token_query
+from bridge.emit.fhir_provenance import provenance_entry
+from bridge.emit.fhir_references import full_url, token_part, token_query
 from bridge.emit.identifiers import code_system_uri, observation_identifier
-from bridge.emit.notes import BRIDGE_NAME
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
+from bridge.emit.status import REPORT_KEY, Statuses, Withdrawn, resolve
 from bridge.model import Outcome, Patient, Quantity
 from bridge.tables import Code, Tables
 
@@ -49,7 +50,6 @@ UCUM = "http://unitsofmeasure.org"
 V2_0074 = "http://terminology.hl7.org/CodeSystem/v2-0074"
 OBSERVATION_CATEGORY = "http://terminology.hl7.org/CodeSystem/observation-category"
 INTERPRETATION = "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation"
-PARTICIPANT_TYPE = "http://terminology.hl7.org/CodeSystem/provenance-participant-type"
 LLN_TEXT = "LLN (5th percentile)"
 
 # Codings as (system, code, display); each resource gets its own dicts built from them.
@@ -81,13 +81,17 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
         entries.append(_patient_entry(patient))
         patient_url = entries[0]["fullUrl"]
     parts = _Parts.of(outcome, context, patient_url)
+    statuses = resolve(outcome, content, tables, context)
     full_urls = {item.key: parts.full_url(item.key) for item in content.items}
     for item in content.items:
-        resource = _observation(parts, item, tables, context, full_urls)
+        resource = _observation(parts, item, tables, context, full_urls, statuses)
         entries.append(parts.entry(full_urls[item.key], resource, "Observation", item.key))
-    report = _report(parts, content, tables, context, [full_urls[i.key] for i in content.items])
-    entries.append(parts.entry(parts.full_url("report"), report, "DiagnosticReport", "report"))
-    entries.append(_provenance_entry(outcome, context.source_system, parts, [e["fullUrl"] for e in entries]))
+    for gone in statuses.withdrawn:  # always a conditional update: it replaces what the server holds
+        resource = _withdrawn(parts, gone, tables, context)
+        entries.append(parts.entry(parts.full_url(gone.key), resource, "Observation", gone.key, update=True))
+    report = _report(parts, content, tables, context, [full_urls[i.key] for i in content.items], statuses)
+    entries.append(parts.entry(parts.full_url(REPORT_KEY), report, "DiagnosticReport", REPORT_KEY))
+    entries.append(provenance_entry(outcome, context, parts.issued, [e["fullUrl"] for e in entries]))
     return {"resourceType": "Bundle", "type": "transaction", "entry": entries}
 
 
@@ -110,7 +114,6 @@ class _Parts:
     # The conditional query of an entry up to its key, escaped and percent-encoded once per
     # Bundle: both steps work character by character, so prefix and key may be encoded apart.
     query_prefix: str
-    status: str
     effective: str
     issued: str
     performer: str
@@ -129,7 +132,6 @@ class _Parts:
             id_prefix=id_prefix,
             identifier_system=context.observation_system,
             query_prefix=f"identifier={token_part(context.observation_system)}|{token_part(id_prefix)}",
-            status=_status(context),
             effective=_instant(session.performed_at),
             issued=_instant(context.now),
             performer=f"{lab.name}, {lab.site}" if lab.site else lab.name,
@@ -143,12 +145,12 @@ class _Parts:
     def full_url(self, key: str) -> str:
         return full_url(self.identifier_system, self.identifier(key))
 
-    def entry(self, full_url: str, resource: Resource, kind: str, key: str) -> Resource:
-        """Entry with its request: conditional create, or conditional update for a correction."""
+    def entry(self, full_url: str, resource: Resource, kind: str, key: str, *, update: bool = False) -> Resource:
+        """Entry with its request: conditional create, or conditional update for a correction (or ``update``)."""
         # token_query of the identifier: the prefix encoded once per Bundle; a key needs no
         # encoding (the code table admits only lower-case letters, digits and underscores).
         query = self.query_prefix + key
-        if self.correction:
+        if self.correction or update:
             request = {"method": "PUT", "url": f"{kind}?{query}"}
         else:
             request = {"method": "POST", "url": kind, "ifNoneExist": query}
@@ -189,17 +191,20 @@ def _observation(
     tables: Tables,
     context: EmitContext,
     full_urls: Mapping[str, str],
+    statuses: Statuses,
 ) -> Resource:
     # The Hb an adjusted value used (FHIR R4 Resource.contained): no time of its own in the export and
     # no result of this test, so never a Bundle entry; derivedFrom names it (#hb), as dom-3 requires.
     contained = [_contained(parts, value, tables, context) for value in item.supporting]
+    replaces = item.key in statuses.replaces
     resource: Resource = {
         "resourceType": "Observation",
         **({"contained": contained} if contained else {}),
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier(item.key)}],
-        # FHIR R4 Observation.status: "preliminary" (data may be incomplete or unverified) for
-        # a value sent with an allowed error finding.  # source: FHIR R4 ValueSet observation-status
-        "status": _PRELIMINARY if item.questionable else parts.status,
+        # FHIR R4 Observation.status: "preliminary" (data may be incomplete or unverified) for a
+        # value the lab marked preliminary or sent with an allowed error finding; "corrected" only
+        # when it replaces a final one (bridge.emit.status).  # source: FHIR R4 ValueSet observation-status
+        "status": statuses.of(item.key),
         "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_coding(*_PF)]}],
         "code": _concept(item.code, tables, context),
         "subject": parts.subject(),
@@ -213,8 +218,8 @@ def _observation(
         resource["dataAbsentReason"] = {"coding": [_coding(*_NOT_APPLICABLE)], "text": item.absent or "not computed"}
     if item.flag is not None:
         resource["interpretation"] = [{"coding": [_coding(INTERPRETATION, item.flag, _FLAG_DISPLAY[item.flag])]}]
-    if item.notes or context.correction:
-        resource["note"] = [{"text": text} for text in _item_notes(item, context)]
+    if item.notes or replaces:
+        resource["note"] = [{"text": text} for text in _item_notes(item, replaces)]
     if item.code.method is not None:
         resource["method"] = _concept(item.code.method, tables, context)
     if item.low is not None:
@@ -250,9 +255,27 @@ def _ranges(item: ResultItem) -> list[Resource]:
     return [first]
 
 
-def _item_notes(item: ResultItem, context: EmitContext) -> list[str]:
+def _withdrawn(parts: _Parts, gone: Withdrawn, tables: Tables, context: EmitContext) -> Resource:
+    """A result sent before that the correction no longer gives: ``entered-in-error``, no value, a note why."""
+    # source: FHIR R4 CodeSystem observation-status, "entered-in-error": the observation has been
+    # withdrawn following previous final release; Observation.value[x] is 0..1.
+    return {
+        "resourceType": "Observation",
+        "identifier": [{"system": parts.identifier_system, "value": parts.identifier(gone.key)}],
+        "status": "entered-in-error",
+        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_coding(*_PF)]}],
+        "code": _concept(gone.code, tables, context),
+        "subject": parts.subject(),
+        "effectiveDateTime": parts.effective,
+        "issued": parts.issued,
+        "performer": parts.lab(),
+        "note": [{"text": gone.reason}],
+    }
+
+
+def _item_notes(item: ResultItem, replaces: bool) -> list[str]:
     notes = list(item.notes)  # a computed item's note comes with it from build_content
-    if context.correction:
+    if replaces:
         notes.append("Corrected result: replaces the value sent earlier for this test.")
     return notes
 
@@ -289,12 +312,13 @@ def _report(
     tables: Tables,
     context: EmitContext,
     results: list[str],
+    statuses: Statuses,
 ) -> Resource:
     resource: Resource = {
         "resourceType": "DiagnosticReport",
-        "identifier": [{"system": parts.identifier_system, "value": parts.identifier("report")}],
-        # source: FHIR R4 ValueSet diagnostic-report-status, "preliminary"
-        "status": _PRELIMINARY if content.questionable else parts.status,
+        "identifier": [{"system": parts.identifier_system, "value": parts.identifier(REPORT_KEY)}],
+        # source: FHIR R4 ValueSet diagnostic-report-status ("preliminary", "final", "corrected")
+        "status": statuses.report,
         "category": [{"coding": [_coding(*_PF)]}],
         "code": _concept(tables.codes.panel, tables, context),
         "subject": parts.subject(),
@@ -302,15 +326,15 @@ def _report(
         "issued": parts.issued,
         "performer": parts.lab(),
         "result": [{"reference": url} for url in results],
-        "conclusion": _conclusion(content, context),
+        "conclusion": _conclusion(content, REPORT_KEY in statuses.replaces),
     }
     return resource
 
 
-def _conclusion(content: ReportContent, context: EmitContext) -> str:
+def _conclusion(content: ReportContent, replaces: bool) -> str:
     """R4 DiagnosticReport has no ``note``: a one-line summary, then the report notes."""
     lines = [_summary(content)]
-    if context.correction:
+    if replaces:
         lines.append("Corrected report: replaces the report sent earlier for this test.")
     lines.extend(content.notes)
     return "\n".join(lines)
@@ -349,43 +373,6 @@ def _patient_entry(patient: Patient) -> Resource:
     resource["birthDate"] = patient.birth_date.isoformat()
     request = {"method": "POST", "url": "Patient", "ifNoneExist": token_query(patient.id_system, patient.id)}
     return {"fullUrl": full_url(patient.id_system, patient.id), "resource": resource, "request": request}
-
-
-# ---------- Provenance ----------
-
-
-def _provenance_entry(outcome: Outcome, source_system: str, parts: _Parts, targets: list[str]) -> Resource:
-    value = f"sha256:{outcome.source_sha256}"
-    resource: Resource = {
-        "resourceType": "Provenance",
-        "target": [{"reference": url} for url in targets],
-        "recorded": parts.issued,
-        "agent": [
-            {
-                "type": {"coding": [{"system": PARTICIPANT_TYPE, "code": "assembler", "display": "Assembler"}]},
-                "who": {"type": "Device", "display": BRIDGE_NAME},
-            }
-        ],
-        "entity": [
-            {
-                "role": "source",
-                "what": {"identifier": {"system": source_system, "value": value}, "display": outcome.source},
-            }
-        ],
-    }
-    request = {
-        "method": "POST",
-        "url": "Provenance",
-        "ifNoneExist": "entity:identifier=" + token(source_system, value),
-    }
-    return {"fullUrl": full_url(source_system, value), "resource": resource, "request": request}
-
-
-_PRELIMINARY = "preliminary"
-
-
-def _status(context: EmitContext) -> str:
-    return "corrected" if context.correction else "final"
 
 
 def _instant(moment: datetime) -> str:

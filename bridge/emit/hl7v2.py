@@ -72,6 +72,7 @@ from bridge.emit.identifiers import observation_identifier
 from bridge.emit.notes import supporting_text
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.settings import EmitContext
+from bridge.emit.status import ItemStatus, Statuses, Withdrawn, resolve
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.model import Outcome, Patient, Sex
 from bridge.tables import Code, Tables
@@ -85,6 +86,11 @@ ST_LENGTH = 199  # hl7apy base data type ST
 IS_LENGTH = 20  # hl7apy base data type IS (HD namespace ids)
 NM_LENGTH = 16  # hl7apy base data type NM
 PRELIMINARY = "P"  # HL7 tables 0085 (OBX-11) and 0123 (OBR-25): preliminary
+# OBX-11 (table 0085) and OBR-25 (table 0123) of each status: F final, C correction, P preliminary
+STATUS_LETTERS: MappingProxyType[ItemStatus, str] = MappingProxyType(
+    {"final": "F", "corrected": "C", "preliminary": PRELIMINARY}
+)
+DELETED = "D"  # table 0085: "Deletes the OBX record": a result a correction withdraws
 FT_LENGTH = 65536  # hl7apy base data type FT (NTE-3)
 ELLIPSIS = "..."
 
@@ -105,7 +111,7 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     """
     if content is None:
         content = build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
-    status = "C" if context.correction else "F"
+    statuses = resolve(outcome, content, tables, context)
     lab = outcome.session.lab.name
     key = "lab_facilities" if any(name == lab for name, _ in context.lab_facilities) else "sending_facility"
     facility = _namespace_setting(key, context.facility_of(lab))
@@ -116,10 +122,10 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
         msh,
         _pid(outcome.session.patient, context.patient_identifier_type),
         _segment("ORC", "RE", *orders),
-        # OBR-25 (HL7 table 0123) P "preliminary" when a value carries an allowed error finding
-        _obr(orders, tables, now, performed, PRELIMINARY if content.questionable else status),
+        # OBR-25 (HL7 table 0123): P when a value is preliminary (the lab's status, an allowed error finding)
+        _obr(orders, tables, now, performed, STATUS_LETTERS[statuses.report]),
         *_ntes(content.notes),
-        *_observations(content, status, performed, _performer(outcome, facility)),
+        *_observations(content, statuses, performed, _performer(outcome, facility)),
     ]
     return SEGMENT_SEPARATOR.join(segments) + SEGMENT_SEPARATOR
 
@@ -232,14 +238,30 @@ def _obr(orders: tuple[str, str], tables: Tables, now: str, performed: str, stat
     return _segment("OBR", *fields)
 
 
-def _observations(content: ReportContent, status: str, observed: str, performer: str) -> Iterable[str]:
+def _observations(content: ReportContent, statuses: Statuses, observed: str, performer: str) -> Iterable[str]:
     for set_id, item in enumerate(content.items, start=1):
-        # OBX-11 (HL7 table 0085) P "preliminary results" for a value with an allowed error
-        # finding; the finding itself follows in NTE. Table 0078 (OBX-8) has no code for a
-        # questionable value, so OBX-8 keeps the L/N flag.  # source: HL7 v2.5.1 ch. 7 (from memory)
-        yield _obx(set_id, item, PRELIMINARY if item.questionable else status, observed, performer)
+        # OBX-11 (HL7 table 0085): P "preliminary results" for a value the lab marked preliminary
+        # or with an allowed error finding (the finding follows in NTE); C only when it replaces a
+        # final result sent before. Table 0078 (OBX-8) has no code for a questionable value, so
+        # OBX-8 keeps the L/N flag.  # source: HL7 v2.5.1 ch. 7 and table 0085
+        yield _obx(set_id, item, STATUS_LETTERS[statuses.of(item.key)], observed, performer)
         if item.notes or item.supporting:
             yield from _ntes((*item.notes, *(supporting_text(value) for value in item.supporting)))
+    for set_id, gone in enumerate(statuses.withdrawn, start=len(content.items) + 1):
+        yield _deleted_obx(set_id, gone, observed, performer)
+        yield from _ntes((gone.reason,))
+
+
+def _deleted_obx(set_id: int, gone: Withdrawn, observed: str, performer: str) -> str:
+    """OBX-11 ``D`` for a result a correction withdraws: the code it was sent under, no value.
+
+    OBX-3 (with OBX-4 empty, as sent) names the OBX under this order that is deleted; OBX-2 and
+    OBX-5 are empty (OBX-2 is needed only with a value).  # source: HL7 v2.5.1 ch. 7, OBX-2, OBX-11, table 0085 D
+    """
+    coded = _coded(gone.code, gone.key)
+    fields = [""] * 23
+    fields[0], fields[2], fields[10], fields[13], fields[22] = str(set_id), coded, DELETED, observed, performer
+    return "|".join(("OBX", *fields))  # OBX-1, -3, -11, -14 and -23 (the last field is never empty)
 
 
 def _obx(set_id: int, item: ResultItem, status: str, observed: str, performer: str) -> str:

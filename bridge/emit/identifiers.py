@@ -29,6 +29,16 @@ def observation_identifier(outcome: Outcome, key: str) -> str:
     return f"{lab_slug(outcome.session.lab.name)}.{outcome.session.test_id}.{key}"
 
 
+def session_identifier(outcome: Outcome) -> str:
+    """The session an outcome came from: the source file's SHA-256, the lab and the test id.
+
+    ``sha256:<hex>/<lab-slug>.<test id>``: a file read through a field map holds many sessions,
+    so the file's hash alone does not name one (its Provenance is keyed on this).
+    """
+    session = outcome.session
+    return f"sha256:{outcome.source_sha256}/{lab_slug(session.lab.name)}.{session.test_id}"
+
+
 def code_system_uri(code: Code, tables: Tables, context: EmitContext) -> str:
     """The FHIR Coding.system of a code: LOINC from codes.toml, local codes from the site."""
     if code.system == "local":

@@ -11,11 +11,14 @@ from __future__ import annotations
 import re
 from collections.abc import Collection, Sequence
 
-from bridge.emit.fhir import bundle_json, require_aware
+from bridge.emit.fhir import dumps, require_aware, to_bundle
 from bridge.emit.fhir_ndjson import ndjson_lines
 from bridge.emit.hl7v2 import control_id, to_oru
+from bridge.emit.identifiers import observation_identifier
+from bridge.emit.manifest import fhir_carried, hl7_carried
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
+from bridge.emit.status import resolve
 from bridge.errors import BlockedByFinding, MissingField
 from bridge.model import Outcome, OutputKind, Payload, Severity
 from bridge.tables import Tables
@@ -64,17 +67,15 @@ def refuse_blocked(outcome: Outcome, blocking: Collection[str] = (), allow: Coll
 def payloads(
     outcome: Outcome, tables: Tables, context: EmitContext, kinds: Sequence[OutputKind]
 ) -> tuple[Payload, ...]:
-    """Every requested payload of one outcome.
+    """Every requested payload of one outcome, each with what it carries (``bridge.emit.manifest``).
 
     What is emitted (:func:`build_content`) is built once and rendered by each emitter.
     """
+    if not kinds:
+        return ()
     built = []
-    content = (
-        build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
-        if kinds
-        else None
-    )
-    if content is not None and not content.items:
+    content = build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
+    if not content.items:
         # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
         raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)
     for kind in kinds:
@@ -86,14 +87,32 @@ def payloads(
         elif kind == "fhir":
             require_aware(context.now)  # as bundle_json: the time is checked before anything is built
             stem = f"{file_stem(outcome.session.test_id)}"
-            data = bundle_json(outcome, tables, context, content)
-            built.append(Payload(kind="fhir", units=context.units, message_id=stem, content_type=FHIR_JSON, data=data))
-        else:
-            er7 = to_oru(outcome, tables, context, content)
-            message_id = control_id(outcome, context)
+            bundle = to_bundle(outcome, tables, context, content)
+            data = dumps(bundle, indent=True)  # bundle_json's bytes
             built.append(
                 Payload(
-                    kind="hl7", units=context.units, message_id=message_id, content_type=HL7_V2_ER7, data=er7.encode()
+                    kind="fhir",
+                    units=context.units,
+                    message_id=stem,
+                    content_type=FHIR_JSON,
+                    data=data,
+                    carried=fhir_carried(bundle),
+                )
+            )
+        else:
+            er7 = to_oru(outcome, tables, context, content)
+            keys = [item.key for item in content.items]
+            keys += [gone.key for gone in resolve(outcome, content, tables, context).withdrawn]  # OBX order
+            prefix = observation_identifier(outcome, "")  # lab slug and test id, once
+            ids = [prefix + key for key in keys]
+            built.append(
+                Payload(
+                    kind="hl7",
+                    units=context.units,
+                    message_id=control_id(outcome, context),
+                    content_type=HL7_V2_ER7,
+                    data=er7.encode(),
+                    carried=hl7_carried(er7, context.observation_system, ids),
                 )
             )
     return tuple(built)

@@ -5,8 +5,8 @@ each lab, the site's base URL for its own identifier and code systems, how the p
 referred to, the patient identifier type, the HL7 processing id, the haemoglobin unit, whose
 predicted values are charted) and
 :class:`EmitContext`, what an emitter is given for one message: these settings with the time
-the shell read, the destination's units and whether it is a correction. Checking the values
-is ``bridge.config``'s job when it reads them.
+the shell read, the destination's units, whether it is a correction and what was sent before.
+Checking the values is ``bridge.config``'s job when it reads them.
 """
 
 from __future__ import annotations
@@ -49,8 +49,10 @@ class EmitSettings:
     # the GLI-2017 equations' range the GLI-2017 results are sent as a stated absence, not replaced.
     charted_predicted: ChartedPredicted = DEFAULT_CHARTED_PREDICTED
 
-    def context(self, now: datetime, units: UnitSystem, correction: bool = False) -> EmitContext:
-        """The emitters' context for one message: these settings plus the time the shell read."""
+    def context(
+        self, now: datetime, units: UnitSystem, correction: bool = False, earlier: tuple[tuple[str, str], ...] = ()
+    ) -> EmitContext:
+        """The emitters' context for one message: these settings, the time the shell read, the ledger's record."""
         return EmitContext(
             now=now.replace(microsecond=0),
             units=units,
@@ -63,6 +65,7 @@ class EmitSettings:
             identifier_system=self.identifier_system,
             patient_reference=self.patient_reference,
             correction=correction,
+            earlier=earlier,
             processing_id=self.processing_id,
             lab_facilities=self.lab_facilities,
             patient_identifier_type=self.patient_identifier_type,
@@ -94,6 +97,9 @@ class EmitContext:
     identifier_system: str | None = _SITE.identifier_system
     patient_reference: PatientReference = _SITE.patient_reference
     correction: bool = False  # new content for a test id that was already sent
+    # What was sent before for this test: (identifier value, status as last sent: "final", "C",
+    # "entered-in-error" ...), from the ledger; empty when nothing was or the ledger keeps no record.
+    earlier: tuple[tuple[str, str], ...] = ()
     processing_id: str = _SITE.processing_id
     lab_facilities: tuple[tuple[str, str], ...] = _SITE.lab_facilities
     patient_identifier_type: str = _SITE.patient_identifier_type
@@ -114,6 +120,11 @@ class EmitContext:
     def source_system(self) -> str:
         """Identifier system of an input file's SHA-256 (FHIR Provenance.entity)."""
         return f"{self.system_base}/source-file"
+
+    @property
+    def session_system(self) -> str:
+        """Identifier system of one session of an input file (FHIR Provenance.entity, its conditional key)."""
+        return f"{self.system_base}/source-session"
 
     def facility_of(self, lab_name: str) -> str:
         """The HL7 facility id of the lab that performed the test; the site's default otherwise."""

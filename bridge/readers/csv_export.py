@@ -139,6 +139,7 @@ class _Column:
     indices: tuple[int, ...]  # the column or columns (joined); (): a constant
     unit_index: int | None
     label: str
+    status_index: int | None = None  # the column with the lab's status of this value
 
 
 def _plan(header: list[str], fmap: FieldMap, per_manoeuvre: bool) -> tuple[_Column, ...]:
@@ -148,6 +149,7 @@ def _plan(header: list[str], fmap: FieldMap, per_manoeuvre: bool) -> tuple[_Colu
             tuple(header.index(column) for column in source.columns),
             header.index(source.unit_column) if source.unit_column is not None else None,
             source.origin,
+            header.index(source.status_column) if source.status_column is not None else None,
         )
         for source in fmap.fields
         if source.target.per_manoeuvre == per_manoeuvre
@@ -167,6 +169,7 @@ def _cells(
             f"line {line}, {c.label}",
             row[c.unit_index] if c.unit_index is not None else c.source.unit,
             manoeuvre,
+            row[c.status_index] if c.status_index is not None else None,
         )
         for c in plan
     ]

@@ -4,7 +4,8 @@ Owns: splitting a file into messages (one or many; MLLP-framed or not; segments 
 ``\\r``, ``\\n`` or ``\\r\\n``), checking each MSH (ORU^R01 of a version the map accepts), and
 reading each message with python-hl7: session fields from segment locations (``PID-5.2``),
 observations from OBX by the local code in OBX-3.1, the value in OBX-5, the unit in OBX-6 or
-fixed by the map, and the manoeuvre number in OBX-4 (sub-ID) for manoeuvre fields. Codes the
+fixed by the map, the manoeuvre number in OBX-4 (sub-ID) for manoeuvre fields, and the lab's
+status of each value in OBX-11 (table 0085: ``bridge.science.lab_status`` says what it does). Codes the
 map does not name are reported with the record, never guessed at. One message, one session;
 a bad message never stops the next.
 """
@@ -113,7 +114,8 @@ def _cells(where: str, message: hl7.Message, fmap: FieldMap) -> tuple[list[Cell]
             at = f"{where}, OBX {index} (code {code!r})"
             unit = _field(obx, 6, 1) if source.unit_from_obx else source.unit
             manoeuvre = _manoeuvre(obx, at) if source.target.per_manoeuvre else None
-            cells.append(Cell(source, _field(obx, 5, 1), at, unit, manoeuvre))
+            # OBX-11: the lab's status of this one value (HL7 v2.5.1 ch. 7, table 0085)
+            cells.append(Cell(source, _field(obx, 5, 1), at, unit, manoeuvre, _field(obx, 11, 1)))
     return cells, unmapped
 
 

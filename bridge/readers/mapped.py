@@ -38,6 +38,7 @@ class Cell:
     where: str  # "line 4, column 'VI'" or "message 2, OBX 5 (code 'TLCO')"
     unit: str | None = None  # the unit text the source gave (fixed, a unit column or OBX-6)
     manoeuvre: int | None = None  # 0-based, for manoeuvre fields
+    status: str | None = None  # the lab's status of this value (OBX-11, or the map's status column)
 
 
 @dataclass(frozen=True, slots=True)
@@ -83,21 +84,44 @@ def _at(exc: InputError, where: str, source: str) -> InputError:
 
 
 def record_tree(cells: Iterable[Cell], fmap: FieldMap, catalogue: UnitCatalogue) -> dict[str, Any]:
-    """The ``dlco-result/1`` tree of one record; missing values are left out."""
+    """The ``dlco-result/1`` tree of one record; missing values are left out.
+
+    A value's status (OBX-11, a status column) goes to ``lab_status`` under the value's path, also
+    when the value itself is missing (``X``: results cannot be obtained); the map's ``[status]``
+    words become codes.
+    """
     tree: dict[str, Any] = {"format": FORMAT}
     manoeuvres: dict[int, dict[str, Any]] = {}
+    statuses: list[tuple[int | None, str, str]] = []  # (manoeuvre, path, code)
     for cell in cells:
+        path = cell.source.target.path
+        status = (cell.status or "").strip()
+        if status and status not in fmap.missing:
+            statuses.append((cell.manoeuvre, path, fmap.status_codes.get(status, status)))
         value = cell_value(cell, fmap, catalogue)
         if value is None:
             continue
-        path = cell.source.target.path
         if cell.manoeuvre is not None:
             _put(manoeuvres.setdefault(cell.manoeuvre, {}), path.removeprefix(MANOEUVRES + "."), value)
         else:
             _put(tree, path, value)
+    order = sorted(manoeuvres)
     if manoeuvres:
-        tree[MANOEUVRES] = [manoeuvres[i] for i in sorted(manoeuvres)]
+        tree[MANOEUVRES] = [manoeuvres[i] for i in order]
+    if statuses:
+        tree["lab_status"] = {
+            _status_path(path, order.index(m) if m in manoeuvres else m): code
+            for m, path, code in statuses
+            if m is None or m in manoeuvres
+        }
     return tree
+
+
+def _status_path(path: str, manoeuvre: int | None) -> str:
+    """``manoeuvres.reported.dlco`` of the second manoeuvre -> ``manoeuvres[1].reported.dlco``, as findings say."""
+    if manoeuvre is None:
+        return path
+    return f"{MANOEUVRES}[{manoeuvre}].{path.removeprefix(MANOEUVRES + '.')}"
 
 
 def _put(tree: dict[str, Any], path: str, value: Any) -> None:

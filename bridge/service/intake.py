@@ -4,7 +4,8 @@ Owns :class:`Intake` -- one complete file (:mod:`bridge.service.watcher` says wh
 process through the pure pipeline, enqueue its messages in the ledger (committed first), then
 archive it; or quarantine it with ``<name>.error.json`` saying why in the same words as
 ``check``. The same content dropped again is archived as a duplicate and sends nothing; new
-content for a test id already sent goes out as a correction. Any other exception met while
+content for a test id already sent goes out as a correction (which replaces what the ledger's
+record of sent resources says was final, and withdraws what it no longer gives). Any other exception met while
 processing one file (a bug the file exposes) quarantines that file as an internal error: one
 file never stops the feed. A file read through a field map (``map`` or ``[maps]`` in the
 settings) may hold many sessions: the messages of every good one are enqueued in the one ledger
@@ -120,6 +121,7 @@ class Intake:
                     now=now,
                     routes=self.routes,
                     is_correction=self._is_correction,
+                    sent_before=self.ledger.sent_before,
                 )
                 messages = self._messages(outcome)
             else:  # a field map: every session of the file, collected before anything is recorded
@@ -146,7 +148,8 @@ class Intake:
         with ``on_bad_record = "refuse"`` refuses it at its first bad record (raised by the pipeline)."""
         pipeline = replace(self.pipeline, field_map=fmap)
         results = list(process_all(data, path.name, self.tables, pipeline, now=now, routes=self.routes,
-                                   is_correction=self._is_correction))  # fmt: skip
+                                   is_correction=self._is_correction,
+                                   sent_before=self.ledger.sent_before))  # fmt: skip
         good = [r for r in results if isinstance(r, Outcome)]
         refused = [r for r in results if isinstance(r, InputError)]
         if not good:
@@ -214,6 +217,9 @@ class Intake:
                 content_type=payload.content_type,
                 # the input's hash, not the payload's: the payload carries a send-time stamp
                 content_sha256=outcome.source_sha256,
+                kind=payload.kind,
+                lab=outcome.session.lab.name,
+                carried=payload.carried,  # kept by the ledger through pruning (what a correction replaces)
             )
             for destination in self.service.destinations
             for payload in (by_route[(destination.payload, destination.units)],)

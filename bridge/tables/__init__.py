@@ -1,8 +1,8 @@
 """The tables in ``mappings/`` as typed values: what every core step receives (pure).
 
 Owns: the :class:`Tables` bundle. Each table's text is parsed by one module here (``units``,
-``grades``, ``plausibility``, ``codes``, through the one TOML error path in ``toml``; the GLI-2017
-reference equations by ``bridge.science.reference``); reading the files from disk is
+``grades``, ``plausibility``, ``codes``, ``result_status``, through the one TOML error path in
+``toml``; the GLI-2017 reference equations by ``bridge.science.reference``); reading the files from disk is
 ``bridge.tables.files``, the only module of this package that does I/O.
 """
 
@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from bridge.science.lab_status import ResultStatusTable
 from bridge.science.quality import GradeTable
 from bridge.science.reference import ReferenceEquations
 from bridge.science.units import UnitCatalogue
@@ -28,3 +29,4 @@ class Tables:
     plausibility: Plausibility
     codes: CodeTable
     reference: ReferenceEquations  # GLI-2017: predicted, LLN, ULN, z-scores of DLCO, KCO and VA
+    result_status: ResultStatusTable  # HL7 table 0085: what the lab's status of a value does

@@ -40,7 +40,8 @@ def canonical_fields() -> Mapping[str, CanonicalField]:
     """Every field of ``dlco-result/1`` a map may fill, by dotted path (``format`` is implied)."""
     found: dict[str, CanonicalField] = {}
     _walk(Session, "", found)
-    del found["format"]
+    del found["format"]  # implied
+    del found["lab_status"]  # a map gives a value's status with the value (status_column, OBX-11)
     return MappingProxyType(found)
 
 

@@ -61,6 +61,7 @@ class FieldSource:
     unit_column: str | None = None  # CSV: the column that carries the unit
     unit_from_obx: bool = False  # HL7: the unit is in OBX-6
     percent: bool = False  # a gas fraction written as a percentage (0.3 means 0.003)
+    status_column: str | None = None  # CSV: the column with the lab's status of this value (HL7 table 0085)
     formats: tuple[str, ...] = ()  # dates and date-times: the field's own strptime formats (): the map's
     assume_time: time | None = None  # a date-time read with a date-only format: the time of day it takes
     line: int | None = None  # the line of the map that names this field (errors point to it)
@@ -109,6 +110,8 @@ class FieldMap:
     zone: tzinfo = UTC  # time_zone resolved by the shell's zone lookup (the core reads no tz database)
     sex_codes: Mapping[str, str] = field(default_factory=lambda: DEFAULT_SEX_CODES)
     unit_aliases: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))  # spelling -> unit
+    # The lab's words for a value's status -> HL7 table 0085 codes ([status]); a word not listed is read as a code.
+    status_codes: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
     # csv
     delimiter: str = DEFAULT_DELIMITER
     encoding: str = "utf-8"
@@ -119,8 +122,8 @@ class FieldMap:
     versions: tuple[str, ...] = DEFAULT_HL7_VERSIONS
 
     def columns(self) -> tuple[str, ...]:
-        """Every CSV column the map reads (values and units), in map order."""
-        named = [c for f in self.fields for c in (*f.columns, f.unit_column) if c is not None]
+        """Every CSV column the map reads (values, units and statuses), in map order."""
+        named = [c for f in self.fields for c in (*f.columns, f.unit_column, f.status_column) if c is not None]
         if self.group_by is not None:
             named.append(self.group_by)
         return tuple(dict.fromkeys(named))

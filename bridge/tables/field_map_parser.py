@@ -45,9 +45,12 @@ _MAP_KEYS = frozenset({"name", "source", "format", "on_bad_record", "repeatabili
 _VALUE_KEYS = frozenset({"missing", "decimal", "date_format", "datetime_format", "time_zone"})
 _CSV_KEYS = frozenset({"delimiter", "encoding", "header_rows", "rows", "group_by"})
 _HL7_KEYS = frozenset({"versions", "encoding"})
-_SOURCE_KEYS = frozenset({"column", "at", "code", "value", "unit", "unit_column", "unit_from", "percent"})
+_SOURCE_KEYS = frozenset(
+    {"column", "at", "code", "value", "unit", "unit_column", "unit_from", "percent", "status_column"}
+)
 _TEXT_KEYS = frozenset({"join", "format", "assume_time"})  # bridge.tables.field_map_texts
-_SECTIONS = frozenset({"map", "values", "sex", "units", "csv", "hl7", "fields"})
+_SECTIONS = frozenset({"map", "values", "sex", "status", "units", "csv", "hl7", "fields"})
+_STATUS_CODE = re.compile(r"[A-Z]")  # HL7 table 0085 codes are one letter (the pipeline checks the table's)
 
 
 class _Checker:
@@ -171,6 +174,7 @@ def field_map(
         time_zone=zone,
         zone=resolved,
         sex_codes=_sex_codes(check, check.table(data, "sex")),
+        status_codes=_status_codes(check, check.table(data, "status")),
         unit_aliases=aliases,
         delimiter=_delimiter(check, csv_part),
         encoding=check.choice(hl7_part, "encoding", "hl7.encoding", ENCODINGS, "utf-8")
@@ -202,7 +206,7 @@ def _field_source(
     if len(given) != 1 or given[0] not in allowed:
         raise check.fail(where, f"exactly one of {', '.join(allowed)} for a {fmt} map")
     joined = joined_sources(check, where, spec, target)  # column = ["Date", "Time"]: several sources, joined
-    for key in (*([] if joined else given), "unit", "unit_column", "unit_from"):
+    for key in (*([] if joined else given), "unit", "unit_column", "unit_from", "status_column"):
         if key in spec and (not isinstance(spec[key], str) or (key != "value" and not spec[key])):
             raise check.fail(f"{where}.{key}", "non-empty text")
     at = None if joined else spec.get("at")
@@ -215,6 +219,8 @@ def _field_source(
         raise check.fail(f"{where}.unit_from", f'"{OBX_UNIT}" on an HL7 code')
     if "unit_column" in spec and fmt != "csv":
         raise check.fail(f"{where}.unit_column", "only in a csv map (HL7 codes use unit_from)")
+    if "status_column" in spec and (fmt != "csv" or "column" not in spec):
+        raise check.fail(f"{where}.status_column", "only on a column of a csv map (HL7 values carry OBX-11)")
     unit_ways = [k for k in ("unit", "unit_column", "unit_from") if k in spec]
     if target.kind == "quantity" and len(unit_ways) != 1:
         raise check.fail(where, "its unit: one of unit, unit_column or unit_from (a quantity needs a unit)")
@@ -237,6 +243,7 @@ def _field_source(
         unit_column=spec.get("unit_column"),
         unit_from_obx=unit_from is not None,
         percent=percent,
+        status_column=spec.get("status_column"),
         line=check.line_of(where),
         **joined,
         **date_reading(check, where, spec, target),
@@ -274,6 +281,14 @@ def _sex_codes(check: _Checker, table: Mapping[str, Any]) -> Mapping[str, str]:
     for code, sex in table.items():
         if sex not in allowed:
             raise check.fail(f'sex."{code}"', f"one of {', '.join(allowed)}, got {sex!r}")
+    return MappingProxyType(dict(table))
+
+
+def _status_codes(check: _Checker, table: Mapping[str, Any]) -> Mapping[str, str]:
+    """``[status]``: the lab's words for a value's status -> HL7 table 0085 codes."""
+    for word, code in table.items():
+        if not isinstance(code, str) or not _STATUS_CODE.fullmatch(code):
+            raise check.fail(f'status."{word}"', f"a code of HL7 table 0085 (one letter such as F, P, W), got {code!r}")
     return MappingProxyType(dict(table))
 
 

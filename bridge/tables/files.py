@@ -19,6 +19,7 @@ from bridge.tables import CodeTable, Plausibility, Tables
 from bridge.tables.field_map_model import FieldMap, MapChoice
 from bridge.tables.field_map_parser import field_map
 from bridge.tables.grades import grade_table
+from bridge.tables.result_status import result_status_table
 from bridge.tables.units import unit_catalogue
 
 _PACKAGE_DIR = Path(__file__).resolve().parent.parent  # bridge/
@@ -57,6 +58,7 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
         plausibility=Plausibility.from_toml(_text(folder, "plausibility.toml"), units),
         codes=CodeTable.from_toml(_text(folder, "codes.toml")),
         reference=load_reference_equations(folder),
+        result_status=result_status_table(_text(folder, "result_status.toml")),
     )
 
 

@@ -548,6 +548,8 @@ class SchemaWalk:
         return self.walk(self.schema, None)
 
     def walk(self, node: dict[str, Any], field: str | None) -> st.SearchStrategy[Any]:
+        if field == "lab_status" and self.catalogue:  # statuses of values a record may lack, as table 0085 has them
+            return st.dictionaries(st.sampled_from(STATUS_PATHS), st.sampled_from(status_codes()), max_size=3)
         if "$ref" in node:
             name = node["$ref"].rsplit("/", 1)[-1]
             if name == "Quantity" and self.catalogue and field in FIELD_DIMENSIONS:
@@ -578,6 +580,19 @@ class SchemaWalk:
             },
             optional={"decimals": self.walk(properties["decimals"], None)},
         )
+
+
+# Optional values a lab may give a status (lab_status): any code leaves the record readable.
+STATUS_PATHS = (
+    "results.dlco", "results.va", "results.kco", "results.dlco_hb_adjusted", "results.tlc",
+    "results.predicted.dlco", "conditions.hemoglobin", "conditions.barometric_pressure", "patient.weight",
+)  # fmt: skip
+
+
+@cache
+def status_codes() -> tuple[str, ...]:
+    """The codes of mappings/result_status.toml (HL7 v2.5.1 table 0085)."""
+    return tuple(sorted(load_tables().result_status.statuses))
 
 
 # Optional in the format, but without a result nothing is emitted (the record is refused).

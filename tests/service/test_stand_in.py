@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import re
 import signal
 import subprocess
@@ -11,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from bridge.service.receiver import MllpPeer
+from bridge.service.receiver import MllpPeer, ResourceStore
 from tests.service.conftest import (
     GOOD,
     Site,
@@ -108,6 +109,48 @@ def test_a_correction_updates_the_resource_in_place(make_site: MakeSite, stand_i
     expected = {"Observation": 0, "DiagnosticReport": 0, "Provenance": 1}
     assert expected == {k: grown.get(k, 0) for k in expected}
     assert re.search(r"^DiagnosticReport/\d+ +v2 ", after, re.M)
+
+
+def test_a_correction_without_hb_withdraws_the_hb_adjusted_dlco_and_corrects_the_rest(
+    make_site: MakeSite, stand_in
+) -> None:
+    """Original, then a correction with Hb removed: the stand-in ends with the Hb-adjusted DLCO entered-in-error.
+
+    Every other Observation and the report are corrected in place; the withdrawn one keeps its id.
+    """
+    # source: FHIR R4 CodeSystem observation-status ("entered-in-error": withdrawn following previous
+    # final release; "corrected"); FHIR R4 http.html#cond-update (PUT Type?identifier updates the one match)
+    folder, _, fhir_url = stand_in
+    site = make_site(fhir_destination(fhir_url))
+    site.start()
+    original = json.loads(make_input("FH-STAND-HB", "FH-P-9"))
+    assert "hemoglobin" in original["conditions"]
+    drop(site.inbox, "first.json", json.dumps(original).encode())
+    wait_until(lambda: site.summary().delivered == 1, "the original delivered")
+    first = _observations(folder)
+    corrected = {**original, "conditions": {k: v for k, v in original["conditions"].items() if k != "hemoglobin"}}
+    drop(site.inbox, "second.json", json.dumps(corrected).encode())
+    wait_until(lambda: site.summary().delivered == 2, "the correction delivered")
+    assert 0 == site.stop()
+    after = _observations(folder)
+    statuses = {key: body["status"] for key, (_, body) in after.items()}
+
+    assert {"final"} == {body["status"] for _, body in first.values()}
+    assert "entered-in-error" == statuses.pop("dlco_hb_adjusted")
+    assert {"corrected"} == set(statuses.values())
+    assert set(first) == set(after)  # updated in place: nothing new, nothing lost
+    assert {key: ident for key, (ident, _) in first.items()} == {key: ident for key, (ident, _) in after.items()}
+    assert "valueQuantity" not in after["dlco_hb_adjusted"][1]
+
+
+def _observations(folder: Path) -> dict[str, tuple[int, dict]]:
+    """The stand-in's Observations and report by identifier key: (resource id, body)."""
+    store = ResourceStore(folder / "resources.sqlite3")
+    try:
+        kept = [r for r in store.all() if r.type in ("Observation", "DiagnosticReport")]
+    finally:
+        store.close()
+    return {r.body["identifier"][0]["value"].rsplit(".", 1)[1]: (r.id, r.body) for r in kept}
 
 
 def test_ae_is_dead_lettered_and_ar_follows_each_destination_policy(make_site: MakeSite, peers) -> None:

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import sqlite3
 import threading
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping
 from contextlib import contextmanager
 from pathlib import Path
 from typing import Self
@@ -91,7 +91,7 @@ class Database:
             row: sqlite3.Row | None = self._conn.execute(sql, params).fetchone()
             return row
 
-    def _all(self, sql: str, params: tuple[object, ...]) -> list[sqlite3.Row]:
+    def _all(self, sql: str, params: tuple[object, ...] | Mapping[str, object]) -> list[sqlite3.Row]:
         with self._lock, translated(self._path):
             return self._conn.execute(sql, params).fetchall()
 

@@ -4,9 +4,9 @@ Owns opening the file (create and migrate it, or only check its version for a re
 what spans inputs and outbox: recording an input together with its messages in one
 transaction, the latest accepted input of a test id (to recognise a correction), and the
 summary ``status`` and ``/metrics`` report. Everything else it inherits
-from :class:`.inputs.InputLedger`, :class:`.outbox.OutboxLedger` and
-:class:`.retention.RetentionLedger`. It must not read inputs,
-build messages, talk to receivers or log.
+from :class:`.inputs.InputLedger`, :class:`.outbox.OutboxLedger`,
+:class:`.retention.RetentionLedger` and :class:`.sent.SentLedger` (what was sent, resource by
+resource). It must not read inputs, build messages, talk to receivers or log.
 """
 
 from __future__ import annotations
@@ -28,6 +28,7 @@ from bridge.service.ledger.outbox import (
 )
 from bridge.service.ledger.retention import RetentionLedger
 from bridge.service.ledger.schema import check_version, migrate
+from bridge.service.ledger.sent import SentLedger
 
 
 @dataclass(frozen=True, slots=True)
@@ -53,7 +54,7 @@ class LedgerSummary:
         return sum(d.rejected for d in self.destinations.values())
 
 
-class Ledger(InputLedger, OutboxLedger, RetentionLedger):
+class Ledger(InputLedger, OutboxLedger, RetentionLedger, SentLedger):
     """The SQLite state of one service; calls are serialised, threads may share it."""
 
     @classmethod

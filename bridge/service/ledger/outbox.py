@@ -17,7 +17,9 @@ from dataclasses import dataclass
 from typing import Literal
 
 from bridge.errors import LedgerError
+from bridge.model import Carried
 from bridge.service.ledger.database import Database
+from bridge.service.ledger.sent import mark_sent_delivered, record_sent
 
 OutboxState = Literal["pending", "delivered", "rejected"]
 
@@ -29,7 +31,9 @@ class NewMessage:
     ``patient_key`` is an opaque key (a hash of the patient identifier, say) that only
     serves to keep one patient's messages in order. ``content_sha256`` identifies the
     content for de-duplication; leave it empty to use the hash of ``payload``, or pass
-    the hash of the stable content when the payload carries a send-time stamp.
+    the hash of the stable content when the payload carries a send-time stamp. ``carried``:
+    each resource (or OBX) the payload carries, recorded with the message (``kind`` "fhir" or
+    "hl7", ``lab`` the lab's name) and kept when the payload is pruned.
     """
 
     destination: str
@@ -39,6 +43,9 @@ class NewMessage:
     payload: bytes
     content_type: str
     content_sha256: str = ""
+    kind: str = ""
+    lab: str = ""
+    carried: tuple[Carried, ...] = ()
 
     def content_hash(self) -> str:
         return self.content_sha256 or hashlib.sha256(self.payload).hexdigest()
@@ -120,7 +127,7 @@ class OutboxLedger(Database):
         return None if row is None else _outbox(row)
 
     def mark_delivered(self, outbox_id: int, ack_text: str) -> None:
-        """The receiver acknowledged the message."""
+        """The receiver acknowledged the message (and so each resource it carried)."""
         self._finish(
             outbox_id,
             "delivered",
@@ -203,12 +210,17 @@ class OutboxLedger(Database):
             if cursor.rowcount != 1:
                 raise LedgerError(f"{self._path}: no pending outbox row {outbox_id}")
             _log_attempt(conn, outbox_id, now, outcome, detail)
+            if outcome == "delivered":
+                mark_sent_delivered(conn, outbox_id, now)
 
 
 def enqueue(conn: sqlite3.Connection, message: NewMessage, input_sha256: str, now: float) -> int:
-    """Add ``message`` inside the caller's transaction (once: same destination, id and content); its row id."""
+    """Add ``message`` inside the caller's transaction (once: same destination, id and content); its row id.
+
+    What it carries is recorded with it, once (not again for a message already there).
+    """
     content = message.content_hash()
-    conn.execute(
+    added = conn.execute(
         "INSERT INTO outbox (destination, message_id, test_id, patient_key, "
         "content_sha256, input_sha256, payload, content_type, next_attempt_at, "
         "created_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) "
@@ -230,7 +242,11 @@ def enqueue(conn: sqlite3.Connection, message: NewMessage, input_sha256: str, no
         "SELECT id FROM outbox WHERE destination = ? AND message_id = ? AND content_sha256 = ?",
         (message.destination, message.message_id, content),
     ).fetchone()
-    return int(row["id"])
+    outbox_id = int(row["id"])
+    if added.rowcount == 1 and message.carried:
+        where = (message.destination, message.kind, message.lab, message.test_id)
+        record_sent(conn, outbox_id, where, message.carried, now)
+    return outbox_id
 
 
 def ids_of_input(conn: sqlite3.Connection, input_sha256: str) -> list[int]:

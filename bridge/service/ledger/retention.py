@@ -5,7 +5,9 @@ message loses its payload and its attempt history (and repeated drops are forgot
 the longer ``memory_days`` the delivered row itself goes, and so does an input none of whose
 messages remain. Until then the input's SHA-256 and each message's control id and content hash
 stay, which is what makes a resend recognisable as a duplicate. A pending or rejected message is
-never touched, nor its input. It must not read inputs, talk to receivers or log.
+never touched, nor its input. The record of what each message carried (``sent``) outlives both
+periods: only a record that a later delivered one of the same identifier replaces goes, after
+``memory_days``. It must not read inputs, talk to receivers or log.
 """
 
 from __future__ import annotations
@@ -14,6 +16,7 @@ import sqlite3
 from dataclasses import dataclass
 
 from bridge.service.ledger.database import Database, translated
+from bridge.service.ledger.sent import prune_superseded
 
 DAY = 86_400.0
 # VACUUM rewrites the whole file: worth it only when much of it is free pages.
@@ -30,6 +33,7 @@ class PruneResult:
     repeated_drops: int = 0
     messages: int = 0
     inputs: int = 0
+    sent_records: int = 0  # records of sent resources a later delivered one of the same identifier replaces
     vacuumed: bool = False
     bytes_before: int = 0
     bytes_after: int = 0
@@ -80,8 +84,10 @@ class RetentionLedger(Database):
                 "(SELECT 1 FROM repeated_drops WHERE repeated_drops.sha256 = inputs.sha256)",
                 (memory_cutoff,),
             ).rowcount
+            sent = prune_superseded(conn, memory_cutoff)  # the latest record of an identifier always stays
         vacuumed = vacuum and self._vacuum_if_it_pays(before)
-        return PruneResult(payloads, attempts, drops, messages, inputs, vacuumed, before.bytes, self.size().bytes)
+        after = self.size().bytes
+        return PruneResult(payloads, attempts, drops, messages, inputs, sent, vacuumed, before.bytes, after)
 
     def _vacuum_if_it_pays(self, before: LedgerSize) -> bool:
         # Emptied payloads leave pages half full rather than free: count the bytes released too.

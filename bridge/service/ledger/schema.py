@@ -88,6 +88,34 @@ MIGRATIONS: tuple[tuple[str, ...], ...] = (
         # first test id; its messages carry every test id. Correction detection looks there.
         "CREATE INDEX outbox_by_test ON outbox (test_id, input_sha256)",
     ),
+    (
+        # What each message carried, resource by resource (identifiers, value as sent, status,
+        # digest): a correction replaces what was final and withdraws what it no longer gives,
+        # and reconciliation knows what to look for, after payloads (and outbox rows) are pruned.
+        # No foreign key to outbox: these rows outlive the outbox rows they came from.
+        """CREATE TABLE sent_resources (
+            id                INTEGER PRIMARY KEY,
+            outbox_id         INTEGER NOT NULL,
+            destination       TEXT NOT NULL,
+            kind              TEXT NOT NULL CHECK (kind IN ('fhir', 'hl7')),
+            lab               TEXT NOT NULL,
+            test_id           TEXT NOT NULL,
+            resource_type     TEXT NOT NULL,
+            identifier_system TEXT NOT NULL,
+            identifier_value  TEXT NOT NULL,
+            code_system       TEXT,
+            code              TEXT,
+            value             TEXT,
+            unit              TEXT,
+            status            TEXT NOT NULL,
+            digest            TEXT NOT NULL,
+            enqueued_at       REAL NOT NULL,
+            delivered_at      REAL
+        )""",
+        "CREATE INDEX sent_by_test ON sent_resources (test_id, id)",
+        "CREATE INDEX sent_by_identifier ON sent_resources (destination, identifier_system, identifier_value, id)",
+        "CREATE INDEX sent_by_outbox ON sent_resources (outbox_id)",
+    ),
 )
 SCHEMA_VERSION = len(MIGRATIONS)
 

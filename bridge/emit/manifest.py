@@ -1,0 +1,85 @@
+"""What a payload carries, resource by resource, as sent: the ledger's record of it (pure).
+
+Owns :func:`fhir_carried` (each entry of a transaction Bundle: its identifier, code, value,
+unit, status and the SHA-256 of its compact JSON) and :func:`hl7_carried` (each OBX of an
+ORU^R01: the identifier of the result it carries, its code, OBX-5, OBX-6, OBX-11 and the
+SHA-256 of the segment). The service keeps these per test id and destination so that a
+correction knows what it replaces and what it must withdraw, and reconciliation what to look
+for, after old payloads are pruned. Read from what was built, never rebuilt: the record is what went out.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from collections.abc import Sequence
+from decimal import Decimal
+from typing import Any
+
+from bridge.emit.fhir import Resource, dumps
+from bridge.emit.hl7text import FIELD_SEPARATOR, SEGMENT_SEPARATOR
+from bridge.model import Carried
+
+_COMPONENT = "^"
+
+
+def fhir_carried(bundle: Resource) -> tuple[Carried, ...]:
+    """One record per entry of a transaction Bundle (values as the Bundle holds them: Decimal digits kept)."""
+    return tuple(_resource(entry["resource"]) for entry in bundle["entry"])
+
+
+def _resource(resource: Resource) -> Carried:
+    kind = str(resource["resourceType"])
+    digest = hashlib.sha256(dumps(resource, indent=False)).hexdigest()
+    if kind == "Provenance":  # no identifier in R4: its session entity (the last) is its key
+        identifier = resource["entity"][-1]["what"]["identifier"]
+        system, value = identifier["system"], identifier["value"]
+        return Carried(resource_type=kind, identifier_system=system, identifier_value=value, digest=digest)
+    identifier = resource["identifier"][0]
+    coding = resource.get("code", {}).get("coding", [{}])[0]
+    quantity = resource.get("valueQuantity", {})
+    return Carried(
+        resource_type=kind,
+        identifier_system=identifier["system"],
+        identifier_value=identifier["value"],
+        code_system=coding.get("system"),
+        code=coding.get("code"),
+        value=_text(quantity.get("value")),
+        unit=quantity.get("code"),
+        status=str(resource.get("status", "")),
+        digest=digest,
+    )
+
+
+def _text(value: Any) -> str | None:
+    if value is None:
+        return None
+    return str(value) if isinstance(value, Decimal | str) else str(Decimal(str(value)))
+
+
+def hl7_carried(er7: str, identifier_system: str, identifiers: Sequence[str]) -> tuple[Carried, ...]:
+    """One record per OBX of an ORU^R01; ``identifiers``: the result each OBX carries, in OBX order."""
+    found = []
+    observations = [s for s in er7.split(SEGMENT_SEPARATOR) if s.startswith("OBX" + FIELD_SEPARATOR)]
+    if len(observations) != len(identifiers):
+        raise ValueError(f"{len(observations)} OBX segments for {len(identifiers)} results")
+    for segment, identifier in zip(observations, identifiers, strict=True):
+        fields = segment.split(FIELD_SEPARATOR)  # fields[n] is OBX-n
+
+        def field(n: int, fields: list[str] = fields) -> str:
+            return fields[n] if n < len(fields) else ""
+
+        code = field(3).split(_COMPONENT)
+        found.append(
+            Carried(
+                resource_type="OBX",
+                identifier_system=identifier_system,
+                identifier_value=identifier,
+                code_system=code[2] if len(code) > 2 and code[2] else None,
+                code=code[0] or None,
+                value=field(5) or None,
+                unit=field(6).split(_COMPONENT)[0] or None,
+                status=field(11),
+                digest=hashlib.sha256(segment.encode("utf-8")).hexdigest(),
+            )
+        )
+    return tuple(found)
