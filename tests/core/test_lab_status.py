@@ -115,7 +115,7 @@ def test_a_preliminary_dlco_and_what_is_computed_from_it_go_out_preliminary(tabl
 
     assert "preliminary" == observations["dlco"]["status"]
     assert "preliminary" == observations["dlco_hb_adjusted"]["status"]
-    assert "preliminary" == observations["lab_dlco_percent_predicted"]["status"]
+    assert "preliminary" == observations["dlco_percent_predicted"]["status"]  # GLI-2017, charted by default
     assert ("final", "final") == (observations["va"]["status"], observations["kco"]["status"])
     assert ("P", "F") == (statuses[DLCO_LOINC], statuses["VA"])
     assert "P" == str(oru.segment("OBR")(25))
