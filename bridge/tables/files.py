@@ -13,6 +13,7 @@ from pathlib import Path
 from zoneinfo import ZoneInfo
 
 from bridge.errors import MappingError
+from bridge.science.equation_sets import SETS, EquationSet, EquationSetName
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
 from bridge.science.units import TRADITIONAL_PER_SI
 from bridge.tables import CodeTable, Plausibility, Tables
@@ -92,4 +93,14 @@ def load_map_choice(default: Path | None, by_pattern: Sequence[tuple[str, Path]]
     return MapChoice(
         default=read(default) if default is not None else None,
         by_pattern=tuple((pattern, read(path)) for pattern, path in by_pattern),
+    )
+
+
+def load_equation_set(name: EquationSetName, folder: Path | None = None) -> EquationSet:
+    """Parse one spirometry or lung-volume equation set (GLI Global, GLI-2012, GLI-2021) from the mappings folder."""
+    folder = folder or mappings_dir()
+    info = SETS[name]
+    groups = _text(folder, info.groups_table) if info.groups_table else None
+    return EquationSet.from_text(
+        name, _text(folder, info.coefficients_table), _text(folder, info.splines_table), groups
     )
