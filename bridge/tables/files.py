@@ -15,11 +15,14 @@ from zoneinfo import ZoneInfo
 from bridge.errors import MappingError
 from bridge.science.equation_sets import SETS, EquationSet, EquationSetName
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
+from bridge.science.spirometry import SpirometryRules
 from bridge.science.units import TRADITIONAL_PER_SI
 from bridge.tables import CodeTable, Plausibility, Tables
 from bridge.tables.field_map_model import FieldMap, MapChoice
 from bridge.tables.field_map_parser import field_map
 from bridge.tables.grades import grade_table
+from bridge.tables.spirometry_grades import NAME as SPIROMETRY_GRADES_TABLE
+from bridge.tables.spirometry_grades import spirometry_rules
 from bridge.tables.units import unit_catalogue
 
 _PACKAGE_DIR = Path(__file__).resolve().parent.parent  # bridge/
@@ -104,3 +107,8 @@ def load_equation_set(name: EquationSetName, folder: Path | None = None) -> Equa
     return EquationSet.from_text(
         name, _text(folder, info.coefficients_table), _text(folder, info.splines_table), groups
     )
+
+
+def load_spirometry_rules(folder: Path | None = None) -> SpirometryRules:
+    """Parse ``spirometry_grades.toml``: the 2019 grades, repeatability and the spirometry checks' limits."""
+    return spirometry_rules(_text(folder or mappings_dir(), SPIROMETRY_GRADES_TABLE))
