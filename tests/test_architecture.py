@@ -30,6 +30,7 @@ CORE = (
     "tables/field_map_model.py",
     "tables/field_map_parser.py",
     "tables/field_map_texts.py",
+    "tables/spirometry_grades.py",
     "readers",
     "emit",
     "display",

@@ -6,7 +6,8 @@ Caucasians, Eur Respir J 2017;50:1700010, as corrected in Eur Respir J 2020;56:1
 parsed from the text of ``mappings/gli2017/`` (reading the files is the shell's job, see
 ``bridge.tables.files.load_reference_equations``), and the interpretation of a z-score.
 
-The equations use the LMS method::
+The equations use the LMS method (evaluated by ``bridge.science.lms``, shared with the
+spirometry and lung-volume equation sets)::
 
     M = exp(a0 + a1 ln(height_cm) + a2 ln(age_y) + Mspline(age))
     S = exp(p0 + p1 ln(age_y) + Sspline(age))
@@ -34,6 +35,9 @@ from typing import Literal
 
 from bridge.errors import MappingError
 from bridge.model import Sex
+from bridge.science.lms import LIMIT_Z, Curve, Lms, OutsideRange, Scale, Splines
+
+__all__ = ["LIMIT_Z", "Lms", "OutsideRange"]  # re-exported: they lived here before bridge.science.lms
 
 
 class Parameter(StrEnum):
@@ -67,8 +71,6 @@ HEIGHT_RANGE_CM = (100.0, 250.0)
 # source: Stanojevic et al. 2017, online supplement look-up tables: one row per quarter year from 5 y.
 SPLINE_FIRST_AGE_Y = 5.0
 SPLINE_STEP_Y = 0.25
-# The 5th and 95th centiles of the standard normal distribution: LLN and ULN are z = -/+1.645.
-LIMIT_Z = 1.645
 
 COEFFICIENTS_TABLE = "gli2017/coefficients.csv"
 SPLINES_TABLE = "gli2017/splines.csv"
@@ -79,61 +81,6 @@ _COEFFICIENT_COLUMNS = ("parameter", "sex", *_COEFFICIENT_NAMES)
 # Traditional and SI equations of one quantity differ in the intercept a0 only (by ln 2.987).
 _TRADITIONAL_AND_SI = ((Parameter.DLCO, Parameter.TLCO), (Parameter.KCO_TRAD, Parameter.KCO_SI))
 _SHARED_NAMES = ("a1", "a2", "p0", "p1", "q0")
-
-
-@dataclass(frozen=True, slots=True)
-class OutsideRange:
-    """No reference value: the inputs are outside what the equations cover; ``reason`` says why."""
-
-    reason: str
-
-
-@dataclass(frozen=True, slots=True)
-class Lms:
-    """The L (skewness), M (median = predicted) and S (coefficient of variation) of one person."""
-
-    L: float
-    M: float
-    S: float
-
-    @property
-    def predicted(self) -> float:
-        """The predicted (median) value."""
-        return self.M
-
-    @property
-    def lln(self) -> float:
-        """Lower limit of normal, the 5th centile."""
-        return self._centile(-LIMIT_Z)
-
-    @property
-    def uln(self) -> float:
-        """Upper limit of normal, the 95th centile."""
-        return self._centile(LIMIT_Z)
-
-    def _centile(self, z: float) -> float:
-        # M (1 + z L S)^(1/L); the parser guarantees L > 0 and 1 - 1.645 L S > 0 at every table row.
-        return self.M * math.pow(max(0.0, 1.0 + z * self.L * self.S), 1.0 / self.L)
-
-    def z_score(self, measured: float) -> float | OutsideRange:
-        """The z-score of a measured value, in the parameter's unit."""
-        refused = _refuse_measured(measured)
-        if refused is not None:
-            return refused
-        return (math.pow(measured / self.M, self.L) - 1.0) / (self.L * self.S)
-
-    def percent_predicted(self, measured: float) -> float | OutsideRange:
-        """The measured value as a percentage of the predicted value."""
-        refused = _refuse_measured(measured)
-        if refused is not None:
-            return refused
-        return 100.0 * measured / self.M
-
-
-def _refuse_measured(measured: float) -> OutsideRange | None:
-    if math.isfinite(measured) and measured > 0.0:
-        return None
-    return OutsideRange(f"the measured value {measured:g} is not a positive number")
 
 
 @dataclass(frozen=True, slots=True)
@@ -151,22 +98,21 @@ class Equation:
     m_spline: tuple[float, ...]  # Mspline at SPLINE_FIRST_AGE_Y + i * SPLINE_STEP_Y
     s_spline: tuple[float, ...]
 
+    _curve: Curve = field(init=False, repr=False, compare=False)
+
+    def __post_init__(self) -> None:
+        zeros = (0.0,) * len(self.m_spline)
+        splines = Splines(SPLINE_FIRST_AGE_Y, SPLINE_STEP_Y, self.m_spline, self.s_spline, zeros)
+        ln = Scale.LN
+        curve = Curve(self.a0, self.a1, ln, self.a2, ln, self.p0, self.p1, ln, self.q0, 0.0, splines)
+        object.__setattr__(self, "_curve", curve)
+
     def lms(self, age_years: float, height_cm: float) -> Lms | OutsideRange:
         """L, M and S at this age (decimal years) and height (cm), or why there are none."""
         reasons = _range_reasons(age_years, height_cm)
         if reasons:
             return OutsideRange("; ".join(reasons))
-        position = (age_years - SPLINE_FIRST_AGE_Y) / SPLINE_STEP_Y
-        row = int(position)  # position >= 0 here, so int() is floor()
-        weight = position - row
-        m_spline, s_spline = self.m_spline[row], self.s_spline[row]
-        if weight > 0.0:
-            m_spline += weight * (self.m_spline[row + 1] - m_spline)
-            s_spline += weight * (self.s_spline[row + 1] - s_spline)
-        ln_age = math.log(age_years)
-        m = math.exp(self.a0 + self.a1 * math.log(height_cm) + self.a2 * ln_age + m_spline)
-        s = math.exp(self.p0 + self.p1 * ln_age + s_spline)
-        return Lms(self.q0, m, s)
+        return self._curve.lms(age_years, height_cm)
 
 
 def _range_reasons(age_years: float, height_cm: float) -> list[str]:
@@ -359,8 +305,6 @@ def _parse_splines(text: str) -> dict[tuple[Parameter, Sex], tuple[tuple[float, 
 
 def _check_limits_defined(e: Equation) -> None:
     """1 - 1.645 L S > 0 at every table row, so that the LLN is a positive number."""
-    for i, s_spline in enumerate(e.s_spline):
-        age = SPLINE_FIRST_AGE_Y + i * SPLINE_STEP_Y
-        s = math.exp(e.p0 + e.p1 * math.log(age) + s_spline)
-        if LIMIT_Z * e.q0 * s >= 1.0:
-            raise MappingError(SPLINES_TABLE, f"{e.parameter}_{e.sex}_s at age {age:g}", "1.645 L S below 1")
+    age = e._curve.first_undefined_limit()
+    if age is not None:
+        raise MappingError(SPLINES_TABLE, f"{e.parameter}_{e.sex}_s at age {age:g}", "1.645 L S below 1")

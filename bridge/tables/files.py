@@ -13,13 +13,17 @@ from pathlib import Path
 from zoneinfo import ZoneInfo
 
 from bridge.errors import MappingError
+from bridge.science.equation_sets import SETS, EquationSet, EquationSetName
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
+from bridge.science.spirometry import SpirometryRules
 from bridge.science.units import TRADITIONAL_PER_SI
 from bridge.tables import CodeTable, Plausibility, Tables
 from bridge.tables.field_map_model import FieldMap, MapChoice
 from bridge.tables.field_map_parser import field_map
 from bridge.tables.grades import grade_table
 from bridge.tables.result_status import result_status_table
+from bridge.tables.spirometry_grades import NAME as SPIROMETRY_GRADES_TABLE
+from bridge.tables.spirometry_grades import spirometry_rules
 from bridge.tables.units import unit_catalogue
 
 _PACKAGE_DIR = Path(__file__).resolve().parent.parent  # bridge/
@@ -95,3 +99,18 @@ def load_map_choice(default: Path | None, by_pattern: Sequence[tuple[str, Path]]
         default=read(default) if default is not None else None,
         by_pattern=tuple((pattern, read(path)) for pattern, path in by_pattern),
     )
+
+
+def load_equation_set(name: EquationSetName, folder: Path | None = None) -> EquationSet:
+    """Parse one spirometry or lung-volume equation set (GLI Global, GLI-2012, GLI-2021) from the mappings folder."""
+    folder = folder or mappings_dir()
+    info = SETS[name]
+    groups = _text(folder, info.groups_table) if info.groups_table else None
+    return EquationSet.from_text(
+        name, _text(folder, info.coefficients_table), _text(folder, info.splines_table), groups
+    )
+
+
+def load_spirometry_rules(folder: Path | None = None) -> SpirometryRules:
+    """Parse ``spirometry_grades.toml``: the 2019 grades, repeatability and the spirometry checks' limits."""
+    return spirometry_rules(_text(folder or mappings_dir(), SPIROMETRY_GRADES_TABLE))
