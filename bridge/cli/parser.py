@@ -139,6 +139,9 @@ def build_parser() -> argparse.ArgumentParser:
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
     convert.add_argument("--to", help=f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})")
     convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
+    convert.add_argument(
+        "--pretty", action="store_true", help="indent FHIR Bundles for people (default: compact, as the service sends)"
+    )
     _add_settings(convert, emits=True)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
     _add_settings(demo, emits=True)
