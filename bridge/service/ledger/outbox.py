@@ -149,6 +149,30 @@ class OutboxLedger(Database):
             next_attempt_at,
         )
 
+    def shift_due(self, seconds: float, after: float) -> int:
+        """Move every pending due time later than ``after`` by ``seconds``; how many moved.
+
+        For a step of the wall clock seen while the service runs: each message keeps the wait it had.
+        """
+        with self._write() as conn:
+            return conn.execute(
+                "UPDATE outbox SET next_attempt_at = next_attempt_at + ? "
+                "WHERE state = 'pending' AND next_attempt_at > ?",
+                (seconds, after),
+            ).rowcount
+
+    def clamp_due(self, latest: float) -> int:
+        """Bring every pending due time later than ``latest`` back to ``latest``; how many were.
+
+        No wait the service sets is longer than its back-off cap, so a due time further away can
+        only come from a wall clock that was set back (or a cap made shorter).
+        """
+        with self._write() as conn:
+            return conn.execute(
+                "UPDATE outbox SET next_attempt_at = ? WHERE state = 'pending' AND next_attempt_at > ?",
+                (latest, latest),
+            ).rowcount
+
     def rows(self, state: OutboxState, limit: int = 100) -> list[OutboxRow]:
         """Outbox rows in one state, oldest first (for ``status``: the dead letters, say)."""
         found = self._all(f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE state = ? ORDER BY id LIMIT ?", (state, limit))
