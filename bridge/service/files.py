@@ -20,6 +20,10 @@ from pathlib import Path
 
 # "No space left on device" and "disk quota exceeded": a state of the disk, not of the file written.
 NO_SPACE = frozenset({errno.ENOSPC, errno.EDQUOT})
+# Below this many free bytes a folder counts as full, and a full one needs this much before the
+# service tries it again: room for many inputs (one costs the ledger about 5 kB; its archived copy
+# is its own size), so that one file taken does not fill it at once and the state does not flap.
+ROOM_BYTES = 1 << 20
 
 # The names of our own temporary files: ".<name>.<8 random characters>.tmp" (write_atomically,
 # tempfile.mkstemp's alphabet) and ".<name>.tmp" (move_durably across file systems).
@@ -113,8 +117,12 @@ class Disk:
         return move_durably(source, target)
 
     def free_bytes(self, folder: Path) -> int:
-        """Bytes an unprivileged writer may still use on the file system of ``folder`` (or its nearest parent)."""
-        while not folder.exists() and folder != folder.parent:
-            folder = folder.parent
-        stat = os.statvfs(folder)
-        return stat.f_bavail * stat.f_frsize
+        return free_bytes(folder)
+
+
+def free_bytes(folder: Path) -> int:
+    """Bytes an unprivileged writer may still use on the file system of ``folder`` (or its nearest parent)."""
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    stat = os.statvfs(folder)
+    return stat.f_bavail * stat.f_frsize

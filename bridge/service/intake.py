@@ -255,7 +255,7 @@ class Intake:
         self._archive(path, "", known.sha256)
         self.on_enqueued()
         self.metrics.count("files_processed")
-        log.info("input archived after a restart; its messages were queued before",
+        log.info("input archived; its messages were queued before (a restart or a full archive held it back)",
                  extra={"event": "recovered", "file": path.name, "sha256": known.sha256[:12]})  # fmt: skip
         return IntakeResult(path, "processed", "recovered")
 

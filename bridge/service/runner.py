@@ -185,10 +185,12 @@ class Service:
         while not self.stop.is_set():
             self.metrics.heartbeat("intake")
             self.space.look_again()
-            now = self.monotonic()
             if self.space.intake_paused:
-                pass  # a place is full: new files stay in the inbox, untouched
-            elif now >= next_scan or self.files_arrived.is_set():
+                # A place is full: new files stay in the inbox, untouched (and still known complete).
+                self.stop.wait(IDLE_WAIT_SECONDS)
+                continue
+            now = self.monotonic()
+            if now >= next_scan or self.files_arrived.is_set():
                 self.files_arrived.clear()
                 self.scan_once()
                 next_scan = now + min(self.settings.rescan_seconds, max(self.settings.stable_seconds, 0.05))

@@ -21,15 +21,12 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from bridge.errors import DestinationFull
-from bridge.service.files import Disk
+from bridge.service.files import ROOM_BYTES, Disk
 from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
 log = logging.getLogger("dlco_bridge.service")
 
-# How much room a full place needs before the service tries it again: enough for many inputs
-# (an input costs the ledger about 5 kB; its archived copy is its own size), so that one file
-# taken does not fill it again at once and the log does not flap between full and free.
-RESUME_FREE_BYTES = 1 << 20
+RESUME_FREE_BYTES = ROOM_BYTES  # how much room a full place needs before the service tries it again
 
 
 @dataclass(frozen=True, slots=True)

@@ -27,15 +27,28 @@ from pathlib import Path
 from typing import Self
 
 from bridge.errors import DiskFull, LedgerError
+from bridge.service.files import ROOM_BYTES, free_bytes
 
 BUSY_TIMEOUT_MS = 5000
 
 
-def is_disk_full(exc: sqlite3.Error) -> bool:
-    """SQLITE_FULL (the primary result code of any extended one): the database's disk or its quota is full."""
-    # source: SQLite result codes (sqlite.org/rescode.html): SQLITE_FULL = 13; extended codes keep it in the low byte
+def is_disk_full(exc: sqlite3.Error, folder: Path) -> bool:
+    """Whether SQLite failed for want of space in ``folder``, the database's.
+
+    SQLITE_FULL says so; an I/O error (growing the WAL index, a write, an fsync) says so when the
+    folder has under :data:`ROOM_BYTES` free, and is a broken disk otherwise.
+    """
+    # source: SQLite result codes (sqlite.org/rescode.html): SQLITE_FULL = 13, SQLITE_IOERR = 10;
+    # an extended code keeps its primary code in the low byte
     code = getattr(exc, "sqlite_errorcode", None)
-    return isinstance(code, int) and code & 0xFF == sqlite3.SQLITE_FULL
+    if not isinstance(code, int) or code & 0xFF not in (sqlite3.SQLITE_FULL, sqlite3.SQLITE_IOERR):
+        return False
+    if code & 0xFF == sqlite3.SQLITE_FULL:
+        return True
+    try:
+        return free_bytes(folder) < ROOM_BYTES
+    except OSError:
+        return False
 
 
 @contextmanager
@@ -44,7 +57,7 @@ def translated(path: Path) -> Iterator[None]:
     try:
         yield
     except sqlite3.Error as exc:
-        if is_disk_full(exc):
+        if is_disk_full(exc, path.parent):
             raise DiskFull("ledger", str(path.parent), str(exc)) from exc
         raise LedgerError(f"{path}: {exc}") from exc
 
