@@ -286,14 +286,17 @@ class Service:
         message stuck for the length of the step.
         """
         wall, mono = self.clock(), self.monotonic()
-        mark, self._clock_mark = self._clock_mark, (wall, mono)
-        if mark is None:
+        mark = self._clock_mark
+        step = 0.0 if mark is None else (wall - mark[0]) - (mono - mark[1])
+        if mark is None or abs(step) < CLOCK_STEP_SECONDS:
+            self._clock_mark = (wall, mono)
             return
-        step = (wall - mark[0]) - (mono - mark[1])
-        if abs(step) < CLOCK_STEP_SECONDS:
-            return
-        shifted = self.ledger.shift_due(step, after=mark[0])
+        # Due times set on the old clock lie between the last look and the cap after now on that
+        # clock; those set on the new one (a retry or an input taken since the step) are not moved.
+        old_now = mark[0] + (mono - mark[1])
+        shifted = self.ledger.shift_due(step, after=mark[0], until=old_now + self.backoff.cap)
         clamped = self.ledger.clamp_due(wall + self.backoff.cap)
+        self._clock_mark = (wall, mono)  # only once recorded: a full ledger keeps the step for later
         log.warning(
             "wall clock stepped: pending due times moved with it",
             extra={"event": "clock_step", "step_s": round(step, 1), "moved": shifted, "clamped": clamped},

@@ -149,16 +149,16 @@ class OutboxLedger(Database):
             next_attempt_at,
         )
 
-    def shift_due(self, seconds: float, after: float) -> int:
-        """Move every pending due time later than ``after`` by ``seconds``; how many moved.
+    def shift_due(self, seconds: float, after: float, until: float) -> int:
+        """Move every pending due time in (``after``, ``until``] by ``seconds``; how many moved.
 
         For a step of the wall clock seen while the service runs: each message keeps the wait it had.
         """
         with self._write() as conn:
             return conn.execute(
                 "UPDATE outbox SET next_attempt_at = next_attempt_at + ? "
-                "WHERE state = 'pending' AND next_attempt_at > ?",
-                (seconds, after),
+                "WHERE state = 'pending' AND next_attempt_at > ? AND next_attempt_at <= ?",
+                (seconds, after, until),
             ).rowcount
 
     def clamp_due(self, latest: float) -> int:
