@@ -8,8 +8,8 @@ What it measures, all on one core in one process, with the same generated inputs
   ``convert`` run writes (FHIR transaction Bundle JSON and ORU^R01 ER7), without file I/O.
 * **floor**: the cheapest honest way to read the same JSON and write bytes of the same shape:
   ``orjson.loads``, one plain dict per Observation (as many as the real Bundle has, with the
-  same keys), a DiagnosticReport and a Provenance dict, ``orjson.dumps`` with the same
-  indentation, and an ER7 message joined from strings with one OBX per Observation. No
+  same keys), a DiagnosticReport and a Provenance dict, ``orjson.dumps`` compact as the
+  Bundle is (indented before issue 21), and an ER7 message joined from strings with one OBX per Observation. No
   validation, no unit handling, no derivation, no checks.
 
 It prints sessions/s for both, the ratio real/floor and whether the target
@@ -260,9 +260,7 @@ def floor_convert(data: bytes, observations: int) -> tuple[bytes, bytes]:
             "request": {"method": "POST", "url": "Provenance"},
         }
     )
-    bundle = orjson.dumps(
-        {"resourceType": "Bundle", "type": "transaction", "entry": entries}, option=orjson.OPT_INDENT_2
-    )
+    bundle = orjson.dumps({"resourceType": "Bundle", "type": "transaction", "entry": entries})
     name = f"{patient.get('family', '')}^{patient.get('given', '')}"
     segments = [
         f"MSH|^~\\&|DLCO-BRIDGE|PFT-LAB|RECORDS|HOSPITAL|20260310120000+0000||ORU^R01^ORU_R01|{test_id}|P|2.5.1",

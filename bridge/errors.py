@@ -17,7 +17,9 @@ Each branch maps to exactly one action in the shell::
     ├── DeliveryError         retry with back-off
     │   ├── ConnectFailed
     │   ├── DeliveryTimeout
+    │   ├── DestinationFull   a file destination's folder has no space: retry; intake pauses meanwhile
     │   └── Rejected          the receiver said no (NAK, HTTP 4xx): dead-letter, no retry
+    ├── DiskFull              no space for the ledger, archive or quarantine: pause, resume when space returns
     └── LedgerError           the state database is unusable: fatal
 
 Clinical or data-quality problems are never exceptions: they are ``Finding`` values
@@ -164,9 +166,28 @@ class RetryLater(DeliveryError):
         super().__init__(destination, detail)
 
 
+class DestinationFull(DeliveryError):
+    """A file destination's folder has no space left (ENOSPC, EDQUOT): retried like any failure."""
+
+
 class Rejected(DeliveryError):
     """The receiver answered no (MLLP AE/AR, HTTP 4xx): dead-letter, never retried."""
 
 
 class LedgerError(BridgeError):
     """The state database cannot be used (locked by another service, corrupt, wrong schema)."""
+
+
+class DiskFull(BridgeError):
+    """No space left where the service keeps its state or files (ENOSPC, EDQUOT, SQLite's "disk is full").
+
+    Neither the input's fault nor fatal: nothing was half done (a ledger transaction rolled back, an
+    atomic write left no file), so the service pauses and tries again when space returns. ``where``
+    names the place (``ledger``, ``archive``, ``quarantine``), ``folder`` its folder.
+    """
+
+    def __init__(self, where: str, folder: str, detail: str) -> None:
+        self.where = where
+        self.folder = folder
+        self.detail = detail
+        super().__init__(f"{folder}: no space left for the {where} ({detail})")

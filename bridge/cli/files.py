@@ -22,7 +22,8 @@ from bridge.display.bundle_summary import describe_bundle
 from bridge.display.check_report import CAUTION, finding_text, outcome_json, outcome_text
 from bridge.display.hl7_fields import describe_er7
 from bridge.display.map_report import MapCheck, map_check_json, map_check_text, passes
-from bridge.emit.outputs import file_stem
+from bridge.emit.fhir import indented
+from bridge.emit.outputs import FHIR_JSON, file_stem
 from bridge.errors import InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import PipelineSettings, Route, process_all
@@ -122,11 +123,18 @@ def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
 
 
 def convert_files(
-    paths: Sequence[Path], out: Path, settings: Settings, tables: Tables, now: datetime | None = None
+    paths: Sequence[Path],
+    out: Path,
+    settings: Settings,
+    tables: Tables,
+    now: datetime | None = None,
+    *,
+    pretty: bool = False,
 ) -> list[tuple[Path, Outcome | InputError, list[Path]]]:
     """Convert every input; each result is (input, outcome or error, files written).
 
     ``now``: the send time written into every message (default: the clock, read once).
+    ``pretty``: Bundles indented for people; otherwise compact, the bytes the service sends.
     """
     routes = [Route(kind, settings.units) for kind in settings.to]
     writer = FileTransport(out)
@@ -138,7 +146,8 @@ def convert_files(
         written = []
         for payload in result.payloads:
             stem = file_stem(result.session.test_id)
-            receipt = writer.deliver(OutgoingMessage("convert", stem, payload.data, payload.content_type))
+            data = indented(payload.data) if pretty and payload.content_type == FHIR_JSON else payload.data
+            receipt = writer.deliver(OutgoingMessage("convert", stem, data, payload.content_type))
             written.append(out / receipt.text)
         results.append((path, result, written))
     return results
@@ -148,7 +157,7 @@ def cmd_convert(args: argparse.Namespace, settings: Settings, tables: Tables) ->
     if no_inputs(args.files):
         return EXIT_BAD_INPUT
     failed = 0
-    for path, result, written in convert_files(args.files, args.out, settings, tables):
+    for path, result, written in convert_files(args.files, args.out, settings, tables, pretty=args.pretty):
         if isinstance(result, InputError):
             failed += 1
             print(result.line(), file=sys.stderr)

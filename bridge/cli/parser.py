@@ -160,6 +160,9 @@ def build_parser() -> argparse.ArgumentParser:
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
     convert.add_argument("--to", help=TO_HELP)
     convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
+    convert.add_argument(
+        "--pretty", action="store_true", help="indent FHIR Bundles for people (default: compact, as the service sends)"
+    )
     _add_settings(convert, emits=True)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
     _add_settings(demo, emits=True)

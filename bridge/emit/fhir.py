@@ -25,6 +25,7 @@ written verbatim by :func:`bundle_json`, so a reported 7.460 stays 7.460.
 
 from __future__ import annotations
 
+import json
 from collections.abc import Mapping
 from dataclasses import dataclass
 from datetime import datetime
@@ -96,8 +97,21 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
 
 
 def bundle_json(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> bytes:
-    """The transaction Bundle as indented UTF-8 JSON; byte-identical for identical input."""
-    return dumps(to_bundle(outcome, tables, context, content), indent=True)
+    """The transaction Bundle as compact UTF-8 JSON (no whitespace); byte-identical for identical input.
+
+    Compact because machines read it: on the wire and in the service's ledger indentation was a third
+    of every Bundle. :func:`indented` gives the same document laid out for people (``convert --pretty``).
+    """
+    return dumps(to_bundle(outcome, tables, context, content), indent=False)
+
+
+def indented(data: bytes) -> bytes:
+    """A JSON document laid out with two-space indentation, every number written with the digits it had.
+
+    Numbers are read as decimals and written back verbatim, so a compact Bundle and its indented form
+    differ in whitespace only.
+    """
+    return dumps(json.loads(data, parse_float=Decimal), indent=True)
 
 
 def patient_by_identifier(patient: Patient) -> str:

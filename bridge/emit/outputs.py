@@ -88,7 +88,7 @@ def payloads(
             require_aware(context.now)  # as bundle_json: the time is checked before anything is built
             stem = f"{file_stem(outcome.session.test_id)}"
             bundle = to_bundle(outcome, tables, context, content)
-            data = dumps(bundle, indent=True)  # bundle_json's bytes
+            data = dumps(bundle, indent=False)  # bundle_json's bytes: compact, as sent
             built.append(
                 Payload(
                     kind="fhir",

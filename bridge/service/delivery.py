@@ -2,7 +2,10 @@
 
 Owns the mapping from outcome to ledger state: a receipt marks the row delivered,
 ``Rejected`` dead-letters it (the other messages go on), any other ``DeliveryError``
-schedules a retry with capped, jittered back-off, for as long as it takes. It must not
+schedules a retry with capped, jittered back-off, for as long as it takes. A receiver's
+``Retry-After`` (``RetryLater``) is waited out when it is within the back-off cap, the longest
+the service ever waits between two attempts; a longer one counts as a failed attempt that waits
+the cap. It must not
 sleep, read the clock or draw random numbers itself (``now`` and ``rand`` are passed in),
 and it must not catch what is not a ``DeliveryError``: a ``LedgerError`` or a bug stops
 the service loudly rather than losing track of a message.
@@ -60,7 +63,7 @@ def deliver_one(
     """Send the next due message of ``destination``; None when nothing is due.
 
     ``address`` (host:port, URL or folder) is named in the log lines; a receiver's Retry-After
-    is waited out even when the back-off would try sooner.
+    up to ``backoff.cap`` is waited out even when the back-off would try sooner.
     """
     row = ledger.next_due(destination, now())
     if row is None:
@@ -74,9 +77,15 @@ def deliver_one(
         return "rejected"
     except DeliveryError as exc:
         delay = next_delay(row.attempts + 1, backoff.base, backoff.cap, rand=rand)
+        error = f"{type(exc).__name__}: {exc.detail}"
         if isinstance(exc, RetryLater):
-            delay = max(delay, exc.after)
-        ledger.mark_retry(row.id, f"{type(exc).__name__}: {exc.detail}", now() + delay)
+            if exc.after <= backoff.cap:
+                delay = max(delay, exc.after)
+            else:
+                # source: RFC 9110 §10.2.3 leaves what to do with a long Retry-After to the client
+                delay = backoff.cap
+                error += f" (over the maximum of {backoff.cap:g} s: counted as a failure)"
+        ledger.mark_retry(row.id, error, now() + delay)
         log.info(
             "delivery failed: will retry",
             extra={

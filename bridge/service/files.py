@@ -2,8 +2,11 @@
 
 Owns: writing a file so that a reader never sees half of it (temporary file in the same
 folder, fsync, rename, fsync of the folder), and moving an input into the archive or the
-quarantine without losing it (rename; copy + fsync + unlink across file systems); and, at
-start, removing the temporary files a crash left behind (only their naming pattern).
+quarantine without losing it (rename; copy + fsync + unlink across file systems); at start,
+removing the temporary files a crash left behind (only their naming pattern); and
+:class:`Disk`, those writes and the free space of a folder as one object, the seam through
+which the intake, the file transport and the disk-full watch reach the file system (a test
+hands in one whose writes fail with ENOSPC).
 """
 
 from __future__ import annotations
@@ -14,6 +17,13 @@ import re
 import shutil
 import tempfile
 from pathlib import Path
+
+# "No space left on device" and "disk quota exceeded": a state of the disk, not of the file written.
+NO_SPACE = frozenset({errno.ENOSPC, errno.EDQUOT})
+# Below this many free bytes a folder counts as full, and a full one needs this much before the
+# service tries it again: room for many inputs (one costs the ledger about 5 kB; its archived copy
+# is its own size), so that one file taken does not fill it at once and the state does not flap.
+ROOM_BYTES = 1 << 20
 
 # The names of our own temporary files: ".<name>.<8 random characters>.tmp" (write_atomically,
 # tempfile.mkstemp's alphabet) and ".<name>.tmp" (move_durably across file systems).
@@ -90,3 +100,29 @@ def move_durably(source: Path, target: Path) -> Path:
     sync_folder(target.parent)
     sync_folder(source.parent)
     return target
+
+
+def is_no_space(exc: BaseException) -> bool:
+    """Whether an exception says the disk (or the quota) is full."""
+    return isinstance(exc, OSError) and exc.errno in NO_SPACE
+
+
+class Disk:
+    """The service's writes to the file system, and the space left in a folder."""
+
+    def write_atomically(self, target: Path, data: bytes) -> None:
+        write_atomically(target, data)
+
+    def move_durably(self, source: Path, target: Path) -> Path:
+        return move_durably(source, target)
+
+    def free_bytes(self, folder: Path) -> int:
+        return free_bytes(folder)
+
+
+def free_bytes(folder: Path) -> int:
+    """Bytes an unprivileged writer may still use on the file system of ``folder`` (or its nearest parent)."""
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    stat = os.statvfs(folder)
+    return stat.f_bavail * stat.f_frsize

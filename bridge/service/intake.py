@@ -12,6 +12,11 @@ settings) may hold many sessions: the messages of every good one are enqueued in
 commit, each refused record gets its own ``<name>.<n>.error.json`` in quarantine (naming its row
 or message), and the file is archived; a file with no good session is quarantined whole.
 
+Disk full: a write that finds no space (the ledger, the archive, the quarantine) raises
+``DiskFull`` and leaves the file in the inbox; what was done before it stays consistent (the
+ledger's transaction rolled back, or its commit kept and the move still to do, as after a crash),
+so the same file is taken again when space returns.
+
 Crash safety: the ledger commit comes before the move, and a restart that finds a file whose
 content the ledger knows only archives it (into the archive proper when it is the file a crash
 kept from being moved, into ``duplicates/`` when it was dropped again), so a kill at any point
@@ -27,7 +32,7 @@ import hashlib
 import logging
 import time
 import traceback
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
@@ -37,10 +42,10 @@ import orjson
 
 from bridge import __version__
 from bridge.config import Settings
-from bridge.errors import InputError, InvalidField, LedgerError, UnreadableInput
+from bridge.errors import DiskFull, InputError, InvalidField, LedgerError, UnreadableInput
 from bridge.model import Outcome, Payload
 from bridge.pipeline import Route, process, process_all
-from bridge.service.files import free_name, move_durably, write_atomically
+from bridge.service.files import Disk, free_name, is_no_space
 from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.service.metrics import Metrics
 from bridge.tables import Tables
@@ -75,6 +80,7 @@ class Intake:
         clock: Callable[[], float] = time.time,
         on_enqueued: Callable[[], None] = lambda: None,
         processor: Processor = process,
+        disk: Disk | None = None,
     ) -> None:
         self.service = settings.require_service()
         self.pipeline = settings.pipeline
@@ -84,6 +90,7 @@ class Intake:
         self.clock = clock
         self.on_enqueued = on_enqueued
         self.processor = processor
+        self.disk = disk or Disk()  # the archive and quarantine writes; a seam for tests
         self.routes = tuple(Route(d.payload, d.units) for d in self.service.destinations)
         self.maps = load_map_choice(settings.field_map, settings.maps, tables)  # per inbox / file pattern
 
@@ -91,7 +98,9 @@ class Intake:
         """Process one file completely; never raises for what the file contains.
 
         Raises only what is not the file's fault: OSError (it cannot be read or moved; the
-        service leaves it in place) and LedgerError (the state database is unusable: fatal).
+        service leaves it in place), DiskFull (no space for the ledger, archive or quarantine: the
+        file stays, to be taken again when space returns) and LedgerError (the state database is
+        unusable: fatal).
         """
         try:
             data = self._read(path)
@@ -128,8 +137,8 @@ class Intake:
                 outcome, messages, refused = self._sessions(data, path, fmap, now)
         except InputError as error:
             return self._quarantine(path, sha, error)
-        except LedgerError:
-            raise  # the state database, not this file: fatal, as everywhere
+        except (LedgerError, DiskFull):
+            raise  # the state database or its disk, not this file
         except Exception as error:
             # Anything else is a bug this file exposes (OverflowError, a model's ValidationError,
             # ZeroDivisionError...). Retrying cannot help and must not stop the feed: the file is
@@ -164,8 +173,9 @@ class Intake:
             reason, said, details = _input_error(path.name, error)
             report = {"file": path.name, "sha256": sha, "record": number, **details,
                       "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(), "version": __version__}  # fmt: skip
-            target = free_name(self.service.quarantine, f"{path.name}.{number}.error.json", sha[:12])
-            write_atomically(target, orjson.dumps(report, option=orjson.OPT_INDENT_2))
+            with self._room("quarantine"):
+                target = free_name(self.service.quarantine, f"{path.name}.{number}.error.json", sha[:12])
+                self.disk.write_atomically(target, orjson.dumps(report, option=orjson.OPT_INDENT_2))
             self.metrics.count("records_quarantined")
             log.warning("record refused; the file's other sessions go on",
                         extra={"event": "record_quarantined", "file": path.name,
@@ -251,7 +261,7 @@ class Intake:
         self._archive(path, "", known.sha256)
         self.on_enqueued()
         self.metrics.count("files_processed")
-        log.info("input archived after a restart; its messages were queued before",
+        log.info("input archived; its messages were queued before (a restart or a full archive held it back)",
                  extra={"event": "recovered", "file": path.name, "sha256": known.sha256[:12]})  # fmt: skip
         return IntakeResult(path, "processed", "recovered")
 
@@ -272,12 +282,13 @@ class Intake:
         target = free_name(self.service.quarantine, path.name, sha[:12])
         report = {"file": path.name, "sha256": sha, **details,
                   "at": datetime.fromtimestamp(self.clock(), UTC).isoformat(), "version": __version__}  # fmt: skip
-        write_atomically(
-            target.with_name(target.name + ".error.json"), orjson.dumps(report, option=orjson.OPT_INDENT_2)
-        )
+        with self._room("quarantine"):
+            self.disk.write_atomically(
+                target.with_name(target.name + ".error.json"), orjson.dumps(report, option=orjson.OPT_INDENT_2)
+            )
         self.ledger.record_quarantine(sha, path.name, reason)
-        with contextlib.suppress(FileNotFoundError):  # already gone: the error report stays
-            move_durably(path, target)
+        with self._room("quarantine"), contextlib.suppress(FileNotFoundError):  # already gone: the report stays
+            self.disk.move_durably(path, target)
         self.metrics.count("files_quarantined")
         if details["kind"] == "internal":
             self.metrics.count("files_failed_internal")
@@ -293,7 +304,19 @@ class Intake:
         """Into ``archive/YYYY-MM-DD/`` (UTC day); a name already there gets the hash appended."""
         day = datetime.fromtimestamp(self.clock(), UTC).strftime("%Y-%m-%d")
         folder = self.service.archive / day / subfolder if subfolder else self.service.archive / day
-        move_durably(path, free_name(folder, path.name, sha[:12]))
+        with self._room("archive"):
+            self.disk.move_durably(path, free_name(folder, path.name, sha[:12]))
+
+    @contextlib.contextmanager
+    def _room(self, where: Literal["archive", "quarantine"]) -> Iterator[None]:
+        """A write into the archive or quarantine; no space there is DiskFull, any other OSError stays one."""
+        try:
+            yield
+        except OSError as exc:
+            if is_no_space(exc):
+                folder = self.service.archive if where == "archive" else self.service.quarantine
+                raise DiskFull(where, str(folder), exc.strerror or str(exc)) from exc
+            raise
 
 
 def _input_error(source: str, error: InputError) -> tuple[str, str, dict[str, object]]:

@@ -9,12 +9,14 @@ Prometheus text rendering, and a tiny HTTP server on a loopback address serving
 from __future__ import annotations
 
 import threading
+import time
 from collections.abc import Callable, Mapping
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import Any
 
 from bridge.errors import ConfigError
 from bridge.service.ledger import LedgerSummary
+from bridge.service.space import Space
 from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
 # Latency buckets in seconds (Prometheus histogram "le" bounds).
@@ -34,10 +36,15 @@ COUNTERS = (
 
 
 class Metrics:
-    """What the service has done since it started, safe to update from several threads."""
+    """What the service has done since it started, safe to update from several threads.
 
-    def __init__(self, clock: Callable[[], float]) -> None:
+    Heartbeats are on the ``monotonic`` clock, so a step of the wall clock never makes a loop
+    look stale (or fresh); latency is wall time, from when a file was complete.
+    """
+
+    def __init__(self, clock: Callable[[], float], monotonic: Callable[[], float] = time.monotonic) -> None:
         self._clock = clock
+        self._monotonic = monotonic
         self._lock = threading.Lock()
         self.counts = dict.fromkeys(COUNTERS, 0)
         self._started: dict[str, float] = {}  # message id -> when its input was complete
@@ -54,10 +61,10 @@ class Metrics:
 
     def heartbeat(self, loop: str) -> None:
         with self._lock:
-            self._heartbeats[loop] = self._clock()
+            self._heartbeats[loop] = self._monotonic()
 
     def heartbeat_ages(self) -> dict[str, float]:
-        now = self._clock()
+        now = self._monotonic()
         with self._lock:
             return {loop: now - at for loop, at in self._heartbeats.items()}
 
@@ -140,7 +147,10 @@ class MeteredTransport:
 
 
 class HealthServer:
-    """``/healthz`` and ``/metrics`` on a loopback address, in a daemon thread."""
+    """``/healthz`` and ``/metrics`` on a loopback address, in a daemon thread.
+
+    ``/healthz`` is 503 while a loop is stale or a place the service writes is full (``space``).
+    """
 
     def __init__(
         self,
@@ -149,8 +159,9 @@ class HealthServer:
         metrics: Metrics,
         summary: Callable[[], LedgerSummary],
         stale_after: float,
+        space: Space | None = None,
     ) -> None:
-        handler = _handler(metrics, summary, stale_after)
+        handler = _handler(metrics, summary, stale_after, space)
         try:
             self.server = ThreadingHTTPServer((host, port), handler)
         except OSError as exc:
@@ -171,17 +182,20 @@ class HealthServer:
 
 
 def _handler(
-    metrics: Metrics, summary: Callable[[], LedgerSummary], stale_after: float
+    metrics: Metrics, summary: Callable[[], LedgerSummary], stale_after: float, space: Space | None
 ) -> type[BaseHTTPRequestHandler]:
     class Handler(BaseHTTPRequestHandler):
         def do_GET(self) -> None:
             if self.path == "/metrics":
-                self._send(200, metrics.render(summary()), "text/plain; version=0.0.4")
+                text = metrics.render(summary()) + (space.render() if space is not None else "")
+                self._send(200, text, "text/plain; version=0.0.4")
             elif self.path == "/healthz":
                 ages = metrics.heartbeat_ages()
                 stale = sorted(loop for loop, age in ages.items() if age > stale_after)
-                body = "ok\n" if ages and not stale else f"stale: {', '.join(stale) or 'not started'}\n"
-                self._send(200 if ages and not stale else 503, body, "text/plain")
+                problems = [] if ages and not stale else [f"stale: {', '.join(stale) or 'not started'}"]
+                problems += space.problems() if space is not None else []
+                body = "".join(line + "\n" for line in problems) or "ok\n"
+                self._send(503 if problems else 200, body, "text/plain")
             else:
                 self._send(404, "not found\n", "text/plain")
 

@@ -6,6 +6,12 @@ Owns: wiring :mod:`bridge.service.watcher` (when a file is complete), :mod:`brid
 responsive while a receiver is slow or down, and delivery must go on while a burst of files
 arrives. A stop request (SIGTERM/SIGINT) lets the file and the message in flight finish.
 Transports and the ledger are built by the CLI and passed in.
+
+Faults it rides out rather than stopping: a full disk (:mod:`bridge.service.space`: intake paused,
+and delivery too when it is the ledger's disk, until space returns) and a step of the wall clock
+(waits, settle times and heartbeats are on the monotonic clock; due times in the ledger are wall
+time, so a step seen while running moves them by as much, and none stays further away than the
+back-off cap).
 """
 
 from __future__ import annotations
@@ -21,12 +27,14 @@ from pathlib import Path
 from watchdog.observers import Observer
 
 from bridge.config import Settings
+from bridge.errors import DiskFull
 from bridge.service.delivery import Backoff, deliver_due
-from bridge.service.files import remove_strays
+from bridge.service.files import Disk, remove_strays
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
 from bridge.service.settings import ServiceSettings
+from bridge.service.space import Space, SpaceWatchedTransport
 from bridge.service.transports.base import Transport
 from bridge.service.watcher import Readiness, is_candidate, pair_moves_quickly
 from bridge.tables import Tables
@@ -35,6 +43,9 @@ log = logging.getLogger("dlco_bridge.service")
 
 IDLE_WAIT_SECONDS = 0.25  # longest sleep of either loop when nothing wakes it
 PRUNE_EVERY_SECONDS = 86_400.0  # automatic retention runs at start and then once a day
+# A wall clock that moved this much more (or less) than the monotonic clock between two looks
+# was stepped (an NTP step, a mistaken time zone or DST change), not slewed.
+CLOCK_STEP_SECONDS = 2.0
 
 
 class Service:
@@ -49,23 +60,46 @@ class Service:
         clock: Callable[[], float] = time.time,
         rand: Callable[[], float] = random.random,
         stop: threading.Event | None = None,
+        *,
+        monotonic: Callable[[], float] = time.monotonic,
+        disk: Disk | None = None,
     ) -> None:
         self.settings: ServiceSettings = settings.require_service()
         self.ledger = ledger
-        self.clock = clock
+        self.clock = clock  # wall time: what the ledger records, and due times
+        self.monotonic = monotonic  # waits, settle times, heartbeats, probes
         self.rand = rand
         self.stop = stop or threading.Event()  # the CLI passes the one its signal handlers set
         self.files_arrived = threading.Event()
         self.messages_queued = threading.Event()
-        self.metrics = Metrics(clock)
-        self.transports = {name: MeteredTransport(t, self.metrics) for name, t in transports.items()}
-        self.readiness = Readiness(self.settings.inbox, self.settings.stable_seconds, clock, self.files_arrived)
-        self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set)
+        self.metrics = Metrics(clock, monotonic)
+        disk = disk or Disk()
+        self.space = Space(self._places(), disk, monotonic, probe_every=self.settings.rescan_seconds)
+        self.transports = {name: self._watched(name, t) for name, t in transports.items()}
+        self.readiness = Readiness(
+            self.settings.inbox, self.settings.stable_seconds, clock, self.files_arrived, monotonic
+        )
+        self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set, disk=disk)
         self.backoff = Backoff(self.settings.retry_base_seconds, self.settings.retry_cap_seconds)
         self._unmovable: dict[str, tuple[int, int]] = {}
         self.addresses = {d.name: d.address for d in self.settings.destinations}
         self._next_prune = 0.0
+        self._clock_mark: tuple[float, float] | None = None  # (wall, monotonic) at the last look
         self.health: HealthServer | None = None
+
+    def _places(self) -> dict[str, Path]:
+        """Where the service writes, by the name the disk-full state gives each."""
+        service = self.settings
+        places = {"ledger": service.state, "archive": service.archive, "quarantine": service.quarantine}
+        places |= {f"destination:{d.name}": d.folder for d in self.settings.destinations if d.folder is not None}
+        return places
+
+    def _watched(self, name: str, transport: Transport) -> Transport:
+        """The transport, metered; a file destination's also reports its folder full or free."""
+        metered: Transport = MeteredTransport(transport, self.metrics)
+        if f"destination:{name}" in self.space.folders:
+            return SpaceWatchedTransport(metered, self.space, f"destination:{name}")
+        return metered
 
     def run(self) -> None:
         """Watch, process and deliver until :attr:`stop` is set; then finish what is in flight."""
@@ -74,6 +108,7 @@ class Service:
             folder.mkdir(parents=True, exist_ok=True)
         self._remove_strays()
         self._log_start()
+        self._clamp_due_times()
         pair_moves_quickly()  # before Observer(): watchdog reads the wait when it is built
         observer = Observer()
         observer.schedule(self.readiness, str(self.settings.inbox), recursive=False)
@@ -141,6 +176,7 @@ class Service:
             self.metrics,
             self.ledger.summary,
             stale_after=max(30.0, 3 * self.settings.rescan_seconds),
+            space=self.space,
         )
         self.health.start()
 
@@ -148,7 +184,12 @@ class Service:
         next_scan = 0.0
         while not self.stop.is_set():
             self.metrics.heartbeat("intake")
-            now = self.clock()
+            self.space.look_again()
+            if self.space.intake_paused:
+                # A place is full: new files stay in the inbox, untouched (and still known complete).
+                self.stop.wait(IDLE_WAIT_SECONDS)
+                continue
+            now = self.monotonic()
             if now >= next_scan or self.files_arrived.is_set():
                 self.files_arrived.clear()
                 self.scan_once()
@@ -164,6 +205,10 @@ class Service:
                 break
             try:
                 self.intake.take(path, complete_at)
+            except DiskFull as exc:
+                # Nothing half done: the file stays, still known complete, and is taken when space returns.
+                self.space.full(exc.where, exc.detail)
+                break
             except OSError as exc:
                 # The file cannot be read or moved (permissions, a share gone): leave it,
                 # say so once, and look again when it changes.
@@ -202,22 +247,65 @@ class Service:
         while not self.stop.is_set():
             self.metrics.heartbeat("delivery")
             self.messages_queued.clear()
-            deliver_due(
-                self.ledger,
-                self.transports,
-                self.clock,
-                self.rand,
-                backoff=self.backoff,
-                should_stop=self._between_messages,
-                addresses=self.addresses,
-            )
-            self.prune_when_due()
+            self.space.look_again()
+            if not self.space.delivery_paused:
+                # A delivery the ledger cannot record would be sent again: none while it is full.
+                try:
+                    self._follow_the_clock()
+                    deliver_due(
+                        self.ledger,
+                        self.transports,
+                        self.clock,
+                        self.rand,
+                        backoff=self.backoff,
+                        should_stop=self._between_messages,
+                        addresses=self.addresses,
+                    )
+                    self.prune_when_due()
+                except DiskFull as exc:
+                    self.space.full(exc.where, exc.detail)
             self.messages_queued.wait(IDLE_WAIT_SECONDS)
+
+    def _clamp_due_times(self) -> None:
+        """At start: no due time further away than the back-off cap (a clock set back while stopped)."""
+        try:
+            clamped = self.ledger.clamp_due(self.clock() + self.backoff.cap)
+        except DiskFull as exc:
+            self.space.full(exc.where, exc.detail)
+            return
+        if clamped:
+            log.warning(
+                "due times beyond the back-off cap brought forward (the clock was set back?)",
+                extra={"event": "due_clamped", "messages": clamped, "cap_s": self.backoff.cap},
+            )
+
+    def _follow_the_clock(self) -> None:
+        """A step of the wall clock since the last look moves pending due times by as much, then clamps them.
+
+        So a message keeps the wait it had: a step forward makes no burst of retries, a step back no
+        message stuck for the length of the step.
+        """
+        wall, mono = self.clock(), self.monotonic()
+        mark = self._clock_mark
+        step = 0.0 if mark is None else (wall - mark[0]) - (mono - mark[1])
+        if mark is None or abs(step) < CLOCK_STEP_SECONDS:
+            self._clock_mark = (wall, mono)
+            return
+        # Due times set on the old clock lie between the last look and the cap after now on that
+        # clock; those set on the new one (a retry or an input taken since the step) are not moved.
+        old_now = mark[0] + (mono - mark[1])
+        shifted = self.ledger.shift_due(step, after=mark[0], until=old_now + self.backoff.cap)
+        clamped = self.ledger.clamp_due(wall + self.backoff.cap)
+        self._clock_mark = (wall, mono)  # only once recorded: a full ledger keeps the step for later
+        log.warning(
+            "wall clock stepped: pending due times moved with it",
+            extra={"event": "clock_step", "step_s": round(step, 1), "moved": shifted, "clamped": clamped},
+        )
 
     def prune_when_due(self) -> None:
         """Automatic retention (``retention_days`` > 0): prune at start, then once a day; no VACUUM."""
         days = self.settings.retention_days
-        now = self.clock()
+        now = self.monotonic()
         if days <= 0 or now < self._next_prune:
             return
         self._next_prune = now + PRUNE_EVERY_SECONDS

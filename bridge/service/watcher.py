@@ -4,7 +4,8 @@ Owns:
 - :func:`is_candidate` -- names never taken (hidden files, a writer's temporary names);
 - :class:`Readiness` -- a file is taken only when complete: closed after writing or renamed
   in (inotify events through watchdog), or, for what events miss (network shares, a missed
-  event), size and modification time unchanged for ``stable_seconds`` on a periodic rescan;
+  event), size and modification time unchanged for ``stable_seconds`` on a periodic rescan,
+  counted on a monotonic clock (a step of the wall clock neither takes a file early nor holds it);
 - :func:`pair_moves_quickly` -- the one place that touches watchdog's private API.
 
 It must not read, process or move a file: that is :mod:`bridge.service.intake`.
@@ -15,6 +16,7 @@ from __future__ import annotations
 import importlib
 import logging
 import threading
+import time
 from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Any
@@ -78,14 +80,22 @@ def is_candidate(path: Path) -> bool:
 class Readiness(FileSystemEventHandler):
     """Tracks inbox files until they are complete; also the watchdog event handler."""
 
-    def __init__(self, inbox: Path, stable_seconds: float, clock: Callable[[], float], wake: threading.Event):
+    def __init__(
+        self,
+        inbox: Path,
+        stable_seconds: float,
+        clock: Callable[[], float],
+        wake: threading.Event,
+        monotonic: Callable[[], float] = time.monotonic,
+    ):
         self.inbox = inbox
         self.stable_seconds = stable_seconds
-        self.clock = clock
+        self.clock = clock  # wall time: when a file was complete, for the latency it is measured from
+        self.monotonic = monotonic  # how long a file has been unchanged
         self.wake = wake
         self._lock = threading.Lock()
-        self._closed: dict[str, float] = {}  # name -> when a close/move-in event said complete
-        self._watch: dict[str, tuple[int, int, float]] = {}  # name -> (size, mtime_ns, unchanged since)
+        self._closed: dict[str, float] = {}  # name -> when (wall) a close/move-in event said complete
+        self._watch: dict[str, tuple[int, int, float]] = {}  # name -> (size, mtime_ns, unchanged since: monotonic)
 
     # -- watchdog callbacks (observer thread) --
     def on_closed(self, event: FileSystemEvent) -> None:
@@ -113,8 +123,8 @@ class Readiness(FileSystemEventHandler):
 
     # -- intake thread --
     def ready(self, names: Iterable[str]) -> list[tuple[Path, float]]:
-        """The files of ``names`` (present in the inbox) that are complete, with since when."""
-        now = self.clock()
+        """The files of ``names`` (present in the inbox) that are complete, with since when (wall time)."""
+        now, since = self.clock(), self.monotonic()
         done: list[tuple[Path, float]] = []
         for name in sorted(names):
             path = self.inbox / name
@@ -127,10 +137,10 @@ class Readiness(FileSystemEventHandler):
                 closed_at = self._closed.get(name)
                 seen = self._watch.get(name)
                 if seen is None or seen[:2] != (stat.st_size, stat.st_mtime_ns):
-                    self._watch[name] = (stat.st_size, stat.st_mtime_ns, now)
+                    self._watch[name] = (stat.st_size, stat.st_mtime_ns, since)
                     stable = False
                 else:
-                    stable = now - seen[2] >= self.stable_seconds
+                    stable = since - seen[2] >= self.stable_seconds
             if closed_at is not None:
                 # The rename or last write (ctime) is when a sender sees the file complete.
                 done.append((path, stat.st_ctime if 0 <= closed_at - stat.st_ctime < 5 else closed_at))

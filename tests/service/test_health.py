@@ -40,10 +40,12 @@ def test_healthz_stays_ok_while_delivery_works_through_a_backlog(tmp_path: Path,
         base=tmp_path,
     )
     clock = Clock(start=time.time() + 3600.0)  # every enqueued row is due at once
+    monotonic = Clock(start=1000.0)  # heartbeats are on the monotonic clock
     full, settings = settings, settings.require_service()
     settings.inbox.mkdir(parents=True)
     with Ledger.open(settings.ledger_path) as ledger:
-        service = Service(full, load_tables(), ledger, {"records": MllpTransport(LOOPBACK, receiver.port)}, clock)
+        transports = {"records": MllpTransport(LOOPBACK, receiver.port)}
+        service = Service(full, load_tables(), ledger, transports, clock, monotonic=monotonic)
         # metrics_port = 0 turns the service's own endpoint off; this one listens on a free port.
         service.health = HealthServer(LOOPBACK, 0, service.metrics, ledger.summary, stale_after=30.0)
         service.health.start()
@@ -54,7 +56,7 @@ def test_healthz_stays_ok_while_delivery_works_through_a_backlog(tmp_path: Path,
             for n in range(40):  # written in place: each close event says the file is complete
                 (settings.inbox / f"b-{n:02d}.json").write_bytes(make_input(f"HB-{n:02d}", f"FICT-05{n:02d}"))
             wait_until(lambda: len(receiver.accepted()) >= 3, "delivery under way")
-            clock.advance(60.0)  # longer than stale_after: only fresh heartbeats make it ok
+            monotonic.advance(60.0)  # longer than stale_after: only fresh heartbeats make it ok
             status = wait_until(lambda: healthz(service.health.port) == 200 and 200, "healthz ok", timeout=3)  # type: ignore[union-attr]
             busy = len(receiver.accepted()) < 40
         finally:

@@ -98,25 +98,40 @@ def test_retry_after_reads_an_http_date():
 
 
 class _Busy:
+    def __init__(self, after: float) -> None:
+        self.after = after
+
     def deliver(self, message: OutgoingMessage) -> DeliveryReceipt:
-        raise RetryLater(message.destination, "HTTP 429: slow down (Retry-After 600 s)", 600.0)
+        raise RetryLater(message.destination, f"HTTP 429: slow down (Retry-After {self.after:g} s)", self.after)
 
     def close(self) -> None:
         """Nothing held."""
 
 
-def test_delivery_waits_out_retry_after_longer_than_the_backoff(tmp_path: Path):
-    """Back-off would retry after 0.5 s; the receiver asked for 600 s: the row is due in 600 s."""
+@pytest.mark.parametrize(
+    ("after", "due_in", "counted_as_failure"),
+    [(200.0, 200.0, False), (300.0, 300.0, False), (600.0, 300.0, True), (86_400.0, 300.0, True)],
+)
+def test_delivery_waits_out_retry_after_up_to_the_cap_and_a_longer_one_is_a_failure(
+    tmp_path: Path, after: float, due_in: float, counted_as_failure: bool
+):
+    """Back-off would retry after 0.5 s; a Retry-After within the 300 s cap is waited out, a longer one waits it."""
+    # source: RFC 9110 §10.2.3 (Retry-After: the client waits at least that long; the maximum is the client's)
     clock = Clock()
     with Ledger.open(tmp_path / "l.sqlite3", now=clock) as ledger:
         (row_id,) = ledger.record_input_and_enqueue(
             NewInput("b" * 64, "b.json", "T-1"), [NewMessage("store", "B-1", "T-1", "p", b"{}", FHIR_JSON)]
         )
-        result = deliver_one(ledger, "store", _Busy(), clock, lambda: 0.5, Backoff(1.0, 300.0), "http://x/fhir")
+        busy = _Busy(after)
+        result = deliver_one(ledger, "store", busy, clock, lambda: 0.5, Backoff(1.0, 300.0), "http://x/fhir")
         row = ledger.get(row_id)
 
     assert row is not None
-    assert ("retry", clock.now + 600.0) == (result, row.next_attempt_at)
+    assert ("retry", clock.now + due_in, counted_as_failure) == (
+        result,
+        row.next_attempt_at,
+        "counted as a failure" in row.last_error,
+    )
 
 
 @pytest.mark.parametrize(

@@ -1,6 +1,7 @@
 """The SQLite file under the ledger: how it is opened, and the one lock every call takes.
 
-Owns the connection settings, the translation of every ``sqlite3`` error into ``LedgerError``,
+Owns the connection settings, the translation of every ``sqlite3`` error into ``LedgerError``
+(or ``DiskFull`` when SQLite says the disk is full: the transaction rolled back, nothing is lost),
 and :class:`Database`: one connection shared by the service's threads, one call at a time,
 with reads (``_one``, ``_all``) and ``IMMEDIATE`` write transactions (``_write``). It must not
 know what the tables mean (:mod:`.inputs`, :mod:`.outbox`) nor how they are made
@@ -25,30 +26,55 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Self
 
-from bridge.errors import LedgerError
+from bridge.errors import DiskFull, LedgerError
+from bridge.service.files import ROOM_BYTES, free_bytes
 
 BUSY_TIMEOUT_MS = 5000
 
 
+def is_disk_full(exc: sqlite3.Error, folder: Path) -> bool:
+    """Whether SQLite failed for want of space in ``folder``, the database's.
+
+    SQLITE_FULL says so; an I/O error (growing the WAL index, a write, an fsync) says so when the
+    folder has under :data:`ROOM_BYTES` free, and is a broken disk otherwise.
+    """
+    # source: SQLite result codes (sqlite.org/rescode.html): SQLITE_FULL = 13, SQLITE_IOERR = 10;
+    # an extended code keeps its primary code in the low byte
+    code = getattr(exc, "sqlite_errorcode", None)
+    if not isinstance(code, int) or code & 0xFF not in (sqlite3.SQLITE_FULL, sqlite3.SQLITE_IOERR):
+        return False
+    if code & 0xFF == sqlite3.SQLITE_FULL:
+        return True
+    try:
+        return free_bytes(folder) < ROOM_BYTES
+    except OSError:
+        return False
+
+
 @contextmanager
 def translated(path: Path) -> Iterator[None]:
-    """Turn every sqlite3 error into LedgerError naming the file."""
+    """Turn every sqlite3 error into LedgerError naming the file; a full disk into DiskFull."""
     try:
         yield
     except sqlite3.Error as exc:
+        if is_disk_full(exc, path.parent):
+            raise DiskFull("ledger", str(path.parent), str(exc)) from exc
         raise LedgerError(f"{path}: {exc}") from exc
 
 
-def connect(path: Path, read_only: bool) -> sqlite3.Connection:
-    """A connection in autocommit mode (transactions are explicit), rows by column name."""
+def connect(path: Path, read_only: bool, factory: type[sqlite3.Connection] = sqlite3.Connection) -> sqlite3.Connection:
+    """A connection in autocommit mode (transactions are explicit), rows by column name.
+
+    ``factory``: the connection class (a test's subclass fails writes as a full disk does).
+    """
     if read_only:
         if not path.exists():
             raise LedgerError(f"no ledger at {path}")
         uri = f"{path.resolve().as_uri()}?mode=ro"
-        conn = sqlite3.connect(uri, uri=True, isolation_level=None, check_same_thread=False)
+        conn = sqlite3.connect(uri, uri=True, isolation_level=None, check_same_thread=False, factory=factory)
     else:
         path.parent.mkdir(parents=True, exist_ok=True)
-        conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
+        conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False, factory=factory)
     conn.row_factory = sqlite3.Row
     conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
     return conn

@@ -11,6 +11,7 @@ resource). It must not read inputs, build messages, talk to receivers or log.
 
 from __future__ import annotations
 
+import sqlite3
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
@@ -64,10 +65,14 @@ class Ledger(InputLedger, OutboxLedger, RetentionLedger, SentLedger):
         now: Callable[[], float] = time.time,
         *,
         read_only: bool = False,
+        factory: type[sqlite3.Connection] = sqlite3.Connection,
     ) -> Ledger:
-        """Open (and create or migrate, unless ``read_only``) the ledger at ``path``."""
+        """Open (and create or migrate, unless ``read_only``) the ledger at ``path``.
+
+        ``factory``: the SQLite connection class, a seam for tests (one that fails writes as a full disk).
+        """
         with translated(path):
-            conn = connect(path, read_only)
+            conn = connect(path, read_only, factory)
             try:
                 if read_only:
                     check_version(conn, path)

@@ -69,7 +69,7 @@ class RetentionLedger(Database):
                 (payload_cutoff,),
             ).rowcount
             payloads = conn.execute(
-                "UPDATE outbox SET payload = X'', ack_text = '', pruned_at = ? "
+                "UPDATE outbox SET payload = X'', payload_encoding = 'identity', ack_text = '', pruned_at = ? "
                 "WHERE state = 'delivered' AND delivered_at < ? AND pruned_at IS NULL",
                 (now, payload_cutoff),
             ).rowcount

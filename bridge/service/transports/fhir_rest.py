@@ -2,7 +2,8 @@
 
 Owns the HTTP exchange and what its answer means: 2xx delivered, 4xx refused (with the
 OperationOutcome's text), 5xx and network trouble retryable; 429 and 503 retried no sooner
-than their ``Retry-After`` (or dead-lettered, if the destination says so). Authentication is
+than their ``Retry-After`` (or dead-lettered, if the destination says so); how long a wait the
+service accepts is the delivery loop's decision (:mod:`bridge.service.delivery`). Authentication is
 a static bearer token, or SMART Backend Services (:mod:`.smart`), whose token is refreshed
 once on a 401 before the message is dead-lettered. It must not touch the ledger, read the
 environment or log; above all it never writes a token into a receipt, an exception or a repr.
@@ -49,7 +50,6 @@ MAX_TEXT = 500  # keep ledger rows and status lines readable
 RETRYABLE_4XX = frozenset({401, 407, 408, 425, 429})
 # "Busy, try later": their Retry-After is honoured. source: RFC 9110 §10.2.3, §15.6.4; RFC 6585 §4
 BUSY = frozenset({429, 503})
-MAX_RETRY_AFTER = 86_400.0  # a day: a longer wait is a misconfigured server, not advice
 
 
 def retry_after(value: str | None, now: float) -> float | None:
@@ -58,15 +58,15 @@ def retry_after(value: str | None, now: float) -> float | None:
     if not value:
         return None
     value = value.strip()
-    if value.isdigit():
-        return min(float(value), MAX_RETRY_AFTER)
+    if value.isascii() and value.isdigit():  # str.isdigit alone takes "²", which float() refuses
+        return float(value)
     try:
         when = parsedate_to_datetime(value)
     except (TypeError, ValueError):
         return None
     if when.tzinfo is None:
         return None
-    return min(max(0.0, when.timestamp() - now), MAX_RETRY_AFTER)
+    return max(0.0, when.timestamp() - now)
 
 
 def operation_outcome_text(body: bytes) -> str:

@@ -12,8 +12,8 @@ from collections.abc import Iterator
 from contextlib import contextmanager
 from pathlib import Path
 
-from bridge.errors import DeliveryError
-from bridge.service.files import write_atomically
+from bridge.errors import DeliveryError, DestinationFull
+from bridge.service.files import Disk, is_no_space
 from bridge.service.transports.base import (
     FHIR_JSON,
     HL7_V2_ER7,
@@ -36,24 +36,29 @@ def file_name(message: OutgoingMessage) -> str:
 
 @contextmanager
 def _translated(destination: str) -> Iterator[None]:
-    """Every file-system error is retryable: the operator frees space or fixes rights."""
+    """Every file-system error is retryable: the operator frees space or fixes rights.
+
+    No space (ENOSPC, EDQUOT) is ``DestinationFull``, so that the service pauses its intake meanwhile.
+    """
     try:
         yield
     except OSError as exc:
-        raise DeliveryError(destination, f"cannot write: {exc.strerror or exc}") from exc
+        kind = DestinationFull if is_no_space(exc) else DeliveryError
+        raise kind(destination, f"cannot write: {exc.strerror or exc}") from exc
 
 
 class FileTransport:
-    """Writes each message to ``folder`` under :func:`file_name`."""
+    """Writes each message to ``folder`` under :func:`file_name` (through ``disk``, a seam for tests)."""
 
-    def __init__(self, folder: Path) -> None:
+    def __init__(self, folder: Path, disk: Disk | None = None) -> None:
         self.folder = folder
+        self.disk = disk or Disk()
 
     def deliver(self, message: OutgoingMessage) -> DeliveryReceipt:
         target = self.folder / file_name(message)
         with _translated(message.destination):
             self.folder.mkdir(parents=True, exist_ok=True)
-            write_atomically(target, message.payload)
+            self.disk.write_atomically(target, message.payload)
         return DeliveryReceipt("written", target.name)
 
     def close(self) -> None:
