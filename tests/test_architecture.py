@@ -24,6 +24,7 @@ CORE = (
     "tables/units.py",
     "tables/grades.py",
     "tables/codes.py",
+    "tables/finding_codes.py",
     "tables/plausibility.py",
     "tables/canonical_fields.py",
     "tables/field_map_model.py",

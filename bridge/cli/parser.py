@@ -61,12 +61,17 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
         help="an ERROR finding code to write anyway, the value marked preliminary with the finding; "
         "repeat or separate with commas (key allow; default "
         f"{','.join(sorted(DEFAULTS.pipeline.allow)) or 'none'}: "
-        "every ERROR finding keeps a record from being written)",
+        "every ERROR finding keeps a record from being written). A code the bridge does not know, or one "
+        "that is not an error, stops the command at start",
     )
     parser.add_argument(
         "--blocking",
-        help="codes of lesser (warning, info) findings that also keep a record from being written, "
-        f"comma-separated (key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'})",
+        action="append",
+        metavar="CODE",
+        help="a code of a lesser (warning, info) finding that also keeps a record from being written; "
+        "repeat or separate with commas (key blocking; default "
+        f"{','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'}). A code the bridge does not know stops the "
+        "command at start",
     )
     parser.add_argument(
         "--validate",
@@ -137,7 +142,11 @@ def build_parser() -> argparse.ArgumentParser:
     _add_settings(check, emits=False)
     convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
     convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
-    convert.add_argument("--to", help=f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})")
+    convert.add_argument(
+        "--to",
+        action="append",
+        help=f"fhir, hl7 or fhir,hl7; repeat or separate with commas (key to; default {','.join(DEFAULTS.to)})",
+    )
     convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
     _add_settings(convert, emits=True)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
