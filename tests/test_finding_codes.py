@@ -64,8 +64,7 @@ def test_the_documented_codes_are_the_known_codes_with_the_same_severity():
         # a warning never stops a record: allowing it would do nothing
         ({"allow": ["COHB_RAISED"]}, {}, "", "--allow", "got COHB_RAISED, a warning (it never stops a record)"),
     ],
-    ids=["flag typo", "flag lower case", "file", "variable", "allow flag", "allow variable", "allow file",
-         "allow a warning"],  # fmt: skip
+    ids=lambda v: v if isinstance(v, str) and v.startswith(("--", "DLCO", "site")) else None,
 )
 def test_an_unknown_code_is_refused_naming_where_it_came_from_and_the_closest(flags, environ, text, where, expected):
     """A code the bridge cannot report stops the command at start: the flag, variable or file key, the closest code."""
@@ -106,7 +105,7 @@ def test_a_repeated_list_flag_keeps_every_value(option, tmp_path):
 
 
 def test_a_second_blocking_flag_blocks_its_record(tmp_path, capsys):
-    """--blocking KCO_INCONSISTENT --blocking COHB_RAISED refuses sample 04 (COHB_RAISED): the first flag is kept too."""
+    """--blocking KCO_INCONSISTENT --blocking COHB_RAISED refuses sample 04 (its finding is COHB_RAISED)."""
     out = tmp_path / "out"
 
     code = main(["convert", str(SAMPLES / "04-raised-cohb.json"), "--blocking", "KCO_INCONSISTENT",
@@ -114,7 +113,7 @@ def test_a_second_blocking_flag_blocks_its_record(tmp_path, capsys):
 
     assert 2 == code
     assert "COHB_RAISED is configured as blocking" in capsys.readouterr().err
-    assert [] == sorted(out.glob("*")) if out.exists() else True
+    assert [] == list(out.glob("LOW-2026-0002.*"))
 
 
 def test_a_misspelt_variable_name_is_refused_naming_the_closest():
