@@ -18,13 +18,16 @@ from __future__ import annotations
 import functools
 import multiprocessing
 import os
+import signal
 import sys
+import threading
 import time
 from collections import deque
 from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, replace
 from datetime import datetime
+from multiprocessing import forkserver
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -193,7 +196,17 @@ def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) ->
     workers = max(1, settings.workers)
     ahead = workers * max(1, settings.in_flight_per_worker)
     context = multiprocessing.get_context("forkserver")
-    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+    # Ctrl-C reaches every process of the terminal's group: this one answers it (one line, the
+    # CLI's exit 130); the workers, and the server that forks them, start deaf to it, so none
+    # prints a traceback of its own.
+    if threading.current_thread() is threading.main_thread():  # only the main thread may set handlers
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+        try:
+            forkserver.ensure_running()
+        finally:
+            signal.signal(signal.SIGINT, previous)
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_deaf_to_interrupts)
+    try:
         pending: deque[Future[ChunkResult]] = deque()
         for chunk in chunks:
             pending.append(pool.submit(audit_chunk, chunk, job))
@@ -201,6 +214,15 @@ def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) ->
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()
+    except BaseException:
+        pool.shutdown(wait=True, cancel_futures=True)  # interrupted or failed: no chunk is started after this
+        raise
+    pool.shutdown(wait=True)
+
+
+def _deaf_to_interrupts() -> None:
+    """A worker leaves Ctrl-C to the process that started it (which stops the pool)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def map_dask(chunks: Iterable[list[str]], job: Job, settings: AuditSettings, address: str) -> Iterator[ChunkResult]:

@@ -23,7 +23,7 @@ from bridge.display.check_report import CAUTION, finding_text, outcome_json, out
 from bridge.display.hl7_fields import describe_er7
 from bridge.display.map_report import MapCheck, map_check_json, map_check_text
 from bridge.emit.outputs import file_stem
-from bridge.errors import InputError, ProcessingFailed, UnknownFormat, UnreadableInput
+from bridge.errors import ConfigError, InputError, ProcessingFailed, UnknownFormat, UnreadableInput
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import Route, process_all
 from bridge.readers.csv_export import read_csv
@@ -147,6 +147,10 @@ def convert_files(
 def cmd_convert(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     if no_inputs(args.files):
         return EXIT_BAD_INPUT
+    try:
+        args.out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise ConfigError("--out", f"a folder that can be written, got {args.out} ({exc.strerror})") from exc
     failed = 0
     for path, result, written in convert_files(args.files, args.out, settings, tables):
         if isinstance(result, InputError):

@@ -18,6 +18,11 @@ from bridge.tables.files import repeatability_criteria
 EXIT_OK = 0
 EXIT_SETUP = 1
 EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130  # Ctrl-C: 128 + SIGINT, as the shell reports a program it stopped
+EXIT_BROKEN_PIPE = 141  # the reader of the output went away (| head): 128 + SIGPIPE, as for other tools
+# Every file the bridge creates is for its owner only (0600), every folder 0700: inputs, outputs,
+# reports, ledgers and quarantine reports hold patient data (README, "Patient data on disk").
+PRIVATE_UMASK = 0o077
 DEFAULTS = Settings()  # shown in --help; the values themselves are written in the settings classes
 DEFAULTS_SERVICE = ServiceSettings(Path(), Path(), Path(), Path(), ())
 
