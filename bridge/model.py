@@ -14,11 +14,12 @@ from __future__ import annotations
 import re
 from collections.abc import Callable
 from dataclasses import dataclass
-from datetime import date, datetime, timedelta
+from datetime import date
 from enum import StrEnum
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, AwareDatetime, BaseModel, ConfigDict, Field, field_validator
+from pydantic import AfterValidator, AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field
+from pydantic.json_schema import SkipJsonSchema
 
 # Characters no output may carry in text: FHIR R4 strings match ^[ \r\n\t\S]+$ (ECMA-262 \s), so
 # control characters and white space other than space, tab and line breaks are refused, and so
@@ -54,7 +55,64 @@ _TEXT_PATTERN = (
 _URI_PATTERN = r"^[^\s\x00-\x1f\x7f]+$"
 Text = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _TEXT_PATTERN}), AfterValidator(_carried_text)]
 Uri = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _URI_PATTERN}), AfterValidator(_uri)]
-MAX_UTC_OFFSET = timedelta(hours=14)  # source: HL7 FHIR R4 dateTime regex (offsets -14:00 to +14:00)
+# Dates and date-times are text in an export, exactly as RFC 3339 writes them (section 5.6:
+# full-date, and date-time with its offset); the UTC offset at most 14 hours either way
+# (source: HL7 FHIR R4 dateTime regex, offsets -14:00 to +14:00). The same patterns go into the
+# published schema (ECMA-262), so that the schema and the reader accept the same text.
+_DATE = r"[0-9]{4}-(0[1-9]|1[0-2])-(0[1-9]|[12][0-9]|3[01])"
+_TIME = r"([01][0-9]|2[0-3]):[0-5][0-9]:[0-5][0-9](\.[0-9]+)?"
+_OFFSET = r"([Zz]|[+-]((0[0-9]|1[0-3]):[0-5][0-9]|14:00))"
+DATE_PATTERN = f"^{_DATE}$"
+DATE_TIME_PATTERN = f"^{_DATE}[Tt]{_TIME}{_OFFSET}$"
+
+
+def _written_as(pattern: str, expected: str) -> Callable[[object], object]:
+    """A check before parsing: text in ``pattern`` (a date object built in Python passes as it is).
+
+    Without it pydantic would also take a number (seconds since 1970) or a date-time given for a
+    date, which the published schema does not allow.
+    """
+    compiled = re.compile(pattern)
+
+    def check(value: object) -> object:
+        if isinstance(value, date) or (isinstance(value, str) and compiled.fullmatch(value)):
+            return value
+        raise ValueError(expected)
+
+    return check
+
+
+IsoDate = Annotated[
+    date,
+    BeforeValidator(_written_as(DATE_PATTERN, "a date YYYY-MM-DD")),
+    Field(json_schema_extra={"pattern": DATE_PATTERN}),
+]
+IsoDateTime = Annotated[
+    AwareDatetime,
+    BeforeValidator(
+        _written_as(
+            DATE_TIME_PATTERN,
+            "a date-time with a UTC offset between -14:00 and +14:00 (e.g. 2026-03-02T09:15:00+01:00)",
+        )
+    ),
+    Field(json_schema_extra={"pattern": DATE_TIME_PATTERN}),
+]
+
+
+class Filled(SkipJsonSchema):
+    """Annotation: a field the bridge fills while it reads, never one an export carries.
+
+    Left out of the published schema, and refused by the reader when an export writes it
+    (``filled_fields``): the reported digits and the original value and unit are the bridge's
+    record of what the lab sent, not something a file may claim.
+    """
+
+
+def filled_fields(model: type[BaseModel]) -> frozenset[str]:
+    """The fields of ``model`` marked :class:`Filled`."""
+    return frozenset(
+        name for name, info in model.model_fields.items() if any(isinstance(m, Filled) for m in info.metadata)
+    )
 
 
 class Frozen(BaseModel):
@@ -80,17 +138,18 @@ class Original(Frozen):
 
 
 class Quantity(Frozen):
-    """A value with its UCUM unit.
+    """A value with its UCUM unit; in an export, ``{"value": 21.4, "unit": "mL/min/mm[Hg]"}``.
 
-    ``decimals`` is the number of digits after the decimal point the source reported, so that
-    7.460 is emitted as 7.460; ``None`` for values computed here. ``original`` is set by
-    normalisation when the source spelled or scaled the quantity differently.
+    The bridge records the rest itself (fields marked :class:`Filled`): ``decimals``, the number
+    of digits after the point the source reported, so that 7.460 is emitted as 7.460 (``None``
+    for values computed here); ``original``, the value and unit as the source wrote them.
     """
 
-    value: float = Field(allow_inf_nan=False)
+    # strict: a JSON number only (true is not 1, "9.84" is text), as the published schema says
+    value: float = Field(allow_inf_nan=False, strict=True)
     unit: str = Field(min_length=1)
-    decimals: int | None = Field(default=None, ge=0, le=12)
-    original: Original | None = None
+    decimals: Annotated[int | None, Filled()] = Field(default=None, ge=0, le=12)
+    original: Annotated[Original | None, Filled()] = None
 
     def text(self) -> str:
         """The value as text with the reported number of decimals (6 significant digits if unknown)."""
@@ -116,7 +175,7 @@ Haemoglobin = Annotated[Quantity, Measure("mass_concentration", "g/dL")]
 Percentage = Annotated[Quantity, Measure("fraction", "%")]
 Temperature = Annotated[Quantity, Measure("temperature", "Cel", signed=True)]
 
-GasFraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False)]
+GasFraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False, strict=True)]
 
 
 class Sex(StrEnum):
@@ -137,7 +196,7 @@ class Patient(Frozen):
     family: Text | None = None
     given: Text | None = None
     sex: Sex
-    birth_date: date
+    birth_date: IsoDate
     height: BodyHeight
     weight: BodyWeight | None = None
 
@@ -222,21 +281,13 @@ class Session(Frozen):
     format: Literal["dlco-result/1"]
     test_id: Annotated[Text, Field(max_length=64)]
     placer_order_number: Annotated[Text, Field(max_length=64)] | None = None  # the requester's order, if exported
-    performed_at: AwareDatetime
+    performed_at: IsoDateTime
     lab: Lab
     patient: Patient
     method: Method = Method()
     conditions: Conditions = Conditions()
     manoeuvres: tuple[Manoeuvre, ...] = ()
     results: Results = Results()
-
-    @field_validator("performed_at")
-    @classmethod
-    def _offset_within_fourteen_hours(cls, value: datetime) -> datetime:
-        offset = value.utcoffset()
-        if offset is not None and abs(offset) > MAX_UTC_OFFSET:
-            raise ValueError("a UTC offset between -14:00 and +14:00")
-        return value
 
 
 class Severity(StrEnum):

@@ -17,7 +17,7 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime
+from datetime import datetime, timedelta
 
 from bridge.emit.outputs import payloads, refuse_blocked
 from bridge.emit.settings import EmitSettings
@@ -36,6 +36,10 @@ from bridge.tables import Tables
 from bridge.tables.field_map_model import FieldMap
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
+# A test dated later than the time its input was read, by more than this, cannot have happened:
+# a device clock a year out, day and month swapped. The hour allows for clocks that drift and
+# a lab computer that missed the change to summer time.
+FUTURE_TOLERANCE = timedelta(hours=1)
 UNMAPPED_CODE = "UNMAPPED_SOURCE_CODE"  # a field map reader met a source code its map does not name
 
 
@@ -89,11 +93,13 @@ def process(
 ) -> Outcome:
     """Read, normalise, derive, check, gate and emit one input.
 
-    ``routes`` empty: nothing is emitted and no gate applies (``check``). Otherwise ``now`` is
-    the send time the shell read, and ``is_correction(test_id, sha256)`` says whether this
-    content replaces a result already sent. Raises :class:`InputError` when the input cannot
-    be read, an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``) an independent
-    validator finds a payload invalid.
+    ``now`` is the time the shell read (the clock stays out of the core): a test dated after it,
+    beyond :data:`FUTURE_TOLERANCE`, is refused, and it is the send time of what is emitted.
+    ``routes`` empty: nothing is emitted and no gate applies (``check``). Otherwise
+    ``is_correction(test_id, sha256)`` says whether this content replaces a result already sent.
+    Raises :class:`InputError` when the input cannot be read, is impossible (born after the
+    test, nothing measured, dated in the future), an ERROR finding not allowed (or a blocking
+    one) refuses it, or (with ``validate_outputs``) an independent validator finds a payload invalid.
     """
     if settings.field_map is not None:
         results = list(process_all(data, source, tables, settings, now=now, routes=routes, is_correction=is_correction))
@@ -183,7 +189,11 @@ def _complete(
     routes: Sequence[Route],
     is_correction: Callable[[str, str], bool],
 ) -> Outcome:
-    """Derive, check, gate and emit one normalised session."""
+    """Derive, check, gate and emit one normalised session (one dated after ``now`` is refused)."""
+    if now is not None and session.performed_at > now + FUTURE_TOLERANCE:
+        latest = (now + FUTURE_TOLERANCE).isoformat(timespec="seconds")
+        expected = f"a test no later than the time the input was read (at most {latest}), got "
+        raise InvalidField("performed_at", expected + session.performed_at.isoformat(), source)
     derived = derive(
         session,
         tables,

@@ -161,7 +161,7 @@ def audit_file(
         data = read_file(path, job.pipeline.max_input_bytes)
         maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
         pipeline = replace(job.pipeline, field_map=maps.for_file(os.path.basename(path)))
-        for result in process_all(data, path, tables, pipeline):
+        for result in process_all(data, path, tables, pipeline, now=job.now):
             if isinstance(result, InputError):
                 rows.append(row_of_error(result, path))
                 continue

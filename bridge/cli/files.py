@@ -279,7 +279,7 @@ def cmd_map(args: argparse.Namespace, settings: Settings, tables: Tables) -> int
         reader = read_csv if fmap.format == "csv" else read_hl7
         records = list(reader(data, args.sample.name, fmap, tables.units))
         pipeline = replace(settings.pipeline, field_map=replace(fmap, on_bad_record="skip"))  # show every record
-        results = list(process_all(data, args.sample.name, tables, pipeline))
+        results = list(process_all(data, args.sample.name, tables, pipeline, now=datetime.now(UTC)))
     except InputError as exc:
         print(exc.with_source(str(args.sample)).line(), file=sys.stderr)
         return EXIT_BAD_INPUT
