@@ -18,8 +18,9 @@ from datetime import date
 from enum import StrEnum
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field
-from pydantic.json_schema import SkipJsonSchema
+from pydantic import AfterValidator, AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field, GetJsonSchemaHandler
+from pydantic.json_schema import JsonSchemaValue
+from pydantic_core import CoreSchema, PydanticOmit
 
 # Characters no output may carry in text: FHIR R4 strings match ^[ \r\n\t\S]+$ (ECMA-262 \s), so
 # control characters and white space other than space, tab and line breaks are refused, and so
@@ -99,13 +100,17 @@ IsoDateTime = Annotated[
 ]
 
 
-class Filled(SkipJsonSchema):
+@dataclass(frozen=True, slots=True)
+class Filled:
     """Annotation: a field the bridge fills while it reads, never one an export carries.
 
     Left out of the published schema, and refused by the reader when an export writes it
     (``filled_fields``): the reported digits and the original value and unit are the bridge's
     record of what the lab sent, not something a file may claim.
     """
+
+    def __get_pydantic_json_schema__(self, schema: CoreSchema, handler: GetJsonSchemaHandler) -> JsonSchemaValue:
+        raise PydanticOmit  # the field is left out of the schema, as pydantic's SkipJsonSchema does
 
 
 def filled_fields(model: type[BaseModel]) -> frozenset[str]:
