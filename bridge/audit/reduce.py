@@ -72,6 +72,7 @@ class ArchiveReduce:
     """Accumulates rows; :meth:`finish` gives the findings across the archive."""
 
     files: int = 0
+    skipped: int = 0  # files under the archive that are not exports (bridge.inputs, the skip rule): counted, not read
     readable: int = 0
     clean: int = 0
     by_check: Counter[str] = field(default_factory=Counter)

@@ -111,6 +111,7 @@ def summarise(reduce: ArchiveReduce) -> dict[str, object]:
     return {
         "caution": CAUTION,
         "files": reduce.files,
+        "skipped": reduce.skipped,
         "sessions_read": reduce.readable,
         "unreadable": reduce.files - reduce.readable,
         "clean": reduce.clean,

@@ -1,7 +1,8 @@
 """The audit's shell: walk the archive, map the one pipeline over its files in worker processes.
 
-Owns walking (``os.scandir``, iteratively: no recursion limit, one folder open at a time,
-no listing held whole), chunking, the bounded pool of worker processes
+Owns chunking the files :func:`bridge.inputs.find_inputs` finds under the archive (the folder
+and skip rule of every command: to any depth, one folder listed at a time, the skipped files
+counted), the bounded pool of worker processes
 (``concurrent.futures.ProcessPoolExecutor``), what one worker does with one file
 (:func:`audit_file`: read, :func:`bridge.pipeline.process`, row, NDJSON of a clean session),
 the same map on an existing Dask cluster (:func:`map_dask`), the progress line on a terminal,
@@ -36,7 +37,9 @@ from bridge.audit.reduce import ArchiveReduce
 from bridge.audit.report import ReportWriter
 from bridge.audit.rows import Row, row_of, row_of_error
 from bridge.emit.fhir_ndjson import to_ndjson
-from bridge.errors import InputError, ProcessingFailed, UnreadableInput
+from bridge.errors import InputError
+from bridge.inputs import each_input, find_inputs
+from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process_all
 from bridge.science.reference import ReferenceEquations
 from bridge.science.units import UnitSystem
@@ -80,32 +83,6 @@ class ChunkResult:
     ndjson: tuple[tuple[str, bytes], ...]  # (resource type, lines), resource types sorted
 
 
-def walk(paths: Iterable[Path]) -> Iterator[str]:
-    """Every file under ``paths`` (hidden names skipped, symlinked folders not followed).
-
-    Iterative, one ``os.scandir`` open at a time; a folder that cannot be listed is yielded
-    itself, so that reading it becomes a finding rather than a crash.
-    """
-    for top in paths:
-        if not top.is_dir():
-            yield str(top)
-            continue
-        folders = [str(top)]
-        while folders:
-            folder = folders.pop()
-            try:
-                with os.scandir(folder) as entries:
-                    for entry in entries:
-                        if entry.name.startswith("."):
-                            continue
-                        if entry.is_dir(follow_symlinks=False):
-                            folders.append(entry.path)
-                        else:
-                            yield entry.path
-            except OSError:
-                yield folder
-
-
 def chunked(files: Iterable[str], size: int) -> Iterator[list[str]]:
     """Consecutive lists of at most ``size`` files."""
     chunk: list[str] = []
@@ -136,43 +113,36 @@ def _equations() -> ReferenceEquations:
     return load_reference_equations()
 
 
-def read_file(path: str, limit: int) -> bytes:
-    """The bytes of one file; anything the file system refuses is an :class:`UnreadableInput`."""
-    try:
-        with open(path, "rb") as handle:
-            data = handle.read(limit + 1)
-    except OSError as exc:
-        raise UnreadableInput("(file)", f"a readable file ({exc.strerror or exc})", path) from exc
-    if len(data) > limit:
-        raise UnreadableInput("(file)", f"at most {limit} bytes", path)
-    return data
-
-
 def audit_file(
     path: str, job: Job, tables: Tables, equations: ReferenceEquations | None = None
 ) -> tuple[list[Row], dict[str, bytes]]:
     """One file through the one pipeline: a row per session (or refusal), and the NDJSON of the clean ones.
 
     A file read through a field map may hold many sessions; each bad record is a row of its own.
+    Reading it and the guard that keeps one file from stopping the others are
+    :func:`bridge.inputs.each_input`'s, as for ``check`` and ``convert``.
     """
-    rows: list[Row] = []
-    clean = []
-    try:
-        data = read_file(path, job.pipeline.max_input_bytes)
+
+    def work(data: bytes) -> Iterator[tuple[Row, Outcome | None]]:
         maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
         pipeline = replace(job.pipeline, field_map=maps.for_file(os.path.basename(path)))
         for result in process_all(data, path, tables, pipeline, now=job.now):
             if isinstance(result, InputError):
-                rows.append(row_of_error(result, path))
+                yield row_of_error(result, path), None
                 continue
             row = row_of(result, path, equations)
-            rows.append(row)
-            if job.emit_ndjson and row.clean:
-                clean.append(result)
-    except InputError as exc:
-        rows.append(row_of_error(exc, path))
-    except Exception as exc:  # one file must never stop the others
-        rows.append(row_of_error(ProcessingFailed.wrapping(exc, path), path))
+            yield row, result if job.emit_ndjson and row.clean else None
+
+    rows: list[Row] = []
+    clean = []
+    for item in each_input(Path(path), job.pipeline.max_input_bytes, work):
+        if isinstance(item, InputError):
+            rows.append(row_of_error(item, path))
+            continue
+        row, outcome = item
+        rows.append(row)
+        if outcome is not None:
+            clean.append(outcome)
     if not clean:
         return rows, {}
     return rows, to_ndjson(clean, tables, job.pipeline.emit.context(job.now, job.units, False))
@@ -292,9 +262,18 @@ def run_audit(
     writer = ReportWriter(report, ndjson=job.emit_ndjson)
     reduce = ArchiveReduce()
     shown = Progress(progress)
+    maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
+
+    def inputs() -> Iterator[str]:
+        for found in find_inputs(paths, maps):
+            if found.skipped is None:
+                yield str(found.path)
+            else:
+                reduce.skipped += 1
+
     with ArchiveIndex(report) as index:
         try:
-            chunks = chunked(walk(paths), settings.chunk_files)
+            chunks = chunked(inputs(), settings.chunk_files)
             results = (
                 map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
             )

@@ -10,6 +10,7 @@ from bridge import __version__
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
+from bridge.inputs import FOLDER_RULE
 from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
@@ -142,17 +143,29 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"dlco-bridge {__version__}")
     commands = parser.add_subparsers(dest="command", required=True)
     check = commands.add_parser("check", help="read, normalise, recompute and report findings")
-    check.add_argument("files", nargs="+", type=Path, help="export files or folders")
+    check.add_argument("files", nargs="+", type=Path, help=f"export files or folders: {FOLDER_RULE}")
     check.add_argument("--json", action="store_true", help="machine-readable output")
     _add_settings(check, emits=False)
     convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
-    convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
+    convert.add_argument("files", nargs="+", type=Path, help=f"export files or folders: {FOLDER_RULE}")
     convert.add_argument(
         "--to",
         action="append",
         help=f"fhir, hl7 or fhir,hl7; repeat or separate with commas (key to; default {','.join(DEFAULTS.to)})",
     )
-    convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
+    convert.add_argument(
+        "--out",
+        type=Path,
+        default=Path("out"),
+        help="output folder (default ./out): <test id>.bundle.json and <test id>.oru.hl7, the test id percent-encoded "
+        "where it holds other characters than letters, digits and -._~ (X/1 -> X%%2F1)",
+    )
+    convert.add_argument(
+        "--overwrite",
+        action="store_true",
+        help="let a later input whose test id was already converted from other content in this run replace it "
+        "(default: it is refused, naming both files)",
+    )
     _add_settings(convert, emits=True)
     demo = commands.add_parser("demo", help="run the invented scenario end to end in a temporary folder")
     _add_settings(demo, emits=True)
@@ -160,8 +173,16 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("file", type=Path, help="an ER7 HL7 v2 message or a FHIR Bundle (JSON)")
     commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
     audit = commands.add_parser("audit", help="check a whole archive, write a report folder (and bulk FHIR NDJSON)")
-    audit.add_argument("paths", nargs="+", type=Path, help="export files or folders (walked to any depth)")
-    audit.add_argument("--report", type=Path, required=True, help="folder for findings.csv, summary.json, report.html")
+    audit.add_argument("paths", nargs="+", type=Path, help=f"export files or folders, each must exist: {FOLDER_RULE}")
+    audit.add_argument(
+        "--report",
+        type=Path,
+        required=True,
+        help="folder for findings.csv, summary.json, report.html (a new or empty folder, or see --overwrite)",
+    )
+    audit.add_argument(
+        "--overwrite", action="store_true", help="replace the report an earlier audit left in the --report folder"
+    )
     audit.add_argument("--workers", type=int, help="worker processes (default: the number of CPUs)")
     audit.add_argument("--emit", choices=("ndjson",), help="also write the clean sessions as FHIR R4 NDJSON")
     audit.add_argument("--scheduler", help="run on an existing Dask cluster at this address (the [scale] extra)")

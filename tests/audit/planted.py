@@ -56,7 +56,7 @@ PLANTED = Counter(
         # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
         "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
         "UNREADABLE_INPUT": 3,  # three half-written files
-        "UNKNOWN_FORMAT": 3,  # two other formats and one binary file (no reader claims either)
+        "UNKNOWN_FORMAT": 2,  # two other formats named .json (no reader claims them); scan.pdf is skipped, not read
     }
 )
 SESSIONS = {LOWMARSH: (600, 3), SALTREACH: (300, 3), BRACKENFOLD: (100, 2)}  # patients, sessions each
