@@ -171,3 +171,43 @@ def test_finding_counts_are_plural_only_when_more_than_one(tmp_path, capsys):
 
     # 04-raised-cohb carries one finding (COHB_RAISED)
     assert ("[1 findings" in out, "[1 finding: " in out or "[1 finding]" in out) == (False, True)
+
+
+# ---------- issue 19.8: messages in the user's terms ----------
+
+
+def test_a_refusal_line_spells_units_as_people_do(tmp_path, capsys):
+    """A record refused for a blocking finding says 19.5 mL/min/mmHg, not UCUM's mm[Hg]."""
+    code = main(["convert", str(SAMPLES / "04-raised-cohb.json"), "--blocking", "COHB_RAISED", "--out", str(tmp_path)])
+    err = capsys.readouterr().err
+
+    assert 2 == code
+    assert ("mm[Hg]" in err, "mL/min/mmHg" in err) == (False, True)
+
+
+def test_map_check_text_says_mmhg_and_its_json_keeps_ucum(capsys):
+    """map check prints 754.6 mmHg for people; map check --json keeps the UCUM code mm[Hg]."""
+    args = ["map", "check", str(ROOT / "mappings/maps/lowmarsh-csv.toml"), str(SAMPLES / "legacy/lowmarsh-results.csv")]
+    main(args)
+    text = capsys.readouterr().out
+    main([*args, "--json"])
+    document = json.loads(capsys.readouterr().out)
+    values = [f["value"] for r in document["records"] if "fields" in r for f in r["fields"]]
+
+    assert ("mm[Hg]" in text, "754.6 mmHg" in text) == (False, True)
+    assert "754.6 mm[Hg]" in values
+
+
+def test_the_audit_report_spells_units_as_people_do(tmp_path, capsys):
+    """findings.csv and report.html say mmHg and °C where a finding names a value (UCUM mm[Hg], Cel before)."""
+    archive = tmp_path / "archive"
+    archive.mkdir()
+    for name in ("03-high-altitude.json", "04-raised-cohb.json", "06-three-manoeuvres.json"):
+        (archive / name).write_bytes((SAMPLES / name).read_bytes())
+
+    main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1"])
+    capsys.readouterr()
+    written = {name: (tmp_path / "r" / name).read_text(encoding="utf-8") for name in ("findings.csv", "report.html")}
+
+    assert {name: False for name in written} == {name: "mm[Hg]" in text for name, text in written.items()}
+    assert "mmHg" in written["findings.csv"]

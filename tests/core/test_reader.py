@@ -91,15 +91,29 @@ CASES = {
     ),
     # common practice: no lung or lab gives a DLCO above 1000 mL/min/mmHg (adults are 10-50); such
     # a number is corrupt and must be refused before any arithmetic overflows on it
+    # The limit is said in the unit the file used: 1000 mL/min/mmHg / 2.987 = 334.8 mmol/min/kPa
+    # (source: ATS/ERS 2017 DLCO standard, 1 mmol/min/kPa = 2.987 mL/min/mmHg)
     "huge DLCO (1e308)": (
         _mutated(lambda d: d["results"]["dlco"].update(value=1e308)),
         "results.dlco.value",
-        "at most 1000",
+        "at most 334.8 mmol/min/kPa in magnitude, got 1e+308 mmol/min/kPa",
     ),
-    "huge DLCO in SI units": (
-        _mutated(lambda d: d["results"]["dlco"].update(value=1e307, unit="mmol/min/kPa")),
+    "huge DLCO in traditional units": (
+        _mutated(lambda d: d["results"]["dlco"].update(value=1e307, unit="mL/min/mmHg")),
         "results.dlco.value",
-        "at most 1000",
+        "at most 1000 mL/min/mmHg in magnitude, got 1e+307 mL/min/mmHg",
+    ),
+    # Issue 19.8: a pressure labelled kPa is not compared with 2000 mmHg; 2000 mmHg x 0.133322 kPa/mmHg
+    # = 266.6 kPa (source: NIST SP 811 (2008) B.8, 1 mmHg = 133.3224 Pa)
+    "pressure beyond the limit in kPa": (
+        _mutated(lambda d: d.update(conditions={"barometric_pressure": {"value": 760, "unit": "kPa"}})),
+        "conditions.barometric_pressure.value",
+        "at most 266.6 kPa in magnitude, got 760 kPa",
+    ),
+    "unknown unit said as people write them": (
+        _mutated(lambda d: d.update(conditions={"barometric_pressure": {"value": 760, "unit": "torrs"}})),
+        "conditions.barometric_pressure.unit",
+        "is not a known unit for pressure (e.g. mmHg)",
     ),
     "infinite value (1e400)": (
         _mutated(lambda d: d["results"]["va"].update(value=1.0)).replace(b'"value": 1.0', b'"value": 1e400'),
