@@ -178,15 +178,17 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
     for signum in (signal.SIGTERM, signal.SIGINT):
         signal.signal(signum, lambda *_: stop.set())
     store = ResourceStore(where.resources)
-    mllp: MllpPeer | None = None
     try:
         mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
+    except OSError as exc:
+        store.close()
+        raise _port_taken("--mllp-port", where.mllp_port, exc) from exc
+    try:
         fhir = FhirPeer(store, where.fhir_port)
     except OSError as exc:
-        if mllp is not None:
-            mllp.server.server_close()
+        mllp.server.server_close()
         store.close()
-        raise ConfigError("--mllp-port/--fhir-port", f"free ports on 127.0.0.1 ({exc.strerror or exc})") from exc
+        raise _port_taken("--fhir-port", where.fhir_port, exc) from exc
     mllp.start()
     fhir.start()
     print(f"dlco-bridge stand-in: MLLP on 127.0.0.1:{mllp.port} (answers {where.answer}), FHIR at {fhir.url}")
@@ -199,6 +201,11 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
         store.close()
     print(f"dlco-bridge stand-in: stopped; {_count(mllp.received, 'message')}, {_count(fhir.bundles, 'Bundle')}")
     return EXIT_OK
+
+
+def _port_taken(flag: str, port: int, exc: OSError) -> ConfigError:
+    """One line naming the flag and the port that could not be bound."""
+    return ConfigError(flag, f"a free port on 127.0.0.1, got {port} ({exc.strerror or exc})")
 
 
 def _list_stand_in(where: StandInSettings) -> int:

@@ -157,7 +157,7 @@ class HealthServer:
             self.server = ThreadingHTTPServer((host, port), handler)
         except OSError as exc:
             # A port taken by another program is a setting to change, said in one line.
-            raise ConfigError("metrics_port", f"a free port on {host} ({exc.strerror or exc})") from exc
+            raise ConfigError("metrics_port", f"a free port on {host}, got {port} ({exc.strerror or exc})") from exc
         self.thread = threading.Thread(target=self.server.serve_forever, name="health", daemon=True)
 
     @property
