@@ -148,3 +148,74 @@ def test_audit_refuses_a_folder_holding_an_earlier_report_unless_told(tmp_path, 
     assert (1, 0) == (refused, replaced)
     assert f"dlco-bridge: --report: a folder without an earlier report, got {report} holding findings.csv" in err
     assert not (report / "ndjson").exists()
+
+
+# ---------- issue 19.10: patient data is protected alike ----------
+
+
+def _modes(folder: Path) -> dict[str, str]:
+    """Each file's and folder's permission bits below ``folder``, as octal text."""
+    return {str(p.relative_to(folder)): oct(p.stat().st_mode & 0o777) for p in sorted(folder.rglob("*"))}
+
+
+@pytest.fixture
+def permissive_umask():
+    """The user's umask lets everyone read (022, a common default): the policy must not depend on it."""
+    before = os.umask(0o022)
+    yield
+    os.umask(before)
+
+
+def test_every_file_with_patient_data_is_the_owners_alone(tmp_path, capsys, permissive_umask):
+    """convert's outputs, the audit's report (patient names) and NDJSON: files 0600, folders made 0700."""
+    archive = tmp_path / "archive"
+    _export(archive, "a.json", "T-1")
+
+    main(["convert", str(archive), "--out", str(tmp_path / "out")])
+    main(["audit", str(archive), "--report", str(tmp_path / "report"), "--workers", "1", "--emit", "ndjson"])
+    capsys.readouterr()
+    modes = {**_modes(tmp_path / "out"), **_modes(tmp_path / "report")}
+    folders = {name: oct(p.stat().st_mode & 0o777) for name, p in (("out", tmp_path / "out"),
+                                                                   ("report", tmp_path / "report"))}  # fmt: skip
+
+    # common practice (POSIX permission bits): 0600 read and write for the owner only, 0700 for a folder
+    assert {name: "0o700" if (tmp_path / "report" / name).is_dir() else "0o600" for name in modes if name} == modes
+    assert {"out": "0o700", "report": "0o700"} == folders
+
+
+def test_the_service_folders_and_ledger_are_the_owners_alone(tmp_path):
+    """watch, started under umask 022, makes its state, archive and quarantine 0700 and the ledger 0600."""
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    config = tmp_path / "bridge.toml"
+    config.write_text(
+        'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n'
+        '[destination.records]\npayload = "hl7"\ntransport = "mllp"\nhost = "127.0.0.1"\nport = 1\n'
+    )
+    (tmp_path / "in").mkdir()
+    environment = {**os.environ, "PYTHONPATH": str(ROOT)}
+    environment.pop("DLCO_BRIDGE_CONFIG", None)
+    process = subprocess.Popen(
+        [sys.executable, "-m", "bridge", "watch", "--config", str(config)],
+        stderr=subprocess.PIPE, env=environment, preexec_fn=lambda: os.umask(0o022),
+    )  # fmt: skip
+    deadline = time.monotonic() + 60
+    while not (tmp_path / "q").exists() and time.monotonic() < deadline:  # made after the ledger opened
+        time.sleep(0.05)
+    process.send_signal(signal.SIGTERM)
+    process.communicate(timeout=30)
+    made = {name: oct((tmp_path / name).stat().st_mode & 0o777) for name in ("st", "ar", "q", "st/ledger.sqlite3")}
+
+    # common practice (POSIX permission bits): 0600 read and write for the owner only, 0700 for a folder
+    assert {"st": "0o700", "ar": "0o700", "q": "0o700", "st/ledger.sqlite3": "0o600"} == made
+
+
+def test_the_demo_says_where_its_files_stay(capsys):
+    """demo leaves its outputs for `show` and says where, and how to remove them."""
+    main(["demo"])
+    out = capsys.readouterr().out
+
+    assert "the demo's files (invented data) stay in " in out and "; remove them with: rm -r " in out

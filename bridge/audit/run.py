@@ -290,6 +290,7 @@ def run_audit(
     return writer.finish(reduce, archive)
 
 
-def terminal(stream: TextIO = sys.stderr) -> TextIO | None:
-    """``stream`` when it is a terminal (the progress line), else None (quiet)."""
+def terminal(stream: TextIO | None = None) -> TextIO | None:
+    """``stream`` (standard error as it is now) when it is a terminal (the progress line), else None (quiet)."""
+    stream = sys.stderr if stream is None else stream
     return stream if stream.isatty() else None

@@ -214,7 +214,8 @@ def cmd_demo(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
             print(f"           {label} {finding.code}: {finding_text(finding, tables, settings.units)}")
     good = sum(1 for _, r, _ in converted if not isinstance(r, InputError))
     print(f"\n  {good} sessions converted, {len(converted) - good} refused; outputs in {out}")
-    print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7\n")
+    print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7")
+    print(f"  the demo's files (invented data) stay in {work}; remove them with: rm -r {work}\n")
     print(CAUTION)
     return EXIT_OK
 
