@@ -211,3 +211,23 @@ def test_the_audit_report_spells_units_as_people_do(tmp_path, capsys):
 
     assert {name: False for name in written} == {name: "mm[Hg]" in text for name, text in written.items()}
     assert "mmHg" in written["findings.csv"]
+
+
+# ---------- issue 19.11: the README's set-up works on a locked system Python ----------
+
+
+def test_readme_set_up_makes_a_virtual_environment_before_installing():
+    """The venv step comes before the two install commands (a PEP 668 system Python refuses pip outside one)."""
+    # source: PEP 668, "Marking Python base environments as externally managed"
+    venv = README.index("python3 -m venv .venv && . .venv/bin/activate")
+
+    assert venv < README.index("python3 -m pip install -e . && dlco-bridge demo")
+    assert venv < README.index("python3 -m pip install -e '.[test]' && python3 -m pytest")
+
+
+def test_readme_says_the_browser_tests_need_chromium_as_ci_gets_it():
+    """The README names Chromium for the browser tests and how .ci/run gets it, which .ci/run does."""
+    ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
+
+    assert "apt-get install -y chromium" in ci
+    assert "**Chromium**" in README and "`.ci/run`" in README and "apt-get install -y chromium" in README
