@@ -148,3 +148,42 @@ def test_ctrl_c_during_an_audit_is_one_line_from_the_command_and_none_from_its_w
     _, err = process.communicate(timeout=120)
 
     assert (EXIT_SIGINT, b"dlco-bridge: interrupted\n") == (process.returncode, err)
+
+
+def _service_config(tmp_path: Path) -> Path:
+    config = tmp_path / "bridge.toml"
+    config.write_text(
+        'inbox = "in"\narchive = "ar"\nquarantine = "q"\nstate = "st"\n'
+        '[destination.records]\npayload = "hl7"\ntransport = "mllp"\nhost = "127.0.0.1"\nport = 1\n'
+    )
+    from bridge.service.ledger import Ledger
+
+    Ledger.open(tmp_path / "st" / "ledger.sqlite3").close()
+    return config
+
+
+@pytest.mark.parametrize(
+    ("args", "line"),
+    [
+        # source: SQLite datatypes, an INTEGER is a signed 8-byte value (an id beyond it was an OverflowError)
+        (["resend", "99999999999999999999999"], "dlco-bridge: ID: an outbox id (dlco-bridge status --json), got "),
+        (["prune", "--older-than", "inf"], "dlco-bridge: --older-than: a number of days >= 0, got inf"),
+    ],
+    ids=["resend id beyond SQLite", "prune inf days"],
+)
+def test_impossible_numbers_on_service_commands_are_one_line(tmp_path, capsys, args, line):
+    """An id no ledger can hold, an infinite number of days: one line, exit 1."""
+    config = _service_config(tmp_path)
+
+    code = main([args[0], "--config", str(config), *args[1:]])
+    err = capsys.readouterr().err
+
+    assert (1, True, 1) == (code, err.startswith(line), err.count("\n"))
+
+
+def test_a_huge_input_limit_is_refused_at_start_not_per_file(capsys):
+    """--max-input-bytes 1e26 was accepted, then every file failed as an internal error; now one line at start."""
+    code = main(["check", "--max-input-bytes", "99999999999999999999999999", str(SAMPLES / "01-healthy-adult.json")])
+
+    assert 1 == code
+    assert capsys.readouterr().err.startswith("dlco-bridge: --max-input-bytes: a whole number from 1 to 1073741824")

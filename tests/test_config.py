@@ -66,7 +66,10 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ('units = "imperial"\n', "units", "one of si, traditional"),
         ("traditional_per_si = 3.0\n", "traditional_per_si", "2.987 or 2.986"),
         ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
-        ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
+        ("max_input_bytes = 0\n", "max_input_bytes", "a whole number from 1 to 1073741824, got 0"),
+        # every input is read whole: a limit beyond 1 GiB, or a fraction of a byte, is a mistake
+        ("max_input_bytes = 1e26\n", "max_input_bytes", "a whole number from 1 to 1073741824, got 1e+26"),
+        ("max_input_bytes = 1500.5\n", "max_input_bytes", "a whole number from 1 to 1073741824, got 1500.5"),
         ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
         ("allow = 3\n", "allow", "a list of finding codes"),
         ('[emit]\nhemoglobin_unit = "mmol/L"\n', "emit.hemoglobin_unit", "one of g/L, g/dL"),

@@ -131,4 +131,4 @@ def test_a_bad_flag_value_names_the_flag_not_a_configuration_file(capsys):
     err = capsys.readouterr().err
 
     assert 1 == code
-    assert "dlco-bridge: --max-input-bytes: a number >= 1, got 0\n" == err
+    assert "dlco-bridge: --max-input-bytes: a whole number from 1 to 1073741824, got 0\n" == err

@@ -94,6 +94,10 @@ def _schema_accepts(doc: dict) -> bool:
         ("conditions", {"inspired_o2_fraction": True}, False),
         ("conditions", {"inspired_o2_fraction": "0.21"}, False),
         ("conditions", {"inspired_o2_fraction": 0.21}, True),
+        # U+0085 is white space to Python but not to ECMA-262's \s: a name of nothing else, or in a URI
+        ("lab.name", "\x85", False),
+        ("lab.name", "Lab\x85North (fictional)", True),
+        ("patient.id_system", "urn:x\x85y", False),
     ],
 )
 def test_the_reader_and_the_schema_agree_on_each_example(path, value, accepted):

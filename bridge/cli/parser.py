@@ -43,7 +43,8 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool) -> None:
     parser.add_argument(
         "--max-input-bytes",
         type=int,
-        help=f"largest input accepted (key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
+        help="largest input accepted, in bytes: a whole number up to 1073741824 "
+        f"(key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
     )
     parser.add_argument(
         "--map",

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import math
 import signal
 import sys
 import threading
@@ -117,6 +118,9 @@ def cmd_status(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
     return EXIT_OK
 
 
+SQLITE_MAX_INTEGER = 2**63 - 1  # source: SQLite datatypes, INTEGER is a signed 8-byte value
+
+
 def existing_ledger(settings: Settings) -> Path:
     """The service's ledger, which must exist: a mistyped state folder is not a fresh, empty ledger."""
     service = settings.require_service()
@@ -131,6 +135,8 @@ def existing_ledger(settings: Settings) -> Path:
 
 
 def cmd_resend(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
+    if args.id is not None and not 1 <= args.id <= SQLITE_MAX_INTEGER:
+        raise ConfigError("ID", f"an outbox id (dlco-bridge status --json), got {args.id}")
     with Ledger.open(existing_ledger(settings)) as ledger:
         if args.rejected:
             count = ledger.requeue_rejected()
@@ -143,7 +149,7 @@ def cmd_resend(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
 
 def cmd_prune(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     service = settings.require_service()
-    if not args.older_than >= 0:
+    if not (math.isfinite(args.older_than) and args.older_than >= 0):
         raise ConfigError("--older-than", f"a number of days >= 0, got {args.older_than}")
     # The service prunes on its own (retention_days); by hand, only while it is stopped.
     with ServiceLock.acquire(service.state), Ledger.open(existing_ledger(settings)) as ledger:

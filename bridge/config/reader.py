@@ -71,6 +71,8 @@ _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
 
 
+# The most max_input_bytes may be: every input is read whole into memory (a DLCO export is a few kB).
+MAX_INPUT_BYTES_LIMIT = 1024**3
 VALIDATE_MODULE = "fhir.resources"  # the [validate] extra: what --validate needs
 
 
@@ -152,7 +154,9 @@ class SettingsReader(ValueChecker):
         if both:
             raise self.fail("allow", f"codes that are not also blocking, got {both[0]} in both")
         return PipelineSettings(
-            max_input_bytes=int(self.number("max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1)),
+            max_input_bytes=self.whole(
+                "max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1, MAX_INPUT_BYTES_LIMIT
+            ),
             blocking=blocking,
             allow=allow,
             validate_outputs=validate,

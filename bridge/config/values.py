@@ -7,6 +7,7 @@ builds the settings from the merged TOML, environment and flags.
 
 from __future__ import annotations
 
+import math
 import re
 from collections.abc import Mapping
 from pathlib import Path
@@ -64,6 +65,13 @@ class ValueChecker:
                 key, f"a number >= {low:g}, got {value!r}" if low is not None else f"a number, got {value!r}"
             )
         return number
+
+    def whole(self, key: str, value: Any, low: int, high: int) -> int:
+        """A whole number from ``low`` to ``high`` (1.5 is not silently 1)."""
+        number = self.number(key, value)
+        if not (math.isfinite(number) and number == int(number) and low <= number <= high):
+            raise self.fail(key, f"a whole number from {low} to {high}, got {value!r}")
+        return int(number)
 
     def port(self, key: str, value: Any, allow_zero: bool) -> int:
         number = self.number(key, value)
