@@ -231,3 +231,21 @@ def test_readme_says_the_browser_tests_need_chromium_as_ci_gets_it():
 
     assert "apt-get install -y chromium" in ci
     assert "**Chromium**" in README and "`.ci/run`" in README and "apt-get install -y chromium" in README
+
+
+def _help(command: str, dest: str) -> str:
+    return next(a for p, a in _options(build_parser()) if p.endswith(command) and a.dest == dest).help
+
+
+def test_new_rules_are_stated_alike_in_help_and_readme():
+    """Issue 19: what --help says of list flags, output names, --overwrite and the input limit, the README says."""
+    from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES
+
+    assert all("repeat or separate with commas" in _help("convert", d) for d in ("allow", "blocking", "to"))
+    assert "a repeated flag (`--allow`, `--blocking`, `--to`) adds to the list" in README
+    assert "X%%2F1" in _help("convert", "out") and "`X/1` → `X%2F1`" in README  # argparse doubles % in help
+    assert "--overwrite" in README and "[--out DIR] [--overwrite]" in README
+    assert "--report DIR [--overwrite]" in README and "earlier" in _help("audit", "overwrite")
+    assert "1073741824" in _help("check", "max_input_bytes") and "up to 1073741824" in README
+    assert f"default {DEFAULT_MAX_INPUT_BYTES}" in _help("check", "max_input_bytes")
+    assert f"{DEFAULT_MAX_INPUT_BYTES} by default" in README
