@@ -227,3 +227,13 @@ def test_check_takes_the_repeatability_flag(capsys):
     assert 0 == code
     out = capsys.readouterr().out
     assert "repeatable (ATS/ERS 2005: within 3 mL/min/mmHg or 10 % of the highest)" in out
+
+
+def test_a_variable_for_a_destination_the_file_lacks_names_the_variable():
+    """DLCO_BRIDGE_DESTINATION_RECORD_PORT (RECORDS misspelt) makes a destination without a transport: named."""
+    text = 'inbox = "i"\narchive = "a"\nquarantine = "q"\nstate = "s"\n'
+    text += '[destination.records]\npayload = "hl7"\ntransport = "mllp"\nport = 2575\n'
+
+    error = _error(text, {"DLCO_BRIDGE_DESTINATION_RECORD_PORT": "2576"})
+
+    assert ("DLCO_BRIDGE_DESTINATION_RECORD_PORT", "") == (error.key, error.source)

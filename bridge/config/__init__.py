@@ -101,6 +101,8 @@ def _with_environment(data: dict[str, Any], environ: Mapping[str, str], origins:
         if key.startswith("destination_"):
             dest, _, dest_key = key[len("destination_") :].partition("_")
             match = next((d for d in destinations if d.lower() == dest), dest)
+            if match not in destinations:  # a destination the file does not have: its errors name the variable
+                origins.setdefault(f"destination.{match}", name)
             destinations.setdefault(match, {})[dest_key] = value
             origins[f"destination.{match}.{dest_key}"] = name
         elif key.startswith("emit_"):
