@@ -16,6 +16,7 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from datetime import date
 from enum import StrEnum
+from functools import partial
 from typing import Annotated, Literal
 
 from pydantic import AfterValidator, AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field, GetJsonSchemaHandler
@@ -48,9 +49,7 @@ def _uri(value: str) -> str:
     return value
 
 
-# The same rules as JSON Schema patterns (ECMA-262), for the published schema of the format.
-# U+0085 (NEL) is white space to Python's str.strip() and \s but not to ECMA-262's \s: named, so that
-# the schema and the reader agree on a text of nothing but it.
+# The same rules as JSON Schema patterns (ECMA-262); U+0085 is white space to Python, not to ECMA-262: named.
 _TEXT_PATTERN = (
     r"^[ \t\r\n]*[^\s\x00-\x1f\x7f\x85][^\x00-\x08\x0b\x0c\x0e-\x1f\x7f"
     r"\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff]*$"
@@ -58,58 +57,30 @@ _TEXT_PATTERN = (
 _URI_PATTERN = r"^[^\s\x00-\x1f\x7f\x85]+$"
 Text = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _TEXT_PATTERN}), AfterValidator(_carried_text)]
 Uri = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _URI_PATTERN}), AfterValidator(_uri)]
-# Dates and date-times are text in an export, exactly as RFC 3339 writes them (section 5.6:
-# full-date, and date-time with its offset); the UTC offset at most 14 hours either way
-# (source: HL7 FHIR R4 dateTime regex, offsets -14:00 to +14:00). The same patterns go into the
-# published schema (ECMA-262), so that the schema and the reader accept the same text.
+# Dates, date-times: text as RFC 3339 5.6 writes them, offsets within 14 h (source: HL7 FHIR R4 dateTime regex)
 _DATE = r"[0-9]{4}-(0[1-9]|1[0-2])-(0[1-9]|[12][0-9]|3[01])"
 _TIME = r"([01][0-9]|2[0-3]):[0-5][0-9]:[0-5][0-9](\.[0-9]+)?"
-_OFFSET = r"([Zz]|[+-]((0[0-9]|1[0-3]):[0-5][0-9]|14:00))"
 DATE_PATTERN = f"^{_DATE}$"
-DATE_TIME_PATTERN = f"^{_DATE}[Tt]{_TIME}{_OFFSET}$"
+DATE_TIME_PATTERN = f"^{_DATE}[Tt]{_TIME}([Zz]|[+-]((0[0-9]|1[0-3]):[0-5][0-9]|14:00))$"
+_DATE_TIME_EXPECTED = "a date-time with a UTC offset between -14:00 and +14:00 (e.g. 2026-03-02T09:15:00+01:00)"
 
 
-def _written_as(pattern: str, expected: str) -> Callable[[object], object]:
-    """A check before parsing: text in ``pattern`` (a date object built in Python passes as it is).
-
-    Without it pydantic would also take a number (seconds since 1970) or a date-time given for a
-    date, which the published schema does not allow.
-    """
-    compiled = re.compile(pattern)
-
-    def check(value: object) -> object:
-        if isinstance(value, date) or (isinstance(value, str) and compiled.fullmatch(value)):
-            return value
-        raise ValueError(expected)
-
-    return check
+def _text_in(pattern: re.Pattern[str], expected: str, value: object) -> object:
+    """Text in ``pattern``, or a date built in Python; never a number (pydantic takes seconds since 1970)."""
+    if isinstance(value, date) or (isinstance(value, str) and pattern.fullmatch(value)):
+        return value
+    raise ValueError(expected)
 
 
-IsoDate = Annotated[
-    date,
-    BeforeValidator(_written_as(DATE_PATTERN, "a date YYYY-MM-DD")),
-    Field(json_schema_extra={"pattern": DATE_PATTERN}),
-]
-IsoDateTime = Annotated[
-    AwareDatetime,
-    BeforeValidator(
-        _written_as(
-            DATE_TIME_PATTERN,
-            "a date-time with a UTC offset between -14:00 and +14:00 (e.g. 2026-03-02T09:15:00+01:00)",
-        )
-    ),
-    Field(json_schema_extra={"pattern": DATE_TIME_PATTERN}),
-]
+_DATE_RULE = BeforeValidator(partial(_text_in, re.compile(DATE_PATTERN), "a date YYYY-MM-DD"))
+IsoDate = Annotated[date, _DATE_RULE, Field(json_schema_extra={"pattern": DATE_PATTERN})]
+_DATE_TIME_RULE = BeforeValidator(partial(_text_in, re.compile(DATE_TIME_PATTERN), _DATE_TIME_EXPECTED))
+IsoDateTime = Annotated[AwareDatetime, _DATE_TIME_RULE, Field(json_schema_extra={"pattern": DATE_TIME_PATTERN})]
 
 
 @dataclass(frozen=True, slots=True)
 class Filled:
-    """Annotation: a field the bridge fills while it reads, never one an export carries.
-
-    Left out of the published schema, and refused by the reader when an export writes it
-    (``filled_fields``): the reported digits and the original value and unit are the bridge's
-    record of what the lab sent, not something a file may claim.
-    """
+    """Annotation: a field the bridge fills while it reads (left out of the schema, refused in an export)."""
 
     def __get_pydantic_json_schema__(self, schema: CoreSchema, handler: GetJsonSchemaHandler) -> JsonSchemaValue:
         raise PydanticOmit  # the field is left out of the schema, as pydantic's SkipJsonSchema does
@@ -117,9 +88,7 @@ class Filled:
 
 def filled_fields(model: type[BaseModel]) -> frozenset[str]:
     """The fields of ``model`` marked :class:`Filled`."""
-    return frozenset(
-        name for name, info in model.model_fields.items() if any(isinstance(m, Filled) for m in info.metadata)
-    )
+    return frozenset(n for n, info in model.model_fields.items() if any(isinstance(m, Filled) for m in info.metadata))
 
 
 class Frozen(BaseModel):
@@ -145,15 +114,13 @@ class Original(Frozen):
 
 
 class Quantity(Frozen):
-    """A value with its UCUM unit; in an export, ``{"value": 21.4, "unit": "mL/min/mm[Hg]"}``.
+    """A value with its UCUM unit; an export writes ``{"value": 21.4, "unit": "mL/min/mm[Hg]"}``.
 
-    The bridge records the rest itself (fields marked :class:`Filled`): ``decimals``, the number
-    of digits after the point the source reported, so that 7.460 is emitted as 7.460 (``None``
-    for values computed here); ``original``, the value and unit as the source wrote them.
+    The bridge fills (:class:`Filled`) ``decimals``, the digits the source reported after the point (7.460
+    is emitted as 7.460; ``None`` when computed here), and ``original``, the value and unit as written.
     """
 
-    # strict: a JSON number only (true is not 1, "9.84" is text), as the published schema says
-    value: float = Field(allow_inf_nan=False, strict=True)
+    value: float = Field(allow_inf_nan=False, strict=True)  # a JSON number only: not true, not "9.84"
     unit: str = Field(min_length=1)
     decimals: Annotated[int | None, Filled()] = Field(default=None, ge=0, le=12)
     original: Annotated[Original | None, Filled()] = None
