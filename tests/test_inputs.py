@@ -182,16 +182,16 @@ def test_audit_reads_the_same_files_as_check(tmp_path, capsys):
 
 
 def test_help_and_readme_state_the_one_folder_rule():
-    """check, convert and audit --help state the rule, in the words the README uses."""
+    """check, convert, audit and watch --help state the rule, in the words the README uses."""
     parser = build_parser()
     helps = {
         name: parser._subparsers._group_actions[0].choices[name].format_help()  # argparse keeps no public accessor
-        for name in ("check", "convert", "audit")
+        for name in ("check", "convert", "audit", "watch")
     }
 
     stated = {name: " ".join(FOLDER_RULE.split()) in " ".join(text.split()) for name, text in helps.items()}
 
-    assert {"check": True, "convert": True, "audit": True} == stated
+    assert {"check": True, "convert": True, "audit": True, "watch": True} == stated
     assert FOLDER_RULE in " ".join(README.split())
 
 

@@ -200,7 +200,11 @@ def build_parser() -> argparse.ArgumentParser:
         "--records", type=int, default=SHOWN_RECORDS, help=f"records shown field by field (default {SHOWN_RECORDS})"
     )
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
-    watch = commands.add_parser("watch", help="run the watch-folder service")
+    watch = commands.add_parser(
+        "watch",
+        help="run the watch-folder service",
+        description=f"Take each complete export from the inbox (which must exist) and deliver it: {FOLDER_RULE}.",
+    )
     watch.add_argument("--config", type=Path, help=config_help)
     _add_science(watch)
     status = commands.add_parser("status", help="what the service's ledger holds: pending, delivered, rejected")
