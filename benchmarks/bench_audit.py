@@ -82,14 +82,17 @@ class PeakMemory(threading.Thread):
 
 def child(kind: str, root: Path, workers: int, emit: bool) -> dict[str, float]:
     """One measurement in this (fresh) process."""
-    from bridge.audit.run import AuditSettings, Job, read_file, run_audit, walk
+    from bridge.audit.run import AuditSettings, Job, run_audit
+    from bridge.inputs import find_inputs, read_input
     from bridge.pipeline import PipelineSettings
+    from bridge.tables.field_map_model import MapChoice
 
     sampler = PeakMemory()
     sampler.start()
     started = time.perf_counter()
     if kind == "floor":
-        files = sum(1 for path in walk([root]) if read_file(path, 1 << 22) is not None)
+        found = (f.path for f in find_inputs([root], MapChoice()) if f.skipped is None)
+        files = sum(1 for path in found if read_input(path, 1 << 22) is not None)
     else:
         job = Job(PipelineSettings(), 2.987, "traditional", datetime.now(UTC), emit)
         with tempfile.TemporaryDirectory() as report:

@@ -18,7 +18,7 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
-from datetime import datetime
+from datetime import datetime, timedelta
 
 from bridge.emit.outputs import payloads, refuse_blocked
 from bridge.emit.settings import EmitSettings
@@ -38,6 +38,10 @@ from bridge.tables import Tables
 from bridge.tables.field_map_model import FieldMap
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
+# A test dated later than the time its input was read, by more than this, cannot have happened:
+# a device clock a year out, day and month swapped. The hour allows for clocks that drift and
+# a lab computer that missed the change to summer time.
+FUTURE_TOLERANCE = timedelta(hours=1)
 UNMAPPED_CODE = "UNMAPPED_SOURCE_CODE"  # a field map reader met a source code its map does not name
 
 
@@ -101,14 +105,17 @@ def process(
 ) -> Outcome:
     """Read, normalise, derive, check, gate and emit one input.
 
+    ``now`` is the time the shell read (the clock stays out of the core): a test dated after it,
+    beyond :data:`FUTURE_TOLERANCE`, is refused, and it is the send time of what is emitted.
     ``routes`` empty: nothing is emitted and no gate applies (``check``) unless ``gate`` asks for
-    it (the audit: which records the gate would refuse, without building what it does not write). Otherwise ``now`` is
-    the send time the shell read, and ``is_correction(test_id, sha256)`` says whether this
-    content replaces a result already sent, and ``sent_before(test_id)`` what was sent for it
-    (so a correction withdraws what it no longer gives; ``bridge.emit.status``). Raises
-    :class:`InputError` when the input cannot be read, an ERROR finding not allowed (or a blocking
-    one) refuses it, or (with ``validate_outputs``) an independent validator finds a payload
-    invalid; an error raised at the gate or while emitting carries the checked record as ``outcome``.
+    it (the audit: which records the gate would refuse, without building what it does not write).
+    Otherwise ``is_correction(test_id, sha256)`` says whether this content replaces a result
+    already sent, and ``sent_before(test_id)`` what was sent for it (so a correction withdraws
+    what it no longer gives; ``bridge.emit.status``). Raises :class:`InputError` when the input
+    cannot be read, is impossible (born after the test, nothing measured, dated in the future),
+    an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``)
+    an independent validator finds a payload invalid; an error raised at the gate or while
+    emitting carries the checked record as ``outcome``.
     """
     if settings.field_map is not None:
         results = list(
@@ -225,7 +232,11 @@ def _complete(
     history: tuple[Callable[[str, str], bool], SentBefore],
     gate: bool = False,
 ) -> Outcome:
-    """Apply the lab's statuses, derive, check, gate and emit one normalised session."""
+    """Apply the lab's statuses, derive, check, gate and emit one session (one dated after ``now`` is refused)."""
+    if now is not None and session.performed_at > now + FUTURE_TOLERANCE:
+        latest = (now + FUTURE_TOLERANCE).isoformat(timespec="seconds")
+        expected = f"a test no later than the time the input was read (at most {latest}), got "
+        raise InvalidField("performed_at", expected + session.performed_at.isoformat(), source)
     session, status_findings = apply_lab_status(session, tables.result_status, source)
     derived = derive(
         session,

@@ -24,6 +24,7 @@ CORE = (
     "tables/units.py",
     "tables/grades.py",
     "tables/codes.py",
+    "tables/finding_codes.py",
     "tables/plausibility.py",
     "tables/result_status.py",
     "tables/canonical_fields.py",
@@ -43,6 +44,7 @@ CORE = (
 SHELL = (
     "cli",
     "config",
+    "inputs.py",
     "tables/files.py",
     "service",
     "audit/run.py",

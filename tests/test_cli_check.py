@@ -110,3 +110,33 @@ def test_internal_failure_is_one_line_naming_the_file():
     assert isinstance(failed, InputError)
     assert "inbox/a.json: (internal): no internal error, got ZeroDivisionError: float division by zero" in str(failed)
     assert "\n" not in str(failed)
+
+
+def _sample_with(tmp_path: Path, name: str, change) -> Path:
+    doc = json.loads((SAMPLES / "01-healthy-adult.json").read_text())
+    change(doc)
+    path = tmp_path / name
+    path.write_text(json.dumps(doc))
+    return path
+
+
+def test_impossible_records_are_refused_by_check_and_convert(tmp_path, capsys):
+    """Born after the test, dated in the future, nothing measured: one line each, exit 2, nothing written."""
+    from datetime import UTC, datetime, timedelta
+
+    later = (datetime.now(UTC) + timedelta(days=30)).isoformat(timespec="seconds")  # the shell's clock decides
+    files = [
+        _sample_with(tmp_path, "born-later.json", lambda d: d["patient"].update(birth_date="2027-01-01")),
+        _sample_with(tmp_path, "future.json", lambda d: d.update(performed_at=later)),
+        _sample_with(tmp_path, "empty.json", lambda d: d.update(results={})),
+    ]
+    for command in ("check", "convert"):
+        extra = ["--out", str(tmp_path / "out")] if command == "convert" else []
+        code = main([command, *map(str, files), *extra])
+        err = capsys.readouterr().err
+
+        assert 2 == code
+        fields = ("patient.birth_date", "performed_at", "results")
+        expected = [f"{f}: {field}" for f, field in zip(files, fields, strict=True)]
+        assert expected == [": ".join(line.split(": ")[:2]) for line in err.splitlines()]
+    assert [] == list((tmp_path / "out").iterdir())

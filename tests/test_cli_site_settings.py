@@ -71,6 +71,7 @@ def test_a_bad_private_key_stops_watch_at_start(tmp_path: Path, capsys):
     config.write_text(
         SITE + FHIR + f'client_id = "fh"\ntoken_url = "http://127.0.0.1:9/token"\nprivate_key_file = "{key}"\n'
     )
+    (tmp_path / "in").mkdir()  # the inbox exists (a missing one stops watch first)
 
     code = main(["watch", "--config", str(config)])
 

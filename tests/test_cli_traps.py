@@ -171,3 +171,81 @@ def test_finding_counts_are_plural_only_when_more_than_one(tmp_path, capsys):
 
     # 04-raised-cohb carries one finding (COHB_RAISED)
     assert ("[1 findings" in out, "[1 finding: " in out or "[1 finding]" in out) == (False, True)
+
+
+# ---------- issue 19.8: messages in the user's terms ----------
+
+
+def test_a_refusal_line_spells_units_as_people_do(tmp_path, capsys):
+    """A record refused for a blocking finding says 19.5 mL/min/mmHg, not UCUM's mm[Hg]."""
+    code = main(["convert", str(SAMPLES / "04-raised-cohb.json"), "--blocking", "COHB_RAISED", "--out", str(tmp_path)])
+    err = capsys.readouterr().err
+
+    assert 2 == code
+    assert ("mm[Hg]" in err, "mL/min/mmHg" in err) == (False, True)
+
+
+def test_map_check_text_says_mmhg_and_its_json_keeps_ucum(capsys):
+    """map check prints 754.6 mmHg for people; map check --json keeps the UCUM code mm[Hg]."""
+    args = ["map", "check", str(ROOT / "mappings/maps/lowmarsh-csv.toml"), str(SAMPLES / "legacy/lowmarsh-results.csv")]
+    main(args)
+    text = capsys.readouterr().out
+    main([*args, "--json"])
+    document = json.loads(capsys.readouterr().out)
+    values = [f["value"] for r in document["records"] if "fields" in r for f in r["fields"]]
+
+    assert ("mm[Hg]" in text, "754.6 mmHg" in text) == (False, True)
+    assert "754.6 mm[Hg]" in values
+
+
+def test_the_audit_report_spells_units_as_people_do(tmp_path, capsys):
+    """findings.csv and report.html say mmHg and °C where a finding names a value (UCUM mm[Hg], Cel before)."""
+    archive = tmp_path / "archive"
+    archive.mkdir()
+    for name in ("03-high-altitude.json", "04-raised-cohb.json", "06-three-manoeuvres.json"):
+        (archive / name).write_bytes((SAMPLES / name).read_bytes())
+
+    main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1"])
+    capsys.readouterr()
+    written = {name: (tmp_path / "r" / name).read_text(encoding="utf-8") for name in ("findings.csv", "report.html")}
+
+    assert {name: False for name in written} == {name: "mm[Hg]" in text for name, text in written.items()}
+    assert "mmHg" in written["findings.csv"]
+
+
+# ---------- issue 19.11: the README's set-up works on a locked system Python ----------
+
+
+def test_readme_set_up_makes_a_virtual_environment_before_installing():
+    """The venv step comes before the two install commands (a PEP 668 system Python refuses pip outside one)."""
+    # source: PEP 668, "Marking Python base environments as externally managed"
+    venv = README.index("python3 -m venv .venv && . .venv/bin/activate")
+
+    assert venv < README.index("python3 -m pip install -e . && dlco-bridge demo")
+    assert venv < README.index("python3 -m pip install -e '.[test]' && python3 -m pytest")
+
+
+def test_readme_says_the_browser_tests_need_chromium_as_ci_gets_it():
+    """The README names Chromium for the browser tests and how .ci/run gets it, which .ci/run does."""
+    ci = (ROOT / ".ci" / "run").read_text(encoding="utf-8")
+
+    assert "apt-get install -y chromium" in ci
+    assert "**Chromium**" in README and "`.ci/run`" in README and "apt-get install -y chromium" in README
+
+
+def _help(command: str, dest: str) -> str:
+    return next(a for p, a in _options(build_parser()) if p.endswith(command) and a.dest == dest).help
+
+
+def test_new_rules_are_stated_alike_in_help_and_readme():
+    """Issue 19: what --help says of list flags, output names, --overwrite and the input limit, the README says."""
+    from bridge.pipeline import DEFAULT_MAX_INPUT_BYTES
+
+    assert all("repeat or separate with commas" in _help("convert", d) for d in ("allow", "blocking", "to"))
+    assert "a repeated flag (`--allow`, `--blocking`, `--to`) adds to the list" in README
+    assert "X%%2F1" in _help("convert", "out") and "`X/1` → `X%2F1`" in README  # argparse doubles % in help
+    assert "--overwrite" in README and "[--out DIR] [--overwrite]" in README
+    assert "--report DIR [--overwrite]" in README and "earlier" in _help("audit", "overwrite")
+    assert "1073741824" in _help("check", "max_input_bytes") and "up to 1073741824" in README
+    assert f"default {DEFAULT_MAX_INPUT_BYTES}" in _help("check", "max_input_bytes")
+    assert f"{DEFAULT_MAX_INPUT_BYTES} by default" in README

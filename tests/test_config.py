@@ -66,11 +66,14 @@ def test_environment_overrides_the_file_and_flags_override_both():
         ('units = "imperial"\n', "units", "one of si, traditional"),
         ("traditional_per_si = 3.0\n", "traditional_per_si", "2.987 or 2.986"),
         ('to = "pdf"\n', "to", "fhir, hl7 or fhir,hl7"),
-        ("max_input_bytes = 0\n", "max_input_bytes", ">= 1"),
+        ("max_input_bytes = 0\n", "max_input_bytes", "a whole number from 1 to 1073741824, got 0"),
+        # every input is read whole: a limit beyond 1 GiB, or a fraction of a byte, is a mistake
+        ("max_input_bytes = 1e26\n", "max_input_bytes", "a whole number from 1 to 1073741824, got 1e+26"),
+        ("max_input_bytes = 1500.5\n", "max_input_bytes", "a whole number from 1 to 1073741824, got 1500.5"),
         ('colour = "blue"\n', "colour", "samples/service/bridge.toml"),
         ("allow = 3\n", "allow", "a list of finding codes"),
         ('[emit]\nhemoglobin_unit = "mmol/L"\n', "emit.hemoglobin_unit", "one of g/L, g/dL"),
-        ('allow = ["OUT_OF_RANGE"]\nblocking = ["OUT_OF_RANGE"]\n', "allow", "not also blocking"),
+        ('allow = ["UNIT_MISLABEL_PROBABLE"]\nblocking = ["UNIT_MISLABEL_PROBABLE"]\n', "allow", "not also blocking"),
         ('map = "no-such-map.toml"\n', "map", "a field map file"),
         ('[maps]\n"*.csv" = "no-such-map.toml"\n', 'maps."*.csv"', "a field map file"),
         ('maps = "x.toml"\n', "maps", "a table of file-name pattern"),
@@ -86,10 +89,10 @@ def test_a_bad_value_is_refused_when_read_naming_file_and_key(text, key, expecte
 
 
 def test_a_bad_value_from_the_environment_is_refused_too():
-    """DLCO_BRIDGE_EMIT_SENDING_FACILITY of 30 characters fails at start, not at the first file."""
+    """DLCO_BRIDGE_EMIT_SENDING_FACILITY of 30 characters fails at start, not at the first file, naming the variable."""
     error = _error("", {"DLCO_BRIDGE_EMIT_SENDING_FACILITY": "F" * 30})
 
-    assert "emit.sending_facility" == error.key
+    assert ("DLCO_BRIDGE_EMIT_SENDING_FACILITY", "") == (error.key, error.source)
 
 
 def test_a_fhir_url_without_a_host_is_refused():
@@ -152,11 +155,12 @@ def test_lab_facilities_come_from_a_table_or_the_environment():
 def test_allow_comes_from_file_environment_and_repeated_flags():
     """allow is a set of codes: a TOML list, a comma-separated variable, or --allow given twice."""
     from_file = parse_settings('allow = ["UNIT_MISLABEL_PROBABLE"]\n', {})
-    from_env = parse_settings("", {"DLCO_BRIDGE_ALLOW": "A_CODE,B_CODE"})
-    from_flags = parse_settings("", {}, {"allow": ["A_CODE", "B_CODE"]})
+    from_env = parse_settings("", {"DLCO_BRIDGE_ALLOW": "UNIT_MISLABEL_PROBABLE,NO_ACCEPTABLE_MANOEUVRE"})
+    from_flags = parse_settings("", {}, {"allow": ["UNIT_MISLABEL_PROBABLE", "NO_ACCEPTABLE_MANOEUVRE"]})
 
     assert frozenset({"UNIT_MISLABEL_PROBABLE"}) == from_file.pipeline.allow
-    assert frozenset({"A_CODE", "B_CODE"}) == from_env.pipeline.allow == from_flags.pipeline.allow
+    both = frozenset({"UNIT_MISLABEL_PROBABLE", "NO_ACCEPTABLE_MANOEUVRE"})
+    assert both == from_env.pipeline.allow == from_flags.pipeline.allow
     assert frozenset() == PipelineSettings().allow  # the default: every ERROR finding refuses a record
 
 
@@ -206,7 +210,7 @@ def test_repeatability_and_reference_basis_from_file_environment_and_flags():
         (
             "",
             {"DLCO_BRIDGE_REFERENCE_BASIS": "hb"},
-            "site.toml: reference_basis: one of pressure_adjusted, measured, hb_adjusted, got 'hb'",
+            "DLCO_BRIDGE_REFERENCE_BASIS: one of pressure_adjusted, measured, hb_adjusted, got 'hb'",
         ),
     ],
     ids=["unknown criterion", "unknown criterion as a number", "unknown basis"],
@@ -241,3 +245,13 @@ def test_check_takes_the_repeatability_flag(capsys):
     assert 0 == code
     out = capsys.readouterr().out
     assert "repeatable (ATS/ERS 2005: within 3 mL/min/mmHg or 10 % of the highest)" in out
+
+
+def test_a_variable_for_a_destination_the_file_lacks_names_the_variable():
+    """DLCO_BRIDGE_DESTINATION_RECORD_PORT (RECORDS misspelt) makes a destination without a transport: named."""
+    text = 'inbox = "i"\narchive = "a"\nquarantine = "q"\nstate = "s"\n'
+    text += '[destination.records]\npayload = "hl7"\ntransport = "mllp"\nport = 2575\n'
+
+    error = _error(text, {"DLCO_BRIDGE_DESTINATION_RECORD_PORT": "2576"})
+
+    assert ("DLCO_BRIDGE_DESTINATION_RECORD_PORT", "") == (error.key, error.source)

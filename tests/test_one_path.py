@@ -72,8 +72,8 @@ def test_convert_and_watch_write_byte_identical_payloads(tmp_path: Path):
 
     written = {
         (outcome.session.test_id, "store" if path.name.endswith(".bundle.json") else "records"): path.read_bytes()
-        for _, outcome, paths in converted
-        for path in paths
+        for _, outcome, written in converted
+        for path in written.files
         if not isinstance(outcome, Exception)
     }
     assert 6 == len(written)

@@ -1,17 +1,36 @@
-"""The shipped JSON Schema is the one generated from the models, and the samples follow it."""
+"""The shipped JSON Schema is the one generated from the models, and the reader agrees with it both ways (issue 19.2).
+
+One rule, written once: the models in ``bridge/model.py`` are the format. The published schema is
+generated from them in their input form (the fields the bridge fills itself, marked ``Filled``, are
+left out), and the reader refuses what the schema refuses. What JSON Schema cannot say (units from
+the catalogue, physical limits, a birth date after the test, a record with no result) is refused
+beyond it, as docs/format.md lists; the tests below check both directions against the jsonschema
+library, an implementation independent of pydantic.
+"""
 
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import jsonschema
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
+from bridge.errors import InputError, InvalidField, MissingField, UnitError
+from bridge.readers.json_export import read_export
 from bridge.readers.schema import export_schema
+from bridge.tables.files import load_tables
+from tests.fuzz.hostile import schema_documents, structural_mutations, targeted_mutations
 
 ROOT = Path(__file__).resolve().parent.parent
 SHIPPED = ROOT / "docs" / "dlco-result-1.schema.json"
+SAMPLE = json.loads((ROOT / "samples" / "01-healthy-adult.json").read_text())
+TABLES = load_tables()
+# source: jsonschema (Draft 2020-12 validator with its format checker: RFC 3339 date and date-time)
+VALIDATOR = jsonschema.Draft202012Validator(export_schema(), format_checker=jsonschema.FormatChecker())
 
 
 def test_shipped_schema_is_current():
@@ -26,8 +45,104 @@ def test_schema_is_valid_draft_2020_12():
 
 
 @pytest.mark.parametrize("path", sorted((ROOT / "samples").glob("0*.json")), ids=lambda p: p.name)
-def test_samples_follow_the_schema(path):
-    """Every sample, the malformed one too (its flaw is a missing offset), is schema-shaped."""
-    validator = jsonschema.Draft202012Validator(export_schema())
+def test_samples_follow_the_schema_but_the_malformed_one(path):
+    """Every sample follows the schema; 08-malformed breaks it where the reader refuses it (no UTC offset)."""
+    where = {tuple(e.path) for e in VALIDATOR.iter_errors(json.loads(path.read_text()))}
 
-    assert [] == [e.message for e in validator.iter_errors(json.loads(path.read_text()))]
+    assert ({("performed_at",)} if path.name == "08-malformed.json" else set()) == where
+
+
+def _with(path: str, value: object) -> dict:
+    doc = json.loads(json.dumps(SAMPLE))
+    *parents, last = path.split(".")
+    node = doc
+    for name in parents:
+        node = node[name]
+    node[last] = value
+    return doc
+
+
+def _reader_accepts(doc: dict) -> bool:
+    try:
+        read_export(json.dumps(doc).encode(), "x.json", TABLES.units)
+    except InputError:
+        return False
+    return True
+
+
+def _schema_accepts(doc: dict) -> bool:
+    return VALIDATOR.is_valid(doc)
+
+
+@pytest.mark.parametrize(
+    ("path", "value", "accepted"),
+    [
+        # source: JSON Schema draft 2020-12 validation, "type": a boolean is not a number, a string is not one
+        ("results.dlco.value", True, False),  # read as 1 and sent as a final DLCO before
+        ("results.dlco.value", "9.84", False),
+        ("results.dlco.value", 6.619999999999999, True),  # refused before: "at most 12 digits after the point"
+        ("results.dlco.original", {"value": "9.84", "unit": "mmol/min/kPa"}, False),  # shown "as sent" before
+        ("results.dlco.decimals", 5, False),
+        ("patient.birth_date", 0, False),  # read as 1970-01-01 before
+        ("patient.birth_date", "1981-01-15T00:00:00", False),
+        ("performed_at", 1772442900, False),  # read as seconds since 1970 before
+        ("performed_at", "1772442900", False),
+        ("performed_at", "2026-03-02 09:15:00+00:00", False),
+        ("performed_at", "2026-03-02T09:15+00:00", False),  # RFC 3339 requires the seconds
+        ("performed_at", "2026-03-02t09:15:00z", True),  # RFC 3339 5.6: T and Z may be lower case
+        ("performed_at", "2026-03-02T09:15:00.25-07:00", True),
+        ("conditions", {"inspired_o2_fraction": True}, False),
+        ("conditions", {"inspired_o2_fraction": "0.21"}, False),
+        ("conditions", {"inspired_o2_fraction": 0.21}, True),
+        # U+0085 is white space to Python but not to ECMA-262's \s: a name of nothing else, or in a URI
+        ("lab.name", "\x85", False),
+        ("lab.name", "Lab\x85North (fictional)", True),
+        ("patient.id_system", "urn:x\x85y", False),
+    ],
+)
+def test_the_reader_and_the_schema_agree_on_each_example(path, value, accepted):
+    """Each example is accepted by both, or refused by both."""
+    doc = _with(path, value)
+
+    assert (accepted, accepted) == (_schema_accepts(doc), _reader_accepts(doc))
+
+
+def _as_json(data: bytes) -> object | None:
+    try:
+        return json.loads(data.decode("utf-8-sig"))
+    except (UnicodeDecodeError, ValueError, RecursionError):
+        return None
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@given(case=st.one_of(structural_mutations(), targeted_mutations()))
+def test_what_the_reader_accepts_the_schema_accepts(case):
+    """Mutated samples (keys, types, numbers, units): whatever the reader takes is valid against the schema."""
+    try:
+        read_export(case.data, "x.json", TABLES.units)
+    except InputError:
+        return
+    document = _as_json(case.data)
+
+    assert [] == [f"{list(e.path)}: {e.message}" for e in VALIDATOR.iter_errors(document)]
+
+
+# What the reader refuses beyond the schema (docs/format.md, "Beyond the schema"): the unit
+# catalogue and each field's dimension, the physical limits, negative values of quantities that
+# cannot be negative, a birth date after the test, a record with no result.
+BEYOND_THE_SCHEMA = re.compile(r"in magnitude|a value >= 0|on or before the test date|at least one result")
+
+
+@settings(max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
+@given(case=st.one_of(schema_documents(catalogue=False), schema_documents(catalogue=True)))
+def test_what_the_schema_accepts_the_reader_accepts_or_refuses_only_beyond_it(case):
+    """Documents the schema allows: read, or refused for one of the documented rules JSON Schema cannot state."""
+    document = json.loads(case.data)
+    if not VALIDATOR.is_valid(document):  # the generator's formats are looser than the format checker
+        return
+    try:
+        read_export(case.data, "x.json", TABLES.units)
+    except UnitError:
+        return
+    except (InvalidField, MissingField) as exc:
+        assert BEYOND_THE_SCHEMA.search(exc.expected), exc.line()

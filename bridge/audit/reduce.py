@@ -75,6 +75,7 @@ class ArchiveReduce:
 
     files: int = 0  # files (and folders that could not be listed): a file of many sessions counts once
     records: int = 0  # rows: one per session read, per bad record, per file that did not become a record
+    skipped: int = 0  # files under the archive that are not exports (bridge.inputs, the skip rule): counted, not read
     readable: int = 0
     clean: int = 0
     by_check: Counter[str] = field(default_factory=Counter)

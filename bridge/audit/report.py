@@ -177,6 +177,7 @@ def summarise(reduce: ArchiveReduce, answer: Answer, run: Mapping[str, object]) 
         "run": dict(run),
         "files": reduce.files,
         "records": reduce.records,
+        "skipped": reduce.skipped,
         "sessions_read": reduce.readable,
         "unreadable": answer.unreadable,
         "ready": answer.ready,

@@ -1,7 +1,8 @@
 """The audit's shell: walk the archive, map the one pipeline over its files in worker processes.
 
-Owns walking (``os.scandir``, iteratively: no recursion limit, one folder open at a time,
-no listing held whole), chunking, the bounded pool of worker processes
+Owns chunking the files :func:`bridge.inputs.find_inputs` finds under the archive (the folder
+and skip rule of every command: to any depth, one folder listed at a time, the skipped files
+counted), the bounded pool of worker processes
 (``concurrent.futures.ProcessPoolExecutor``), what one worker does with one file
 (:func:`audit_file`: read, :func:`bridge.pipeline.process_all` through the site's gate, with the
 ``ndjson`` route when the hand-over is asked for, one row per session),
@@ -17,13 +18,16 @@ from __future__ import annotations
 import functools
 import multiprocessing
 import os
+import signal
 import sys
+import threading
 import time
 from collections import deque
 from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from dataclasses import dataclass, replace
 from datetime import datetime
+from multiprocessing import forkserver
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -32,7 +36,8 @@ from bridge.audit.index import ArchiveIndex
 from bridge.audit.reduce import ArchiveReduce, held_by_archive
 from bridge.audit.report import ReportWriter
 from bridge.audit.rows import Row, row_of, row_of_error
-from bridge.errors import InputError, ProcessingFailed, UnreadableInput
+from bridge.errors import InputError
+from bridge.inputs import each_input, find_inputs
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, Route, process_all
 from bridge.science.units import UnitSystem
@@ -76,32 +81,6 @@ class ChunkResult:
     files: int
 
 
-def walk(paths: Iterable[Path]) -> Iterator[str]:
-    """Every file under ``paths`` (hidden names skipped, symlinked folders not followed).
-
-    Iterative, one ``os.scandir`` open at a time; a folder that cannot be listed is yielded
-    itself, so that reading it becomes a finding rather than a crash.
-    """
-    for top in paths:
-        if not top.is_dir():
-            yield str(top)
-            continue
-        folders = [str(top)]
-        while folders:
-            folder = folders.pop()
-            try:
-                with os.scandir(folder) as entries:
-                    for entry in entries:
-                        if entry.name.startswith("."):
-                            continue
-                        if entry.is_dir(follow_symlinks=False):
-                            folders.append(entry.path)
-                        else:
-                            yield entry.path
-            except OSError:
-                yield folder
-
-
 def chunked(files: Iterable[str], size: int) -> Iterator[list[str]]:
     """Consecutive lists of at most ``size`` files."""
     chunk: list[str] = []
@@ -126,40 +105,32 @@ def _maps(default: Path | None, patterns: tuple[tuple[str, Path], ...], traditio
     return load_map_choice(default, patterns, _tables(traditional_per_si))
 
 
-def read_file(path: str, limit: int) -> bytes:
-    """The bytes of one file; anything the file system refuses is an :class:`UnreadableInput`."""
-    try:
-        with open(path, "rb") as handle:
-            data = handle.read(limit + 1)
-    except OSError as exc:
-        raise UnreadableInput("(file)", f"a readable file ({exc.strerror or exc})", path) from exc
-    if len(data) > limit:
-        raise UnreadableInput("(file)", f"at most {limit} bytes", path)
-    return data
-
-
 def audit_file(path: str, job: Job, tables: Tables) -> list[Row]:
     """One file through the one pipeline and the site's gate: a row per session (or refusal).
 
     A file read through a field map may hold many sessions (numbered rows: the record within
     the file); each bad record is a row of its own. A session the gate refuses keeps its
-    findings (the error carries the checked record) and names the codes that held it.
+    findings (the error carries the checked record) and names the codes that held it. Reading
+    the file and the guard that keeps one file from stopping the others are
+    :func:`bridge.inputs.each_input`'s, as for ``check`` and ``convert``.
     """
-    rows: list[Row] = []
     routes = (Route("ndjson", job.units),) if job.emit_ndjson else ()
-    try:
-        data = read_file(path, job.pipeline.max_input_bytes)
+
+    def work(data: bytes) -> Iterator[tuple[Outcome | InputError, bool]]:
         maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
         pipeline = replace(job.pipeline, field_map=maps.for_file(os.path.basename(path)))
         many = pipeline.field_map is not None
-        for number, result in enumerate(
-            process_all(data, path, tables, pipeline, now=job.now, routes=routes, gate=True), start=1
-        ):
-            rows.append(_row(result, path, str(number) if many else ""))
-    except InputError as exc:  # the file as a whole (or, for a map that refuses bad records, its first bad one)
-        rows.append(_row(exc, path, str(len(rows) + 1) if rows or exc.outcome is not None else ""))
-    except Exception as exc:  # one file must never stop the others
-        rows.append(row_of_error(ProcessingFailed.wrapping(exc, path), path))
+        for result in process_all(data, path, tables, pipeline, now=job.now, routes=routes, gate=True):
+            yield result, many  # a record of the file (numbered when the file may hold many)
+
+    rows: list[Row] = []
+    for item in each_input(Path(path), job.pipeline.max_input_bytes, work):
+        # An error of the file as a whole (or, for a map that refuses bad records, its first bad one)
+        if isinstance(item, InputError):
+            rows.append(_row(item, path, str(len(rows) + 1) if rows or item.outcome is not None else ""))
+            continue
+        result, many = item
+        rows.append(_row(result, path, str(len(rows) + 1) if many else ""))
     return rows
 
 
@@ -183,7 +154,17 @@ def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) ->
     workers = max(1, settings.workers)
     ahead = workers * max(1, settings.in_flight_per_worker)
     context = multiprocessing.get_context("forkserver")
-    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+    # Ctrl-C reaches every process of the terminal's group: this one answers it (one line, the
+    # CLI's exit 130); the workers, and the server that forks them, start deaf to it, so none
+    # prints a traceback of its own.
+    if threading.current_thread() is threading.main_thread():  # only the main thread may set handlers
+        previous = signal.signal(signal.SIGINT, signal.SIG_IGN)
+        try:
+            forkserver.ensure_running()
+        finally:
+            signal.signal(signal.SIGINT, previous)
+    pool = ProcessPoolExecutor(max_workers=workers, mp_context=context, initializer=_deaf_to_interrupts)
+    try:
         pending: deque[Future[ChunkResult]] = deque()
         for chunk in chunks:
             pending.append(pool.submit(audit_chunk, chunk, job))
@@ -191,6 +172,15 @@ def map_local(chunks: Iterable[list[str]], job: Job, settings: AuditSettings) ->
                 yield pending.popleft().result()
         while pending:
             yield pending.popleft().result()
+    except BaseException:
+        pool.shutdown(wait=True, cancel_futures=True)  # interrupted or failed: no chunk is started after this
+        raise
+    pool.shutdown(wait=True)
+
+
+def _deaf_to_interrupts() -> None:
+    """A worker leaves Ctrl-C to the process that started it (which stops the pool)."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def map_dask(chunks: Iterable[list[str]], job: Job, settings: AuditSettings, address: str) -> Iterator[ChunkResult]:
@@ -261,9 +251,18 @@ def run_audit(
     writer = ReportWriter(report, ndjson=job.emit_ndjson)
     reduce = ArchiveReduce()
     shown = Progress(progress)
+    maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
+
+    def inputs() -> Iterator[str]:
+        for found in find_inputs(paths, maps):
+            if found.skipped is None:
+                yield str(found.path)
+            else:
+                reduce.skipped += 1
+
     with ArchiveIndex(report) as index:
         try:
-            chunks = chunked(walk(paths), settings.chunk_files)
+            chunks = chunked(inputs(), settings.chunk_files)
             results = (
                 map_local(chunks, job, settings) if scheduler is None else map_dask(chunks, job, settings, scheduler)
             )
@@ -304,6 +303,7 @@ def about_the_run(paths: Sequence[Path], job: Job) -> dict[str, object]:
     }
 
 
-def terminal(stream: TextIO = sys.stderr) -> TextIO | None:
-    """``stream`` when it is a terminal (the progress line), else None (quiet)."""
+def terminal(stream: TextIO | None = None) -> TextIO | None:
+    """``stream`` (standard error as it is now) when it is a terminal (the progress line), else None (quiet)."""
+    stream = sys.stderr if stream is None else stream
     return stream if stream.isatty() else None

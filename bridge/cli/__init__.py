@@ -9,13 +9,24 @@ stderr), 1 on a usage or setup error.
 
 from __future__ import annotations
 
+import argparse
 import gc
+import io
 import os
 import sys
 from collections.abc import Sequence
 
 from bridge.cli.files import cmd_audit, cmd_check, cmd_convert, cmd_demo, cmd_map, cmd_schema, cmd_show, convert_files
-from bridge.cli.parser import EXIT_BAD_INPUT, EXIT_OK, EXIT_SETUP, build_parser, settings_of
+from bridge.cli.parser import (
+    EXIT_BAD_INPUT,
+    EXIT_BROKEN_PIPE,
+    EXIT_INTERRUPTED,
+    EXIT_OK,
+    EXIT_SETUP,
+    PRIVATE_UMASK,
+    build_parser,
+    settings_of,
+)
 from bridge.cli.service import cmd_prune, cmd_resend, cmd_stand_in, cmd_status, cmd_watch
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG
 from bridge.errors import BridgeError, ConfigError
@@ -43,6 +54,24 @@ _NEEDS_CONFIG = ("watch", "status", "resend", "prune")
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
+    umask = os.umask(PRIVATE_UMASK)  # files and folders the run creates: owner only (README, "Patient data")
+    try:
+        code = _run(args)
+        sys.stdout.flush()  # a reader that went away is met here, not at interpreter exit
+        return code
+    except BrokenPipeError:
+        # The reader of the output stopped early (``| head``): stop quietly, as a program stopped
+        # by SIGPIPE does, and keep the interpreter from complaining when it flushes at exit.
+        _silence_stdout()
+        return EXIT_BROKEN_PIPE
+    except KeyboardInterrupt:
+        print("dlco-bridge: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    finally:
+        os.umask(umask)
+
+
+def _run(args: argparse.Namespace) -> int:
     try:
         settings = settings_of(args, os.environ)
         if args.command in _NEEDS_CONFIG and settings.source.startswith("("):
@@ -58,3 +87,17 @@ def main(argv: Sequence[str] | None = None) -> int:
     except BridgeError as exc:
         print(f"dlco-bridge: {exc}", file=sys.stderr)
         return EXIT_SETUP
+    except BrokenPipeError:
+        raise
+    except OSError as exc:  # the file system or the network refused something: not a defect, one line
+        where = f"{exc.filename}: " if exc.filename else ""
+        print(f"dlco-bridge: {where}{exc.strerror or exc}", file=sys.stderr)
+        return EXIT_SETUP
+
+
+def _silence_stdout() -> None:
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, io.UnsupportedOperation):  # no file descriptor (tests capture output)
+        pass

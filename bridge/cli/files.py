@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import functools
 import json
 import shutil
 import sys
@@ -14,6 +15,7 @@ from pathlib import Path
 
 import orjson
 
+from bridge.cli.outputs import OutputFolder, Written
 from bridge.cli.parser import EXIT_BAD_INPUT, EXIT_OK, EXIT_SETUP
 from bridge.config import (
     Settings,
@@ -22,79 +24,83 @@ from bridge.display.bundle_summary import describe_bundle
 from bridge.display.check_report import CAUTION, finding_text, outcome_json, outcome_text
 from bridge.display.hl7_fields import describe_er7
 from bridge.display.map_report import MapCheck, map_check_json, map_check_text, passes
-from bridge.emit.fhir import indented
-from bridge.emit.outputs import FHIR_JSON, file_stem
-from bridge.errors import InputError, ProcessingFailed, UnknownFormat, UnreadableInput
+from bridge.errors import ConfigError, InputError, ProcessingFailed, UnknownFormat
+from bridge.inputs import Found, each_input, find_inputs, read_input
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import PipelineSettings, Route, process_all
 from bridge.readers.csv_export import read_csv
 from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.schema import export_schema
-from bridge.service.transports.base import OutgoingMessage
-from bridge.service.transports.file import FileTransport
 from bridge.tables import Tables
 from bridge.tables.files import load_field_map, load_map_choice, samples_dir
 
 
-def expand(paths: Sequence[Path]) -> Iterator[Path]:
-    """Files named, and the files inside folders named (sorted, not recursive into hidden)."""
-    for path in paths:
-        if path.is_dir():
-            yield from sorted(p for p in path.iterdir() if p.is_file() and not p.name.startswith("."))
+def gather(paths: Sequence[Path], settings: Settings, tables: Tables) -> tuple[list[Path], list[Found]]:
+    """The inputs under ``paths`` (the folder rule of :mod:`bridge.inputs`), and the files skipped."""
+    maps = load_map_choice(settings.field_map, settings.maps, tables)
+    inputs: list[Path] = []
+    skipped: list[Found] = []
+    for found in find_inputs(paths, maps):
+        if found.skipped is None:
+            inputs.append(found.path)
         else:
-            yield path
-
-
-def read_input(path: Path, limit: int) -> bytes:
-    """The bytes of one input; an unreadable or oversized file is an InputError."""
-    try:
-        size = path.stat().st_size
-        if size > limit:
-            raise UnreadableInput("(file)", f"at most {limit} bytes, got {size}", str(path))
-        return path.read_bytes()
-    except OSError as exc:
-        raise UnreadableInput("(file)", f"a readable file ({exc.strerror})", str(path)) from exc
+            skipped.append(found)
+    return inputs, skipped
 
 
 def run_inputs(
     paths: Sequence[Path], settings: Settings, tables: Tables, routes: Sequence[Route] = (), now: datetime | None = None
 ) -> Iterator[tuple[Path, Outcome | InputError]]:
-    """The pipeline over every input; an InputError is returned in place of its outcome, never raised.
+    """The pipeline over every input file of ``paths``; an InputError is returned in place of its outcome.
 
-    Any other exception is a defect of the bridge, reported for that file alone
-    (:class:`ProcessingFailed`) so that the other files are still processed.
+    Reading, the size limit and the guard that keeps one file from stopping the others are
+    :func:`bridge.inputs.each_input`'s (any other exception becomes that file's
+    :class:`ProcessingFailed`). ``paths`` are taken as found by :func:`gather`.
     """
     now = now or datetime.now(UTC)  # the shell reads the clock once per run; the pipeline receives it
     maps = load_map_choice(settings.field_map, settings.maps, tables)
-    for path in expand(paths):
-        try:
-            data = read_input(path, settings.pipeline.max_input_bytes)
-            pipeline = replace(settings.pipeline, field_map=maps.for_file(path.name))
-            # The record names its input by file name, as the service does; errors name the path given.
-            # A field map may find many sessions in one file: one result each.
-            for result in process_all(data, path.name, tables, pipeline, now=now, routes=routes):
-                yield path, result.with_source(str(path)) if isinstance(result, InputError) else result
-        except InputError as exc:
-            yield path, exc.with_source(str(path))
-        except Exception as exc:  # one file must never stop the others
-            yield path, ProcessingFailed.wrapping(exc, str(path))
+    for path in paths:
+        # The record names its input by file name, as the service does; errors name the path given.
+        # A field map may find many sessions in one file: one result each.
+        pipeline = replace(settings.pipeline, field_map=maps.for_file(path.name))
+        work = functools.partial(process_all, source=path.name, tables=tables, settings=pipeline)
+        read = each_input(path, settings.pipeline.max_input_bytes, functools.partial(work, now=now, routes=routes))
+        for result in read:
+            yield path, result.with_source(str(path)) if isinstance(result, InputError) else result
 
 
-def no_inputs(paths: Sequence[Path]) -> bool:
-    """Whether ``paths`` name no input at all (an empty folder, say), said on stderr once."""
-    if any(True for _ in expand(paths)):
+def no_inputs(paths: Sequence[Path], inputs: Sequence[Path], skipped: Sequence[Found]) -> bool:
+    """Whether ``paths`` hold no input at all (an empty folder, say), said on stderr once."""
+    if inputs:
         return False
     named = ", ".join(str(p) for p in paths)
-    print(f"{named}: (inputs): at least one export file, found none", file=sys.stderr)
+    also = f" ({skipped_text(skipped)})" if skipped else ""
+    print(f"{named}: (inputs): at least one export file, found none{also}", file=sys.stderr)
     return True
 
 
+SHOWN_SKIPPED = 5  # names shown per reason; the count is always complete
+
+
+def skipped_text(skipped: Sequence[Found]) -> str:
+    """``3 skipped: not an export: README.txt, Thumbs.db; hidden: .DS_Store`` (the folder rule's count)."""
+    reasons: dict[str, list[str]] = {}
+    for found in skipped:
+        reasons.setdefault(found.skipped or "", []).append(found.path.name)
+    parts = []
+    for reason, names in reasons.items():
+        more = f" and {len(names) - SHOWN_SKIPPED} more" if len(names) > SHOWN_SKIPPED else ""
+        parts.append(f"{reason}: {', '.join(names[:SHOWN_SKIPPED])}{more}")
+    return f"{len(skipped)} skipped, " + "; ".join(parts)
+
+
 def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
-    if no_inputs(args.files):
+    inputs, skipped = gather(args.files, settings, tables)
+    if no_inputs(args.files, inputs, skipped):
         return EXIT_BAD_INPUT
     failed = 0
     reports: list[dict[str, object]] = []
-    for path, result in run_inputs(args.files, settings, tables):
+    for path, result in run_inputs(inputs, settings, tables):
         report: dict[str, object] | str | InputError
         if isinstance(result, InputError):
             report = result
@@ -115,9 +121,12 @@ def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
         else:
             reports.append(report)
     if args.json:
-        document = {"caution": CAUTION, "files": reports}
+        shown = [{"path": str(f.path), "reason": f.skipped} for f in skipped]
+        document = {"caution": CAUTION, "files": reports, "skipped": shown}
         sys.stdout.write(orjson.dumps(document, option=orjson.OPT_INDENT_2).decode() + "\n")
     else:
+        if skipped:
+            print(f"Not read: {skipped_text(skipped)} (the folder rule: dlco-bridge check --help)\n")
         print(CAUTION)
     return EXIT_BAD_INPUT if failed else EXIT_OK
 
@@ -130,39 +139,50 @@ def convert_files(
     now: datetime | None = None,
     *,
     pretty: bool = False,
-) -> list[tuple[Path, Outcome | InputError, list[Path]]]:
-    """Convert every input; each result is (input, outcome or error, files written).
+    overwrite: bool = False,
+) -> list[tuple[Path, Outcome | InputError, Written]]:
+    """Convert every input under ``paths``; each result is (input, outcome or error, what was written).
 
     ``now``: the send time written into every message (default: the clock, read once).
     ``pretty``: Bundles indented for people; otherwise compact, the bytes the service sends.
+    ``overwrite``: a later input with a test id already converted from other content replaces it
+    (default: it is refused, naming both files).
     """
     routes = [Route(kind, settings.units) for kind in settings.to]
-    writer = FileTransport(out)
-    results: list[tuple[Path, Outcome | InputError, list[Path]]] = []
-    for path, result in run_inputs(paths, settings, tables, routes, now):
+    folder = OutputFolder(out, overwrite, pretty)
+    inputs, _ = gather(paths, settings, tables)
+    results: list[tuple[Path, Outcome | InputError, Written]] = []
+    for path, result in run_inputs(inputs, settings, tables, routes, now):
         if isinstance(result, InputError):
-            results.append((path, result, []))
+            results.append((path, result, Written(())))
             continue
-        written = []
-        for payload in result.payloads:
-            stem = file_stem(result.session.test_id)
-            data = indented(payload.data) if pretty and payload.content_type == FHIR_JSON else payload.data
-            receipt = writer.deliver(OutgoingMessage("convert", stem, data, payload.content_type))
-            written.append(out / receipt.text)
-        results.append((path, result, written))
+        try:
+            results.append((path, result, folder.write(path, result)))
+        except InputError as exc:
+            results.append((path, exc, Written(())))
     return results
 
 
 def cmd_convert(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
-    if no_inputs(args.files):
+    inputs, skipped = gather(args.files, settings, tables)
+    if no_inputs(args.files, inputs, skipped):
         return EXIT_BAD_INPUT
+    try:
+        args.out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise ConfigError("--out", f"a folder that can be written, got {args.out} ({exc.strerror})") from exc
     failed = 0
-    for path, result, written in convert_files(args.files, args.out, settings, tables, pretty=args.pretty):
+    for path, result, written in convert_files(
+        inputs, args.out, settings, tables, pretty=args.pretty, overwrite=args.overwrite
+    ):
         if isinstance(result, InputError):
             failed += 1
             print(result.line(), file=sys.stderr)
             continue
-        print(f"{path}: {', '.join(str(w) for w in written)}{_finding_summary(result)}")
+        note = f" ({written.note})" if written.note else ""
+        print(f"{path}: {', '.join(str(w) for w in written.files)}{note}{_finding_summary(result)}")
+    if skipped:
+        print(f"Not read: {skipped_text(skipped)} (the folder rule: dlco-bridge convert --help)")
     print(CAUTION)
     return EXIT_BAD_INPUT if failed else EXIT_OK
 
@@ -191,14 +211,15 @@ def cmd_demo(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
             continue
         flagged = any(f.severity is not Severity.INFO for f in result.findings)
         status = "FLAGGED" if flagged else "OK"
-        names = " + ".join(w.name for w in written)
+        names = " + ".join(w.name for w in written.files)
         print(f"  {status:<8} {path.name} -> {names}")
         for finding in result.findings:
             label = "NOTE" if finding.severity is Severity.INFO else finding.severity.value.upper()
             print(f"           {label} {finding.code}: {finding_text(finding, tables, settings.units)}")
     good = sum(1 for _, r, _ in converted if not isinstance(r, InputError))
     print(f"\n  {good} sessions converted, {len(converted) - good} refused; outputs in {out}")
-    print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7\n")
+    print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7")
+    print(f"  the demo's files (invented data) stay in {work}; remove them with: rm -r {work}\n")
     print(CAUTION)
     return EXIT_OK
 
@@ -216,6 +237,10 @@ def cmd_show(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
         return EXIT_BAD_INPUT
     sys.stdout.write(shown)
     return EXIT_OK
+
+
+# What an audit writes into its --report folder (docs/audit.md); an earlier audit's is not mixed with a new one.
+REPORT_FILES = ("findings.csv", "summary.json", "report.html", "ndjson")
 
 
 SHOWABLE = "an HL7 v2 message (MSH segment first) or a FHIR Bundle (JSON, resourceType Bundle)"
@@ -255,6 +280,20 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     if args.workers is not None and args.workers < 1:
         print("dlco-bridge: --workers: at least 1", file=sys.stderr)
         return EXIT_SETUP
+    missing = [p for p in args.paths if not p.exists()]
+    if missing:  # a mistyped or unmounted archive is not an empty one
+        print(f"{missing[0]}: (path): an existing file or folder to audit, found none", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    earlier = [name for name in REPORT_FILES if (args.report / name).exists()]
+    if earlier and not args.overwrite:
+        raise ConfigError("--report", f"a folder without an earlier report, got {args.report} holding {earlier[0]} "
+                          "(--overwrite replaces it)")  # fmt: skip
+    for name in earlier:  # --overwrite: nothing of the earlier report survives beside the new one
+        target = args.report / name
+        if target.is_dir():
+            shutil.rmtree(target)
+        else:
+            target.unlink()
     audit = AuditSettings(emit_ndjson=args.emit == "ndjson")
     if args.workers is not None:
         audit = replace(audit, workers=args.workers)
@@ -268,10 +307,11 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     except OSError as exc:  # the report folder cannot be written, or the scheduler cannot be reached
         print(f"dlco-bridge: audit could not run: {exc}", file=sys.stderr)
         return EXIT_SETUP
+    skipped = f", {summary['skipped']} skipped (not exports)" if summary.get("skipped") else ""
     print(
         f"{summary['files']} files, {summary['records']} records: {summary['ready']} can migrate as they are, "
         f"{summary['need_decision']} need a decision, {summary['unreadable']} cannot be read; "
-        f"{summary['findings']} findings; report in {args.report / 'report.html'}"
+        f"{summary['findings']} findings{skipped}; report in {args.report / 'report.html'}"
     )
     print(CAUTION)
     return EXIT_OK
@@ -290,7 +330,7 @@ def cmd_map(args: argparse.Namespace, settings: Settings, tables: Tables) -> int
         reader = read_csv if fmap.format == "csv" else read_hl7
         records = list(reader(data, name, fmap, tables.units))
         shown = replace(settings.pipeline, field_map=replace(fmap, on_bad_record="skip"))  # show every record
-        results = list(process_all(data, name, tables, shown))
+        results = list(process_all(data, name, tables, shown, now=datetime.now(UTC)))
         decisions = _as_convert(data, name, replace(settings.pipeline, field_map=fmap), settings, tables)
     except InputError as exc:
         print(exc.with_source(str(args.sample)).line(), file=sys.stderr)

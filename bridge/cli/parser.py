@@ -11,6 +11,7 @@ from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, con
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
 from bridge.emit.settings import CHARTED_PREDICTED
+from bridge.inputs import FOLDER_RULE
 from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
@@ -19,9 +20,14 @@ from bridge.tables.files import repeatability_criteria
 EXIT_OK = 0
 EXIT_SETUP = 1
 EXIT_BAD_INPUT = 2
+EXIT_INTERRUPTED = 130  # Ctrl-C: 128 + SIGINT, as the shell reports a program it stopped
+EXIT_BROKEN_PIPE = 141  # the reader of the output went away (| head): 128 + SIGPIPE, as for other tools
+# Every file the bridge creates is for its owner only (0600), every folder 0700: inputs, outputs,
+# reports, ledgers and quarantine reports hold patient data (README, "Patient data on disk").
+PRIVATE_UMASK = 0o077
 DEFAULTS = Settings()  # shown in --help; the values themselves are written in the settings classes
 DEFAULTS_SERVICE = ServiceSettings(Path(), Path(), Path(), Path(), ())
-TO_HELP = f"fhir, hl7 or fhir,hl7 (key to; default {','.join(DEFAULTS.to)})"
+TO_HELP = f"fhir, hl7 or fhir,hl7; repeat or separate with commas (key to; default {','.join(DEFAULTS.to)})"
 
 
 def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: bool = True) -> None:
@@ -39,7 +45,8 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: 
     parser.add_argument(
         "--max-input-bytes",
         type=int,
-        help=f"largest input accepted (key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
+        help="largest input accepted, in bytes: a whole number up to 1073741824 "
+        f"(key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
     )
     if chooses_map:
         _add_map(parser)
@@ -108,12 +115,17 @@ def _add_gate(parser: argparse.ArgumentParser) -> None:
         help="an ERROR finding code to write anyway, the value marked preliminary with the finding; "
         "repeat or separate with commas (key allow; default "
         f"{','.join(sorted(DEFAULTS.pipeline.allow)) or 'none'}: "
-        "every ERROR finding keeps a record from being written)",
+        "every ERROR finding keeps a record from being written). A code the bridge does not know, or one "
+        "that is not an error, stops the command at start",
     )
     parser.add_argument(
         "--blocking",
-        help="codes of lesser (warning, info) findings that also keep a record from being written, "
-        f"comma-separated (key blocking; default {','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'})",
+        action="append",
+        metavar="CODE",
+        help="a code of a lesser (warning, info) finding that also keeps a record from being written; "
+        "repeat or separate with commas (key blocking; default "
+        f"{','.join(sorted(DEFAULTS.pipeline.blocking)) or 'none'}). A code the bridge does not know stops the "
+        "command at start",
     )
 
 
@@ -153,13 +165,25 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"dlco-bridge {__version__}")
     commands = parser.add_subparsers(dest="command", required=True)
     check = commands.add_parser("check", help="read, normalise, recompute and report findings")
-    check.add_argument("files", nargs="+", type=Path, help="export files or folders")
+    check.add_argument("files", nargs="+", type=Path, help=f"export files or folders: {FOLDER_RULE}")
     check.add_argument("--json", action="store_true", help="machine-readable output")
     _add_settings(check, emits=False)
     convert = commands.add_parser("convert", help="write FHIR R4 Bundles and HL7 v2.5.1 ORU^R01 messages")
-    convert.add_argument("files", nargs="+", type=Path, help="export files or folders")
-    convert.add_argument("--to", help=TO_HELP)
-    convert.add_argument("--out", type=Path, default=Path("out"), help="output folder (default ./out)")
+    convert.add_argument("files", nargs="+", type=Path, help=f"export files or folders: {FOLDER_RULE}")
+    convert.add_argument("--to", action="append", help=TO_HELP)
+    convert.add_argument(
+        "--out",
+        type=Path,
+        default=Path("out"),
+        help="output folder (default ./out): <test id>.bundle.json and <test id>.oru.hl7, the test id percent-encoded "
+        "where it holds other characters than letters, digits and -._~ (X/1 -> X%%2F1)",
+    )
+    convert.add_argument(
+        "--overwrite",
+        action="store_true",
+        help="let a later input whose test id was already converted from other content in this run replace it "
+        "(default: it is refused, naming both files)",
+    )
     convert.add_argument(
         "--pretty", action="store_true", help="indent FHIR Bundles for people (default: compact, as the service sends)"
     )
@@ -170,8 +194,16 @@ def build_parser() -> argparse.ArgumentParser:
     show.add_argument("file", type=Path, help="an ER7 HL7 v2 message or a FHIR Bundle (JSON)")
     commands.add_parser("schema", help="print the JSON Schema of the dlco-result/1 format")
     audit = commands.add_parser("audit", help="check a whole archive, write a report folder (and bulk FHIR NDJSON)")
-    audit.add_argument("paths", nargs="+", type=Path, help="export files or folders (walked to any depth)")
-    audit.add_argument("--report", type=Path, required=True, help="folder for findings.csv, summary.json, report.html")
+    audit.add_argument("paths", nargs="+", type=Path, help=f"export files or folders, each must exist: {FOLDER_RULE}")
+    audit.add_argument(
+        "--report",
+        type=Path,
+        required=True,
+        help="folder for findings.csv, summary.json, report.html (a new or empty folder, or see --overwrite)",
+    )
+    audit.add_argument(
+        "--overwrite", action="store_true", help="replace the report an earlier audit left in the --report folder"
+    )
     audit.add_argument("--workers", type=int, help="worker processes (default: the number of CPUs)")
     audit.add_argument(
         "--emit",
@@ -196,10 +228,14 @@ def build_parser() -> argparse.ArgumentParser:
     map_check.add_argument(
         "--records", type=int, default=SHOWN_RECORDS, help=f"records shown field by field (default {SHOWN_RECORDS})"
     )
-    map_check.add_argument("--to", help=TO_HELP)
+    map_check.add_argument("--to", action="append", help=TO_HELP)
     _add_settings(map_check, emits=True, chooses_map=False)
     config_help = f"the service's configuration file (TOML); default: ${CONFIG_ENV} (see {SAMPLE_CONFIG})"
-    watch = commands.add_parser("watch", help="run the watch-folder service")
+    watch = commands.add_parser(
+        "watch",
+        help="run the watch-folder service",
+        description=f"Take each complete export from the inbox (which must exist) and deliver it: {FOLDER_RULE}.",
+    )
     watch.add_argument("--config", type=Path, help=config_help)
     _add_science(watch)
     status = commands.add_parser("status", help="what the service's ledger holds: pending, delivered, rejected")

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import argparse
+import math
 import signal
 import sys
 import threading
 from dataclasses import asdict
+from pathlib import Path
 
 import orjson
 
@@ -16,7 +18,7 @@ from bridge.errors import ConfigError
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
 from bridge.service.receiver import FhirPeer, MllpPeer, ResourceStore, StandInSettings
-from bridge.service.runner import Service
+from bridge.service.runner import Service, check_folders
 from bridge.service.settings import Destination
 from bridge.service.transports.base import TlsOptions, Transport
 from bridge.service.transports.fhir_rest import FhirRestTransport
@@ -68,9 +70,14 @@ def cmd_watch(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
         signal.signal(signum, lambda *_: stop.set())
     service_settings = settings.require_service()
     configure_logging(service_settings.log_format)
+    try:
+        check_folders(service_settings)
+    except ConfigError as exc:
+        raise ConfigError(exc.key, exc.expected, settings.source) from None  # named with the configuration file
+    created = () if service_settings.state.is_dir() else (service_settings.state,)  # the lock makes it
     with ServiceLock.acquire(service_settings.state), Ledger.open(service_settings.ledger_path) as ledger:
         transports = {d.name: build_transport(d) for d in service_settings.destinations}
-        service = Service(settings, tables, ledger, transports, stop=stop)
+        service = Service(settings, tables, ledger, transports, stop=stop, created=created)
         for signum in (signal.SIGTERM, signal.SIGINT):
             signal.signal(signum, lambda *_: service.request_stop())
         if not stop.is_set():
@@ -111,8 +118,26 @@ def cmd_status(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
     return EXIT_OK
 
 
+SQLITE_MAX_INTEGER = 2**63 - 1  # source: SQLite datatypes, INTEGER is a signed 8-byte value
+
+
+def existing_ledger(settings: Settings) -> Path:
+    """The service's ledger, which must exist: a mistyped state folder is not a fresh, empty ledger."""
+    service = settings.require_service()
+    if not service.ledger_path.is_file():
+        raise ConfigError(
+            "state",
+            f"the service's state folder, holding {service.ledger_path.name}; got {service.state}, which does not "
+            "(mistyped, or the service has never run with it)",
+            settings.source,
+        )
+    return service.ledger_path
+
+
 def cmd_resend(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
-    with Ledger.open(settings.require_service().ledger_path) as ledger:
+    if args.id is not None and not 1 <= args.id <= SQLITE_MAX_INTEGER:
+        raise ConfigError("ID", f"an outbox id (dlco-bridge status --json), got {args.id}")
+    with Ledger.open(existing_ledger(settings)) as ledger:
         if args.rejected:
             count = ledger.requeue_rejected()
             print(f"{count} rejected message{'' if count == 1 else 's'} queued again")
@@ -124,10 +149,10 @@ def cmd_resend(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
 
 def cmd_prune(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     service = settings.require_service()
-    if not args.older_than >= 0:
+    if not (math.isfinite(args.older_than) and args.older_than >= 0):
         raise ConfigError("--older-than", f"a number of days >= 0, got {args.older_than}")
     # The service prunes on its own (retention_days); by hand, only while it is stopped.
-    with ServiceLock.acquire(service.state), Ledger.open(service.ledger_path) as ledger:
+    with ServiceLock.acquire(service.state), Ledger.open(existing_ledger(settings)) as ledger:
         result = ledger.prune(args.older_than, service.duplicate_memory_days, vacuum=True)
     print(
         f"ledger {service.ledger_path}: {_count(result.payloads, 'payload')} and "
@@ -160,15 +185,17 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
     for signum in (signal.SIGTERM, signal.SIGINT):
         signal.signal(signum, lambda *_: stop.set())
     store = ResourceStore(where.resources)
-    mllp: MllpPeer | None = None
     try:
         mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
+    except OSError as exc:
+        store.close()
+        raise _port_taken("--mllp-port", where.mllp_port, exc) from exc
+    try:
         fhir = FhirPeer(store, where.fhir_port)
     except OSError as exc:
-        if mllp is not None:
-            mllp.server.server_close()
+        mllp.server.server_close()
         store.close()
-        raise ConfigError("--mllp-port/--fhir-port", f"free ports on 127.0.0.1 ({exc.strerror or exc})") from exc
+        raise _port_taken("--fhir-port", where.fhir_port, exc) from exc
     mllp.start()
     fhir.start()
     print(f"dlco-bridge stand-in: MLLP on 127.0.0.1:{mllp.port} (answers {where.answer}), FHIR at {fhir.url}")
@@ -181,6 +208,11 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
         store.close()
     print(f"dlco-bridge stand-in: stopped; {_count(mllp.received, 'message')}, {_count(fhir.bundles, 'Bundle')}")
     return EXIT_OK
+
+
+def _port_taken(flag: str, port: int, exc: OSError) -> ConfigError:
+    """One line naming the flag and the port that could not be bound."""
+    return ConfigError(flag, f"a free port on 127.0.0.1, got {port} ({exc.strerror or exc})")
 
 
 def _list_stand_in(where: StandInSettings) -> int:

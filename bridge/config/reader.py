@@ -19,7 +19,7 @@ from typing import Any
 from bridge.config.values import ValueChecker
 from bridge.emit.settings import CHARTED_PREDICTED, HEMOGLOBIN_UNITS, EmitSettings
 from bridge.errors import ConfigError
-from bridge.model import OUTPUT_KINDS, OutputKind
+from bridge.model import OUTPUT_KINDS, OutputKind, Severity
 from bridge.pipeline import PipelineSettings
 from bridge.science.compared import REFERENCE_BASES
 from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
@@ -29,7 +29,8 @@ from bridge.service.settings import (
     Destination,
     ServiceSettings,
 )
-from bridge.tables.files import repeatability_criteria
+from bridge.tables.files import finding_codes, repeatability_criteria
+from bridge.tables.finding_codes import FindingCodes
 
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
@@ -70,6 +71,19 @@ _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
 
 
+# The most max_input_bytes may be: every input is read whole into memory (a DLCO export is a few kB).
+MAX_INPUT_BYTES_LIMIT = 1024**3
+VALIDATE_MODULE = "fhir.resources"  # the [validate] extra: what --validate needs
+
+
+def _installed(module: str) -> bool:
+    """Whether ``module`` can be imported (a missing parent package is "no", not an exception)."""
+    try:
+        return importlib.util.find_spec(module) is not None
+    except (ImportError, ValueError):  # ModuleNotFoundError for the parent; ValueError: a module without spec
+        return False
+
+
 def _name(value: Any) -> Any:
     """A criterion name written as a number in TOML (``repeatability = 2005``) is the same name."""
     return str(value) if isinstance(value, int) and not isinstance(value, bool) else value
@@ -78,8 +92,15 @@ def _name(value: Any) -> Any:
 class SettingsReader(ValueChecker):
     """Typed access to the merged settings tree, each error naming its key."""
 
-    def __init__(self, data: dict[str, Any], source: str, base: Path, environ: Mapping[str, str]) -> None:
-        super().__init__(source, base)
+    def __init__(
+        self,
+        data: dict[str, Any],
+        source: str,
+        base: Path,
+        environ: Mapping[str, str],
+        origins: Mapping[str, str] | None = None,
+    ) -> None:
+        super().__init__(source, base, origins)
         self.data, self.environ = data, environ
 
     def settings(self) -> Settings:
@@ -118,15 +139,24 @@ class SettingsReader(ValueChecker):
     def pipeline(self) -> PipelineSettings:
         d, defaults = self.data, PipelineSettings()
         validate = self.flag("validate", d.get("validate", defaults.validate_outputs))
-        if validate and importlib.util.find_spec("fhir.resources") is None:
+        if validate and not _installed(VALIDATE_MODULE):
             raise self.fail("validate", "the optional extra installed first: pip install 'dlco-bridge[validate]'")
-        blocking = frozenset(self.words("blocking", d.get("blocking", sorted(defaults.blocking))))
-        allow = frozenset(self.words("allow", d.get("allow", sorted(defaults.allow))))
+        known = finding_codes()
+        blocking = self.codes("blocking", d.get("blocking", sorted(defaults.blocking)), known)
+        allow = self.codes("allow", d.get("allow", sorted(defaults.allow)), known)
+        for code in sorted(allow):
+            if known.severities[code] is not Severity.ERROR:
+                raise self.fail(
+                    "allow",
+                    f"error finding codes, got {code}, a {known.severities[code].value} (it never stops a record)",
+                )
         both = sorted(blocking & allow)
         if both:
             raise self.fail("allow", f"codes that are not also blocking, got {both[0]} in both")
         return PipelineSettings(
-            max_input_bytes=int(self.number("max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1)),
+            max_input_bytes=self.whole(
+                "max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1, MAX_INPUT_BYTES_LIMIT
+            ),
             blocking=blocking,
             allow=allow,
             validate_outputs=validate,
@@ -138,6 +168,16 @@ class SettingsReader(ValueChecker):
                 "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
             ),
         )
+
+    def codes(self, key: str, value: Any, known: FindingCodes) -> frozenset[str]:
+        """Finding codes (a list, or text separated by commas); each must be one the bridge can report."""
+        words = self.words(key, value)
+        for word in words:
+            if word not in known.severities:
+                near = known.closest(word)
+                hint = f" (closest known: {near})" if near else ""
+                raise self.fail(key, f"finding codes listed in docs/findings.md, got {word!r}{hint}")
+        return frozenset(words)
 
     def emit(self, e: Any) -> EmitSettings:
         if not isinstance(e, dict):

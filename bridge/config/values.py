@@ -7,7 +7,9 @@ builds the settings from the merged TOML, environment and flags.
 
 from __future__ import annotations
 
+import math
 import re
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 from urllib.parse import urlsplit
@@ -28,12 +30,23 @@ _SYSTEM_URI = re.compile(
 
 
 class ValueChecker:
-    """Checkers of single values; each error names the configuration file and the key."""
+    """Checkers of single values; each error names where the value came from.
 
-    def __init__(self, source: str, base: Path) -> None:
+    ``origins`` maps a key set by an environment variable or a flag to that variable's or flag's
+    name: its errors name it (``--blocking: ...``, ``DLCO_BRIDGE_BLOCKING: ...``); a key of the
+    configuration file is named with the file (``bridge.toml: blocking: ...``).
+    """
+
+    def __init__(self, source: str, base: Path, origins: Mapping[str, str] | None = None) -> None:
         self.source, self.base = source, base
+        self.origins: Mapping[str, str] = origins or {}
 
     def fail(self, key: str, expected: str) -> ConfigError:
+        parts = key.split(".")
+        for end in range(len(parts), 0, -1):  # emit.lab_facilities.A lab: set as emit.lab_facilities
+            origin = self.origins.get(".".join(parts[:end]))
+            if origin:
+                return ConfigError(origin, expected)
         return ConfigError(key, expected, self.source)
 
     def path(self, key: str, value: Any) -> Path:
@@ -52,6 +65,13 @@ class ValueChecker:
                 key, f"a number >= {low:g}, got {value!r}" if low is not None else f"a number, got {value!r}"
             )
         return number
+
+    def whole(self, key: str, value: Any, low: int, high: int) -> int:
+        """A whole number from ``low`` to ``high`` (1.5 is not silently 1)."""
+        number = self.number(key, value)
+        if not (math.isfinite(number) and number == int(number) and low <= number <= high):
+            raise self.fail(key, f"a whole number from {low} to {high}, got {value!r}")
+        return int(number)
 
     def port(self, key: str, value: Any, allow_zero: bool) -> int:
         number = self.number(key, value)
@@ -77,15 +97,16 @@ class ValueChecker:
             return value.lower() in ("true", "1", "yes")
         raise self.fail(key, f"true or false, got {value!r}")
 
-    def words(self, key: str, value: Any) -> tuple[str, ...]:
+    def words(self, key: str, value: Any, what: str = "a list of finding codes") -> tuple[str, ...]:
+        """A list setting: a TOML list, or text separated by commas; a repeated flag gives a list (all kept)."""
         if isinstance(value, str):
             return tuple(w.strip() for w in value.split(",") if w.strip())
         if isinstance(value, list | tuple) and all(isinstance(w, str) for w in value):
-            return tuple(w for item in value for w in self.words(key, item))  # a repeated flag: a list
-        raise self.fail(key, "a list of finding codes")
+            return tuple(w for item in value for w in self.words(key, item, what))
+        raise self.fail(key, what)
 
     def kinds(self, key: str, value: Any) -> tuple[OutputKind, ...]:
-        words = self.words(key, value)
+        words = self.words(key, value, "fhir, hl7 or fhir,hl7")
         unknown = [w for w in words if w not in OUTPUT_KINDS]
         if unknown or not words:
             raise self.fail(key, f"fhir, hl7 or fhir,hl7, got {value!r}")

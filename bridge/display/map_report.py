@@ -17,6 +17,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
+from bridge.display.unit_text import for_people
 from bridge.errors import BlockedByFinding, InputError
 from bridge.model import Outcome, Quantity, Session
 from bridge.readers.mapped import Cell, MappedRecord
@@ -84,22 +85,22 @@ def value_at(session: Session, path: str, manoeuvre: int | None) -> Any:
     return node
 
 
-def _shown(value: Any) -> str:
+def _shown(value: Any, people: bool) -> str:
     if value is None:
         return "(empty)"
-    if isinstance(value, Quantity):
-        return f"{value.text()} {value.unit}"
+    if isinstance(value, Quantity):  # UCUM for machines (--json), the trade's spelling for people
+        return f"{value.text()} {for_people(value.unit) if people else value.unit}"
     if isinstance(value, BaseModel):
         return value.model_dump_json()
     return str(value.value if hasattr(value, "value") and not isinstance(value, float | int) else value)
 
 
-def _row(cell: Cell, session: Session | None) -> dict[str, str]:
+def _row(cell: Cell, session: Session | None, people: bool) -> dict[str, str]:
     target = cell.source.target.path
     field = target if cell.manoeuvre is None else target.replace(MANOEUVRES, f"{MANOEUVRES}[{cell.manoeuvre}]", 1)
     written = cell.text + (f" [{cell.unit}]" if cell.unit and cell.source.target.kind == "quantity" else "")
     value = value_at(session, target, cell.manoeuvre) if session is not None else None
-    return {"source": cell.source.origin, "written": written, "field": field, "value": _shown(value)}
+    return {"source": cell.source.origin, "written": written, "field": field, "value": _shown(value, people)}
 
 
 def _empty_fields(check: MapCheck) -> list[str]:
@@ -124,8 +125,8 @@ def _unused(check: MapCheck) -> list[str]:
     return list(seen)
 
 
-def map_check_json(check: MapCheck) -> dict[str, object]:
-    """The report as a JSON-ready tree."""
+def map_check_json(check: MapCheck, people: bool = False) -> dict[str, object]:
+    """The report as a JSON-ready tree (units in UCUM; ``people``: as the trade spells them, for the text)."""
     records = []
     for (record, result), decided in zip(check.records, check.decisions, strict=True):
         entry: dict[str, object] = {"where": record.where, "decision": decision(decided)}
@@ -133,7 +134,7 @@ def map_check_json(check: MapCheck) -> dict[str, object]:
             entry["error"] = result.line()
         else:
             entry["test_id"] = result.session.test_id
-            entry["fields"] = [_row(c, result.session) for c in record.cells]
+            entry["fields"] = [_row(c, result.session, people) for c in record.cells]
             entry["findings"] = [f.model_dump(mode="json") for f in result.findings]
             if isinstance(decided, InputError):
                 entry["refused"] = decided.line()
@@ -157,7 +158,7 @@ def map_check_json(check: MapCheck) -> dict[str, object]:
 
 def map_check_text(check: MapCheck, shown: int = SHOWN_RECORDS) -> str:
     """The report for people: the first ``shown`` records field by field, then the summary."""
-    doc = map_check_json(check)
+    doc = map_check_json(check, people=True)
     lines = [f"map {check.fmap.name} ({check.fmap.format}): {check.fmap.source}", f"sample {check.sample}", ""]
     for entry in _records(doc)[:shown]:
         if "error" in entry:

@@ -62,11 +62,7 @@ def first_validation_error(exc: ValidationError, source: str) -> InputError:
     errors = exc.errors(include_url=False)
     first = errors[0]
     loc = tuple(first["loc"])
-    if loc and loc[-1] == "decimals" and first["type"] == "less_than_equal":
-        # the reader counts the digits a lab wrote; too many is a property of the value
-        path, expected = field_path((*loc[:-1], "value")), "a number with at most 12 digits after the point"
-    else:
-        path, expected = field_path(loc), _expectation(first)
+    path, expected = field_path(loc), _expectation(first)
     if len(errors) > 1:
         expected += f" (+{len(errors) - 1} more problems)"
     if first["type"] == "missing":

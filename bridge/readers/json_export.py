@@ -16,12 +16,14 @@ from typing import Any
 from pydantic import ValidationError
 
 from bridge.errors import InputError, InvalidField, MissingField, UnknownFormat, UnreadableInput
-from bridge.model import Session
-from bridge.readers.common import decode_text, first_validation_error, shown
+from bridge.model import Quantity, Results, Session, filled_fields
+from bridge.readers.common import decode_text, field_path, first_validation_error, shown
 from bridge.science.normalise import normalise_tree
-from bridge.science.units import UnitCatalogue
+from bridge.science.units import MAX_DECIMALS, UnitCatalogue
 
 FORMAT = "dlco-result/1"
+_FILLED = tuple(sorted(filled_fields(Quantity)))  # decimals, original: the bridge's own record
+_NOT_IN_AN_EXPORT = "no such field in an export: the bridge records it itself (docs/format.md)"
 
 
 def read_export(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
@@ -38,11 +40,33 @@ def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: st
     """
     tree = _decimals_in_place(tree)
     try:
-        return Session.model_validate(normalise_tree(tree, catalogue))
+        session = Session.model_validate(normalise_tree(tree, catalogue))
     except ValidationError as exc:
         raise first_validation_error(exc, source) from None
     except InputError as exc:
         raise exc.with_source(source) from None
+    refuse_impossible(session, source)
+    return session
+
+
+# What a session reports: every result but the lab's predicted values (read from the model).
+RESULT_FIELDS = tuple(name for name in Results.model_fields if name != "predicted")
+
+
+def refuse_impossible(session: Session, source: str = "") -> None:
+    """Refuse a record no lab can have made: born after the test, or with nothing measured.
+
+    The JSON Schema cannot say either (each compares two fields, or needs one of several), so the
+    reader says it for every source; docs/format.md lists these rules beside the schema. A test
+    dated in the future is refused by the pipeline, which is given the time the input was read.
+    """
+    tested = session.performed_at.date()  # the day of the test where it was done (its own offset)
+    if session.patient.birth_date > tested:
+        got = session.patient.birth_date.isoformat()
+        raise InvalidField("patient.birth_date", f"a date on or before the test date {tested}, got {got}", source)
+    if not session.manoeuvres and all(getattr(session.results, name) is None for name in RESULT_FIELDS):
+        expected = f"at least one result ({', '.join(RESULT_FIELDS)}) or a manoeuvre; the record has none"
+        raise MissingField("results", expected, source)
 
 
 def _parse(data: bytes, source: str) -> dict[str, Any]:
@@ -71,15 +95,20 @@ def _parse(data: bytes, source: str) -> dict[str, Any]:
     return tree
 
 
-def _decimals_in_place(node: dict[str, Any]) -> dict[str, Any]:
+def _decimals_in_place(node: dict[str, Any], loc: tuple[int | str, ...] = ()) -> dict[str, Any]:
     """Parsed decimals as floats, with each quantity object's reported ``decimals``, in place.
 
-    The tree comes from ``json.loads(..., parse_float=Decimal)``: every value is exactly a
-    dict, list, str, int, bool, None, float (NaN, Infinity) or Decimal, so exact type tests
-    are enough (and keep ``True`` from counting as a number).
+    The tree comes from ``json.loads(..., parse_float=Decimal)`` (or a field map's reader): every
+    value is exactly a dict, list, str, int, bool, None, float (NaN, Infinity) or Decimal, so
+    exact type tests are enough (and keep ``True`` from counting as a number). A quantity object
+    carrying a field the bridge fills itself (``decimals``, ``original``) is refused: an export
+    says a value and its unit, never what the bridge records of them.
     """
     decimals = None
-    if "unit" in node and "decimals" not in node:
+    if "unit" in node or "value" in node:
+        for key in _FILLED:
+            if key in node:
+                raise InvalidField(field_path((*loc, key)), _NOT_IN_AN_EXPORT)
         value = node.get("value")
         if type(value) is Decimal:
             decimals = _decimals_of(value)
@@ -90,26 +119,32 @@ def _decimals_in_place(node: dict[str, Any]) -> dict[str, Any]:
         if kind is Decimal:
             node[key] = float(value)
         elif kind is dict:
-            _decimals_in_place(value)
+            _decimals_in_place(value, (*loc, key))
         elif kind is list:
-            _list_in_place(value)
+            _list_in_place(value, (*loc, key))
     if decimals is not None:
         node["decimals"] = decimals
     return node
 
 
-def _list_in_place(items: list[Any]) -> None:
+def _list_in_place(items: list[Any], loc: tuple[int | str, ...]) -> None:
     for i, value in enumerate(items):
         kind = type(value)
         if kind is Decimal:
             items[i] = float(value)
         elif kind is dict:
-            _decimals_in_place(value)
+            _decimals_in_place(value, (*loc, i))
         elif kind is list:
-            _list_in_place(value)
+            _list_in_place(value, (*loc, i))
 
 
-def _decimals_of(value: Decimal) -> int:
-    """Digits after the point as written: ``7.460`` -> 3, ``1.5E-3`` -> 4, ``1E+2`` -> 0."""
+def _decimals_of(value: Decimal) -> int | None:
+    """Digits after the point as written: ``7.460`` -> 3, ``1.5E-3`` -> 4, ``1E+2`` -> 0.
+
+    More than :data:`MAX_DECIMALS` is a number a program printed in full (``6.619999999999999``),
+    not a precision a lab reports: the value is read as it is, its precision taken as unknown
+    (None: shown with 6 significant digits, like a value the bridge computed).
+    """
     exponent = value.as_tuple().exponent
-    return -exponent if isinstance(exponent, int) and exponent < 0 else 0
+    written = -exponent if isinstance(exponent, int) and exponent < 0 else 0
+    return written if written <= MAX_DECIMALS else None

@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterator
 
+from bridge.display.unit_text import for_people
 from bridge.model import Derived, Finding, Quantity, Session, Severity
 from bridge.tables import Tables
 
@@ -24,9 +25,10 @@ def finding(code: str, severity: Severity, path: str, message: str) -> Finding:
 def finding_with_values(code: str, severity: Severity, path: str, template: str, **values: Quantity) -> Finding:
     """A finding whose sentence carries quantities: ``{name}`` places in ``template``, one per value.
 
-    ``message`` says them in the canonical units; ``Finding.text`` in any other (see bridge.model).
+    ``message`` says them in the canonical units, spelt as people read them (``mL/min/mmHg``: it is
+    what a refusal line and the audit's report show); ``Finding.text`` in any other (see bridge.model).
     """
-    message = template.format_map({name: f"{q.text()} {q.unit}" for name, q in values.items()})
+    message = template.format_map({name: f"{q.text()} {for_people(q.unit)}" for name, q in values.items()})
     return Finding(code=code, severity=severity, path=path, message=message, template=template, values=values)
 
 

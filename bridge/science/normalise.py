@@ -15,6 +15,7 @@ from typing import Annotated, Any, get_args, get_origin
 
 from pydantic import BaseModel, ValidationError
 
+from bridge.display.unit_text import for_people
 from bridge.errors import InvalidField, UnitError
 from bridge.model import Measure, Quantity, Session
 from bridge.science.units import UnitCatalogue, UnitDef, decimals_after_conversion
@@ -93,10 +94,12 @@ def checked_unit(unit_text: str, value: float, measure: Measure, catalogue: Unit
         expected = f"is a {unit.dimension.replace('_', ' ')} unit; expected one for {_dimension(measure)}"
         raise UnitError(f"{path}.unit", unit_text, expected)
     if value < 0 and not measure.signed:
-        raise InvalidField(f"{path}.value", f"a value >= 0, got {value:g}")
+        raise InvalidField(f"{path}.value", f"a value >= 0, got {value:g} {unit_text}")
     if not catalogue.within_limits(value, unit):
-        limit, base = catalogue.limits[unit.dimension], catalogue.dimensions[unit.dimension]
-        raise InvalidField(f"{path}.value", f"a finite value of at most {limit:g} {base} in magnitude, got {value:g}")
+        # Both numbers in the unit the file used (a pressure in kPa is not compared with 2000 mmHg).
+        limit = catalogue.limits[unit.dimension] / unit.factor
+        expected = f"a finite value of at most {limit:.4g} {unit_text} in magnitude, got {value:g} {unit_text}"
+        raise InvalidField(f"{path}.value", expected)
     return unit
 
 
@@ -141,7 +144,7 @@ def _decimals_in(text: str) -> int:
 
 
 def _dimension(measure: Measure) -> str:
-    return measure.dimension.replace("_", " ") + f" (e.g. {measure.canonical_unit})"
+    return measure.dimension.replace("_", " ") + f" (e.g. {for_people(measure.canonical_unit)})"
 
 
 @cache

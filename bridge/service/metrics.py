@@ -24,6 +24,7 @@ LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0,
 # files_failed_internal: quarantined because processing raised something other than an
 # InputError (a bug the file exposed); they are counted in files_quarantined as well.
 # records_quarantined: sessions a field map refused in a file whose other sessions went on.
+# files_skipped: inbox files that are not exports (bridge.inputs, the skip rule), left in place.
 COUNTERS = (
     "files_seen",
     "files_processed",
@@ -32,6 +33,7 @@ COUNTERS = (
     "files_duplicate",
     "corrections",
     "records_quarantined",
+    "files_skipped",
 )
 
 
@@ -166,7 +168,7 @@ class HealthServer:
             self.server = ThreadingHTTPServer((host, port), handler)
         except OSError as exc:
             # A port taken by another program is a setting to change, said in one line.
-            raise ConfigError("metrics_port", f"a free port on {host} ({exc.strerror or exc})") from exc
+            raise ConfigError("metrics_port", f"a free port on {host}, got {port} ({exc.strerror or exc})") from exc
         self.thread = threading.Thread(target=self.server.serve_forever, name="health", daemon=True)
 
     @property

@@ -17,7 +17,6 @@ back-off cap).
 from __future__ import annotations
 
 import logging
-import os
 import random
 import threading
 import time
@@ -27,7 +26,8 @@ from pathlib import Path
 from watchdog.observers import Observer
 
 from bridge.config import Settings
-from bridge.errors import DiskFull
+from bridge.errors import ConfigError, DiskFull
+from bridge.inputs import HIDDEN, TEMPORARY, find_inputs, is_input
 from bridge.service.delivery import Backoff, deliver_due
 from bridge.service.files import Disk, remove_strays
 from bridge.service.intake import Intake
@@ -36,7 +36,7 @@ from bridge.service.metrics import HealthServer, MeteredTransport, Metrics
 from bridge.service.settings import ServiceSettings
 from bridge.service.space import Space, SpaceWatchedTransport
 from bridge.service.transports.base import Transport
-from bridge.service.watcher import Readiness, is_candidate, pair_moves_quickly
+from bridge.service.watcher import Readiness, pair_moves_quickly
 from bridge.tables import Tables
 
 log = logging.getLogger("dlco_bridge.service")
@@ -46,6 +46,36 @@ PRUNE_EVERY_SECONDS = 86_400.0  # automatic retention runs at start and then onc
 # A wall clock that moved this much more (or less) than the monotonic clock between two looks
 # was stepped (an NTP step, a mistaken time zone or DST change), not slewed.
 CLOCK_STEP_SECONDS = 2.0
+
+
+def check_folders(settings: ServiceSettings) -> None:
+    """The folders the service needs, checked before it starts (ConfigError naming the key).
+
+    The inbox and each file destination's folder (another system's: it collects from there)
+    must exist, and so must the files a destination authenticates with (TLS, SMART): a mistyped
+    path or a share that is not mounted must not look like an empty feed, or a delivery nobody
+    collects. The service's own folders (archive, quarantine, state) may be created, and the
+    log says so; none may lie inside the inbox, which is read to any depth: its own files would
+    be taken again.
+    """
+    inbox = settings.inbox
+    theirs = [("inbox", inbox, "the lab's export folder")]
+    theirs += [(f"destination.{d.name}.folder", d.folder, "the folder another system collects from")
+               for d in settings.destinations if d.folder is not None]  # fmt: skip
+    for key, folder, what in theirs:
+        if not folder.is_dir():
+            got = "not a folder" if folder.exists() else "missing: mistyped, or a share not mounted?"
+            raise ConfigError(key, f"an existing folder ({what}), got {folder} ({got})")
+    for d in settings.destinations:  # the files a destination authenticates with
+        for name in ("ca_file", "cert_file", "key_file", "private_key_file"):
+            path = getattr(d, name)
+            if path is not None and not path.is_file():
+                raise ConfigError(f"destination.{d.name}.{name}", f"an existing file, got {path}")
+    own = [("archive", settings.archive), ("quarantine", settings.quarantine), ("state", settings.state)]
+    own += [(f"destination.{d.name}.folder", d.folder) for d in settings.destinations if d.folder is not None]
+    for key, folder in own:
+        if folder.resolve() == inbox.resolve() or folder.resolve().is_relative_to(inbox.resolve()):
+            raise ConfigError(key, f"a folder outside the inbox {inbox} (the inbox is read to any depth), got {folder}")
 
 
 class Service:
@@ -63,6 +93,7 @@ class Service:
         *,
         monotonic: Callable[[], float] = time.monotonic,
         disk: Disk | None = None,
+        created: tuple[Path, ...] = (),
     ) -> None:
         self.settings: ServiceSettings = settings.require_service()
         self.ledger = ledger
@@ -76,16 +107,23 @@ class Service:
         disk = disk or Disk()
         self.space = Space(self._places(), disk, monotonic, probe_every=self.settings.rescan_seconds)
         self.transports = {name: self._watched(name, t) for name, t in transports.items()}
-        self.readiness = Readiness(
-            self.settings.inbox, self.settings.stable_seconds, clock, self.files_arrived, monotonic
-        )
         self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set, disk=disk)
+        self.readiness = Readiness(
+            self.settings.inbox,
+            self.settings.stable_seconds,
+            clock,
+            self.files_arrived,
+            monotonic,
+            accepts=lambda relative: is_input(relative, self.intake.maps),
+        )
+        self._skipped: set[str] = set()  # inbox files that are not inputs, said once each
         self.backoff = Backoff(self.settings.retry_base_seconds, self.settings.retry_cap_seconds)
         self._unmovable: dict[str, tuple[int, int]] = {}
         self.addresses = {d.name: d.address for d in self.settings.destinations}
         self._next_prune = 0.0
         self._clock_mark: tuple[float, float] | None = None  # (wall, monotonic) at the last look
         self.health: HealthServer | None = None
+        self.created = created  # folders made for it before it ran (the state folder): said at start
 
     def _places(self) -> dict[str, Path]:
         """Where the service writes, by the name the disk-full state gives each."""
@@ -104,14 +142,20 @@ class Service:
     def run(self) -> None:
         """Watch, process and deliver until :attr:`stop` is set; then finish what is in flight."""
         self._start_health()  # first: a port in use stops the start before anything runs
-        for folder in (self.settings.inbox, self.settings.archive, self.settings.quarantine):
-            folder.mkdir(parents=True, exist_ok=True)
+        check_folders(self.settings)
+        created = list(self.created)
+        for folder in (self.settings.archive, self.settings.quarantine):
+            if not folder.is_dir():
+                folder.mkdir(parents=True)
+                created.append(folder)
+        for folder in created:
+            log.info("folder created", extra={"event": "folder_created", "folder": str(folder)})
         self._remove_strays()
         self._log_start()
         self._clamp_due_times()
         pair_moves_quickly()  # before Observer(): watchdog reads the wait when it is built
         observer = Observer()
-        observer.schedule(self.readiness, str(self.settings.inbox), recursive=False)
+        observer.schedule(self.readiness, str(self.settings.inbox), recursive=True)  # the inbox to any depth
         observer.start()
         delivery = threading.Thread(target=self._delivery_loop, name="delivery", daemon=True)
         delivery.start()
@@ -197,8 +241,8 @@ class Service:
             self.files_arrived.wait(IDLE_WAIT_SECONDS)
 
     def scan_once(self) -> int:
-        """Take every complete file in the inbox once; return how many were taken."""
-        names = [e.name for e in os.scandir(self.settings.inbox) if e.is_file() and is_candidate(Path(e.name))]
+        """Take every complete file in the inbox (to any depth) once; return how many were taken."""
+        names = self._inbox_inputs()
         taken = 0
         for path, complete_at in self.readiness.ready(n for n in names if not self._is_unmovable(n)):
             if self.stop.is_set():
@@ -213,10 +257,34 @@ class Service:
                 # The file cannot be read or moved (permissions, a share gone): leave it,
                 # say so once, and look again when it changes.
                 self._remember_unmovable(path)
-                log.error("input left in place", extra={"event": "stuck", "file": path.name, "reason": str(exc)})
-            self.readiness.forget(path.name)
+                log.error("input left in place", extra={"event": "stuck", "file": self._relative(path),
+                                                        "reason": str(exc)})  # fmt: skip
+            self.readiness.forget(self._relative(path))
             taken += 1
         return taken
+
+    def _inbox_inputs(self) -> list[str]:
+        """The inputs in the inbox, as paths relative to it (the one folder rule, bridge.inputs).
+
+        A file that is not an export (README.txt, Thumbs.db, a stray bridge.toml) is left where
+        it is, logged once and counted; hidden and temporary names are files still being written.
+        """
+        inbox = self.settings.inbox
+        names: list[str] = []
+        skipped: set[str] = set()
+        for found in find_inputs([inbox], self.intake.maps):
+            relative = found.path.relative_to(inbox).as_posix() if found.path != inbox else ""
+            if found.skipped is None:
+                if relative:
+                    names.append(relative)
+            elif found.skipped not in (HIDDEN, TEMPORARY):
+                skipped.add(relative)
+                if relative not in self._skipped:
+                    self.metrics.count("files_skipped")
+                    log.info("not an input: left in the inbox", extra={"event": "skipped", "file": relative,
+                                                                          "reason": found.skipped})  # fmt: skip
+        self._skipped = skipped
+        return names
 
     def _is_unmovable(self, name: str) -> bool:
         seen = self._unmovable.get(name)
@@ -236,7 +304,11 @@ class Service:
             stat = path.stat()
         except OSError:
             return
-        self._unmovable[path.name] = (stat.st_size, stat.st_mtime_ns)
+        self._unmovable[self._relative(path)] = (stat.st_size, stat.st_mtime_ns)
+
+    def _relative(self, path: Path) -> str:
+        """How the inbox's bookkeeping names a file: its path below the inbox, ``/``-separated."""
+        return path.relative_to(self.settings.inbox).as_posix()
 
     def _between_messages(self) -> bool:
         """Beat the delivery heartbeat (a long backlog is work, not a hang); whether to stop."""

@@ -2,6 +2,7 @@
 
 Owns:
 - :func:`is_candidate` -- names never taken (hidden files, a writer's temporary names);
+  which files of the inbox, to any depth, are inputs is :mod:`bridge.inputs`' rule (``accepts``);
 - :class:`Readiness` -- a file is taken only when complete: closed after writing or renamed
   in (inotify events through watchdog), or, for what events miss (network shares, a missed
   event), size and modification time unchanged for ``stable_seconds`` on a periodic rescan,
@@ -18,7 +19,7 @@ import logging
 import threading
 import time
 from collections.abc import Callable, Iterable
-from pathlib import Path
+from pathlib import Path, PurePath
 from typing import Any
 
 from watchdog.events import (
@@ -30,10 +31,9 @@ from watchdog.events import (
     FileSystemEventHandler,
 )
 
-log = logging.getLogger("dlco_bridge.intake")
+from bridge.inputs import in_progress
 
-# Names a writer uses while a file is still being written; never taken.
-_IN_PROGRESS_SUFFIXES = (".tmp", ".part", ".partial", ".crdownload", ".filepart")
+log = logging.getLogger("dlco_bridge.intake")
 
 # watchdog holds an unpaired "moved from" event for 0.5 s to pair it with its "moved to", and
 # its event thread sleeps through that wait: every rename into the inbox arrived up to 0.5 s
@@ -71,10 +71,9 @@ def _watchdog_grouper() -> Any:
     return getattr(module, "InotifyMoveEventGrouper", None)
 
 
-def is_candidate(path: Path) -> bool:
-    """A file the intake may take (not hidden, not a temporary name)."""
-    name = path.name
-    return not name.startswith(".") and not name.endswith(_IN_PROGRESS_SUFFIXES)
+def is_candidate(path: PurePath) -> bool:
+    """A file the intake may take one day: not hidden, not a writer's temporary name (bridge.inputs)."""
+    return not in_progress(path.name)
 
 
 class Readiness(FileSystemEventHandler):
@@ -87,8 +86,10 @@ class Readiness(FileSystemEventHandler):
         clock: Callable[[], float],
         wake: threading.Event,
         monotonic: Callable[[], float] = time.monotonic,
+        accepts: Callable[[PurePath], bool] = is_candidate,
     ):
         self.inbox = inbox
+        self.accepts = accepts  # the folder rule: is a file at this path below the inbox an input?
         self.stable_seconds = stable_seconds
         self.clock = clock  # wall time: when a file was complete, for the latency it is measured from
         self.monotonic = monotonic  # how long a file has been unchanged
@@ -113,17 +114,23 @@ class Readiness(FileSystemEventHandler):
     def on_modified(self, event: FileSystemEvent) -> None:
         if isinstance(event, FileModifiedEvent):
             with self._lock:
-                self._closed.pop(Path(str(event.src_path)).name, None)
+                path = Path(str(event.src_path))
+                if path.is_relative_to(self.inbox):
+                    self._closed.pop(path.relative_to(self.inbox).as_posix(), None)
 
     def _complete(self, path: Path) -> None:
-        if path.parent == self.inbox and is_candidate(path):
+        try:
+            relative = path.relative_to(self.inbox)  # in a sub-folder too: the inbox is read to any depth
+        except ValueError:
+            return
+        if self.accepts(relative):
             with self._lock:
-                self._closed[path.name] = self.clock()
+                self._closed[relative.as_posix()] = self.clock()
             self.wake.set()
 
     # -- intake thread --
     def ready(self, names: Iterable[str]) -> list[tuple[Path, float]]:
-        """The files of ``names`` (present in the inbox) that are complete, with since when (wall time)."""
+        """The files of ``names`` (paths relative to the inbox, ``/``-separated) that are complete, with since when."""
         now, since = self.clock(), self.monotonic()
         done: list[tuple[Path, float]] = []
         for name in sorted(names):

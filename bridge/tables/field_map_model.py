@@ -154,4 +154,9 @@ class MapChoice:
     by_pattern: tuple[tuple[str, FieldMap], ...] = ()
 
     def for_file(self, name: str) -> FieldMap | None:
-        return next((m for pattern, m in self.by_pattern if fnmatch.fnmatchcase(name, pattern)), self.default)
+        matched = self.by_name(name)
+        return matched if matched is not None else self.default
+
+    def by_name(self, name: str) -> FieldMap | None:
+        """The map of the first pattern that matches ``name`` (None: no pattern does)."""
+        return next((m for pattern, m in self.by_pattern if fnmatch.fnmatchcase(name, pattern)), None)

@@ -20,6 +20,8 @@ from bridge.science.units import TRADITIONAL_PER_SI
 from bridge.tables import CodeTable, Plausibility, Tables
 from bridge.tables.field_map_model import FieldMap, MapChoice
 from bridge.tables.field_map_parser import field_map
+from bridge.tables.finding_codes import TABLE as FINDING_CODES_TABLE
+from bridge.tables.finding_codes import FindingCodes
 from bridge.tables.grades import grade_table
 from bridge.tables.result_status import result_status_table
 from bridge.tables.spirometry_grades import NAME as SPIROMETRY_GRADES_TABLE
@@ -75,6 +77,11 @@ def load_reference_equations(folder: Path | None = None) -> ReferenceEquations:
 def repeatability_criteria(folder: Path | None = None) -> tuple[str, ...]:
     """The names of the repeatability criteria in ``quality_grades.toml`` (what settings may select)."""
     return grade_table(_text(folder or mappings_dir(), "quality_grades.toml")).criterion_names
+
+
+def finding_codes(folder: Path | None = None) -> FindingCodes:
+    """Every finding code the bridge can report (what the settings ``allow`` and ``blocking`` may name)."""
+    return FindingCodes.from_toml(_text(folder or mappings_dir(), FINDING_CODES_TABLE))
 
 
 def load_field_map(path: Path, tables: Tables) -> FieldMap:

@@ -10,8 +10,8 @@ from bridge.cli import main
 from bridge.tables.files import samples_dir
 
 
-def test_audit_exits_0_and_reports_a_broken_export_and_a_foreign_file_as_findings(tmp_path: Path, capsys):
-    """A broken export (sample 08) and a TOML file (a format no reader claims) are findings, and the exit is 0."""
+def test_audit_exits_0_reports_a_broken_export_and_skips_what_is_not_an_export(tmp_path: Path, capsys):
+    """A broken export (sample 08) is a finding; a stray bridge.toml is skipped and counted (issue 19.4); exit 0."""
     archive = tmp_path / "archive"
     (archive / "service").mkdir(parents=True)
     for name in ("01-healthy-adult.json", "08-malformed.json", "service/bridge.toml"):
@@ -20,11 +20,13 @@ def test_audit_exits_0_and_reports_a_broken_export_and_a_foreign_file_as_finding
     code = main(["audit", str(archive), "--report", str(tmp_path / "r"), "--workers", "1"])
     with open(tmp_path / "r" / "findings.csv", newline="", encoding="utf-8") as handle:
         refused = {(Path(row["file"]).name, row["check"]) for row in csv.DictReader(handle) if row["test_id"] == ""}
+    summary = json.loads((tmp_path / "r" / "summary.json").read_text())
 
     assert 0 == code
     # source: samples/08-malformed.json has a date-time without a UTC offset (README, "What the samples show")
-    assert {("08-malformed.json", "INVALID_RECORD"), ("bridge.toml", "UNKNOWN_FORMAT")} == refused
-    assert "report in" in capsys.readouterr().out
+    assert {("08-malformed.json", "INVALID_RECORD")} == refused
+    assert (2, 1) == (summary["files"], summary["skipped"])
+    assert "1 skipped (not exports); report in" in capsys.readouterr().out
 
 
 def test_audit_that_cannot_write_its_report_exits_1(tmp_path: Path, capsys):

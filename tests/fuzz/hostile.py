@@ -24,6 +24,7 @@ import json
 import math
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
+from datetime import date, datetime
 from functools import cache
 from pathlib import Path
 from typing import Any
@@ -555,6 +556,8 @@ class SchemaWalk:
             if name == "Quantity" and self.catalogue and field in FIELD_DIMENSIONS:
                 return self.catalogue_quantity(FIELD_DIMENSIONS[field])
             return self.walk(self.defs[name], field)
+        if self.catalogue and field in ("birth_date", "performed_at"):
+            return self.plausible_date(field)
         if "anyOf" in node:
             return st.one_of([self.walk(branch, field) for branch in node["anyOf"]])
         if node.get("type") == "object" and "properties" in node:
@@ -577,9 +580,17 @@ class SchemaWalk:
             {
                 "value": st.one_of(clinical, clinical, self.walk(properties["value"], None)),
                 "unit": st.sampled_from(units_of(dimension)),
-            },
-            optional={"decimals": self.walk(properties["decimals"], None)},
+            }
         )
+
+    @staticmethod
+    def plausible_date(field: str) -> st.SearchStrategy[str]:
+        """A birth date, or a test date-time after it and before the fuzz tests' NOW (impossible dates are refused)."""
+        if field == "birth_date":
+            return st.dates(date(1930, 1, 1), date(1999, 12, 31)).map(date.isoformat)
+        offsets = st.sampled_from(("Z", "+00:00", "+01:00", "-07:00", "+05:45", "+14:00", "-12:00"))
+        moments = st.datetimes(datetime(2000, 1, 1), datetime(2026, 3, 1))
+        return st.builds(lambda moment, offset: moment.isoformat(timespec="seconds") + offset, moments, offsets)
 
 
 # Optional values a lab may give a status (lab_status): any code leaves the record readable.

@@ -21,7 +21,8 @@ def test_map_check_shows_each_column_beside_its_field_and_value(capsys):
     out, _ = capsys.readouterr()
     line = next(x for x in out.splitlines() if "column 'Pbar kPa'" in x)
     # 100.6 kPa = 754.6 mmHg (1 kPa = 7.50062 mmHg)  # source: BIPM SI Brochure, 9th ed., table 8 (mmHg = 133.322 Pa)
-    expected = ["column 'Pbar kPa'", "100,6 [kPa]", "->", "conditions.barometric_pressure", "=", "754.6", "mm[Hg]"]
+    # map check is text for people: the trade's mmHg, not UCUM's mm[Hg] (issue 19.8; --json keeps UCUM)
+    expected = ["column 'Pbar kPa'", "100,6 [kPa]", "->", "conditions.barometric_pressure", "=", "754.6", "mmHg"]
     assert (0, expected) == (code, _cells(line))
     assert "unused in the sample: column 'Trial', column 'Operator note'" in out
 

@@ -178,6 +178,8 @@ class Site:
 
     def __post_init__(self) -> None:
         self.inbox.mkdir(parents=True, exist_ok=True)
+        # file_destination()'s folder: another system's, so it exists before the service starts (checked at start)
+        (self.root / "outbox").mkdir(exist_ok=True)
         self.config.write_text(
             'inbox = "inbox"\narchive = "archive"\nquarantine = "quarantine"\nstate = "state"\n'
             "rescan_seconds = 0.2\nstable_seconds = 0.3\nretry_base_seconds = 0.05\nretry_cap_seconds = 0.5\n"

@@ -150,7 +150,7 @@ def test_a_metrics_port_in_use_stops_the_service_at_start_in_one_line(make_site:
 
     assert 1 == refused.returncode
     assert [
-        "dlco-bridge: metrics_port: a free port on 127.0.0.1 (Address already in use)"
+        f"dlco-bridge: metrics_port: a free port on 127.0.0.1, got {first.metrics_port} (Address already in use)"
     ] == refused.stderr.splitlines()
 
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import re
 import signal
+import socket
 import subprocess
 import sys
 from collections.abc import Callable, Iterator
@@ -173,3 +174,63 @@ def test_ae_is_dead_lettered_and_ar_follows_each_destination_policy(make_site: M
     site.stop()
 
     assert re.search(rf"will retry .*destination=patient .*address=127\.0\.0\.1:{patient.port}", site.stderr())
+
+
+# source: HL7 v2.5.1 ch. 2 (MSH segment), a minimal ORU^R01 header the stand-in answers
+GOOD_MESSAGE = b"MSH|^~\\&|DLCO-BRIDGE|SITE|RECORDS|HOSPITAL|20260101120000||ORU^R01^ORU_R01|C-1|P|2.5.1\rPID|1\r"
+
+
+def _start_stand_in(folder: Path, mllp_port: int) -> subprocess.Popen[str]:
+    process = subprocess.Popen(
+        [sys.executable, "-m", "bridge", "stand-in", "--folder", str(folder), "--mllp-port", str(mllp_port),
+         "--fhir-port", "0"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, env=clean_environment(), text=True,
+    )  # fmt: skip
+    assert process.stdout is not None
+    process.stdout.readline()  # the first line: listening (or nothing, when it could not start)
+    return process
+
+
+def test_the_stand_in_restarts_on_its_mllp_port_at_once(tmp_path: Path) -> None:
+    """Stopped while a sender is connected, the stand-in starts again on the same MLLP port at once (issue 19.9).
+
+    The stopped process closes its side of the connection first, which leaves the port in TIME_WAIT for
+    about a minute; the listener sets SO_REUSEADDR, as the FHIR endpoint's http.server does.
+    """
+    # source: RFC 9293 section 3.6.1 (the side that closes first waits in TIME_WAIT for 2 MSL); POSIX SO_REUSEADDR
+    port = free_port()
+    first = _start_stand_in(tmp_path / "a", port)
+    sender = socket.create_connection(("127.0.0.1", port), timeout=10)
+    try:
+        sender.sendall(b"\x0b" + GOOD_MESSAGE + b"\x1c\r")
+        assert b"MSA|AA" in sender.recv(65536)
+        first.send_signal(signal.SIGTERM)
+        first.communicate(timeout=10)
+        again = _start_stand_in(tmp_path / "b", port)
+        try:
+            assert again.poll() is None, again.communicate(timeout=10)
+        finally:
+            again.send_signal(signal.SIGTERM)
+            _, err = again.communicate(timeout=10)
+    finally:
+        sender.close()
+
+    assert "" == err
+
+
+def test_a_port_in_use_is_named_in_the_error(tmp_path: Path) -> None:
+    """--mllp-port on a port another program holds: one line naming the flag and the port, exit 1."""
+    with socket.socket() as holder:
+        holder.bind(("127.0.0.1", 0))
+        holder.listen()
+        port = holder.getsockname()[1]
+        done = subprocess.run(
+            [sys.executable, "-m", "bridge", "stand-in", "--folder", str(tmp_path), "--mllp-port", str(port),
+             "--fhir-port", "0"],
+            capture_output=True, env=clean_environment(), text=True, timeout=60,
+        )  # fmt: skip
+
+    assert (1, f"dlco-bridge: --mllp-port: a free port on 127.0.0.1, got {port} (Address already in use)\n") == (
+        done.returncode,
+        done.stderr,
+    )

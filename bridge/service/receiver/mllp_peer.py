@@ -43,6 +43,15 @@ def ack_for(message: bytes, code: str, control_id: str, at: datetime) -> bytes:
     return f"{msh_out}\r{msa}\r".encode()
 
 
+class _Listener(socketserver.ThreadingTCPServer):
+    """The listening socket: SO_REUSEADDR, so that a stand-in stopped and started again binds its port
+    at once instead of waiting out the old connections' TIME_WAIT (about a minute); as the FHIR
+    endpoint's http.server does."""
+
+    allow_reuse_address = True
+    daemon_threads = True
+
+
 class MllpPeer:
     """An MLLP listener on 127.0.0.1 in a background thread; ``answer`` may be changed while it runs."""
 
@@ -54,8 +63,7 @@ class MllpPeer:
         self.received = 0
         self._lock = threading.Lock()
         folder.mkdir(parents=True, exist_ok=True)
-        self.server = socketserver.ThreadingTCPServer(("127.0.0.1", port), _handler(self))
-        self.server.daemon_threads = True
+        self.server = _Listener(("127.0.0.1", port), _handler(self))
         self.thread = threading.Thread(target=self.server.serve_forever, args=(0.1,), name="stand-in-mllp", daemon=True)
 
     @property
