@@ -232,8 +232,8 @@ def test_charted_predicted_from_file_environment_and_flags():
 
 
 def test_a_bad_charted_predicted_names_key_and_expected_values():
-    """One line: the file, the key, the values it may take and the value given."""
-    message = "site.toml: emit.charted_predicted: one of gli-2017, lab, got 'both'"
+    """One line: the variable it came from, the values it may take and the value given."""
+    message = "DLCO_BRIDGE_EMIT_CHARTED_PREDICTED: one of gli-2017, lab, got 'both'"
 
     assert message == str(_error("", {"DLCO_BRIDGE_EMIT_CHARTED_PREDICTED": "both"}))
 

@@ -146,7 +146,7 @@ def test_audit_refuses_a_folder_holding_an_earlier_report_unless_told(tmp_path, 
     replaced = main(["audit", str(archive), "--report", str(report), "--workers", "1", "--overwrite"])
 
     assert (1, 0) == (refused, replaced)
-    assert f"dlco-bridge: --report: a folder without an earlier report, got {report} holding findings.csv" in err
+    assert f"dlco-bridge: --report: a folder without an earlier report, got {report} holding manifest.json" in err
     assert not (report / "ndjson").exists()
 
 

@@ -239,10 +239,6 @@ def cmd_show(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
     return EXIT_OK
 
 
-# What an audit writes into its --report folder (docs/audit.md); an earlier audit's is not mixed with a new one.
-REPORT_FILES = ("findings.csv", "summary.json", "report.html", "ndjson")
-
-
 SHOWABLE = "an HL7 v2 message (MSH segment first) or a FHIR Bundle (JSON, resourceType Bundle)"
 
 
@@ -275,6 +271,7 @@ def cmd_schema(args: argparse.Namespace, settings: Settings, tables: Tables) -> 
 
 def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> int:
     """Audit an archive; exit 0 whatever was found, 1 only when the report could not be written."""
+    from bridge.audit.report import MANIFEST
     from bridge.audit.run import AuditSettings, Job, run_audit, terminal  # matplotlib: only when auditing
 
     if args.workers is not None and args.workers < 1:
@@ -284,16 +281,11 @@ def cmd_audit(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     if missing:  # a mistyped or unmounted archive is not an empty one
         print(f"{missing[0]}: (path): an existing file or folder to audit, found none", file=sys.stderr)
         return EXIT_BAD_INPUT
-    earlier = [name for name in REPORT_FILES if (args.report / name).exists()]
-    if earlier and not args.overwrite:
-        raise ConfigError("--report", f"a folder without an earlier report, got {args.report} holding {earlier[0]} "
+    # An earlier report (its manifest) is replaced only when asked; a folder that is not one is refused by the
+    # report writer (bridge.audit.report.prepare_folder), which removes exactly what the earlier run listed.
+    if (args.report / MANIFEST).exists() and not args.overwrite:
+        raise ConfigError("--report", f"a folder without an earlier report, got {args.report} holding {MANIFEST} "
                           "(--overwrite replaces it)")  # fmt: skip
-    for name in earlier:  # --overwrite: nothing of the earlier report survives beside the new one
-        target = args.report / name
-        if target.is_dir():
-            shutil.rmtree(target)
-        else:
-            target.unlink()
     audit = AuditSettings(emit_ndjson=args.emit == "ndjson")
     if args.workers is not None:
         audit = replace(audit, workers=args.workers)

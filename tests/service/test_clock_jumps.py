@@ -72,6 +72,7 @@ def running(root: Path, clock: SteppedClock, receiver: Switchable) -> Iterator[S
     settings = parse_settings(SETTINGS, {}, base=root)
     service_settings = settings.require_service()
     service_settings.inbox.mkdir(parents=True, exist_ok=True)
+    (root / "out").mkdir(exist_ok=True)  # a file destination's folder must exist at start (issue 19.6)
     with Ledger.open(service_settings.ledger_path, now=clock) as ledger:
         # rand 0.9: every retry waits 0.9 x 8 s = 7.2 s, so a burst would stand out
         service = Service(settings, load_tables(), ledger, {"records": receiver}, clock, lambda: 0.9)

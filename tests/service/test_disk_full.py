@@ -111,6 +111,7 @@ class Running:
         self.settings = self.full_settings.require_service()
         self.settings.inbox.mkdir(parents=True)
         self.out = root / "out"
+        self.out.mkdir()  # a file destination's folder must exist at start (issue 19.6)
         self.folders = {
             "ledger": self.settings.state,
             "archive": self.settings.archive,
