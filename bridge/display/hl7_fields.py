@@ -3,7 +3,7 @@
 Owns: naming each field from hl7apy's reference tables for the message's own version (MSH-12,
 falling back to 2.5.1) and laying the listing out. Splitting (any of CR, LF or CRLF between
 segments; the delimiters each message declares in MSH-1/MSH-2) and unescaping values are
-``bridge.emit.hl7text``'s, shared with the emitter.
+``bridge.hl7.text``'s, shared with the emitter.
 Works on messages that do not validate, from other versions, or with Z-segments: a field
 hl7apy does not know is shown with its position only.
 
@@ -18,7 +18,7 @@ from functools import cache
 from types import MappingProxyType
 from typing import Any
 
-from bridge.emit.hl7text import delimiters, split_fields, split_segments, unescape
+from bridge.hl7.text import delimiters, split_fields, split_segments, unescape
 
 DEFAULT_VERSION = "2.5.1"
 _LABEL_WIDTH = 8

@@ -16,7 +16,7 @@ from decimal import Decimal
 from typing import Any
 
 from bridge.emit.fhir import Resource, dumps
-from bridge.emit.hl7text import FIELD_SEPARATOR, SEGMENT_SEPARATOR
+from bridge.hl7.text import FIELD_SEPARATOR, SEGMENT_SEPARATOR
 from bridge.model import Carried
 
 _COMPONENT = "^"

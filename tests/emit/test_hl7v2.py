@@ -28,7 +28,7 @@ from hypothesis import strategies as st
 from ucumvert import parse_ucum
 
 from bridge.emit.fhir import bundle_json
-from bridge.emit.hl7text import escape, escape_formatted, split_fields, split_segments, unescape
+from bridge.hl7.text import escape, escape_formatted, split_fields, split_segments, unescape
 from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_text, to_oru
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.outputs import payloads

@@ -14,7 +14,7 @@ import time
 from datetime import UTC, datetime
 from pathlib import Path
 
-from bridge.emit.hl7text import split_fields, split_segments
+from bridge.hl7.text import split_fields, split_segments
 from bridge.service.files import write_atomically
 from bridge.service.transports.mllp import FrameReader, frame
 

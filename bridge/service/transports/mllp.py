@@ -20,7 +20,7 @@ from collections.abc import Iterator
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 
-from bridge.emit.hl7text import split_fields, split_segments
+from bridge.hl7.text import split_fields, split_segments
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
 from bridge.service.transports.base import (
     DeliveryReceipt,
