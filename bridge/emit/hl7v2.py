@@ -27,13 +27,13 @@ from types import MappingProxyType
 from urllib.parse import urlsplit
 
 from bridge.emit.content import ReportContent, ResultItem
-from bridge.hl7.text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.emit.identifiers import observation_identifier
 from bridge.emit.notes import supporting_text
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.settings import EmitContext
 from bridge.emit.status import ItemStatus, Statuses, Withdrawn, resolve
 from bridge.errors import ConfigError, InvalidField, MappingError
+from bridge.hl7.text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.model import Outcome, Patient
 from bridge.tables import Code, Tables
 

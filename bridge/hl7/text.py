@@ -19,12 +19,14 @@ from __future__ import annotations
 import re
 from types import MappingProxyType
 
+from bridge.hl7.mllp import END_BLOCK, START_BLOCK
+
 SEGMENT_SEPARATOR = "\r"
 FIELD_SEPARATOR = "|"
 ENCODING_CHARACTERS = "^~\\&"  # component, repetition, escape, subcomponent
 
 # source: HL7 v2.5.1 appendix C (MLLP): a message is framed by <VT> ... <FS><CR>, so neither is data
-_SEGMENT = re.compile(r"[^\r\n\x0b\x1c]+")
+_SEGMENT = re.compile("[^\r\n" + re.escape((START_BLOCK + END_BLOCK).decode("ascii")) + "]+")
 _MSH = "MSH"
 # What escaping changes in data: a line break (CRLF is one), any other control character, a delimiter.
 _SPECIAL = re.compile(r"\r\n|[\x00-\x1f\x7f\\|^&~]")

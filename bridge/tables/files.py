@@ -3,7 +3,8 @@
 Owns: finding the mappings folder (the installed copy inside the package, or the source
 tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.tables.Tables`;
 reading the GLI-2017 reference tables (``mappings/gli2017/``) into
-:class:`bridge.science.reference.ReferenceEquations`; and reading the field maps the settings name; the HL7 tables once per process (``load_hl7_tables``).
+:class:`bridge.science.reference.ReferenceEquations`; reading the field maps the settings name;
+and the HL7 tables, once per process (``load_hl7_tables``).
 """
 
 from __future__ import annotations
@@ -97,7 +98,9 @@ def load_field_map(path: Path, tables: Tables) -> FieldMap:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise MappingError(str(path), "(file)", f"a readable field map ({exc.strerror})") from exc
-    return field_map(text, str(path), tables.units, ZoneInfo, tables.grades.criterion_names)
+    return field_map(
+        text, str(path), tables.units, ZoneInfo, tables.grades.criterion_names, sex_codes=tables.hl7.sex_of_code
+    )
 
 
 def load_map_choice(default: Path | None, by_pattern: Sequence[tuple[str, Path]], tables: Tables) -> MapChoice:
