@@ -70,9 +70,8 @@ def hl7_tables(text: str, name: str = NAME) -> Hl7Tables:
         acks[code] = answer
         if mode == "original":
             original.append(code)
-    sections = _table(table, "0074", name, "table.")
-    section = sections.get("service_section")
-    if section not in _codes(table, "0074", name):
+    section = _table(table, "0074", name, "table.").get("service_section")
+    if not isinstance(section, str) or section not in _codes(table, "0074", name):
         raise MappingError(name, "table.0074.service_section", f"a code of table 0074, got {section!r}")
     return Hl7Tables(
         sex_codes=MappingProxyType({known[sex]: code for sex, code in sexes.items()}),
