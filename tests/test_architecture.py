@@ -18,6 +18,7 @@ CORE = (
     "errors.py",
     "model.py",
     "pipeline.py",
+    "hl7",
     "science",
     "tables/__init__.py",
     "tables/toml.py",
@@ -222,3 +223,30 @@ def test_model_and_errors_import_only_stdlib_and_pydantic():
     for name in ("model.py", "errors.py"):
         ours = {m for m in _imports(PACKAGE / name) if _within(m, {"bridge"})}
         assert set() == {m for m in ours if not _within(m, {"bridge.errors"})}, name
+
+
+def test_hl7_text_sits_just_above_the_model():
+    """bridge.hl7 (HL7 v2 text, MLLP framing, ACKs, HL7 tables) imports of ours only errors and model.
+
+    Readers, emitters, display, service and CLI all use it, so it may use none of them.
+    """
+    files = sorted((PACKAGE / "hl7").rglob("*.py"))
+    assert files  # the package exists: a move must update this test, not empty it
+    for path in files:
+        ours = {m for m in _imports(path) if _within(m, {"bridge"})}
+        assert set() == {m for m in ours if not _within(m, {"bridge.errors", "bridge.model", "bridge.hl7"})}, path
+
+
+def test_only_bridge_hl7_writes_the_mllp_block_characters():
+    """The MLLP start and end block bytes are written in bridge/hl7/mllp.py and nowhere else of bridge/."""
+    # source: HL7 v2 MLLP release 2: <VT> (0x0B) starts a block, <FS> (0x1C) ends it
+    spellings = ("\\x0b", "\\x1c", "\\x0B", "\\x1C", "\\013", "\\034")
+    found = [
+        _id(path)
+        for path in sorted(PACKAGE.rglob("*.py"))
+        if path != PACKAGE / "hl7" / "mllp.py"
+        and path != PACKAGE / "model.py"  # the model's refusal of control characters in text, not framing
+        and any(s in path.read_text() for s in spellings)
+    ]
+
+    assert [] == found

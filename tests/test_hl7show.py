@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from bridge.display.hl7_fields import describe_er7, field_name
-from bridge.emit.hl7text import unescape
+from bridge.hl7.text import unescape
 
 GOLDEN = Path(__file__).resolve().parent / "golden" / "hl7" / "01-healthy-adult.oru.hl7"
 LEGACY = "MSH|^~\\&|OLDLAB|SITE|||199901011200||ORU^R01|42|P|2.3\nPID|||123||Doe\\S\\x^Jo\nZXY|1|first\\.br\\second\n"

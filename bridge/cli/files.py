@@ -25,6 +25,7 @@ from bridge.display.check_report import CAUTION, finding_text, outcome_json, out
 from bridge.display.hl7_fields import describe_er7
 from bridge.display.map_report import MapCheck, map_check_json, map_check_text, passes
 from bridge.errors import ConfigError, InputError, ProcessingFailed, UnknownFormat
+from bridge.hl7.mllp import unframed
 from bridge.inputs import Found, each_input, find_inputs, read_input
 from bridge.model import OUTPUT_KINDS, Outcome, Severity
 from bridge.pipeline import PipelineSettings, Route, process_all
@@ -248,7 +249,7 @@ def describe_shown(data: bytes, source: str) -> str:
         text = data.decode("utf-8")
     except UnicodeDecodeError:
         raise UnknownFormat("(content)", f"{SHOWABLE}, got bytes that are not UTF-8 text", source) from None
-    stripped = text.strip("\x0b\x1c\r\n\t \ufeff")  # MLLP framing and white space around a message
+    stripped = unframed(text, also="\n\t \ufeff")  # MLLP framing and white space around a message
     if stripped.startswith("{"):
         try:
             document = json.loads(stripped)

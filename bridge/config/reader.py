@@ -29,12 +29,12 @@ from bridge.service.settings import (
     Destination,
     ServiceSettings,
 )
-from bridge.tables.files import finding_codes, repeatability_criteria
+from bridge.tables.files import finding_codes, load_hl7_tables, repeatability_criteria
 from bridge.tables.finding_codes import FindingCodes
 
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
-PROCESSING_IDS = ("P", "T", "D")  # source: HL7 v2.5.1 table 0103 (production, training, debugging)
+PROCESSING_IDS = load_hl7_tables().processing_ids  # source: HL7 v2.5.1 table 0103 (mappings/hl7_tables.toml)
 
 
 @dataclass(frozen=True, slots=True)

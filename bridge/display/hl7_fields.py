@@ -2,8 +2,8 @@
 
 Owns: naming each field from hl7apy's reference tables for the message's own version (MSH-12,
 falling back to 2.5.1) and laying the listing out. Splitting (any of CR, LF or CRLF between
-segments; the delimiters each message declares in MSH-1/MSH-2) and unescaping values are
-``bridge.emit.hl7text``'s, shared with the emitter.
+segments, MLLP block characters dropped; the delimiters each message declares in MSH-1/MSH-2)
+and unescaping values are ``bridge.hl7.text``'s, shared with the emitter and the legacy reader.
 Works on messages that do not validate, from other versions, or with Z-segments: a field
 hl7apy does not know is shown with its position only.
 
@@ -18,7 +18,7 @@ from functools import cache
 from types import MappingProxyType
 from typing import Any
 
-from bridge.emit.hl7text import delimiters, split_fields, split_segments, unescape
+from bridge.hl7.text import delimiters, msh_field, msh_fields, split_fields, split_segments, unescape
 
 DEFAULT_VERSION = "2.5.1"
 _LABEL_WIDTH = 8
@@ -30,22 +30,22 @@ _ACRONYMS = MappingProxyType(
 
 def describe_er7(text: str) -> str:
     """One header line per segment, then ``PID-5   Patient Name   Fictive^Alder`` per field."""
-    segments = [s for s in split_segments(text.strip("\x0b\x1c\r\n")) if s.strip()]
+    segments = split_segments(text)
     if not segments:
         return ""
     field_sep, encoding = delimiters(segments[0])
-    version = _version(segments[0], field_sep)
+    version = _version(segments[0])
     lines: list[str] = []
     for segment in segments:
         lines.extend(_describe_segment(segment, field_sep, encoding, version))
     return "\n".join(lines) + "\n"
 
 
-def _version(first: str, field_sep: str) -> str:
-    fields = split_fields(first, field_sep)
-    if not first.startswith("MSH") or len(fields) < 12:
+def _version(first: str) -> str:
+    fields = msh_fields(first)
+    if fields is None or len(fields) < 12:
         return DEFAULT_VERSION
-    declared = fields[11].split("^")[0].strip()
+    declared = msh_field(fields, 12).split("^")[0].strip()
     return declared if _library(declared) else DEFAULT_VERSION
 
 

@@ -58,8 +58,6 @@ LLN_TEXT = "LLN (5th percentile)"
 # non-laboratory, non-imaging procedures (e.g. electrodiagnostics) - a lung function test is one.
 # There is no PFT code in that code system. Hb and COHb are no entries (emit/content.py, Supporting).
 _PROCEDURE = (OBSERVATION_CATEGORY, "procedure", "Procedure")
-# HL7 v2 table 0074 PF "Pulmonary Function" (the diagnostic service section of a lung-function report)
-_PF = (V2_0074, "PF", "Pulmonary Function")
 _FLAG_DISPLAY = MappingProxyType({"L": "Low", "N": "Normal", "H": "High"})
 # No proper value (a person outside the equations).  # source: FHIR R4 CodeSystem data-absent-reason
 _NOT_APPLICABLE = ("http://terminology.hl7.org/CodeSystem/data-absent-reason", "not-applicable", "Not Applicable")
@@ -219,7 +217,7 @@ def _observation(
         # value the lab marked preliminary or sent with an allowed error finding; "corrected" only
         # when it replaces a final one (bridge.emit.status).  # source: FHIR R4 ValueSet observation-status
         "status": statuses.of(item.key),
-        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_coding(*_PF)]}],
+        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_section(tables)]}],
         "code": _concept(item.code, tables, context),
         "subject": parts.subject(),
         "effectiveDateTime": parts.effective,
@@ -277,7 +275,7 @@ def _withdrawn(parts: _Parts, gone: Withdrawn, tables: Tables, context: EmitCont
         "resourceType": "Observation",
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier(gone.key)}],
         "status": "entered-in-error",
-        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_coding(*_PF)]}],
+        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_section(tables)]}],
         "code": _concept(gone.code, tables, context),
         "subject": parts.subject(),
         "effectiveDateTime": parts.effective,
@@ -308,6 +306,11 @@ def _coding(system: str, code: str, display: str) -> Resource:
     return {"system": system, "code": code, "display": display}
 
 
+def _section(tables: Tables) -> Resource:
+    """The diagnostic service section of a lung-function report: HL7 v2 table 0074 PF (``mappings/hl7_tables.toml``)."""
+    return _coding(V2_0074, tables.hl7.service_section, tables.hl7.service_section_display)
+
+
 def _concept(code: Code, tables: Tables, context: EmitContext) -> Resource:
     """A CodeableConcept: the code, and the standard code of the same concept beside a local one."""
     codings = [_coding(code_system_uri(code, tables, context), code.code, code.display)]
@@ -333,7 +336,7 @@ def _report(
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier(REPORT_KEY)}],
         # source: FHIR R4 ValueSet diagnostic-report-status ("preliminary", "final", "corrected")
         "status": statuses.report,
-        "category": [{"coding": [_coding(*_PF)]}],
+        "category": [{"coding": [_section(tables)]}],
         "code": _concept(tables.codes.panel, tables, context),
         "subject": parts.subject(),
         "effectiveDateTime": parts.effective,

@@ -1,8 +1,8 @@
 """HL7 v2.5.1 ORU^R01 in ER7 text: one message per outcome, built with string joins.
 
 Owns: the segment layout (MSH, PID, ORC, OBR, NTE, one OBX per result item with its NTEs),
-which fields are free text and which are not (escaping itself is ``bridge.emit.hl7text``), the
-stable message control id (MSH-10), and the length rules below. What is emitted (items, values,
+which fields are free text and which are not (escaping itself is ``bridge.hl7.text``), the
+stable message control id (MSH-10), and the length rules (``docs/hl7v2.md``). What is emitted (items, values,
 ranges, flags, notes) comes from :func:`bridge.emit.observations.build_content`, shared with the
 FHIR emitter.
 
@@ -10,49 +10,9 @@ Must not: read the clock, draw random numbers, do I/O, or import hl7apy (about 5
 message; a string join takes well under a millisecond). hl7apy and python-hl7 check the
 output in the tests.
 
-Decisions:
-
-* Escaping (HL7 v2.5.1 chapter 2.7, in ``bridge.emit.hl7text``): delimiters in data become
-  escape sequences. A line break in free text (NTE-3, data type FT) becomes the formatting
-  command ``\\.br\\``; in every other field (ST, names, identifiers) line breaks and other
-  control characters become one space.
-* Lengths: the limits checked are those hl7apy STRICT enforces per data type (ST 199, IS 20,
-  NM 16 characters, measured on the escaped text) plus MSH-10 at most 20 (HL7 v2.5.1 MSH-10
-  length 20  # from memory). Free text (code display text, NTE comments) is truncated with a
-  trailing ``...``; identifiers, codes and names are never truncated: an over-long one raises
-  :class:`~bridge.errors.InvalidField` (record data), :class:`~bridge.errors.ConfigError`
-  (site settings) or :class:`~bridge.errors.MappingError` (code tables).
-* OBX-7 is ``LLN-ULN`` for a GLI-2017 range (both limits known); else it uses the v2.5.1 form
-  ``>lower`` for a lower limit of normal with no upper limit
-  (# from memory: OBX-7 forms "lower-upper", "> lower", "< upper"). The LLN itself counts as
-  normal (flag N), which ``>`` states a hair too strictly; no ``>=`` form exists in 2.5.1.
-* PID-5 is required in 2.5.1: a record without names gets ``^^^^^^U`` (name type
-  unspecified) rather than ``""``, which receivers read as "delete the stored name".
-* OBX-5 (NM) is never in exponent notation; values computed here with no reported digits
-  may come as ``1.2e-05`` from six significant digits and are written out in full.
-* OBX-6 is ``code^code^UCUM``: the UCUM code as identifier and as text.  # common practice
-  "UCUM" is not in hl7apy's copy of HL7 table 0396 (a table warning, not an error).
-* Identity of the order and the lab (HL7 v2.5.1 ch. 4, ORC-2/ORC-3, ch. 7, OBR-2/OBR-3, OBX-23;
-  ch. 2, data types EI, HD, CX, XON): the filler order number (ORC-3 = OBR-3) is an EI
-  ``test id^lab facility id``, the lab's test id under the lab's namespace; the placer order
-  number (ORC-2 = OBR-2) only when the export carries one (the bridge never invents an order
-  of the placer's); MSH-4 and the EI namespace are the facility id of the lab that performed
-  the test (``emit.lab_facilities``, else ``emit.sending_facility``); OBX-23 names that lab
-  (XON.1 its name, XON.10 its facility id); PID-3 carries CX.5 the identifier type code
-  (table 0203, ``emit.patient_identifier_type``, MR by default).
-* Blood values (Hb, COHb) are not results of the PFT order, so they get no OBX of their own
-  (OBX-11 has no status for "supporting data": table 0085; an OBX of the report would be filed
-  as a blood result timed at the test, duplicating the blood lab's): the Hb an adjusted value
-  used travels in an NTE after that value's OBX, the COHb in an NTE after the DLCO's.
-* A result the reference equations cannot give (a person outside their range) is an OBX
-  without a value (OBX-2 and OBX-5 empty) with OBX-11 X, "results cannot be obtained for this
-  observation" (table 0085), and the reason in the NTE after it: the set of OBX segments
-  depends on the inputs present, never on the numbers.
-* OBX-3 carries the standard code beside a local one as the CE's alternate identifier
-  (components 4-6, coding system SCT for SNOMED CT, table 0396); OBX-17 the technique (CE).
-* MSH-10 hashes the input's content, the test (lab and test id), the units, original or correction, and
-  :data:`~bridge.emit.observations.OUTPUT_REVISION`: a resend is recognisable; a newer
-  bridge's different output is not dropped as a duplicate.
+The decisions behind each field (escaping, lengths, OBX-7, PID-5, OBX-5, OBX-6, identity of
+the order and the lab, blood values, results that cannot be obtained, OBX-3, MSH-10) are
+written out in ``docs/hl7v2.md``.
 """
 
 from __future__ import annotations
@@ -67,14 +27,14 @@ from types import MappingProxyType
 from urllib.parse import urlsplit
 
 from bridge.emit.content import ReportContent, ResultItem
-from bridge.emit.hl7text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.emit.identifiers import observation_identifier
 from bridge.emit.notes import supporting_text
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.settings import EmitContext
 from bridge.emit.status import ItemStatus, Statuses, Withdrawn, resolve
 from bridge.errors import ConfigError, InvalidField, MappingError
-from bridge.model import Outcome, Patient, Sex
+from bridge.hl7.text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
+from bridge.model import Outcome, Patient
 from bridge.tables import Code, Tables
 
 VERSION = "2.5.1"
@@ -97,9 +57,7 @@ ELLIPSIS = "..."
 CODING_SYSTEMS = MappingProxyType({"loinc": "LN", "snomed": "SCT", "local": "L"})  # HL7 table 0396
 CANNOT_BE_OBTAINED = "X"  # HL7 table 0085 (OBX-11): results cannot be obtained for this observation
 UNIT_SYSTEM = "UCUM"
-SEX_CODES = MappingProxyType({Sex.FEMALE: "F", Sex.MALE: "M", Sex.OTHER: "O", Sex.UNKNOWN: "U"})  # HL7 table 0001
 COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the source
-SERVICE_SECTION = "PF"  # HL7 table 0074: pulmonary function
 UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the record has no name
 
 
@@ -120,7 +78,7 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     orders = _order_numbers(outcome, facility)
     segments = [
         msh,
-        _pid(outcome.session.patient, context.patient_identifier_type),
+        _pid(outcome.session.patient, context.patient_identifier_type, tables),
         _segment("ORC", "RE", *orders),
         # OBR-25 (HL7 table 0123): P when a value is preliminary (the lab's status, an allowed error finding)
         _obr(orders, tables, now, performed, STATUS_LETTERS[statuses.report]),
@@ -192,7 +150,7 @@ def _msh(outcome: Outcome, context: EmitContext, sending_facility: str) -> tuple
     ), now
 
 
-def _pid(patient: Patient, identifier_type: str) -> str:
+def _pid(patient: Patient, identifier_type: str, tables: Tables) -> str:
     identifier = _identifier("patient.id", patient.id)
     kind = _namespace_setting("patient_identifier_type", identifier_type)
     name = _components(_name_part("patient.family", patient.family), _name_part("patient.given", patient.given))
@@ -207,7 +165,7 @@ def _pid(patient: Patient, identifier_type: str) -> str:
         name,
         "",
         hl7_date(patient.birth_date),
-        SEX_CODES[patient.sex],
+        tables.hl7.sex_codes[patient.sex],  # PID-8 (HL7 table 0001, mappings/hl7_tables.toml)
     )
 
 
@@ -233,7 +191,7 @@ def _obr(orders: tuple[str, str], tables: Tables, now: str, performed: str, stat
     fields[3] = _coded(tables.codes.panel, "panel")
     fields[6] = performed  # OBR-7 observation date/time
     fields[21] = now  # OBR-22 results report/status change
-    fields[23] = SERVICE_SECTION  # OBR-24
+    fields[23] = tables.hl7.service_section  # OBR-24 (HL7 table 0074)
     fields[24] = status  # OBR-25 result status (HL7 table 0123)
     return _segment("OBR", *fields)
 

@@ -16,7 +16,7 @@ from decimal import Decimal
 from typing import Any
 
 from bridge.emit.fhir import Resource, dumps
-from bridge.emit.hl7text import FIELD_SEPARATOR, SEGMENT_SEPARATOR
+from bridge.hl7.text import FIELD_SEPARATOR, split_fields, split_segments
 from bridge.model import Carried
 
 _COMPONENT = "^"
@@ -59,11 +59,11 @@ def _text(value: Any) -> str | None:
 def hl7_carried(er7: str, identifier_system: str, identifiers: Sequence[str]) -> tuple[Carried, ...]:
     """One record per OBX of an ORU^R01; ``identifiers``: the result each OBX carries, in OBX order."""
     found = []
-    observations = [s for s in er7.split(SEGMENT_SEPARATOR) if s.startswith("OBX" + FIELD_SEPARATOR)]
+    observations = [s for s in split_segments(er7) if s.startswith("OBX" + FIELD_SEPARATOR)]
     if len(observations) != len(identifiers):
         raise ValueError(f"{len(observations)} OBX segments for {len(identifiers)} results")
     for segment, identifier in zip(observations, identifiers, strict=True):
-        fields = segment.split(FIELD_SEPARATOR)  # fields[n] is OBX-n
+        fields = split_fields(segment)  # fields[n] is OBX-n
 
         def field(n: int, fields: list[str] = fields) -> str:
             return fields[n] if n < len(fields) else ""

@@ -39,7 +39,7 @@ class EmitSettings:
     identifier_system: str | None = None  # FHIR Identifier.system of observations; None: <system_base>/observation-id
     local_code_system: str | None = None  # FHIR Coding.system of local codes; None: <system_base>/local-code
     patient_reference: PatientReference = "identifier"
-    processing_id: str = "P"  # HL7 MSH-11 (table 0103): P production, T training, D debugging
+    processing_id: str = "P"  # HL7 MSH-11: P production (table 0103, mappings/hl7_tables.toml)
     lab_facilities: tuple[tuple[str, str], ...] = ()  # (lab name as exported, HL7 facility id): MSH-4, OBR-3
     patient_identifier_type: str = "MR"  # HL7 PID-3 CX.5 (table 0203): MR medical record number
     # Haemoglobin is sent (and named in notes) in this unit, g/L or g/dL (HEMOGLOBIN_UNITS);

@@ -1,7 +1,7 @@
 """Reader for ORU^R01 results from older HL7 v2 interfaces (2.3 to 2.5.1) through a field map (pure).
 
-Owns: splitting a file into messages (one or many; MLLP-framed or not; segments ended by
-``\\r``, ``\\n`` or ``\\r\\n``), checking each MSH (ORU^R01 of a version the map accepts), and
+Owns: reading a file's messages (one or many; MLLP-framed or not; split by
+``bridge.hl7.text.split_messages``), checking each MSH (ORU^R01 of a version the map accepts), and
 reading each message with python-hl7: session fields from segment locations (``PID-5.2``),
 observations from OBX by the local code in OBX-3.1, the value in OBX-5, the unit in OBX-6 or
 fixed by the map, the manoeuvre number in OBX-4 (sub-ID) for manoeuvre fields, and the lab's
@@ -18,12 +18,11 @@ from collections.abc import Iterator
 import hl7
 
 from bridge.errors import InputError, InvalidField, UnknownFormat, UnreadableInput
+from bridge.hl7.text import SEGMENT_SEPARATOR, split_messages
 from bridge.readers.mapped import Cell, MappedRecord, encoding_error, joined_text, mapped_record
 from bridge.science.units import UnitCatalogue
 from bridge.tables.field_map_model import FieldMap
 
-# source: HL7 v2.5.1 appendix C (MLLP): a message is framed by <VT> ... <FS><CR>
-_SEGMENT = re.compile(r"[^\r\n\x0b\x1c]+")
 _MSH = re.compile(r"MSH([^A-Za-z0-9\r\n])")
 
 
@@ -35,23 +34,8 @@ def read_hl7(data: bytes, source: str, fmap: FieldMap, catalogue: UnitCatalogue)
         text = data.decode("utf-8-sig" if fmap.encoding == "utf-8" else fmap.encoding)
     except UnicodeDecodeError as exc:
         raise encoding_error(data, exc, fmap, "hl7.encoding", source) from None
-    for number, segments in enumerate(messages(text), start=1):
+    for number, segments in enumerate(split_messages(text), start=1):
         yield _record(number, segments, fmap, catalogue, source)
-
-
-def messages(text: str) -> Iterator[list[str]]:
-    """The segments of each message, a message starting at each MSH (text before the first is one bad message)."""
-    current: list[str] = []
-    for match in _SEGMENT.finditer(text):
-        segment = match.group(0)
-        if not segment.strip():
-            continue
-        if segment.startswith("MSH") and current:
-            yield current
-            current = []
-        current.append(segment)
-    if current:
-        yield current
 
 
 def _record(number: int, segments: list[str], fmap: FieldMap, catalogue: UnitCatalogue, source: str) -> MappedRecord:
@@ -74,7 +58,7 @@ def _parsed(where: str, segments: list[str], fmap: FieldMap) -> hl7.Message:
     if not 3 <= len(encoding) <= 5 or len(set(encoding)) != len(encoding) or any(c.isalnum() for c in encoding):
         raise InvalidField(f"{where}: MSH-2", f"the encoding characters (such as ^~\\&), got {encoding!r}")
     try:
-        message = hl7.parse("\r".join(segments))
+        message = hl7.parse(SEGMENT_SEPARATOR.join(segments))
         kind = (message.extract_field("MSH", 1, 9, 1, 1), message.extract_field("MSH", 1, 9, 1, 2))
         version = message.extract_field("MSH", 1, 12, 1, 1)
     except (ValueError, IndexError, KeyError, hl7.exceptions.ParseException) as exc:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from bridge.hl7.tables import Hl7Tables
 from bridge.science.lab_status import ResultStatusTable
 from bridge.science.quality import GradeTable
 from bridge.science.reference import ReferenceEquations
@@ -30,3 +31,4 @@ class Tables:
     codes: CodeTable
     reference: ReferenceEquations  # GLI-2017: predicted, LLN, ULN, z-scores of DLCO, KCO and VA
     result_status: ResultStatusTable  # HL7 table 0085: what the lab's status of a value does
+    hl7: Hl7Tables  # HL7 tables 0001, 0008, 0074, 0103 (mappings/hl7_tables.toml, parsed by bridge.hl7.tables)

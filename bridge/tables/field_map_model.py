@@ -30,7 +30,6 @@ DEFAULT_HL7_DATE_FORMAT = ("%Y%m%d",)  # source: HL7 v2.5.1 ch. 2, DT/TS formats
 DEFAULT_HL7_DATETIME_FORMAT = ("%Y%m%d%H%M%z",)
 DEFAULT_JOIN = " "  # what stands between the texts of a field read from several columns or locations
 DEFAULT_TIME_ZONE = "UTC"
-DEFAULT_SEX_CODES = MappingProxyType({"M": "male", "F": "female", "O": "other", "U": "unknown"})
 DEFAULT_HL7_VERSIONS = ("2.3", "2.3.1", "2.4", "2.5", "2.5.1")
 DEFAULT_DELIMITER = "auto"  # sniffed by the stdlib csv module among , ; tab |
 ENCODINGS = ("utf-8", "latin-1", "cp1252")  # utf-8 drops a byte-order mark; cp1252: Windows Western European
@@ -108,7 +107,8 @@ class FieldMap:
     datetime_format: tuple[str, ...] = DEFAULT_DATETIME_FORMAT
     time_zone: str = DEFAULT_TIME_ZONE
     zone: tzinfo = UTC  # time_zone resolved by the shell's zone lookup (the core reads no tz database)
-    sex_codes: Mapping[str, str] = field(default_factory=lambda: DEFAULT_SEX_CODES)
+    # source code -> the record's sex; without [sex]: HL7 table 0001 (mappings/hl7_tables.toml)
+    sex_codes: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))
     unit_aliases: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))  # spelling -> unit
     # The lab's words for a value's status -> HL7 table 0085 codes ([status]); a word not listed is read as a code.
     status_codes: Mapping[str, str] = field(default_factory=lambda: MappingProxyType({}))

@@ -27,7 +27,6 @@ from bridge.tables.field_map_model import (
     DEFAULT_HL7_DATETIME_FORMAT,
     DEFAULT_HL7_VERSIONS,
     DEFAULT_MISSING,
-    DEFAULT_SEX_CODES,
     DEFAULT_TIME_ZONE,
     ENCODINGS,
     FORMATS,
@@ -117,6 +116,8 @@ def field_map(
     catalogue: UnitCatalogue,
     zone_of: Callable[[str], tzinfo],
     criteria: Collection[str] = (),
+    *,
+    sex_codes: Mapping[str, str],
 ) -> FieldMap:
     """The map in ``text`` (the file ``name``), checked against the canonical fields and the unit catalogue.
 
@@ -124,6 +125,7 @@ def field_map(
     time-zone database is I/O the core leaves to it); it raises LookupError or ValueError for a
     name it does not know. ``criteria``: the repeatability criteria a map may name in ``[map]
     repeatability`` (``GradeTable.criterion_names``, passed by the shell); a map naming another is refused.
+    ``sex_codes``: the codes a map without ``[sex]`` reads, HL7 table 0001 (``Tables.hl7.sex_of_code``).
     """
     data = read_toml(text, name)
     check = _Checker(text, name)
@@ -173,7 +175,7 @@ def field_map(
         ),
         time_zone=zone,
         zone=resolved,
-        sex_codes=_sex_codes(check, check.table(data, "sex")),
+        sex_codes=_sex_codes(check, check.table(data, "sex"), sex_codes),
         status_codes=_status_codes(check, check.table(data, "status")),
         unit_aliases=aliases,
         delimiter=_delimiter(check, csv_part),
@@ -274,9 +276,9 @@ def _unit_aliases(check: _Checker, table: Mapping[str, Any], catalogue: UnitCata
     return MappingProxyType(dict(table))
 
 
-def _sex_codes(check: _Checker, table: Mapping[str, Any]) -> Mapping[str, str]:
+def _sex_codes(check: _Checker, table: Mapping[str, Any], default: Mapping[str, str]) -> Mapping[str, str]:
     if not table:
-        return DEFAULT_SEX_CODES
+        return MappingProxyType(dict(default))
     allowed = tuple(s.value for s in Sex)
     for code, sex in table.items():
         if sex not in allowed:

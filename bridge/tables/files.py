@@ -3,16 +3,20 @@
 Owns: finding the mappings folder (the installed copy inside the package, or the source
 tree's top-level ``mappings/``) and parsing each table once into :class:`bridge.tables.Tables`;
 reading the GLI-2017 reference tables (``mappings/gli2017/``) into
-:class:`bridge.science.reference.ReferenceEquations`; and reading the field maps the settings name.
+:class:`bridge.science.reference.ReferenceEquations`; reading the field maps the settings name;
+and the HL7 tables, once per process (``load_hl7_tables``).
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
+from functools import cache
 from pathlib import Path
 from zoneinfo import ZoneInfo
 
 from bridge.errors import MappingError
+from bridge.hl7.tables import NAME as HL7_TABLES
+from bridge.hl7.tables import Hl7Tables, hl7_tables
 from bridge.science.equation_sets import SETS, EquationSet, EquationSetName
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
 from bridge.science.spirometry import SpirometryRules
@@ -65,7 +69,18 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
         codes=CodeTable.from_toml(_text(folder, "codes.toml")),
         reference=load_reference_equations(folder),
         result_status=result_status_table(_text(folder, "result_status.toml")),
+        hl7=load_hl7_tables(folder),
     )
+
+
+@cache
+def load_hl7_tables(folder: Path | None = None) -> Hl7Tables:
+    """HL7 tables 0001, 0008, 0074 and 0103 (``hl7_tables.toml``), parsed once per folder.
+
+    The shell's modules that need a code at start-up (settings, the MLLP transport, the
+    stand-in) read it here; the core gets the same value as ``Tables.hl7``.
+    """
+    return hl7_tables(_text(folder or mappings_dir(), HL7_TABLES), HL7_TABLES)
 
 
 def load_reference_equations(folder: Path | None = None) -> ReferenceEquations:
@@ -90,7 +105,9 @@ def load_field_map(path: Path, tables: Tables) -> FieldMap:
         text = path.read_text(encoding="utf-8")
     except OSError as exc:
         raise MappingError(str(path), "(file)", f"a readable field map ({exc.strerror})") from exc
-    return field_map(text, str(path), tables.units, ZoneInfo, tables.grades.criterion_names)
+    return field_map(
+        text, str(path), tables.units, ZoneInfo, tables.grades.criterion_names, sex_codes=tables.hl7.sex_of_code
+    )
 
 
 def load_map_choice(default: Path | None, by_pattern: Sequence[tuple[str, Path]], tables: Tables) -> MapChoice:

@@ -28,12 +28,12 @@ from hypothesis import strategies as st
 from ucumvert import parse_ucum
 
 from bridge.emit.fhir import bundle_json
-from bridge.emit.hl7text import escape, escape_formatted, split_fields, split_segments, unescape
 from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_text, to_oru
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.outputs import payloads
 from bridge.emit.settings import EmitContext
 from bridge.errors import ConfigError, InvalidField
+from bridge.hl7.text import escape, escape_formatted, split_fields, split_segments, unescape
 from bridge.model import Outcome
 from bridge.pipeline import process
 from bridge.science.units import TRADITIONAL_PER_SI

@@ -32,8 +32,12 @@ from tests.maps.conftest import CSV_MAP, CSV_SAMPLE, HL7_MAP, HL7_SAMPLE
 TABLES = load_tables()
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 MAPS = {
-    "csv": field_map(CSV_MAP.read_text(encoding="utf-8"), CSV_MAP.name, TABLES.units, ZoneInfo),
-    "hl7": field_map(HL7_MAP.read_text(encoding="utf-8"), HL7_MAP.name, TABLES.units, ZoneInfo),
+    "csv": field_map(
+        CSV_MAP.read_text(encoding="utf-8"), CSV_MAP.name, TABLES.units, ZoneInfo, sex_codes=TABLES.hl7.sex_of_code
+    ),
+    "hl7": field_map(
+        HL7_MAP.read_text(encoding="utf-8"), HL7_MAP.name, TABLES.units, ZoneInfo, sex_codes=TABLES.hl7.sex_of_code
+    ),
 }
 SAMPLES = {"csv": CSV_SAMPLE.read_bytes(), "hl7": HL7_SAMPLE.read_bytes()}
 ROUTES = (Route("fhir", "traditional"), Route("hl7", "si"))

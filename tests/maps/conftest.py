@@ -53,14 +53,26 @@ time_zone = "Europe/London"
 def small_csv_map(tables: Tables, delimiter: str = ",", decimal: str = ".", map_extra: str = "",
                   csv_extra: str = "") -> FieldMap:  # fmt: skip
     text = SMALL_CSV_MAP.format(delimiter=delimiter, decimal=decimal, map_extra=map_extra, csv_extra=csv_extra)
-    return field_map(text, "small.toml", tables.units, ZoneInfo)
+    return field_map(text, "small.toml", tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code)
 
 
 @pytest.fixture(scope="session")
 def csv_map(tables: Tables) -> FieldMap:
-    return field_map(CSV_MAP.read_text(encoding="utf-8"), "mappings/maps/lowmarsh-csv.toml", tables.units, ZoneInfo)
+    return field_map(
+        CSV_MAP.read_text(encoding="utf-8"),
+        "mappings/maps/lowmarsh-csv.toml",
+        tables.units,
+        ZoneInfo,
+        sex_codes=tables.hl7.sex_of_code,
+    )
 
 
 @pytest.fixture(scope="session")
 def hl7_map(tables: Tables) -> FieldMap:
-    return field_map(HL7_MAP.read_text(encoding="utf-8"), "mappings/maps/highcairn-hl7v23.toml", tables.units, ZoneInfo)
+    return field_map(
+        HL7_MAP.read_text(encoding="utf-8"),
+        "mappings/maps/highcairn-hl7v23.toml",
+        tables.units,
+        ZoneInfo,
+        sex_codes=tables.hl7.sex_of_code,
+    )

@@ -30,7 +30,7 @@ def _map(tables: Tables, csv_extra: str = "", **fields: str) -> FieldMap:
     for key, spec in fields.items():
         at = next(i for i, t in enumerate(lines) if t.startswith(f'"{key}" ='))
         lines[at] = f'"{key}" = {spec}'
-    return field_map("\n".join(lines), "built.toml", tables.units, ZoneInfo)
+    return field_map("\n".join(lines), "built.toml", tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code)
 
 
 def _read(tables: Tables, rows: list[str], **fields: str) -> list[Outcome | InputError]:
@@ -116,7 +116,7 @@ def test_several_locations_are_joined(hl7_map: FieldMap, tables: Tables):
     text = HL7_MAP.read_text(encoding="utf-8").replace(
         '"patient.family" = { at = "PID-5.1" }', '"patient.family" = { at = ["PID-5.2", "PID-5.1"] }'
     )
-    fmap = field_map(text, "joined.toml", tables.units, ZoneInfo)
+    fmap = field_map(text, "joined.toml", tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code)
     record = next(read_hl7(FIRST.encode(), "feed.hl7", fmap, tables.units))
     cell = next(c for c in record.cells if c.source.target.path == "patient.family")
     assert ("Bryony Fictive", "message 1, PID-5.2 + PID-5.1") == (cell.text, cell.where)

@@ -22,7 +22,7 @@ def _small(**replace: str) -> str:
 
 def _error(text: str, tables) -> str:
     with pytest.raises(MappingError) as caught:
-        field_map(text, "maps/site.toml", tables.units, ZoneInfo)
+        field_map(text, "maps/site.toml", tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code)
     return str(caught.value)
 
 
@@ -127,7 +127,10 @@ def test_the_bundled_maps_read(tables):
     from tests.maps.conftest import HL7_MAP
 
     names = [
-        field_map(p.read_text(encoding="utf-8"), p.name, tables.units, ZoneInfo).format for p in (CSV_MAP, HL7_MAP)
+        field_map(
+            p.read_text(encoding="utf-8"), p.name, tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code
+        ).format
+        for p in (CSV_MAP, HL7_MAP)
     ]
     assert ["csv", "hl7v2"] == names
 

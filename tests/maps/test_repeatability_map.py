@@ -24,7 +24,14 @@ def _lowmarsh_map(tables: Tables, repeatability: str | None) -> FieldMap:
     text = CSV_MAP.read_text(encoding="utf-8")
     if repeatability is not None:
         text = text.replace('format = "csv"\n', f'format = "csv"\nrepeatability = "{repeatability}"\n')
-    return field_map(text, "lowmarsh-csv.toml", tables.units, ZoneInfo, tables.grades.criterion_names)
+    return field_map(
+        text,
+        "lowmarsh-csv.toml",
+        tables.units,
+        ZoneInfo,
+        tables.grades.criterion_names,
+        sex_codes=tables.hl7.sex_of_code,
+    )
 
 
 def _three_manoeuvres(tables: Tables, settings: PipelineSettings) -> Outcome:

@@ -60,7 +60,7 @@ datetime_format = "%Y-%m-%d %H:%M"
 "results.dlco" = { column = "dlco", unit = "mmol/min/kPa", status_column = "dlco status" }
 "results.va" = { column = "va", unit = "L", status_column = "va status" }
 """
-    fmap = field_map(text, "status.toml", tables.units, ZoneInfo)
+    fmap = field_map(text, "status.toml", tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code)
     data = (
         "id,when,patient,sex,born,height,dlco,dlco status,va,va status\n"
         "T-1,2026-03-02 09:00,P-1,M,1970-01-01,175,8.1,wrong,6.0,ok\n"
@@ -83,4 +83,4 @@ def test_a_status_column_belongs_to_a_csv_column(tables: Tables) -> None:
     )
 
     with pytest.raises(MappingError, match="status_column"):
-        field_map(text, "m.toml", tables.units, ZoneInfo)
+        field_map(text, "m.toml", tables.units, ZoneInfo, sex_codes=tables.hl7.sex_of_code)

@@ -1,8 +1,8 @@
 """The stand-in's MLLP listener: every HL7 v2 message written to a folder and answered.
 
-Owns reading MLLP blocks (with the client's framing), writing each message as
-``<n>-<MSH-10>.hl7`` (atomically), and answering an ACK whose MSA-1 is ``answer``: AA, or AE/AR
-to rehearse a receiver's refusal. Loopback only.
+Owns reading MLLP blocks (``bridge.hl7.mllp``, the client's framing), writing each message as
+``<n>-<MSH-10>.hl7`` (atomically), and answering an ACK (``bridge.hl7.ack``) whose MSA-1 is ``answer``:
+AA, or AE/AR to rehearse a receiver's refusal. Loopback only.
 """
 
 from __future__ import annotations
@@ -14,33 +14,23 @@ import time
 from datetime import UTC, datetime
 from pathlib import Path
 
-from bridge.emit.hl7text import split_fields, split_segments
+from bridge.hl7.ack import build_ack
+from bridge.hl7.mllp import FrameReader, frame
+from bridge.hl7.text import control_id_of
 from bridge.service.files import write_atomically
-from bridge.service.transports.mllp import FrameReader, frame
+from bridge.tables.files import load_hl7_tables
 
-# source: HL7 v2.5.1 ch. 2 table 0008 (AA accept, AE error, AR reject)
-ANSWERS = ("AA", "AE", "AR")
+# source: HL7 v2.5.1 ch. 2 table 0008, original mode (AA accept, AE error, AR reject): mappings/hl7_tables.toml
+ANSWERS = load_hl7_tables().original_acknowledgments
+# MSA-3 of a rehearsed refusal, by what the code means (table 0008)
+_REHEARSED = {"accept": "", "error": "stand-in: rehearsed application error", "reject": "stand-in: rehearsed reject"}
 _UNSAFE = re.compile(r"[^A-Za-z0-9._-]")
 MAX_MESSAGE_BYTES = 10 * 1024 * 1024
 
 
 def ack_for(message: bytes, code: str, control_id: str, at: datetime) -> bytes:
     """An ACK to ``message``: MSH with sender and receiver swapped, MSA-1 ``code``, MSA-2 its MSH-10."""
-    text = message.decode("utf-8", errors="replace")
-    msh = split_fields(split_segments(text)[0], "|") if text.startswith("MSH|") else ["MSH", "^~\\&"]
-
-    def field(n: int) -> str:  # MSH-n is index n-1 (MSH-1 is the separator itself)
-        return msh[n - 1] if len(msh) >= n else ""
-
-    sent = field(10)
-    # source: HL7 v2.5.1 ch. 2: ACK MSH-3..6 answer MSH-5, 6, 3, 4; MSA-2 echoes MSH-10; MSH-9 ACK^R01^ACK
-    msh_out = "|".join(
-        ["MSH", "^~\\&", field(5), field(6), field(3), field(4), at.strftime("%Y%m%d%H%M%S"), "",
-         "ACK^R01^ACK", control_id, "P", "2.5.1"]
-    )  # fmt: skip
-    text_out = {"AA": "", "AE": "stand-in: rehearsed application error", "AR": "stand-in: rehearsed reject"}[code]
-    msa = "|".join(["MSA", code, sent] + ([text_out] if text_out else []))
-    return f"{msh_out}\r{msa}\r".encode()
+    return build_ack(message, code, control_id, at, _REHEARSED[load_hl7_tables().acknowledgments[code]])
 
 
 class _Listener(socketserver.ThreadingTCPServer):
@@ -82,10 +72,7 @@ class MllpPeer:
         with self._lock:
             self.received += 1
             number = self.received
-        text = message.decode("utf-8", errors="replace")
-        first = split_segments(text)[0] if text else ""
-        fields = split_fields(first, first[3]) if first.startswith("MSH") and len(first) > 3 else []
-        control = fields[9] if len(fields) > 9 else ""
+        control = control_id_of(message.decode("utf-8", errors="replace")) or ""
         name = f"{time.time_ns()}-{number:06d}-{_UNSAFE.sub('_', control)[:60] or 'no-control-id'}.hl7"
         write_atomically(self.folder / name, message)
         return ack_for(message, self.answer, f"SI{number:06d}", datetime.now(UTC))

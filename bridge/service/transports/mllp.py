@@ -1,10 +1,11 @@
-"""MLLP delivery of HL7 v2 messages: framing, ACK parsing, one persistent connection.
+"""MLLP delivery of HL7 v2 messages: one persistent connection, and what each ACK means.
 
-Owns the MLLP framing (constants, :func:`frame`, :class:`FrameReader`; pure, so a future
-receiver and the tests use the same code), ACK parsing (:func:`parse_ack`) and the client
-(:class:`MllpTransport`). It must not touch the ledger: it returns a receipt or raises a
-``DeliveryError`` subclass (``Rejected`` for AE/AR unless the destination's response policy says
-to retry them), and the delivery loop records it.
+Owns the client (:class:`MllpTransport`) and what an ACK means to it (:func:`judge`). The
+framing (``frame``, ``FrameReader``) and ACK parsing (``parse_ack``) are ``bridge.hl7``'s,
+shared with the stand-in's listener; the ACK codes are table 0008 of ``mappings/hl7_tables.toml``.
+It must not touch the ledger: it returns a receipt or raises a ``DeliveryError`` subclass
+(``Rejected`` for AE/AR unless the destination's response policy says to retry them), and the
+delivery loop records it.
 
 One connection is kept open and reused for every message, as receivers expect; it is
 dropped after any failure or out-of-step answer and opened again for the next message.
@@ -18,26 +19,35 @@ import ssl
 import time
 from collections.abc import Iterator
 from contextlib import contextmanager, suppress
-from dataclasses import dataclass
 
-from bridge.emit.hl7text import split_fields, split_segments
 from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejected
+from bridge.hl7.ack import Ack, parse_ack
+from bridge.hl7.mllp import END_BLOCK, START_BLOCK, FrameReader, can_be_framed, frame
+from bridge.hl7.text import control_id_of
 from bridge.service.transports.base import (
     DeliveryReceipt,
     OutgoingMessage,
     TlsOptions,
     client_tls_context,
 )
+from bridge.tables.files import load_hl7_tables
 
-# source: HL7 v2 MLLP (minimal lower layer protocol) release 2 — <VT> message <FS><CR>
-START_BLOCK = b"\x0b"
-END_BLOCK = b"\x1c"
-CARRIAGE_RETURN = b"\x0d"
-_TRAILER = END_BLOCK + CARRIAGE_RETURN
+# Framing and ACKs are bridge.hl7's; named here too for the transport's callers and tests.
+__all__ = [
+    "END_BLOCK",
+    "START_BLOCK",
+    "Ack",
+    "FrameReader",
+    "MllpTransport",
+    "frame",
+    "judge",
+    "parse_ack",
+    "read_control_id",
+]
 
-# source: HL7 v2.5.1 ch. 2, table 0008 (acknowledgment codes), MSA-1
-ACCEPTED = frozenset({"AA", "CA"})
-REFUSED = frozenset({"AE", "AR", "CE", "CR"})
+# source: HL7 v2.5.1 ch. 2, table 0008 (acknowledgment codes), MSA-1: mappings/hl7_tables.toml
+ACCEPTED = load_hl7_tables().answered_with("accept")
+REFUSED = frozenset(load_hl7_tables().acknowledgments) - ACCEPTED
 
 DEFAULT_CONNECT_TIMEOUT = 10.0
 DEFAULT_READ_TIMEOUT = 30.0
@@ -45,101 +55,12 @@ MAX_ACK_BYTES = 1 << 20  # an ACK is a few hundred bytes; anything huge is not o
 _CHUNK = 65536
 
 
-def frame(payload: bytes) -> bytes:
-    """Wrap one message in an MLLP block."""
-    return START_BLOCK + payload + _TRAILER
-
-
-class FrameReader:
-    """Collects bytes from a stream and hands back each complete MLLP block's content.
-
-    Bytes outside a block (noise between frames) are dropped and counted in ``dropped``;
-    ``pending`` is the size of the incomplete block held, for the caller's size limit.
-    """
-
-    def __init__(self) -> None:
-        self._buffer = bytearray()
-        self.dropped = 0
-
-    @property
-    def pending(self) -> int:
-        return len(self._buffer)
-
-    def feed(self, data: bytes) -> list[bytes]:
-        """Add ``data``; return the contents of the blocks it completed, in order."""
-        self._buffer += data
-        frames: list[bytes] = []
-        while True:
-            start = self._buffer.find(START_BLOCK)
-            if start < 0:
-                self.dropped += len(self._buffer)
-                self._buffer.clear()
-                return frames
-            self.dropped += start
-            del self._buffer[:start]
-            end = self._buffer.find(_TRAILER, 1)
-            if end < 0:
-                return frames
-            frames.append(bytes(self._buffer[1:end]))
-            del self._buffer[: end + len(_TRAILER)]
-
-
-@dataclass(frozen=True, slots=True)
-class Ack:
-    """The parts of an ACK the sender acts on."""
-
-    code: str  # MSA-1
-    control_id: str  # MSA-2: the MSH-10 of the message it answers
-    text: str  # MSA-3 and the ERR segments' messages, joined
-
-
-def _field(fields: list[str], index: int) -> str:
-    return fields[index] if index < len(fields) else ""
-
-
 def read_control_id(payload: bytes) -> str | None:
     """MSH-10 read back from an ER7 payload, or None when it does not start with MSH.
 
     The reverse of :func:`bridge.emit.hl7v2.control_id`, which builds MSH-10 from an outcome.
     """
-    text = payload.decode("utf-8", errors="replace")
-    if not text.startswith("MSH") or len(text) < 4:
-        return None
-    separator = text[3]
-    # MSH-1 is the separator itself, so MSH-n is split index n-1.
-    value = _field(split_fields(split_segments(text)[0], separator), 9)
-    return value or None
-
-
-def _err_text(fields: list[str], component: str) -> str:
-    """ERR-8 (user message) if given, else the text of ERR-3, else ERR-1 (v2.3 style)."""
-    # source: HL7 v2.5.1 ch. 2 ERR segment (ERR-3 HL7 error code CWE, ERR-8 user message)
-    user_message = _field(fields, 8)
-    if user_message:
-        return user_message
-    error_code = _field(fields, 3).split(component)
-    if len(error_code) > 1 and error_code[1]:
-        return error_code[1]
-    return error_code[0] or _field(fields, 1)
-
-
-def parse_ack(data: bytes) -> Ack | None:
-    """The MSA (and ERR) of an ACK block, or None when it is not a readable ACK."""
-    text = data.decode("utf-8", errors="replace")
-    segments = split_segments(text)
-    if not segments or not segments[0].startswith("MSH") or len(segments[0]) < 5:
-        return None
-    separator, component = segments[0][3], segments[0][4]
-    msa = next((s for s in segments if s.startswith("MSA" + separator)), None)
-    if msa is None:
-        return None
-    fields = split_fields(msa, separator)
-    code, answered = _field(fields, 1), _field(fields, 2)
-    if not code:
-        return None
-    errors = [_err_text(split_fields(s, separator), component) for s in segments if s.startswith("ERR" + separator)]
-    details = [t for t in (_field(fields, 3), *errors) if t]
-    return Ack(code, answered, "; ".join(details))
+    return control_id_of(payload.decode("utf-8", errors="replace"))
 
 
 def judge(
@@ -201,7 +122,7 @@ class MllpTransport:
         sent = read_control_id(message.payload)
         if sent is None:
             raise Rejected(destination, "payload is not an HL7 v2 message (no MSH-10)")
-        if START_BLOCK in message.payload or END_BLOCK in message.payload:
+        if not can_be_framed(message.payload):
             # Such a message would end its own block early; no retry can fix it.
             raise Rejected(destination, "payload contains MLLP block characters")
         with self._guarded(destination, connecting=True):
