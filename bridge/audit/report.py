@@ -21,7 +21,6 @@ from typing import IO, Any
 
 import orjson
 
-from bridge import __version__
 from bridge.audit import stats
 from bridge.audit.index import IndexedRecord
 from bridge.audit.page import page
@@ -29,6 +28,7 @@ from bridge.audit.reduce import Answer, ArchiveReduce
 from bridge.audit.rows import AuditFinding, Row
 from bridge.display.check_report import CAUTION
 from bridge.emit.fhir_ndjson import resource_key
+from bridge.version import __version__
 
 FINDINGS_HEADER = ("file", "record", "source", "test_id", "check", "severity", "message")
 QUARANTINE_HEADER = ("file", "record", "source", "test_id", "checks")

@@ -35,17 +35,16 @@ from typing import Literal
 
 import orjson
 
-from bridge import __version__
-from bridge.config import Settings
 from bridge.errors import InputError, InvalidField, LedgerError, UnreadableInput
 from bridge.model import Outcome, Payload
-from bridge.pipeline import Route, process, process_all
+from bridge.pipeline import PipelineSettings, Route, process, process_all
 from bridge.service.files import free_name, move_durably, write_atomically
 from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.service.metrics import Metrics
+from bridge.service.settings import ServiceSettings
 from bridge.tables import Tables
-from bridge.tables.field_map_model import FieldMap
-from bridge.tables.files import load_map_choice
+from bridge.tables.field_map_model import FieldMap, MapChoice
+from bridge.version import __version__
 
 log = logging.getLogger("dlco_bridge.intake")
 
@@ -68,7 +67,9 @@ class Intake:
 
     def __init__(
         self,
-        settings: Settings,
+        service: ServiceSettings,
+        pipeline: PipelineSettings,
+        maps: MapChoice,  # which field map reads which file (per inbox, per file-name pattern)
         tables: Tables,
         ledger: Ledger,
         metrics: Metrics,
@@ -76,8 +77,8 @@ class Intake:
         on_enqueued: Callable[[], None] = lambda: None,
         processor: Processor = process,
     ) -> None:
-        self.service = settings.require_service()
-        self.pipeline = settings.pipeline
+        self.service = service
+        self.pipeline = pipeline
         self.tables = tables
         self.ledger = ledger
         self.metrics = metrics
@@ -85,7 +86,7 @@ class Intake:
         self.on_enqueued = on_enqueued
         self.processor = processor
         self.routes = tuple(Route(d.payload, d.units) for d in self.service.destinations)
-        self.maps = load_map_choice(settings.field_map, settings.maps, tables)  # per inbox / file pattern
+        self.maps = maps
 
     def take(self, path: Path, complete_at: float) -> IntakeResult:
         """Process one file completely; never raises for what the file contains.

@@ -20,7 +20,7 @@ from pathlib import Path
 
 from watchdog.observers import Observer
 
-from bridge.config import Settings
+from bridge.pipeline import PipelineSettings
 from bridge.service.delivery import Backoff, deliver_due
 from bridge.service.files import remove_strays
 from bridge.service.intake import Intake
@@ -30,6 +30,7 @@ from bridge.service.settings import ServiceSettings
 from bridge.service.transports.base import Transport
 from bridge.service.watcher import Readiness, is_candidate, pair_moves_quickly
 from bridge.tables import Tables
+from bridge.tables.field_map_model import MapChoice
 
 log = logging.getLogger("dlco_bridge.service")
 
@@ -42,7 +43,9 @@ class Service:
 
     def __init__(
         self,
-        settings: Settings,
+        settings: ServiceSettings,
+        pipeline: PipelineSettings,
+        maps: MapChoice,
         tables: Tables,
         ledger: Ledger,
         transports: Mapping[str, Transport],
@@ -50,7 +53,7 @@ class Service:
         rand: Callable[[], float] = random.random,
         stop: threading.Event | None = None,
     ) -> None:
-        self.settings: ServiceSettings = settings.require_service()
+        self.settings = settings
         self.ledger = ledger
         self.clock = clock
         self.rand = rand
@@ -60,7 +63,7 @@ class Service:
         self.metrics = Metrics(clock)
         self.transports = {name: MeteredTransport(t, self.metrics) for name, t in transports.items()}
         self.readiness = Readiness(self.settings.inbox, self.settings.stable_seconds, clock, self.files_arrived)
-        self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set)
+        self.intake = Intake(settings, pipeline, maps, tables, ledger, self.metrics, clock, self.messages_queued.set)
         self.backoff = Backoff(self.settings.retry_base_seconds, self.settings.retry_cap_seconds)
         self._unmovable: dict[str, tuple[int, int]] = {}
         self.addresses = {d.name: d.address for d in self.settings.destinations}
