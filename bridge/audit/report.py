@@ -198,9 +198,3 @@ def summarise(reduce: ArchiveReduce, answer: Answer, run: Mapping[str, object]) 
             "unit": "mL/min/mmHg",
         },
     }
-
-
-def read_summary(folder: Path) -> dict[str, Any]:
-    """The summary a run wrote (for tests and tools)."""
-    loaded: dict[str, Any] = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
-    return loaded
