@@ -17,6 +17,7 @@ Each branch maps to exactly one action in the shell::
     ├── DeliveryError         retry with back-off
     │   ├── ConnectFailed
     │   ├── DeliveryTimeout
+    │   ├── RetryLater        the receiver asked for a later try (429/503, Retry-After): retry not before then
     │   └── Rejected          the receiver said no (NAK, HTTP 4xx): dead-letter, no retry
     └── LedgerError           the state database is unusable: fatal
 

@@ -50,7 +50,7 @@ log = logging.getLogger("dlco_bridge.intake")
 
 Result = Literal["processed", "correction", "duplicate", "quarantined", "vanished"]
 # The pure pipeline's entry point; a seam so tests can hand the intake one that fails.
-Processor = Callable[..., Outcome]  # bridge.pipeline.process, or a stand-in in tests
+Processor = Callable[..., Outcome]  # bridge.pipeline.process, or a failing one in tests
 
 
 @dataclass(frozen=True, slots=True)

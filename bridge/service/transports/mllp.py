@@ -1,7 +1,7 @@
 """MLLP delivery of HL7 v2 messages: framing, ACK parsing, one persistent connection.
 
-Owns the MLLP framing (constants, :func:`frame`, :class:`FrameReader`; pure, so a future
-receiver and the tests use the same code), ACK parsing (:func:`parse_ack`) and the client
+Owns the MLLP framing (constants, :func:`frame`, :class:`FrameReader`; pure, so the stand-in
+(``bridge.service.receiver``) and the tests use the same code), ACK parsing (:func:`parse_ack`) and the client
 (:class:`MllpTransport`). It must not touch the ledger: it returns a receipt or raises a
 ``DeliveryError`` subclass (``Rejected`` for AE/AR unless the destination's response policy says
 to retry them), and the delivery loop records it.
