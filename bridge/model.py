@@ -1,9 +1,10 @@
 """The canonical record: one single-breath DLCO test session of one patient.
 
 Owns the shape of the data every reader produces and every emitter consumes. Every quantity
-is a :class:`Quantity` (value + unit, with the value and unit it arrived with). Models are
-frozen; steps return new values with ``model_copy(update=...)``. Imports only the stdlib and
-pydantic: no I/O, no clock.
+is a :class:`Quantity` (value + unit, with the value and unit it arrived with; defined with the
+other field value types in ``bridge.values`` and re-exported here). Models are frozen; steps
+return new values with ``model_copy(update=...)``. Imports only the stdlib, pydantic and
+``bridge.values``: no I/O, no clock.
 
 Each quantity field declares its *dimension* and *canonical unit* with a :class:`Measure`
 annotation; ``bridge.science.normalise`` reads these to convert every quantity to the canonical unit.
@@ -11,95 +12,22 @@ annotation; ``bridge.science.normalise`` reads these to convert every quantity t
 
 from __future__ import annotations
 
-import re
 from collections.abc import Callable
-from dataclasses import dataclass
 from datetime import date, datetime, timedelta
 from enum import StrEnum
 from typing import Annotated, Literal
 
-from pydantic import AfterValidator, AwareDatetime, BaseModel, ConfigDict, Field, field_validator
+from pydantic import AwareDatetime, Field, field_validator
 
-# Characters no output may carry in text: FHIR R4 strings match ^[ \r\n\t\S]+$ (ECMA-262 \s), so
-# control characters and white space other than space, tab and line breaks are refused, and so
-# are unpaired surrogates (not UTF-8).  # source: HL7 FHIR R4 datatypes, "string" regex
-_NOT_CARRIED = re.compile(
-    "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff\ud800-\udfff]"
-)
+from bridge.values import Frozen as Frozen
+from bridge.values import Measure as Measure
+from bridge.values import Original as Original
+from bridge.values import Quantity as Quantity
+from bridge.values import Text as Text
+from bridge.values import Uri as Uri
+from bridge.values import number_text as number_text
 
-
-def _carried_text(value: str) -> str:
-    if not value.strip():
-        raise ValueError("text with at least one visible character")
-    found = _NOT_CARRIED.search(value)
-    if found:
-        raise ValueError(f"text without control or special white-space characters (found U+{ord(found[0]):04X})")
-    return value
-
-
-_WHITE_SPACE = re.compile(r"\s")
-
-
-def _uri(value: str) -> str:
-    if not value or _WHITE_SPACE.search(value) or _NOT_CARRIED.search(value):
-        raise ValueError("a URI or OID without white space")
-    return value
-
-
-# The same rules as JSON Schema patterns (ECMA-262), for the published schema of the format.
-_TEXT_PATTERN = (
-    r"^[ \t\r\n]*[^\s\x00-\x1f\x7f][^\x00-\x08\x0b\x0c\x0e-\x1f\x7f"
-    r"\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff]*$"
-)
-_URI_PATTERN = r"^[^\s\x00-\x1f\x7f]+$"
-Text = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _TEXT_PATTERN}), AfterValidator(_carried_text)]
-Uri = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _URI_PATTERN}), AfterValidator(_uri)]
 MAX_UTC_OFFSET = timedelta(hours=14)  # source: HL7 FHIR R4 dateTime regex (offsets -14:00 to +14:00)
-
-
-class Frozen(BaseModel):
-    """Base for every record model: immutable, strict about unknown keys."""
-
-    model_config = ConfigDict(frozen=True, extra="forbid")
-
-
-@dataclass(frozen=True, slots=True)
-class Measure:
-    """Annotation on a quantity field: which dimension it has and the unit it is kept in."""
-
-    dimension: str
-    canonical_unit: str
-    signed: bool = False  # may the value be negative (altitude below sea level, temperature)
-
-
-class Original(Frozen):
-    """The value and unit exactly as the source wrote them (the value as text keeps its digits)."""
-
-    value: str
-    unit: str
-
-
-class Quantity(Frozen):
-    """A value with its UCUM unit.
-
-    ``decimals`` is the number of digits after the decimal point the source reported, so that
-    7.460 is emitted as 7.460; ``None`` for values computed here. ``original`` is set by
-    normalisation when the source spelled or scaled the quantity differently.
-    """
-
-    value: float = Field(allow_inf_nan=False)
-    unit: str = Field(min_length=1)
-    decimals: int | None = Field(default=None, ge=0, le=12)
-    original: Original | None = None
-
-    def text(self) -> str:
-        """The value as text with the reported number of decimals (6 significant digits if unknown)."""
-        return number_text(self.value, self.decimals)
-
-
-def number_text(value: float, decimals: int | None) -> str:
-    """A number with ``decimals`` digits after the point, or 6 significant digits when None."""
-    return format(value, ".6g") if decimals is None else f"{value:.{decimals}f}"
 
 
 # Annotated quantity kinds: the dimension and the unit the core keeps each one in.
