@@ -10,6 +10,7 @@ Every failure is one :class:`bridge.errors.InputError` naming the field.
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from decimal import Decimal
 from typing import Any
 
@@ -17,7 +18,7 @@ from pydantic import ValidationError
 
 from bridge.errors import InputError, InvalidField, MissingField, UnknownFormat, UnreadableInput
 from bridge.model import Session
-from bridge.readers.common import decode_text, first_validation_error, shown
+from bridge.readers.common import Record, decode_text, first_validation_error, shown
 from bridge.science.normalise import normalise_tree
 from bridge.science.units import UnitCatalogue
 
@@ -27,6 +28,16 @@ FORMAT = "dlco-result/1"
 def read_export(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
     """Parse one ``dlco-result/1`` document into a session, every quantity in its canonical unit."""
     return session_from_tree(_parse(data, source), catalogue, source)
+
+
+def read_records(data: bytes, source: str, catalogue: UnitCatalogue) -> Iterator[Record]:
+    """The one record of a ``dlco-result/1`` document: its session, or the InputError (naming the file) refusing it."""
+    try:
+        session = read_export(data, source, catalogue)
+    except InputError as exc:
+        yield Record(error=exc if exc.source else exc.with_source(source))
+        return
+    yield Record(session=session)
 
 
 def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: str = "") -> Session:
