@@ -1,8 +1,9 @@
-"""Who may import whom (DEVELOPERS.md, architecture): the pure core stays pure, and the shell's parts stay apart.
+"""Who may import whom (DEVELOPERS.md, architecture): layers that point one way, a pure core, shell parts apart.
 
-The core has no I/O, clock, randomness or global state, and never imports the shell: not
-one module of it, so each shell package is banned whole. Every module of ``bridge/`` is
-either core, shell or an entry point, so a new module cannot escape these rules.
+Every module of ``bridge/`` belongs to one layer of LAYERS (bottom first), so a new module
+cannot escape these rules; no import runs up the layers and the import graph has no cycle.
+The layers below the first shell layer are the core: no I/O, clock, randomness or global
+state, and never an import of the shell.
 """
 
 from __future__ import annotations
