@@ -155,9 +155,10 @@ def process_all(
     file as a whole cannot be read or is not the map's format.
     """
     fmap = settings.field_map
+    records = _records(data, source, tables, settings)  # a mapped file too large is refused before any hashing
     sha256 = hashlib.sha256(data).hexdigest()
     history = (is_correction, sent_before)
-    for record in _records(data, source, tables, settings):
+    for record in records:
         try:
             if record.error is not None:
                 raise record.error
