@@ -8,8 +8,7 @@ from bridge.errors import BridgeError, InputError
 from bridge.model import Finding, Outcome, Quantity, Session, Severity
 from bridge.pipeline import PipelineSettings, Route, process
 from bridge.tables.files import load_tables
-
-__version__ = "0.1.0"
+from bridge.version import __version__
 
 __all__ = [
     "BridgeError",

@@ -18,6 +18,7 @@ Each branch maps to exactly one action in the shell::
     │   ├── ConnectFailed
     │   ├── DeliveryTimeout
     │   ├── DestinationFull   a file destination's folder has no space: retry; intake pauses meanwhile
+    │   ├── RetryLater        the receiver asked for a later try (429/503, Retry-After): retry not before then
     │   └── Rejected          the receiver said no (NAK, HTTP 4xx): dead-letter, no retry
     ├── DiskFull              no space for the ledger, archive or quarantine: pause, resume when space returns
     └── LedgerError           the state database is unusable: fatal

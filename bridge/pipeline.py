@@ -7,9 +7,9 @@ per unit system (-> validate, when asked). Every command calls :func:`process` o
 :func:`process_all` (``check`` with no routes, ``convert`` and ``demo`` with the kinds asked for,
 ``watch`` with its destinations' routes); none calls the gate or an emitter on its own. The
 reader is chosen by ``PipelineSettings.field_map``: none reads ``dlco-result/1`` JSON (one
-session); a field map reads a CSV export or a legacy HL7 v2 feed (many sessions:
-:func:`process_all` gives one outcome or error each, and :func:`process` is its one-session
-case). No I/O: the shell reads the file, the clock and
+record); a field map reads a CSV export or a legacy HL7 v2 feed (many records). Every reader
+yields records, :func:`process_all` gives one outcome or error for each, and :func:`process` is
+a thin wrapper for an input of one session. No I/O: the shell reads the file, the clock and
 the ledger, and passes the bytes, the time and a correction test in.
 """
 
@@ -25,9 +25,11 @@ from bridge.emit.settings import EmitSettings
 from bridge.emit.validation import problems
 from bridge.errors import InputError, InvalidField, OutputInvalid, UnreadableInput
 from bridge.model import Finding, Outcome, OutputKind, Payload, Session, Severity
+from bridge.readers.common import Record
 from bridge.readers.csv_export import read_csv
 from bridge.readers.hl7v2_legacy import read_hl7
-from bridge.readers.json_export import read_export
+from bridge.readers.json_export import read_records
+from bridge.readers.mapped import MappedRecord
 from bridge.science.checks import run_checks
 from bridge.science.compared import DEFAULT_REFERENCE_BASIS, ReferenceBasis
 from bridge.science.derive import derive
@@ -103,7 +105,7 @@ def process(
     gate: bool = False,
     sent_before: SentBefore = _nothing_sent,
 ) -> Outcome:
-    """Read, normalise, derive, check, gate and emit one input.
+    """Read, normalise, derive, check, gate and emit one input: :func:`process_all` for an input of one session.
 
     ``now`` is the time the shell read (the clock stays out of the core): a test dated after it,
     beyond :data:`FUTURE_TOLERANCE`, is refused, and it is the send time of what is emitted.
@@ -112,37 +114,29 @@ def process(
     Otherwise ``is_correction(test_id, sha256)`` says whether this content replaces a result
     already sent, and ``sent_before(test_id)`` what was sent for it (so a correction withdraws
     what it no longer gives; ``bridge.emit.status``). Raises :class:`InputError` when the input
-    cannot be read, is impossible (born after the test, nothing measured, dated in the future),
-    an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``)
+    cannot be read, holds other than one session (``process``), is impossible (born after the
+    test, nothing measured, dated in the future), an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``)
     an independent validator finds a payload invalid; an error raised at the gate or while
     emitting carries the checked record as ``outcome``.
     """
-    if settings.field_map is not None:
-        results = list(
-            process_all(
-                data,
-                source,
-                tables,
-                settings,
-                now=now,
-                routes=routes,
-                is_correction=is_correction,
-                gate=gate,
-                sent_before=sent_before,
-            )
+    results = list(
+        process_all(
+            data,
+            source,
+            tables,
+            settings,
+            now=now,
+            routes=routes,
+            is_correction=is_correction,
+            gate=gate,
+            sent_before=sent_before,
         )
-        if len(results) != 1:
-            raise InvalidField("(file)", f"one session, got {len(results)} (use process_all)", source)
-        if isinstance(results[0], InputError):
-            raise results[0]
-        return results[0]
-    _check_size(data, source, settings)
-    try:
-        session = read_export(data, source, tables.units)
-    except InputError as exc:
-        raise exc if exc.source else exc.with_source(source) from None
-    sha256 = hashlib.sha256(data).hexdigest()
-    return _complete(session, sha256, source, tables, settings, now, routes, (is_correction, sent_before), gate)
+    )
+    if len(results) != 1:
+        raise InvalidField("(file)", f"one session, got {len(results)} (use process_all)", source)
+    if isinstance(results[0], InputError):
+        raise results[0]
+    return results[0]
 
 
 def process_all(
@@ -157,47 +151,45 @@ def process_all(
     gate: bool = False,
     sent_before: SentBefore = _nothing_sent,
 ) -> Iterator[Outcome | InputError]:
-    """:func:`process` for an input that may hold many sessions: one outcome (or error) per session.
+    """The one path for every input: one outcome (or error) per session the reader yields (see :func:`process`).
 
-    Without ``settings.field_map`` the input is one ``dlco-result/1`` document. With a map, a
-    bad record (or a session a blocking finding refuses) is yielded as its InputError and the
-    next is taken; when the map says ``on_bad_record = "refuse"`` the first bad record is raised
-    instead, refusing the file (callers that must not act on part of a file collect first).
-    Raises InputError when the file as a whole cannot be read or is not the map's format.
+    Without ``settings.field_map`` the input is one ``dlco-result/1`` document: one record, and
+    what refuses the document is that record's error. With a map, a bad record (or a session a
+    blocking finding refuses) is yielded as its InputError and the next is taken; when the map
+    says ``on_bad_record = "refuse"`` the first bad record is raised instead, refusing the file
+    (callers that must not act on part of a file collect first). Raises InputError when a mapped
+    file as a whole cannot be read or is not the map's format.
     """
     fmap = settings.field_map
-    if fmap is None:
-        try:
-            yield process(
-                data,
-                source,
-                tables,
-                settings,
-                now=now,
-                routes=routes,
-                is_correction=is_correction,
-                gate=gate,
-                sent_before=sent_before,
-            )
-        except InputError as exc:
-            yield exc
-        return
-    _check_size(data, source, settings)
+    records = _records(data, source, tables, settings)  # a mapped file too large is refused before any hashing
     sha256 = hashlib.sha256(data).hexdigest()
-    reader = read_csv if fmap.format == "csv" else read_hl7
-    for record in reader(data, source, fmap, tables.units):
+    history = (is_correction, sent_before)
+    for record in records:
         try:
             if record.error is not None:
                 raise record.error
             assert record.session is not None  # a record holds a session or an error
-            history = (is_correction, sent_before)
             outcome = _complete(record.session, sha256, source, tables, settings, now, routes, history, gate)
         except InputError as exc:
-            if fmap.on_bad_record == "refuse":
+            if fmap is not None and fmap.on_bad_record == "refuse":
                 raise
             yield exc
             continue
-        yield _with_unmapped(outcome, record.unmapped, fmap.name)
+        yield _with_unmapped(outcome, record.unmapped, fmap.name if fmap is not None else "")
+
+
+def _records(data: bytes, source: str, tables: Tables, settings: PipelineSettings) -> Iterator[Record | MappedRecord]:
+    """Every record of the input, by the reader ``settings.field_map`` chooses (none: ``dlco-result/1`` JSON)."""
+    fmap = settings.field_map
+    if fmap is None:
+        try:
+            _check_size(data, source, settings)
+        except InputError as exc:  # the document's one record is refused
+            return iter((Record(error=exc),))
+        return read_records(data, source, tables.units)
+    _check_size(data, source, settings)
+    reader = read_csv if fmap.format == "csv" else read_hl7
+    return reader(data, source, fmap, tables.units)
 
 
 def _with_unmapped(outcome: Outcome, unmapped: Sequence[str], map_name: str) -> Outcome:

@@ -1,60 +1,65 @@
-"""Who may import whom (DEVELOPERS.md, architecture): the pure core stays pure, and the shell's parts stay apart.
+"""Who may import whom (DEVELOPERS.md, architecture): layers that point one way, a pure core, shell parts apart.
 
-The core has no I/O, clock, randomness or global state, and never imports the shell: not
-one module of it, so each shell package is banned whole. Every module of ``bridge/`` is
-either core, shell or an entry point, so a new module cannot escape these rules.
+Every module of ``bridge/`` belongs to one layer of LAYERS (bottom first), so a new module
+cannot escape these rules; no import runs up the layers and the import graph has no cycle.
+The layers below the first shell layer are the core: no I/O, clock, randomness or global
+state, and never an import of the shell.
 """
 
 from __future__ import annotations
 
 import ast
+import graphlib
 from pathlib import Path
 
 import pytest
 
 PACKAGE = Path(__file__).resolve().parent.parent / "bridge"
-# The pure core: file and folder names under bridge/. The one list to change when core modules move.
-CORE = (
-    "errors.py",
-    "model.py",
-    "pipeline.py",
-    "hl7",
-    "science",
-    "tables/__init__.py",
-    "tables/toml.py",
-    "tables/units.py",
-    "tables/grades.py",
-    "tables/codes.py",
-    "tables/finding_codes.py",
-    "tables/plausibility.py",
-    "tables/result_status.py",
-    "tables/canonical_fields.py",
-    "tables/field_map_model.py",
-    "tables/field_map_parser.py",
-    "tables/field_map_texts.py",
-    "tables/spirometry_grades.py",
-    "readers",
-    "emit",
-    "display",
-    "audit/__init__.py",
-    "audit/rows.py",
-    "audit/reduce.py",
-    "audit/stats.py",
+DEVELOPERS = PACKAGE.parent / "DEVELOPERS.md"
+# The layers, bottom first: a module imports only from its own layer and the layers below it.
+# Each entry is a file or folder under bridge/; a module belongs to its longest matching entry
+# (tables/files.py is the loader, not the tables layer). The one list to change when modules
+# move; DEVELOPERS.md ("Layers") writes the same order, and a test below keeps the two equal.
+LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
+    ("base", ("errors.py", "values.py", "model.py", "version.py")),
+    ("hl7", ("hl7",)),
+    ("science", ("science",)),
+    ("tables", ("tables",)),
+    ("readers", ("readers",)),
+    ("emit", ("emit",)),
+    ("display", ("display",)),
+    ("pipeline", ("pipeline.py",)),
+    ("audit core", ("audit/__init__.py", "audit/rows.py", "audit/reduce.py", "audit/stats.py")),
+    ("loading", ("tables/files.py", "inputs.py")),
+    ("service", ("service",)),
+    ("config", ("config",)),
+    ("audit shell", ("audit/run.py", "audit/report.py", "audit/page.py", "audit/index.py")),
+    ("cli", ("cli",)),
+    ("entry points", ("__init__.py", "__main__.py")),
 )
-# The shell: I/O and wiring. The core imports none of it, at any depth.
-SHELL = (
-    "cli",
-    "config",
-    "inputs.py",
-    "tables/files.py",
-    "service",
-    "audit/run.py",
-    "audit/report.py",
-    "audit/page.py",
-    "audit/index.py",
-)
-# The public API's re-exports and ``python -m bridge``: neither core nor shell.
-ENTRY_POINTS = ("__init__.py", "__main__.py")
+FIRST_SHELL_LAYER = "loading"  # the pure core is every layer below it
+ENTRY_LAYER = "entry points"  # the public API's re-exports and ``python -m bridge``: neither core nor shell
+LAYER_NAMES = tuple(name for name, _ in LAYERS)
+
+
+def _layer_of(path: Path) -> str | None:
+    """The layer of a module: its longest matching entry in LAYERS, or None when no entry matches."""
+    relative = path.relative_to(PACKAGE).as_posix()
+    matches = [
+        (len(entry), name)
+        for name, entries in LAYERS
+        for entry in entries
+        if relative == entry or relative.startswith(entry + "/")
+    ]
+    return max(matches)[1] if matches else None
+
+
+MODULES = sorted(PACKAGE.rglob("*.py"))
+_SHELL_FROM = LAYER_NAMES.index(FIRST_SHELL_LAYER)
+_ENTRY_AT = LAYER_NAMES.index(ENTRY_LAYER)
+_RANKS = {p: LAYER_NAMES.index(layer) for p in MODULES if (layer := _layer_of(p)) is not None}
+CORE = tuple(p for p, rank in _RANKS.items() if rank < _SHELL_FROM)
+SHELL = tuple(p for p, rank in _RANKS.items() if _SHELL_FROM <= rank < _ENTRY_AT)
 
 # Modules that do I/O, read the clock, draw random numbers or hold process state.
 BANNED_IO = {
@@ -75,17 +80,17 @@ BANNED_IO = {
     "tempfile",
     "zoneinfo",  # reads the time-zone database: the shell resolves zones and passes them in
 }
-BANNED_SHELL = {"bridge." + name.removesuffix(".py").replace("/", ".") for name in SHELL}
+
+
+def _module_name(path: Path) -> str:
+    """``bridge/emit/fhir.py`` -> bridge.emit.fhir; a package's ``__init__.py`` -> the package."""
+    parts = path.relative_to(PACKAGE.parent).with_suffix("").parts
+    return ".".join(parts[:-1] if parts[-1] == "__init__" else parts)
+
+
+BANNED_SHELL = {_module_name(p) for p in SHELL}
 # uuid5 (deterministic, from content) is allowed; uuid1/uuid4 read the clock or randomness.
 BANNED_CALLS = {"open", "print", "input", "now", "utcnow", "today", "uuid1", "uuid4", "getenv", "time"}
-
-
-def _files(names: tuple[str, ...]) -> list[Path]:
-    files: list[Path] = []
-    for name in names:
-        path = PACKAGE / name
-        files.extend(sorted(path.rglob("*.py")) if path.is_dir() else [path])
-    return [f for f in files if f.exists()]
 
 
 def _module_package(path: Path) -> list[str]:
@@ -118,7 +123,7 @@ def _id(path: Path) -> str:
     return str(path.relative_to(PACKAGE))
 
 
-@pytest.mark.parametrize("path", _files(CORE), ids=_id)
+@pytest.mark.parametrize("path", CORE, ids=_id)
 def test_core_module_imports_no_io(path: Path):
     """A core module imports nothing that does I/O, reads the clock or holds process state."""
     bad = {m for m in _imports(path) if _within(m, BANNED_IO)}
@@ -126,7 +131,7 @@ def test_core_module_imports_no_io(path: Path):
     assert set() == bad
 
 
-@pytest.mark.parametrize("path", _files(CORE), ids=_id)
+@pytest.mark.parametrize("path", CORE, ids=_id)
 def test_core_module_imports_no_shell(path: Path):
     """A core module imports no part of the shell: not the CLI, config, the table loader or any of bridge.service."""
     bad = {m for m in _imports(path) if _within(m, BANNED_SHELL)}
@@ -134,7 +139,7 @@ def test_core_module_imports_no_shell(path: Path):
     assert set() == bad
 
 
-@pytest.mark.parametrize("path", _files(CORE), ids=_id)
+@pytest.mark.parametrize("path", CORE, ids=_id)
 def test_core_module_calls_no_io(path: Path):
     """A core module never calls open(), print(), now(), uuid4() and the like."""
     tree = ast.parse(path.read_text())
@@ -149,7 +154,7 @@ def test_core_module_calls_no_io(path: Path):
     assert set() == calls
 
 
-@pytest.mark.parametrize("path", _files(CORE), ids=_id)
+@pytest.mark.parametrize("path", CORE, ids=_id)
 def test_core_module_has_no_global_statement(path: Path):
     """No core module rebinds module state with ``global``."""
     tree = ast.parse(path.read_text())
@@ -174,7 +179,7 @@ def _mutable_module_values(tree: ast.Module) -> list[str]:
     return found
 
 
-@pytest.mark.parametrize("path", _files(CORE), ids=_id)
+@pytest.mark.parametrize("path", CORE, ids=_id)
 def test_core_module_holds_no_mutable_module_state(path: Path):
     """No core module keeps a dict, list or set at module level (tables are tuples, frozensets or read-only maps)."""
     names = [n for n in _mutable_module_values(ast.parse(path.read_text())) if n != "__all__"]
@@ -189,16 +194,74 @@ def test_the_mutable_state_check_has_teeth():
     assert ["A", "B", "C", "F"] == _mutable_module_values(ast.parse(source))
 
 
-def test_every_module_is_core_shell_or_entry_point():
-    """No module of bridge/ escapes the rules above by being in neither list."""
-    listed = set(_files(CORE)) | set(_files(SHELL)) | set(_files(ENTRY_POINTS))
-
-    assert [] == [_id(p) for p in sorted(PACKAGE.rglob("*.py")) if p not in listed]
+def test_every_module_has_a_layer():
+    """No module of bridge/ escapes the rules above by being in no layer."""
+    assert [] == [_id(p) for p in MODULES if _layer_of(p) is None]
 
 
-def test_core_and_shell_lists_do_not_overlap():
-    """A module is core or shell, never both."""
-    assert set() == set(_files(CORE)) & set(_files(SHELL))
+def test_every_layer_entry_exists():
+    """Each file or folder named in LAYERS is there: a move must update the list, not leave it stale."""
+    assert [] == [entry for _, entries in LAYERS for entry in entries if not (PACKAGE / entry).exists()]
+
+
+_BY_NAME = {_module_name(p): p for p in MODULES}
+
+
+def _our_modules(path: Path) -> set[Path]:
+    """The modules of bridge/ that ``path`` imports: each imported name resolved to its longest module prefix."""
+    found = set()
+    for name in _imports(path):
+        parts = name.split(".")
+        for end in range(len(parts), 0, -1):
+            target = _BY_NAME.get(".".join(parts[:end]))
+            if target is not None:
+                found.add(target)
+                break
+    found.discard(path)
+    return found
+
+
+def _rank(path: Path) -> int:
+    layer = _layer_of(path)
+    assert layer is not None, path
+    return LAYER_NAMES.index(layer)
+
+
+@pytest.mark.parametrize("path", MODULES, ids=_id)
+def test_no_import_runs_up_the_layers(path: Path):
+    """A module imports only from its own layer and the layers below it (LAYERS, bottom first)."""
+    upward = sorted(f"{_id(t)} ({_layer_of(t)})" for t in _our_modules(path) if _rank(t) > _rank(path))
+
+    assert [] == upward
+
+
+def test_the_import_graph_has_no_cycle():
+    """No module imports itself through others, within a layer or across layers."""
+    graph = {p: _our_modules(p) for p in MODULES}
+
+    try:
+        tuple(graphlib.TopologicalSorter(graph).static_order())
+        cycle: list[str] = []
+    except graphlib.CycleError as error:
+        cycle = [_id(p) for p in error.args[1]]
+    assert [] == cycle
+
+
+def test_the_layer_checks_have_teeth():
+    """An edge from the science up to the tables is caught, and so is a cycle of two modules."""
+    science, tables = PACKAGE / "science" / "checks.py", PACKAGE / "tables" / "codes.py"
+    assert _rank(tables) > _rank(science)  # the edge science -> tables runs up
+    with pytest.raises(graphlib.CycleError):
+        tuple(graphlib.TopologicalSorter({science: {tables}, tables: {science}}).static_order())
+
+
+def test_developers_guide_lists_the_same_layers():
+    """DEVELOPERS.md writes the layer order of LAYERS, bottom first (its "Layers" block)."""
+    text = DEVELOPERS.read_text(encoding="utf-8")
+    block = text.split("<!-- layers -->", 2)[1]
+    written = tuple(line.split(":", 1)[0].strip().lstrip("0123456789. ") for line in block.strip().splitlines())
+
+    assert LAYER_NAMES == written
 
 
 def test_readers_and_emitters_do_not_import_each_other():
@@ -220,9 +283,9 @@ def test_transports_and_ledger_do_not_import_each_other():
 
 def test_model_and_errors_import_only_stdlib_and_pydantic():
     """The bottom layer depends on nothing of ours but itself."""
-    for name in ("model.py", "errors.py"):
+    for name in ("model.py", "values.py", "errors.py"):
         ours = {m for m in _imports(PACKAGE / name) if _within(m, {"bridge"})}
-        assert set() == {m for m in ours if not _within(m, {"bridge.errors"})}, name
+        assert set() == {m for m in ours if not _within(m, {"bridge.errors", "bridge.values"})}, name
 
 
 def test_hl7_text_sits_just_above_the_model():

@@ -140,3 +140,26 @@ def test_impossible_records_are_refused_by_check_and_convert(tmp_path, capsys):
         expected = [f"{f}: {field}" for f, field in zip(files, fields, strict=True)]
         assert expected == [": ".join(line.split(": ")[:2]) for line in err.splitlines()]
     assert [] == list((tmp_path / "out").iterdir())
+
+
+def test_check_shows_haemoglobin_in_the_unit_the_site_chose_as_the_outputs_do(tmp_path, capsys):
+    """[emit] hemoglobin_unit = "g/L": check says 152 g/L, as the ORU it would send does, not the display 15.2 g/dL."""
+    # source: 1 g/dL = 10 g/L (SI prefixes); sample 04 reports Hb 152 g/L
+    config = tmp_path / "bridge.toml"
+    config.write_text('[emit]\nhemoglobin_unit = "g/L"\n', encoding="utf-8")
+    sample = str(SAMPLES / "04-raised-cohb.json")
+
+    main(["check", sample])
+    default_row = [line for line in capsys.readouterr().out.splitlines() if line.strip().startswith("haemoglobin")]
+    main(["check", "--config", str(config), sample])
+    chosen_row = [line for line in capsys.readouterr().out.splitlines() if line.strip().startswith("haemoglobin")]
+    main(["check", "--json", "--config", str(config), sample])
+    document = json.loads(capsys.readouterr().out)
+    main(["convert", "--config", str(config), "--to", "hl7", "--out", str(tmp_path / "out"), sample])
+    oru = next((tmp_path / "out").glob("*.hl7")).read_text(encoding="utf-8")
+
+    assert ["haemoglobin", "15.2", "g/dL", "(as", "sent:", "152", "g/L)"] == default_row[0].split()  # no unit chosen
+    assert ["haemoglobin", "152", "g/L"] == chosen_row[0].split()
+    hb = document["files"][0]["session"]["conditions"]["hemoglobin"]
+    assert (152, "g/L") == (hb["value"], hb["unit"])
+    assert "152 g/L (718-7)" in oru  # the NTE beside the Hb-adjusted DLCO

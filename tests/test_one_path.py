@@ -14,6 +14,7 @@ from bridge.pipeline import Route, process
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
 
 ROOT = Path(__file__).resolve().parent.parent
@@ -65,7 +66,9 @@ def test_convert_and_watch_write_byte_identical_payloads(tmp_path: Path):
     converted = convert_files(samples, tmp_path / "out", replace(settings, to=("fhir", "hl7")), tables, now=NOW)
     service.inbox.mkdir()
     with Ledger.open(service.ledger_path) as ledger:
-        intake = Intake(settings, tables, ledger, Metrics(time.time), clock=NOW.timestamp)
+        intake = Intake(
+            service, settings.pipeline, MapChoice(), tables, ledger, Metrics(time.time), clock=NOW.timestamp
+        )
         for sample in samples:
             intake.take(Path(shutil.copy(sample, service.inbox)), time.time())
         queued = {(row.test_id, row.destination): row.payload for row in ledger.rows("pending")}

@@ -30,6 +30,8 @@ BIRTH_DATE_CHANGED = "PATIENT_BIRTH_DATE_CHANGED"
 SERIES_JUMP = "SERIES_UNIT_JUMP"
 UNIT_CONVENTIONS_MIXED = "UNIT_CONVENTIONS_MIXED"
 REFERENCE_SETS_MIXED = "REFERENCE_SETS_MIXED"
+# The codes of the checks across records: findings like the record checks' (docs/findings.md), so
+# the settings that name finding codes (allow, blocking) must know these too.
 ARCHIVE_CHECKS = (DUPLICATE_TEST_ID, SEX_CHANGED, BIRTH_DATE_CHANGED, SERIES_JUMP, UNIT_CONVENTIONS_MIXED,
                   REFERENCE_SETS_MIXED)  # fmt: skip
 

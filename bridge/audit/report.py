@@ -21,7 +21,6 @@ from typing import IO, Any
 
 import orjson
 
-from bridge import __version__
 from bridge.audit import stats
 from bridge.audit.index import IndexedRecord
 from bridge.audit.page import page
@@ -29,6 +28,7 @@ from bridge.audit.reduce import Answer, ArchiveReduce
 from bridge.audit.rows import AuditFinding, Row
 from bridge.display.check_report import CAUTION
 from bridge.emit.fhir_ndjson import resource_key
+from bridge.version import __version__
 
 FINDINGS_HEADER = ("file", "record", "source", "test_id", "check", "severity", "message")
 QUARANTINE_HEADER = ("file", "record", "source", "test_id", "checks")
@@ -199,9 +199,3 @@ def summarise(reduce: ArchiveReduce, answer: Answer, run: Mapping[str, object]) 
             "unit": "mL/min/mmHg",
         },
     }
-
-
-def read_summary(folder: Path) -> dict[str, Any]:
-    """The summary a run wrote (for tests and tools)."""
-    loaded: dict[str, Any] = json.loads((folder / "summary.json").read_text(encoding="utf-8"))
-    return loaded

@@ -31,7 +31,6 @@ from multiprocessing import forkserver
 from pathlib import Path
 from typing import Any, TextIO
 
-from bridge import __version__
 from bridge.audit.index import ArchiveIndex
 from bridge.audit.reduce import ArchiveReduce, held_by_archive
 from bridge.audit.report import ReportWriter
@@ -44,6 +43,7 @@ from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_map_choice, load_tables
+from bridge.version import __version__
 
 DEFAULT_WORKERS = os.cpu_count() or 1  # one worker per CPU
 

@@ -57,12 +57,6 @@ def percent_predicted(plots: Plots) -> dict[str, Floats]:
     return {source: np.frombuffer(values) for source, values in sorted(plots.percent_predicted.items())}
 
 
-def quartiles(values: Floats) -> tuple[float, float, float]:
-    """The 25th, 50th and 75th percentiles."""
-    q1, q2, q3 = np.percentile(values, (25, 50, 75))
-    return float(q1), float(q2), float(q3)
-
-
 def findings_by_month(plots: Plots) -> tuple[list[str], Mapping[str, Floats]]:
     """Months in order, and per severity the findings counted in each month."""
     months = sorted({month for month, _ in plots.findings_by_month})

@@ -108,9 +108,9 @@ def cmd_check(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
         else:
             try:
                 if args.json:
-                    report = outcome_json(result, tables, settings.units)
+                    report = outcome_json(result, tables, settings.units, settings.pipeline.emit.hemoglobin_unit)
                 else:
-                    report = outcome_text(result, tables, settings.units)
+                    report = outcome_text(result, tables, settings.units, settings.pipeline.emit.hemoglobin_unit)
             except Exception as exc:  # one file must never stop the others
                 report = ProcessingFailed.wrapping(exc, str(path))
         if isinstance(report, InputError):
@@ -216,7 +216,8 @@ def cmd_demo(args: argparse.Namespace, settings: Settings, tables: Tables) -> in
         print(f"  {status:<8} {path.name} -> {names}")
         for finding in result.findings:
             label = "NOTE" if finding.severity is Severity.INFO else finding.severity.value.upper()
-            print(f"           {label} {finding.code}: {finding_text(finding, tables, settings.units)}")
+            text = finding_text(finding, tables, settings.units, settings.pipeline.emit.hemoglobin_unit)
+            print(f"           {label} {finding.code}: {text}")
     good = sum(1 for _, r, _ in converted if not isinstance(r, InputError))
     print(f"\n  {good} sessions converted, {len(converted) - good} refused; outputs in {out}")
     print(f"  look inside: dlco-bridge show {out}/<test id>.oru.hl7")

@@ -6,7 +6,6 @@ import argparse
 from collections.abc import Mapping
 from pathlib import Path
 
-from bridge import __version__
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
@@ -16,6 +15,7 @@ from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
 from bridge.tables.files import repeatability_criteria
+from bridge.version import __version__
 
 EXIT_OK = 0
 EXIT_SETUP = 1

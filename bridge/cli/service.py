@@ -26,6 +26,7 @@ from bridge.service.transports.file import FileTransport
 from bridge.service.transports.mllp import MllpTransport
 from bridge.service.transports.smart import SmartClient
 from bridge.tables import Tables
+from bridge.tables.files import load_map_choice
 
 
 def build_transport(destination: Destination) -> Transport:
@@ -77,7 +78,10 @@ def cmd_watch(args: argparse.Namespace, settings: Settings, tables: Tables) -> i
     created = () if service_settings.state.is_dir() else (service_settings.state,)  # the lock makes it
     with ServiceLock.acquire(service_settings.state), Ledger.open(service_settings.ledger_path) as ledger:
         transports = {d.name: build_transport(d) for d in service_settings.destinations}
-        service = Service(settings, tables, ledger, transports, stop=stop, created=created)
+        maps = load_map_choice(settings.field_map, settings.maps, tables)
+        service = Service(
+            service_settings, settings.pipeline, maps, tables, ledger, transports, stop=stop, created=created
+        )
         for signum in (signal.SIGTERM, signal.SIGINT):
             signal.signal(signum, lambda *_: service.request_stop())
         if not stop.is_set():

@@ -11,6 +11,7 @@ from typing import Any
 from pydantic import BaseModel
 
 from bridge.display.unit_text import for_people
+from bridge.emit.settings import HEMOGLOBIN_DIMENSION
 from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
@@ -56,14 +57,20 @@ _LAB_PERCENT_LABELS = (
 )
 
 
-def shown(quantity: Quantity, tables: Tables, units: UnitSystem) -> Quantity:
-    """The quantity in the unit its dimension is shown in for ``units``."""
+def shown(quantity: Quantity, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> Quantity:
+    """The quantity in the unit its dimension is shown in for ``units``; haemoglobin in ``hb_unit`` if set.
+
+    The same rule as the outputs (``emit.observations``): ``emit.hemoglobin_unit`` names the unit
+    of every mass concentration, whatever the unit system.
+    """
     dimension = tables.units.units[quantity.unit].dimension
+    if hb_unit is not None and dimension == HEMOGLOBIN_DIMENSION:
+        return express(quantity, hb_unit, tables.units)
     return express(quantity, tables.units.display_unit(dimension, units), tables.units)
 
 
-def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
-    q = shown(quantity, tables, units)
+def _text(quantity: Quantity, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> str:
+    q = shown(quantity, tables, units, hb_unit)
     text = f"{q.text()} {for_people(q.unit)}"  # people read the trade's spelling; --json keeps UCUM
     original = quantity.original
     if original is not None and (for_people(original.unit) != for_people(q.unit) or original.value != q.text()):
@@ -71,18 +78,20 @@ def _text(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
     return text
 
 
-def finding_text(finding: Finding, tables: Tables, units: UnitSystem) -> str:
+def finding_text(finding: Finding, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> str:
     """A finding's message with its quantities in ``units``."""
 
     def say(quantity: Quantity) -> str:
-        q = shown(quantity, tables, units)
+        q = shown(quantity, tables, units, hb_unit)
         return f"{q.text()} {for_people(q.unit)}"
 
     return finding.text(say)
 
 
-def _row(label: str, quantity: Quantity | None, tables: Tables, units: UnitSystem) -> list[str]:
-    return [] if quantity is None else [f"    {label:<32}{_text(quantity, tables, units)}"]
+def _row(
+    label: str, quantity: Quantity | None, tables: Tables, units: UnitSystem, hb_unit: str | None = None
+) -> list[str]:
+    return [] if quantity is None else [f"    {label:<32}{_text(quantity, tables, units, hb_unit)}"]
 
 
 def _lab_basis(outcome: Outcome, name: str) -> ComparedBasis:
@@ -90,7 +99,7 @@ def _lab_basis(outcome: Outcome, name: str) -> ComparedBasis:
     return (outcome.derived.lab_basis if name != "va" else None) or "measured"
 
 
-def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list[str]:
+def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> list[str]:
     """GLI-2017 predicted, LLN, ULN, z-score and band of each result, the lab's own values beside them.
 
     Every comparison says in brackets which value it compares (measured, adjusted to sea level, ...).
@@ -105,15 +114,15 @@ def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list
         if ref is not None:
             basis = BASIS_WORDS[ref.basis]
             lines.append(
-                f"    {label + ' GLI-2017':<32}predicted {_brief(ref.predicted, tables, units)}  "
-                f"LLN {_brief(ref.lln, tables, units)}  ULN {_brief(ref.uln, tables, units)}  "
+                f"    {label + ' GLI-2017':<32}predicted {_brief(ref.predicted, tables, units, hb_unit)}  "
+                f"LLN {_brief(ref.lln, tables, units, hb_unit)}  ULN {_brief(ref.uln, tables, units, hb_unit)}  "
                 f"z {ref.z_score:.2f} ({ref.band})  {ref.percent_predicted.text()} %  [{basis}]"
             )
         lab_predicted = getattr(pred, name) if pred is not None else None
         lab_lln = getattr(pred.lower_limits, name) if pred is not None and pred.lower_limits is not None else None
         if lab_predicted is not None or lab_lln is not None:
-            parts = [f"predicted {_brief(lab_predicted, tables, units)}"] if lab_predicted is not None else []
-            parts += [f"LLN {_brief(lab_lln, tables, units)}"] if lab_lln is not None else []
+            parts = [f"predicted {_brief(lab_predicted, tables, units, hb_unit)}"] if lab_predicted is not None else []
+            parts += [f"LLN {_brief(lab_lln, tables, units, hb_unit)}"] if lab_lln is not None else []
             percent = getattr(d, f"{name}_percent_predicted")
             parts += [f"{percent.text()} %"] if percent is not None else []
             basis = f"  [{BASIS_WORDS[_lab_basis(outcome, name)]}]" if percent is not None else ""
@@ -123,12 +132,12 @@ def _reference_rows(outcome: Outcome, tables: Tables, units: UnitSystem) -> list
     return lines if len(lines) > 1 else []
 
 
-def _brief(quantity: Quantity, tables: Tables, units: UnitSystem) -> str:
-    q = shown(quantity, tables, units)
+def _brief(quantity: Quantity, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> str:
+    q = shown(quantity, tables, units, hb_unit)
     return f"{q.text()} {for_people(q.unit)}"
 
 
-def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
+def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> str:
     """A readable report of one outcome: record, recomputed values, findings."""
     s, d = outcome.session, outcome.derived
     p = s.patient
@@ -140,14 +149,14 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
         f"  results ({units} units)",
     ]
     for name, label in _RESULT_LABELS:
-        lines += _row(label, getattr(s.results, name), tables, units)
-    lines += _reference_rows(outcome, tables, units)
+        lines += _row(label, getattr(s.results, name), tables, units, hb_unit)
+    lines += _reference_rows(outcome, tables, units, hb_unit)
     lines.append("  conditions")
     for name, label in _CONDITION_LABELS:
-        lines += _row(label, getattr(s.conditions, name), tables, units)
+        lines += _row(label, getattr(s.conditions, name), tables, units, hb_unit)
     lines.append("  recomputed by dlco-bridge")
     for name, label in _DERIVED_LABELS:
-        lines += _row(label, getattr(d, name), tables, units)
+        lines += _row(label, getattr(d, name), tables, units, hb_unit)
     for name, label in _LAB_PERCENT_LABELS:
         percent = getattr(d, f"{name}_percent_predicted")
         if percent is not None:
@@ -155,9 +164,9 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     for m in d.manoeuvres:
         parts = [f"grade {m.grade}" + (f" ({'; '.join(m.grade_reasons)})" if m.grade_reasons else "")]
         if m.va is not None:
-            parts.append(f"VA {_text(m.va, tables, units)}")
+            parts.append(f"VA {_text(m.va, tables, units, hb_unit)}")
         if m.dlco is not None:
-            parts.append(f"DLCO {_text(m.dlco, tables, units)}")
+            parts.append(f"DLCO {_text(m.dlco, tables, units, hb_unit)}")
         lines.append(f"    manoeuvre {m.index + 1}: " + ", ".join(parts))
     if d.session_grade is not None:
         basis = "".join(f"; {caveat}" for caveat in d.grade_not_evaluated)
@@ -173,18 +182,18 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem) -> str:
     lines.append(f"  findings ({len(outcome.findings)})")
     for f in outcome.findings:
         lines.append(f"    {f.severity.value.upper():<8}{f.code}  {f.path}")
-        lines.append(f"            {finding_text(f, tables, units)}")
+        lines.append(f"            {finding_text(f, tables, units, hb_unit)}")
     if not outcome.findings:
         lines.append("    none")
     return "\n".join(lines)
 
 
-def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem) -> dict[str, Any]:
+def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem, hb_unit: str | None = None) -> dict[str, Any]:
     """A JSON-ready dict of one outcome with quantities in ``units``."""
 
     def convert(node: Any) -> Any:
         if isinstance(node, Quantity):
-            q = shown(node, tables, units)
+            q = shown(node, tables, units, hb_unit)
             out: dict[str, Any] = {"value": float(q.text()), "unit": q.unit}
             if node.original is not None:
                 out["original"] = node.original.model_dump()
@@ -204,7 +213,12 @@ def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem) -> dict[st
         "session": convert(session),
         "derived": convert(derived),
         "findings": [
-            {"code": f.code, "severity": f.severity.value, "path": f.path, "message": finding_text(f, tables, units)}
+            {
+                "code": f.code,
+                "severity": f.severity.value,
+                "path": f.path,
+                "message": finding_text(f, tables, units, hb_unit),
+            }
             for f in outcome.findings
         ],
         "worst": _worst(outcome),

@@ -35,7 +35,7 @@ from bridge.emit.notes import (
     reference_note,
     report_notes,
 )
-from bridge.emit.settings import DEFAULT_CHARTED_PREDICTED, ChartedPredicted
+from bridge.emit.settings import DEFAULT_CHARTED_PREDICTED, HEMOGLOBIN_DIMENSION, ChartedPredicted
 from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.compared import basis_key
 from bridge.science.normalise import express
@@ -92,7 +92,7 @@ class _Builder:
         self.targets: dict[str, str] = {}  # unit -> the unit it is shown in, looked up once per call
         if hemoglobin_unit is not None:
             for code, unit in catalogue.units.items():
-                if unit.dimension == "mass_concentration":
+                if unit.dimension == HEMOGLOBIN_DIMENSION:
                     self.targets[code] = hemoglobin_unit
         self.by_path: dict[str, list[str]] = {}  # record path -> the notes of its WARNING and ERROR findings
         for finding in outcome.findings:

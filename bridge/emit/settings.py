@@ -22,6 +22,7 @@ PatientReference = Literal["conditional-create", "identifier"]
 # ``.example``): every site sets ``emit.system_base`` to a URL it controls.
 DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
 HEMOGLOBIN_UNITS = ("g/L", "g/dL")  # the units a site may choose for haemoglobin (UCUM)
+HEMOGLOBIN_DIMENSION = "mass_concentration"  # the dimension emit.hemoglobin_unit applies to (units.toml)
 # Whose predicted values are charted, one per quantity (the other set goes into the notes): the
 # GLI-2017 values computed by the bridge, or the lab's own as exported.
 ChartedPredicted = Literal["gli-2017", "lab"]

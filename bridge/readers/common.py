@@ -2,12 +2,27 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
 
 from pydantic import ValidationError
 
 from bridge.errors import InputError, InvalidField, MissingField, UnreadableInput
+from bridge.model import Session
+
+
+@dataclass(frozen=True, slots=True)
+class Record:
+    """One session as a reader yields it, or the InputError that refuses it (``dlco-result/1``: one per document).
+
+    The field-map readers yield :class:`bridge.readers.mapped.MappedRecord`, the same three
+    fields and what ``map check`` shows besides.
+    """
+
+    session: Session | None = None
+    error: InputError | None = None
+    unmapped: tuple[str, ...] = ()  # source codes the record holds that a field map does not name
 
 
 def decode_text(data: bytes, source: str) -> str:

@@ -10,6 +10,7 @@ Every failure is one :class:`bridge.errors.InputError` naming the field.
 from __future__ import annotations
 
 import json
+from collections.abc import Iterator
 from decimal import Decimal
 from typing import Any
 
@@ -17,7 +18,7 @@ from pydantic import ValidationError
 
 from bridge.errors import InputError, InvalidField, MissingField, UnknownFormat, UnreadableInput
 from bridge.model import Quantity, Results, Session, filled_fields
-from bridge.readers.common import decode_text, field_path, first_validation_error, shown
+from bridge.readers.common import Record, decode_text, field_path, first_validation_error, shown
 from bridge.science.normalise import normalise_tree
 from bridge.science.units import MAX_DECIMALS, UnitCatalogue
 
@@ -29,6 +30,16 @@ _NOT_IN_AN_EXPORT = "no such field in an export: the bridge records it itself (d
 def read_export(data: bytes, source: str, catalogue: UnitCatalogue) -> Session:
     """Parse one ``dlco-result/1`` document into a session, every quantity in its canonical unit."""
     return session_from_tree(_parse(data, source), catalogue, source)
+
+
+def read_records(data: bytes, source: str, catalogue: UnitCatalogue) -> Iterator[Record]:
+    """The one record of a ``dlco-result/1`` document: its session, or the InputError (naming the file) refusing it."""
+    try:
+        session = read_export(data, source, catalogue)
+    except InputError as exc:
+        yield Record(error=exc if exc.source else exc.with_source(source))
+        return
+    yield Record(session=session)
 
 
 def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: str = "") -> Session:

@@ -27,7 +27,7 @@ from bridge.science.findings import (
 )
 from bridge.science.physiology import ANATOMIC_DEAD_SPACE_ML_PER_KG, COHB_BASELINE_PERCENT
 from bridge.science.quality import DEFAULT_REPEATABILITY
-from bridge.tables import Tables
+from bridge.science.table_values import Tables
 
 ADJUSTMENT_TOLERANCE = 0.02
 HB_NOTE_THRESHOLD = 0.05  # mention the Hb adjustment when it moves DLCO by more than 5 %  # common practice

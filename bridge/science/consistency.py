@@ -26,7 +26,7 @@ from bridge.science.findings import (
     relative_difference,
 )
 from bridge.science.reference import Lms, Parameter
-from bridge.tables import Tables
+from bridge.science.table_values import Tables
 
 # Relative difference tolerated between a reported and a recomputed value (rounding of the
 # lab's printout plus our assumptions about room temperature and gas handling).

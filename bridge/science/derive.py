@@ -45,7 +45,7 @@ from bridge.science.quality import (
     grade_manoeuvres,
     select_reported,
 )
-from bridge.tables import Tables
+from bridge.science.table_values import Tables
 
 DeadSpaceSource = Literal["stated", "estimated", "unknown"]
 DLCO_UNIT = "mL/min/mm[Hg]"

@@ -62,11 +62,6 @@ def _normalise_node(node: dict[str, Any], model: type[BaseModel], units: UnitCat
     return copy
 
 
-def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
-    """One quantity in its canonical unit; the original value and unit are kept."""
-    return Quantity.model_validate(canonical_fields(quantity, measure, catalogue, path))
-
-
 def canonical_fields(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> dict[str, Any]:
     """The fields of a quantity in its canonical unit, with the original value and unit (validated by the caller)."""
     unit = checked_unit(quantity.unit, quantity.value, measure, catalogue, path)

@@ -40,23 +40,22 @@ from typing import Literal
 
 import orjson
 
-from bridge import __version__
-from bridge.config import Settings
 from bridge.errors import DiskFull, InputError, InvalidField, LedgerError, UnreadableInput
 from bridge.model import Outcome, Payload
-from bridge.pipeline import Route, process, process_all
+from bridge.pipeline import PipelineSettings, Route, process, process_all
 from bridge.service.files import Disk, free_name, is_no_space
 from bridge.service.ledger import InputRecord, Ledger, NewInput, NewMessage
 from bridge.service.metrics import Metrics
+from bridge.service.settings import ServiceSettings
 from bridge.tables import Tables
-from bridge.tables.field_map_model import FieldMap
-from bridge.tables.files import load_map_choice
+from bridge.tables.field_map_model import FieldMap, MapChoice
+from bridge.version import __version__
 
 log = logging.getLogger("dlco_bridge.intake")
 
 Result = Literal["processed", "correction", "duplicate", "quarantined", "vanished"]
 # The pure pipeline's entry point; a seam so tests can hand the intake one that fails.
-Processor = Callable[..., Outcome]  # bridge.pipeline.process, or a stand-in in tests
+Processor = Callable[..., Outcome]  # bridge.pipeline.process, or a failing one in tests
 
 
 @dataclass(frozen=True, slots=True)
@@ -73,7 +72,9 @@ class Intake:
 
     def __init__(
         self,
-        settings: Settings,
+        service: ServiceSettings,
+        pipeline: PipelineSettings,
+        maps: MapChoice,  # which field map reads which file (per inbox, per file-name pattern)
         tables: Tables,
         ledger: Ledger,
         metrics: Metrics,
@@ -82,8 +83,8 @@ class Intake:
         processor: Processor = process,
         disk: Disk | None = None,
     ) -> None:
-        self.service = settings.require_service()
-        self.pipeline = settings.pipeline
+        self.service = service
+        self.pipeline = pipeline
         self.tables = tables
         self.ledger = ledger
         self.metrics = metrics
@@ -92,7 +93,7 @@ class Intake:
         self.processor = processor
         self.disk = disk or Disk()  # the archive and quarantine writes; a seam for tests
         self.routes = tuple(Route(d.payload, d.units) for d in self.service.destinations)
-        self.maps = load_map_choice(settings.field_map, settings.maps, tables)  # per inbox / file pattern
+        self.maps = maps
 
     def take(self, path: Path, complete_at: float) -> IntakeResult:
         """Process one file completely; never raises for what the file contains.

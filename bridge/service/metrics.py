@@ -55,7 +55,6 @@ class Metrics:
         self._measured: dict[str, int] = {}
         self._delivered: dict[str, int] = {}
         self._heartbeats: dict[str, float] = {}
-        self.latencies: list[float] = []  # kept for benchmarks and tests; bounded below
 
     def count(self, name: str) -> None:
         with self._lock:
@@ -88,8 +87,6 @@ class Metrics:
                     buckets[i] += 1
             self._sums[destination] = self._sums.get(destination, 0.0) + latency
             self._measured[destination] = self._measured.get(destination, 0) + 1
-            self.latencies.append(latency)
-            del self.latencies[:-10_000]
 
     def render(self, summary: LedgerSummary) -> str:
         """Prometheus text exposition format (version 0.0.4)."""

@@ -25,9 +25,9 @@ from pathlib import Path
 
 from watchdog.observers import Observer
 
-from bridge.config import Settings
 from bridge.errors import ConfigError, DiskFull
 from bridge.inputs import HIDDEN, TEMPORARY, find_inputs, is_input
+from bridge.pipeline import PipelineSettings
 from bridge.service.delivery import Backoff, deliver_due
 from bridge.service.files import Disk, remove_strays
 from bridge.service.intake import Intake
@@ -38,6 +38,7 @@ from bridge.service.space import Space, SpaceWatchedTransport
 from bridge.service.transports.base import Transport
 from bridge.service.watcher import Readiness, pair_moves_quickly
 from bridge.tables import Tables
+from bridge.tables.field_map_model import MapChoice
 
 log = logging.getLogger("dlco_bridge.service")
 
@@ -83,7 +84,9 @@ class Service:
 
     def __init__(
         self,
-        settings: Settings,
+        settings: ServiceSettings,
+        pipeline: PipelineSettings,
+        maps: MapChoice,
         tables: Tables,
         ledger: Ledger,
         transports: Mapping[str, Transport],
@@ -95,7 +98,7 @@ class Service:
         disk: Disk | None = None,
         created: tuple[Path, ...] = (),
     ) -> None:
-        self.settings: ServiceSettings = settings.require_service()
+        self.settings = settings
         self.ledger = ledger
         self.clock = clock  # wall time: what the ledger records, and due times
         self.monotonic = monotonic  # waits, settle times, heartbeats, probes
@@ -107,7 +110,9 @@ class Service:
         disk = disk or Disk()
         self.space = Space(self._places(), disk, monotonic, probe_every=self.settings.rescan_seconds)
         self.transports = {name: self._watched(name, t) for name, t in transports.items()}
-        self.intake = Intake(settings, tables, ledger, self.metrics, clock, self.messages_queued.set, disk=disk)
+        self.intake = Intake(
+            settings, pipeline, maps, tables, ledger, self.metrics, clock, self.messages_queued.set, disk=disk
+        )
         self.readiness = Readiness(
             self.settings.inbox,
             self.settings.stable_seconds,

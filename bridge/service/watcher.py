@@ -47,7 +47,7 @@ _GROUPER_MODULE = "watchdog.observers.inotify_move_event_grouper"
 def pair_moves_quickly(grouper: Any = None) -> bool:
     """Set watchdog's move-pairing wait to :data:`MOVE_PAIRING_SECONDS`; whether that was possible.
 
-    ``grouper`` is watchdog's ``InotifyMoveEventGrouper`` (a stand-in in tests). Its ``delay``
+    ``grouper`` is watchdog's ``InotifyMoveEventGrouper`` (a fake in tests). Its ``delay``
     is a private class attribute, read when an observer is built, so call this before
     ``Observer()``. A watchdog that moved or dropped it (another backend, a newer release)
     keeps its own wait: one warning, and the service goes on, renames seen up to 0.5 s late.

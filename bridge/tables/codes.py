@@ -9,9 +9,9 @@ from __future__ import annotations
 
 import re
 from collections.abc import Mapping
-from dataclasses import dataclass
 
 from bridge.errors import MappingError
+from bridge.science.table_values import Code, CodeTable
 from bridge.tables.toml import read_toml
 
 # A quantity key becomes part of observation identifiers and FHIR search URLs as it is written,
@@ -23,66 +23,35 @@ _KEY = re.compile(r"[a-z][a-z0-9_]*")
 KNOWN_SYSTEMS = ("loinc", "snomed")
 
 
-@dataclass(frozen=True, slots=True)
-class Code:
-    """One coded concept: ``system`` is "loinc", "snomed" or "local" (resolved per destination).
-
-    ``standard``: the same concept in a published system, sent beside a local code; ``method``:
-    the technique of the measurement.
-    """
-
-    system: str
-    code: str
-    display: str
-    standard: Code | None = None
-    method: Code | None = None
-
-
-@dataclass(frozen=True, slots=True)
-class CodeTable:
-    """Observation codes per quantity key, the panel code and the URI of each published code system.
-
-    ``systems`` has no "local" entry: the site's settings name the system of local codes
-    (``emit.local_code_system``, else under ``emit.system_base``).
-    """
-
-    codes: Mapping[str, Code]
-    panel: Code
-    systems: Mapping[str, str]
-
-    @classmethod
-    def from_toml(cls, text: str, name: str = "codes.toml") -> CodeTable:
-        data = read_toml(text, name)
-        systems = dict(data.get("systems", {}))
-        if "local" in systems:
-            raise MappingError(name, "systems.local", "no entry (emit.local_code_system or emit.system_base names it)")
-        if "loinc" not in systems or not set(systems) <= set(KNOWN_SYSTEMS):
-            raise MappingError(
-                name, "systems", f"the key loinc, and of {', '.join(KNOWN_SYSTEMS[1:])} those codes name"
-            )
-        names = (*systems, "local")  # a local code's URI comes from the site's settings
-        published = tuple(systems)  # a standard code or a method is never local
-        methods = {
-            key: _code(name, f"methods.{key}", entry, published) for key, entry in data.get("methods", {}).items()
-        }
-        codes = {}
-        for key, entry in data.get("codes", {}).items():
-            where = f"codes.{key}"
-            if not _KEY.fullmatch(key):
-                raise MappingError(name, where, "a key of lower-case letters, digits and underscores")
-            standard = entry.get("standard")
-            method = entry.get("method")
-            if method is not None and method not in methods:
-                raise MappingError(name, f"{where}.method", f"a name in [methods] ({', '.join(methods) or 'none'})")
-            codes[key] = _code(
-                name,
-                where,
-                entry,
-                names,
-                standard=_code(name, f"{where}.standard", standard, published) if standard is not None else None,
-                method=methods[method] if method is not None else None,
-            )
-        return cls(codes, _code(name, "panel", data.get("panel", {}), names), systems)
+def code_table(text: str, name: str = "codes.toml") -> CodeTable:
+    """Parse ``codes.toml`` (raises MappingError naming the key)."""
+    data = read_toml(text, name)
+    systems = dict(data.get("systems", {}))
+    if "local" in systems:
+        raise MappingError(name, "systems.local", "no entry (emit.local_code_system or emit.system_base names it)")
+    if "loinc" not in systems or not set(systems) <= set(KNOWN_SYSTEMS):
+        raise MappingError(name, "systems", f"the key loinc, and of {', '.join(KNOWN_SYSTEMS[1:])} those codes name")
+    names = (*systems, "local")  # a local code's URI comes from the site's settings
+    published = tuple(systems)  # a standard code or a method is never local
+    methods = {key: _code(name, f"methods.{key}", entry, published) for key, entry in data.get("methods", {}).items()}
+    codes = {}
+    for key, entry in data.get("codes", {}).items():
+        where = f"codes.{key}"
+        if not _KEY.fullmatch(key):
+            raise MappingError(name, where, "a key of lower-case letters, digits and underscores")
+        standard = entry.get("standard")
+        method = entry.get("method")
+        if method is not None and method not in methods:
+            raise MappingError(name, f"{where}.method", f"a name in [methods] ({', '.join(methods) or 'none'})")
+        codes[key] = _code(
+            name,
+            where,
+            entry,
+            names,
+            standard=_code(name, f"{where}.standard", standard, published) if standard is not None else None,
+            method=methods[method] if method is not None else None,
+        )
+    return CodeTable(codes, _code(name, "panel", data.get("panel", {}), names), systems)
 
 
 def _code(

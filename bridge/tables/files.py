@@ -21,12 +21,14 @@ from bridge.science.equation_sets import SETS, EquationSet, EquationSetName
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
 from bridge.science.spirometry import SpirometryRules
 from bridge.science.units import TRADITIONAL_PER_SI
-from bridge.tables import CodeTable, Plausibility, Tables
+from bridge.tables import Tables
+from bridge.tables.codes import code_table
 from bridge.tables.field_map_model import FieldMap, MapChoice
 from bridge.tables.field_map_parser import field_map
 from bridge.tables.finding_codes import TABLE as FINDING_CODES_TABLE
 from bridge.tables.finding_codes import FindingCodes
 from bridge.tables.grades import grade_table
+from bridge.tables.plausibility import plausibility
 from bridge.tables.result_status import result_status_table
 from bridge.tables.spirometry_grades import NAME as SPIROMETRY_GRADES_TABLE
 from bridge.tables.spirometry_grades import spirometry_rules
@@ -65,8 +67,8 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
     return Tables(
         units=units,
         grades=grade_table(_text(folder, "quality_grades.toml")),
-        plausibility=Plausibility.from_toml(_text(folder, "plausibility.toml"), units),
-        codes=CodeTable.from_toml(_text(folder, "codes.toml")),
+        plausibility=plausibility(_text(folder, "plausibility.toml"), units),
+        codes=code_table(_text(folder, "codes.toml")),
         reference=load_reference_equations(folder),
         result_status=result_status_table(_text(folder, "result_status.toml")),
         hl7=load_hl7_tables(folder),

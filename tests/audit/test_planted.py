@@ -9,11 +9,14 @@ import re
 from collections import Counter
 from pathlib import Path
 
+from bridge.audit.reduce import ARCHIVE_CHECKS
 from bridge.audit.run import AuditSettings, run_audit
 from bridge.inputs import find_inputs
 from bridge.tables.field_map_model import MapChoice
 from tests.audit import planted
 from tests.audit.conftest import JOB
+
+ROOT = Path(__file__).resolve().parents[2]
 
 
 def _findings(report: Path) -> list[dict[str, str]]:
@@ -56,6 +59,20 @@ def test_the_archive_findings_name_the_planted_sessions(report: Path):
     assert off == ids("PREDICTED_NOT_FROM_CLAIMED_SET")
     sources = {(row["check"], row["source"]) for row in found if row["test_id"] == "" and row["source"]}
     assert {("UNIT_CONVENTIONS_MIXED", planted.SALTREACH), ("REFERENCE_SETS_MIXED", planted.BRACKENFOLD)} == sources
+
+
+def test_the_archive_check_codes_are_listed_documented_and_found(report: Path):
+    """ARCHIVE_CHECKS, the codes the code validation must know beside the record checks', are documented and found."""
+    findings_md = (ROOT / "docs" / "findings.md").read_text(encoding="utf-8")
+    first_cells = re.findall(r"^\| (`[A-Z_]+`(?:, `[A-Z_]+`)*) \|", findings_md, re.M)  # a row may name two codes
+    documented = {code for cell in first_cells for code in re.findall(r"`([A-Z_]+)`", cell)}
+    found = {row["check"] for row in _findings(report)}
+    planted_kinds = {"DUPLICATE_TEST_ID_CONFLICT", "PATIENT_SEX_CHANGED", "PATIENT_BIRTH_DATE_CHANGED",
+                     "SERIES_UNIT_JUMP", "UNIT_CONVENTIONS_MIXED", "REFERENCE_SETS_MIXED"}  # fmt: skip
+
+    assert planted_kinds == set(ARCHIVE_CHECKS)
+    assert set() == set(ARCHIVE_CHECKS) - documented
+    assert set() == set(ARCHIVE_CHECKS) - found
 
 
 def test_summary_counts_files_sessions_and_clean_ones(report: Path):

@@ -11,7 +11,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from bridge.errors import MappingError
-from bridge.tables import Code, CodeTable, Tables
+from bridge.tables import Code, Tables
+from bridge.tables.codes import code_table
 
 # source: HL7 FHIR R4 terminology, "Using LOINC with HL7 Standards": the LOINC system URI
 LOINC_URI = "http://loinc.org"
@@ -40,7 +41,7 @@ display = "Alveolar volume (BTPS)"
 
 def test_a_table_without_a_local_system_loads():
     """[systems] names LOINC only; codes of system "local" still load (the site names their system)."""
-    table = CodeTable.from_toml(WITHOUT_LOCAL)
+    table = code_table(WITHOUT_LOCAL)
 
     assert {"loinc": LOINC_URI} == dict(table.systems)
     assert Code("loinc", "81458-2", "Pulmonary function test panel") == table.panel
@@ -63,7 +64,7 @@ def test_a_left_over_local_system_is_refused_with_where_it_is_set():
     text = WITHOUT_LOCAL.replace("[panel]", 'local = "https://site.example/local"\n\n[panel]')
 
     with pytest.raises(MappingError, match=r"^codes\.toml: systems\.local: no entry \(emit\.local_code_system"):
-        CodeTable.from_toml(text)
+        code_table(text)
 
 
 def test_a_table_without_loinc_is_refused():
@@ -71,7 +72,7 @@ def test_a_table_without_loinc_is_refused():
     text = WITHOUT_LOCAL.replace(f'loinc = "{LOINC_URI}"', "")
 
     with pytest.raises(MappingError, match=r"^codes\.toml: systems: the key loinc, and of snomed those codes name$"):
-        CodeTable.from_toml(text)
+        code_table(text)
 
 
 def test_a_code_of_an_unknown_system_is_refused():
@@ -79,7 +80,7 @@ def test_a_code_of_an_unknown_system_is_refused():
     text = WITHOUT_LOCAL.replace('system = "local"', 'system = "snomed"')
 
     with pytest.raises(MappingError, match=r"^codes\.toml: codes\.va: system \(loinc or local\), code and display$"):
-        CodeTable.from_toml(text)
+        code_table(text)
 
 
 @pytest.mark.parametrize("key", ["DLCO", "dlco-sb", "dlco|x", "dlco x", "2dlco", "dlço"])
@@ -90,7 +91,7 @@ def test_a_key_that_would_need_escaping_is_refused(key: str):
     text = WITHOUT_LOCAL.replace("[codes.va]", f'[codes."{key}"]')
 
     with pytest.raises(MappingError, match=r"a key of lower-case letters, digits and underscores"):
-        CodeTable.from_toml(text)
+        code_table(text)
 
 
 @settings(max_examples=200, deadline=None)
@@ -98,7 +99,7 @@ def test_a_key_that_would_need_escaping_is_refused(key: str):
 def test_every_key_the_table_admits_needs_no_encoding_in_a_fhir_search(key: str):
     """What the FHIR emitter relies on: a key the table loads is unchanged by percent-encoding and
     holds none of the characters FHIR search escapes (backslash, bar, comma, dollar)."""
-    table = CodeTable.from_toml(WITHOUT_LOCAL.replace("[codes.va]", f'[codes."{key}"]'))
+    table = code_table(WITHOUT_LOCAL.replace("[codes.va]", f'[codes."{key}"]'))
 
     # source: Python's urllib.parse.quote (RFC 3986 percent-encoding, nothing kept safe) and the FHIR
     # R4 search page, "Escaping Search Parameters" (from memory)
@@ -130,7 +131,7 @@ display = "Single-breath technique"
 def test_a_standard_code_and_a_method_load_with_their_code():
     """[codes.va.standard] and method = "single_breath" ([methods]) travel with the local VA code."""
     # source: PFT IG AlveolarVolume.fsh (SNOMED CT 251953007); MII ValueSet mii-vs-lufu-sct-technique (264284001)
-    va = CodeTable.from_toml(WITH_STANDARD).codes["va"]
+    va = code_table(WITH_STANDARD).codes["va"]
 
     assert Code("snomed", "251953007", "Alveolar volume") == va.standard
     assert Code("snomed", "264284001", "Single-breath technique") == va.method
@@ -143,7 +144,7 @@ def test_an_unknown_method_is_refused_naming_the_methods():
     with pytest.raises(
         MappingError, match=r"^codes\.toml: codes\.va\.method: a name in \[methods\] \(single_breath\)$"
     ):
-        CodeTable.from_toml(text)
+        code_table(text)
 
 
 def test_a_standard_code_is_never_local():
@@ -151,7 +152,7 @@ def test_a_standard_code_is_never_local():
     text = WITH_STANDARD.replace('[codes.va.standard]\nsystem = "snomed"', '[codes.va.standard]\nsystem = "local"')
 
     with pytest.raises(MappingError, match=r"^codes\.toml: codes\.va\.standard: system \(loinc or snomed\)"):
-        CodeTable.from_toml(text)
+        code_table(text)
 
 
 def test_every_published_code_of_the_bundled_table_names_its_source():

@@ -8,12 +8,17 @@ from hypothesis import strategies as st
 
 from bridge.errors import UnitError
 from bridge.model import Measure, Quantity, Session
-from bridge.science.normalise import express, normalise_quantity, normalise_tree
-from bridge.science.units import decimals_after_conversion
+from bridge.science.normalise import canonical_fields, express, normalise_tree
+from bridge.science.units import UnitCatalogue, decimals_after_conversion
 from bridge.tables.files import load_tables
 
 UNITS = load_tables().units
 DLCO = Measure("diffusing_capacity", "mL/min/mm[Hg]")
+
+
+def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
+    """One quantity in its canonical unit, as every reader's normalising step builds it."""
+    return Quantity.model_validate(canonical_fields(quantity, measure, catalogue, path))
 
 
 def test_si_value_is_kept_as_original(sample_outcomes):

@@ -11,7 +11,7 @@ from bridge.config import Settings, parse_settings
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
-from bridge.tables.files import load_tables
+from bridge.tables.files import load_map_choice, load_tables
 from tests.maps.conftest import CSV_MAP, CSV_SAMPLE, HL7_MAP, HL7_SAMPLE
 
 
@@ -98,6 +98,13 @@ def _service_reading_csv_through_the_map(tmp_path: Path) -> Settings:
     return settings
 
 
+def _intake(settings: Settings, ledger: Ledger) -> Intake:
+    """The intake the composition root builds: the service's settings, the pipeline's, and the maps they name."""
+    tables = load_tables()
+    maps = load_map_choice(settings.field_map, settings.maps, tables)
+    return Intake(settings.require_service(), settings.pipeline, maps, tables, ledger, Metrics(time.time))
+
+
 def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path):
     """A CSV with one bad session: the good one is enqueued, the bad one gets its report, the file is archived."""
     settings = _service_reading_csv_through_the_map(tmp_path)
@@ -105,7 +112,7 @@ def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path
     path = service.inbox / "lowmarsh.csv"
     path.write_bytes(CSV_SAMPLE.read_bytes().replace(b"19.08.1965", b"1965-08-19"))  # row 1: not the map's format
     with Ledger.open(service.ledger_path) as ledger:
-        result = Intake(settings, load_tables(), ledger, Metrics(time.time)).take(path, time.time())
+        result = _intake(settings, ledger).take(path, time.time())
         pending = [row.test_id for row in ledger.rows("pending")]
     reports = sorted(service.quarantine.glob("*.error.json"))
     reason = json.loads(reports[0].read_text())["reason"]
@@ -131,7 +138,7 @@ def test_a_later_file_for_the_second_session_of_a_many_session_file_is_a_correct
     # the reported TLCO of LOW-2026-0003, 9,77 -> 9,87 mmol/min/kPa: new content for that test
     later.write_bytes(b"\n".join([header, *(line.replace(b";9,77;", b";9,87;") for line in second)]) + b"\n")
     with Ledger.open(service.ledger_path) as ledger:
-        intake = Intake(settings, load_tables(), ledger, Metrics(time.time))
+        intake = _intake(settings, ledger)
         results = [intake.take(path, time.time()).result for path in (first, later)]
         pending = [(row.test_id, row.message_id) for row in ledger.rows("pending")]
 

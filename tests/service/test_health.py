@@ -14,6 +14,7 @@ from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer
 from bridge.service.runner import Service
 from bridge.service.transports.mllp import MllpTransport
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
 from tests.service.conftest import make_input, mllp_destination, wait_until
 from tests.shell.conftest import LOOPBACK, Clock
@@ -44,8 +45,16 @@ def test_healthz_stays_ok_while_delivery_works_through_a_backlog(tmp_path: Path,
     full, settings = settings, settings.require_service()
     settings.inbox.mkdir(parents=True)
     with Ledger.open(settings.ledger_path) as ledger:
-        transports = {"records": MllpTransport(LOOPBACK, receiver.port)}
-        service = Service(full, load_tables(), ledger, transports, clock, monotonic=monotonic)
+        service = Service(
+            settings,
+            full.pipeline,
+            MapChoice(),
+            load_tables(),
+            ledger,
+            {"records": MllpTransport(LOOPBACK, receiver.port)},
+            clock,
+            monotonic=monotonic,
+        )
         # metrics_port = 0 turns the service's own endpoint off; this one listens on a free port.
         service.health = HealthServer(LOOPBACK, 0, service.metrics, ledger.summary, stale_after=30.0)
         service.health.start()

@@ -13,6 +13,7 @@ from bridge.config import parse_settings
 from bridge.service.intake import Intake
 from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
 from tests.service.conftest import (
     GOOD,
@@ -160,7 +161,7 @@ def test_a_file_that_vanishes_before_it_is_read_leaves_no_trace(tmp_path: Path) 
     full, settings = settings, settings.require_service()
     settings.inbox.mkdir()
     with Ledger.open(settings.ledger_path) as ledger:
-        intake = Intake(full, load_tables(), ledger, Metrics(time.time))
+        intake = Intake(settings, full.pipeline, MapChoice(), load_tables(), ledger, Metrics(time.time))
         path = settings.inbox / "gone.json"
         path.write_bytes(make_input("GONE-0001", "FICT-8006"))
         path.unlink()

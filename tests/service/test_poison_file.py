@@ -30,6 +30,7 @@ from bridge.service.logs import JsonFormatter
 from bridge.service.metrics import Metrics
 from bridge.service.settings import ServiceSettings
 from bridge.tables import Tables
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
 from tests.service.conftest import GOOD, drop, file_destination, make_input, mllp_destination, wait_until
 
@@ -127,7 +128,12 @@ def in_process(tmp_path: Path) -> Iterator[Callable[..., InProcess]]:
         ledger = Ledger.open(settings.ledger_path)
         ledgers.append(ledger)
         metrics = Metrics(time.time)
-        return InProcess(settings, ledger, metrics, Intake(full, load_tables(), ledger, metrics, processor=processor))
+        return InProcess(
+            settings,
+            ledger,
+            metrics,
+            Intake(settings, full.pipeline, MapChoice(), load_tables(), ledger, metrics, processor=processor),
+        )
 
     yield build
     for ledger in ledgers:

@@ -1,0 +1,132 @@
+"""The value types of the record's fields: texts and URIs any output can carry, dates, quantities (pure).
+
+Owns :class:`Quantity` (value, UCUM unit, reported decimals, the :class:`Original` value and
+unit), the :class:`Measure` annotation a quantity field declares its dimension and canonical
+unit with, :data:`Text` and :data:`Uri` (refusing what no output can carry), :data:`IsoDate` and
+:data:`IsoDateTime` (RFC 3339 text, as the published schema says), the :class:`Filled` annotation
+of what the bridge fills itself, and the frozen base of every record model. ``bridge.model``
+builds the record from these and re-exports them. Imports only the stdlib and pydantic.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from datetime import date
+from functools import partial
+from typing import Annotated
+
+from pydantic import AfterValidator, AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field, GetJsonSchemaHandler
+from pydantic.json_schema import JsonSchemaValue
+from pydantic_core import CoreSchema, PydanticOmit
+
+# Characters no output may carry in text: FHIR R4 strings match ^[ \r\n\t\S]+$ (ECMA-262 \s), so
+# control characters and white space other than space, tab and line breaks are refused, and so
+# are unpaired surrogates (not UTF-8).  # source: HL7 FHIR R4 datatypes, "string" regex
+_NOT_CARRIED = re.compile(
+    "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff\ud800-\udfff]"
+)
+
+
+def _carried_text(value: str) -> str:
+    if not value.strip():
+        raise ValueError("text with at least one visible character")
+    found = _NOT_CARRIED.search(value)
+    if found:
+        raise ValueError(f"text without control or special white-space characters (found U+{ord(found[0]):04X})")
+    return value
+
+
+_WHITE_SPACE = re.compile(r"\s")
+
+
+def _uri(value: str) -> str:
+    if not value or _WHITE_SPACE.search(value) or _NOT_CARRIED.search(value):
+        raise ValueError("a URI or OID without white space")
+    return value
+
+
+# The same rules as JSON Schema patterns (ECMA-262); U+0085 is white space to Python, not to ECMA-262: named.
+_TEXT_PATTERN = (
+    r"^[ \t\r\n]*[^\s\x00-\x1f\x7f\x85][^\x00-\x08\x0b\x0c\x0e-\x1f\x7f"
+    r"\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff]*$"
+)
+_URI_PATTERN = r"^[^\s\x00-\x1f\x7f\x85]+$"
+Text = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _TEXT_PATTERN}), AfterValidator(_carried_text)]
+Uri = Annotated[str, Field(min_length=1, json_schema_extra={"pattern": _URI_PATTERN}), AfterValidator(_uri)]
+# Dates, date-times: text as RFC 3339 5.6 writes them, offsets within 14 h (source: HL7 FHIR R4 dateTime regex)
+_DATE = r"[0-9]{4}-(0[1-9]|1[0-2])-(0[1-9]|[12][0-9]|3[01])"
+_TIME = r"([01][0-9]|2[0-3]):[0-5][0-9]:[0-5][0-9](\.[0-9]+)?"
+DATE_PATTERN = f"^{_DATE}$"
+DATE_TIME_PATTERN = f"^{_DATE}[Tt]{_TIME}([Zz]|[+-]((0[0-9]|1[0-3]):[0-5][0-9]|14:00))$"
+_DATE_TIME_EXPECTED = "a date-time with a UTC offset between -14:00 and +14:00 (e.g. 2026-03-02T09:15:00+01:00)"
+
+
+def _text_in(pattern: re.Pattern[str], expected: str, value: object) -> object:
+    """Text in ``pattern``, or a date built in Python; never a number (pydantic takes seconds since 1970)."""
+    if isinstance(value, date) or (isinstance(value, str) and pattern.fullmatch(value)):
+        return value
+    raise ValueError(expected)
+
+
+_DATE_RULE = BeforeValidator(partial(_text_in, re.compile(DATE_PATTERN), "a date YYYY-MM-DD"))
+IsoDate = Annotated[date, _DATE_RULE, Field(json_schema_extra={"pattern": DATE_PATTERN})]
+_DATE_TIME_RULE = BeforeValidator(partial(_text_in, re.compile(DATE_TIME_PATTERN), _DATE_TIME_EXPECTED))
+IsoDateTime = Annotated[AwareDatetime, _DATE_TIME_RULE, Field(json_schema_extra={"pattern": DATE_TIME_PATTERN})]
+
+
+@dataclass(frozen=True, slots=True)
+class Filled:
+    """Annotation: a field the bridge fills while it reads (left out of the schema, refused in an export)."""
+
+    def __get_pydantic_json_schema__(self, schema: CoreSchema, handler: GetJsonSchemaHandler) -> JsonSchemaValue:
+        raise PydanticOmit  # the field is left out of the schema, as pydantic's SkipJsonSchema does
+
+
+def filled_fields(model: type[BaseModel]) -> frozenset[str]:
+    """The fields of ``model`` marked :class:`Filled`."""
+    return frozenset(n for n, info in model.model_fields.items() if any(isinstance(m, Filled) for m in info.metadata))
+
+
+class Frozen(BaseModel):
+    """Base for every record model: immutable, strict about unknown keys."""
+
+    model_config = ConfigDict(frozen=True, extra="forbid")
+
+
+@dataclass(frozen=True, slots=True)
+class Measure:
+    """Annotation on a quantity field: which dimension it has and the unit it is kept in."""
+
+    dimension: str
+    canonical_unit: str
+    signed: bool = False  # may the value be negative (altitude below sea level, temperature)
+
+
+class Original(Frozen):
+    """The value and unit exactly as the source wrote them (the value as text keeps its digits)."""
+
+    value: str
+    unit: str
+
+
+class Quantity(Frozen):
+    """A value with its UCUM unit; an export writes ``{"value": 21.4, "unit": "mL/min/mm[Hg]"}``.
+
+    The bridge fills (:class:`Filled`) ``decimals``, the digits the source reported after the point (7.460
+    is emitted as 7.460; ``None`` when computed here), and ``original``, the value and unit as written.
+    """
+
+    value: float = Field(allow_inf_nan=False, strict=True)  # a JSON number only: not true, not "9.84"
+    unit: str = Field(min_length=1)
+    decimals: Annotated[int | None, Filled()] = Field(default=None, ge=0, le=12)
+    original: Annotated[Original | None, Filled()] = None
+
+    def text(self) -> str:
+        """The value as text with the reported number of decimals (6 significant digits if unknown)."""
+        return number_text(self.value, self.decimals)
+
+
+def number_text(value: float, decimals: int | None) -> str:
+    """A number with ``decimals`` digits after the point, or 6 significant digits when None."""
+    return format(value, ".6g") if decimals is None else f"{value:.{decimals}f}"
