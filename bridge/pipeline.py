@@ -115,9 +115,10 @@ def process(
     already sent, and ``sent_before(test_id)`` what was sent for it (so a correction withdraws
     what it no longer gives; ``bridge.emit.status``). Raises :class:`InputError` when the input
     cannot be read, holds other than one session (``process``), is impossible (born after the
-    test, nothing measured, dated in the future), an ERROR finding not allowed (or a blocking one) refuses it, or (with ``validate_outputs``)
-    an independent validator finds a payload invalid; an error raised at the gate or while
-    emitting carries the checked record as ``outcome``.
+    test, nothing measured, dated in the future), an ERROR finding not allowed (or a blocking
+    one) refuses it, or (with ``validate_outputs``) an independent validator finds a payload
+    invalid; an error raised at the gate or while emitting carries the checked record as
+    ``outcome``.
     """
     results = list(
         process_all(

@@ -10,7 +10,7 @@ from __future__ import annotations
 from collections import Counter
 from typing import Any
 
-from bridge.display.unit_text import for_people
+from bridge.science.unit_text import for_people
 
 
 def describe_bundle(bundle: dict[str, Any]) -> str:

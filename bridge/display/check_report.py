@@ -10,11 +10,11 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from bridge.display.unit_text import for_people
 from bridge.emit.settings import HEMOGLOBIN_DIMENSION
 from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.compared import BASIS_WORDS
 from bridge.science.normalise import express
+from bridge.science.unit_text import for_people
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 

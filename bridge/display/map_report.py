@@ -17,10 +17,10 @@ from typing import Any
 
 from pydantic import BaseModel
 
-from bridge.display.unit_text import for_people
 from bridge.errors import BlockedByFinding, InputError
 from bridge.model import Outcome, Quantity, Session
 from bridge.readers.mapped import Cell, MappedRecord
+from bridge.science.unit_text import for_people
 from bridge.tables.canonical_fields import MANOEUVRES, canonical_fields
 from bridge.tables.field_map_model import FieldMap
 

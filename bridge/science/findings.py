@@ -10,9 +10,9 @@ from __future__ import annotations
 import math
 from collections.abc import Callable, Iterator
 
-from bridge.display.unit_text import for_people
 from bridge.model import Derived, Finding, Quantity, Session, Severity
 from bridge.science.table_values import Tables
+from bridge.science.unit_text import for_people
 
 Rule = Callable[[Session, Derived, Tables], Iterator[Finding]]
 DLCO_UNIT, KCO_UNIT, HB_UNIT, PRESSURE_UNIT = "mL/min/mm[Hg]", "mL/min/mm[Hg]/L", "g/dL", "mm[Hg]"

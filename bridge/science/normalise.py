@@ -15,9 +15,9 @@ from typing import Annotated, Any, get_args, get_origin
 
 from pydantic import BaseModel, ValidationError
 
-from bridge.display.unit_text import for_people
 from bridge.errors import InvalidField, UnitError
 from bridge.model import Measure, Quantity, Session
+from bridge.science.unit_text import for_people
 from bridge.science.units import UnitCatalogue, UnitDef, decimals_after_conversion
 
 # A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.

@@ -1,7 +1,8 @@
 """How people read a unit: the trade's spelling of a UCUM code (``mL/min/mmHg``, not ``mL/min/mm[Hg]``).
 
 Owns the one translation from UCUM (what machines get: FHIR, HL7, ``check --json``) to the
-spelling printed for people by ``check``, ``convert`` and ``demo``. Pure.
+spelling printed for people by ``check``, ``convert``, ``demo`` and the findings' sentences. Pure (below
+the display layer, because science writes finding sentences with it).
 """
 
 from __future__ import annotations
