@@ -161,14 +161,14 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
         signal.signal(signum, lambda *_: stop.set())
     store = ResourceStore(where.resources)
     mllp: MllpPeer | None = None
-    try:
+    try:  # a port in use is a ConfigError naming its option
         mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
         fhir = FhirPeer(store, where.fhir_port)
-    except OSError as exc:
+    except ConfigError:
         if mllp is not None:
-            mllp.server.server_close()
+            mllp.stop()
         store.close()
-        raise ConfigError("--mllp-port/--fhir-port", f"free ports on 127.0.0.1 ({exc.strerror or exc})") from exc
+        raise
     mllp.start()
     fhir.start()
     print(f"dlco-bridge stand-in: MLLP on 127.0.0.1:{mllp.port} (answers {where.answer}), FHIR at {fhir.url}")

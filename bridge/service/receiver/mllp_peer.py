@@ -16,6 +16,7 @@ from pathlib import Path
 
 from bridge.emit.hl7text import split_fields, split_segments
 from bridge.service.files import write_atomically
+from bridge.service.loopback import LoopbackServer
 from bridge.service.transports.mllp import FrameReader, frame
 
 # source: HL7 v2.5.1 ch. 2 table 0008 (AA accept, AE error, AR reject)
@@ -43,7 +44,7 @@ def ack_for(message: bytes, code: str, control_id: str, at: datetime) -> bytes:
     return f"{msh_out}\r{msa}\r".encode()
 
 
-class MllpPeer:
+class MllpPeer(LoopbackServer):
     """An MLLP listener on 127.0.0.1 in a background thread; ``answer`` may be changed while it runs."""
 
     def __init__(self, folder: Path, port: int = 0, answer: str = "AA") -> None:
@@ -54,20 +55,7 @@ class MllpPeer:
         self.received = 0
         self._lock = threading.Lock()
         folder.mkdir(parents=True, exist_ok=True)
-        self.server = socketserver.ThreadingTCPServer(("127.0.0.1", port), _handler(self))
-        self.server.daemon_threads = True
-        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.1,), name="stand-in-mllp", daemon=True)
-
-    @property
-    def port(self) -> int:
-        return int(self.server.server_address[1])
-
-    def start(self) -> None:
-        self.thread.start()
-
-    def stop(self) -> None:
-        self.server.shutdown()
-        self.server.server_close()
+        super().__init__(_handler(self), port, setting="--mllp-port", name="stand-in-mllp")
 
     def take(self, message: bytes) -> bytes:
         """Write one message and return the ACK to send."""
