@@ -16,7 +16,6 @@ from http.server import BaseHTTPRequestHandler
 from typing import Any
 
 from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
-from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.metrics_core import GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
@@ -26,6 +25,8 @@ from bridge.service.space import Space
 from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
 PREFIX = "dlco_bridge_"
+# What generate_latest writes: the text format 0.0.4 (source: Prometheus "Exposition formats").
+CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 # Latency buckets in seconds (Prometheus histogram "le" bounds).
 LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0)
 # Each counter (exposed as dlco_bridge_<name>_total) and what it counts since the service started.
@@ -205,7 +206,7 @@ def _handler(
     class Handler(BaseHTTPRequestHandler):
         def do_GET(self) -> None:
             if self.path == "/metrics":
-                self._send(200, metrics.render(summary(), space), CONTENT_TYPE_PLAIN_0_0_4)
+                self._send(200, metrics.render(summary(), space), CONTENT_TYPE)
             elif self.path == "/healthz":
                 ages = metrics.heartbeat_ages()
                 stale = sorted(loop for loop, age in ages.items() if age > stale_after)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import json
 import re
 import signal
+import socketserver
 import subprocess
 import sys
 from collections.abc import Callable, Iterator
@@ -12,6 +13,7 @@ from pathlib import Path
 
 import pytest
 
+from bridge.service.loopback import LoopbackServer
 from bridge.service.receiver import MllpPeer, ResourceStore
 from tests.service.conftest import (
     GOOD,
@@ -173,3 +175,16 @@ def test_ae_is_dead_lettered_and_ar_follows_each_destination_policy(make_site: M
     site.stop()
 
     assert re.search(rf"will retry .*destination=patient .*address=127\.0\.0\.1:{patient.port}", site.stderr())
+
+
+def test_a_port_in_use_stops_the_stand_in_in_one_line_naming_its_option(tmp_path: Path) -> None:
+    """The FHIR port taken (the MLLP one free): exit 1, one line naming --fhir-port and the port; nothing left open."""
+    with LoopbackServer(socketserver.BaseRequestHandler) as taken:
+        mllp_port = free_port()
+        refused = cli("stand-in", "--folder", str(tmp_path / "s"),
+                      "--mllp-port", str(mllp_port), "--fhir-port", str(taken.port))  # fmt: skip
+
+    assert (1, [f"dlco-bridge: --fhir-port: a free port on 127.0.0.1 (port {taken.port}: Address already in use)"]) == (
+        refused.returncode,
+        refused.stderr.splitlines(),
+    )
