@@ -73,10 +73,6 @@ class Metrics:
     def count(self, name: str) -> None:
         self._counters[name].inc()
 
-    def counted(self, name: str) -> int:
-        """How many ``name`` (a key of :data:`COUNTERS`) since the start."""
-        return int(self.registry.get_sample_value(f"{PREFIX}{name}_total") or 0)
-
     def heartbeat(self, loop: str) -> None:
         with self._lock:
             self._heartbeats[loop] = self._monotonic()

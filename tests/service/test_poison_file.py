@@ -173,9 +173,9 @@ def test_an_internal_error_quarantines_the_file_and_the_next_file_is_processed(
     assert "poison.json: internal error: ZeroDivisionError: no transfer factor for FICT-6630" == report["reason"]
     assert ["poison.json"] == [p.name for p in site.settings.quarantine.iterdir() if not p.name.endswith(".error.json")]
     assert (1, 1, 1, 1) == (
-        site.metrics.counted("files_failed_internal"),
-        site.metrics.counted("files_quarantined"),
-        site.metrics.counted("files_processed"),
+        site.metrics.registry.get_sample_value("dlco_bridge_files_failed_internal_total"),
+        site.metrics.registry.get_sample_value("dlco_bridge_files_quarantined_total"),
+        site.metrics.registry.get_sample_value("dlco_bridge_files_processed_total"),
         summary.quarantined,
     )
     assert (1, 1) == (summary.processed, summary.pending)
@@ -212,7 +212,7 @@ def test_an_input_error_report_says_kind_input(in_process: Callable[..., InProce
         report["kind"],
         report["error"],
         report["field"],
-        site.metrics.counted("files_failed_internal"),
+        site.metrics.registry.get_sample_value("dlco_bridge_files_failed_internal_total"),
     )
 
 
