@@ -52,6 +52,7 @@ import re
 import shutil
 import signal
 import socket
+import socketserver
 import statistics
 import subprocess
 import sys
@@ -68,7 +69,9 @@ from typing import Any
 import orjson
 from bench_convert import FAMILY, GIVEN  # the same invented names (run from benchmarks/)
 from hl7.mllp import start_hl7_server  # type: ignore[import-untyped]  # python-hl7 ships no type hints
+from prometheus_client.parser import text_string_to_metric_families
 
+from bridge.service.loopback import LoopbackServer
 from bridge.tables.files import samples_dir
 
 LOOPBACK = "127.0.0.1"
@@ -90,8 +93,6 @@ SOAK_SAMPLE_S = 10.0
 STEADY_SAMPLE_S = 2.0
 PREFIX = {"floor": "F", "durable": "D", "steady": "S", "soak": "K", "burst": "B"}  # test id letter per phase
 _VT, _FS_CR = b"\x0b", b"\x1c\x0d"
-_BUCKET = re.compile(r'^dlco_bridge_delivery_latency_seconds_bucket\{destination="records",le="([^"]+)"\} (\d+)$')
-_SUM = re.compile(r'^dlco_bridge_delivery_latency_seconds_(sum|count)\{destination="records"\} (\S+)$')
 
 
 # ---------- inputs ----------
@@ -273,9 +274,9 @@ def _fsync_folder(folder: Path) -> None:
 
 
 def free_port() -> int:
-    with socket.socket() as s:
-        s.bind((LOOPBACK, 0))
-        return int(s.getsockname()[1])
+    probe = LoopbackServer(socketserver.BaseRequestHandler)  # bound, read, released; never started
+    probe.stop()
+    return probe.port
 
 
 CONFIG = """\
@@ -397,15 +398,20 @@ class Histogram:
 
     @classmethod
     def parse(cls, text: str) -> Histogram:
+        """The ``records`` destination's histogram, read by prometheus_client's text parser."""
         h = cls()
-        for line in text.splitlines():
-            if m := _BUCKET.match(line):
-                h.buckets[float(m.group(1))] = int(m.group(2))
-            elif m := _SUM.match(line):
-                if m.group(1) == "sum":
-                    h.total = float(m.group(2))
-                else:
-                    h.count = int(float(m.group(2)))
+        for family in text_string_to_metric_families(text):
+            if family.name != "dlco_bridge_delivery_latency_seconds":
+                continue
+            for sample in family.samples:
+                if sample.labels.get("destination") != "records":
+                    continue
+                if sample.name.endswith("_bucket"):
+                    h.buckets[float(sample.labels["le"])] = int(sample.value)
+                elif sample.name.endswith("_sum"):
+                    h.total = sample.value
+                elif sample.name.endswith("_count"):
+                    h.count = int(sample.value)
         return h
 
     def minus(self, before: Histogram) -> Histogram:

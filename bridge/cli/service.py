@@ -189,17 +189,19 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
     for signum in (signal.SIGTERM, signal.SIGINT):
         signal.signal(signum, lambda *_: stop.set())
     store = ResourceStore(where.resources)
-    try:
+    mllp: MllpPeer | None = None
+    try:  # a port in use is a ConfigError naming its option
         mllp = MllpPeer(where.messages, where.mllp_port, where.answer)
     except OSError as exc:
         store.close()
         raise _port_taken("--mllp-port", where.mllp_port, exc) from exc
     try:
         fhir = FhirPeer(store, where.fhir_port)
-    except OSError as exc:
-        mllp.server.server_close()
+    except ConfigError:
+        if mllp is not None:
+            mllp.stop()
         store.close()
-        raise _port_taken("--fhir-port", where.fhir_port, exc) from exc
+        raise
     mllp.start()
     fhir.start()
     print(f"dlco-bridge stand-in: MLLP on 127.0.0.1:{mllp.port} (answers {where.answer}), FHIR at {fhir.url}")

@@ -5,7 +5,8 @@ file is complete), :mod:`~bridge.service.intake` (what becomes of it: ledger fir
 or quarantine), :mod:`~bridge.service.ledger` (the SQLite state and the single-instance lock),
 :mod:`~bridge.service.delivery` and :mod:`~bridge.service.backoff` (due outbox rows to
 transports), :mod:`~bridge.service.transports` (MLLP, FHIR REST, file, memory),
-:mod:`~bridge.service.metrics`, :mod:`~bridge.service.logs`, :mod:`~bridge.service.files`, and
+:mod:`~bridge.service.metrics`, :mod:`~bridge.service.loopback` (the one lifecycle of every
+listener), :mod:`~bridge.service.logs`, :mod:`~bridge.service.files`, and
 :mod:`~bridge.service.runner` (the two loops and the graceful stop).
 
 The core never imports this package (``tests/test_architecture.py``); the CLI builds the ledger

@@ -1,40 +1,49 @@
 """Counters, delivery latency, and the loopback health/metrics endpoint (shell).
 
-Owns: thread-safe counters the service increments, the file-close-to-acknowledgement latency
-of each message (noted at enqueue, measured at delivery by :class:`MeteredTransport`), their
-Prometheus text rendering, and a tiny HTTP server on a loopback address serving
-``/healthz`` and ``/metrics``. No patient data is ever put in a label.
+Owns: the counters the service increments and the file-close-to-acknowledgement latency of each
+message (noted at enqueue, measured at delivery by :class:`MeteredTransport`), kept by
+``prometheus_client`` in one registry per :class:`Metrics`; the gauges read at each scrape from
+the ledger's summary and the disk-full state; and ``/healthz`` and ``/metrics`` on a loopback
+address. No patient data is ever put in a label.
 """
 
 from __future__ import annotations
 
 import threading
 import time
-from collections.abc import Callable, Mapping
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from collections.abc import Callable, Iterable, Iterator
+from http.server import BaseHTTPRequestHandler
 from typing import Any
 
-from bridge.errors import ConfigError
+from prometheus_client import CollectorRegistry, Counter, Histogram, generate_latest
+from prometheus_client.metrics_core import GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
+
 from bridge.service.ledger import LedgerSummary
+from bridge.service.loopback import LoopbackServer
 from bridge.service.space import Space
 from bridge.service.transports.base import DeliveryReceipt, OutgoingMessage, Transport
 
+PREFIX = "dlco_bridge_"
+# What generate_latest writes: the text format 0.0.4 (source: Prometheus "Exposition formats").
+CONTENT_TYPE = "text/plain; version=0.0.4; charset=utf-8"
 # Latency buckets in seconds (Prometheus histogram "le" bounds).
 LATENCY_BUCKETS = (0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0, 30.0, 60.0, 300.0)
-# files_failed_internal: quarantined because processing raised something other than an
-# InputError (a bug the file exposed); they are counted in files_quarantined as well.
-# records_quarantined: sessions a field map refused in a file whose other sessions went on.
-# files_skipped: inbox files that are not exports (bridge.inputs, the skip rule), left in place.
-COUNTERS = (
-    "files_seen",
-    "files_processed",
-    "files_quarantined",
-    "files_failed_internal",
-    "files_duplicate",
-    "corrections",
-    "records_quarantined",
-    "files_skipped",
-)
+# Each counter (exposed as dlco_bridge_<name>_total) and what it counts since the service started.
+COUNTERS = {
+    "files_seen": "Inbox files taken.",
+    "files_processed": "Inbox files processed and archived.",
+    "files_quarantined": "Inbox files quarantined.",
+    # Quarantined because processing raised something other than an InputError (a bug the file
+    # exposed); they are counted in files_quarantined as well.
+    "files_failed_internal": "Inbox files quarantined for an internal error (alert on any).",
+    "files_duplicate": "Inbox files already processed (archived as duplicates).",
+    "corrections": "Inbox files that corrected a test already sent.",
+    # Sessions a field map refused in a file whose other sessions went on.
+    "records_quarantined": "Sessions a field map refused in a file whose other sessions went on.",
+    # Inbox files that are not exports (bridge.inputs, the skip rule), left in place.
+    "files_skipped": "Inbox files that are not exports, left in place (counted once each).",
+}
 
 
 class Metrics:
@@ -48,17 +57,23 @@ class Metrics:
         self._clock = clock
         self._monotonic = monotonic
         self._lock = threading.Lock()
-        self.counts = dict.fromkeys(COUNTERS, 0)
         self._started: dict[str, float] = {}  # message id -> when its input was complete
-        self._buckets: dict[str, list[int]] = {}
-        self._sums: dict[str, float] = {}
-        self._measured: dict[str, int] = {}
-        self._delivered: dict[str, int] = {}
         self._heartbeats: dict[str, float] = {}
+        self.registry = CollectorRegistry()
+        self._counters = {name: Counter(PREFIX + name, text, registry=self.registry) for name, text in COUNTERS.items()}
+        self._delivered = Counter(
+            PREFIX + "delivered", "Messages the destination acknowledged.", ["destination"], registry=self.registry
+        )
+        self._latency = Histogram(
+            PREFIX + "delivery_latency_seconds",
+            "Seconds from an input file complete to the acknowledgement of its message.",
+            ["destination"],
+            buckets=LATENCY_BUCKETS,
+            registry=self.registry,
+        )
 
     def count(self, name: str) -> None:
-        with self._lock:
-            self.counts[name] += 1
+        self._counters[name].inc()
 
     def heartbeat(self, loop: str) -> None:
         with self._lock:
@@ -75,58 +90,76 @@ class Metrics:
 
     def note_delivered(self, destination: str, message_id: str) -> None:
         now = self._clock()
+        self._delivered.labels(destination).inc()
         with self._lock:
-            self._delivered[destination] = self._delivered.get(destination, 0) + 1
             started = self._started.pop(message_id, None)
-            if started is None:
-                return  # enqueued before a restart: no start time to measure from
-            latency = max(0.0, now - started)
-            buckets = self._buckets.setdefault(destination, [0] * len(LATENCY_BUCKETS))
-            for i, bound in enumerate(LATENCY_BUCKETS):
-                if latency <= bound:
-                    buckets[i] += 1
-            self._sums[destination] = self._sums.get(destination, 0.0) + latency
-            self._measured[destination] = self._measured.get(destination, 0) + 1
+        if started is not None:  # None: enqueued before a restart, no start time to measure from
+            self._latency.labels(destination).observe(max(0.0, now - started))
 
-    def render(self, summary: LedgerSummary) -> str:
-        """Prometheus text exposition format (version 0.0.4)."""
-        lines: list[str] = []
-        with self._lock:
-            for name in COUNTERS:
-                metric = f"dlco_bridge_{name}_total"
-                lines += [f"# TYPE {metric} counter", f"{metric} {self.counts[name]}"]
-            lines += _per_destination("dlco_bridge_delivered_total", "counter", self._delivered)
-            lines.append("# TYPE dlco_bridge_delivery_latency_seconds histogram")
-            for destination, buckets in sorted(self._buckets.items()):
-                label = _label(destination)
-                for bound, count in zip(LATENCY_BUCKETS, buckets, strict=True):
-                    lines.append(f'dlco_bridge_delivery_latency_seconds_bucket{{{label},le="{bound}"}} {count}')
-                total = self._measured[destination]
-                lines.append(f'dlco_bridge_delivery_latency_seconds_bucket{{{label},le="+Inf"}} {total}')
-                lines.append(f"dlco_bridge_delivery_latency_seconds_sum{{{label}}} {self._sums[destination]:.6f}")
-                lines.append(f"dlco_bridge_delivery_latency_seconds_count{{{label}}} {total}")
-        depth = {name: d.pending for name, d in summary.destinations.items()}
-        rejected = {name: d.rejected for name, d in summary.destinations.items()}
-        oldest = {name: d.oldest_pending_age or 0.0 for name, d in summary.destinations.items()}
-        lines += _per_destination("dlco_bridge_outbox_depth", "gauge", depth)
-        lines += _per_destination("dlco_bridge_dead_letters", "gauge", rejected)
-        lines += _per_destination("dlco_bridge_oldest_pending_seconds", "gauge", oldest)
-        lines += [
-            "# TYPE dlco_bridge_inputs_quarantined gauge",
-            f"dlco_bridge_inputs_quarantined {summary.quarantined}",
-        ]
-        return "\n".join(lines) + "\n"
+    def render(self, summary: LedgerSummary, space: Space | None = None) -> str:
+        """Prometheus text exposition format (version 0.0.4): the registry, then the ledger and disk gauges."""
+        families = [*_without_created(self.registry.collect()), *_ledger_gauges(summary)]
+        families += _space_gauges(space) if space is not None else []
+        return generate_latest(_Families(families)).decode()
 
 
-def _label(destination: str) -> str:
-    escaped = destination.replace("\\", "\\\\").replace('"', '\\"')
-    return f'destination="{escaped}"'
+def _without_created(families: Iterable[Metric]) -> Iterator[Metric]:
+    """The registry's families without prometheus_client's ``_created`` samples.
+
+    They would add a series per counter and histogram (their creation time) that the service has
+    never exposed; the library's switch for them is process-wide, so they are left out here.
+    """
+    for family in families:
+        family.samples = [s for s in family.samples if not s.name.endswith("_created")]
+        yield family
 
 
-def _per_destination(metric: str, kind: str, values: Mapping[str, float]) -> list[str]:
-    lines = [f"# TYPE {metric} {kind}"]
-    lines += [f"{metric}{{{_label(name)}}} {value:g}" for name, value in sorted(values.items())]
-    return lines
+def _ledger_gauges(summary: LedgerSummary) -> list[Metric]:
+    rows = sorted(summary.destinations.items())
+    per_destination = (
+        ("outbox_depth", "Messages waiting for delivery.", [(n, d.pending) for n, d in rows]),
+        ("dead_letters", "Messages refused for good (dead letters).", [(n, d.rejected) for n, d in rows]),
+        (
+            "oldest_pending_seconds",
+            "Age of the oldest message waiting.",
+            [(n, d.oldest_pending_age or 0.0) for n, d in rows],
+        ),
+    )
+    families: list[Metric] = []
+    for name, text, values in per_destination:
+        family = GaugeMetricFamily(PREFIX + name, text, labels=["destination"])
+        for destination, value in values:
+            family.add_metric([destination], value)
+        families.append(family)
+    quarantined = "Inputs the ledger holds as quarantined, since the ledger began."
+    return [*families, GaugeMetricFamily(PREFIX + "inputs_quarantined", quarantined, value=summary.quarantined)]
+
+
+def _space_gauges(space: Space) -> list[Metric]:
+    """1 for each full place, 0 for the others; whether intake and delivery are paused."""
+    full = GaugeMetricFamily(PREFIX + "disk_full", "1 while the place has no room.", labels=["where"])
+    out_of_space = space.full_places()
+    for where in sorted(space.folders):
+        full.add_metric([where], int(where in out_of_space))
+    return [
+        full,
+        GaugeMetricFamily(
+            PREFIX + "intake_paused", "1 while a full place pauses the intake.", int(space.intake_paused)
+        ),
+        GaugeMetricFamily(
+            PREFIX + "delivery_paused", "1 while a full ledger pauses delivery.", int(space.delivery_paused)
+        ),
+    ]
+
+
+class _Families(Collector):
+    """Families already collected, for the library's text writer."""
+
+    def __init__(self, families: list[Metric]) -> None:
+        self.families = families
+
+    def collect(self) -> list[Metric]:
+        return self.families
 
 
 class MeteredTransport:
@@ -145,7 +178,7 @@ class MeteredTransport:
         self.inner.close()
 
 
-class HealthServer:
+class HealthServer(LoopbackServer):
     """``/healthz`` and ``/metrics`` on a loopback address, in a daemon thread.
 
     ``/healthz`` is 503 while a loop is stale or a place the service writes is full (``space``).
@@ -161,23 +194,8 @@ class HealthServer:
         space: Space | None = None,
     ) -> None:
         handler = _handler(metrics, summary, stale_after, space)
-        try:
-            self.server = ThreadingHTTPServer((host, port), handler)
-        except OSError as exc:
-            # A port taken by another program is a setting to change, said in one line.
-            raise ConfigError("metrics_port", f"a free port on {host}, got {port} ({exc.strerror or exc})") from exc
-        self.thread = threading.Thread(target=self.server.serve_forever, name="health", daemon=True)
-
-    @property
-    def port(self) -> int:
-        return int(self.server.server_address[1])
-
-    def start(self) -> None:
-        self.thread.start()
-
-    def stop(self) -> None:
-        self.server.shutdown()
-        self.server.server_close()
+        # A port taken by another program is a setting to change, said in one line.
+        super().__init__(handler, port, host=host, setting="metrics_port", name="health")
 
 
 def _handler(
@@ -186,8 +204,7 @@ def _handler(
     class Handler(BaseHTTPRequestHandler):
         def do_GET(self) -> None:
             if self.path == "/metrics":
-                text = metrics.render(summary()) + (space.render() if space is not None else "")
-                self._send(200, text, "text/plain; version=0.0.4")
+                self._send(200, metrics.render(summary(), space), CONTENT_TYPE)
             elif self.path == "/healthz":
                 ages = metrics.heartbeat_ages()
                 stale = sorted(loop for loop, age in ages.items() if age > stale_after)

@@ -117,17 +117,10 @@ class Space:
             full = sorted(self._full.items())
         return [f"disk full: {where} ({self.folders.get(where, '')}): {s.reason}" for where, s in full]
 
-    def render(self) -> str:
-        """Prometheus gauges: 1 for each full place, 0 for the others; whether intake and delivery are paused."""
+    def full_places(self) -> frozenset[str]:
+        """The places out of space now (``/metrics`` says 1 for these, 0 for the other folders)."""
         with self._lock:
-            full = set(self._full)
-        lines = ["# TYPE dlco_bridge_disk_full gauge"]
-        for where in sorted(self.folders):
-            escaped = where.replace("\\", "\\\\").replace('"', '\\"')
-            lines.append(f'dlco_bridge_disk_full{{where="{escaped}"}} {int(where in full)}')
-        lines += ["# TYPE dlco_bridge_intake_paused gauge", f"dlco_bridge_intake_paused {int(bool(full))}"]
-        lines += ["# TYPE dlco_bridge_delivery_paused gauge", f"dlco_bridge_delivery_paused {int('ledger' in full)}"]
-        return "\n".join(lines) + "\n"
+            return frozenset(self._full)
 
 
 class SpaceWatchedTransport:

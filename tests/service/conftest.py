@@ -12,7 +12,6 @@ import contextlib
 import json
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -24,10 +23,12 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from prometheus_client.parser import text_string_to_metric_families
 
 from bridge.service.ledger import Ledger, LedgerSummary
+from bridge.service.receiver import FhirPeer, ResourceStore
 from tests.conftest import SAMPLES
-from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, serve_fhir
+from tests.shell.conftest import LOOPBACK, FhirEndpoint, MllpReceiver, free_port, serve_fhir
 
 # Samples that go through: 07 and 09 carry an ERROR finding (a probable unit mislabel, an Hb
 # adjustment the wrong way round) and are refused by default; 08 is malformed.
@@ -51,11 +52,18 @@ def wait_until(condition: Callable[[], Any], what: str, timeout: float = WAIT_SE
         time.sleep(POLL_SECONDS)
 
 
-def free_port() -> int:
-    """A loopback port nobody listens on right now (for the subprocess's metrics)."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as sock:
-        sock.bind((LOOPBACK, 0))
-        return int(sock.getsockname()[1])
+def samples(exposition: str) -> dict[str, float]:
+    """Prometheus text as {sample name with labels: value}, read by prometheus_client's own parser.
+
+    ``name{label="value",...}`` with the labels in the order written; an independent reading of
+    what the service wrote (source: Prometheus text exposition format 0.0.4).
+    """
+    found: dict[str, float] = {}
+    for family in text_string_to_metric_families(exposition):
+        for sample in family.samples:
+            labels = ",".join(f'{key}="{value}"' for key, value in sample.labels.items())
+            found[sample.name + (f"{{{labels}}}" if labels else "")] = sample.value
+    return found
 
 
 # ---- inputs ----------------------------------------------------------------------------
@@ -139,9 +147,20 @@ def receiver() -> Iterator[RecordingReceiver]:
 
 @pytest.fixture
 def fhir_server() -> Iterator[FhirEndpoint]:
-    """The shell tests' loopback FHIR endpoint (transaction Bundles at its base URL)."""
+    """The shell tests' loopback FHIR endpoint, for faults (it refuses or fails when told)."""
     with serve_fhir() as endpoint:
         yield endpoint
+
+
+@pytest.fixture
+def stand_in_fhir(tmp_path: Path) -> Iterator[FhirPeer]:
+    """The product's own stand-in FHIR endpoint (as ``dlco-bridge stand-in`` runs it), on a free port."""
+    store = ResourceStore(tmp_path / "stand-in" / "resources.sqlite3")
+    try:
+        with FhirPeer(store) as peer:
+            yield peer
+    finally:
+        store.close()
 
 
 # ---- the service process -----------------------------------------------------------------
@@ -267,9 +286,7 @@ class Site:
         """``/metrics`` as {sample name with labels: value}."""
         url = f"http://{LOOPBACK}:{self.metrics_port}/metrics"
         with urllib.request.urlopen(url, timeout=5) as answer:
-            text = answer.read().decode()
-        samples = (line.rsplit(" ", 1) for line in text.splitlines() if line and not line.startswith("#"))
-        return {name: float(value) for name, value in samples}
+            return samples(answer.read().decode())
 
     def inbox_names(self) -> set[str]:
         return {p.name for p in self.inbox.iterdir() if p.is_file() and not p.name.startswith(".")}

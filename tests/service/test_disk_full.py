@@ -30,7 +30,7 @@ from bridge.service.metrics import HealthServer
 from bridge.service.runner import Service
 from bridge.service.transports.file import FileTransport
 from bridge.tables.files import load_tables
-from tests.service.conftest import MALFORMED, drop, make_input, wait_until
+from tests.service.conftest import MALFORMED, drop, make_input, samples, wait_until
 from tests.shell.conftest import LOOPBACK
 
 # source: SQLite result codes (sqlite.org/rescode.html), SQLITE_FULL = 13 "database or disk is full"
@@ -147,7 +147,7 @@ class Running:
     def metric(self, sample: str) -> float:
         assert self.service.health is not None
         _, text = get(f"http://{LOOPBACK}:{self.service.health.port}/metrics")
-        return float(next(line.rsplit(" ", 1)[1] for line in text.splitlines() if line.startswith(sample + " ")))
+        return samples(text)[sample]
 
     def inbox(self) -> dict[str, bytes]:
         return {p.name: p.read_bytes() for p in self.settings.inbox.iterdir()}

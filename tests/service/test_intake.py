@@ -28,8 +28,8 @@ from tests.service.conftest import (
 )
 
 if TYPE_CHECKING:
+    from bridge.service.receiver import FhirPeer
     from tests.service.conftest import RecordingReceiver, Site
-    from tests.shell.conftest import FhirEndpoint
 
 MakeSite = Callable[..., "Site"]
 
@@ -91,26 +91,27 @@ def test_a_file_a_crash_kept_from_the_archive_is_archived_not_called_a_duplicate
 
 
 def test_a_correction_goes_out_as_corrected_results(
-    make_site: MakeSite, receiver: RecordingReceiver, fhir_server: FhirEndpoint
+    make_site: MakeSite, receiver: RecordingReceiver, stand_in_fhir: FhirPeer
 ) -> None:
-    """New content for a test id already sent: HL7 OBX-11 C with a new MSH-10; FHIR status corrected, PUT."""
-    site = make_site(mllp_destination(receiver.port) + fhir_destination(fhir_server.url))
+    """New content for a test id already sent: HL7 OBX-11 C with a new MSH-10; FHIR status corrected, updated."""
+    site = make_site(mllp_destination(receiver.port) + fhir_destination(stand_in_fhir.url))
     site.start()
     drop(site.inbox, "first.json", make_input("CORR-0001", "FICT-8004"))
-    wait_until(lambda: len(receiver.accepted()) == 1 and len(fhir_server.bundles) == 1, "the original delivered")
+    wait_until(lambda: len(receiver.accepted()) == 1 and stand_in_fhir.bundles == 1, "the original delivered")
+    created = {r.reference for r in stand_in_fhir.store.all() if r.type == "Observation"}
     drop(site.inbox, "second.json", make_input("CORR-0001", "FICT-8004", change=0.1))
-    wait_until(lambda: len(receiver.accepted()) == 2 and len(fhir_server.bundles) == 2, "the correction delivered")
+    wait_until(lambda: len(receiver.accepted()) == 2 and stand_in_fhir.bundles == 2, "the correction delivered")
     original, correction = receiver.accepted()
-    observations = [
-        entry for entry in fhir_server.bundles[1]["entry"] if entry["resource"]["resourceType"] == "Observation"
-    ]
+    observations = [r for r in stand_in_fhir.store.all() if r.type == "Observation"]
 
     # source: HL7 v2.5.1 ch. 7, table 0085 observation result status (F final, C correction)
     assert {"F"} == set(original.statuses)
     assert {"C"} == set(correction.statuses)
     assert original.control_id != correction.control_id
-    # source: FHIR R4 ObservationStatus value set ("corrected"); RESTful update is PUT
-    assert {("corrected", "PUT")} == {(e["resource"]["status"], e["request"]["method"]) for e in observations}
+    # source: FHIR R4 ObservationStatus value set ("corrected"); http.html#cond-update: a conditional
+    # update of the one match updates that resource (its version 2), it creates none
+    assert created == {o.reference for o in observations}
+    assert {("corrected", 2)} == {(o.body["status"], o.version) for o in observations}
     assert 1 == site.summary().corrections
 
 

@@ -137,7 +137,7 @@ def test_a_misspelt_destination_key_stops_the_service_at_start(make_site: MakeSi
 
 
 def test_a_metrics_port_in_use_stops_the_service_at_start_in_one_line(make_site: MakeSite) -> None:
-    """The health/metrics port taken by another program: exit 1, one line naming metrics_port."""
+    """The health/metrics port taken by another program: exit 1, one line naming metrics_port and the port."""
     first = make_site(file_destination(), name="first")
     first.start()
     second = make_site(file_destination(), name="second")
@@ -150,7 +150,7 @@ def test_a_metrics_port_in_use_stops_the_service_at_start_in_one_line(make_site:
 
     assert 1 == refused.returncode
     assert [
-        f"dlco-bridge: metrics_port: a free port on 127.0.0.1, got {first.metrics_port} (Address already in use)"
+        f"dlco-bridge: metrics_port: a free port on 127.0.0.1 (port {first.metrics_port}: Address already in use)"
     ] == refused.stderr.splitlines()
 
 

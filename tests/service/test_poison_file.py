@@ -32,7 +32,7 @@ from bridge.service.settings import ServiceSettings
 from bridge.tables import Tables
 from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
-from tests.service.conftest import GOOD, drop, file_destination, make_input, mllp_destination, wait_until
+from tests.service.conftest import GOOD, drop, file_destination, make_input, mllp_destination, samples, wait_until
 
 if TYPE_CHECKING:
     from tests.service.conftest import RecordingReceiver, Site
@@ -179,9 +179,9 @@ def test_an_internal_error_quarantines_the_file_and_the_next_file_is_processed(
     assert "poison.json: internal error: ZeroDivisionError: no transfer factor for FICT-6630" == report["reason"]
     assert ["poison.json"] == [p.name for p in site.settings.quarantine.iterdir() if not p.name.endswith(".error.json")]
     assert (1, 1, 1, 1) == (
-        site.metrics.counts["files_failed_internal"],
-        site.metrics.counts["files_quarantined"],
-        site.metrics.counts["files_processed"],
+        site.metrics.registry.get_sample_value("dlco_bridge_files_failed_internal_total"),
+        site.metrics.registry.get_sample_value("dlco_bridge_files_quarantined_total"),
+        site.metrics.registry.get_sample_value("dlco_bridge_files_processed_total"),
         summary.quarantined,
     )
     assert (1, 1) == (summary.processed, summary.pending)
@@ -189,7 +189,7 @@ def test_an_internal_error_quarantines_the_file_and_the_next_file_is_processed(
     assert [("ERROR", "ZeroDivisionError (internal error) in test_poison_file.py")] == [
         (level, reason.partition(":")[0]) for level, reason in quarantine_lines(caplog)
     ]
-    assert "dlco_bridge_files_failed_internal_total 1" in site.metrics.render(summary)
+    assert 1 == samples(site.metrics.render(summary))["dlco_bridge_files_failed_internal_total"]
 
 
 def test_an_internal_error_is_logged_with_its_message_when_patient_data_may_be_logged(
@@ -218,7 +218,7 @@ def test_an_input_error_report_says_kind_input(in_process: Callable[..., InProce
         report["kind"],
         report["error"],
         report["field"],
-        site.metrics.counts["files_failed_internal"],
+        site.metrics.registry.get_sample_value("dlco_bridge_files_failed_internal_total"),
     )
 
 

@@ -6,6 +6,7 @@ import json
 import re
 import signal
 import socket
+import socketserver
 import subprocess
 import sys
 from collections.abc import Callable, Iterator
@@ -13,6 +14,7 @@ from pathlib import Path
 
 import pytest
 
+from bridge.service.loopback import LoopbackServer
 from bridge.service.receiver import MllpPeer, ResourceStore
 from tests.service.conftest import (
     GOOD,
@@ -230,7 +232,20 @@ def test_a_port_in_use_is_named_in_the_error(tmp_path: Path) -> None:
             capture_output=True, env=clean_environment(), text=True, timeout=60,
         )  # fmt: skip
 
-    assert (1, f"dlco-bridge: --mllp-port: a free port on 127.0.0.1, got {port} (Address already in use)\n") == (
+    assert (1, f"dlco-bridge: --mllp-port: a free port on 127.0.0.1 (port {port}: Address already in use)\n") == (
         done.returncode,
         done.stderr,
+    )
+
+
+def test_a_port_in_use_stops_the_stand_in_in_one_line_naming_its_option(tmp_path: Path) -> None:
+    """The FHIR port taken (the MLLP one free): exit 1, one line naming --fhir-port and the port; nothing left open."""
+    with LoopbackServer(socketserver.BaseRequestHandler) as taken:
+        mllp_port = free_port()
+        refused = cli("stand-in", "--folder", str(tmp_path / "s"),
+                      "--mllp-port", str(mllp_port), "--fhir-port", str(taken.port))  # fmt: skip
+
+    assert (1, [f"dlco-bridge: --fhir-port: a free port on 127.0.0.1 (port {taken.port}: Address already in use)"]) == (
+        refused.returncode,
+        refused.stderr.splitlines(),
     )

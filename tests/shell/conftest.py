@@ -2,6 +2,8 @@
 
 Both bind to 127.0.0.1 on a free port and run in a background thread. Nothing is
 patched: the transports under test talk to them over real sockets. All data is invented.
+The MLLP receiver is python-hl7's own asyncio server (an MLLP framing written outside this
+project); the FHIR endpoint, which must fail on demand, runs on the product's loopback server.
 """
 
 from __future__ import annotations
@@ -10,13 +12,14 @@ import asyncio
 import contextlib
 import json
 import shutil
+import socketserver
 import ssl
 import subprocess
 import threading
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import BaseHTTPRequestHandler
 from pathlib import Path
 from typing import Any
 
@@ -25,9 +28,15 @@ import pytest
 from hl7.mllp import HL7StreamReader, HL7StreamWriter, start_hl7_server  # type: ignore[import-untyped]
 
 from bridge.service.ledger import Ledger
+from bridge.service.loopback import LOOPBACK, LoopbackServer
 from bridge.service.receiver.fhir_peer import operation_outcome
 
-LOOPBACK = "127.0.0.1"
+
+def free_port() -> int:
+    """A loopback port nobody listens on right now (bound, read, released; never started)."""
+    probe = LoopbackServer(socketserver.BaseRequestHandler)
+    probe.stop()
+    return probe.port
 
 
 def oru(control_id: str, patient: str = "TEST-0001") -> bytes:
@@ -307,17 +316,9 @@ def _handler(endpoint: FhirEndpoint) -> type[BaseHTTPRequestHandler]:
 def serve_fhir() -> Iterator[FhirEndpoint]:
     """Run a loopback FHIR endpoint for the duration of the block (shared with tests/service)."""
     endpoint = FhirEndpoint()
-    server = ThreadingHTTPServer((LOOPBACK, 0), _handler(endpoint))
-    server.daemon_threads = True
-    endpoint.url = f"http://{LOOPBACK}:{server.server_address[1]}/fhir"
-    thread = threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    try:
+    with LoopbackServer(_handler(endpoint), name="test-fhir") as server:
+        endpoint.url = f"http://{LOOPBACK}:{server.port}/fhir"
         yield endpoint
-    finally:
-        server.shutdown()
-        server.server_close()
-        thread.join(timeout=2)
 
 
 @pytest.fixture

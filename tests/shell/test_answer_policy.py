@@ -3,11 +3,10 @@
 from __future__ import annotations
 
 import json
-import threading
 from collections.abc import Iterator
 from datetime import UTC, datetime
 from email.utils import format_datetime
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import BaseHTTPRequestHandler
 from pathlib import Path
 from typing import Any
 
@@ -17,6 +16,7 @@ from bridge.errors import DeliveryError, Rejected, RetryLater
 from bridge.service.delivery import Backoff, deliver_one
 from bridge.service.files import STRAY_TEMPORARY, remove_strays, write_atomically
 from bridge.service.ledger import Ledger, NewInput, NewMessage
+from bridge.service.loopback import LoopbackServer
 from bridge.service.transports.base import FHIR_JSON, DeliveryReceipt, OutgoingMessage
 from bridge.service.transports.fhir_rest import FhirRestTransport, retry_after
 from bridge.service.transports.mllp import Ack, judge
@@ -42,12 +42,9 @@ def busy_server() -> Iterator[dict[str, Any]]:
         def log_message(self, format: str, *args: Any) -> None:
             """Quiet."""
 
-    server = ThreadingHTTPServer((LOOPBACK, 0), Handler)
-    threading.Thread(target=server.serve_forever, args=(0.05,), daemon=True).start()
-    state["url"] = f"http://{LOOPBACK}:{server.server_address[1]}/fhir"
-    yield state
-    server.shutdown()
-    server.server_close()
+    with LoopbackServer(Handler, name="test-busy") as server:
+        state["url"] = f"http://{LOOPBACK}:{server.port}/fhir"
+        yield state
 
 
 def _message() -> OutgoingMessage:

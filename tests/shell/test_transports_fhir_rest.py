@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import socket
 from collections.abc import Callable
 from typing import TYPE_CHECKING
 
@@ -17,6 +16,7 @@ from bridge.errors import (
 )
 from bridge.service.transports.base import FHIR_JSON, HL7_V2_ER7, OutgoingMessage
 from bridge.service.transports.fhir_rest import FhirRestTransport, operation_outcome_text
+from tests.shell.conftest import free_port
 
 if TYPE_CHECKING:
     from tests.shell.conftest import FhirEndpoint
@@ -99,10 +99,7 @@ def test_slow_server_times_out(fhir_endpoint: FhirEndpoint, make_bundle: MakeBun
 
 def test_server_down_is_connect_failed(make_bundle: MakeBundle) -> None:
     """Nobody listening on the port is ConnectFailed."""
-    with socket.socket() as probe:
-        probe.bind(("127.0.0.1", 0))
-        port = probe.getsockname()[1]
-    transport = client(f"http://127.0.0.1:{port}/fhir")
+    transport = client(f"http://127.0.0.1:{free_port()}/fhir")
 
     with pytest.raises(ConnectFailed):
         transport.deliver(outgoing(make_bundle()))

@@ -12,11 +12,10 @@ from __future__ import annotations
 
 import base64
 import json
-import threading
 import urllib.parse
 from collections.abc import Iterator
 from dataclasses import dataclass, field
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import BaseHTTPRequestHandler
 from pathlib import Path
 from typing import Any
 
@@ -26,6 +25,7 @@ from cryptography.hazmat.primitives.asymmetric import ec, padding, rsa
 from cryptography.hazmat.primitives.asymmetric.utils import encode_dss_signature
 
 from bridge.errors import ConfigError, Rejected
+from bridge.service.loopback import LoopbackServer
 from bridge.service.transports.base import FHIR_JSON, OutgoingMessage
 from bridge.service.transports.fhir_rest import FhirRestTransport
 from bridge.service.transports.smart import SmartClient
@@ -144,17 +144,10 @@ def keyed(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[tuple[Auth
     )
     clock = Clock()
     server = AuthServer(key.public_key(), clock)
-    http = ThreadingHTTPServer((LOOPBACK, 0), _handler(server))
-    http.daemon_threads = True
-    base = f"http://{LOOPBACK}:{http.server_address[1]}"
-    server.token_url, server.fhir_url = base + "/token", base + "/fhir"
-    thread = threading.Thread(target=http.serve_forever, args=(0.05,), daemon=True)
-    thread.start()
-    try:
+    with LoopbackServer(_handler(server), name="test-smart") as http:
+        base = f"http://{LOOPBACK}:{http.port}"
+        server.token_url, server.fhir_url = base + "/token", base + "/fhir"
         yield server, _write_key(tmp_path, key), clock
-    finally:
-        http.shutdown()
-        http.server_close()
 
 
 def _transport(server: AuthServer, key: Path, clock: Clock) -> FhirRestTransport:

@@ -10,11 +10,10 @@ the MLLP framing, which it shares with the client.
 from dataclasses import dataclass
 from pathlib import Path
 
+from bridge.service.loopback import LOOPBACK
 from bridge.service.receiver.fhir_peer import FhirPeer
 from bridge.service.receiver.mllp_peer import ANSWERS, MllpPeer
 from bridge.service.receiver.store import ResourceStore, StoredResource
-
-LOOPBACK = "127.0.0.1"
 
 
 @dataclass(frozen=True, slots=True)

@@ -11,10 +11,10 @@ source: FHIR R4 http.html#transaction, #cond-update, #ccreate (If-None-Exist / i
 from __future__ import annotations
 
 import json
-import threading
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from http.server import BaseHTTPRequestHandler
 from typing import Any
 
+from bridge.service.loopback import LoopbackServer
 from bridge.service.receiver.store import ResourceStore
 
 MAX_BODY_BYTES = 20 * 1024 * 1024
@@ -76,26 +76,17 @@ def _resolved(resource: dict[str, Any], references: dict[str, str]) -> dict[str,
     return resolved
 
 
-class FhirPeer:
+class FhirPeer(LoopbackServer):
     """The FHIR endpoint on 127.0.0.1 in a background thread; the base URL is ``url``."""
 
     def __init__(self, store: ResourceStore, port: int = 0) -> None:
         self.store = store
         self.bundles = 0
-        self.server = ThreadingHTTPServer(("127.0.0.1", port), _handler(self))
-        self.server.daemon_threads = True
-        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.1,), name="stand-in-fhir", daemon=True)
+        super().__init__(_handler(self), port, setting="--fhir-port", name="stand-in-fhir")
 
     @property
     def url(self) -> str:
-        return f"http://127.0.0.1:{self.server.server_address[1]}/fhir"
-
-    def start(self) -> None:
-        self.thread.start()
-
-    def stop(self) -> None:
-        self.server.shutdown()
-        self.server.server_close()
+        return f"http://{self.host}:{self.port}/fhir"
 
 
 def operation_outcome(text: str) -> dict[str, Any]:

@@ -18,6 +18,7 @@ from bridge.hl7.ack import build_ack
 from bridge.hl7.mllp import FrameReader, frame
 from bridge.hl7.text import control_id_of
 from bridge.service.files import write_atomically
+from bridge.service.loopback import LoopbackServer
 from bridge.tables.files import load_hl7_tables
 
 # source: HL7 v2.5.1 ch. 2 table 0008, original mode (AA accept, AE error, AR reject): mappings/hl7_tables.toml
@@ -42,7 +43,7 @@ class _Listener(socketserver.ThreadingTCPServer):
     daemon_threads = True
 
 
-class MllpPeer:
+class MllpPeer(LoopbackServer):
     """An MLLP listener on 127.0.0.1 in a background thread; ``answer`` may be changed while it runs."""
 
     def __init__(self, folder: Path, port: int = 0, answer: str = "AA") -> None:
@@ -53,19 +54,7 @@ class MllpPeer:
         self.received = 0
         self._lock = threading.Lock()
         folder.mkdir(parents=True, exist_ok=True)
-        self.server = _Listener(("127.0.0.1", port), _handler(self))
-        self.thread = threading.Thread(target=self.server.serve_forever, args=(0.1,), name="stand-in-mllp", daemon=True)
-
-    @property
-    def port(self) -> int:
-        return int(self.server.server_address[1])
-
-    def start(self) -> None:
-        self.thread.start()
-
-    def stop(self) -> None:
-        self.server.shutdown()
-        self.server.server_close()
+        super().__init__(_handler(self), port, setting="--mllp-port", name="stand-in-mllp")
 
     def take(self, message: bytes) -> bytes:
         """Write one message and return the ACK to send."""
