@@ -219,7 +219,12 @@ def _service(tmp_path: Path, stable: float = 0.0) -> tuple[Service, Ledger]:
     settings = load_settings(config, {})
     (tmp_path / "in").mkdir()
     ledger = Ledger.open(tmp_path / "st" / "ledger.sqlite3")
-    return Service(settings, load_tables(), ledger, {"records": InMemoryTransport()}), ledger
+    tables = load_tables()
+    maps = load_map_choice(settings.field_map, settings.maps, tables)
+    service = Service(
+        settings.require_service(), settings.pipeline, maps, tables, ledger, {"records": InMemoryTransport()}
+    )
+    return service, ledger
 
 
 def test_the_service_takes_exports_from_inbox_sub_folders_and_leaves_the_rest_counted(tmp_path, caplog):
@@ -239,7 +244,8 @@ def test_the_service_takes_exports_from_inbox_sub_folders_and_leaves_the_rest_co
 
     assert (1, False, True) == (summary.processed, (inbox / "2026" / "03" / "deep.json").exists(),
                                 (inbox / "README.txt").exists())  # fmt: skip
-    assert (["README.txt"], 1) == ([r.file for r in skipped], service.metrics.counts["files_skipped"])
+    counted = service.metrics.registry.get_sample_value("dlco_bridge_files_skipped_total")
+    assert (["README.txt"], 1) == ([r.file for r in skipped], counted)
 
 
 # ---------- a missing place is an error, not a fresh folder (issue 19.6) ----------

@@ -21,6 +21,7 @@ from bridge.service.ledger import Ledger, NewInput, NewMessage
 from bridge.service.runner import Service
 from bridge.service.transports.base import HL7_V2_ER7, DeliveryReceipt, OutgoingMessage
 from bridge.service.watcher import Readiness
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
 from tests.service.conftest import drop, make_input, wait_until
 from tests.shell.conftest import Clock, oru
@@ -75,7 +76,16 @@ def running(root: Path, clock: SteppedClock, receiver: Switchable) -> Iterator[S
     (root / "out").mkdir(exist_ok=True)  # a file destination's folder must exist at start (issue 19.6)
     with Ledger.open(service_settings.ledger_path, now=clock) as ledger:
         # rand 0.9: every retry waits 0.9 x 8 s = 7.2 s, so a burst would stand out
-        service = Service(settings, load_tables(), ledger, {"records": receiver}, clock, lambda: 0.9)
+        service = Service(
+            service_settings,
+            settings.pipeline,
+            MapChoice(),
+            load_tables(),
+            ledger,
+            {"records": receiver},
+            clock,
+            lambda: 0.9,
+        )
         runner = threading.Thread(target=service.run)
         runner.start()
         try:

@@ -29,6 +29,7 @@ from bridge.service.ledger import Ledger
 from bridge.service.metrics import HealthServer
 from bridge.service.runner import Service
 from bridge.service.transports.file import FileTransport
+from bridge.tables.field_map_model import MapChoice
 from bridge.tables.files import load_tables
 from tests.service.conftest import MALFORMED, drop, make_input, samples, wait_until
 from tests.shell.conftest import LOOPBACK
@@ -125,7 +126,15 @@ class Running:
         with Ledger.open(self.settings.ledger_path, factory=factory) as ledger:
             self.ledger = ledger
             transports = {"drop": FileTransport(self.out, disk=self.disk)}
-            self.service = Service(self.full_settings, load_tables(), ledger, transports, disk=self.disk)
+            self.service = Service(
+                self.settings,
+                self.full_settings.pipeline,
+                MapChoice(),
+                load_tables(),
+                ledger,
+                transports,
+                disk=self.disk,
+            )
             self.service.health = HealthServer(
                 LOOPBACK, 0, self.service.metrics, ledger.summary, stale_after=30.0, space=self.service.space
             )
