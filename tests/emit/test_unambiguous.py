@@ -29,6 +29,7 @@ from bridge.pipeline import PipelineSettings, Route, process
 from bridge.tables import Tables
 from tests.conftest import GOOD_SAMPLES
 from tests.emit.test_hl7v2 import ALLOWED_WARNINGS
+from tests.emit.test_reference_outputs import _observations, _obx
 from tests.fhir_schema import bundle_errors, shared_validators
 
 SAMPLES = Path(__file__).resolve().parents[2] / "samples"
@@ -55,18 +56,6 @@ def _outputs(
     outcome = process(json.dumps(document).encode(), "variant.json", tables, settings, now=NOW, routes=routes)
     by_kind = {p.kind: p.data for p in outcome.payloads}
     return json.loads(by_kind["fhir"]), by_kind["hl7"].decode("utf-8")
-
-
-def _observations(bundle: dict[str, Any], code: str) -> list[dict[str, Any]]:
-    return [
-        e["resource"]
-        for e in bundle["entry"]
-        if e["resource"]["resourceType"] == "Observation" and e["resource"]["code"]["coding"][0]["code"] == code
-    ]
-
-
-def _obx(er7: str, code: str) -> list[Any]:
-    return [obx for obx in hl7.parse(er7).segments("OBX") if str(obx[3][0][0]) == code]
 
 
 def _notes_after(er7: str, code: str) -> list[str]:
