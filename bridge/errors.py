@@ -18,7 +18,8 @@ Each branch maps to exactly one action in the shell::
     │   ├── ConnectFailed
     │   ├── DeliveryTimeout
     │   └── Rejected          the receiver said no (NAK, HTTP 4xx): dead-letter, no retry
-    └── LedgerError           the state database is unusable: fatal
+    ├── LedgerError           the state database is unusable: fatal
+    └── ReconcileFailed       the receiving server could not be asked: reconcile stops, exit 2
 
 Clinical or data-quality problems are never exceptions: they are ``Finding`` values
 (see ``bridge.model``). Exceptions carry structured fields so that callers and reports use
@@ -158,3 +159,12 @@ class Rejected(DeliveryError):
 
 class LedgerError(BridgeError):
     """The state database cannot be used (locked by another service, corrupt, wrong schema)."""
+
+
+class ReconcileFailed(BridgeError):
+    """The receiving server could not be asked what it holds (refused, unreachable, unreadable): no conclusion."""
+
+    def __init__(self, destination: str, detail: str) -> None:
+        self.destination = destination
+        self.detail = detail
+        super().__init__(f"{destination}: {detail}")

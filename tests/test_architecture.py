@@ -35,9 +35,16 @@ CORE = (
     "audit/rows.py",
     "audit/reduce.py",
     "audit/stats.py",
+    "reconcile/__init__.py",
+    "reconcile/engine.py",
+    "reconcile/search.py",
+    "reconcile/bundles.py",
 )
 # The shell: I/O and wiring. The core imports none of it, at any depth.
-SHELL = ("cli", "config", "tables/files.py", "service", "audit/run.py", "audit/report.py", "audit/index.py")
+SHELL = (
+    "cli", "config", "tables/files.py", "service", "audit/run.py", "audit/report.py", "audit/index.py",
+    "reconcile/client.py", "reconcile/source.py", "reconcile/run.py", "reconcile/report.py",
+)  # fmt: skip
 # The public API's re-exports and ``python -m bridge``: neither core nor shell.
 ENTRY_POINTS = ("__init__.py", "__main__.py")
 

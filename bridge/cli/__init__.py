@@ -3,8 +3,8 @@
 Owns: ``main`` -- the settings object for the run through ``bridge.config`` (configuration file,
 environment, then the flags ``parser`` defines), the tables, and the command: ``files`` (check,
 convert, demo, show, schema, map check, audit) or ``service`` (watch, status, resend, prune,
-stand-in). Exit 0 when every input was read, 2 when one could not be (one line per bad input on
-stderr), 1 on a usage or setup error.
+stand-in) or ``reconcile``. Exit 0 when every input was read, 2 when one could not be (one line per
+bad input on stderr), 1 on a usage or setup error; ``reconcile`` says 0 complete, 1 gaps, 2 could not run.
 """
 
 from __future__ import annotations
@@ -16,6 +16,7 @@ from collections.abc import Sequence
 
 from bridge.cli.files import cmd_audit, cmd_check, cmd_convert, cmd_demo, cmd_map, cmd_schema, cmd_show, convert_files
 from bridge.cli.parser import EXIT_BAD_INPUT, EXIT_OK, EXIT_SETUP, build_parser, settings_of
+from bridge.cli.reconcile import EXIT_COULD_NOT_RUN, cmd_reconcile
 from bridge.cli.service import cmd_prune, cmd_resend, cmd_stand_in, cmd_status, cmd_watch
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG
 from bridge.errors import BridgeError, ConfigError
@@ -37,6 +38,7 @@ COMMANDS = {
     "schema": cmd_schema,
     "audit": cmd_audit,
     "map": cmd_map,
+    "reconcile": cmd_reconcile,
 }
 _NEEDS_CONFIG = ("watch", "status", "resend", "prune")
 
@@ -57,4 +59,5 @@ def main(argv: Sequence[str] | None = None) -> int:
             gc.unfreeze()
     except BridgeError as exc:
         print(f"dlco-bridge: {exc}", file=sys.stderr)
-        return EXIT_SETUP
+        # reconcile's exit codes say what it concluded: 2 when the check itself could not run
+        return EXIT_COULD_NOT_RUN if args.command == "reconcile" else EXIT_SETUP

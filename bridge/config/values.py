@@ -53,6 +53,13 @@ class ValueChecker:
             )
         return number
 
+    def count(self, key: str, value: Any, low: int = 1) -> int:
+        """A whole number of at least ``low`` (a TOML integer, or its text from the environment)."""
+        number = self.number(key, value)
+        if number != int(number) or number < low:
+            raise self.fail(key, f"a whole number >= {low}, got {value!r}")
+        return int(number)
+
     def port(self, key: str, value: Any, allow_zero: bool) -> int:
         number = self.number(key, value)
         if number != int(number) or not (0 if allow_zero else 1) <= number <= 65535:
