@@ -227,7 +227,8 @@ class _Terminal:
         self.shown = 0
 
     def start(self, checked: Checked) -> None:
-        print(f"{checked.name} ({checked.kind}, {checked.address}): checking", flush=True)
+        doing = "a folder: nothing to ask" if checked.kind == "file" else "checking"
+        print(f"{checked.name} ({checked.kind}, {checked.address}): {doing}", flush=True)
 
     def add(self, verdict: Verdict) -> None:
         self.writer.add(verdict)
@@ -239,7 +240,8 @@ class _Terminal:
         if summary["gaps"] > self.shown:
             print(f"  ... {summary['gaps'] - self.shown} more gap(s): --report DIR lists them all")
         for d in summary["destinations"]:
-            said = ", ".join(f"{n} {LABELS[name]}" for name, n in d["counts"].items()) or "nothing sent"
+            nothing = "not checked" if d["kind"] == "file" else "nothing sent"
+            said = ", ".join(f"{n} {LABELS[name]}" for name, n in d["counts"].items()) or nothing
             print(f"{d['name']}: {said}")
         for note in summary["notes"]:
             print(f"note: {note}")
