@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import argparse
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import asdict, replace
 from datetime import UTC, datetime
 from typing import Any
@@ -27,6 +29,7 @@ from bridge.reconcile.run import Checked, Gaps, Resent, check_fhir, check_hl7, c
 from bridge.reconcile.source import acknowledgements, expected_from_ledger, expected_from_outcomes
 from bridge.service.ledger import Ledger
 from bridge.service.settings import Destination
+from bridge.service.transports.fhir_rest import FhirRestTransport
 from bridge.tables import Tables
 
 EXIT_GAPS = 1
@@ -124,20 +127,16 @@ def _migration(
     return [checked], notes
 
 
-class _client:  # a context manager read as a function
+@contextmanager
+def _client(destination: Destination, in_flight: int | None) -> Iterator[SearchClient]:
     """The destination's transport (its pool, TLS, timeouts and token) lent to a SearchClient, closed after."""
-
-    def __init__(self, destination: Destination, in_flight: int | None) -> None:
-        self.transport: Any = build_transport(destination)
-        self.client = SearchClient(
-            self.transport, destination.name, in_flight=in_flight or destination.reconcile_in_flight
-        )
-
-    def __enter__(self) -> SearchClient:
-        return self.client
-
-    def __exit__(self, *exc: object) -> None:
-        self.transport.close()
+    transport = build_transport(destination)
+    try:
+        if not isinstance(transport, FhirRestTransport):
+            raise ConfigError(f"destination.{destination.name}.transport", "fhir-rest, to be asked what it holds")
+        yield SearchClient(transport, destination.name, in_flight=in_flight or destination.reconcile_in_flight)
+    finally:
+        transport.close()
 
 
 def _target(settings: Settings, base_url: str, units: str | None) -> Destination:

@@ -17,7 +17,7 @@ import time
 from collections import deque
 from collections.abc import Callable, Iterable, Iterator
 from concurrent.futures import Future, ThreadPoolExecutor
-from typing import Any
+from typing import Any, Protocol
 
 import httpx
 import orjson
@@ -33,12 +33,21 @@ MAX_WAIT = 120.0  # a longer Retry-After stops the check: run it again when the 
 MAX_PAGES = 10_000  # pages of one search: more is a server that loops
 
 
+class SearchTransport(Protocol):
+    """What a search needs of the destination's transport (:class:`FhirRestTransport` is one)."""
+
+    @property
+    def url(self) -> httpx.URL: ...
+
+    def get(self, url: str, destination: str) -> httpx.Response: ...
+
+
 class SearchClient:
     """Searches one FHIR server through its transport; ``in_flight`` searches at a time."""
 
     def __init__(
         self,
-        transport: Any,  # FhirRestTransport: get(url, destination) -> httpx.Response, url
+        transport: SearchTransport,
         destination: str,
         *,
         in_flight: int,
@@ -80,9 +89,12 @@ class SearchClient:
         url = f"{self.base}/{query}"
         for _ in range(MAX_PAGES):
             bundle = self._read(url)
-            yield [e["resource"] for e in bundle.get("entry") or [] if isinstance(e, dict) and "resource" in e]
+            resources = [e["resource"] for e in bundle.get("entry") or [] if isinstance(e, dict) and "resource" in e]
             following = next((link.get("url") for link in bundle.get("link") or []
                               if isinstance(link, dict) and link.get("relation") == "next"), None)  # fmt: skip
+            del bundle  # one page in memory at a time: this one goes before the next is read
+            yield resources
+            resources = []
             if not following:
                 return
             url = self._same_server(str(following), url)
@@ -114,7 +126,7 @@ class SearchClient:
         for attempt in range(1, MAX_ATTEMPTS + 1):
             self.requests += 1
             try:
-                response: httpx.Response = self.transport.get(url, self.destination)
+                response = self.transport.get(url, self.destination)
             except DeliveryError as exc:
                 why, wait = exc.detail, None
             else:

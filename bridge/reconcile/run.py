@@ -21,7 +21,7 @@ from pathlib import Path
 from bridge.errors import InputError
 from bridge.reconcile.bundles import Key, parse_bundle, resend_bundle
 from bridge.reconcile.client import SearchClient
-from bridge.reconcile.engine import Expected, Tally, Verdict, unexpected
+from bridge.reconcile.engine import ExpectedResource, Tally, Verdict, unexpected
 from bridge.reconcile.search import batches
 from bridge.service.ledger import Ledger, NewMessage
 
@@ -70,7 +70,7 @@ class Resent:
 
 def check_fhir(
     checked: Checked,
-    expected: Iterable[Expected | Verdict | InputError],
+    expected: Iterable[ExpectedResource | Verdict | InputError],
     client: SearchClient,
     sink: Sink,
     *,
@@ -87,7 +87,7 @@ def check_fhir(
     with tempfile.TemporaryDirectory(prefix="dlco-bridge-reconcile-") as scratch, _Seen(Path(scratch)) as seen:
         found_systems = set(systems)
 
-        def fresh() -> Iterator[Expected]:
+        def fresh() -> Iterator[ExpectedResource]:
             for item in expected:
                 if isinstance(item, Verdict):
                     tell(item)
@@ -179,7 +179,7 @@ class _Seen:
     def __exit__(self, *exc: object) -> None:
         self._conn.close()
 
-    def first(self, item: Expected) -> bool:
+    def first(self, item: ExpectedResource) -> bool:
         """Whether ``item``'s identifier is met for the first time (it is remembered)."""
         cursor = self._conn.execute(
             "INSERT OR IGNORE INTO seen VALUES (?, ?, ?)",

@@ -35,6 +35,7 @@ SEARCH_PARAMETER = MappingProxyType(
 MAX_QUERY_CHARS = 6000
 MAX_PER_BATCH = 100  # identifiers in one OR-list, whatever their length
 MAX_COUNT = 1000  # the page size asked for (a server may give fewer; "next" brings the rest)
+SCAN_COUNT = 500  # the page size of a whole system's scan: one page's resources are in memory at a time
 
 
 @dataclass(frozen=True, slots=True)
@@ -54,7 +55,7 @@ class Batch:
 
 def whole_system(resource_type: str, system: str) -> str:
     """The query of every ``resource_type`` held under the identifier ``system`` (``system|``)."""
-    return f"{resource_type}?{SEARCH_PARAMETER[resource_type]}={token_part(system)}|&_count={MAX_COUNT}"
+    return f"{resource_type}?{SEARCH_PARAMETER[resource_type]}={token_part(system)}|&_count={SCAN_COUNT}"
 
 
 def batches(expected: Iterable[ExpectedResource], limit: int = MAX_QUERY_CHARS) -> Iterator[Batch]:

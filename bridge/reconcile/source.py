@@ -18,7 +18,7 @@ from bridge.reconcile.bundles import expected_from_bundle, parse_bundle
 from bridge.reconcile.engine import Expected, Verdict
 from bridge.service.ledger import Ledger, OutboxRow
 
-PAGE = 200  # outbox rows (with their payloads) read at a time
+PAGE = 50  # outbox rows (with their payloads, some 50-70 kB each) read at a time
 
 
 def expected_from_ledger(ledger: Ledger, destination: str, since: float | None) -> Iterator[Expected | Verdict]:

@@ -181,8 +181,10 @@ class OutboxLedger(Database):
         What ``reconcile`` checks: a correction replaces the row before it. Paged, so that a caller
         holds one page of payloads at a time.
         """
+        # "+o.destination": walk the ids from after_id (the rowid), not the destination's index, which
+        # would sort every row of the destination again for each page (quadratic over a large feed).
         found = self._all(
-            f"SELECT {_OUTBOX_COLUMNS} FROM outbox AS o WHERE o.destination = ? AND o.id > ? "
+            f"SELECT {_OUTBOX_COLUMNS} FROM outbox AS o WHERE +o.destination = ? AND o.id > ? "
             "AND (? = 0 OR o.state = 'delivered') AND coalesce(o.delivered_at, o.created_at) >= ? "
             "AND NOT EXISTS (SELECT 1 FROM outbox AS l WHERE l.test_id = o.test_id "
             "AND l.destination = o.destination AND l.id > o.id AND (? = 0 OR l.state = 'delivered')) "
