@@ -10,7 +10,7 @@ a service ledger as delivered, as ``watch`` would have left them. Both files liv
 
 Measured: the stand-in runs as its own process (``dlco-bridge stand-in``, as a user runs it); then
 ``dlco-bridge reconcile --config ... --report DIR`` as a subprocess, timed by the wall clock from
-start to exit, its peak RSS from ``getrusage(RUSAGE_CHILDREN)`` (a fresh child each run). It must
+start to exit, its RSS and its high-water mark read from ``/proc`` every 0.05 s. It must
 find every resource present and equal (exit 0) and look for unexpected ones. The same is done
 for ``--small`` sessions: the peak memory of the two runs is compared (flat: within a few MB,
 however many sessions). The floor: the same searches fetched with the same HTTP client, one
@@ -102,10 +102,13 @@ def stand_in(folder: Path, fhir_port: int) -> subprocess.Popen[str]:
 
 
 def reconcile(config: Path, report: Path, in_flight: int) -> dict[str, Any]:
-    """One ``dlco-bridge reconcile`` subprocess: wall time, exit code, its RSS every 0.25 s and its own peak
-    (from wait4)."""
+    """One ``dlco-bridge reconcile`` subprocess: wall time, exit code, its RSS every 0.05 s and its peak.
+
+    The peak is the child's own high-water mark (``VmHWM``), read until it exits: ``wait4``'s
+    ``ru_maxrss`` would count the pages of this (large) process that the child had before its exec.
+    """
     log = report.parent / "reconcile.log"
-    samples: list[tuple[float, float]] = []
+    samples: list[tuple[float, float, float]] = []
     started = time.perf_counter()
     with log.open("w") as out:
         child = subprocess.Popen(
@@ -113,30 +116,27 @@ def reconcile(config: Path, report: Path, in_flight: int) -> dict[str, Any]:
              "--in-flight", str(in_flight)],
             stdout=out, stderr=subprocess.STDOUT,
         )  # fmt: skip
-        while True:
-            pid, status, usage = os.wait4(child.pid, os.WNOHANG)
-            if pid:
-                break
-            rss = _rss_mb(child.pid)
-            if rss is not None:
-                samples.append((time.perf_counter() - started, rss))
-            time.sleep(0.25)
+        while child.poll() is None:
+            memory = _memory_mb(child.pid)
+            if memory is not None:
+                samples.append((time.perf_counter() - started, *memory))
+            time.sleep(0.05)
     seconds = time.perf_counter() - started
-    child.returncode = os.waitstatus_to_exitcode(status)
     summary = json.loads((report / "summary.json").read_text()) if (report / "summary.json").exists() else {}
     quarters = [samples[min(len(samples) - 1, len(samples) * q // 4)][1] for q in (1, 2, 3, 4)] if samples else []
-    peak, output = round(usage.ru_maxrss / 1024, 1), log.read_text()[-400:]
+    peak, output = round(max((s[2] for s in samples), default=0.0), 1), log.read_text()[-400:]
     return {"seconds": round(seconds, 2), "exit": child.returncode, "peak_rss_mb": peak,
-            "rss_at_quarters_mb": quarters, "counts": summary.get("counts"), "output": output}  # fmt: skip
+            "rss_at_quarters_mb": [round(q, 1) for q in quarters], "counts": summary.get("counts"),
+            "output": output}  # fmt: skip
 
 
-def _rss_mb(pid: int) -> float | None:
+def _memory_mb(pid: int) -> tuple[float, float] | None:
+    """(VmRSS, VmHWM) of a live process in MB; None once it is gone."""
     try:
-        status = Path(f"/proc/{pid}/status").read_text()
-    except OSError:
+        fields = dict(line.split(":", 1) for line in Path(f"/proc/{pid}/status").read_text().splitlines())
+        return int(fields["VmRSS"].split()[0]) / 1024, int(fields["VmHWM"].split()[0]) / 1024
+    except (OSError, KeyError, ValueError):
         return None
-    line = next((line for line in status.splitlines() if line.startswith("VmRSS:")), None)
-    return None if line is None else int(line.split()[1]) / 1024
 
 
 def floor(config: Path, sessions: int, fhir_port: int) -> float:

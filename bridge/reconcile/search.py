@@ -35,7 +35,7 @@ SEARCH_PARAMETER = MappingProxyType(
 MAX_QUERY_CHARS = 6000
 MAX_PER_BATCH = 100  # identifiers in one OR-list, whatever their length
 MAX_COUNT = 1000  # the page size asked for (a server may give fewer; "next" brings the rest)
-SCAN_COUNT = 500  # the page size of a whole system's scan: one page's resources are in memory at a time
+SCAN_COUNT = 100  # the page size of a whole system's scan: small answers keep the memory of a long scan flat
 
 
 @dataclass(frozen=True, slots=True)
