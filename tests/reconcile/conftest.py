@@ -80,11 +80,11 @@ class Feed:
         return [r.body["identifier"][0]["value"] for r in self.store.all() if r.type == "Observation"]
 
 
-def write_config(root: Path, fhir_url: str, mllp_port: int, extra: str = "") -> Path:
+def write_config(root: Path, fhir_url: str, mllp_port: int, extra: str = "", emit: str = "") -> Path:
     config = root / "bridge.toml"
     config.write_text(
         'inbox = "inbox"\narchive = "archive"\nquarantine = "quarantine"\nstate = "state"\n'
-        '[emit]\nsystem_base = "https://fenwick-hollow.example/dlco-bridge"\n'
+        f'[emit]\nsystem_base = "https://fenwick-hollow.example/dlco-bridge"\n{emit}'
         f'[destination.records]\npayload = "hl7"\nunits = "traditional"\ntransport = "mllp"\nport = {mllp_port}\n'
         f'[destination.fhir-store]\npayload = "fhir"\nunits = "si"\ntransport = "fhir-rest"\nbase_url = "{fhir_url}"\n'
         + extra
@@ -99,14 +99,14 @@ def make_feed(tmp_path: Path) -> Iterator[object]:
     """Build a :class:`Feed` of ``count`` sessions (the samples in turn), delivered."""
     made: list[Feed] = []
 
-    def make(count: int, extra: str = "") -> Feed:
+    def make(count: int, extra: str = "", emit: str = "") -> Feed:
         root = tmp_path / f"site{len(made)}"
         root.mkdir()
         store = ResourceStore(root / "stand-in" / "resources.sqlite3")
         fhir, mllp = FhirPeer(store), MllpPeer(root / "stand-in" / "messages")
         fhir.start()
         mllp.start()
-        config = write_config(root, fhir.url, mllp.port, extra)
+        config = write_config(root, fhir.url, mllp.port, extra, emit)
         settings = load_settings(config, {})
         ledger = Ledger.open(settings.require_service().ledger_path)
         feed = Feed(root, store, fhir, mllp, config, settings, ledger)

@@ -81,6 +81,21 @@ def test_lost_altered_duplicated_withdrawn_and_extra_are_reported_exactly(make_f
     assert 7 == summary["gaps"]
 
 
+def test_a_patient_the_bundles_create_is_expected_once_and_found_by_identifier(make_feed: Any):
+    """patient_reference = conditional-create: two sessions of one patient expect the Patient once; lost, missing."""
+    feed = make_feed(2, emit='patient_reference = "conditional-create"\n')
+    feed.send(session(SENT[2], 2).replace(b"FICT-RC0002", b"FICT-RC0000"), "rc-0002.json")  # RC-0000's patient
+    patients = [r for r in feed.store.all() if r.type == "Patient"]
+
+    complete = feed.reconcile("--destination", "fhir-store")
+    _plant(feed, "--lose", "FICT-RC0000")
+    code, rows, _ = feed.reconcile("--destination", "fhir-store")
+
+    # source: FHIR R4 http.html#ccreate: a second conditional create of the same identifier creates nothing
+    assert (2, 0) == (len(patients), complete[0])
+    assert (1, {("missing", "FICT-RC0000")}) == (code, _gaps(rows))
+
+
 def test_a_correction_whose_old_content_came_back_is_superseded(make_feed: Any):
     """The server holds the pre-correction body again (an older interface overwrote it): superseded, not different."""
     feed = make_feed(1)
