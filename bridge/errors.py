@@ -21,7 +21,8 @@ Each branch maps to exactly one action in the shell::
     │   ├── RetryLater        the receiver asked for a later try (429/503, Retry-After): retry not before then
     │   └── Rejected          the receiver said no (NAK, HTTP 4xx): dead-letter, no retry
     ├── DiskFull              no space for the ledger, archive or quarantine: pause, resume when space returns
-    └── LedgerError           the state database is unusable: fatal
+    ├── LedgerError           the state database is unusable: fatal
+    └── ReconcileFailed       the receiving server could not be asked: reconcile stops, exit 2
 
 Clinical or data-quality problems are never exceptions: they are ``Finding`` values
 (see ``bridge.model``). Exceptions carry structured fields so that callers and reports use
@@ -192,3 +193,12 @@ class DiskFull(BridgeError):
         self.folder = folder
         self.detail = detail
         super().__init__(f"{folder}: no space left for the {where} ({detail})")
+
+
+class ReconcileFailed(BridgeError):
+    """The receiving server could not be asked what it holds (refused, unreachable, unreadable): no conclusion."""
+
+    def __init__(self, destination: str, detail: str) -> None:
+        self.destination = destination
+        self.detail = detail
+        super().__init__(f"{destination}: {detail}")

@@ -30,10 +30,12 @@ LAYERS: tuple[tuple[str, tuple[str, ...]], ...] = (
     ("display", ("display",)),
     ("pipeline", ("pipeline.py",)),
     ("audit core", ("audit/__init__.py", "audit/rows.py", "audit/reduce.py", "audit/stats.py")),
+    ("reconcile core", ("reconcile/__init__.py", "reconcile/engine.py", "reconcile/search.py", "reconcile/bundles.py")),
     ("loading", ("tables/files.py", "inputs.py")),
     ("service", ("service",)),
     ("config", ("config",)),
     ("audit shell", ("audit/run.py", "audit/report.py", "audit/page.py", "audit/index.py")),
+    ("reconcile shell", ("reconcile/client.py", "reconcile/source.py", "reconcile/run.py", "reconcile/report.py")),
     ("cli", ("cli",)),
     ("entry points", ("__init__.py", "__main__.py")),
 )

@@ -3,8 +3,8 @@
 Owns: ``main`` -- the settings object for the run through ``bridge.config`` (configuration file,
 environment, then the flags ``parser`` defines), the tables, and the command: ``files`` (check,
 convert, demo, show, schema, map check, audit) or ``service`` (watch, status, resend, prune,
-stand-in). Exit 0 when every input was read, 2 when one could not be (one line per bad input on
-stderr), 1 on a usage or setup error.
+stand-in) or ``reconcile``. Exit 0 when every input was read, 2 when one could not be (one line per
+bad input on stderr), 1 on a usage or setup error; ``reconcile`` says 0 complete, 1 gaps, 2 could not run.
 """
 
 from __future__ import annotations
@@ -27,6 +27,7 @@ from bridge.cli.parser import (
     build_parser,
     settings_of,
 )
+from bridge.cli.reconcile import EXIT_COULD_NOT_RUN, cmd_reconcile
 from bridge.cli.service import cmd_prune, cmd_resend, cmd_stand_in, cmd_status, cmd_watch
 from bridge.config import CONFIG_ENV, SAMPLE_CONFIG
 from bridge.errors import BridgeError, ConfigError
@@ -48,6 +49,7 @@ COMMANDS = {
     "schema": cmd_schema,
     "audit": cmd_audit,
     "map": cmd_map,
+    "reconcile": cmd_reconcile,
 }
 _NEEDS_CONFIG = ("watch", "status", "resend", "prune")
 
@@ -86,13 +88,14 @@ def _run(args: argparse.Namespace) -> int:
             gc.unfreeze()
     except BridgeError as exc:
         print(f"dlco-bridge: {exc}", file=sys.stderr)
-        return EXIT_SETUP
+        # reconcile's exit codes say what it concluded: 2 when the check itself could not run
+        return EXIT_COULD_NOT_RUN if args.command == "reconcile" else EXIT_SETUP
     except BrokenPipeError:
         raise
     except OSError as exc:  # the file system or the network refused something: not a defect, one line
         where = f"{exc.filename}: " if exc.filename else ""
         print(f"dlco-bridge: {where}{exc.strerror or exc}", file=sys.stderr)
-        return EXIT_SETUP
+        return EXIT_COULD_NOT_RUN if args.command == "reconcile" else EXIT_SETUP
 
 
 def _silence_stdout() -> None:

@@ -13,7 +13,7 @@ from bridge.emit.settings import CHARTED_PREDICTED
 from bridge.inputs import FOLDER_RULE
 from bridge.science.compared import REFERENCE_BASES
 from bridge.service.receiver import ANSWERS, StandInSettings
-from bridge.service.settings import ServiceSettings
+from bridge.service.settings import Destination, ServiceSettings
 from bridge.tables.files import repeatability_criteria
 from bridge.version import __version__
 
@@ -248,7 +248,56 @@ def build_parser() -> argparse.ArgumentParser:
     which.add_argument("--rejected", action="store_true", help="every dead-lettered message")
     _add_prune(commands, config_help)
     _add_stand_in(commands)
+    _add_reconcile(commands)
     return parser
+
+
+def _add_reconcile(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
+    in_flight = Destination("", "fhir", "si", "fhir-rest").reconcile_in_flight
+    reconcile = commands.add_parser(
+        "reconcile",
+        help="ask the receiving FHIR server whether it holds exactly what was sent",
+        description="After a feed (--config bridge.toml): every result the ledger delivered to each destination. "
+        "After a migration (PATH... --fhir-base URL): every session the pipeline would send. Each expected "
+        "resource is found by identifier and called present, missing, different, duplicated, superseded or "
+        "withdrawn; held resources nothing sent explains are unexpected; HL7 v2 destinations list their ACKs. "
+        "Exit 0 when everything is present and equal, 1 when there are gaps, 2 when the check could not run "
+        "(docs/reconcile.md).",
+    )
+    reconcile.add_argument(
+        "paths", nargs="*", type=Path, help="migration form: export files or folders (what the pipeline would send)"
+    )
+    reconcile.add_argument("--fhir-base", metavar="URL", help="migration form: the target FHIR server's base URL")
+    reconcile.add_argument(
+        "--destination", action="append", metavar="NAME", help="feed form: only this destination (repeat; default all)"
+    )
+    reconcile.add_argument(
+        "--since",
+        metavar="DATE",
+        help="feed form: only what was sent since DATE (YYYY-MM-DD, UTC; or a date-time "
+        "with offset); default everything the ledger holds",
+    )
+    reconcile.add_argument("--report", type=Path, metavar="DIR", help="write reconcile.csv, summary.json, report.html")
+    reconcile.add_argument(
+        "--resend",
+        action="store_true",
+        help="feed form: queue the missing results again and the different ones as conditional updates, through "
+        "the outbox (the service delivers them); duplicates are left for a person",
+    )
+    reconcile.add_argument(
+        "--in-flight",
+        type=_positive,
+        metavar="N",
+        help=f"searches at once (key destination.NAME.reconcile_in_flight; default {in_flight})",
+    )
+    _add_settings(reconcile, emits=True)
+
+
+def _positive(text: str) -> int:
+    value = int(text)
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"at least 1, got {value}")
+    return value
 
 
 def _add_stand_in(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
@@ -280,6 +329,21 @@ def _add_stand_in(commands: argparse._SubParsersAction[argparse.ArgumentParser])
         help=f"MSA-1 of every ACK: AA accepts, AE and AR rehearse refusals (default {defaults.answer})",
     )
     stand_in.add_argument("--list", action="store_true", help="list the FHIR resources kept in FOLDER, then exit")
+    damage = {
+        "lose": "forget the resources found by this identifier value",
+        "alter": "change their value by one in its last digit (a resource without a value: status amended)",
+        "withdraw": "mark them entered-in-error",
+        "duplicate": "store a second copy of each",
+        "extra": "store a copy under the identifier value VALUE-extra (never sent)",
+    }
+    for kind, what in damage.items():
+        stand_in.add_argument(
+            f"--{kind}",
+            action="append",
+            metavar="VALUE",
+            help=f"rehearse a receiver's damage for reconcile: {what}, in FOLDER, then exit (repeat; "
+            "VALUE: an identifier value, or a Provenance's sha256:...)",
+        )
 
 
 def _add_prune(commands: argparse._SubParsersAction[argparse.ArgumentParser], config_help: str) -> None:

@@ -18,6 +18,7 @@ from bridge.errors import ConfigError
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
 from bridge.service.receiver import FhirPeer, MllpPeer, ResourceStore, StandInSettings
+from bridge.service.receiver.damage import KINDS, plant
 from bridge.service.runner import Service, check_folders
 from bridge.service.settings import Destination
 from bridge.service.transports.base import TlsOptions, Transport
@@ -182,6 +183,8 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
     where = StandInSettings(args.folder, args.mllp_port, args.fhir_port, args.answer)
     if args.list:
         return _list_stand_in(where)
+    if any(getattr(args, kind) for kind in KINDS):
+        return _damage_stand_in(where, args)
     for key, port in (("--mllp-port", where.mllp_port), ("--fhir-port", where.fhir_port)):
         if not 0 <= port <= 65535:
             raise ConfigError(key, f"a port number 0-65535, got {port}")
@@ -219,6 +222,25 @@ def cmd_stand_in(args: argparse.Namespace, settings: Settings, tables: Tables) -
 def _port_taken(flag: str, port: int, exc: OSError) -> ConfigError:
     """One line naming the flag and the port that could not be bound."""
     return ConfigError(flag, f"a free port on 127.0.0.1, got {port} ({exc.strerror or exc})")
+
+
+def _damage_stand_in(where: StandInSettings, args: argparse.Namespace) -> int:
+    """``--lose``, ``--alter``, ``--withdraw``, ``--duplicate``, ``--extra``: damage planted for reconcile."""
+    if not where.resources.exists():
+        print(f"{where.resources}: (file): resources kept by dlco-bridge stand-in, found none", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    store = ResourceStore(where.resources)
+    try:
+        for kind in KINDS:
+            for value in getattr(args, kind) or ():
+                for line in plant(store, kind, value):
+                    print(line)
+    except LookupError as exc:
+        print(f"{where.resources}: {exc}", file=sys.stderr)
+        return EXIT_BAD_INPUT
+    finally:
+        store.close()
+    return EXIT_OK
 
 
 def _list_stand_in(where: StandInSettings) -> int:

@@ -292,6 +292,10 @@ class SettingsReader(ValueChecker):
             key_file=self.path(f"{where}.key_file", v["key_file"]) if "key_file" in v else None,
             connect_timeout=self.number(f"{where}.connect_timeout", v.get("connect_timeout", 10.0), 0.01),
             read_timeout=self.number(f"{where}.read_timeout", v.get("read_timeout", 30.0), 0.01),
+            reconcile_in_flight=self.count(
+                f"{where}.reconcile_in_flight",
+                v.get("reconcile_in_flight", _default(Destination, "reconcile_in_flight")),
+            ),
             **self.answers(where, v),
             **self.smart(where, v),
         )

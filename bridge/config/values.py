@@ -73,6 +73,10 @@ class ValueChecker:
             raise self.fail(key, f"a whole number from {low} to {high}, got {value!r}")
         return int(number)
 
+    def count(self, key: str, value: Any, low: int = 1, high: int = 1_000) -> int:
+        """A whole number of things from ``low`` to ``high`` (a TOML integer, or its text from the environment)."""
+        return self.whole(key, value, low, high)
+
     def port(self, key: str, value: Any, allow_zero: bool) -> int:
         number = self.number(key, value)
         if number != int(number) or not (0 if allow_zero else 1) <= number <= 65535:

@@ -47,6 +47,7 @@ class Destination:
     token_url: str = ""
     private_key_file: Path | None = None  # PEM, RSA (RS384) or EC P-384 (ES384)
     scopes: str = "system/*.write"
+    reconcile_in_flight: int = 4  # fhir-rest: searches reconcile runs at once against this server
 
     @property
     def address(self) -> str:

@@ -210,6 +210,58 @@ class OutboxLedger(Database):
                 _log_attempt(conn, outbox_id, now, "requeued", "")
             return len(ids)
 
+    def latest_per_test(
+        self, destination: str, *, since: float = 0.0, delivered_only: bool, after_id: int = 0, limit: int = 200
+    ) -> list[OutboxRow]:
+        """One page of the latest row per test id of ``destination`` (the latest delivered one with
+        ``delivered_only``), sent or queued at ``since`` or later, in id order after ``after_id``.
+
+        What ``reconcile`` checks: a correction replaces the row before it. Paged, so that a caller
+        holds one page of payloads at a time.
+        """
+        # "+o.destination": walk the ids from after_id (the rowid), not the destination's index, which
+        # would sort every row of the destination again for each page (quadratic over a large feed).
+        found = self._all(
+            f"SELECT {_OUTBOX_COLUMNS} FROM outbox AS o WHERE +o.destination = ? AND o.id > ? "
+            "AND (? = 0 OR o.state = 'delivered') AND coalesce(o.delivered_at, o.created_at) >= ? "
+            "AND NOT EXISTS (SELECT 1 FROM outbox AS l WHERE l.test_id = o.test_id "
+            "AND l.destination = o.destination AND l.id > o.id AND (? = 0 OR l.state = 'delivered')) "
+            "ORDER BY o.id LIMIT ?",
+            (destination, after_id, int(delivered_only), since, int(delivered_only), limit),
+        )
+        return [_outbox(row) for row in found]
+
+    def delivered_message(self, destination: str, message_id: str) -> OutboxRow | None:
+        """The latest delivered row of ``destination`` with this message id (what ``reconcile --resend`` rebuilds)."""
+        row = self._one(
+            f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE destination = ? AND message_id = ? AND state = 'delivered' "
+            "ORDER BY id DESC LIMIT 1",
+            (destination, message_id),
+        )
+        return None if row is None else _outbox(row)
+
+    def enqueue_again(self, message: NewMessage, input_sha256: str) -> tuple[int, str]:
+        """Queue ``message`` for the input of an earlier one (``reconcile --resend``), once.
+
+        The same destination, message id and content queued before is not added again: a pending
+        row stays as it is ("pending"), a delivered or rejected one is made pending again
+        ("requeued"); otherwise a new row ("queued"). The row id and which of the three.
+        """
+        content = message.content_hash()
+        with self._write() as conn:
+            now = self._now()
+            row = conn.execute(
+                "SELECT id, state FROM outbox WHERE destination = ? AND message_id = ? AND content_sha256 = ?",
+                (message.destination, message.message_id, content),
+            ).fetchone()
+            if row is None:
+                return enqueue(conn, message, input_sha256, now), "queued"
+            if row["state"] == "pending":
+                return int(row["id"]), "pending"
+            conn.execute("UPDATE outbox SET state = 'pending', next_attempt_at = ? WHERE id = ?", (now, row["id"]))
+            _log_attempt(conn, int(row["id"]), now, "requeued", "reconcile --resend")
+            return int(row["id"]), "requeued"
+
     def history(self, outbox_id: int) -> list[Attempt]:
         """Every attempt and operator action on one outbox row, oldest first."""
         rows = self._all(

@@ -4,17 +4,23 @@ Owns answering ``POST [base]`` with a transaction Bundle: each entry ``POST Type
 ``ifNoneExist`` creates the resource unless one was created with the same search (then 200 and
 nothing new), and ``PUT Type?search`` updates the resource that search finds or creates it;
 ``urn:uuid:`` references between entries are rewritten to the ids given. All entries succeed or
-none does. Anything else is a 400 OperationOutcome. Loopback only; no authentication.
+none does. ``GET [base]/Type?identifier=...`` searches what it holds (:mod:`.fhir_search`: OR-lists,
+``_count``, pages). Anything else is a 400 OperationOutcome. Loopback only; no authentication,
+unless a test hands it ``authorize``; ``busy_every`` rehearses a throttling server (every n-th
+search answered 429 with ``Retry-After``).
 source: FHIR R4 http.html#transaction, #cond-update, #ccreate (If-None-Exist / ifNoneExist)
 """
 
 from __future__ import annotations
 
 import json
+import threading
+from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler
 from typing import Any
 
 from bridge.service.loopback import LoopbackServer
+from bridge.service.receiver.fhir_search import SearchRefused, answer, parse_search
 from bridge.service.receiver.store import ResourceStore
 
 MAX_BODY_BYTES = 20 * 1024 * 1024
@@ -82,6 +88,11 @@ class FhirPeer(LoopbackServer):
     def __init__(self, store: ResourceStore, port: int = 0) -> None:
         self.store = store
         self.bundles = 0
+        self.searches = 0
+        self.busy_every = 0  # > 0: every n-th search is answered 429 with Retry-After busy_seconds
+        self.busy_seconds = 1
+        self.authorize: Callable[[str], bool] | None = None  # the Authorization header -> allowed (tests)
+        self._count_lock = threading.Lock()
         super().__init__(_handler(self), port, setting="--fhir-port", name="stand-in-fhir")
 
     @property
@@ -99,11 +110,17 @@ def operation_outcome(text: str) -> dict[str, Any]:
 
 def _handler(peer: FhirPeer) -> type[BaseHTTPRequestHandler]:
     class Handler(BaseHTTPRequestHandler):
+        # Keep-alive: a client's pool reuses its connections (every answer carries its length; a body
+        # left unread closes the connection, so that it is never read as the next request).
+        protocol_version = "HTTP/1.1"
+
         def do_POST(self) -> None:  # the name http.server dispatches to
             if self.path.rstrip("/") != "/fhir":
+                self.close_connection = True
                 return self._answer(404, operation_outcome(f"POST to the base URL {peer.url}"))
             length = int(self.headers.get("Content-Length", "0") or 0)
             if length > MAX_BODY_BYTES:
+                self.close_connection = True
                 return self._answer(413, operation_outcome("a Bundle of at most 20 MB"))
             try:
                 document = json.loads(self.rfile.read(length))
@@ -115,11 +132,32 @@ def _handler(peer: FhirPeer) -> type[BaseHTTPRequestHandler]:
             peer.bundles += 1
             self._answer(200, answer)
 
-        def _answer(self, status: int, document: dict[str, Any]) -> None:
-            data = json.dumps(document).encode()
+        def do_GET(self) -> None:  # the name http.server dispatches to
+            path, _, query = self.path.partition("?")
+            if not path.startswith("/fhir/"):
+                return self._answer(404, operation_outcome(f"a search under the base URL {peer.url}"))
+            if peer.authorize is not None and not peer.authorize(self.headers.get("Authorization", "")):
+                return self._answer(401, operation_outcome("a valid access token"))
+            with peer._count_lock:
+                peer.searches += 1
+                busy = peer.busy_every > 0 and peer.searches % peer.busy_every == 0
+            if busy:
+                return self._answer(429, operation_outcome("busy: try later"), {"Retry-After": str(peer.busy_seconds)})
+            try:
+                search = parse_search(path[len("/fhir/") :], query)
+            except SearchRefused as exc:
+                return self._answer(400, operation_outcome(f"expected {exc}"))
+            self._send(200, answer(peer.store, search, peer.url))
+
+        def _answer(self, status: int, document: dict[str, Any], headers: dict[str, str] | None = None) -> None:
+            self._send(status, json.dumps(document).encode(), headers)
+
+        def _send(self, status: int, data: bytes, headers: dict[str, str] | None = None) -> None:
             self.send_response(status)
             self.send_header("Content-Type", "application/fhir+json")
             self.send_header("Content-Length", str(len(data)))
+            for name, value in (headers or {}).items():
+                self.send_header(name, value)
             self.end_headers()
             self.wfile.write(data)
 

@@ -1,7 +1,10 @@
 """What the stand-in FHIR endpoint created: one SQLite file, one row per resource.
 
 Owns finding a resource by the search its creator used (``Observation?identifier=s|v``) and
-creating or updating it; version ids count updates. It must not parse HTTP or Bundles.
+creating or updating it; version ids count updates. Every resource is also indexed by what a
+search finds it by (``identifier``; a Provenance's ``entity`` identifier), for searches with
+OR-lists and pages (:meth:`ResourceStore.search`), and the index serves the damage an acceptance
+test plants (:meth:`ResourceStore.by_token`, ``delete``, ``copy``). It must not parse HTTP or Bundles.
 """
 
 from __future__ import annotations
@@ -24,6 +27,15 @@ _SCHEMA = """CREATE TABLE IF NOT EXISTS resources (
     updated_at  REAL NOT NULL,
     UNIQUE (type, criteria)
 )"""
+# What each resource is found by: (param, system, value), refreshed whenever its body is written.
+_INDEX = (
+    "CREATE TABLE IF NOT EXISTS search_index (resource INTEGER NOT NULL, param TEXT NOT NULL, "
+    "system TEXT NOT NULL, value TEXT NOT NULL)",
+    "CREATE INDEX IF NOT EXISTS search_by_token ON search_index (param, value, system, resource)",
+    "CREATE INDEX IF NOT EXISTS search_by_system ON search_index (param, system, resource)",
+    "CREATE INDEX IF NOT EXISTS search_by_resource ON search_index (resource)",
+)
+Token = tuple[str | None, str | None]  # (system, value); None: any (``system|`` or a bare value)
 
 
 @dataclass(frozen=True, slots=True)
@@ -50,6 +62,12 @@ class ResourceStore:
         self._conn = sqlite3.connect(path, isolation_level=None, check_same_thread=False)
         self._conn.execute(_SCHEMA)
         self._lock = threading.Lock()
+        fresh = self._conn.execute("SELECT 1 FROM sqlite_master WHERE name = 'search_index'").fetchone() is None
+        for statement in _INDEX:
+            self._conn.execute(statement)
+        if fresh:  # a folder from before the index: index what it holds
+            for rid, body in self._conn.execute("SELECT id, body FROM resources").fetchall():
+                self._index(int(rid), json.loads(body))
 
     def close(self) -> None:
         self._conn.close()
@@ -86,7 +104,66 @@ class ResourceStore:
     def _write_body(self, kind: str, rid: int, version: int, criteria: str, body: dict[str, Any]) -> StoredResource:
         stored = {**body, "id": str(rid), "meta": {"versionId": str(version)}}
         self._conn.execute("UPDATE resources SET body = ? WHERE id = ?", (json.dumps(stored), rid))
+        self._index(rid, stored)
         return StoredResource(kind, rid, version, criteria, stored)
+
+    def _index(self, rid: int, body: dict[str, Any]) -> None:
+        self._conn.execute("DELETE FROM search_index WHERE resource = ?", (rid,))
+        self._conn.executemany(
+            "INSERT INTO search_index (resource, param, system, value) VALUES (?, ?, ?, ?)",
+            [(rid, param, system, value) for param, system, value in search_tokens(body)],
+        )
+
+    def search(
+        self, kind: str, param: str, tokens: list[Token], after: int, count: int
+    ) -> tuple[list[tuple[int, str]], bool]:
+        """(id, body as JSON text) of the ``kind`` resources whose ``param`` matches any token, in id order
+        after the id ``after``: at most ``count``, and whether more follow.
+
+        Each token is one indexed lookup of at most ``count + 1`` ids; the page is the first of their union.
+        """
+        ids: set[int] = set()
+        with self._lock:
+            for system, value in tokens:
+                terms = [("i.system = ?", system), ("i.value = ?", value)]
+                where = " AND ".join(c for c, v in terms if v is not None)
+                found = self._conn.execute(
+                    "SELECT i.resource FROM search_index AS i JOIN resources AS r ON r.id = i.resource "
+                    f"WHERE i.param = ? AND {where} AND r.type = ? AND i.resource > ? ORDER BY i.resource LIMIT ?",
+                    (param, *(v for _, v in terms if v is not None), kind, after, count + 1),
+                )
+                ids.update(row[0] for row in found)
+            page = sorted(ids)[: count + 1]
+            marks = ",".join("?" * len(page))
+            rows = self._conn.execute(f"SELECT id, body FROM resources WHERE id IN ({marks}) ORDER BY id", page)
+            bodies = [(int(row[0]), row[1]) for row in rows]
+        return bodies[:count], len(page) > count
+
+    def by_token(self, value: str) -> list[StoredResource]:
+        """Every resource found by an identifier (any system, any parameter) of this value."""
+        with self._lock:
+            rows = self._conn.execute(
+                "SELECT type, id, version, criteria, body FROM resources WHERE id IN "
+                "(SELECT resource FROM search_index WHERE value = ?) ORDER BY id",
+                (value,),
+            ).fetchall()
+        return [_stored(r) for r in rows]
+
+    def delete(self, item: StoredResource) -> None:
+        """Forget a resource (a receiver that lost it)."""
+        with self.transaction():
+            self._conn.execute("DELETE FROM search_index WHERE resource = ?", (item.id,))
+            self._conn.execute("DELETE FROM resources WHERE id = ?", (item.id,))
+
+    def copy(self, item: StoredResource, criteria: str, body: dict[str, Any]) -> StoredResource:
+        """A new resource of ``item``'s type with ``body`` under another criteria (a duplicate, an extra)."""
+        with self.transaction():
+            return self.create(item.type, criteria, body)
+
+    def change(self, item: StoredResource, body: dict[str, Any]) -> StoredResource:
+        """A new version of ``item`` with ``body`` (an edit made at the receiver)."""
+        with self.transaction():
+            return self.update(item, body)
 
     def all(self) -> list[StoredResource]:
         """Every resource, in the order created."""
@@ -113,3 +190,18 @@ class _Transaction:
 
 def _stored(row: tuple[Any, ...]) -> StoredResource:
     return StoredResource(row[0], int(row[1]), int(row[2]), row[3], json.loads(row[4]))
+
+
+def search_tokens(body: dict[str, Any]) -> list[tuple[str, str, str]]:
+    """(param, system, value) a resource is found by: each ``identifier``; a Provenance's ``entity`` identifiers."""
+    found = []
+    for identifier in body.get("identifier") or []:
+        if isinstance(identifier, dict) and identifier.get("value"):
+            found.append(("identifier", str(identifier.get("system", "")), str(identifier["value"])))
+    if body.get("resourceType") == "Provenance":
+        for entity in body.get("entity") or []:
+            what = entity.get("what") if isinstance(entity, dict) else None
+            identifier = what.get("identifier") if isinstance(what, dict) else None
+            if isinstance(identifier, dict) and identifier.get("value"):
+                found.append(("entity", str(identifier.get("system", "")), str(identifier["value"])))
+    return found

@@ -5,8 +5,10 @@ OperationOutcome's text), 5xx and network trouble retryable; 429 and 503 retried
 than their ``Retry-After`` (or dead-lettered, if the destination says so); how long a wait the
 service accepts is the delivery loop's decision (:mod:`bridge.service.delivery`). Authentication is
 a static bearer token, or SMART Backend Services (:mod:`.smart`), whose token is refreshed
-once on a 401 before the message is dead-lettered. It must not touch the ledger, read the
-environment or log; above all it never writes a token into a receipt, an exception or a repr.
+once on a 401 before the message is dead-lettered. ``get`` lends the same client (pool, timeouts,
+TLS, token) to ``reconcile``'s searches, so that there is one client configuration per server.
+It must not touch the ledger, read the environment or log; above all it never writes a token
+into a receipt, an exception or a repr.
 """
 
 from __future__ import annotations
@@ -217,6 +219,25 @@ class FhirRestTransport:
             headers["Authorization"] = f"Bearer {self._tokens.token(message.destination)}"
         with _translated(message.destination):
             return self._client.post(self.url, content=message.payload, headers=headers)
+
+    def get(self, url: str, destination: str) -> httpx.Response:
+        """GET ``url`` (a search on this server) with the pool, TLS, timeouts and authentication of delivery.
+
+        A 401 with SMART tokens fetches a new token and tries once more, as :meth:`deliver` does;
+        the answer is the caller's to judge. Network trouble raises a DeliveryError.
+        """
+        response = self._get(url, destination)
+        if response.status_code == 401 and self._tokens is not None:
+            self._tokens.forget()
+            response = self._get(url, destination)
+        return response
+
+    def _get(self, url: str, destination: str) -> httpx.Response:
+        headers = {}
+        if self._tokens is not None:
+            headers["Authorization"] = f"Bearer {self._tokens.token(destination)}"
+        with _translated(destination):
+            return self._client.get(url, headers=headers)
 
     def close(self) -> None:
         self._client.close()
