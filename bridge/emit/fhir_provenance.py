@@ -1,8 +1,8 @@
 """The FHIR R4 Provenance of one session: what the bridge made, from which file and session (pure).
 
 Owns the Provenance entry of a transaction Bundle (``bridge.emit.fhir`` places it last): its
-targets, the agent (the bridge, as assembler), the entities (the source file's SHA-256 and the
-session in it), and its conditional create keyed on the session.
+targets, the agent (the bridge, as assembler), the entities (the session, its key, then the
+source file's SHA-256), and its conditional create keyed on the session.
 """
 
 from __future__ import annotations
@@ -41,19 +41,21 @@ def provenance_entry(outcome: Outcome, context: EmitContext, recorded: str, targ
                 "who": {"type": "Device", "display": BRIDGE_NAME},
             }
         ],
+        # The session first: the entity that keys this Provenance (its conditional create, and how
+        # reconcile finds it); the file's plain hash second, shared by every session of the file.
         "entity": [
-            {
-                "role": "source",
-                "what": {
-                    "identifier": {"system": context.source_system, "value": file_value},
-                    "display": outcome.source,
-                },
-            },
             {
                 "role": "source",
                 "what": {
                     "identifier": {"system": session_system, "value": session_value},
                     "display": f"{outcome.source}, test {outcome.session.test_id}",
+                },
+            },
+            {
+                "role": "source",
+                "what": {
+                    "identifier": {"system": context.source_system, "value": file_value},
+                    "display": outcome.source,
                 },
             },
         ],

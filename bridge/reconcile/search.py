@@ -1,7 +1,7 @@
 """Identifier searches: expected resources batched into OR-lists, and the answers matched back (pure).
 
 Owns: which search parameter finds each resource type by identifier (Provenance has no
-identifier in R4: it is found by its entity's identifier, the source file's hash), the query of
+identifier in R4: it is found by its first entity's identifier, the session's key), the query of
 one batch (``Type?param=system|value,system|value&_count=N``; the comma ORs the values, the
 token's characters escaped as ``fhir_references.token`` escapes them everywhere), batching by
 query length, and the verdict on each expected resource of a batch from the resources the

@@ -400,7 +400,7 @@ def test_provenance_names_the_source_hash_and_targets_every_entry(fhir_outcomes,
     outcome = fhir_outcomes["01-healthy-adult"]
     bundle = to_bundle(outcome, fhir_tables, GOLDEN_CONTEXT)
     provenance = bundle["entry"][-1]["resource"]
-    entity = provenance["entity"][0]
+    entity = provenance["entity"][1]  # the session's entity first (its key), then the file's
 
     assert [{"reference": e["fullUrl"]} for e in bundle["entry"][:-1]] == provenance["target"]
     assert ("source", f"sha256:{outcome.source_sha256}", "01-healthy-adult.json") == (
@@ -597,7 +597,7 @@ def test_the_site_base_names_every_own_system(fhir_outcomes, fhir_tables):
     assert [f"{base}/observation-id", f"{base}/local-code", f"{base}/source-file"] == [
         va["identifier"][0]["system"],
         va["code"]["coding"][0]["system"],
-        provenance["entity"][0]["what"]["identifier"]["system"],
+        provenance["entity"][1]["what"]["identifier"]["system"],
     ]
 
 

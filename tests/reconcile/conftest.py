@@ -27,7 +27,7 @@ from bridge.service.ledger import Ledger
 from bridge.service.metrics import Metrics
 from bridge.service.receiver import FhirPeer, MllpPeer, ResourceStore
 from bridge.service.transports.base import Transport
-from bridge.tables.files import load_tables
+from bridge.tables.files import load_map_choice, load_tables
 from tests.conftest import SAMPLES
 
 # The samples every default site sends (07 and 09 carry an ERROR finding, 08 is malformed).
@@ -61,7 +61,12 @@ class Feed:
         """Drop one input and deliver what it became."""
         path = self.root / "inbox" / name
         path.write_bytes(data)
-        Intake(self.settings, load_tables(), self.ledger, Metrics(time.time)).take(path, time.time())
+        tables = load_tables()
+        maps = load_map_choice(self.settings.field_map, self.settings.maps, tables)
+        intake = Intake(
+            self.settings.require_service(), self.settings.pipeline, maps, tables, self.ledger, Metrics(time.time)
+        )
+        intake.take(path, time.time())
         self.deliver()
 
     def deliver(self) -> None:

@@ -39,7 +39,7 @@ def test_lost_altered_duplicated_withdrawn_and_extra_are_reported_exactly(make_f
     """Two lost, two altered, one duplicated, one withdrawn, one extra: exactly those seven rows, exit 1."""
     feed = make_feed(6)
     obs = feed.observations()
-    lost, altered, duplicated, withdrawn, extra = (obs[0], obs[31]), (obs[3], obs[70]), obs[50], obs[90], obs[100]
+    lost, altered, duplicated, withdrawn, extra = (obs[0], obs[31]), (obs[3], obs[70]), obs[50], obs[90], obs[95]
     before = {v: r.body["valueQuantity"]["value"] for r in feed.store.all() if (v := _value(r.body)) in altered}
 
     assert 0 == _plant(

@@ -12,16 +12,14 @@ from pathlib import Path
 from typing import Any
 
 from bridge import cli
-from tests.audit.test_report_page import Cells, load
+from tests.audit.test_report_page import Node, load, parse
 
 MARKUP = "<script>document.title='x'</script>"
 
 
-def _page(report: Path, profile: Path) -> tuple[Cells, list[str], str]:
+def _page(report: Path, profile: Path) -> tuple[Node, list[str], str]:
     dom, console = load(report / "report.html", profile)
-    cells = Cells()
-    cells.feed(dom)
-    return cells, console, dom
+    return parse(dom), console, dom
 
 
 def _first_heading(dom: str) -> str:
@@ -40,11 +38,11 @@ def test_a_complete_receiver_says_so_first(make_feed: Any, tmp_path: Path):
     """A feed held as sent: the page's first heading says the receiver is complete; no console message."""
     feed = make_feed(1)
 
-    cells, console, dom = _page(_report_of(feed), tmp_path / "profile")
+    page, console, dom = _page(_report_of(feed), tmp_path / "profile")
 
     assert _first_heading(dom).startswith("Receiver complete")
     assert [] == console
-    assert ["none"] in cells.rows  # no rows to act on
+    assert ["none"] in page.rows()  # no rows to act on
 
 
 def test_gaps_are_counted_and_listed_and_held_text_stays_text(make_feed: Any, tmp_path: Path):
@@ -58,13 +56,13 @@ def test_gaps_are_counted_and_listed_and_held_text_stays_text(make_feed: Any, tm
     assert 0 == cli.main(["stand-in", "--folder", str(feed.root / "stand-in"), "--lose", lost])
 
     report = _report_of(feed, "--destination", "fhir-store")
-    cells, console, dom = _page(report, tmp_path / "profile")
+    page, console, dom = _page(report, tmp_path / "profile")
 
     assert "Receiver NOT complete: 2 gaps to act on" == _first_heading(dom)
-    rows = {tuple(row) for row in cells.rows}
+    rows = {tuple(row) for row in page.rows()}
     assert {("fhir-store", "missing", "1"), ("fhir-store", "different", "1")} <= rows
-    listed = {(row[1], row[3]) for row in cells.rows if len(row) == 7}
+    listed = {(row[1], row[3]) for row in page.rows() if len(row) == 7}
     assert {("missing", lost), ("different", odd)} <= listed
-    assert any(MARKUP in cell for row in cells.rows for cell in row)
-    assert ([], []) == ([tag for tag in cells.elements if tag == "script"], console)
+    assert any(MARKUP in cell for row in page.rows() for cell in row)
+    assert ([], []) == (page.find("script"), console)
     assert not re.search(r"(src|href)=", (report / "report.html").read_text())
