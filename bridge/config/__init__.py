@@ -22,8 +22,9 @@ from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
-from bridge.config.reader import SAMPLE_CONFIG, TOP_LEVEL_KEYS, UNIT_SYSTEMS, Settings, SettingsReader
+from bridge.config.reader import SAMPLE_CONFIG, TOP_LEVEL_KEYS, Settings, SettingsReader
 from bridge.errors import ConfigError
+from bridge.science.units import UNIT_SYSTEMS
 from bridge.service.settings import ServiceSettings
 
 __all__ = [
