@@ -3,6 +3,7 @@ places say different things (one test per disagreement found before)."""
 
 from __future__ import annotations
 
+import argparse
 import csv
 import json
 import re
@@ -58,17 +59,15 @@ def test_unset_timeouts_are_the_transports_own_defaults_when_built_from_the_conf
     """Without timeouts in the configuration, a transport built from it waits as one built with no settings does
     (before, the FHIR transport's 60 s read timeout became 30 s when built from the configuration)."""
     destinations = _destinations(MLLP + FHIR)
-    from_config = build_transport(destinations["store"]), build_transport(destinations["records"])
-    plain = FhirRestTransport("http://127.0.0.1:9/fhir"), MllpTransport("127.0.0.1", 2575)
+    fhir, mllp = build_transport(destinations["store"]), build_transport(destinations["records"])
+    plain_fhir, plain_mllp = FhirRestTransport("http://127.0.0.1:9/fhir"), MllpTransport("127.0.0.1", 2575)
     try:
-        assert _fhir_timeouts(plain[0]) == _fhir_timeouts(from_config[0])  # type: ignore[arg-type]
-        assert (plain[1].connect_timeout, plain[1].read_timeout) == (
-            from_config[1].connect_timeout,  # type: ignore[attr-defined]
-            from_config[1].read_timeout,  # type: ignore[attr-defined]
-        )
-        assert plain[0]._client.timeout.read != plain[1].read_timeout  # a transaction Bundle may take longer
+        assert isinstance(fhir, FhirRestTransport) and isinstance(mllp, MllpTransport)
+        assert _fhir_timeouts(plain_fhir) == _fhir_timeouts(fhir)
+        assert (plain_mllp.connect_timeout, plain_mllp.read_timeout) == (mllp.connect_timeout, mllp.read_timeout)
+        assert _fhir_timeouts(fhir)[1] != mllp.read_timeout  # a server answers a transaction only once processed
     finally:
-        for transport in (*from_config, plain[0]):
+        for transport in (fhir, mllp, plain_fhir, plain_mllp):
             transport.close()
 
 
@@ -88,9 +87,14 @@ def test_the_retry_defaults_of_the_service_and_the_back_off_agree():
     assert service.retry_cap_seconds == next_delay(40, rand=lambda: 1.0)
 
 
+def _convert_parser() -> argparse.ArgumentParser:
+    commands = next(a for a in build_parser()._actions if isinstance(a, argparse._SubParsersAction))
+    return commands.choices["convert"]
+
+
 def test_the_help_shows_the_defaults_the_settings_hold():
     """Each default --help prints is the settings object's own default."""
-    convert = build_parser()._subparsers._group_actions[0].choices["convert"]  # type: ignore[union-attr]
+    convert = _convert_parser()
     text = " ".join(convert.format_help().split())
     site, defaults = EmitSettings(), Settings()
     for key, value in (
@@ -107,7 +111,7 @@ def test_the_help_shows_the_defaults_the_settings_hold():
 
 def test_every_setting_a_flag_sets_is_a_key_of_the_configuration():
     """A flag that sets a setting uses a key the configuration reads (its dest is the key), so none is ignored."""
-    convert = build_parser()._subparsers._group_actions[0].choices["convert"]  # type: ignore[union-attr]
+    convert = _convert_parser()
     keyed = {re.sub(r"^emit\.", "", a.dest) for a in convert._actions if "(key " in (a.help or "")}
     known = {re.sub(r"^emit\.", "", key) for key in SETTING_KEYS}
     assert set() == keyed - known

@@ -7,6 +7,7 @@ is ``bridge.config``'s job; ``bridge.config.Settings`` carries them as ``service
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from types import MappingProxyType
@@ -23,7 +24,7 @@ TRANSPORT_KINDS: tuple[TransportKind, ...] = ("file", "mllp", "fhir-rest")
 CONNECT_TIMEOUT = 10.0  # seconds to connect, MLLP and FHIR alike
 # Seconds for the answer, by transport: a FHIR server processes a whole transaction Bundle before it
 # answers, an MLLP receiver only acknowledges (the file transport waits on nothing).
-READ_TIMEOUTS = MappingProxyType({"mllp": 30.0, "fhir-rest": 60.0, "file": 0.0})
+READ_TIMEOUTS: Mapping[TransportKind, float] = MappingProxyType({"mllp": 30.0, "fhir-rest": 60.0, "file": 0.0})
 RETRY_BASE_SECONDS = 1.0  # the outbox's back-off: the first retry's largest delay, doubling from there
 RETRY_CAP_SECONDS = 300.0  # ... up to this
 
