@@ -150,3 +150,15 @@ def test_a_sites_factor_reaches_the_audits_unit_jump_check(tmp_path: Path, facto
     job = replace(JOB, traditional_per_si=factor, map_patterns=())
     run_audit([tmp_path / "archive"], tmp_path / "report", job, AuditSettings(workers=1))
     assert jumped == ("SERIES_UNIT_JUMP" in _checks(tmp_path / "report"))
+
+
+def test_only_the_configuration_package_reads_settings_from_the_environment():
+    """pydantic-settings (BaseSettings, its sources) is imported under bridge/config/ alone; the core's settings
+    stay plain values."""
+    bridge = Path(__file__).resolve().parents[1] / "bridge"
+    importing = sorted(
+        str(module.relative_to(bridge))
+        for module in bridge.rglob("*.py")
+        if "pydantic_settings" in module.read_text("utf-8")
+    )
+    assert ["config/sources.py"] == importing
