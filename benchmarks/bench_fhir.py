@@ -12,7 +12,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 
 from bridge.emit.fhir import bundle_json, to_bundle
-from bridge.emit.settings import EmitContext
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.pipeline import process
 from bridge.tables.files import load_tables
 
@@ -21,7 +21,9 @@ ROOT = Path(__file__).resolve().parents[1]
 
 def main(repeat: int = 5, number: int = 200) -> None:
     tables = load_tables()
-    context = EmitContext(now=datetime(2026, 3, 10, 12, tzinfo=UTC), patient_reference="conditional-create")
+    context = EmitContext(
+        now=datetime(2026, 3, 10, 12, tzinfo=UTC), site=EmitSettings(patient_reference="conditional-create")
+    )
     for path in sorted(ROOT.glob("samples/0[1-79]*.json")):
         outcome = process(path.read_bytes(), path.name, tables)
         for name, func in (("to_bundle", to_bundle), ("bundle_json", bundle_json)):

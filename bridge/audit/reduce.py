@@ -23,6 +23,7 @@ from dataclasses import dataclass, field
 from bridge.audit.rows import AuditFinding, Row
 from bridge.emit.outputs import blocked_because
 from bridge.model import Severity
+from bridge.science.units import TRADITIONAL_PER_SI
 
 DUPLICATE_TEST_ID = "DUPLICATE_TEST_ID_CONFLICT"
 SEX_CHANGED = "PATIENT_SEX_CHANGED"
@@ -35,10 +36,9 @@ REFERENCE_SETS_MIXED = "REFERENCE_SETS_MIXED"
 ARCHIVE_CHECKS = (DUPLICATE_TEST_ID, SEX_CHANGED, BIRTH_DATE_CHANGED, SERIES_JUMP, UNIT_CONVENTIONS_MIXED,
                   REFERENCE_SETS_MIXED)  # fmt: skip
 
-# DLCO in mL/min/mmHg per mmol/min/kPa: a series that moves by this factor between consecutive
-# sessions was almost certainly labelled in the wrong unit system at one of them.
-# source: ATS/ERS 2017 DLCO standard (Graham et al., Eur Respir J 2017;49:1600016), units section
-TRADITIONAL_PER_SI = 2.987
+# A DLCO series that moves by the site's SI <-> traditional factor (traditional_per_si: 2.987, or
+# 2.986, bridge.science.units) between consecutive sessions was almost certainly labelled in the
+# wrong unit system at one of them.
 # relative, so that honest change between visits (tens of per cent) on top of a mislabel still shows,
 # while a true tripling or fall to a third between two sessions does not happen (common practice)
 SERIES_JUMP_TOLERANCE = 0.15
@@ -89,6 +89,7 @@ class ArchiveReduce:
     _first_file: dict[tuple[str, str], str] = field(default_factory=dict)  # (source, convention or set): first file
     # per check, the first findings met, with the patient's name (for the page)
     examples: dict[str, list[tuple[AuditFinding, str]]] = field(default_factory=dict)
+    traditional_per_si: float = TRADITIONAL_PER_SI  # the site's factor: what a unit jump in a series is
 
     def add(self, row: Row) -> None:
         """Take one row into the counts, the keyed state and the plot arrays (:meth:`add_files` counts files)."""
@@ -143,7 +144,7 @@ class ArchiveReduce:
         shell's index of the rows that were added.
         """
         found = sorted(
-            [*_duplicates(contents), *_patients(patients), *self._sources()],
+            [*_duplicates(contents), *_patients(patients, self.traditional_per_si), *self._sources()],
             key=lambda f: (f.source, f.test_id, f.check, f.file, f.message),
         )
         for finding in found:
@@ -235,7 +236,7 @@ def _duplicates(contents: Iterable[tuple[str, str, Mapping[str, str]]]) -> list[
     return found
 
 
-def _patients(patients: Iterable[tuple[str, Sequence[Visit]]]) -> list[AuditFinding]:
+def _patients(patients: Iterable[tuple[str, Sequence[Visit]]], traditional_per_si: float) -> list[AuditFinding]:
     """A patient whose sex or birth date changes between sessions, or whose DLCO series jumps."""
     found: list[AuditFinding] = []
     for patient, visits in patients:
@@ -252,18 +253,18 @@ def _patients(patients: Iterable[tuple[str, Sequence[Visit]]]) -> list[AuditFind
                         "one of them is another person or a typo.",
                     )
                 )  # fmt: skip
-        found.extend(_jumps(patient, visits))
+        found.extend(_jumps(patient, visits, traditional_per_si))
     return found
 
 
-def _jumps(patient: str, visits: Sequence[Visit]) -> list[AuditFinding]:
-    """A DLCO series that moves by about the SI/traditional factor between consecutive sessions."""
+def _jumps(patient: str, visits: Sequence[Visit], traditional_per_si: float) -> list[AuditFinding]:
+    """A DLCO series that moves by about the site's SI/traditional factor between consecutive sessions."""
     found = []
     series = [v for v in visits if v.dlco is not None and v.dlco > 0]
     for before, after in itertools.pairwise(series):
         assert before.dlco is not None and after.dlco is not None
         ratio = after.dlco / before.dlco
-        for factor in (TRADITIONAL_PER_SI, 1 / TRADITIONAL_PER_SI):
+        for factor in (traditional_per_si, 1 / traditional_per_si):
             if abs(ratio / factor - 1) <= SERIES_JUMP_TOLERANCE:
                 found.append(
                     AuditFinding(

@@ -249,7 +249,7 @@ def run_audit(
     cannot be reached.
     """
     writer = ReportWriter(report, ndjson=job.emit_ndjson)
-    reduce = ArchiveReduce()
+    reduce = ArchiveReduce(traditional_per_si=job.traditional_per_si)
     shown = Progress(progress)
     maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
 

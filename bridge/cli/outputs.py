@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from urllib.parse import quote
 
-from bridge.emit.fhir import indented
+from bridge.emit.fhir_json import indented
 from bridge.errors import InvalidField
 from bridge.model import Outcome, Session
 from bridge.service.files import write_atomically

@@ -6,12 +6,14 @@ import argparse
 from collections.abc import Mapping
 from pathlib import Path
 
-from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, UNIT_SYSTEMS, Settings, config_path, load_settings
+from bridge.config import CONFIG_ENV, SAMPLE_CONFIG, Settings, config_path, load_settings
+from bridge.config.reader import MAX_INPUT_BYTES_LIMIT, SETTING_KEYS
 from bridge.display.check_report import CAUTION
 from bridge.display.map_report import SHOWN_RECORDS
-from bridge.emit.settings import CHARTED_PREDICTED
+from bridge.emit.settings import CHARTED_PREDICTED, PATIENT_REFERENCES
 from bridge.inputs import FOLDER_RULE
 from bridge.science.compared import REFERENCE_BASES
+from bridge.science.units import TRADITIONAL_PER_SI_CHOICES, UNIT_SYSTEMS
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import Destination, ServiceSettings
 from bridge.tables.files import repeatability_criteria
@@ -45,7 +47,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: 
     parser.add_argument(
         "--max-input-bytes",
         type=int,
-        help="largest input accepted, in bytes: a whole number up to 1073741824 "
+        help=f"largest input accepted, in bytes: a whole number up to {MAX_INPUT_BYTES_LIMIT} "
         f"(key max_input_bytes; default {DEFAULTS.pipeline.max_input_bytes})",
     )
     if chooses_map:
@@ -53,7 +55,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: 
     parser.add_argument(
         "--traditional-per-si",
         type=float,
-        help="mL/min/mmHg per mmol/min/kPa, 2.987 or 2.986 "
+        help=f"mL/min/mmHg per mmol/min/kPa, {' or '.join(map(str, TRADITIONAL_PER_SI_CHOICES))} "
         f"(key traditional_per_si; default {DEFAULTS.traditional_per_si})",
     )
     _add_science(parser)
@@ -82,7 +84,7 @@ def _add_settings(parser: argparse.ArgumentParser, *, emits: bool, chooses_map: 
     parser.add_argument(
         "--patient-reference",
         dest="emit.patient_reference",
-        choices=("identifier", "conditional-create"),
+        choices=PATIENT_REFERENCES,
         help=f"FHIR: refer to the patient by identifier, or create it if absent "
         f"(key emit.patient_reference; default {site.patient_reference})",
     )
@@ -145,15 +147,6 @@ def _add_science(parser: argparse.ArgumentParser) -> None:
         "or adjusted to standard Hb (and to sea level where that applies); without Hb the measured value, "
         f"with a finding (key reference_basis; default {DEFAULTS.pipeline.reference_basis})",
     )
-
-
-# Flags that are settings; everything else on the command line is an argument of the command.
-_SETTING_FLAGS = (
-    "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to", "map",
-    "repeatability", "reference_basis",
-    "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
-    "emit.receiving_facility", "emit.patient_reference", "emit.charted_predicted",
-)  # fmt: skip
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -253,7 +246,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def _add_reconcile(commands: argparse._SubParsersAction[argparse.ArgumentParser]) -> None:
-    in_flight = Destination("", "fhir", "si", "fhir-rest").reconcile_in_flight
+    in_flight = Destination("", "fhir", "fhir-rest").reconcile_in_flight
     reconcile = commands.add_parser(
         "reconcile",
         help="ask the receiving FHIR server whether it holds exactly what was sent",
@@ -368,5 +361,5 @@ def _add_prune(commands: argparse._SubParsersAction[argparse.ArgumentParser], co
 
 def settings_of(args: argparse.Namespace, environ: Mapping[str, str]) -> Settings:
     """The one settings object for this run: configuration file, environment, then flags."""
-    flags = {key: getattr(args, key) for key in _SETTING_FLAGS if hasattr(args, key)}
+    flags = {key: value for key, value in vars(args).items() if key in SETTING_KEYS}  # a flag whose dest is a key
     return load_settings(config_path(getattr(args, "config", None), environ), environ, flags)

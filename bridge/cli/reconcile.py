@@ -151,7 +151,7 @@ def _target(settings: Settings, base_url: str, units: str | None) -> Destination
             return replace(destination, units=units) if units else destination  # type: ignore[arg-type]
     if not wanted.startswith(("http://", "https://")):
         raise ConfigError("--fhir-base", f"an http:// or https:// URL, got {base_url!r}")
-    return Destination("target", "fhir", settings.units, "fhir-rest", base_url=wanted)
+    return Destination("target", "fhir", "fhir-rest", settings.units, base_url=wanted)
 
 
 def _kind(destination: Destination) -> str:
@@ -161,7 +161,7 @@ def _kind(destination: Destination) -> str:
 
 
 def _observation_system(settings: Settings) -> str:
-    return settings.pipeline.emit.context(datetime.now(UTC), settings.units).observation_system
+    return settings.pipeline.emit.observation_system
 
 
 def _since(text: str | None) -> float | None:

@@ -15,11 +15,12 @@ import orjson
 from bridge.cli.parser import EXIT_BAD_INPUT, EXIT_OK
 from bridge.config import Settings
 from bridge.errors import ConfigError
+from bridge.service.folders import check_folders
 from bridge.service.ledger import Ledger, ServiceLock
 from bridge.service.logs import configure as configure_logging
 from bridge.service.receiver import FhirPeer, MllpPeer, ResourceStore, StandInSettings
 from bridge.service.receiver.damage import KINDS, plant
-from bridge.service.runner import Service, check_folders
+from bridge.service.runner import Service
 from bridge.service.settings import Destination
 from bridge.service.transports.base import TlsOptions, Transport
 from bridge.service.transports.fhir_rest import FhirRestTransport
@@ -45,7 +46,7 @@ def build_transport(destination: Destination) -> Transport:
             destination.host,
             destination.port,
             connect_timeout=destination.connect_timeout,
-            read_timeout=destination.read_timeout,
+            read_timeout=destination.answer_timeout,
             tls=tls,
             retried=retried,
         )
@@ -60,7 +61,7 @@ def build_transport(destination: Destination) -> Transport:
         smart=smart,
         busy=destination.on_busy,
         connect_timeout=destination.connect_timeout,
-        read_timeout=destination.read_timeout,
+        read_timeout=destination.answer_timeout,
         tls=tls,
     )
 

@@ -17,12 +17,12 @@ from pathlib import Path
 from typing import Any
 
 from bridge.config.values import ValueChecker
-from bridge.emit.settings import CHARTED_PREDICTED, HEMOGLOBIN_UNITS, EmitSettings
+from bridge.emit.settings import CHARTED_PREDICTED, HEMOGLOBIN_UNITS, PATIENT_REFERENCES, EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind, Severity
 from bridge.pipeline import PipelineSettings
 from bridge.science.compared import REFERENCE_BASES
-from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
+from bridge.science.units import DEFAULT_UNITS, TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_CHOICES, UNIT_SYSTEMS, UnitSystem
 from bridge.service.settings import (
     ANSWER_POLICIES,
     TRANSPORT_KINDS,
@@ -33,7 +33,6 @@ from bridge.tables.files import finding_codes, load_hl7_tables, repeatability_cr
 from bridge.tables.finding_codes import FindingCodes
 
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
-UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
 PROCESSING_IDS = load_hl7_tables().processing_ids  # source: HL7 v2.5.1 table 0103 (mappings/hl7_tables.toml)
 
 
@@ -42,7 +41,7 @@ class Settings:
     """Every setting of every command; built once by :func:`load_settings`, passed explicitly."""
 
     pipeline: PipelineSettings = field(default_factory=PipelineSettings)
-    units: UnitSystem = "traditional"  # what check shows and convert writes
+    units: UnitSystem = DEFAULT_UNITS  # what check shows and convert writes
     traditional_per_si: float = TRADITIONAL_PER_SI
     to: tuple[OutputKind, ...] = OUTPUT_KINDS  # what convert writes
     service: ServiceSettings | None = None
@@ -63,12 +62,22 @@ def _default(cls: type, name: str) -> Any:
     return next(f.default for f in fields(cls) if f.name == name)
 
 
-_SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
-_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate", "repeatability", "reference_basis"}
-_GENERAL_KEYS = {"units", "traditional_per_si", "to", "map"}
-TOP_LEVEL_KEYS = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
-_EMIT_KEYS = {f.name for f in fields(EmitSettings)}
+# The keys of the configuration, read from the settings classes' fields (a new field is a new key).
+# A key's name is its field's, but for these: the field is filled from another key, or not from one.
+_KEY_OF_FIELD = {"validate_outputs": "validate", "field_map": "map"}
+_NOT_KEYS = {"emit", "pipeline", "service", "source", "maps", "destinations"}  # sections, or filled by the reader
+
+
+def _keys(*classes: type) -> frozenset[str]:
+    return frozenset(_KEY_OF_FIELD.get(f.name, f.name) for cls in classes for f in fields(cls)) - _NOT_KEYS
+
+
+_SERVICE_KEYS = _keys(ServiceSettings)
+TOP_LEVEL_KEYS = _keys(ServiceSettings, PipelineSettings, Settings)
+_EMIT_KEYS = _keys(EmitSettings)
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
+# Every key a flag may set (``emit.x`` for a key of [emit]): the CLI passes the flags it has of these.
+SETTING_KEYS = TOP_LEVEL_KEYS | {f"emit.{key}" for key in _EMIT_KEYS}
 
 
 # The most max_input_bytes may be: every input is read whole into memory (a DLCO export is a few kB).
@@ -111,8 +120,8 @@ class SettingsReader(ValueChecker):
         factor = self.number(
             "traditional_per_si", d.get("traditional_per_si", _default(Settings, "traditional_per_si"))
         )
-        if factor not in (TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE):
-            raise self.fail("traditional_per_si", f"{TRADITIONAL_PER_SI} or {TRADITIONAL_PER_SI_ALTERNATIVE}")
+        if factor not in TRADITIONAL_PER_SI_CHOICES:
+            raise self.fail("traditional_per_si", " or ".join(map(str, TRADITIONAL_PER_SI_CHOICES)))
         return Settings(
             pipeline=self.pipeline(),
             units=self.choice("units", d.get("units", _default(Settings, "units")), UNIT_SYSTEMS),  # type: ignore[arg-type]
@@ -200,7 +209,7 @@ class SettingsReader(ValueChecker):
         self.choice(
             "emit.patient_reference",
             values.get("patient_reference", defaults.patient_reference),
-            ("identifier", "conditional-create"),
+            PATIENT_REFERENCES,
         )
         self.system_base("emit.system_base", values.get("system_base", defaults.system_base))
         for key in ("identifier_system", "local_code_system"):
@@ -272,7 +281,7 @@ class SettingsReader(ValueChecker):
             raise self.fail(f"{where}.{unknown[0]}", f"one of {', '.join(sorted(_DESTINATION_KEYS))}")
         transport = self.choice(f"{where}.transport", v.get("transport"), TRANSPORT_KINDS)
         payload = self.choice(f"{where}.payload", v.get("payload"), OUTPUT_KINDS)
-        units = self.choice(f"{where}.units", v.get("units", "traditional"), UNIT_SYSTEMS)
+        units = self.choice(f"{where}.units", v.get("units", _default(Destination, "units")), UNIT_SYSTEMS)
         host = str(v.get("host", _default(Destination, "host")))
         if not host or any(c.isspace() for c in host):
             raise self.fail(f"{where}.host", f"a host name or address, got {host!r}")
@@ -290,8 +299,10 @@ class SettingsReader(ValueChecker):
             ca_file=self.path(f"{where}.ca_file", v["ca_file"]) if "ca_file" in v else None,
             cert_file=self.path(f"{where}.cert_file", v["cert_file"]) if "cert_file" in v else None,
             key_file=self.path(f"{where}.key_file", v["key_file"]) if "key_file" in v else None,
-            connect_timeout=self.number(f"{where}.connect_timeout", v.get("connect_timeout", 10.0), 0.01),
-            read_timeout=self.number(f"{where}.read_timeout", v.get("read_timeout", 30.0), 0.01),
+            connect_timeout=self.number(
+                f"{where}.connect_timeout", v.get("connect_timeout", _default(Destination, "connect_timeout")), 0.01
+            ),
+            read_timeout=self.number(f"{where}.read_timeout", v["read_timeout"], 0.01) if "read_timeout" in v else None,
             reconcile_in_flight=self.count(
                 f"{where}.reconcile_in_flight",
                 v.get("reconcile_in_flight", _default(Destination, "reconcile_in_flight")),

@@ -5,8 +5,8 @@ dicts (one Observation per item, with the Hb it used contained and named in ``de
 ``dataAbsentReason`` for a stated absence, ``method`` for the technique; a DiagnosticReport
 that groups them, the Patient by conditional create when asked, a Provenance naming the
 source's SHA-256), the transaction requests that make resending idempotent (conditional
-create; conditional update for corrections; token values and fullUrls are ``fhir_references``),
-and byte-stable JSON.
+create; conditional update for corrections; token values and fullUrls are ``fhir_references``);
+the datatypes and the byte-stable JSON are ``fhir_json``.
 
 References resolve on a server: to another entry by its fullUrl, to the patient either by the
 Patient entry's fullUrl or, when the patient is not created here, by a conditional reference
@@ -20,34 +20,26 @@ Must not: choose which quantities are emitted, or their codes, units or flags (t
 the hot path; the tests validate with it).
 
 Numbers keep the lab's digits: values are :class:`decimal.Decimal` in the dicts and are
-written verbatim by :func:`bundle_json`, so a reported 7.460 stays 7.460.
+written verbatim by :func:`bundle_json` (``fhir_json.dumps``), so a reported 7.460 stays 7.460.
 """
 
 from __future__ import annotations
 
-import json
 from collections.abc import Mapping
 from dataclasses import dataclass
-from datetime import datetime
-from decimal import Decimal
 from types import MappingProxyType
-from typing import Any
-
-import orjson
 
 from bridge.emit.content import ReportContent, ResultItem, Supporting
+from bridge.emit.fhir_json import Resource, coding, dumps, instant, quantity, require_aware
 from bridge.emit.fhir_provenance import provenance_entry
 from bridge.emit.fhir_references import full_url, token_part, token_query
 from bridge.emit.identifiers import code_system_uri, observation_identifier
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
 from bridge.emit.status import REPORT_KEY, Statuses, Withdrawn, resolve
-from bridge.model import Outcome, Patient, Quantity
+from bridge.model import Outcome, Patient
 from bridge.tables import Code, Tables
 
-Resource = dict[str, Any]
-
-UCUM = "http://unitsofmeasure.org"
 V2_0074 = "http://terminology.hl7.org/CodeSystem/v2-0074"
 OBSERVATION_CATEGORY = "http://terminology.hl7.org/CodeSystem/observation-category"
 INTERPRETATION = "http://terminology.hl7.org/CodeSystem/v3-ObservationInterpretation"
@@ -72,11 +64,13 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
     """
     require_aware(context.now)
     if content is None:
-        content = build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
+        content = build_content(
+            outcome, tables, context.units, context.site.hemoglobin_unit, context.site.charted_predicted
+        )
     entries: list[Resource] = []
     patient = outcome.session.patient
     patient_url = None
-    if context.patient_reference != "identifier":
+    if context.site.patient_reference != "identifier":
         entries.append(_patient_entry(patient))
         patient_url = entries[0]["fullUrl"]
     parts = _Parts.of(outcome, context, patient_url)
@@ -101,15 +95,6 @@ def bundle_json(outcome: Outcome, tables: Tables, context: EmitContext, content:
     of every Bundle. :func:`indented` gives the same document laid out for people (``convert --pretty``).
     """
     return dumps(to_bundle(outcome, tables, context, content), indent=False)
-
-
-def indented(data: bytes) -> bytes:
-    """A JSON document laid out with two-space indentation, every number written with the digits it had.
-
-    Numbers are read as decimals and written back verbatim, so a compact Bundle and its indented form
-    differ in whitespace only.
-    """
-    return dumps(json.loads(data, parse_float=Decimal), indent=True)
 
 
 def patient_by_identifier(patient: Patient) -> str:
@@ -142,10 +127,10 @@ class _Parts:
         patient = session.patient
         return cls(
             id_prefix=id_prefix,
-            identifier_system=context.observation_system,
-            query_prefix=f"identifier={token_part(context.observation_system)}|{token_part(id_prefix)}",
-            effective=_instant(session.performed_at),
-            issued=_instant(context.now),
+            identifier_system=context.site.observation_system,
+            query_prefix=f"identifier={token_part(context.site.observation_system)}|{token_part(id_prefix)}",
+            effective=instant(session.performed_at),
+            issued=instant(context.now),
             performer=f"{lab.name}, {lab.site}" if lab.site else lab.name,
             correction=context.correction,
             subject_reference=patient_url or patient_by_identifier(patient),
@@ -182,18 +167,6 @@ class _Parts:
         return [{"type": "Organization", "display": self.performer}]
 
 
-def dumps(value: Any, *, indent: bool) -> bytes:
-    """JSON bytes in insertion order; Decimal values written with exactly their digits."""
-    option = orjson.OPT_INDENT_2 if indent else 0
-    return orjson.dumps(value, default=_raw_decimal, option=option)
-
-
-def _raw_decimal(value: object) -> orjson.Fragment:
-    if isinstance(value, Decimal) and value.is_finite():
-        return orjson.Fragment(str(value).encode("ascii"))
-    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
-
-
 # ---------- Observation ----------
 
 
@@ -217,7 +190,7 @@ def _observation(
         # value the lab marked preliminary or sent with an allowed error finding; "corrected" only
         # when it replaces a final one (bridge.emit.status).  # source: FHIR R4 ValueSet observation-status
         "status": statuses.of(item.key),
-        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_section(tables)]}],
+        "category": [{"coding": [coding(*_PROCEDURE)]}, {"coding": [_section(tables)]}],
         "code": _concept(item.code, tables, context),
         "subject": parts.subject(),
         "effectiveDateTime": parts.effective,
@@ -225,11 +198,11 @@ def _observation(
         "performer": parts.lab(),
     }
     if item.quantity is not None:
-        resource["valueQuantity"] = _quantity(item.quantity)
+        resource["valueQuantity"] = quantity(item.quantity)
     else:  # FHIR R4 obs-6: dataAbsentReason only when there is no value
-        resource["dataAbsentReason"] = {"coding": [_coding(*_NOT_APPLICABLE)], "text": item.absent or "not computed"}
+        resource["dataAbsentReason"] = {"coding": [coding(*_NOT_APPLICABLE)], "text": item.absent or "not computed"}
     if item.flag is not None:
-        resource["interpretation"] = [{"coding": [_coding(INTERPRETATION, item.flag, _FLAG_DISPLAY[item.flag])]}]
+        resource["interpretation"] = [{"coding": [coding(INTERPRETATION, item.flag, _FLAG_DISPLAY[item.flag])]}]
     if item.notes or replaces:
         resource["note"] = [{"text": text} for text in _item_notes(item, replaces)]
     if item.code.method is not None:
@@ -251,7 +224,7 @@ def _contained(parts: _Parts, value: Supporting, tables: Tables, context: EmitCo
         "status": "unknown",
         "code": _concept(value.code, tables, context),
         "subject": parts.subject(),
-        "valueQuantity": _quantity(value.quantity),
+        "valueQuantity": quantity(value.quantity),
         "note": [{"text": "Reported with the lung-function test as the value the adjustment used."}],
     }
 
@@ -260,9 +233,9 @@ def _ranges(item: ResultItem) -> list[Resource]:
     """referenceRange: the charted set's range, GLI-2017 LLN-ULN or the lab's LLN (the other set is in a note)."""
     if item.low is None:
         return []
-    first: Resource = {"low": _quantity(item.low)}
+    first: Resource = {"low": quantity(item.low)}
     if item.high is not None:
-        first["high"] = _quantity(item.high)
+        first["high"] = quantity(item.high)
     first["text"] = item.range_text or LLN_TEXT
     return [first]
 
@@ -275,7 +248,7 @@ def _withdrawn(parts: _Parts, gone: Withdrawn, tables: Tables, context: EmitCont
         "resourceType": "Observation",
         "identifier": [{"system": parts.identifier_system, "value": parts.identifier(gone.key)}],
         "status": "entered-in-error",
-        "category": [{"coding": [_coding(*_PROCEDURE)]}, {"coding": [_section(tables)]}],
+        "category": [{"coding": [coding(*_PROCEDURE)]}, {"coding": [_section(tables)]}],
         "code": _concept(gone.code, tables, context),
         "subject": parts.subject(),
         "effectiveDateTime": parts.effective,
@@ -292,31 +265,17 @@ def _item_notes(item: ResultItem, replaces: bool) -> list[str]:
     return notes
 
 
-def _quantity(quantity: Quantity) -> Resource:
-    """A valueQuantity; the value is a Decimal with the reported digits (7.460 stays 7.460)."""
-    return {
-        "value": Decimal(quantity.text()),
-        "unit": quantity.unit,
-        "system": UCUM,
-        "code": quantity.unit,
-    }
-
-
-def _coding(system: str, code: str, display: str) -> Resource:
-    return {"system": system, "code": code, "display": display}
-
-
 def _section(tables: Tables) -> Resource:
     """The diagnostic service section of a lung-function report: HL7 v2 table 0074 PF (``mappings/hl7_tables.toml``)."""
-    return _coding(V2_0074, tables.hl7.service_section, tables.hl7.service_section_display)
+    return coding(V2_0074, tables.hl7.service_section, tables.hl7.service_section_display)
 
 
 def _concept(code: Code, tables: Tables, context: EmitContext) -> Resource:
     """A CodeableConcept: the code, and the standard code of the same concept beside a local one."""
-    codings = [_coding(code_system_uri(code, tables, context), code.code, code.display)]
+    codings = [coding(code_system_uri(code, tables, context), code.code, code.display)]
     if code.standard is not None:
         standard = code.standard
-        codings.append(_coding(code_system_uri(standard, tables, context), standard.code, standard.display))
+        codings.append(coding(code_system_uri(standard, tables, context), standard.code, standard.display))
     return {"coding": codings, "text": code.display}
 
 
@@ -390,15 +349,3 @@ def _patient_entry(patient: Patient) -> Resource:
     resource["birthDate"] = patient.birth_date.isoformat()
     request = {"method": "POST", "url": "Patient", "ifNoneExist": token_query(patient.id_system, patient.id)}
     return {"fullUrl": full_url(patient.id_system, patient.id), "resource": resource, "request": request}
-
-
-def _instant(moment: datetime) -> str:
-    """A FHIR instant: seconds, or milliseconds when there are any."""
-    require_aware(moment)
-    return moment.isoformat(timespec="milliseconds" if moment.microsecond else "seconds")
-
-
-def require_aware(moment: datetime) -> None:
-    """Refuse a naive date-time: a FHIR instant needs its offset."""
-    if moment.tzinfo is None or moment.utcoffset() is None:
-        raise ValueError(f"FHIR instants need a time zone offset, got naive {moment.isoformat()}")

@@ -17,7 +17,8 @@ from typing import Any
 import orjson
 
 from bridge.emit.content import ReportContent
-from bridge.emit.fhir import Resource, dumps, patient_by_identifier, to_bundle
+from bridge.emit.fhir import patient_by_identifier, to_bundle
+from bridge.emit.fhir_json import Resource, dumps
 from bridge.emit.settings import EmitContext
 from bridge.model import Outcome
 from bridge.tables import Tables

@@ -30,7 +30,7 @@ def provenance_entry(outcome: Outcome, context: EmitContext, recorded: str, targ
     """
     file_value = f"sha256:{outcome.source_sha256}"
     session_value = session_identifier(outcome)
-    session_system = context.session_system
+    session_system = context.site.session_system
     resource: Resource = {
         "resourceType": "Provenance",
         "target": [{"reference": url} for url in targets],
@@ -54,7 +54,7 @@ def provenance_entry(outcome: Outcome, context: EmitContext, recorded: str, targ
             {
                 "role": "source",
                 "what": {
-                    "identifier": {"system": context.source_system, "value": file_value},
+                    "identifier": {"system": context.site.source_system, "value": file_value},
                     "display": outcome.source,
                 },
             },

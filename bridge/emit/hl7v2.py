@@ -68,17 +68,19 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     is already at hand (another emitter built it), otherwise it is built here.
     """
     if content is None:
-        content = build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
+        content = build_content(
+            outcome, tables, context.units, context.site.hemoglobin_unit, context.site.charted_predicted
+        )
     statuses = resolve(outcome, content, tables, context)
     lab = outcome.session.lab.name
-    key = "lab_facilities" if any(name == lab for name, _ in context.lab_facilities) else "sending_facility"
-    facility = _namespace_setting(key, context.facility_of(lab))
+    key = "lab_facilities" if any(name == lab for name, _ in context.site.lab_facilities) else "sending_facility"
+    facility = _namespace_setting(key, context.site.facility_of(lab))
     msh, now = _msh(outcome, context, facility)
     performed = hl7_timestamp(outcome.session.performed_at)
     orders = _order_numbers(outcome, facility)
     segments = [
         msh,
-        _pid(outcome.session.patient, context.patient_identifier_type, tables),
+        _pid(outcome.session.patient, context.site.patient_identifier_type, tables),
         _segment("ORC", "RE", *orders),
         # OBR-25 (HL7 table 0123): P when a value is preliminary (the lab's status, an allowed error finding)
         _obr(orders, tables, now, performed, STATUS_LETTERS[statuses.report]),
@@ -124,9 +126,9 @@ def hl7_date(day: date) -> str:
 
 def _msh(outcome: Outcome, context: EmitContext, sending_facility: str) -> tuple[str, str]:
     """MSH (MSH-4: the lab's facility id, escaped), and the message time as a TS (OBR-22 repeats it)."""
-    sending_application = _namespace_setting("sending_application", context.sending_application)
-    receiving_application = _namespace_setting("receiving_application", context.receiving_application)
-    receiving_facility = _namespace_setting("receiving_facility", context.receiving_facility)
+    sending_application = _namespace_setting("sending_application", context.site.sending_application)
+    receiving_application = _namespace_setting("receiving_application", context.site.receiving_application)
+    receiving_facility = _namespace_setting("receiving_facility", context.site.receiving_facility)
     now = hl7_timestamp(context.now)
     return _segment(
         "MSH",
@@ -139,7 +141,7 @@ def _msh(outcome: Outcome, context: EmitContext, sending_facility: str) -> tuple
         "",
         MESSAGE_TYPE,
         control_id(outcome, context),
-        _namespace_setting("processing_id", context.processing_id),
+        _namespace_setting("processing_id", context.site.processing_id),
         VERSION,
         "",
         "",

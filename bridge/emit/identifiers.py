@@ -42,5 +42,5 @@ def session_identifier(outcome: Outcome) -> str:
 def code_system_uri(code: Code, tables: Tables, context: EmitContext) -> str:
     """The FHIR Coding.system of a code: LOINC from codes.toml, local codes from the site."""
     if code.system == "local":
-        return context.local_system
+        return context.site.local_system
     return tables.codes.systems[code.system]

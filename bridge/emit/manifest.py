@@ -15,7 +15,7 @@ from collections.abc import Sequence
 from decimal import Decimal
 from typing import Any
 
-from bridge.emit.fhir import Resource, dumps
+from bridge.emit.fhir_json import Resource, dumps
 from bridge.hl7.text import FIELD_SEPARATOR, split_fields, split_segments
 from bridge.model import Carried
 

@@ -11,7 +11,8 @@ from __future__ import annotations
 import re
 from collections.abc import Collection, Sequence
 
-from bridge.emit.fhir import dumps, require_aware, to_bundle
+from bridge.emit.fhir import to_bundle
+from bridge.emit.fhir_json import dumps, require_aware
 from bridge.emit.fhir_ndjson import ndjson_lines
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.identifiers import observation_identifier
@@ -74,7 +75,9 @@ def payloads(
     if not kinds:
         return ()
     built = []
-    content = build_content(outcome, tables, context.units, context.hemoglobin_unit, context.charted_predicted)
+    content = build_content(
+        outcome, tables, context.units, context.site.hemoglobin_unit, context.site.charted_predicted
+    )
     if not content.items:
         # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
         raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)
@@ -112,7 +115,7 @@ def payloads(
                     message_id=control_id(outcome, context),
                     content_type=HL7_V2_ER7,
                     data=er7.encode(),
-                    carried=hl7_carried(er7, context.observation_system, ids),
+                    carried=hl7_carried(er7, context.site.observation_system, ids),
                 )
             )
     return tuple(built)

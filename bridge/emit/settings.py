@@ -3,21 +3,23 @@
 Owns: :class:`EmitSettings` (sending and receiving application and facility, the facility id of
 each lab, the site's base URL for its own identifier and code systems, how the patient is
 referred to, the patient identifier type, the HL7 processing id, the haemoglobin unit, whose
-predicted values are charted) and
-:class:`EmitContext`, what an emitter is given for one message: these settings with the time
-the shell read, the destination's units, whether it is a correction and what was sent before.
+predicted values are charted; the identifier and code systems built from ``system_base``) and
+:class:`EmitContext`, what an emitter is given for one message: the time the shell read, the
+destination's units, whether it is a correction, these settings as one value (``site``, never
+copied field by field) and what was sent before.
 Checking the values is ``bridge.config``'s job when it reads them.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Literal
 
-from bridge.science.units import UnitSystem
+from bridge.science.units import DEFAULT_UNITS, UnitSystem
 
 PatientReference = Literal["conditional-create", "identifier"]
+PATIENT_REFERENCES: tuple[PatientReference, ...] = ("identifier", "conditional-create")
 # A placeholder base for the site's own identifier and code systems (RFC 2606 reserves
 # ``.example``): every site sets ``emit.system_base`` to a URL it controls.
 DEFAULT_SYSTEM_BASE = "https://pft-site.example/dlco-bridge"
@@ -54,58 +56,8 @@ class EmitSettings:
         self, now: datetime, units: UnitSystem, correction: bool = False, earlier: tuple[tuple[str, str], ...] = ()
     ) -> EmitContext:
         """The emitters' context for one message: these settings, the time the shell read, the ledger's record."""
-        return EmitContext(
-            now=now.replace(microsecond=0),
-            units=units,
-            sending_application=self.sending_application,
-            sending_facility=self.sending_facility,
-            receiving_application=self.receiving_application,
-            receiving_facility=self.receiving_facility,
-            system_base=self.system_base,
-            local_code_system=self.local_code_system,
-            identifier_system=self.identifier_system,
-            patient_reference=self.patient_reference,
-            correction=correction,
-            earlier=earlier,
-            processing_id=self.processing_id,
-            lab_facilities=self.lab_facilities,
-            patient_identifier_type=self.patient_identifier_type,
-            hemoglobin_unit=self.hemoglobin_unit,
-            charted_predicted=self.charted_predicted,
-        )
-
-
-_SITE = EmitSettings()  # the defaults, read by EmitContext's fields: written once, above
-
-
-@dataclass(frozen=True, slots=True)
-class EmitContext:
-    """Everything an emitter needs that is not in the record: time, identity, site settings.
-
-    The shell builds it (it reads the clock and the configuration), usually with
-    :meth:`EmitSettings.context`; emitters never do. The site's fields mean what they mean
-    in :class:`EmitSettings` and default to its defaults.
-    """
-
-    now: datetime
-    units: UnitSystem = "traditional"
-    sending_application: str = _SITE.sending_application
-    sending_facility: str = _SITE.sending_facility
-    receiving_application: str = _SITE.receiving_application
-    receiving_facility: str = _SITE.receiving_facility
-    system_base: str = _SITE.system_base
-    local_code_system: str | None = _SITE.local_code_system
-    identifier_system: str | None = _SITE.identifier_system
-    patient_reference: PatientReference = _SITE.patient_reference
-    correction: bool = False  # new content for a test id that was already sent
-    # What was sent before for this test: (identifier value, status as last sent: "final", "C",
-    # "entered-in-error" ...), from the ledger; empty when nothing was or the ledger keeps no record.
-    earlier: tuple[tuple[str, str], ...] = ()
-    processing_id: str = _SITE.processing_id
-    lab_facilities: tuple[tuple[str, str], ...] = _SITE.lab_facilities
-    patient_identifier_type: str = _SITE.patient_identifier_type
-    hemoglobin_unit: str | None = _SITE.hemoglobin_unit
-    charted_predicted: ChartedPredicted = _SITE.charted_predicted
+        return EmitContext(now=now.replace(microsecond=0), units=units, correction=correction, site=self,
+                           earlier=earlier)  # fmt: skip
 
     @property
     def observation_system(self) -> str:
@@ -130,3 +82,21 @@ class EmitContext:
     def facility_of(self, lab_name: str) -> str:
         """The HL7 facility id of the lab that performed the test; the site's default otherwise."""
         return next((facility for name, facility in self.lab_facilities if name == lab_name), self.sending_facility)
+
+
+@dataclass(frozen=True, slots=True)
+class EmitContext:
+    """Everything an emitter needs that is not in the record: time, units, correction, the site's settings.
+
+    The shell builds it (it reads the clock and the configuration), usually with
+    :meth:`EmitSettings.context`; emitters never do. The site's identity is ``site`` (its
+    defaults are :class:`EmitSettings`'s), never repeated here.
+    """
+
+    now: datetime
+    units: UnitSystem = DEFAULT_UNITS
+    correction: bool = False  # new content for a test id that was already sent
+    site: EmitSettings = field(default_factory=EmitSettings)
+    # What was sent before for this test: (identifier value, status as last sent: "final", "C",
+    # "entered-in-error" ...), from the ledger; empty when nothing was or the ledger keeps no record.
+    earlier: tuple[tuple[str, str], ...] = ()

@@ -19,7 +19,7 @@ from collections.abc import Collection, Mapping
 from decimal import Decimal
 from typing import Any
 
-from bridge.emit.fhir import dumps
+from bridge.emit.fhir_json import dumps
 from bridge.reconcile.engine import Expected
 
 Key = tuple[str, str, str]  # resource type, identifier system, identifier value

@@ -21,6 +21,9 @@ TRADITIONAL_PER_SI = 2.987
 TRADITIONAL_PER_SI_ALTERNATIVE = 2.986
 
 UnitSystem = Literal["si", "traditional"]
+UNIT_SYSTEMS: tuple[UnitSystem, ...] = ("si", "traditional")
+DEFAULT_UNITS: UnitSystem = "traditional"  # what check shows, convert writes and a destination gets, unless set
+TRADITIONAL_PER_SI_CHOICES = (TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE)  # what traditional_per_si may be
 
 
 @dataclass(frozen=True, slots=True)

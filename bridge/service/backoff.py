@@ -8,8 +8,9 @@ from __future__ import annotations
 
 from collections.abc import Callable
 
-DEFAULT_BASE = 1.0
-DEFAULT_CAP = 300.0
+from bridge.service.settings import RETRY_BASE_SECONDS, RETRY_CAP_SECONDS
+
+DEFAULT_BASE, DEFAULT_CAP = RETRY_BASE_SECONDS, RETRY_CAP_SECONDS  # the service's defaults, written once there
 
 # 2**62 seconds is far beyond any cap; stopping the exponent there avoids float overflow
 # for a message that has been failing for a very long time.

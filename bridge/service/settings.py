@@ -7,18 +7,26 @@ is ``bridge.config``'s job; ``bridge.config.Settings`` carries them as ``service
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
 from typing import Literal
 from urllib.parse import urlsplit, urlunsplit
 
 from bridge.model import OutputKind
-from bridge.science.units import UnitSystem
+from bridge.science.units import DEFAULT_UNITS, UnitSystem
 
 TransportKind = Literal["file", "mllp", "fhir-rest"]
 AnswerPolicy = Literal["dead-letter", "retry"]
 ANSWER_POLICIES: tuple[AnswerPolicy, ...] = ("dead-letter", "retry")
 TRANSPORT_KINDS: tuple[TransportKind, ...] = ("file", "mllp", "fhir-rest")
+CONNECT_TIMEOUT = 10.0  # seconds to connect, MLLP and FHIR alike
+# Seconds for the answer, by transport: a FHIR server processes a whole transaction Bundle before it
+# answers, an MLLP receiver only acknowledges (the file transport waits on nothing).
+READ_TIMEOUTS: Mapping[TransportKind, float] = MappingProxyType({"mllp": 30.0, "fhir-rest": 60.0, "file": 0.0})
+RETRY_BASE_SECONDS = 1.0  # the outbox's back-off: the first retry's largest delay, doubling from there
+RETRY_CAP_SECONDS = 300.0  # ... up to this
 
 
 @dataclass(frozen=True, slots=True)
@@ -27,8 +35,8 @@ class Destination:
 
     name: str
     payload: OutputKind
-    units: UnitSystem
     transport: TransportKind
+    units: UnitSystem = DEFAULT_UNITS
     folder: Path | None = None  # file
     host: str = "127.0.0.1"  # mllp
     port: int = 0
@@ -38,8 +46,8 @@ class Destination:
     ca_file: Path | None = None
     cert_file: Path | None = None
     key_file: Path | None = None
-    connect_timeout: float = 10.0
-    read_timeout: float = 30.0
+    connect_timeout: float = CONNECT_TIMEOUT
+    read_timeout: float | None = None  # None: the transport's own, READ_TIMEOUTS
     on_ae: AnswerPolicy = "dead-letter"  # mllp: what an AE/CE answer means
     on_ar: AnswerPolicy = "dead-letter"  # mllp: what an AR/CR answer means (some receivers: "busy")
     on_busy: AnswerPolicy = "retry"  # fhir-rest: HTTP 429/503 (Retry-After honoured when retried)
@@ -48,6 +56,11 @@ class Destination:
     private_key_file: Path | None = None  # PEM, RSA (RS384) or EC P-384 (ES384)
     scopes: str = "system/*.write"
     reconcile_in_flight: int = 4  # fhir-rest: searches reconcile runs at once against this server
+
+    @property
+    def answer_timeout(self) -> float:
+        """Seconds the transport waits for an answer: ``read_timeout`` if set, else the transport's default."""
+        return READ_TIMEOUTS[self.transport] if self.read_timeout is None else self.read_timeout
 
     @property
     def address(self) -> str:
@@ -72,8 +85,8 @@ class ServiceSettings:
     destinations: tuple[Destination, ...]
     rescan_seconds: float = 5.0
     stable_seconds: float = 1.0
-    retry_base_seconds: float = 1.0
-    retry_cap_seconds: float = 300.0
+    retry_base_seconds: float = RETRY_BASE_SECONDS
+    retry_cap_seconds: float = RETRY_CAP_SECONDS
     metrics_port: int = 0  # 0: no health/metrics endpoint
     metrics_host: str = "127.0.0.1"
     log_format: Literal["text", "json"] = "text"

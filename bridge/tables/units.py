@@ -11,10 +11,8 @@ from collections.abc import Mapping
 from types import MappingProxyType
 
 from bridge.errors import MappingError
-from bridge.science.units import TRADITIONAL_PER_SI, UnitCatalogue, UnitDef, alias_key
+from bridge.science.units import TRADITIONAL_PER_SI, UNIT_SYSTEMS, UnitCatalogue, UnitDef, alias_key
 from bridge.tables.toml import read_toml
-
-UNIT_SYSTEMS = ("si", "traditional")
 
 
 def unit_catalogue(
@@ -36,7 +34,9 @@ def unit_catalogue(
         if base not in units or units[base].factor != 1.0:
             raise MappingError(name, f"dimensions.{dimension}", "a unit with factor 1.0")
     limits = {dimension: _limit(name, dimension, data.get("limits", {})) for dimension in dimensions}
-    display = {system: _display(name, system, data.get("display", {}), units) for system in UNIT_SYSTEMS}
+    display: dict[str, Mapping[str, str]] = {
+        system: _display(name, system, data.get("display", {}), units) for system in UNIT_SYSTEMS
+    }
     return UnitCatalogue(units, aliases, dimensions, limits, display, traditional_per_si)
 
 

@@ -11,7 +11,7 @@ from hl7apy.v2_5_1.tables import TABLES as HL7APY_TABLES
 
 from bridge.emit.fhir import to_bundle
 from bridge.emit.hl7v2 import to_oru
-from bridge.emit.settings import EmitContext
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.errors import InputError
 from bridge.model import Outcome, Severity
 from bridge.pipeline import process
@@ -20,7 +20,7 @@ from bridge.tables.files import mappings_dir
 from tests.conftest import SAMPLES
 
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
-FHIR = EmitContext(now=NOW, units="si", patient_reference="conditional-create")
+FHIR = EmitContext(now=NOW, units="si", site=EmitSettings(patient_reference="conditional-create"))
 HL7_CONTEXT = EmitContext(now=NOW, units="si")
 DLCO_LOINC = "19911-7"  # source: LOINC 19911-7 "Diffusion capacity.carbon monoxide" (mappings/codes.toml)
 

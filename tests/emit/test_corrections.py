@@ -18,9 +18,10 @@ from fhir.resources.R4B.bundle import Bundle
 from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.parser import parse_message
 
-from bridge.emit.fhir import dumps, to_bundle
+from bridge.emit.fhir import to_bundle
+from bridge.emit.fhir_json import dumps
 from bridge.emit.hl7v2 import to_oru
-from bridge.emit.settings import EmitContext
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.model import Outcome
 from bridge.pipeline import Route, process
 from bridge.tables import Tables
@@ -31,6 +32,7 @@ from tests.fhir_schema import bundle_errors, shared_validators
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 LATER = datetime(2026, 3, 11, 9, 30, tzinfo=UTC)
 ROUTES = (Route("fhir", "si"), Route("hl7", "si"))
+CONDITIONAL_CREATE = EmitSettings(patient_reference="conditional-create")
 PREFIX = "lowmarsh-respiratory-physiology-lab-fictional.LOW-2026-0001."  # lab slug and test id of sample 01
 
 
@@ -65,7 +67,7 @@ def _by_key(bundle: dict[str, Any]) -> dict[str, dict[str, Any]]:
 
 
 def _correction_context(earlier: tuple[tuple[str, str], ...]) -> EmitContext:
-    return EmitContext(now=LATER, units="si", patient_reference="conditional-create", correction=True, earlier=earlier)
+    return EmitContext(now=LATER, units="si", correction=True, site=CONDITIONAL_CREATE, earlier=earlier)
 
 
 def test_the_original_carries_its_identifiers_and_statuses(tables: Tables) -> None:

@@ -33,9 +33,10 @@ from fhir.resources.R4B.bundle import Bundle
 from fhirpathpy import evaluate
 from ucumvert import get_ucum_parser
 
-from bridge.emit.fhir import bundle_json, indented, to_bundle
+from bridge.emit.fhir import bundle_json, to_bundle
+from bridge.emit.fhir_json import indented
 from bridge.emit.fhir_ndjson import to_ndjson
-from bridge.emit.settings import EmitContext
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.model import Outcome
 from bridge.pipeline import process
 from bridge.tables import Tables
@@ -52,12 +53,12 @@ LOINC = "http://loinc.org"
 LOCAL = "https://pft-site.example/dlco-bridge/local-code"  # the documented placeholder default
 
 VARIANTS = [
-    EmitContext(now=NOW, units=units, patient_reference=mode, correction=correction)
+    EmitContext(now=NOW, units=units, correction=correction, site=EmitSettings(patient_reference=mode))
     for units in ("si", "traditional")
     for mode in ("conditional-create", "identifier")
     for correction in (False, True)
 ]
-GOLDEN_CONTEXT = EmitContext(now=NOW, units="si", patient_reference="conditional-create")
+GOLDEN_CONTEXT = EmitContext(now=NOW, units="si", site=EmitSettings(patient_reference="conditional-create"))
 
 
 # ---------- fixtures ----------
@@ -369,7 +370,7 @@ def test_patient_by_identifier_has_no_patient_entry(fhir_outcomes, fhir_tables):
     """patient_reference 'identifier': no Patient entry; every subject is a conditional reference a server resolves."""
     # source: FHIR R4 http.html#trules, "Conditional References": in a transaction a reference may be
     # a search URI "Patient?identifier=system|value", resolved by the server to the one match
-    context = replace(GOLDEN_CONTEXT, patient_reference="identifier")
+    context = replace(GOLDEN_CONTEXT, site=EmitSettings(patient_reference="identifier"))
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, context)
     expected = {
         "reference": "Patient?identifier=https://fenwick-hollow.example/fictional-patient-id|FICT-1001",
@@ -589,7 +590,7 @@ def test_the_site_base_names_every_own_system(fhir_outcomes, fhir_tables):
     """With emit.system_base set, observation ids, local codes and source files are systems under it."""
     # source: FHIR R4 datatypes.html, Identifier.system: "Establishes the namespace for the value"
     base = "https://fenwick-hollow.example/dlco-bridge"
-    context = replace(GOLDEN_CONTEXT, system_base=base)
+    context = replace(GOLDEN_CONTEXT, site=replace(GOLDEN_CONTEXT.site, system_base=base))
     bundle = to_bundle(fhir_outcomes["01-healthy-adult"], fhir_tables, context)
     va = _observation(bundle, "va")
     provenance = _resources(bundle, "Provenance")[0]
@@ -633,7 +634,7 @@ def test_ndjson_without_patient_entry_refers_by_identifier(fhir_outcomes, fhir_t
     """Bulk NDJSON has no transaction to resolve Patient?identifier=...: the subject is a logical reference."""
     # source: FHIR R4 http.html#trules (conditional references are resolved only in a transaction);
     # references.html, Reference.identifier (a logical reference)
-    context = replace(GOLDEN_CONTEXT, patient_reference="identifier")
+    context = replace(GOLDEN_CONTEXT, site=EmitSettings(patient_reference="identifier"))
     files = to_ndjson([fhir_outcomes["01-healthy-adult"]], fhir_tables, context)
     subjects = [json.loads(line)["subject"] for line in files["Observation"].splitlines()]
     expected = {

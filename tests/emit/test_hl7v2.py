@@ -31,7 +31,7 @@ from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7v2 import control_id, hl7_timestamp, namespace_id, numeric_text, to_oru
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.outputs import payloads
-from bridge.emit.settings import EmitContext
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.errors import ConfigError, InvalidField
 from bridge.hl7.text import escape, escape_formatted, split_fields, split_segments, unescape
 from bridge.model import Outcome
@@ -372,7 +372,9 @@ def test_payloads_share_one_content(sample_outcomes, tables):
     """payloads() builds the content once for both outputs: the bytes each emitter gives alone."""
     # common practice: one conversion, the same bytes whichever way the outputs are asked for
     for correction in (False, True):
-        context = EmitContext(now=NOW, units="si", correction=correction, patient_reference="conditional-create")
+        context = EmitContext(
+            now=NOW, units="si", correction=correction, site=EmitSettings(patient_reference="conditional-create")
+        )
         for outcome in sample_outcomes.values():
             fhir, oru = payloads(outcome, tables, context, ("fhir", "hl7"))
 
@@ -412,7 +414,7 @@ def test_over_long_identifier_is_refused(sample_outcomes, tables):
 def test_over_long_sending_application_is_a_config_error(sample_outcomes, tables):
     """A sending application over 20 characters is a ConfigError naming the setting."""
     # source: hl7apy STRICT IS max length 20 (HD namespace id)
-    context = EmitContext(now=NOW, sending_application="X" * 21)
+    context = EmitContext(now=NOW, site=EmitSettings(sending_application="X" * 21))
 
     with pytest.raises(ConfigError) as caught:
         to_oru(sample_outcomes[STEMS[0]], tables, context)
@@ -503,8 +505,10 @@ def test_values_computed_by_the_bridge_say_so(sample_outcomes, tables):
 LOWMARSH = "Lowmarsh Respiratory Physiology Lab (fictional)"
 SITE_CONTEXT = dataclasses.replace(
     GOLDEN_CONTEXT,
-    sending_facility="FENWICK-PFT",
-    lab_facilities=((LOWMARSH, "LOWMARSH-PFT"), ("Highcairn Lung Function Unit (fictional)", "HIGHCAIRN-PFT")),
+    site=EmitSettings(
+        sending_facility="FENWICK-PFT",
+        lab_facilities=((LOWMARSH, "LOWMARSH-PFT"), ("Highcairn Lung Function Unit (fictional)", "HIGHCAIRN-PFT")),
+    ),
 )
 
 
@@ -557,7 +561,7 @@ def test_without_a_placer_number_orc2_and_obr2_stay_empty(sample_outcomes, table
 def test_a_lab_not_in_the_table_is_sent_as_the_site(sample_outcomes, tables):
     """MSH-4 and the filler namespace fall back to emit.sending_facility for an unlisted lab."""
     # source: HL7 v2.5.1 ch. 2, MSH-4 (HD) and ch. 4, ORC-3 (EI.2 namespace id)
-    context = dataclasses.replace(SITE_CONTEXT, lab_facilities=())
+    context = dataclasses.replace(SITE_CONTEXT, site=dataclasses.replace(SITE_CONTEXT.site, lab_facilities=()))
     parsed = hl7.parse(to_oru(sample_outcomes["01-healthy-adult"], tables, context))
 
     assert ["FENWICK-PFT", "FENWICK-PFT"] == [str(parsed.segment("MSH")[4]), str(parsed.segment("OBR")[3][0][1])]
@@ -566,7 +570,9 @@ def test_a_lab_not_in_the_table_is_sent_as_the_site(sample_outcomes, tables):
 def test_patient_identifier_type_follows_the_setting(sample_outcomes, tables):
     """PID-3 CX.5 carries the configured identifier type code."""
     # source: HL7 v2.5.1 ch. 2, table 0203 (PI patient internal identifier)
-    context = dataclasses.replace(SITE_CONTEXT, patient_identifier_type="PI")
+    context = dataclasses.replace(
+        SITE_CONTEXT, site=dataclasses.replace(SITE_CONTEXT.site, patient_identifier_type="PI")
+    )
     parsed = hl7.parse(to_oru(sample_outcomes["01-healthy-adult"], tables, context))
 
     assert "PI" == str(parsed.segment("PID")[3][0][4])

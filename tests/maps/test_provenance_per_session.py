@@ -8,7 +8,7 @@ from datetime import UTC, datetime
 
 from bridge.emit.fhir import to_bundle
 from bridge.emit.fhir_ndjson import to_ndjson
-from bridge.emit.settings import EmitContext
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process_all
 from bridge.tables import Tables
@@ -16,7 +16,7 @@ from bridge.tables.field_map_model import FieldMap
 from tests.maps.conftest import CSV_SAMPLE
 
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
-CONTEXT = EmitContext(now=NOW, units="si", patient_reference="conditional-create")
+CONTEXT = EmitContext(now=NOW, units="si", site=EmitSettings(patient_reference="conditional-create"))
 
 
 def _sessions(tables: Tables, csv_map: FieldMap) -> list[Outcome]:
@@ -61,7 +61,7 @@ def test_each_provenance_targets_its_own_session_and_names_file_and_session(tabl
 def test_ndjson_keeps_one_provenance_per_session(tables: Tables, csv_map: FieldMap) -> None:
     """The bulk-load NDJSON of the two-session file has two Provenances, each targeting its own report."""
     outcomes = _sessions(tables, csv_map)
-    files = to_ndjson(outcomes, tables, replace(CONTEXT, patient_reference="identifier"))
+    files = to_ndjson(outcomes, tables, replace(CONTEXT, site=EmitSettings(patient_reference="identifier")))
     provenances = [json.loads(line) for line in files["Provenance"].splitlines()]
     reports = {json.loads(line)["id"] for line in files["DiagnosticReport"].splitlines()}
     targeted = [

@@ -32,6 +32,7 @@ from bridge.errors import (
     Rejected,
     RetryLater,
 )
+from bridge.service.settings import CONNECT_TIMEOUT, READ_TIMEOUTS
 from bridge.service.transports.base import (
     FHIR_JSON,
     DeliveryReceipt,
@@ -41,8 +42,8 @@ from bridge.service.transports.base import (
 )
 from bridge.service.transports.smart import SmartClient, SmartTokens
 
-DEFAULT_CONNECT_TIMEOUT = 10.0
-DEFAULT_READ_TIMEOUT = 60.0
+DEFAULT_CONNECT_TIMEOUT = CONNECT_TIMEOUT
+DEFAULT_READ_TIMEOUT = READ_TIMEOUTS["fhir-rest"]
 MAX_TEXT = 500  # keep ledger rows and status lines readable
 
 # 4xx answers that say nothing against the message itself: bad credentials, a proxy

@@ -24,6 +24,7 @@ from bridge.errors import ConnectFailed, DeliveryError, DeliveryTimeout, Rejecte
 from bridge.hl7.ack import Ack, parse_ack
 from bridge.hl7.mllp import END_BLOCK, START_BLOCK, FrameReader, can_be_framed, frame
 from bridge.hl7.text import control_id_of
+from bridge.service.settings import CONNECT_TIMEOUT, READ_TIMEOUTS
 from bridge.service.transports.base import (
     DeliveryReceipt,
     OutgoingMessage,
@@ -49,8 +50,8 @@ __all__ = [
 ACCEPTED = load_hl7_tables().answered_with("accept")
 REFUSED = frozenset(load_hl7_tables().acknowledgments) - ACCEPTED
 
-DEFAULT_CONNECT_TIMEOUT = 10.0
-DEFAULT_READ_TIMEOUT = 30.0
+DEFAULT_CONNECT_TIMEOUT = CONNECT_TIMEOUT
+DEFAULT_READ_TIMEOUT = READ_TIMEOUTS["mllp"]
 MAX_ACK_BYTES = 1 << 20  # an ACK is a few hundred bytes; anything huge is not one
 _CHUNK = 65536
 
