@@ -103,14 +103,15 @@ def test_a_fhir_url_without_a_host_is_refused():
     assert "destination.store.base_url" == _error(text).key
 
 
-@pytest.mark.parametrize(("value", "expected"), [("0", ">= 1"), ("2.5", "a whole number"), ("many", "a number")])
+@pytest.mark.parametrize(("value", "expected"), [("0", "from 1 to"), ("2.5", "a whole number"), ("many", "a number")])
 def test_reconcile_in_flight_is_a_whole_number_of_at_least_one(value, expected):
-    """destination.NAME.reconcile_in_flight (here from the environment): 0, 2.5 or a word is refused, naming the key."""
+    """destination.NAME.reconcile_in_flight (here from the environment): 0, 2.5 or a word is refused, naming the
+    variable it came from."""
     text = 'inbox = "i"\narchive = "a"\nquarantine = "q"\nstate = "s"\n'
     text += '[destination.store]\npayload = "fhir"\ntransport = "fhir-rest"\nbase_url = "https://h.example/fhir"\n'
     error = _error(text, {"DLCO_BRIDGE_DESTINATION_STORE_RECONCILE_IN_FLIGHT": value})
 
-    assert ("destination.store.reconcile_in_flight", True) == (error.key, expected in error.expected)
+    assert ("DLCO_BRIDGE_DESTINATION_STORE_RECONCILE_IN_FLIGHT", True) == (error.key, expected in error.expected)
 
 
 def test_service_settings_are_required_only_by_the_service():

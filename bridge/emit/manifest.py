@@ -30,8 +30,8 @@ def fhir_carried(bundle: Resource) -> tuple[Carried, ...]:
 def _resource(resource: Resource) -> Carried:
     kind = str(resource["resourceType"])
     digest = hashlib.sha256(dumps(resource, indent=False)).hexdigest()
-    if kind == "Provenance":  # no identifier in R4: its session entity (the last) is its key
-        identifier = resource["entity"][-1]["what"]["identifier"]
+    if kind == "Provenance":  # no identifier in R4: its session entity (the first) is its key
+        identifier = resource["entity"][0]["what"]["identifier"]
         system, value = identifier["system"], identifier["value"]
         return Carried(resource_type=kind, identifier_system=system, identifier_value=value, digest=digest)
     identifier = resource["identifier"][0]

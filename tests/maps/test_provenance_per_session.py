@@ -8,6 +8,7 @@ from datetime import UTC, datetime
 
 from bridge.emit.fhir import to_bundle
 from bridge.emit.fhir_ndjson import to_ndjson
+from bridge.emit.manifest import fhir_carried
 from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process_all
@@ -40,7 +41,7 @@ def test_two_sessions_of_one_file_get_two_provenances(tables: Tables, csv_map: F
 
 
 def test_each_provenance_targets_its_own_session_and_names_file_and_session(tables: Tables, csv_map: FieldMap) -> None:
-    """Each Provenance targets exactly its session's entries; its entities are the file's hash and the session."""
+    """Each Provenance targets exactly its session's entries; its entities are the session and the file's hash."""
     # source: FHIR R4 provenance.html: target "The Reference(s) that were generated or updated by the
     # activity"; entity "An entity used in this activity"
     for outcome in _sessions(tables, csv_map):
@@ -52,9 +53,9 @@ def test_each_provenance_targets_its_own_session_and_names_file_and_session(tabl
         )
 
         assert [{"reference": e["fullUrl"]} for e in bundle["entry"][:-1]] == provenance["target"]
-        assert [
-            {"system": "https://pft-site.example/dlco-bridge/source-file", "value": f"sha256:{outcome.source_sha256}"},
+        assert [  # the session first: it keys the Provenance; the file's hash, shared by both sessions, second
             {"system": "https://pft-site.example/dlco-bridge/source-session", "value": session_value},
+            {"system": "https://pft-site.example/dlco-bridge/source-file", "value": f"sha256:{outcome.source_sha256}"},
         ] == identifiers
 
 
@@ -73,3 +74,19 @@ def test_ndjson_keeps_one_provenance_per_session(tables: Tables, csv_map: FieldM
     assert 2 == len(reports)
     assert [1, 1] == [len(t) for t in targeted]
     assert reports == targeted[0] | targeted[1]
+
+
+def test_the_ledger_records_each_provenance_under_its_session(tables: Tables, csv_map: FieldMap) -> None:
+    """What the ledger keeps of what was sent names each session's Provenance by the session, not the shared file."""
+    # source: FHIR R4 provenance.html: Provenance has no identifier; the session entity is the key the
+    # conditional create (ifNoneExist) and reconcile search by, so the sent record must use the same one
+    keys = []
+    for outcome in _sessions(tables, csv_map):
+        bundle = to_bundle(outcome, tables, CONTEXT)
+        (carried,) = [c for c in fhir_carried(bundle) if c.resource_type == "Provenance"]
+        query = bundle["entry"][-1]["request"]["ifNoneExist"]
+        keys.append((carried.identifier_system, carried.identifier_value))
+
+        assert carried.identifier_system.endswith("/source-session")
+        assert query.endswith(carried.identifier_value.replace("|", "\\|"))
+    assert 2 == len(set(keys))

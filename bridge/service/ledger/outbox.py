@@ -233,11 +233,8 @@ class OutboxLedger(Database):
 
     def delivered_message(self, destination: str, message_id: str) -> OutboxRow | None:
         """The latest delivered row of ``destination`` with this message id (what ``reconcile --resend`` rebuilds)."""
-        row = self._one(
-            f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE destination = ? AND message_id = ? AND state = 'delivered' "
-            "ORDER BY id DESC LIMIT 1",
-            (destination, message_id),
-        )
+        query = f"SELECT {_OUTBOX_COLUMNS} FROM outbox WHERE destination = ? AND message_id = ? AND state = 'delivered'"
+        row = self._one(query + " ORDER BY id DESC LIMIT 1", (destination, message_id))
         return None if row is None else _outbox(row)
 
     def enqueue_again(self, message: NewMessage, input_sha256: str) -> tuple[int, str]:
