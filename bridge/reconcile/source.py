@@ -1,7 +1,8 @@
 """What was sent, as ``reconcile`` reads it: the ledger of a feed, or an archive through the one pipeline (shell).
 
-Owns :func:`expected_from_ledger` (the resources a FHIR destination was sent, the latest per test
-id: the one place the ledger is read for them), :func:`acknowledgements` (what an HL7 v2
+Owns :func:`expected_from_ledger` (the resources a FHIR destination was sent, from the ledger's
+durable record of each one, the latest per identifier: the one place the ledger is read for
+them), :func:`acknowledgements` (what an HL7 v2
 destination answered, from the same ledger) and :func:`expected_from_outcomes` (what the
 pipeline would send for each session of an archive: the bytes ``convert`` writes). It must not
 search a server or classify anything.
@@ -23,15 +24,33 @@ PAGE = 50  # outbox rows (with their payloads, some 50-70 kB each) read at a tim
 
 def expected_from_ledger(ledger: Ledger, destination: str, since: float | None) -> Iterator[Expected | Verdict]:
     """Every resource the ledger says ``destination`` (a FHIR one) was sent and acknowledged, the latest
-    per test id, delivered at ``since`` or later; a message whose resources cannot be listed any more
+    per identifier, delivered at ``since`` or later; a message whose resources cannot be listed any more
     comes as an ``unchecked`` verdict.
 
-    For now this reads the delivered transaction Bundles kept in the outbox, so a message whose
-    payload ``prune`` removed cannot be listed. It switches to ``Ledger.sent_resources`` (the
-    ledger's durable record of every sent resource, kept per test id and destination, surviving
-    prune) once that lands: the one function to change.
+    What was sent is the ledger's durable record of every sent resource (``Ledger.sent_resources``:
+    identifier, code, value and unit as sent, status, digest), kept per destination after ``prune``
+    removed the payloads. A message delivered before the ledger kept that record (an older ledger)
+    is read from its stored Bundle, as long as ``prune`` has left it.
     """
+    at = None if since is None else datetime.fromtimestamp(since, UTC)
+    recorded: set[str] = set()  # test ids the durable record lists
+    names: dict[int, str] = {}  # outbox row -> its message id (what --resend asks the outbox for)
+    for sent in ledger.sent_resources(destination, at):
+        if sent.kind != "fhir":
+            continue
+        recorded.add(sent.test_id)
+        if sent.message_id not in names:
+            row = ledger.get(sent.message_id)
+            names[sent.message_id] = row.message_id if row is not None else ""  # "": the row itself was pruned
+        yield Expected(destination=destination, kind="fhir", lab=sent.lab, test_id=sent.test_id,
+                       resource_type=sent.resource_type, identifier_system=sent.identifier_system,
+                       identifier_value=sent.identifier_value, code_system=sent.code_system or "",
+                       code=sent.code or "", value=sent.value or "", unit=sent.unit or "", status=sent.status,
+                       digest=sent.digest, message_id=names[sent.message_id],
+                       sent_at=sent.sent_at.timestamp())  # fmt: skip
     for row in _rows(ledger, destination, since, delivered_only=True):
+        if row.test_id in recorded:
+            continue
         if not row.payload:
             said = f"delivered {_day(row.delivered_at)}; its payload was pruned, so what it held cannot be listed"
             yield Verdict("unchecked", destination, "Bundle", "outbox message", row.message_id, row.test_id,

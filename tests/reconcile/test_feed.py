@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import sqlite3
 from decimal import Decimal
 from typing import Any
 
@@ -145,10 +146,24 @@ def test_since_checks_only_what_was_sent_since_and_finds_nothing_unexpected(make
     assert (0, len(feed.store.all()) - 1) == (earlier[0], earlier[2]["counts"]["present"])
 
 
-def test_pruned_payloads_are_unchecked_and_nothing_is_called_unexpected(make_feed: Any):
-    """A message whose payload prune removed cannot be listed: one unchecked row each, no unexpected scan."""
+def test_pruned_payloads_are_still_reconciled_from_the_ledgers_record_of_what_was_sent(make_feed: Any):
+    """prune removes every delivered payload: what was sent is still known resource by resource, all found: exit 0."""
     feed = make_feed(2)
-    feed.ledger.prune(0.0, 3650.0)  # every delivered payload goes
+    held = len(feed.store.all())
+    feed.ledger.prune(0.0, 3650.0)  # every delivered payload goes; the record of what was sent stays
+
+    code, rows, summary = feed.reconcile("--destination", "fhir-store")
+
+    assert (0, [], {"present": held}) == (code, rows, summary["counts"])
+
+
+def test_an_older_ledgers_pruned_message_is_unchecked_and_nothing_is_called_unexpected(make_feed: Any):
+    """A message delivered before the ledger kept its record of what was sent, its payload pruned: one unchecked
+    row per test id, and no scan for unexpected resources (what was sent is not fully known)."""
+    feed = make_feed(2)
+    with sqlite3.connect(feed.root / "state" / "ledger.sqlite3") as older:
+        older.execute("DELETE FROM sent_resources")  # as a ledger from before the record existed
+    feed.ledger.prune(0.0, 3650.0)
 
     code, rows, summary = feed.reconcile("--destination", "fhir-store")
 
