@@ -266,3 +266,11 @@ def test_a_variable_for_a_destination_the_file_lacks_names_the_variable():
     error = _error(text, {"DLCO_BRIDGE_DESTINATION_RECORD_PORT": "2576"})
 
     assert ("DLCO_BRIDGE_DESTINATION_RECORD_PORT", "") == (error.key, error.source)
+
+
+def test_an_unknown_output_kind_is_named_as_typed():
+    """--to given twice, one of them mistyped: the error names the mistyped word, not the list the flags became."""
+    with pytest.raises(ConfigError) as caught:
+        parse_settings("", {}, flags={"to": ["fhir", "hl8"]})
+
+    assert ("--to", "fhir, hl7 or fhir,hl7, got 'hl8'") == (caught.value.key, caught.value.expected)

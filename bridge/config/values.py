@@ -112,8 +112,9 @@ class ValueChecker:
     def kinds(self, key: str, value: Any) -> tuple[OutputKind, ...]:
         words = self.words(key, value, "fhir, hl7 or fhir,hl7")
         unknown = [w for w in words if w not in OUTPUT_KINDS]
-        if unknown or not words:
-            raise self.fail(key, f"fhir, hl7 or fhir,hl7, got {value!r}")
+        if unknown or not words:  # name the word that is wrong, as the user typed it (not a list's repr)
+            got = ", ".join(repr(w) for w in unknown) if unknown else "nothing"
+            raise self.fail(key, f"fhir, hl7 or fhir,hl7, got {got}")
         return tuple(k for k in OUTPUT_KINDS if k in words)
 
     def hl7_namespace(self, key: str, value: str) -> None:
