@@ -17,6 +17,9 @@ from typing import Annotated, Literal
 
 from pydantic import Field
 
+from bridge.spirometry_record import Ethnicity as Ethnicity
+from bridge.spirometry_record import Spirometry as Spirometry
+from bridge.spirometry_record import SpirometryDerived as SpirometryDerived
 from bridge.values import DATE_PATTERN as DATE_PATTERN
 from bridge.values import DATE_TIME_PATTERN as DATE_TIME_PATTERN
 from bridge.values import Filled as Filled
@@ -44,8 +47,6 @@ BodyWeight = Annotated[Quantity, Measure("mass", "kg")]
 Haemoglobin = Annotated[Quantity, Measure("mass_concentration", "g/dL")]
 Percentage = Annotated[Quantity, Measure("fraction", "%")]
 Temperature = Annotated[Quantity, Measure("temperature", "Cel", signed=True)]
-Flow = Annotated[Quantity, Measure("flow", "L/s")]
-DrugDose = Annotated[Quantity, Measure("mass", "ug")]
 
 GasFraction = Annotated[float, Field(ge=0.0, le=1.0, allow_inf_nan=False, strict=True)]
 
@@ -55,16 +56,6 @@ class Sex(StrEnum):
     MALE = "male"
     OTHER = "other"
     UNKNOWN = "unknown"
-
-
-class Ethnicity(StrEnum):
-    """The groups of the GLI-2012 spirometry equations (Quanjer et al., Eur Respir J 2012): only GLI-2012 uses one."""
-
-    CAUCASIAN = "caucasian"
-    AFRICAN_AMERICAN = "african_american"
-    NORTH_EAST_ASIAN = "north_east_asian"
-    SOUTH_EAST_ASIAN = "south_east_asian"
-    OTHER = "other"
 
 
 class Lab(Frozen):
@@ -161,56 +152,6 @@ class Results(Frozen):
     dlco_hb_adjusted: DiffusingCapacity | None = None
     tlc: Volume | None = None
     predicted: Predicted | None = None
-
-
-# --- spirometry (ATS/ERS 2019): optional, beside the DLCO test of the same session ---------------
-
-# A manoeuvre's standing for one parameter, as the lab judged it (ATS/ERS 2019): acceptable
-# (also usable), usable only, or neither.
-ManoeuvreStatus = Literal["acceptable", "usable", "not_usable"]
-
-
-class SpirometryValues(Frozen):
-    """The values of one set of forced expirations (before or after the bronchodilator), as the lab reports them."""
-
-    fev1: Volume | None = None
-    fvc: Volume | None = None
-    fev1_fvc: Percentage | None = None  # the ratio as a percentage (75 %), or with unit "1" as a fraction (0.75)
-    fef25_75: Flow | None = None
-    pef: Flow | None = None
-
-
-class SpirometryManoeuvre(Frozen):
-    """One forced expiration: its values and the lab's acceptability of its FEV1 and FVC (graded separately)."""
-
-    fev1: Volume | None = None
-    fvc: Volume | None = None
-    fef25_75: Flow | None = None
-    pef: Flow | None = None
-    fev1_status: ManoeuvreStatus | None = None  # None: the lab did not say
-    fvc_status: ManoeuvreStatus | None = None
-
-
-class SpirometryPhase(Frozen):
-    """The reported values of one phase (before or after the bronchodilator) and its manoeuvres."""
-
-    results: SpirometryValues = SpirometryValues()
-    manoeuvres: tuple[SpirometryManoeuvre, ...] = ()
-
-
-class Bronchodilator(Frozen):
-    """The bronchodilator given between the two phases."""
-
-    drug: Text
-    dose: DrugDose | None = None
-
-
-class Spirometry(Frozen):
-    """Spirometry of the session: before (``pre``) and after (``post``) a bronchodilator, and the drug given."""
-
-    pre: SpirometryPhase | None = None
-    post: SpirometryPhase | None = None
-    bronchodilator: Bronchodilator | None = None
 
 
 # A path to one value of the record, as findings name it, and an HL7 table 0085 code.
@@ -360,6 +301,7 @@ class Derived(Frozen):
     reference_kco: ReferenceValue | None = None
     reference_va: ReferenceValue | None = None
     reference_not_computed: str | None = None
+    spirometry: SpirometryDerived | None = None  # None: the session has no spirometry
 
 
 # "ndjson" is the audit's hand-over (the resources of one outcome, one per line): a route of the

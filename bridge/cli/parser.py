@@ -12,6 +12,7 @@ from bridge.display.map_report import SHOWN_RECORDS
 from bridge.emit.settings import CHARTED_PREDICTED
 from bridge.inputs import FOLDER_RULE
 from bridge.science.compared import REFERENCE_BASES
+from bridge.science.equation_sets import SPIROMETRY_SETS
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import ServiceSettings
 from bridge.tables.files import repeatability_criteria
@@ -130,7 +131,7 @@ def _add_gate(parser: argparse.ArgumentParser) -> None:
 
 
 def _add_science(parser: argparse.ArgumentParser) -> None:
-    """The flags that choose how results are judged: the repeatability criterion and the reference basis."""
+    """The flags that choose how results are judged: the repeatability criterion and the reference values."""
     parser.add_argument(
         "--repeatability",
         choices=repeatability_criteria(),
@@ -145,12 +146,19 @@ def _add_science(parser: argparse.ArgumentParser) -> None:
         "or adjusted to standard Hb (and to sea level where that applies); without Hb the measured value, "
         f"with a finding (key reference_basis; default {DEFAULTS.pipeline.reference_basis})",
     )
+    parser.add_argument(
+        "--spirometry-reference",
+        choices=SPIROMETRY_SETS,
+        help="the spirometry reference equations: gli-global (GLI Global, race-neutral) or gli-2012 (GLI-2012, "
+        "which uses the patient's ethnicity) "
+        f"(key spirometry_reference; default {DEFAULTS.pipeline.spirometry_reference})",
+    )
 
 
 # Flags that are settings; everything else on the command line is an argument of the command.
 _SETTING_FLAGS = (
     "units", "max_input_bytes", "traditional_per_si", "blocking", "allow", "validate", "to", "map",
-    "repeatability", "reference_basis",
+    "repeatability", "reference_basis", "spirometry_reference",
     "emit.sending_application", "emit.sending_facility", "emit.receiving_application",
     "emit.receiving_facility", "emit.patient_reference", "emit.charted_predicted",
 )  # fmt: skip

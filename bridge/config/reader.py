@@ -22,6 +22,7 @@ from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind, Severity
 from bridge.pipeline import PipelineSettings
 from bridge.science.compared import REFERENCE_BASES
+from bridge.science.equation_sets import SPIROMETRY_SETS
 from bridge.science.units import TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_ALTERNATIVE, UnitSystem
 from bridge.service.settings import (
     ANSWER_POLICIES,
@@ -64,7 +65,9 @@ def _default(cls: type, name: str) -> Any:
 
 
 _SERVICE_KEYS = {f.name for f in fields(ServiceSettings)} - {"destinations"}
-_PIPELINE_KEYS = {"max_input_bytes", "blocking", "allow", "validate", "repeatability", "reference_basis"}
+_PIPELINE_KEYS = {
+    "max_input_bytes", "blocking", "allow", "validate", "repeatability", "reference_basis", "spirometry_reference",
+}  # fmt: skip
 _GENERAL_KEYS = {"units", "traditional_per_si", "to", "map"}
 TOP_LEVEL_KEYS = _SERVICE_KEYS | _PIPELINE_KEYS | _GENERAL_KEYS
 _EMIT_KEYS = {f.name for f in fields(EmitSettings)}
@@ -166,6 +169,9 @@ class SettingsReader(ValueChecker):
             ),
             reference_basis=self.choice(  # type: ignore[arg-type]
                 "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
+            ),
+            spirometry_reference=self.choice(  # type: ignore[arg-type]
+                "spirometry_reference", d.get("spirometry_reference", defaults.spirometry_reference), SPIROMETRY_SETS
             ),
         )
 
