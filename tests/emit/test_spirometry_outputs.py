@@ -24,8 +24,9 @@ from bridge.tables.files import load_tables
 from tests.fhir_schema import ResourceValidators, load_fhir_schema
 from tests.fhir_schema import errors as schema_errors
 
-DOCUMENT = Path(__file__).resolve().parent / "data" / "spirometry-and-dlco.json"  # invented: spirometry and DLCO
-DLCO_ONLY = Path(__file__).resolve().parents[2] / "samples" / "01-healthy-adult.json"
+SAMPLES = Path(__file__).resolve().parents[2] / "samples"
+DOCUMENT = SAMPLES / "10-spirometry-and-dlco.json"  # the invented demo report: spirometry and DLCO
+DLCO_ONLY = SAMPLES / "01-healthy-adult.json"
 NOW = datetime(2026, 3, 10, 12, 0, 0, tzinfo=UTC)
 TABLES = load_tables()
 LOINC = "http://loinc.org"
