@@ -19,7 +19,7 @@ from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7v2 import to_oru
 from bridge.emit.settings import EmitContext
 from bridge.model import Outcome
-from bridge.pipeline import process
+from bridge.pipeline import PipelineSettings, Route, process
 from bridge.tables.files import load_tables
 from tests.fhir_schema import ResourceValidators, load_fhir_schema
 from tests.fhir_schema import errors as schema_errors
@@ -131,3 +131,20 @@ def test_a_dlco_only_outcome_has_one_order_group_and_no_panel():
     data = json.loads(bundle_json(plain, TABLES, EmitContext(now=NOW)))
     assert 1 == len(parsed.segments("OBR"))
     assert [] == [r for r in _resources(data, "Observation") if "hasMember" in r]
+
+
+def test_an_allowed_error_sends_the_phase_preliminary():
+    """FEV1 above FVC allowed by the site: that value, its panel and the report go out preliminary, never final."""
+    # source: FHIR R4 ValueSet observation-status ("preliminary"); HL7 v2.5.1 tables 0085 and 0123 (P)
+    doc = json.loads(DOCUMENT.read_text())
+    doc["spirometry"]["pre"]["results"]["fev1"] = {"value": 3.25, "unit": "L"}  # above the FVC of 3.05 L
+    settings = PipelineSettings(allow=frozenset({"SPIROMETRY_IMPOSSIBLE_VOLUMES"}))
+    routes = (Route("fhir", "si"), Route("hl7", "si"))
+    outcome = process(json.dumps(doc).encode(), "x.json", TABLES, settings, now=NOW, routes=routes)
+    fhir = json.loads(next(p.data for p in outcome.payloads if p.kind == "fhir"))
+    observations = _by_text(fhir)
+    assert "preliminary" == observations["FEV1 --pre bronchodilation"]["status"]
+    assert "preliminary" == observations["Spirometry before bronchodilator"]["status"]
+    assert "preliminary" == _resources(fhir, "DiagnosticReport")[0]["status"]
+    parsed = hl7.parse(next(p.data for p in outcome.payloads if p.kind == "hl7").decode())
+    assert "P" == str(parsed.segments("OBR")[1][25])
