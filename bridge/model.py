@@ -155,7 +155,7 @@ class Results(Frozen):
 
 
 # A path to one value of the record, as findings name it, and an HL7 table 0085 code.
-StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z_]+(\[\d+\])?)+$")]
+StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z][a-z0-9_]*(\[\d+\])?)+$")]
 StatusCode = Annotated[str, Field(pattern=r"^[A-Z]$")]
 
 

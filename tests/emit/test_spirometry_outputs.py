@@ -148,3 +148,15 @@ def test_an_allowed_error_sends_the_phase_preliminary():
     assert "preliminary" == _resources(fhir, "DiagnosticReport")[0]["status"]
     parsed = hl7.parse(next(p.data for p in outcome.payloads if p.kind == "hl7").decode())
     assert "P" == str(parsed.segments("OBR")[1][25])
+
+
+@pytest.mark.parametrize(("code", "status"), [("P", "preliminary"), ("X", None)])
+def test_the_labs_status_of_a_spirometry_value(code, status):
+    """lab_status on spirometry.post.results.fev1: P sends it preliminary, X leaves it out (HL7 table 0085)."""
+    # source: HL7 v2.5.1 table 0085: P preliminary results, X results cannot be obtained for this observation
+    doc = json.loads(DOCUMENT.read_text())
+    doc["lab_status"] = {"spirometry.post.results.fev1": code}
+    outcome = process(json.dumps(doc).encode(), "x.json", TABLES, now=NOW, routes=(Route("fhir", "si"),))
+    observations = _by_text(json.loads(outcome.payloads[0].data))
+    fev1 = observations.get("FEV1 --post bronchodilation")
+    assert status == (fev1["status"] if fev1 is not None else None)
