@@ -17,6 +17,9 @@ from typing import Annotated, Literal
 
 from pydantic import Field
 
+from bridge.spirometry_record import Ethnicity as Ethnicity
+from bridge.spirometry_record import Spirometry as Spirometry
+from bridge.spirometry_record import SpirometryDerived as SpirometryDerived
 from bridge.values import DATE_PATTERN as DATE_PATTERN
 from bridge.values import DATE_TIME_PATTERN as DATE_TIME_PATTERN
 from bridge.values import Filled as Filled
@@ -69,6 +72,7 @@ class Patient(Frozen):
     birth_date: IsoDate
     height: BodyHeight
     weight: BodyWeight | None = None
+    ethnicity: Ethnicity | None = None  # for GLI-2012 only; GLI Global (the default) takes none
 
 
 class SampleGasHandling(StrEnum):
@@ -151,7 +155,7 @@ class Results(Frozen):
 
 
 # A path to one value of the record, as findings name it, and an HL7 table 0085 code.
-StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z_]+(\[\d+\])?)+$")]
+StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z][a-z0-9_]*(\[\d+\])?)+$")]
 StatusCode = Annotated[str, Field(pattern=r"^[A-Z]$")]
 
 
@@ -168,6 +172,7 @@ class Session(Frozen):
     conditions: Conditions = Conditions()
     manoeuvres: tuple[Manoeuvre, ...] = ()
     results: Results = Results()
+    spirometry: Spirometry | None = None
     # The lab's own status of single values: an HL7 v2.5.1 table 0085 code (as in OBX-11) by the
     # value's path (``results.dlco``, ``manoeuvres[0].reported.dlco``); a value without one is final.
     # mappings/result_status.toml says what each code does (bridge.science.lab_status).
@@ -296,6 +301,7 @@ class Derived(Frozen):
     reference_kco: ReferenceValue | None = None
     reference_va: ReferenceValue | None = None
     reference_not_computed: str | None = None
+    spirometry: SpirometryDerived | None = None  # None: the session has no spirometry
 
 
 # "ndjson" is the audit's hand-over (the resources of one outcome, one per line): a route of the

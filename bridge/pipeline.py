@@ -33,6 +33,7 @@ from bridge.readers.mapped import MappedRecord
 from bridge.science.checks import run_checks
 from bridge.science.compared import DEFAULT_REFERENCE_BASIS, ReferenceBasis
 from bridge.science.derive import derive
+from bridge.science.equation_sets import DEFAULT_SPIROMETRY_SET, SpirometrySet
 from bridge.science.lab_status import apply_lab_status
 from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.units import UnitSystem
@@ -72,6 +73,7 @@ class PipelineSettings:
     # names its own wins for the inputs read through it.
     repeatability: str = DEFAULT_REPEATABILITY
     reference_basis: ReferenceBasis = DEFAULT_REFERENCE_BASIS  # what per cent predicted and z-scores compare
+    spirometry_reference: SpirometrySet = DEFAULT_SPIROMETRY_SET  # the spirometry equations: GLI Global or GLI-2012
 
     def repeatability_for(self, fmap: FieldMap | None) -> str:
         """The criterion for inputs read through ``fmap`` (None: dlco-result/1 JSON): the map's, else the site's."""
@@ -236,6 +238,7 @@ def _complete(
         tables,
         repeatability=settings.repeatability_for(settings.field_map),
         reference_basis=settings.reference_basis,
+        spirometry_reference=settings.spirometry_reference,
     )
     outcome = Outcome(
         source=source,

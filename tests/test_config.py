@@ -231,6 +231,25 @@ def test_a_bad_repeatability_or_reference_basis_names_key_and_expected_values(te
     assert message == str(_error(text, environ))
 
 
+def test_spirometry_reference_from_file_environment_and_flags():
+    """The spirometry equations: the file's, the environment's over it, the flag's over both; GLI Global by default."""
+    text = 'spirometry_reference = "gli-2012"\n'
+    environ = {"DLCO_BRIDGE_SPIROMETRY_REFERENCE": "gli-global"}
+
+    assert "gli-2012" == parse_settings(text, {}).pipeline.spirometry_reference
+    assert "gli-global" == parse_settings(text, environ).pipeline.spirometry_reference
+    assert "gli-2012" == parse_settings("", environ, {"spirometry_reference": "gli-2012"}).pipeline.spirometry_reference
+    # source: ATS statement on race and ethnicity in PFT interpretation (Bhakta et al., AJRCCM 2023):
+    # race-neutral average equations such as GLI Global
+    assert "gli-global" == PipelineSettings().spirometry_reference
+
+
+def test_a_bad_spirometry_reference_names_key_and_expected_values():
+    """One line: the key, the values it may take and the value given."""
+    expected = "site.toml: spirometry_reference: one of gli-global, gli-2012, got 'gli-2017'"
+    assert expected == str(_error('spirometry_reference = "gli-2017"\n', {}))
+
+
 def test_charted_predicted_from_file_environment_and_flags():
     """Whose predicted values are charted: the file's choice, the environment's over it, the flag's over both."""
     text = '[emit]\ncharted_predicted = "lab"\n'

@@ -13,6 +13,7 @@ from bridge.display.map_report import SHOWN_RECORDS
 from bridge.emit.settings import CHARTED_PREDICTED, PATIENT_REFERENCES
 from bridge.inputs import FOLDER_RULE
 from bridge.science.compared import REFERENCE_BASES
+from bridge.science.equation_sets import SPIROMETRY_SETS
 from bridge.science.units import TRADITIONAL_PER_SI_CHOICES, UNIT_SYSTEMS
 from bridge.service.receiver import ANSWERS, StandInSettings
 from bridge.service.settings import Destination, ServiceSettings
@@ -132,7 +133,7 @@ def _add_gate(parser: argparse.ArgumentParser) -> None:
 
 
 def _add_science(parser: argparse.ArgumentParser) -> None:
-    """The flags that choose how results are judged: the repeatability criterion and the reference basis."""
+    """The flags that choose how results are judged: the repeatability criterion and the reference values."""
     parser.add_argument(
         "--repeatability",
         choices=repeatability_criteria(),
@@ -146,6 +147,13 @@ def _add_science(parser: argparse.ArgumentParser) -> None:
         help="the DLCO and KCO that per cent predicted and z-scores compare: adjusted to sea level, as measured, "
         "or adjusted to standard Hb (and to sea level where that applies); without Hb the measured value, "
         f"with a finding (key reference_basis; default {DEFAULTS.pipeline.reference_basis})",
+    )
+    parser.add_argument(
+        "--spirometry-reference",
+        choices=SPIROMETRY_SETS,
+        help="the spirometry reference equations: gli-global (GLI Global, race-neutral) or gli-2012 (GLI-2012, "
+        "which uses the patient's ethnicity) "
+        f"(key spirometry_reference; default {DEFAULTS.pipeline.spirometry_reference})",
     )
 
 

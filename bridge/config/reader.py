@@ -22,6 +22,7 @@ from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind, Severity
 from bridge.pipeline import PipelineSettings
 from bridge.science.compared import REFERENCE_BASES
+from bridge.science.equation_sets import SPIROMETRY_SETS
 from bridge.science.units import DEFAULT_UNITS, TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_CHOICES, UNIT_SYSTEMS, UnitSystem
 from bridge.service.settings import (
     ANSWER_POLICIES,
@@ -175,6 +176,9 @@ class SettingsReader(ValueChecker):
             ),
             reference_basis=self.choice(  # type: ignore[arg-type]
                 "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
+            ),
+            spirometry_reference=self.choice(  # type: ignore[arg-type]
+                "spirometry_reference", d.get("spirometry_reference", defaults.spirometry_reference), SPIROMETRY_SETS
             ),
         )
 

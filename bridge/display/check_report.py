@@ -10,6 +10,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
+from bridge.display.spirometry_text import spirometry_lines
 from bridge.emit.settings import HEMOGLOBIN_DIMENSION
 from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.compared import BASIS_WORDS
@@ -151,6 +152,11 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem, hb_unit: s
     for name, label in _RESULT_LABELS:
         lines += _row(label, getattr(s.results, name), tables, units, hb_unit)
     lines += _reference_rows(outcome, tables, units, hb_unit)
+    lines += spirometry_lines(
+        outcome,
+        lambda q: _text(q, tables, units, hb_unit),
+        lambda q: _brief(q, tables, units, hb_unit),
+    )
     lines.append("  conditions")
     for name, label in _CONDITION_LABELS:
         lines += _row(label, getattr(s.conditions, name), tables, units, hb_unit)
@@ -233,6 +239,8 @@ def _shallow(model: Any) -> Any:
         return {name: _shallow(getattr(model, name)) for name in type(model).model_fields}
     if isinstance(model, tuple):
         return [_shallow(v) for v in model]
+    if isinstance(model, dict):
+        return {key: _shallow(value) for key, value in model.items()}
     if hasattr(model, "isoformat"):
         return model.isoformat()
     if hasattr(model, "value") and isinstance(getattr(model, "value", None), str):

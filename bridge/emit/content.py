@@ -57,6 +57,16 @@ class ResultItem:
     # True: an ERROR finding the site allowed through (``allow``) concerns this value or one it
     # was derived from; the emitters then send it as preliminary, never as final.
     questionable: bool = False
+    # The test group the item belongs to (a ResultGroup's key: "spirometry_pre"); None: the DLCO test.
+    group: str | None = None
+
+
+@dataclass(frozen=True, slots=True)
+class ResultGroup:
+    """One test group of the report besides the DLCO test (a spirometry phase): a FHIR panel, an HL7 OBR."""
+
+    key: str  # "spirometry_pre"; also part of the panel Observation's identifier
+    code: Code
 
 
 @dataclass(frozen=True, slots=True)
@@ -66,6 +76,7 @@ class ReportContent:
     items: tuple[ResultItem, ...]
     notes: tuple[str, ...] = field(default=())
     summary_key: str = "dlco"  # the DLCO result the reference range is on (the report's one-line summary)
+    groups: tuple[ResultGroup, ...] = ()  # in order; their items carry ``group``
 
     @property
     def questionable(self) -> bool:

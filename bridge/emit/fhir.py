@@ -82,7 +82,14 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
     for gone in statuses.withdrawn:  # always a conditional update: it replaces what the server holds
         resource = _withdrawn(parts, gone, tables, context)
         entries.append(parts.entry(parts.full_url(gone.key), resource, "Observation", gone.key, update=True))
-    report = _report(parts, content, tables, context, [full_urls[i.key] for i in content.items], statuses)
+    results = [full_urls[i.key] for i in content.items if i.group is None]
+    for group in content.groups:  # a panel per test group: hasMember its results (FHIR R4 Observation.hasMember)
+        members = [{"reference": full_urls[i.key]} for i in content.items if i.group == group.key]
+        panel = {**_observation(parts, ResultItem(group.key, group.code, None), tables, context, {}, statuses)}
+        del panel["dataAbsentReason"]  # a panel has members, not a value
+        results.append(parts.full_url(group.key))
+        entries.append(parts.entry(results[-1], {**panel, "hasMember": members}, "Observation", group.key))
+    report = _report(parts, content, tables, context, results, statuses)
     entries.append(parts.entry(parts.full_url(REPORT_KEY), report, "DiagnosticReport", REPORT_KEY))
     entries.append(provenance_entry(outcome, context, parts.issued, [e["fullUrl"] for e in entries]))
     return {"resourceType": "Bundle", "type": "transaction", "entry": entries}

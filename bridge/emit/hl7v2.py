@@ -87,6 +87,13 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
         *_ntes(content.notes),
         *_observations(content, statuses, performed, _performer(outcome, facility)),
     ]
+    # Each further test group (a spirometry phase) is an order group of its own in the same ORU:
+    # OBR (ORC optional, left out: the order is the ORC's above) and its OBX, set ids from 1.
+    # source: HL7 v2.5.1 ch. 7, ORU^R01: {ORDER_OBSERVATION: [ORC] OBR {[NTE]} ... {OBSERVATION}} repeats
+    for number, group in enumerate(content.groups, start=2):
+        obr = _obr(orders, tables, now, performed, STATUS_LETTERS[statuses.of(group.key)], group.code, number)
+        members = [item for item in content.items if item.group == group.key]
+        segments += [obr, *_observations(content, statuses, performed, _performer(outcome, facility), members)]
     return SEGMENT_SEPARATOR.join(segments) + SEGMENT_SEPARATOR
 
 
@@ -185,12 +192,14 @@ def _performer(outcome: Outcome, facility: str) -> str:
     return f"{name}^^^^^^^^^{facility}"
 
 
-def _obr(orders: tuple[str, str], tables: Tables, now: str, performed: str, status: str) -> str:
+def _obr(
+    orders: tuple[str, str], tables: Tables, now: str, performed: str, status: str, code: Code | None = None, n: int = 1
+) -> str:
     fields = [""] * 25
-    fields[0] = "1"
+    fields[0] = str(n)  # OBR-1 set id: the order group's number in the message
     fields[1] = orders[0]  # OBR-2 placer order number (= ORC-2)
     fields[2] = orders[1]  # OBR-3 filler order number (= ORC-3)
-    fields[3] = _coded(tables.codes.panel, "panel")
+    fields[3] = _coded(code or tables.codes.panel, "panel")  # OBR-4: the DLCO panel, or the test group's code
     fields[6] = performed  # OBR-7 observation date/time
     fields[21] = now  # OBR-22 results report/status change
     fields[23] = tables.hl7.service_section  # OBR-24 (HL7 table 0074)
@@ -198,8 +207,12 @@ def _obr(orders: tuple[str, str], tables: Tables, now: str, performed: str, stat
     return _segment("OBR", *fields)
 
 
-def _observations(content: ReportContent, statuses: Statuses, observed: str, performer: str) -> Iterable[str]:
-    for set_id, item in enumerate(content.items, start=1):
+def _observations(
+    content: ReportContent, statuses: Statuses, observed: str, performer: str, group: list[ResultItem] | None = None
+) -> Iterable[str]:
+    """The OBX (and NTE) of the DLCO test's items and what is withdrawn, or of one test group's items."""
+    items = [item for item in content.items if item.group is None] if group is None else group
+    for set_id, item in enumerate(items, start=1):
         # OBX-11 (HL7 table 0085): P "preliminary results" for a value the lab marked preliminary
         # or with an allowed error finding (the finding follows in NTE); C only when it replaces a
         # final result sent before. Table 0078 (OBX-8) has no code for a questionable value, so
@@ -207,7 +220,9 @@ def _observations(content: ReportContent, statuses: Statuses, observed: str, per
         yield _obx(set_id, item, STATUS_LETTERS[statuses.of(item.key)], observed, performer)
         if item.notes or item.supporting:
             yield from _ntes((*item.notes, *(supporting_text(value) for value in item.supporting)))
-    for set_id, gone in enumerate(statuses.withdrawn, start=len(content.items) + 1):
+    if group is not None:
+        return
+    for set_id, gone in enumerate(statuses.withdrawn, start=len(items) + 1):
         yield _deleted_obx(set_id, gone, observed, performer)
         yield from _ntes((gone.reason,))
 

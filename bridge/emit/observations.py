@@ -16,7 +16,7 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-from bridge.emit.content import Flag, ReportContent, ResultItem, Supporting
+from bridge.emit.content import Flag, ReportContent, ResultGroup, ResultItem, Supporting
 from bridge.emit.notes import (
     BRIDGE_NAME,
     COMPUTED_NOTE,
@@ -36,6 +36,7 @@ from bridge.emit.notes import (
     report_notes,
 )
 from bridge.emit.settings import DEFAULT_CHARTED_PREDICTED, HEMOGLOBIN_DIMENSION, ChartedPredicted
+from bridge.emit.spirometry_items import add_spirometry
 from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
 from bridge.science.compared import basis_key
 from bridge.science.normalise import express
@@ -74,6 +75,7 @@ def build_content(
         _gli_values(b)
     b.add("tlc", outcome.session.results.tlc)
     b.add("barometric_pressure", outcome.session.conditions.barometric_pressure)
+    add_spirometry(b, outcome, tables)  # each spirometry phase a group of its own
     return b.content()
 
 
@@ -99,6 +101,7 @@ class _Builder:
             if finding.severity is not Severity.INFO:
                 self.by_path.setdefault(finding.path, []).append(finding_note(finding, self.say))
         self.items: list[ResultItem] = []
+        self.groups: list[ResultGroup] = []  # the test groups besides the DLCO test (spirometry phases)
         self.paths: dict[str, str] = {}  # item key -> the record path whose ERROR findings question it
         self.replaced: set[str] = set()  # paths of lab values not forwarded: their errors question nothing
         predicted = outcome.session.results.predicted
@@ -201,7 +204,7 @@ class _Builder:
             carried = {note for item in items for note in item.notes}
             attached = {path for path, notes in self.by_path.items() if carried.intersection(notes)}
         notes = report_notes(outcome, attached, self.say, self.tables.grades)
-        return ReportContent(tuple(items), notes, self.compared.get("dlco", "dlco"))
+        return ReportContent(tuple(items), notes, self.compared.get("dlco", "dlco"), tuple(self.groups))
 
 
 class _Comparison:

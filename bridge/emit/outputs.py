@@ -104,8 +104,9 @@ def payloads(
             )
         else:
             er7 = to_oru(outcome, tables, context, content)
-            keys = [item.key for item in content.items]
-            keys += [gone.key for gone in resolve(outcome, content, tables, context).withdrawn]  # OBX order
+            keys = [item.key for item in content.items if item.group is None]  # OBX order: the DLCO test's,
+            keys += [gone.key for gone in resolve(outcome, content, tables, context).withdrawn]  # what is withdrawn,
+            keys += [item.key for group in content.groups for item in content.items if item.group == group.key]
             prefix = observation_identifier(outcome, "")  # lab slug and test id, once
             ids = [prefix + key for key in keys]
             built.append(

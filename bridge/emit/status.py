@@ -45,6 +45,11 @@ _LAB_VALUE = MappingProxyType(
         "lab_kco_predicted": "results.predicted.kco",
         "lab_va_predicted": "results.predicted.va",
         "barometric_pressure": "conditions.barometric_pressure",
+        **{
+            f"{key}_{phase}": f"spirometry.{phase}.results.{key}"
+            for phase in ("pre", "post")
+            for key in ("fev1", "fvc", "fev1_fvc", "fef25_75", "pef")
+        },
     }
 )
 # Values a computed item rests on that are not items of their own (blood values).
@@ -81,7 +86,7 @@ def resolve(outcome: Outcome, content: ReportContent, tables: Tables, context: E
     preliminary = _preliminary(outcome, content, tables)
     prefix = observation_identifier(outcome, "")
     earlier = {ident.removeprefix(prefix): sent for ident, sent in context.earlier if ident.startswith(prefix)}
-    keys = [item.key for item in content.items] + [REPORT_KEY]
+    keys = [item.key for item in content.items] + [group.key for group in content.groups] + [REPORT_KEY]
     if not context.correction:
         replaces: frozenset[str] = frozenset()
     elif not earlier:  # no record of what was sent: every result replaces one, as before the record
@@ -95,6 +100,9 @@ def resolve(outcome: Outcome, content: ReportContent, tables: Tables, context: E
         return "corrected" if key in replaces else "final"
 
     items = {item.key: status(item.key, item.key in preliminary) for item in content.items}
+    for group in content.groups:  # a panel is preliminary when one of its members is
+        members = {item.key for item in content.items if item.group == group.key}
+        items[group.key] = status(group.key, bool(members & preliminary))
     return Statuses(
         items=MappingProxyType(items),
         report=status(REPORT_KEY, bool(preliminary)),

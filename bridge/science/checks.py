@@ -27,6 +27,7 @@ from bridge.science.findings import (
 )
 from bridge.science.physiology import ANATOMIC_DEAD_SPACE_ML_PER_KG, COHB_BASELINE_PERCENT
 from bridge.science.quality import DEFAULT_REPEATABILITY
+from bridge.science.spirometry_checks import SPIROMETRY_RULES
 from bridge.science.table_values import Tables
 
 ADJUSTMENT_TOLERANCE = 0.02
@@ -291,6 +292,7 @@ DEFAULT_RULES: tuple[Rule, ...] = (
     check_reference,
     check_reference_basis,
     check_predicted_set,
+    *SPIROMETRY_RULES,
 )
 
 

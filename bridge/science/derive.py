@@ -37,6 +37,7 @@ from bridge.science.compared import (
     no_hb_adjustment,
     references,
 )
+from bridge.science.equation_sets import DEFAULT_SPIROMETRY_SET, SpirometrySet
 from bridge.science.quality import (
     DEFAULT_REPEATABILITY,
     Grade,
@@ -45,6 +46,7 @@ from bridge.science.quality import (
     grade_manoeuvres,
     select_reported,
 )
+from bridge.science.spirometry_derive import derive_spirometry
 from bridge.science.table_values import Tables
 
 DeadSpaceSource = Literal["stated", "estimated", "unknown"]
@@ -89,11 +91,13 @@ def derive(
     *,
     repeatability: str = DEFAULT_REPEATABILITY,
     reference_basis: ReferenceBasis = DEFAULT_REFERENCE_BASIS,
+    spirometry_reference: SpirometrySet = DEFAULT_SPIROMETRY_SET,
 ) -> Derived:
     """Everything recomputable from a normalised session.
 
     ``repeatability``: the name of the repeatability criterion (mappings/quality_grades.toml);
-    ``reference_basis``: which value per cent predicted and the z-scores compare.
+    ``reference_basis``: which value per cent predicted and the z-scores compare;
+    ``spirometry_reference``: the spirometry equations (GLI Global or GLI-2012).
     """
     age = age_in_years(session)
     gas = gas_conditions(session)
@@ -164,6 +168,7 @@ def derive(
         lab_basis=lab_basis,
         reference_basis_fallback=compared.fallback,
         **references(session, age, tables.reference, compared),
+        spirometry=derive_spirometry(session, age, tables, spirometry_reference),
     )
 
 

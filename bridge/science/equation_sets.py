@@ -24,6 +24,7 @@ from collections.abc import Mapping
 from dataclasses import dataclass, field
 from enum import StrEnum
 from types import MappingProxyType
+from typing import Literal
 
 from bridge.errors import MappingError
 from bridge.model import Sex
@@ -113,7 +114,11 @@ SETS: Mapping[EquationSetName, SetInfo] = MappingProxyType(
         ),
     }
 )
-DEFAULT_SPIROMETRY = EquationSetName.GLI_GLOBAL
+# The site setting ``spirometry_reference``: the spirometry equations a site compares with.
+SpirometrySet = Literal["gli-global", "gli-2012"]
+SPIROMETRY_SETS: tuple[SpirometrySet, ...] = ("gli-global", "gli-2012")
+DEFAULT_SPIROMETRY_SET: SpirometrySet = "gli-global"
+DEFAULT_SPIROMETRY = EquationSetName(DEFAULT_SPIROMETRY_SET)
 DEFAULT_LUNG_VOLUMES = EquationSetName.GLI_2021
 # The rule for height, of this project and not of the publications: the equations are evaluated
 # between 80 cm (a small 3-year-old) and 250 cm; anything else is taken as a wrong unit or typo.

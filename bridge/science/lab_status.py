@@ -31,7 +31,7 @@ PRELIMINARY_CODE = "LAB_STATUS_PRELIMINARY"
 NOT_SENT_CODE = "LAB_STATUS_NOT_SENT"
 WITHDRAWN_CODE = "LAB_STATUS_WITHDRAWN"
 
-_STEP = re.compile(r"([a-z_]+)(?:\[(\d+)\])?")
+_STEP = re.compile(r"([a-z][a-z0-9_]*)(?:\[(\d+)\])?")  # names may hold digits (fev1, fef25_75)
 
 
 @dataclass(frozen=True, slots=True)

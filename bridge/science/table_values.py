@@ -14,9 +14,11 @@ from collections.abc import Mapping
 from dataclasses import dataclass
 
 from bridge.hl7.tables import Hl7Tables
+from bridge.science.equation_sets import EquationSet, EquationSetName
 from bridge.science.lab_status import ResultStatusTable
 from bridge.science.quality import GradeTable
 from bridge.science.reference import ReferenceEquations
+from bridge.science.spirometry import SpirometryRules
 from bridge.science.units import UnitCatalogue
 
 
@@ -74,3 +76,5 @@ class Tables:
     reference: ReferenceEquations  # GLI-2017: predicted, LLN, ULN, z-scores of DLCO, KCO and VA
     result_status: ResultStatusTable  # HL7 table 0085: what the lab's status of a value does
     hl7: Hl7Tables  # HL7 tables 0001, 0008, 0074, 0103 (mappings/hl7_tables.toml, parsed by bridge.hl7.tables)
+    spirometry: SpirometryRules  # the 2019 grades and the spirometry checks' limits (spirometry_grades.toml)
+    spirometry_equations: Mapping[EquationSetName, EquationSet]  # GLI Global and GLI-2012

@@ -56,6 +56,8 @@ def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField])
             continue
         bare = _bare(info.annotation)
         if get_origin(bare) is tuple:
+            if prefix:  # a list inside an object (spirometry's manoeuvres): not mappable yet, one list per file
+                continue
             bare = _bare(get_args(bare)[0])
         if isinstance(bare, type) and issubclass(bare, BaseModel) and bare is not Quantity:
             _walk(bare, path + ".", found)

@@ -12,6 +12,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from functools import cache
 from pathlib import Path
+from types import MappingProxyType
 from zoneinfo import ZoneInfo
 
 from bridge.errors import MappingError
@@ -72,6 +73,10 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
         reference=load_reference_equations(folder),
         result_status=result_status_table(_text(folder, "result_status.toml")),
         hl7=load_hl7_tables(folder),
+        spirometry=load_spirometry_rules(folder),
+        spirometry_equations=MappingProxyType(
+            {name: load_equation_set(name, folder) for name in (EquationSetName.GLI_GLOBAL, EquationSetName.GLI_2012)}
+        ),
     )
 
 

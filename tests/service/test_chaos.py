@@ -23,6 +23,7 @@ import time
 from collections import Counter
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 import pytest
@@ -55,28 +56,30 @@ class Plan:
 def plan(files: int, runs: int, rng: random.Random) -> Plan:
     """``files`` inputs spread over ``runs`` batches: about 80 % new results, and corrections, duplicates, poison."""
     result = Plan(batches=[{} for _ in range(runs)])
-    sent: list[tuple[int, str, str, bytes]] = []  # (batch, test id, patient, content) of good inputs
+    # (batch, test id, patient, content, sample) of good inputs: a correction keeps its result's sample
+    sent: list[tuple[int, str, str, bytes, Path]] = []
     for n in range(files):
         batch = min(runs - 1, n * runs // files)
         name = f"b{batch:03d}-{n:05d}.json"
         roll = rng.random()
         earlier = [s for s in sent if s[0] < batch]
         if roll < 0.08 and earlier:
-            _, test_id, patient, data = rng.choice(earlier)
+            _, test_id, patient, data, _ = rng.choice(earlier)
             result.kind[name], result.test_of[name] = "duplicate", test_id
         elif roll < 0.16 and earlier:
-            _, test_id, patient, _ = rng.choice(earlier)
-            data = make_input(test_id, patient, change=round(rng.uniform(0.01, 0.5), 2) + 0.01 * n)
+            _, test_id, patient, _, sample = rng.choice(earlier)
+            data = make_input(test_id, patient, template=sample, change=round(rng.uniform(0.01, 0.5), 2) + 0.01 * n)
             result.kind[name], result.test_of[name] = "correction", test_id
-            sent.append((batch, test_id, patient, data))
+            sent.append((batch, test_id, patient, data, sample))
         elif roll < 0.22:
             data = poison(n, rng)
             result.kind[name] = "poison"
         else:
             test_id, patient = f"CHAOS-{n:05d}", f"FICT-6{n % 23:03d}"
-            data = make_input(test_id, patient, template=GOOD[n % len(GOOD)])
+            sample = GOOD[n % len(GOOD)]
+            data = make_input(test_id, patient, template=sample)
             result.kind[name], result.test_of[name] = "good", test_id
-            sent.append((batch, test_id, patient, data))
+            sent.append((batch, test_id, patient, data, sample))
         result.batches[batch][name] = data
     return result
 
