@@ -124,6 +124,10 @@ def _answer(summary: Mapping[str, Any]) -> str:
         f"{summary['need_decision']:,} need a decision before they migrate, {summary['unreadable']:,} cannot be read"
         + (f", and {copies:,} are byte-identical copies of a test handed over once." if copies else ".")
     )
+    skipped = summary.get("skipped", 0)
+    if skipped:  # the folder rule's count: files under the archive that are not exports, not read
+        were = "other file was" if skipped == 1 else "other files were"
+        sentence += f" {skipped:,} {were} skipped as not exports (README.txt, Thumbs.db, ...)."
     held = summary["held_by_check"]
     why = ""
     if held:

@@ -177,6 +177,8 @@ def test_the_page_opens_with_the_answer(loaded: tuple[Node, list[str], str]):
         "decision": f"{planted.DECISION:,}",
         "unreadable": f"{planted.UNREADABLE:,}",
     } == tiles
+    # the planted archive's scan.pdf is not an export: skipped by the folder rule, and said so
+    assert "1 other file was skipped as not exports" in root.by_id("answer").text()
 
 
 def test_the_page_says_how_the_run_was_made(loaded: tuple[Node, list[str], str], archive: Path):
