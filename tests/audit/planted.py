@@ -35,9 +35,9 @@ SALTREACH_IN_SI = 3  # Saltreach writes traditional units but for these
 BRACKENFOLD_OTHER_SET = 4  # Brackenfold uses GLI 2017 but for these
 PREDICTED_OFF = range(50, 53)  # Lowmarsh patients whose first predicted DLCO, said to be GLI 2017, is 15 % high
 # A file of many sessions read through its field map: Lowmarsh's CSV export, which holds the sessions of
-# samples 04 and 06 (source: docs/field-maps.md, "the legacy samples", twins field by field)
+# samples 04, 06 and 10 (source: docs/field-maps.md, "the legacy samples", twins field by field)
 EXPORT = "lowmarsh-results.csv"
-EXPORT_SESSIONS = 2
+EXPORT_SESSIONS = 3
 
 # What the audit must find: exactly these, no more, no fewer (hand-counted from the plan above).
 PLANTED = Counter(
@@ -58,6 +58,8 @@ PLANTED = Counter(
         "BREATH_HOLD_OUT_OF_TARGET": RAW + 1,  # sample 06 (and its twin in the export): manoeuvre 3 held 7.2 s
         "MANOEUVRE_NOT_ACCEPTABLE": RAW + 1,  # sample 06 (and its twin): manoeuvre 3, VI/VC 78 % (VI at BTPS)
         "COHB_RAISED": 1,  # the export's twin of sample 04: COHb 8.5 %
+        # the export's twin of sample 10: FEV1 and FVC each change after the bronchodilator (one finding each)
+        "SPIROMETRY_BRONCHODILATOR_RESPONSE": 2,
         # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
         "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
         "UNREADABLE_INPUT": 3,  # three half-written files
@@ -68,7 +70,7 @@ SESSIONS = {LOWMARSH: (600, 3), SALTREACH: (300, 3), BRACKENFOLD: (100, 2)}  # p
 READABLE = sum(p * s for p, s in SESSIONS.values()) + len(CONFLICTING) + len(COPIED) + HB_WRONG + RAW + EXPORT_SESSIONS
 CLEAN = READABLE - HB_WRONG - len(JUMPED)  # the record findings of severity error: Hb wrong way, unit mislabels
 UNREADABLE = 5  # three half-written files, two other formats (the binary scan.pdf is skipped, not read)
-FILES = READABLE - EXPORT_SESSIONS + 1 + UNREADABLE  # one file a session, but the export: one file of two
+FILES = READABLE - EXPORT_SESSIONS + 1 + UNREADABLE  # one file a session, but the export: one file of three
 # Kept out of the hand-over for a decision: the records the gate refuses, every version of a conflicting
 # test id, and the sessions the patient checks name (errors across records)
 DECISION = HB_WRONG + len(JUMPED) + 2 * len(CONFLICTING) + len(SEX_CHANGED) + len(BIRTH_CHANGED)

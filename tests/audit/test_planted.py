@@ -90,16 +90,17 @@ def test_summary_counts_files_sessions_and_clean_ones(report: Path):
 
 
 def test_the_export_of_many_sessions_is_one_file_whose_findings_name_their_record(report: Path):
-    """The CSV export's findings name the export and the record in it: 1 (sample 04's twin), 2 (sample 06's)."""
+    """The CSV export's findings name the export and the record in it: 1 (sample 04's twin), 2 (06's), 3 (10's)."""
     exported = {
         (r["record"], r["test_id"], r["check"]) for r in _findings(report) if r["file"].endswith(planted.EXPORT)
     }
 
-    # source: samples/legacy/lowmarsh-results.csv, its first session is LOW-2026-0002, its second LOW-2026-0003
+    # source: samples/legacy/lowmarsh-results.csv, its sessions are LOW-2026-0002, LOW-2026-0003, LOW-2026-0010
     assert {
         ("1", "LOW-2026-0002", "COHB_RAISED"),
         ("2", "LOW-2026-0003", "BREATH_HOLD_OUT_OF_TARGET"),
         ("2", "LOW-2026-0003", "MANOEUVRE_NOT_ACCEPTABLE"),
+        ("3", "LOW-2026-0010", "SPIROMETRY_BRONCHODILATOR_RESPONSE"),
     } == exported
 
 

@@ -106,7 +106,7 @@ def _intake(settings: Settings, ledger: Ledger) -> Intake:
 
 
 def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path):
-    """A CSV with one bad session: the good one is enqueued, the bad one gets its report, the file is archived."""
+    """A CSV with one bad session: the good ones are enqueued, the bad one gets its report, the file is archived."""
     settings = _service_reading_csv_through_the_map(tmp_path)
     service = settings.require_service()
     path = service.inbox / "lowmarsh.csv"
@@ -116,7 +116,7 @@ def test_intake_enqueues_every_good_session_and_quarantines_the_bad_row(tmp_path
         pending = [row.test_id for row in ledger.rows("pending")]
     reports = sorted(service.quarantine.glob("*.error.json"))
     reason = json.loads(reports[0].read_text())["reason"]
-    assert ("processed", ["LOW-2026-0003"], 1) == (result.result, pending, len(reports))
+    assert ("processed", ["LOW-2026-0003", "LOW-2026-0010"], 1) == (result.result, pending, len(reports))
     assert "lowmarsh.csv: line 2, column 'Born': a date in the map's format %d.%m.%Y, got '1965-08-19'" == reason
     assert [] == list(service.inbox.iterdir())
 
@@ -143,5 +143,5 @@ def test_a_later_file_for_the_second_session_of_a_many_session_file_is_a_correct
         pending = [(row.test_id, row.message_id) for row in ledger.rows("pending")]
 
     assert ["processed", "correction"] == results
-    assert ["LOW-2026-0002", "LOW-2026-0003", "LOW-2026-0003"] == [test_id for test_id, _ in pending]
-    assert len({message_id for _, message_id in pending}) == 3  # each message has a control id of its own
+    assert ["LOW-2026-0002", "LOW-2026-0003", "LOW-2026-0010", "LOW-2026-0003"] == [test_id for test_id, _ in pending]
+    assert len({message_id for _, message_id in pending}) == 4  # each message has a control id of its own

@@ -91,7 +91,7 @@ def test_a_wrong_unit_says_no_record_would_be_sent(tmp_path, capsys):
     code = main(["map", "check", str(map_file), str(CSV_SAMPLE)])
     out = capsys.readouterr().out
     expected = [
-        "convert would send 0 record(s); 2 refused by the gate, 0 unreadable",
+        "convert would send 0 record(s); 3 refused by the gate, 0 unreadable",
         "NO RECORD WOULD BE SENT: check each field's column and unit above",
     ]
     assert (2, expected) == (code, [line for line in out.splitlines() if line.startswith(("convert would", "NO "))])

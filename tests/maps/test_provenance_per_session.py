@@ -1,4 +1,4 @@
-"""One Provenance per session: a file of two sessions gives two, each naming its own resources."""
+"""One Provenance per session: a file of three sessions gives three, each naming its own resources."""
 
 from __future__ import annotations
 
@@ -27,17 +27,17 @@ def _sessions(tables: Tables, csv_map: FieldMap) -> list[Outcome]:
 
 
 def test_two_sessions_of_one_file_get_two_provenances(tables: Tables, csv_map: FieldMap) -> None:
-    """lowmarsh-results.csv: two sessions, two Provenances with distinct fullUrl and conditional key."""
+    """lowmarsh-results.csv: three sessions, three Provenances with distinct fullUrl and conditional key."""
     # source: FHIR R4 http.html#ccreate: a conditional create that matches one resource creates
     # nothing, so two sessions sharing one key would leave the second without a Provenance.
     outcomes = _sessions(tables, csv_map)
     provenances = [to_bundle(o, tables, CONTEXT)["entry"][-1] for o in outcomes]
 
-    assert ["LOW-2026-0002", "LOW-2026-0003"] == [o.session.test_id for o in outcomes]
+    assert ["LOW-2026-0002", "LOW-2026-0003", "LOW-2026-0010"] == [o.session.test_id for o in outcomes]
     assert 1 == len({o.source_sha256 for o in outcomes})  # one file
-    assert ["Provenance", "Provenance"] == [p["resource"]["resourceType"] for p in provenances]
-    assert 2 == len({p["fullUrl"] for p in provenances})
-    assert 2 == len({p["request"]["ifNoneExist"] for p in provenances})
+    assert ["Provenance", "Provenance", "Provenance"] == [p["resource"]["resourceType"] for p in provenances]
+    assert 3 == len({p["fullUrl"] for p in provenances})
+    assert 3 == len({p["request"]["ifNoneExist"] for p in provenances})
 
 
 def test_each_provenance_targets_its_own_session_and_names_file_and_session(tables: Tables, csv_map: FieldMap) -> None:
@@ -60,7 +60,7 @@ def test_each_provenance_targets_its_own_session_and_names_file_and_session(tabl
 
 
 def test_ndjson_keeps_one_provenance_per_session(tables: Tables, csv_map: FieldMap) -> None:
-    """The bulk-load NDJSON of the two-session file has two Provenances, each targeting its own report."""
+    """The bulk-load NDJSON of the three-session file has three Provenances, each targeting its own report."""
     outcomes = _sessions(tables, csv_map)
     files = to_ndjson(outcomes, tables, replace(CONTEXT, site=EmitSettings(patient_reference="identifier")))
     provenances = [json.loads(line) for line in files["Provenance"].splitlines()]
@@ -70,10 +70,10 @@ def test_ndjson_keeps_one_provenance_per_session(tables: Tables, csv_map: FieldM
         for p in provenances
     ]
 
-    assert 2 == len({p["id"] for p in provenances})
-    assert 2 == len(reports)
-    assert [1, 1] == [len(t) for t in targeted]
-    assert reports == targeted[0] | targeted[1]
+    assert 3 == len({p["id"] for p in provenances})
+    assert 3 == len(reports)
+    assert [1, 1, 1] == [len(t) for t in targeted]
+    assert reports == targeted[0] | targeted[1] | targeted[2]
 
 
 def test_the_ledger_records_each_provenance_under_its_session(tables: Tables, csv_map: FieldMap) -> None:
@@ -89,4 +89,4 @@ def test_the_ledger_records_each_provenance_under_its_session(tables: Tables, cs
 
         assert carried.identifier_system.endswith("/source-session")
         assert query.endswith(carried.identifier_value.replace("|", "\\|"))
-    assert 2 == len(set(keys))
+    assert 3 == len(set(keys))

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -13,7 +14,7 @@ from bridge.tables.field_map_model import FieldMap
 from tests.maps.conftest import CSV_SAMPLE, HL7_SAMPLE, ROOT
 
 # The sessions each legacy sample encodes, in file order (written from the JSON samples by hand).
-CSV_TWINS = ("04-raised-cohb", "06-three-manoeuvres")
+CSV_TWINS = ("04-raised-cohb", "06-three-manoeuvres", "10-spirometry-and-dlco")
 HL7_TWINS = ("02-anaemic-patient", "03-high-altitude", "05-child", "09-legacy-hb-wrong-direction")
 
 
@@ -32,6 +33,17 @@ def _leaves(tree: object, path: str = "") -> dict[str, object]:
     return {path: tree}
 
 
+# What a field map cannot carry: spirometry's manoeuvre lists (a list inside an object, see
+# bridge.tables.canonical_fields), hence neither the 2019 grades recomputed from them (and their
+# SPIROMETRY_GRADE findings).
+FROM_MANOEUVRES = re.compile(r"spirometry\.(pre|post)\.(manoeuvres\[|fev1_grade|fvc_grade)")
+
+
+def _mappable(leaves: dict[str, object]) -> dict[str, object]:
+    """The leaves a field map can fill: a map cannot carry spirometry's manoeuvre lists (one list per file)."""
+    return {path: value for path, value in leaves.items() if not FROM_MANOEUVRES.match(path)}
+
+
 def _mapped(sample: Path, fmap: FieldMap, tables: Tables) -> list[Outcome]:
     results = list(process_all(sample.read_bytes(), sample.name, tables, PipelineSettings(field_map=fmap)))
     assert [] == [r for r in results if not isinstance(r, Outcome)]
@@ -47,12 +59,14 @@ def test_legacy_samples_equal_their_json_twins_field_by_field(sample, twins, map
     for outcome, twin in zip(outcomes, twins, strict=True):
         path = ROOT / "samples" / f"{twin}.json"
         expected = process(path.read_bytes(), path.name, tables)
-        assert _leaves(expected.session.model_dump(mode="json")) == _leaves(outcome.session.model_dump(mode="json"))
+        mine = _leaves(outcome.session.model_dump(mode="json"))
+        assert _mappable(_leaves(expected.session.model_dump(mode="json"))) == mine
 
 
 def _twin_stem(test_id: str) -> str:
     by_id = {
-        "LOW-2026-0002": "04-raised-cohb", "LOW-2026-0003": "06-three-manoeuvres", "HC-26-0142": "02-anaemic-patient",
+        "LOW-2026-0002": "04-raised-cohb", "LOW-2026-0003": "06-three-manoeuvres",
+        "LOW-2026-0010": "10-spirometry-and-dlco", "HC-26-0142": "02-anaemic-patient",
         "HC-26-0143": "03-high-altitude", "HC-26-0150": "05-child", "HC-19-0077": "09-legacy-hb-wrong-direction",
     }  # fmt: skip
     return by_id[test_id]
@@ -66,9 +80,10 @@ def test_legacy_samples_give_the_same_derived_values_and_findings(sample, twins,
     for outcome, twin in zip(outcomes, twins, strict=True):
         path = ROOT / "samples" / f"{twin}.json"
         expected = process(path.read_bytes(), path.name, tables)
-        assert expected.derived == outcome.derived
+        theirs = _mappable(_leaves(expected.derived.model_dump(mode="json")))
+        assert theirs == _mappable(_leaves(outcome.derived.model_dump(mode="json")))
         mine = [f.code for f in outcome.findings if f.code != "UNMAPPED_SOURCE_CODE"]
-        assert [f.code for f in expected.findings] == mine
+        assert [f.code for f in expected.findings if f.code != "SPIROMETRY_GRADE"] == mine
 
 
 def test_the_hl7_sample_reports_the_one_code_its_map_does_not_name(hl7_map, tables):

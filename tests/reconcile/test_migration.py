@@ -110,7 +110,7 @@ def test_values_are_expected_in_the_units_of_the_load(peer: FhirPeer, archive: P
 
 
 def test_a_csv_export_read_through_its_field_map(peer: FhirPeer, tmp_path: Path):
-    """A lab's CSV (two sessions in one file) through its map: each session's resources found, its own Provenance
+    """A lab's CSV (three sessions in one file) through its map: each session's resources found, its own Provenance
     (keyed on the session, FHIR R4 Provenance.target its own resources) among them."""
     csv_export = ROOT / "samples" / "legacy" / "lowmarsh-results.csv"
     field_map = ROOT / "mappings" / "maps" / "lowmarsh-csv.toml"
@@ -120,7 +120,7 @@ def test_a_csv_export_read_through_its_field_map(peer: FhirPeer, tmp_path: Path)
 
     code, rows, summary = _reconcile(tmp_path, str(csv_export), "--map", str(field_map), "--fhir-base", peer.url)
 
-    assert (0, [], 2) == (code, rows, provenances)
+    assert (0, [], 3) == (code, rows, provenances)
     assert len(peer.store.all()) == summary["counts"]["present"]
 
 
