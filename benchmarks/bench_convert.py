@@ -1,6 +1,11 @@
 """Convert generated sessions to both outputs and compare the speed with a floor.
 
-Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--json]``.
+Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--spirometry] [--json]``.
+
+With ``--spirometry`` every generated session also carries a spirometry section (pre and post a
+bronchodilator, with manoeuvres, after ``samples/10-spirometry-and-dlco.json``), and the same
+run times the real pass twice, over the sessions without and with it: the convert speed per
+session of a DLCO-only and of a spirometry + DLCO session, on the same sessions otherwise.
 
 What it measures, all on one core in one process, with the same generated inputs:
 
@@ -109,6 +114,28 @@ def generate(count: int, seed: int = SEED) -> list[bytes]:
     templates = [orjson.loads((folder / name).read_bytes()) for name in TEMPLATES]
     three = next(t for t in templates if len(t.get("manoeuvres", ())) == 3)
     return [orjson.dumps(_variant(rng, i, templates, three)) for i in range(count)]
+
+
+SPIROMETRY_SAMPLE = "10-spirometry-and-dlco.json"
+
+
+def with_spirometry(inputs: Sequence[bytes], seed: int = SEED) -> list[bytes]:
+    """The same sessions, each given the spirometry of sample 10 with its volumes and flows scaled."""
+    rng = random.Random(seed + 1)
+    spirometry = orjson.loads((samples_dir() / SPIROMETRY_SAMPLE).read_bytes())["spirometry"]
+    out = []
+    for data in inputs:
+        doc = orjson.loads(data)
+        section = copy.deepcopy(spirometry)
+        factor = rng.uniform(0.7, 1.3)  # the same factor for FEV1 and FVC: FEV1/FVC stays consistent
+        for phase in (section["pre"], section["post"]):
+            for values in (phase["results"], *phase.get("manoeuvres", ())):
+                for key in ("fev1", "fvc", "fef25_75", "pef"):
+                    if key in values:
+                        values[key]["value"] = round(values[key]["value"] * factor, 2)
+        doc["spirometry"] = section
+        out.append(orjson.dumps(doc))
+    return out
 
 
 def _variant(rng: random.Random, i: int, templates: list[dict[str, Any]], three: dict[str, Any]) -> Any:
@@ -418,13 +445,19 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser.add_argument("--subset", type=int, default=1000, help="sessions in the per-stage breakdown")
     parser.add_argument("--validators", type=int, default=50, help="sessions validated (0: skip)")
     parser.add_argument("--json", action="store_true", help="print one machine-readable JSON line")
+    parser.add_argument(
+        "--spirometry",
+        action="store_true",
+        help="give each session a spirometry section (pre and post) and also time the DLCO-only sessions",
+    )
     args = parser.parse_args(argv)
     say = (lambda *a: None) if args.json else print
 
     tables = load_tables()
     gc.freeze()  # as the command line does once its tables are loaded (bridge.cli.main)
     say(f"generating {args.sessions} sessions (seed {SEED}) ...")
-    inputs = generate(args.sessions)
+    dlco_only = generate(args.sessions)
+    inputs = with_spirometry(dlco_only) if args.spirometry else dlco_only
 
     # untimed warm-up of the real path: also counts the Observations per session for the floor
     counts: list[int] = []
@@ -438,6 +471,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     say(f"timing, best of {args.repeat} (gc enabled, collected before each pass) ...")
     floor_best, floor_all = best_of(args.repeat, floor_pass(inputs, counts))
     real_best, real_all = best_of(args.repeat, real_pass(inputs, tables))
+    dlco_only_best = best_of(args.repeat, real_pass(dlco_only, tables))[0] if args.spirometry else None
     n = len(inputs)
     real_rate, floor_rate = n / real_best, n / floor_best
     ratio = real_best / floor_best
@@ -471,6 +505,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         "oru_within_budget": oru_s < ORU_BUDGET_S,
         **machine(),
     }
+    if dlco_only_best is not None:
+        result["spirometry"] = True
+        result["real_us_per_session_dlco_only"] = round(dlco_only_best / n * 1e6, 1)
+        result["real_us_per_session_spirometry_and_dlco"] = result["real_us_per_session"]
     if validators:
         build_us = stages["FHIR (bundle_json)"], stages["HL7 (to_oru+control_id)"]
         result["validators_ms_per_session"] = {k: round(v, 2) for k, v in validators.items()}
@@ -497,6 +535,11 @@ def _print_report(result: dict[str, Any], stages: dict[str, float], validators: 
     print(f"machine: {result['nproc']} CPUs, Python {result['python']}, {result['date']}; one core used")
     print(f"sessions: {result['sessions']}, {result['observations_per_session']} Observations/OBX each")
     print(f"output per session: real {size['real']} kB, floor {size['floor']} kB")
+    if result.get("spirometry"):
+        print(
+            f"convert per session, same run: DLCO only {result['real_us_per_session_dlco_only']} µs, "
+            f"spirometry + DLCO {result['real_us_per_session_spirometry_and_dlco']} µs"
+        )
     print(f"real  (process + FHIR + HL7):   {result['real_sessions_per_s']:6d} sessions/s ({real_us} µs each)")
     print(f"floor (orjson + dicts + joins): {result['floor_sessions_per_s']:6d} sessions/s ({floor_us} µs each)")
     print(
