@@ -11,6 +11,7 @@ from __future__ import annotations
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process, process_all
 from tests.maps.conftest import ROOT
+from tests.maps.test_three_encodings import _leaves
 
 TWIN = ROOT / "samples" / "10-spirometry-and-dlco.json"
 MESSAGE = "\r".join(
@@ -34,15 +35,6 @@ MESSAGE = "\r".join(
         "OBX|14|NM|HCBDDOSE^Bronchodilator dose^L||400|ug|||||F",
     ]
 )
-
-
-def _leaves(tree: object, path: str = "") -> dict[str, object]:
-    if isinstance(tree, dict):
-        found: dict[str, object] = {}
-        for key, value in tree.items():
-            found |= _leaves(value, f"{path}.{key}" if path else key)
-        return found
-    return {path: tree}
 
 
 def test_the_hl7_map_reads_the_spirometry_of_its_json_twin_field_by_field(hl7_map, tables):
