@@ -20,6 +20,9 @@ from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
 
+from pydantic import InstanceOf
+from pydantic.dataclasses import dataclass as settings_model
+
 from bridge.emit.outputs import payloads, refuse_blocked
 from bridge.emit.settings import EmitSettings
 from bridge.emit.validation import problems
@@ -39,6 +42,7 @@ from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
 from bridge.tables.field_map_model import FieldMap
+from bridge.values import SETTINGS_MODEL
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
 # A test dated later than the time its input was read, by more than this, cannot have happened:
@@ -56,7 +60,7 @@ class Route:
     units: UnitSystem
 
 
-@dataclass(frozen=True, slots=True)
+@settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
 class PipelineSettings:
     """What the pipeline needs of the settings (built by ``bridge.config``; defaults written here once)."""
 
@@ -68,7 +72,9 @@ class PipelineSettings:
     blocking: frozenset[str] = frozenset()
     validate_outputs: bool = False  # check each payload with independent libraries (slow)
     emit: EmitSettings = field(default_factory=EmitSettings)
-    field_map: FieldMap | None = None  # read the input through this map (CSV, legacy HL7); None: dlco-result/1
+    field_map: InstanceOf[FieldMap] | None = (
+        None  # read the input through this map (CSV, legacy HL7); None: dlco-result/1
+    )
     # The repeatability criterion (a name in mappings/quality_grades.toml); a field map that
     # names its own wins for the inputs read through it.
     repeatability: str = DEFAULT_REPEATABILITY

@@ -23,6 +23,11 @@ from pydantic_core import CoreSchema, PydanticOmit
 # Characters no output may carry in text: FHIR R4 strings match ^[ \r\n\t\S]+$ (ECMA-262 \s), so
 # control characters and white space other than space, tab and line breaks are refused, and so
 # are unpaired surrogates (not UTF-8).  # source: HL7 FHIR R4 datatypes, "string" regex
+# The settings' models (``bridge.emit.settings``, ``bridge.pipeline``, ``bridge.service.settings``):
+# frozen pydantic dataclasses, their field types and bounds checked by pydantic; ``bridge.config``
+# adds the site's own checks and reads them from the file, the environment and flags.
+SETTINGS_MODEL = ConfigDict(extra="forbid", arbitrary_types_allowed=True)
+
 _NOT_CARRIED = re.compile(
     "[\x00-\x08\x0b\x0c\x0e-\x1f\x7f\u00a0\u1680\u2000-\u200a\u2028\u2029\u202f\u205f\u3000\ufeff\ud800-\udfff]"
 )

@@ -16,7 +16,10 @@ from dataclasses import dataclass, field
 from datetime import datetime
 from typing import Literal
 
+from pydantic.dataclasses import dataclass as settings_model
+
 from bridge.science.units import DEFAULT_UNITS, UnitSystem
+from bridge.values import SETTINGS_MODEL
 
 PatientReference = Literal["conditional-create", "identifier"]
 PATIENT_REFERENCES: tuple[PatientReference, ...] = ("identifier", "conditional-create")
@@ -32,7 +35,7 @@ CHARTED_PREDICTED: tuple[ChartedPredicted, ...] = ("gli-2017", "lab")
 DEFAULT_CHARTED_PREDICTED: ChartedPredicted = "gli-2017"
 
 
-@dataclass(frozen=True, slots=True)
+@settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
 class EmitSettings:
     sending_application: str = "DLCO-BRIDGE"
     sending_facility: str = "PFT-LAB"  # MSH-4 for a lab not in lab_facilities

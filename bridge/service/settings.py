@@ -8,14 +8,17 @@ is ``bridge.config``'s job; ``bridge.config.Settings`` carries them as ``service
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import field
 from pathlib import Path
 from types import MappingProxyType
 from typing import Literal
 from urllib.parse import urlsplit, urlunsplit
 
+from pydantic.dataclasses import dataclass as settings_model
+
 from bridge.model import OutputKind
 from bridge.science.units import DEFAULT_UNITS, UnitSystem
+from bridge.values import SETTINGS_MODEL
 
 TransportKind = Literal["file", "mllp", "fhir-rest"]
 AnswerPolicy = Literal["dead-letter", "retry"]
@@ -29,7 +32,7 @@ RETRY_BASE_SECONDS = 1.0  # the outbox's back-off: the first retry's largest del
 RETRY_CAP_SECONDS = 300.0  # ... up to this
 
 
-@dataclass(frozen=True, slots=True)
+@settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
 class Destination:
     """One receiver: what it gets (payload, units) and how (transport)."""
 
@@ -74,7 +77,7 @@ class Destination:
         return str(self.folder)
 
 
-@dataclass(frozen=True, slots=True)
+@settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
 class ServiceSettings:
     """What only ``watch``, ``status`` and ``resend`` need: folders, ledger, receivers, loops."""
 
