@@ -19,11 +19,13 @@ import hashlib
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timedelta
+from typing import Annotated
 
 from pydantic import InstanceOf
 from pydantic.dataclasses import dataclass as settings_model
 
 from bridge.emit.outputs import payloads, refuse_blocked
+from bridge.emit.setting_values import check, choice, codes, flag, text, whole
 from bridge.emit.settings import EmitSettings
 from bridge.emit.validation import problems
 from bridge.errors import InputError, InvalidField, OutputInvalid, UnreadableInput
@@ -34,9 +36,9 @@ from bridge.readers.hl7v2_legacy import read_hl7
 from bridge.readers.json_export import read_records
 from bridge.readers.mapped import MappedRecord
 from bridge.science.checks import run_checks
-from bridge.science.compared import DEFAULT_REFERENCE_BASIS, ReferenceBasis
+from bridge.science.compared import DEFAULT_REFERENCE_BASIS, REFERENCE_BASES, ReferenceBasis
 from bridge.science.derive import derive
-from bridge.science.equation_sets import DEFAULT_SPIROMETRY_SET, SpirometrySet
+from bridge.science.equation_sets import DEFAULT_SPIROMETRY_SET, SPIROMETRY_SETS, SpirometrySet
 from bridge.science.lab_status import apply_lab_status
 from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.units import UnitSystem
@@ -45,6 +47,8 @@ from bridge.tables.field_map_model import FieldMap
 from bridge.values import SETTINGS_MODEL
 
 DEFAULT_MAX_INPUT_BYTES = 5 * 1024 * 1024  # a DLCO export is a few kB; anything huge is wrong
+# The most max_input_bytes may be: every input is read whole into memory.
+MAX_INPUT_BYTES_LIMIT = 1024**3
 # A test dated later than the time its input was read, by more than this, cannot have happened:
 # a device clock a year out, day and month swapped. The hour allows for clocks that drift and
 # a lab computer that missed the change to summer time.
@@ -64,22 +68,23 @@ class Route:
 class PipelineSettings:
     """What the pipeline needs of the settings (built by ``bridge.config``; defaults written here once)."""
 
-    max_input_bytes: int = DEFAULT_MAX_INPUT_BYTES
+    max_input_bytes: Annotated[int, check(whole, 1, MAX_INPUT_BYTES_LIMIT)] = DEFAULT_MAX_INPUT_BYTES
     # Every ERROR finding keeps a record from being emitted unless its code is in ``allow``
     # (then the value goes out marked preliminary, with the finding); ``blocking`` adds codes
     # of lesser findings that should stop a record too.
-    allow: frozenset[str] = frozenset()
-    blocking: frozenset[str] = frozenset()
-    validate_outputs: bool = False  # check each payload with independent libraries (slow)
+    allow: Annotated[frozenset[str], check(codes)] = frozenset()
+    blocking: Annotated[frozenset[str], check(codes)] = frozenset()
+    validate_outputs: Annotated[bool, check(flag)] = False  # check each payload with independent libraries (slow)
     emit: EmitSettings = field(default_factory=EmitSettings)
-    field_map: InstanceOf[FieldMap] | None = (
-        None  # read the input through this map (CSV, legacy HL7); None: dlco-result/1
-    )
+    # Read the input through this map (CSV, legacy HL7); None: dlco-result/1.
+    field_map: InstanceOf[FieldMap] | None = None
     # The repeatability criterion (a name in mappings/quality_grades.toml); a field map that
     # names its own wins for the inputs read through it.
-    repeatability: str = DEFAULT_REPEATABILITY
-    reference_basis: ReferenceBasis = DEFAULT_REFERENCE_BASIS  # what per cent predicted and z-scores compare
-    spirometry_reference: SpirometrySet = DEFAULT_SPIROMETRY_SET  # the spirometry equations: GLI Global or GLI-2012
+    repeatability: Annotated[str, check(text)] = DEFAULT_REPEATABILITY
+    # what per cent predicted and z-scores compare
+    reference_basis: Annotated[ReferenceBasis, check(choice, REFERENCE_BASES)] = DEFAULT_REFERENCE_BASIS
+    # the spirometry equations: GLI Global or GLI-2012
+    spirometry_reference: Annotated[SpirometrySet, check(choice, SPIROMETRY_SETS)] = DEFAULT_SPIROMETRY_SET
 
     def repeatability_for(self, fmap: FieldMap | None) -> str:
         """The criterion for inputs read through ``fmap`` (None: dlco-result/1 JSON): the map's, else the site's."""

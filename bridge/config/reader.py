@@ -1,50 +1,61 @@
-"""The merged settings tree -> one frozen :class:`Settings` (shell).
+"""The merged settings tree -> one frozen :class:`Settings`, validated by pydantic (shell).
 
 Owns: :class:`Settings`, the keys each part of it accepts, and turning the tree that
-``bridge.config`` merged from TOML, environment and flags into typed settings objects (the
-pipeline's, the emitters', the service's and each destination's), every value checked by
-``bridge.config.values`` as it is read. Defaults live with the value objects they belong to
-(:class:`bridge.pipeline.PipelineSettings`, :class:`bridge.emit.settings.EmitSettings`,
-:class:`Settings` below), written once.
+``bridge.config`` merged from TOML, environment and flags into the settings models (the
+pipeline's, the emitters', the service's and each destination's). pydantic checks every field
+with the checks declared on it (``bridge.emit.setting_values``); a refused value becomes one
+:class:`bridge.errors.ConfigError` naming the file and key, the variable or the flag. What needs
+the files (paths beside the configuration, field maps, the finding codes, the HL7 tables, the
+repeatability criteria, tokens from the environment) and what spans keys is checked here, with
+``bridge.config.values``. Defaults live in the models' fields (:class:`bridge.pipeline.PipelineSettings`,
+:class:`bridge.emit.settings.EmitSettings`, ``bridge.service.settings``, :class:`Settings` below),
+written once.
 """
 
 from __future__ import annotations
 
 import importlib.util
 from collections.abc import Mapping
-from dataclasses import dataclass, field, fields
+from dataclasses import field, fields
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any
+
+from pydantic import ValidationError
+from pydantic.dataclasses import dataclass as settings_model
 
 from bridge.config.values import ValueChecker
-from bridge.emit.settings import CHARTED_PREDICTED, HEMOGLOBIN_UNITS, PATIENT_REFERENCES, EmitSettings
+from bridge.emit.setting_values import check, choice, kinds, number
+from bridge.emit.settings import HL7_NAMES, EmitSettings
 from bridge.errors import ConfigError
 from bridge.model import OUTPUT_KINDS, OutputKind, Severity
-from bridge.pipeline import PipelineSettings
-from bridge.science.compared import REFERENCE_BASES
-from bridge.science.equation_sets import SPIROMETRY_SETS
+from bridge.pipeline import MAX_INPUT_BYTES_LIMIT, PipelineSettings
 from bridge.science.units import DEFAULT_UNITS, TRADITIONAL_PER_SI, TRADITIONAL_PER_SI_CHOICES, UNIT_SYSTEMS, UnitSystem
-from bridge.service.settings import (
-    ANSWER_POLICIES,
-    TRANSPORT_KINDS,
-    Destination,
-    ServiceSettings,
-)
+from bridge.service.settings import Destination, ServiceSettings
 from bridge.tables.files import finding_codes, load_hl7_tables, repeatability_criteria
 from bridge.tables.finding_codes import FindingCodes
+from bridge.values import SETTINGS_MODEL
+
+__all__ = ["MAX_INPUT_BYTES_LIMIT", "SETTING_KEYS", "TOP_LEVEL_KEYS", "Settings", "SettingsReader"]
 
 SAMPLE_CONFIG = "samples/service/bridge.toml"  # the documented example of every key
 PROCESSING_IDS = load_hl7_tables().processing_ids  # source: HL7 v2.5.1 table 0103 (mappings/hl7_tables.toml)
 
 
-@dataclass(frozen=True, slots=True)
+def _factor(value: Any) -> float:
+    found = number(value)
+    if found not in TRADITIONAL_PER_SI_CHOICES:
+        raise ValueError(" or ".join(map(str, TRADITIONAL_PER_SI_CHOICES)))
+    return found
+
+
+@settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
 class Settings:
     """Every setting of every command; built once by :func:`load_settings`, passed explicitly."""
 
     pipeline: PipelineSettings = field(default_factory=PipelineSettings)
-    units: UnitSystem = DEFAULT_UNITS  # what check shows and convert writes
-    traditional_per_si: float = TRADITIONAL_PER_SI
-    to: tuple[OutputKind, ...] = OUTPUT_KINDS  # what convert writes
+    units: Annotated[UnitSystem, check(choice, UNIT_SYSTEMS)] = DEFAULT_UNITS  # what check shows, convert writes
+    traditional_per_si: Annotated[float, check(_factor)] = TRADITIONAL_PER_SI
+    to: Annotated[tuple[OutputKind, ...], check(kinds)] = OUTPUT_KINDS  # what convert writes
     service: ServiceSettings | None = None
     source: str = "(defaults)"  # the configuration file read, if any
     field_map: Path | None = None  # key map: read every input through this field map (CSV, legacy HL7)
@@ -58,14 +69,10 @@ class Settings:
         return self.service
 
 
-def _default(cls: type, name: str) -> Any:
-    """The default of one field of a settings dataclass (the one place it is written)."""
-    return next(f.default for f in fields(cls) if f.name == name)
-
-
-# The keys of the configuration, read from the settings classes' fields (a new field is a new key).
+# The keys of the configuration, read from the settings models' fields (a new field is a new key).
 # A key's name is its field's, but for these: the field is filled from another key, or not from one.
 _KEY_OF_FIELD = {"validate_outputs": "validate", "field_map": "map"}
+_FIELD_OF_KEY = {key: name for name, key in _KEY_OF_FIELD.items()}
 _NOT_KEYS = {"emit", "pipeline", "service", "source", "maps", "destinations"}  # sections, or filled by the reader
 
 
@@ -74,15 +81,15 @@ def _keys(*classes: type) -> frozenset[str]:
 
 
 _SERVICE_KEYS = _keys(ServiceSettings)
+_PIPELINE_KEYS = _keys(PipelineSettings) - {"map"}  # its field map is chosen per file, from [maps] or map
 TOP_LEVEL_KEYS = _keys(ServiceSettings, PipelineSettings, Settings)
 _EMIT_KEYS = _keys(EmitSettings)
 _DESTINATION_KEYS = {f.name for f in fields(Destination)} - {"name", "token"}
+_FOLDERS = ("inbox", "archive", "quarantine", "state")
+_DESTINATION_FILES = ("folder", "ca_file", "cert_file", "key_file", "private_key_file")
 # Every key a flag may set (``emit.x`` for a key of [emit]): the CLI passes the flags it has of these.
 SETTING_KEYS = TOP_LEVEL_KEYS | {f"emit.{key}" for key in _EMIT_KEYS}
 
-
-# The most max_input_bytes may be: every input is read whole into memory (a DLCO export is a few kB).
-MAX_INPUT_BYTES_LIMIT = 1024**3
 VALIDATE_MODULE = "fhir.resources"  # the [validate] extra: what --validate needs
 
 
@@ -100,7 +107,7 @@ def _name(value: Any) -> Any:
 
 
 class SettingsReader(ValueChecker):
-    """Typed access to the merged settings tree, each error naming its key."""
+    """The merged settings tree -> :class:`Settings`: regrouped by model, validated by pydantic, errors named."""
 
     def __init__(
         self,
@@ -118,21 +125,38 @@ class SettingsReader(ValueChecker):
         unknown = sorted(set(d) - TOP_LEVEL_KEYS - {"emit", "destination", "maps"})
         if unknown:
             raise self.fail(unknown[0], f"a known setting (every key is shown in {SAMPLE_CONFIG})")
-        factor = self.number(
-            "traditional_per_si", d.get("traditional_per_si", _default(Settings, "traditional_per_si"))
-        )
-        if factor not in TRADITIONAL_PER_SI_CHOICES:
-            raise self.fail("traditional_per_si", " or ".join(map(str, TRADITIONAL_PER_SI_CHOICES)))
-        return Settings(
-            pipeline=self.pipeline(),
-            units=self.choice("units", d.get("units", _default(Settings, "units")), UNIT_SYSTEMS),  # type: ignore[arg-type]
-            traditional_per_si=factor,
-            to=self.kinds("to", d.get("to", _default(Settings, "to"))),
-            service=self.service() if self.wants_service() else None,
-            source=self.source,
-            field_map=self.map_file("map", d["map"]) if d.get("map") else None,
-            maps=self.maps(d.get("maps", {})),
-        )
+        tree: dict[str, Any] = {k: d[k] for k in ("units", "traditional_per_si", "to") if k in d}
+        tree["pipeline"] = self.pipeline_tree()
+        if self.wants_service():
+            tree["service"] = self.service_tree()
+        if d.get("map"):
+            tree["field_map"] = self.map_file("map", d["map"])
+        tree["maps"] = self.maps(d.get("maps", {}))
+        try:
+            settings = Settings(source=self.source, **tree)
+        except ValidationError as exc:
+            raise self.refused(exc, tree) from None
+        self.check_pipeline(settings.pipeline)
+        for destination in settings.service.destinations if settings.service else ():
+            self.check_destination(destination, d["destination"][destination.name])
+        return settings
+
+    def refused(self, exc: ValidationError, tree: Mapping[str, Any]) -> ConfigError:
+        """pydantic's first refusal as our one line: the key (or the variable, or the flag) and what was expected."""
+        error = exc.errors(include_url=False)[0]
+        loc = [str(part) for part in error["loc"]]
+        if loc[:1] == ["service"] and loc[1:2] == ["destinations"]:
+            name = tree["service"]["destinations"][int(loc[2])]["name"]
+            key = ".".join(["destination", name, *loc[3:]])
+        elif loc[:1] in (["pipeline"], ["service"]):
+            key = ".".join([_KEY_OF_FIELD.get(loc[1], loc[1]), *loc[2:]]) if len(loc) > 1 else loc[0]
+        else:
+            key = ".".join([_KEY_OF_FIELD.get(loc[0], loc[0]), *loc[1:]]) if loc else "(settings)"
+        cause = (error.get("ctx") or {}).get("error")
+        expected = str(cause) if error["type"] == "value_error" and cause is not None else error["msg"]
+        if error["type"] in ("dataclass_type", "dict_type", "dataclass_args_type"):
+            expected = "a table"
+        return self.fail(key, expected)
 
     def maps(self, table: Any) -> tuple[tuple[str, Path], ...]:
         """``[maps]``: ``"*.csv" = "mappings/maps/x.toml"``, in the file's order (first match wins)."""
@@ -146,85 +170,53 @@ class SettingsReader(ValueChecker):
             raise self.fail(key, f"a field map file (mappings/maps/*.toml), got {str(value)!r}")
         return path
 
-    def pipeline(self) -> PipelineSettings:
-        d, defaults = self.data, PipelineSettings()
-        validate = self.flag("validate", d.get("validate", defaults.validate_outputs))
-        if validate and not _installed(VALIDATE_MODULE):
+    def pipeline_tree(self) -> dict[str, Any]:
+        d = self.data
+        tree = {_FIELD_OF_KEY.get(k, k): d[k] for k in _PIPELINE_KEYS if k in d}
+        tree["emit"] = self.emit_tree(d.get("emit", {}))
+        if "repeatability" in d:
+            criterion = self.choice("repeatability", _name(d["repeatability"]), repeatability_criteria())
+            tree["repeatability"] = criterion
+        return tree
+
+    def check_pipeline(self, pipeline: PipelineSettings) -> None:
+        """What pydantic cannot know: the extra installed, the codes the bridge reports, the HL7 table 0103."""
+        if pipeline.validate_outputs and not _installed(VALIDATE_MODULE):
             raise self.fail("validate", "the optional extra installed first: pip install 'dlco-bridge[validate]'")
         known = finding_codes()
-        blocking = self.codes("blocking", d.get("blocking", sorted(defaults.blocking)), known)
-        allow = self.codes("allow", d.get("allow", sorted(defaults.allow)), known)
-        for code in sorted(allow):
+        self.codes("blocking", pipeline.blocking, known)
+        self.codes("allow", pipeline.allow, known)
+        for code in sorted(pipeline.allow):
             if known.severities[code] is not Severity.ERROR:
                 raise self.fail(
                     "allow",
                     f"error finding codes, got {code}, a {known.severities[code].value} (it never stops a record)",
                 )
-        both = sorted(blocking & allow)
+        both = sorted(pipeline.blocking & pipeline.allow)
         if both:
             raise self.fail("allow", f"codes that are not also blocking, got {both[0]} in both")
-        return PipelineSettings(
-            max_input_bytes=self.whole(
-                "max_input_bytes", d.get("max_input_bytes", defaults.max_input_bytes), 1, MAX_INPUT_BYTES_LIMIT
-            ),
-            blocking=blocking,
-            allow=allow,
-            validate_outputs=validate,
-            emit=self.emit(d.get("emit", {})),
-            repeatability=self.choice(
-                "repeatability", _name(d.get("repeatability", defaults.repeatability)), repeatability_criteria()
-            ),
-            reference_basis=self.choice(  # type: ignore[arg-type]
-                "reference_basis", d.get("reference_basis", defaults.reference_basis), REFERENCE_BASES
-            ),
-            spirometry_reference=self.choice(  # type: ignore[arg-type]
-                "spirometry_reference", d.get("spirometry_reference", defaults.spirometry_reference), SPIROMETRY_SETS
-            ),
-        )
+        self.choice("emit.processing_id", pipeline.emit.processing_id, PROCESSING_IDS)
 
-    def codes(self, key: str, value: Any, known: FindingCodes) -> frozenset[str]:
-        """Finding codes (a list, or text separated by commas); each must be one the bridge can report."""
-        words = self.words(key, value)
-        for word in words:
+    def codes(self, key: str, given: frozenset[str], known: FindingCodes) -> None:
+        """Each finding code must be one the bridge can report (in the order given, as typed)."""
+        for word in self.words(key, self.data.get(key, sorted(given))):
             if word not in known.severities:
                 near = known.closest(word)
                 hint = f" (closest known: {near})" if near else ""
                 raise self.fail(key, f"finding codes listed in docs/findings.md, got {word!r}{hint}")
-        return frozenset(words)
 
-    def emit(self, e: Any) -> EmitSettings:
+    def emit_tree(self, e: Any) -> dict[str, Any]:
         if not isinstance(e, dict):
             raise self.fail("emit", "a table")
         unknown = sorted(set(e) - _EMIT_KEYS)
         if unknown:
             raise self.fail(f"emit.{unknown[0]}", f"one of {', '.join(sorted(_EMIT_KEYS))}")
-        defaults = EmitSettings()
-        facilities = self.facilities("emit.lab_facilities", e.get("lab_facilities", {}))
-        values = {k: str(v) for k, v in e.items() if k != "lab_facilities"}
-        for key in (
-            "sending_application",
-            "sending_facility",
-            "receiving_application",
-            "receiving_facility",
-            "patient_identifier_type",
-        ):
-            self.hl7_namespace(f"emit.{key}", values.get(key, getattr(defaults, key)))
-        self.choice("emit.processing_id", values.get("processing_id", defaults.processing_id), PROCESSING_IDS)
-        self.choice(
-            "emit.patient_reference",
-            values.get("patient_reference", defaults.patient_reference),
-            PATIENT_REFERENCES,
-        )
-        self.system_base("emit.system_base", values.get("system_base", defaults.system_base))
-        for key in ("identifier_system", "local_code_system"):
-            if key in values:
-                self.uri(f"emit.{key}", values[key])
-        if "hemoglobin_unit" in values:
-            self.choice("emit.hemoglobin_unit", values["hemoglobin_unit"], HEMOGLOBIN_UNITS)
-        self.choice(
-            "emit.charted_predicted", values.get("charted_predicted", defaults.charted_predicted), CHARTED_PREDICTED
-        )
-        return EmitSettings(**values, lab_facilities=facilities)  # type: ignore[arg-type]
+        for key in HL7_NAMES:
+            if key in e:
+                self.hl7_namespace(f"emit.{key}", e[key])
+        if "lab_facilities" in e:
+            return {**e, "lab_facilities": self.facilities("emit.lab_facilities", e["lab_facilities"])}
+        return dict(e)
 
     def facilities(self, key: str, value: Any) -> tuple[tuple[str, str], ...]:
         """``{"lab name" = "FACILITY-ID"}`` in TOML, ``lab name=FACILITY-ID;...`` in the environment."""
@@ -242,113 +234,52 @@ class SettingsReader(ValueChecker):
     def wants_service(self) -> bool:
         return bool(set(self.data) & _SERVICE_KEYS) or "destination" in self.data
 
-    def service(self) -> ServiceSettings:
+    def service_tree(self) -> dict[str, Any]:
         d = self.data
-
-        def defaults(name: str) -> Any:
-            return _default(ServiceSettings, name)
-
-        folders = {k: self.path(k, d.get(k)) for k in ("inbox", "archive", "quarantine", "state")}
-        destinations = tuple(self.destination(n, v) for n, v in d.get("destination", {}).items())
-        if not destinations:
+        tree = {k: d[k] for k in _SERVICE_KEYS if k in d}
+        tree.update({k: self.path(k, d.get(k)) for k in _FOLDERS})
+        tree["destinations"] = [self.destination_tree(n, v) for n, v in d.get("destination", {}).items()]
+        if not tree["destinations"]:
             raise self.fail("destination", "at least one [destination.NAME] table")
-        return ServiceSettings(
-            inbox=folders["inbox"],
-            archive=folders["archive"],
-            quarantine=folders["quarantine"],
-            state=folders["state"],
-            destinations=destinations,
-            rescan_seconds=self.number("rescan_seconds", d.get("rescan_seconds", defaults("rescan_seconds")), 0.05),
-            stable_seconds=self.number("stable_seconds", d.get("stable_seconds", defaults("stable_seconds")), 0.0),
-            retry_base_seconds=self.number(
-                "retry_base_seconds", d.get("retry_base_seconds", defaults("retry_base_seconds")), 0.01
-            ),
-            retry_cap_seconds=self.number(
-                "retry_cap_seconds", d.get("retry_cap_seconds", defaults("retry_cap_seconds")), 0.01
-            ),
-            metrics_port=self.port("metrics_port", d.get("metrics_port", defaults("metrics_port")), allow_zero=True),
-            metrics_host=self.loopback("metrics_host", d.get("metrics_host", defaults("metrics_host"))),
-            log_format=self.choice("log_format", d.get("log_format", defaults("log_format")), ("text", "json")),  # type: ignore[arg-type]
-            log_patient_data=self.flag("log_patient_data", d.get("log_patient_data", defaults("log_patient_data"))),
-            retention_days=self.number("retention_days", d.get("retention_days", defaults("retention_days")), 0.0),
-            duplicate_memory_days=self.number(
-                "duplicate_memory_days", d.get("duplicate_memory_days", defaults("duplicate_memory_days")), 1.0
-            ),
-        )
+        return tree
 
-    def destination(self, name: str, v: Any) -> Destination:
+    def destination_tree(self, name: str, v: Any) -> dict[str, Any]:
         where = f"destination.{name}"
         if not isinstance(v, dict):
             raise self.fail(where, "a table")
         unknown = sorted(set(v) - _DESTINATION_KEYS)
         if unknown:  # a misspelt key would otherwise be ignored and its default used
             raise self.fail(f"{where}.{unknown[0]}", f"one of {', '.join(sorted(_DESTINATION_KEYS))}")
-        transport = self.choice(f"{where}.transport", v.get("transport"), TRANSPORT_KINDS)
-        payload = self.choice(f"{where}.payload", v.get("payload"), OUTPUT_KINDS)
-        units = self.choice(f"{where}.units", v.get("units", _default(Destination, "units")), UNIT_SYSTEMS)
-        host = str(v.get("host", _default(Destination, "host")))
-        if not host or any(c.isspace() for c in host):
-            raise self.fail(f"{where}.host", f"a host name or address, got {host!r}")
-        dest = Destination(
-            name=name,
-            payload=payload,  # type: ignore[arg-type]
-            units=units,  # type: ignore[arg-type]
-            transport=transport,  # type: ignore[arg-type]
-            folder=self.path(f"{where}.folder", v["folder"]) if "folder" in v else None,
-            host=host,
-            port=self.port(f"{where}.port", v.get("port", 0), allow_zero=transport != "mllp"),
-            base_url=str(v.get("base_url", "")),
-            token_env=str(v.get("token_env", "")),
-            token=self.environ.get(str(v["token_env"])) if v.get("token_env") else None,
-            ca_file=self.path(f"{where}.ca_file", v["ca_file"]) if "ca_file" in v else None,
-            cert_file=self.path(f"{where}.cert_file", v["cert_file"]) if "cert_file" in v else None,
-            key_file=self.path(f"{where}.key_file", v["key_file"]) if "key_file" in v else None,
-            connect_timeout=self.number(
-                f"{where}.connect_timeout", v.get("connect_timeout", _default(Destination, "connect_timeout")), 0.01
-            ),
-            read_timeout=self.number(f"{where}.read_timeout", v["read_timeout"], 0.01) if "read_timeout" in v else None,
-            reconcile_in_flight=self.count(
-                f"{where}.reconcile_in_flight",
-                v.get("reconcile_in_flight", _default(Destination, "reconcile_in_flight")),
-            ),
-            **self.answers(where, v),
-            **self.smart(where, v),
-        )
-        if transport == "file" and dest.folder is None:
+        tree = {**v, "name": name, "transport": v.get("transport"), "payload": v.get("payload")}
+        tree.update({k: self.path(f"{where}.{k}", v[k]) for k in _DESTINATION_FILES if k in v})
+        if v.get("token_env"):
+            tree["token"] = self.environ.get(str(v["token_env"]))
+        return tree
+
+    def check_destination(self, dest: Destination, v: dict[str, Any]) -> None:
+        """What spans keys: a folder for files, a URL and FHIR for fhir-rest, the token set, SMART all or none."""
+        where = f"destination.{dest.name}"
+        self.smart(where, dest, v)
+        if dest.transport == "file" and dest.folder is None:
             raise self.fail(f"{where}.folder", "a folder for the file transport")
-        if transport == "fhir-rest":
+        if dest.transport == "fhir-rest":
             self.url(f"{where}.base_url", dest.base_url)
-            if payload != "fhir":
+            if dest.payload != "fhir":
                 raise self.fail(f"{where}.payload", '"fhir" for the fhir-rest transport')
         if dest.token_env and dest.token is None:
             raise self.fail(f"{where}.token_env", f"the environment variable {dest.token_env} to be set")
-        return dest
 
-    def answers(self, where: str, v: dict[str, Any]) -> dict[str, Any]:
-        """The response policy of one destination (``on_ae``, ``on_ar``, ``on_busy``)."""
-        return {
-            key: self.choice(f"{where}.{key}", v.get(key, _default(Destination, key)), ANSWER_POLICIES)
-            for key in ("on_ae", "on_ar", "on_busy")
-        }
-
-    def smart(self, where: str, v: dict[str, Any]) -> dict[str, Any]:
+    def smart(self, where: str, dest: Destination, v: dict[str, Any]) -> None:
         """SMART Backend Services keys: all of client_id, token_url, private_key_file, or none."""
         keys = ("client_id", "token_url", "private_key_file")
         given = [k for k in keys if v.get(k)]
         if not given:
-            return {}
+            return
         missing = [k for k in keys if k not in given]
         if missing:
             raise self.fail(f"{where}.{missing[0]}", f"set with {', '.join(given)} (SMART Backend Services)")
-        if v.get("token_env"):
+        if dest.token_env:
             raise self.fail(f"{where}.token_env", "unset when client_id is set (one way to authenticate)")
-        self.url(f"{where}.token_url", str(v["token_url"]))
-        scopes = str(v.get("scopes", _default(Destination, "scopes")))
-        if not scopes.strip() or any(c in scopes for c in '"\\\r\n'):
-            raise self.fail(f"{where}.scopes", f"space-separated scopes, got {scopes!r}")
-        return {
-            "client_id": str(v["client_id"]),
-            "token_url": str(v["token_url"]),
-            "private_key_file": self.path(f"{where}.private_key_file", v["private_key_file"]),
-            "scopes": scopes,
-        }
+        self.url(f"{where}.token_url", dest.token_url)
+        if not dest.scopes.strip() or any(c in dest.scopes for c in '"\\\r\n'):
+            raise self.fail(f"{where}.scopes", f"space-separated scopes, got {dest.scopes!r}")

@@ -33,7 +33,7 @@ from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.settings import EmitContext
 from bridge.emit.status import ItemStatus, Statuses, Withdrawn, resolve
 from bridge.errors import ConfigError, InvalidField, MappingError
-from bridge.hl7.text import ENCODING_CHARACTERS, FIELD_SEPARATOR, SEGMENT_SEPARATOR, escape, escape_formatted
+from bridge.hl7.text import ENCODING_CHARACTERS, FIELD_SEPARATOR, IS_LENGTH, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.model import Outcome, Patient
 from bridge.tables import Code, Tables
 
@@ -43,7 +43,6 @@ CHARACTER_SET = "UNICODE UTF-8"  # HL7 table 0211; names may hold any Unicode le
 
 CONTROL_ID_LENGTH = 20  # MSH-10 length in v2.5.1  # from memory
 ST_LENGTH = 199  # hl7apy base data type ST
-IS_LENGTH = 20  # hl7apy base data type IS (HD namespace ids)
 NM_LENGTH = 16  # hl7apy base data type NM
 PRELIMINARY = "P"  # HL7 tables 0085 (OBX-11) and 0123 (OBR-25): preliminary
 # OBX-11 (table 0085) and OBR-25 (table 0123) of each status: F final, C correction, P preliminary

@@ -7,17 +7,21 @@ predicted values are charted; the identifier and code systems built from ``syste
 :class:`EmitContext`, what an emitter is given for one message: the time the shell read, the
 destination's units, whether it is a correction, these settings as one value (``site``, never
 copied field by field) and what was sent before.
-Checking the values is ``bridge.config``'s job when it reads them.
+Each field's check is declared on it (``bridge.emit.setting_values``), run by pydantic;
+``bridge.config`` reads the values and names the file and key of a refused one.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field
 from datetime import datetime
-from typing import Literal
+from typing import Annotated, Literal
 
 from pydantic.dataclasses import dataclass as settings_model
 
+from bridge.emit import setting_values as kind
+from bridge.emit.setting_values import check, optional_choice, system_uri, text
+from bridge.emit.setting_values import choice as one_of
 from bridge.science.units import DEFAULT_UNITS, UnitSystem
 from bridge.values import SETTINGS_MODEL
 
@@ -33,27 +37,45 @@ HEMOGLOBIN_DIMENSION = "mass_concentration"  # the dimension emit.hemoglobin_uni
 ChartedPredicted = Literal["gli-2017", "lab"]
 CHARTED_PREDICTED: tuple[ChartedPredicted, ...] = ("gli-2017", "lab")
 DEFAULT_CHARTED_PREDICTED: ChartedPredicted = "gli-2017"
+# The fields that are HL7 names (HD namespace ids, CX.5): at most 20 characters, no delimiters.
+HL7_NAMES = (
+    "sending_application",
+    "sending_facility",
+    "receiving_application",
+    "receiving_facility",
+    "patient_identifier_type",
+)
 
 
 @settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
 class EmitSettings:
-    sending_application: str = "DLCO-BRIDGE"
-    sending_facility: str = "PFT-LAB"  # MSH-4 for a lab not in lab_facilities
-    receiving_application: str = "RECORDS"
-    receiving_facility: str = "HOSPITAL"
-    system_base: str = DEFAULT_SYSTEM_BASE  # an https:// URL the site controls; the default is a placeholder
-    identifier_system: str | None = None  # FHIR Identifier.system of observations; None: <system_base>/observation-id
-    local_code_system: str | None = None  # FHIR Coding.system of local codes; None: <system_base>/local-code
-    patient_reference: PatientReference = "identifier"
-    processing_id: str = "P"  # HL7 MSH-11: P production (table 0103, mappings/hl7_tables.toml)
+    """The site's identity in every message; each field checked by pydantic with ``setting_values``.
+
+    The HL7 names (``HL7_NAMES``) are checked when read from the configuration (``bridge.config``);
+    built in code, the HL7 emitter refuses an over-long one when it writes it.
+    """
+
+    sending_application: Annotated[str, check(text)] = "DLCO-BRIDGE"
+    sending_facility: Annotated[str, check(text)] = "PFT-LAB"  # MSH-4 for a lab not in lab_facilities
+    receiving_application: Annotated[str, check(text)] = "RECORDS"
+    receiving_facility: Annotated[str, check(text)] = "HOSPITAL"
+    # an https:// URL the site controls; the default is a placeholder
+    system_base: Annotated[str, check(kind.system_base)] = DEFAULT_SYSTEM_BASE
+    # FHIR Identifier.system of observations; None: <system_base>/observation-id
+    identifier_system: Annotated[str | None, check(system_uri)] = None
+    # FHIR Coding.system of local codes; None: <system_base>/local-code
+    local_code_system: Annotated[str | None, check(system_uri)] = None
+    patient_reference: Annotated[PatientReference, check(one_of, PATIENT_REFERENCES)] = "identifier"
+    # HL7 MSH-11: P production (table 0103, mappings/hl7_tables.toml; bridge.config checks it is listed)
+    processing_id: Annotated[str, check(text)] = "P"
     lab_facilities: tuple[tuple[str, str], ...] = ()  # (lab name as exported, HL7 facility id): MSH-4, OBR-3
-    patient_identifier_type: str = "MR"  # HL7 PID-3 CX.5 (table 0203): MR medical record number
+    patient_identifier_type: Annotated[str, check(text)] = "MR"  # HL7 PID-3 CX.5 (table 0203): MR medical record number
     # Haemoglobin is sent (and named in notes) in this unit, g/L or g/dL (HEMOGLOBIN_UNITS);
     # None: the unit system's display unit in mappings/units.toml.
-    hemoglobin_unit: str | None = None
+    hemoglobin_unit: Annotated[str | None, check(optional_choice, HEMOGLOBIN_UNITS)] = None
     # Whose predicted value, per cent predicted and range are charted (CHARTED_PREDICTED); outside
     # the GLI-2017 equations' range the GLI-2017 results are sent as a stated absence, not replaced.
-    charted_predicted: ChartedPredicted = DEFAULT_CHARTED_PREDICTED
+    charted_predicted: Annotated[ChartedPredicted, check(one_of, CHARTED_PREDICTED)] = DEFAULT_CHARTED_PREDICTED
 
     def context(
         self, now: datetime, units: UnitSystem, correction: bool = False, earlier: tuple[tuple[str, str], ...] = ()

@@ -24,6 +24,7 @@ from bridge.hl7.mllp import END_BLOCK, START_BLOCK
 SEGMENT_SEPARATOR = "\r"
 FIELD_SEPARATOR = "|"
 ENCODING_CHARACTERS = "^~\\&"  # component, repetition, escape, subcomponent
+IS_LENGTH = 20  # hl7apy base data type IS (HD namespace ids)
 
 # source: HL7 v2.5.1 appendix C (MLLP): a message is framed by <VT> ... <FS><CR>, so neither is data
 _SEGMENT = re.compile("[^\r\n" + re.escape((START_BLOCK + END_BLOCK).decode("ascii")) + "]+")

@@ -1,8 +1,9 @@
 """What the service is set with: its folders, loops and receivers, as frozen values (shell).
 
 Owns: :class:`ServiceSettings` and :class:`Destination` with their defaults, written once.
-Reading them from the configuration file, the environment and flags, and checking each value,
-is ``bridge.config``'s job; ``bridge.config.Settings`` carries them as ``service``.
+Each field's check is declared on it (``bridge.emit.setting_values``) and run by pydantic;
+reading them from the configuration file, the environment and flags is ``bridge.config``'s job;
+``bridge.config.Settings`` carries them as ``service``.
 """
 
 from __future__ import annotations
@@ -11,13 +12,16 @@ from collections.abc import Mapping
 from dataclasses import field
 from pathlib import Path
 from types import MappingProxyType
-from typing import Literal
+from typing import Annotated, Literal
 from urllib.parse import urlsplit, urlunsplit
 
+from pydantic import Field, ValidationInfo, field_validator
 from pydantic.dataclasses import dataclass as settings_model
 
-from bridge.model import OutputKind
-from bridge.science.units import DEFAULT_UNITS, UnitSystem
+from bridge.emit import setting_values as kind
+from bridge.emit.setting_values import check, choice, flag, loopback, number, optional_number, text, whole
+from bridge.model import OUTPUT_KINDS, OutputKind
+from bridge.science.units import DEFAULT_UNITS, UNIT_SYSTEMS, UnitSystem
 from bridge.values import SETTINGS_MODEL
 
 TransportKind = Literal["file", "mllp", "fhir-rest"]
@@ -30,6 +34,7 @@ CONNECT_TIMEOUT = 10.0  # seconds to connect, MLLP and FHIR alike
 READ_TIMEOUTS: Mapping[TransportKind, float] = MappingProxyType({"mllp": 30.0, "fhir-rest": 60.0, "file": 0.0})
 RETRY_BASE_SECONDS = 1.0  # the outbox's back-off: the first retry's largest delay, doubling from there
 RETRY_CAP_SECONDS = 300.0  # ... up to this
+LOG_FORMATS = ("text", "json")
 
 
 @settings_model(frozen=True, slots=True, config=SETTINGS_MODEL)
@@ -37,28 +42,37 @@ class Destination:
     """One receiver: what it gets (payload, units) and how (transport)."""
 
     name: str
-    payload: OutputKind
-    transport: TransportKind
-    units: UnitSystem = DEFAULT_UNITS
+    payload: Annotated[OutputKind, check(choice, OUTPUT_KINDS)]
+    transport: Annotated[TransportKind, check(choice, TRANSPORT_KINDS)]
+    units: Annotated[UnitSystem, check(choice, UNIT_SYSTEMS)] = DEFAULT_UNITS
     folder: Path | None = None  # file
-    host: str = "127.0.0.1"  # mllp
-    port: int = 0
-    base_url: str = ""  # fhir-rest
-    token_env: str = ""  # name of the environment variable holding the bearer token
+    host: Annotated[str, check(kind.host)] = "127.0.0.1"  # mllp
+    port: Annotated[int, check(kind.port)] = Field(default=0, validate_default=True)  # mllp: 1-65535
+    base_url: Annotated[str, check(text)] = ""  # fhir-rest
+    token_env: Annotated[str, check(text)] = ""  # name of the environment variable holding the bearer token
     token: str | None = field(default=None, repr=False)  # read from token_env at load time
     ca_file: Path | None = None
     cert_file: Path | None = None
     key_file: Path | None = None
-    connect_timeout: float = CONNECT_TIMEOUT
-    read_timeout: float | None = None  # None: the transport's own, READ_TIMEOUTS
-    on_ae: AnswerPolicy = "dead-letter"  # mllp: what an AE/CE answer means
-    on_ar: AnswerPolicy = "dead-letter"  # mllp: what an AR/CR answer means (some receivers: "busy")
-    on_busy: AnswerPolicy = "retry"  # fhir-rest: HTTP 429/503 (Retry-After honoured when retried)
-    client_id: str = ""  # fhir-rest, SMART Backend Services: OAuth 2.0 client credentials with a JWT
-    token_url: str = ""
+    connect_timeout: Annotated[float, check(number, 0.01)] = CONNECT_TIMEOUT
+    read_timeout: Annotated[float | None, check(optional_number, 0.01)] = None  # None: the transport's, READ_TIMEOUTS
+    on_ae: Annotated[AnswerPolicy, check(choice, ANSWER_POLICIES)] = "dead-letter"  # mllp: an AE/CE answer
+    on_ar: Annotated[AnswerPolicy, check(choice, ANSWER_POLICIES)] = "dead-letter"  # mllp: AR/CR (some: "busy")
+    # fhir-rest: HTTP 429/503 (Retry-After honoured when retried)
+    on_busy: Annotated[AnswerPolicy, check(choice, ANSWER_POLICIES)] = "retry"
+    # fhir-rest, SMART Backend Services: OAuth 2.0 client credentials with a JWT
+    client_id: Annotated[str, check(text)] = ""
+    token_url: Annotated[str, check(text)] = ""
     private_key_file: Path | None = None  # PEM, RSA (RS384) or EC P-384 (ES384)
-    scopes: str = "system/*.write"
-    reconcile_in_flight: int = 4  # fhir-rest: searches reconcile runs at once against this server
+    scopes: Annotated[str, check(text)] = "system/*.write"
+    # fhir-rest: searches reconcile runs at once against this server
+    reconcile_in_flight: Annotated[int, check(whole, 1, 1_000)] = 4
+
+    @field_validator("port")
+    @classmethod
+    def _mllp_port(cls, value: int, info: ValidationInfo) -> int:
+        """An MLLP receiver listens on a port; 0 (none) is for the other transports."""
+        return kind.port(value, info.data.get("transport") != "mllp")
 
     @property
     def answer_timeout(self) -> float:
@@ -86,16 +100,18 @@ class ServiceSettings:
     quarantine: Path
     state: Path
     destinations: tuple[Destination, ...]
-    rescan_seconds: float = 5.0
-    stable_seconds: float = 1.0
-    retry_base_seconds: float = RETRY_BASE_SECONDS
-    retry_cap_seconds: float = RETRY_CAP_SECONDS
-    metrics_port: int = 0  # 0: no health/metrics endpoint
-    metrics_host: str = "127.0.0.1"
-    log_format: Literal["text", "json"] = "text"
-    log_patient_data: bool = False
-    retention_days: float = 0.0  # 0: keep delivered payloads; else prune them (and old rows) after so many days
-    duplicate_memory_days: float = 3650.0  # how long input hashes and control ids are kept to recognise a resend
+    rescan_seconds: Annotated[float, check(number, 0.05)] = 5.0
+    stable_seconds: Annotated[float, check(number, 0.0)] = 1.0
+    retry_base_seconds: Annotated[float, check(number, 0.01)] = RETRY_BASE_SECONDS
+    retry_cap_seconds: Annotated[float, check(number, 0.01)] = RETRY_CAP_SECONDS
+    metrics_port: Annotated[int, check(kind.port)] = 0  # 0: no health/metrics endpoint
+    metrics_host: Annotated[str, check(loopback)] = "127.0.0.1"
+    log_format: Annotated[Literal["text", "json"], check(choice, LOG_FORMATS)] = "text"
+    log_patient_data: Annotated[bool, check(flag)] = False
+    # 0: keep delivered payloads; else prune them (and old rows) after so many days
+    retention_days: Annotated[float, check(number, 0.0)] = 0.0
+    # how long input hashes and control ids are kept to recognise a resend
+    duplicate_memory_days: Annotated[float, check(number, 1.0)] = 3650.0
 
     @property
     def ledger_path(self) -> Path:
