@@ -74,12 +74,10 @@ def value_at(session: Session, path: str, manoeuvre: int | None) -> Any:
     """The value of a canonical field in a (normalised) session, or None."""
     node: Any = session
     parts = path.split(".")
-    if manoeuvre is not None:
-        if manoeuvre >= len(session.manoeuvres):
-            return None
-        node, parts = session.manoeuvres[manoeuvre], parts[1:]
-    for part in parts:
+    for at, part in enumerate(parts):
         node = getattr(node, part, None)
+        if isinstance(node, tuple) and at < len(parts) - 1:  # a list of manoeuvres: the one numbered
+            node = node[manoeuvre] if manoeuvre is not None and manoeuvre < len(node) else None
         if node is None:
             return None
     return node
@@ -108,8 +106,9 @@ def _empty_fields(check: MapCheck) -> list[str]:
     sessions = [r.session for _, r in check.records if isinstance(r, Outcome)]
     empty = []
     for path, target in canonical_fields().items():
-        if target.per_manoeuvre:
-            filled = any(value_at(s, path, i) is not None for s in sessions for i in range(len(s.manoeuvres)))
+        if target.item_of is not None:
+            counts = [(s, len(value_at(s, target.item_of, None) or ())) for s in sessions]
+            filled = any(value_at(s, path, i) is not None for s, count in counts for i in range(count))
         else:
             filled = any(value_at(s, path, None) is not None for s in sessions)
         if not filled:

@@ -31,7 +31,7 @@ from bridge.emit.identifiers import observation_identifier
 from bridge.emit.notes import supporting_text
 from bridge.emit.observations import OUTPUT_REVISION, build_content
 from bridge.emit.settings import EmitContext
-from bridge.emit.status import ItemStatus, Statuses, Withdrawn, resolve
+from bridge.emit.status import ItemStatus, OrderGroup, Statuses, Withdrawn, order_groups, resolve
 from bridge.errors import ConfigError, InvalidField, MappingError
 from bridge.hl7.text import ENCODING_CHARACTERS, FIELD_SEPARATOR, IS_LENGTH, SEGMENT_SEPARATOR, escape, escape_formatted
 from bridge.model import Outcome, Patient
@@ -77,22 +77,20 @@ def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: Repo
     msh, now = _msh(outcome, context, facility)
     performed = hl7_timestamp(outcome.session.performed_at)
     orders = _order_numbers(outcome, facility)
-    segments = [
-        msh,
-        _pid(outcome.session.patient, context.site.patient_identifier_type, tables),
-        _segment("ORC", "RE", *orders),
-        # OBR-25 (HL7 table 0123): P when a value is preliminary (the lab's status, an allowed error finding)
-        _obr(orders, tables, now, performed, STATUS_LETTERS[statuses.report]),
-        *_ntes(content.notes),
-        *_observations(content, statuses, performed, _performer(outcome, facility)),
-    ]
-    # Each further test group (a spirometry phase) is an order group of its own in the same ORU:
-    # OBR (ORC optional, left out: the order is the ORC's above) and its OBX, set ids from 1.
+    performer = _performer(outcome, facility)
+    segments = [msh, _pid(outcome.session.patient, context.site.patient_identifier_type, tables)]
+    # The DLCO test, then each further test group (a spirometry phase), each an order group of its
+    # own in the same ORU: ORC (only the first: the others share its order), OBR, then its OBX with
+    # set ids from 1, a withdrawn result under the OBR it was sent under. OBR-25 (HL7 table 0123):
+    # P when a value is preliminary (the lab's status, an allowed error finding).
     # source: HL7 v2.5.1 ch. 7, ORU^R01: {ORDER_OBSERVATION: [ORC] OBR {[NTE]} ... {OBSERVATION}} repeats
-    for number, group in enumerate(content.groups, start=2):
-        obr = _obr(orders, tables, now, performed, STATUS_LETTERS[statuses.of(group.key)], group.code, number)
-        members = [item for item in content.items if item.group == group.key]
-        segments += [obr, *_observations(content, statuses, performed, _performer(outcome, facility), members)]
+    for number, group in enumerate(order_groups(content, statuses, tables), start=1):
+        if group.key is None:
+            segments.append(_segment("ORC", "RE", *orders))
+        segments.append(_obr(orders, tables, now, performed, STATUS_LETTERS[group.status], group.code, number))
+        if group.key is None:
+            segments += _ntes(content.notes)
+        segments += _observations(group, statuses, performed, performer)
     return SEGMENT_SEPARATOR.join(segments) + SEGMENT_SEPARATOR
 
 
@@ -206,12 +204,9 @@ def _obr(
     return _segment("OBR", *fields)
 
 
-def _observations(
-    content: ReportContent, statuses: Statuses, observed: str, performer: str, group: list[ResultItem] | None = None
-) -> Iterable[str]:
-    """The OBX (and NTE) of the DLCO test's items and what is withdrawn, or of one test group's items."""
-    items = [item for item in content.items if item.group is None] if group is None else group
-    for set_id, item in enumerate(items, start=1):
+def _observations(group: OrderGroup, statuses: Statuses, observed: str, performer: str) -> Iterable[str]:
+    """The OBX (and NTE) of one order group's items, then of what it withdraws."""
+    for set_id, item in enumerate(group.items, start=1):
         # OBX-11 (HL7 table 0085): P "preliminary results" for a value the lab marked preliminary
         # or with an allowed error finding (the finding follows in NTE); C only when it replaces a
         # final result sent before. Table 0078 (OBX-8) has no code for a questionable value, so
@@ -219,9 +214,7 @@ def _observations(
         yield _obx(set_id, item, STATUS_LETTERS[statuses.of(item.key)], observed, performer)
         if item.notes or item.supporting:
             yield from _ntes((*item.notes, *(supporting_text(value) for value in item.supporting)))
-    if group is not None:
-        return
-    for set_id, gone in enumerate(statuses.withdrawn, start=len(items) + 1):
+    for set_id, gone in enumerate(group.withdrawn, start=len(group.items) + 1):
         yield _deleted_obx(set_id, gone, observed, performer)
         yield from _ntes((gone.reason,))
 

@@ -19,7 +19,7 @@ from bridge.emit.identifiers import observation_identifier
 from bridge.emit.manifest import fhir_carried, hl7_carried
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
-from bridge.emit.status import resolve
+from bridge.emit.status import order_groups, resolve
 from bridge.errors import BlockedByFinding, MissingField
 from bridge.model import Outcome, OutputKind, Payload, Severity
 from bridge.tables import Tables
@@ -104,9 +104,8 @@ def payloads(
             )
         else:
             er7 = to_oru(outcome, tables, context, content)
-            keys = [item.key for item in content.items if item.group is None]  # OBX order: the DLCO test's,
-            keys += [gone.key for gone in resolve(outcome, content, tables, context).withdrawn]  # what is withdrawn,
-            keys += [item.key for group in content.groups for item in content.items if item.group == group.key]
+            statuses = resolve(outcome, content, tables, context)  # OBX order, as to_oru writes it
+            keys = [key for group in order_groups(content, statuses, tables) for key in group.obx_keys()]
             prefix = observation_identifier(outcome, "")  # lab slug and test id, once
             ids = [prefix + key for key in keys]
             built.append(

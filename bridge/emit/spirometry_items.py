@@ -14,6 +14,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from dataclasses import replace
+from types import MappingProxyType
 from typing import Protocol
 
 from bridge.emit.content import ResultGroup, ResultItem
@@ -25,6 +26,20 @@ Z_SCORE_UNIT = "{Zscore}"  # source: UCUM, curly-brace annotations (as emit.obse
 _KEYS = (("fev1", "FEV1"), ("fvc", "FVC"), ("fev1_fvc", "FEV1/FVC"), ("fef25_75", "FEF25-75"), ("pef", "PEF"))
 _REFERENCED = frozenset({"fev1", "fvc", "fev1_fvc", "fef25_75"})  # quantities some spirometry set has equations for
 _PHASE_WORDS = (("pre", "before the bronchodilator"), ("post", "after the bronchodilator"))
+# The test group of every spirometry item key (and of each group's own key): where a correction's
+# withdrawal of that result goes (bridge.emit.status).
+GROUP_OF: Mapping[str, str] = MappingProxyType(
+    {
+        **{f"spirometry_{phase}": f"spirometry_{phase}" for phase, _ in _PHASE_WORDS},
+        **{
+            f"{key}_{phase}{kind}": f"spirometry_{phase}"
+            for key, _ in _KEYS
+            for phase, _ in _PHASE_WORDS
+            for kind in ("", "_predicted", "_percent_predicted", "_z_score")
+        },
+        **{f"{key}_bronchodilator_response": "spirometry_post" for key in ("fev1", "fvc")},
+    }
+)
 
 
 class Builder(Protocol):

@@ -23,9 +23,10 @@ from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Literal
 
-from bridge.emit.content import ReportContent
+from bridge.emit.content import ReportContent, ResultItem
 from bridge.emit.identifiers import observation_identifier
 from bridge.emit.settings import EmitContext
+from bridge.emit.spirometry_items import GROUP_OF
 from bridge.model import Outcome
 from bridge.science.lab_status import NOT_SENT_CODE, WITHDRAWN_CODE
 from bridge.tables import Code, Tables
@@ -61,11 +62,12 @@ _SENT_WITHDRAWN = frozenset({"entered-in-error", "D", "W"})
 
 @dataclass(frozen=True, slots=True)
 class Withdrawn:
-    """A result sent before that this outcome no longer produces: its key, code and why."""
+    """A result sent before that this outcome no longer produces: its key, code, why, and its test group."""
 
     key: str
     code: Code
     reason: str
+    group: str | None = None  # the test group it was sent in (a ResultGroup's key); None: the DLCO test
 
 
 @dataclass(frozen=True, slots=True)
@@ -140,5 +142,46 @@ def _withdrawn(outcome: Outcome, earlier: dict[str, str], produced: set[str], ta
         if key in gone:
             lab = said.get(_LAB_VALUE.get(key, ""))
             reason = f"{lab[0].upper()}{lab[1:]}" if lab else "The corrected record no longer gives this result."
-            found.append(Withdrawn(key, code, f"Withdrawn: {reason}"))
+            found.append(Withdrawn(key, code, f"Withdrawn: {reason}", GROUP_OF.get(key)))
     return tuple(found)
+
+
+@dataclass(frozen=True, slots=True)
+class OrderGroup:
+    """One order group of an ORU: the DLCO test (``key`` None) or a test group, its items and its withdrawals."""
+
+    key: str | None
+    code: Code | None  # the group's code (OBR-4); None: the DLCO panel
+    status: ItemStatus  # OBR-25
+    items: tuple[ResultItem, ...]
+    withdrawn: tuple[Withdrawn, ...]  # OBX-11 D after the items, under the OBR of the group they were sent in
+
+    def obx_keys(self) -> list[str]:
+        """The keys of the group's OBX, in message order: the items, then what is withdrawn."""
+        return [item.key for item in self.items] + [gone.key for gone in self.withdrawn]
+
+
+def order_groups(content: ReportContent, statuses: Statuses, tables: Tables) -> tuple[OrderGroup, ...]:
+    """The order groups of the report's ORU in message order: the DLCO test, then the test groups.
+
+    A withdrawn result goes under the OBR of its own test group (HL7 v2.5.1 ch. 7: an OBX belongs
+    to the OBR above it). A test group the correction no longer has at all still gets its OBR,
+    sent as a correction, to carry its withdrawals; its own key is that OBR, never an OBX.
+    """
+    present = {group.key: group.code for group in content.groups}
+    vanished = {gone.group: tables.codes.codes[gone.group] for gone in statuses.withdrawn if gone.group}
+    codes = {**vanished, **present}
+    order = list(tables.codes.codes)
+    found = [OrderGroup(None, None, statuses.report, _members(content, None), _gone(statuses, None))]
+    for key in sorted(codes, key=lambda k: order.index(k) if k in order else len(order)):
+        status: ItemStatus = statuses.of(key) if key in present else "corrected"
+        found.append(OrderGroup(key, codes[key], status, _members(content, key), _gone(statuses, key)))
+    return tuple(found)
+
+
+def _members(content: ReportContent, group: str | None) -> tuple[ResultItem, ...]:
+    return tuple(item for item in content.items if item.group == group)
+
+
+def _gone(statuses: Statuses, group: str | None) -> tuple[Withdrawn, ...]:
+    return tuple(gone for gone in statuses.withdrawn if gone.group == group and gone.key != group)

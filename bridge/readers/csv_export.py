@@ -168,7 +168,7 @@ def _cells(
             joined_text([row[i] for i in c.indices], c.source, fmap) if c.indices else str(c.source.value),
             f"line {line}, {c.label}",
             row[c.unit_index] if c.unit_index is not None else c.source.unit,
-            manoeuvre,
+            manoeuvre if c.source.item is None else c.source.item - 1,  # a numbered column: that manoeuvre
             row[c.status_index] if c.status_index is not None else None,
         )
         for c in plan

@@ -4,7 +4,8 @@ Owns: reading a file's messages (one or many; MLLP-framed or not; split by
 ``bridge.hl7.text.split_messages``), checking each MSH (ORU^R01 of a version the map accepts), and
 reading each message with python-hl7: session fields from segment locations (``PID-5.2``),
 observations from OBX by the local code in OBX-3.1, the value in OBX-5, the unit in OBX-6 or
-fixed by the map, the manoeuvre number in OBX-4 (sub-ID) for manoeuvre fields, and the lab's
+fixed by the map, the manoeuvre number in OBX-4 (sub-ID) for manoeuvre fields (the DLCO test's
+and spirometry's, unless the map numbers the field itself), and the lab's
 status of each value in OBX-11 (table 0085: ``bridge.science.lab_status`` says what it does). Codes the
 map does not name are reported with the record, never guessed at. One message, one session;
 a bad message never stops the next.
@@ -97,7 +98,11 @@ def _cells(where: str, message: hl7.Message, fmap: FieldMap) -> tuple[list[Cell]
         for source in codes[code]:
             at = f"{where}, OBX {index} (code {code!r})"
             unit = _field(obx, 6, 1) if source.unit_from_obx else source.unit
-            manoeuvre = _manoeuvre(obx, at) if source.target.per_manoeuvre else None
+            manoeuvre = None
+            if source.item is not None:  # a code of its own per manoeuvre: the map's number, not OBX-4
+                manoeuvre = source.item - 1
+            elif source.target.item_of is not None:
+                manoeuvre = _manoeuvre(obx, at)
             # OBX-11: the lab's status of this one value (HL7 v2.5.1 ch. 7, table 0085)
             cells.append(Cell(source, _field(obx, 5, 1), at, unit, manoeuvre, _field(obx, 11, 1)))
     return cells, unmapped

@@ -23,7 +23,6 @@ from bridge.errors import InputError, InvalidField, MissingField, UnitError, Unr
 from bridge.model import Session
 from bridge.readers.json_export import FORMAT, session_from_tree
 from bridge.science.units import UnitCatalogue
-from bridge.tables.canonical_fields import MANOEUVRES
 from bridge.tables.field_map_model import ENCODINGS, FieldMap, FieldSource, has_time
 
 _NUMBER = re.compile(r"[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d{1,3})?")
@@ -37,7 +36,7 @@ class Cell:
     text: str
     where: str  # "line 4, column 'VI'" or "message 2, OBX 5 (code 'TLCO')"
     unit: str | None = None  # the unit text the source gave (fixed, a unit column or OBX-6)
-    manoeuvre: int | None = None  # 0-based, for manoeuvre fields
+    manoeuvre: int | None = None  # 0-based, for manoeuvre fields (and items of spirometry's manoeuvre lists)
     status: str | None = None  # the lab's status of this value (OBX-11, or the map's status column)
 
 
@@ -91,37 +90,38 @@ def record_tree(cells: Iterable[Cell], fmap: FieldMap, catalogue: UnitCatalogue)
     words become codes.
     """
     tree: dict[str, Any] = {"format": FORMAT}
-    manoeuvres: dict[int, dict[str, Any]] = {}
-    statuses: list[tuple[int | None, str, str]] = []  # (manoeuvre, path, code)
+    items: dict[str, dict[int, dict[str, Any]]] = {}  # list path -> item number -> the item's tree
+    statuses: list[tuple[str | None, int | None, str, str]] = []  # (list, item, path, code)
     for cell in cells:
-        path = cell.source.target.path
+        target = cell.source.target
+        path, of = target.path, target.item_of
         status = (cell.status or "").strip()
         if status and status not in fmap.missing:
-            statuses.append((cell.manoeuvre, path, fmap.status_codes.get(status, status)))
+            statuses.append((of, cell.manoeuvre, path, fmap.status_codes.get(status, status)))
         value = cell_value(cell, fmap, catalogue)
         if value is None:
             continue
-        if cell.manoeuvre is not None:
-            _put(manoeuvres.setdefault(cell.manoeuvre, {}), path.removeprefix(MANOEUVRES + "."), value)
+        if of is not None and cell.manoeuvre is not None:
+            _put(items.setdefault(of, {}).setdefault(cell.manoeuvre, {}), path.removeprefix(of + "."), value)
         else:
             _put(tree, path, value)
-    order = sorted(manoeuvres)
-    if manoeuvres:
-        tree[MANOEUVRES] = [manoeuvres[i] for i in order]
+    order = {of: sorted(numbered) for of, numbered in items.items()}  # numbers order the items; gaps close
+    for of, numbers in order.items():
+        _put(tree, of, [items[of][n] for n in numbers])
     if statuses:
         tree["lab_status"] = {
-            _status_path(path, order.index(m) if m in manoeuvres else m): code
-            for m, path, code in statuses
-            if m is None or m in manoeuvres
+            _status_path(path, of, order[of].index(n) if of is not None and n is not None else None): code
+            for of, n, path, code in statuses
+            if of is None or n is None or n in items.get(of, {})
         }
     return tree
 
 
-def _status_path(path: str, manoeuvre: int | None) -> str:
+def _status_path(path: str, of: str | None, index: int | None) -> str:
     """``manoeuvres.reported.dlco`` of the second manoeuvre -> ``manoeuvres[1].reported.dlco``, as findings say."""
-    if manoeuvre is None:
+    if of is None or index is None:
         return path
-    return f"{MANOEUVRES}[{manoeuvre}].{path.removeprefix(MANOEUVRES + '.')}"
+    return f"{of}[{index}].{path.removeprefix(of + '.')}"
 
 
 def _put(tree: dict[str, Any], path: str, value: Any) -> None:

@@ -33,6 +33,9 @@ class CanonicalField:
     dimension: str | None = None  # quantities only
     canonical_unit: str | None = None  # quantities only: the unit the core keeps it in
     per_manoeuvre: bool = False  # read once per manoeuvre (under ``manoeuvres.``)
+    # The list this field is an item of: ``manoeuvres`` (the DLCO test's), or a list inside an
+    # object, ``spirometry.pre.manoeuvres``; None for a field of the session itself.
+    item_of: str | None = None
 
 
 @cache
@@ -45,24 +48,23 @@ def canonical_fields() -> Mapping[str, CanonicalField]:
     return MappingProxyType(found)
 
 
-def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField]) -> None:
+def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField], item_of: str | None = None) -> None:
     for name, info in model.model_fields.items():
         path = prefix + name
         measure = _measure(info.metadata, info.annotation)
         if measure is not None:
             found[path] = CanonicalField(
-                path, "quantity", measure.dimension, measure.canonical_unit, _in_manoeuvre(path)
+                path, "quantity", measure.dimension, measure.canonical_unit, _in_manoeuvre(path), item_of
             )
             continue
         bare = _bare(info.annotation)
-        if get_origin(bare) is tuple:
-            if prefix:  # a list inside an object (spirometry's manoeuvres): not mappable yet, one list per file
-                continue
-            bare = _bare(get_args(bare)[0])
+        inner = item_of
+        if get_origin(bare) is tuple:  # a list: its items' fields, each read once per item
+            bare, inner = _bare(get_args(bare)[0]), path
         if isinstance(bare, type) and issubclass(bare, BaseModel) and bare is not Quantity:
-            _walk(bare, path + ".", found)
+            _walk(bare, path + ".", found, inner)
         else:
-            found[path] = CanonicalField(path, _kind(bare), per_manoeuvre=_in_manoeuvre(path))
+            found[path] = CanonicalField(path, _kind(bare), per_manoeuvre=_in_manoeuvre(path), item_of=inner)
 
 
 def _in_manoeuvre(path: str) -> bool:

@@ -63,6 +63,7 @@ class FieldSource:
     status_column: str | None = None  # CSV: the column with the lab's status of this value (HL7 table 0085)
     formats: tuple[str, ...] = ()  # dates and date-times: the field's own strptime formats (): the map's
     assume_time: time | None = None  # a date-time read with a date-only format: the time of day it takes
+    item: int | None = None  # an item of a list inside an object: its number as the map gives it (from 1)
     line: int | None = None  # the line of the map that names this field (errors point to it)
 
     @property

@@ -50,6 +50,8 @@ _SOURCE_KEYS = frozenset(
 _TEXT_KEYS = frozenset({"join", "format", "assume_time"})  # bridge.tables.field_map_texts
 _SECTIONS = frozenset({"map", "values", "sex", "status", "units", "csv", "hl7", "fields"})
 _STATUS_CODE = re.compile(r"[A-Z]")  # HL7 table 0085 codes are one letter (the pipeline checks the table's)
+# A numbered item of a list inside an object: spirometry.pre.manoeuvres[2].fev1 (the lab's number, from 1)
+_NUMBERED = re.compile(r"(?P<list>[a-z_.]+)\[(?P<number>[1-9]\d?)\]\.(?P<rest>[a-z0-9_.]+)")
 
 
 class _Checker:
@@ -195,9 +197,7 @@ def _field_source(
     check: _Checker, path: str, spec: Any, fmt: str, aliases: Mapping[str, str], catalogue: UnitCatalogue
 ) -> FieldSource:
     where = f'fields."{path}"'
-    target = canonical_fields().get(path)
-    if target is None:
-        raise check.fail(where, "a canonical field of dlco-result/1 (docs/field-maps.md lists them)")
+    target, item = _target(check, where, path, fmt)
     if isinstance(spec, str):  # shorthand: "column name" or "LOCALCODE"
         spec = {"column": spec} if fmt == "csv" else {"code": spec}
     if not isinstance(spec, dict):
@@ -246,10 +246,35 @@ def _field_source(
         unit_from_obx=unit_from is not None,
         percent=percent,
         status_column=spec.get("status_column"),
+        item=item,
         line=check.line_of(where),
         **joined,
         **date_reading(check, where, spec, target),
     )
+
+
+def _target(check: _Checker, where: str, path: str, fmt: str) -> tuple[CanonicalField, int | None]:
+    """The canonical field a map key names, and the item number it gives (``spirometry.pre.manoeuvres[2].fev1``).
+
+    The DLCO test's manoeuvres come one per row (CSV) or by OBX-4 (HL7), never by number; the
+    items of a list inside an object (spirometry's manoeuvres) come by number (numbered columns,
+    or one code per manoeuvre) or, in HL7, by OBX-4 as well.
+    """
+    numbered = _NUMBERED.fullmatch(path)
+    base = f"{numbered['list']}.{numbered['rest']}" if numbered else path
+    target = canonical_fields().get(base)
+    if target is None:
+        raise check.fail(where, "a canonical field of dlco-result/1 (docs/field-maps.md lists them)")
+    nested = target.item_of is not None and not target.per_manoeuvre
+    if numbered is not None and (not nested or numbered["list"] != target.item_of):
+        raise check.fail(
+            where, "a number only on an item of a list inside an object, such as spirometry.pre.manoeuvres[1].fev1"
+        )
+    if numbered is None and nested and fmt == "csv":
+        raise check.fail(
+            where, f"the manoeuvre's number, such as {target.item_of}[1].{path.rsplit('.', 1)[1]} (one column each)"
+        )
+    return target, int(numbered["number"]) if numbered else None
 
 
 def _repeatability(check: _Checker, head: Mapping[str, Any], criteria: Collection[str]) -> str | None:

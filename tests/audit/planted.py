@@ -60,6 +60,9 @@ PLANTED = Counter(
         "COHB_RAISED": 1,  # the export's twin of sample 04: COHb 8.5 %
         # the export's twin of sample 10: FEV1 and FVC each change after the bronchodilator (one finding each)
         "SPIROMETRY_BRONCHODILATOR_RESPONSE": 2,
+        # ... and its manoeuvres (numbered columns): FEV1 and FVC graded before and after, one finding each
+        # (source: ATS/ERS 2019 spirometry standard, Table 10: graded separately, per phase)
+        "SPIROMETRY_GRADE": 4,
         # GLI-2017 predicted values differ by sex: the sessions planted female carry a male's predicted value
         "PREDICTED_NOT_FROM_CLAIMED_SET": len(PREDICTED_OFF) + len(SEX_CHANGED),
         "UNREADABLE_INPUT": 3,  # three half-written files

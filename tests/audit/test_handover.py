@@ -64,8 +64,8 @@ def test_convert_refuses_sample_04_with_the_same_blocking_list(tmp_path: Path, c
 
 
 def test_a_file_of_many_sessions_counts_once_and_names_each_record(tmp_path: Path, capsys):
-    """The legacy HL7 feed through its map: 1 file, 4 records; every finding names the file and its record; each
-    session ready to migrate is handed over."""
+    """The legacy HL7 feed through its map: 1 file, 5 records; every finding names the file and its record (but
+    the one on the lab's units); each session ready to migrate is handed over."""
     feed = next((ROOT / "samples" / "legacy").glob("*.hl7"))
     archive = tmp_path / "archive"
     archive.mkdir()
@@ -79,10 +79,15 @@ def test_a_file_of_many_sessions_counts_once_and_names_each_record(tmp_path: Pat
         found = list(csv.DictReader(handle))
     capsys.readouterr()
 
-    assert (0, 1, 4) == (code, summary["files"], summary["records"])  # samples/legacy: four sessions in one file
-    assert [] == [f for f in found if Path(f["file"]).name != feed.name or f["record"] not in {"1", "2", "3", "4"}]
+    assert (0, 1, 5) == (code, summary["files"], summary["records"])  # samples/legacy: five sessions in one file
+    # message 5, sample 10's twin, gives the DLCO in SI units where messages 1-4 use traditional ones:
+    # one finding on the lab (no record), the others each on their record
+    by_lab = [f["check"] for f in found if f["record"] == ""]
+    records = {"1", "2", "3", "4", "5"}
+    assert ["UNIT_CONVENTIONS_MIXED"] == by_lab
+    assert [] == [f for f in found if Path(f["file"]).name != feed.name or f["record"] not in records | {""}]
     assert summary["ready"] == len(_handed(tmp_path / "r"))
-    assert 4 == summary["ready"] + summary["need_decision"] + summary["copies"] + summary["unreadable"]
+    assert 5 == summary["ready"] + summary["need_decision"] + summary["copies"] + summary["unreadable"]
 
 
 def test_a_re_run_replaces_the_files_of_the_run_before(tmp_path: Path):

@@ -101,6 +101,7 @@ def test_the_export_of_many_sessions_is_one_file_whose_findings_name_their_recor
         ("2", "LOW-2026-0003", "BREATH_HOLD_OUT_OF_TARGET"),
         ("2", "LOW-2026-0003", "MANOEUVRE_NOT_ACCEPTABLE"),
         ("3", "LOW-2026-0010", "SPIROMETRY_BRONCHODILATOR_RESPONSE"),
+        ("3", "LOW-2026-0010", "SPIROMETRY_GRADE"),
     } == exported
 
 

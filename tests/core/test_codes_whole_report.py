@@ -61,3 +61,16 @@ def test_every_quantity_is_listed_and_codes_are_unique():
     assert ("20150-9", "19876-2", "19874-7", "20157-4", "20155-8", "19926-5") == tuple(
         TABLE[k]["code"] for k in ("fev1", "fvc_pre", "fvc_post", "fev1_pre", "fev1_post", "fev1_fvc")
     )
+
+
+def test_flows_by_phase_are_the_published_codes():
+    """FEF25-75 and PEF before and after the bronchodilator carry the LOINC codes the MII IG lists."""
+    # source: Medizininformatik-Initiative, Kerndatensatz-Modul Lungenfunktion IG 2027.0.0-ballot,
+    # ValueSets mii-vs-lufu-lnc-mef (69972-8 "FEF 25-75% --pre bronchodilation", 69973-6 "--post")
+    # and mii-vs-lufu-lnc-pef (69975-1 / 69976-9 "Maximum expiratory gas flow Respiratory system
+    # airway --pre / --post bronchodilation")
+    keys = ("fef25_75_pre", "fef25_75_post", "pef_pre", "pef_post")
+
+    assert ("69972-8", "69973-6", "69975-1", "69976-9") == tuple(TABLE[k]["code"] for k in keys)
+    assert {"verified"} == {TABLE[k]["status"] for k in keys}
+    assert TABLE["pef_pre"]["display"].endswith("--pre bronchodilation")

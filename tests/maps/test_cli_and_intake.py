@@ -41,7 +41,7 @@ def test_map_check_json_lists_unused_codes_and_empty_fields(capsys):
     code = main(["map", "check", str(HL7_MAP), str(HL7_SAMPLE), "--json"])
     doc = json.loads(capsys.readouterr().out)
     decided = (doc["sent"], doc["refused_by_gate"], doc["unreadable"])
-    assert (0, (3, 1, 0), ["OBX 13 (code 'HCCOMM')"]) == (code, decided, doc["unused_sources"])
+    assert (0, (4, 1, 0), ["OBX 13 (code 'HCCOMM')"]) == (code, decided, doc["unused_sources"])
     assert "manoeuvres.inspired_volume" in doc["empty_fields"]
 
 
@@ -67,14 +67,14 @@ def test_map_check_with_a_bad_row_exits_2_and_names_it(tmp_path, capsys):
 
 
 def test_convert_with_map_writes_one_message_per_session(tmp_path, capsys):
-    """convert --map on the HL7 feed writes an ORU and a Bundle for each of its four sessions.
+    """convert --map on the HL7 feed writes an ORU and a Bundle for each of its five sessions.
 
     HC-19-0077 is sample 09's twin: its lab value is Hb-adjusted the wrong way round (an ERROR), so it
     goes out only with that code allowed (and then as preliminary)."""
     allowed = ["--allow", "HB_ADJUSTMENT_WRONG_DIRECTION"]
     code = main(["convert", str(HL7_SAMPLE), "--map", str(HL7_MAP), "--out", str(tmp_path), *allowed])
     capsys.readouterr()
-    expected = ["HC-19-0077", "HC-26-0142", "HC-26-0143", "HC-26-0150"]
+    expected = ["HC-19-0077", "HC-26-0142", "HC-26-0143", "HC-26-0150", "HC-26-0199"]
     assert (0, expected) == (code, sorted(p.name.removesuffix(".oru.hl7") for p in tmp_path.glob("*.oru.hl7")))
 
 

@@ -112,6 +112,16 @@ CASES = {
         "maps/site.toml: line 15: values.time_zone: an IANA time zone such as Europe/London, got 'Mars/Olympus'",
     ),
     "broken TOML": ({'"test_id" = {': '"test_id" = '}, "maps/site.toml: file: valid TOML"),
+    "a spirometry manoeuvre without its number in a CSV map": (
+        {'"patient.height" = {': '"spirometry.pre.manoeuvres.fev1" = {'},
+        'maps/site.toml: line 26: fields."spirometry.pre.manoeuvres.fev1": the manoeuvre\'s number, such as '
+        "spirometry.pre.manoeuvres[1].fev1 (one column each)",
+    ),
+    "a number on a DLCO manoeuvre field": (
+        {'"patient.height" = {': '"manoeuvres[1].inspired_volume" = {'},
+        'maps/site.toml: line 26: fields."manoeuvres[1].inspired_volume": a number only on an item of a list '
+        "inside an object",
+    ),
 }
 
 

@@ -1,52 +1,60 @@
-"""Spirometry read through the HL7 field map equals the JSON sample's, field by field.
+"""Spirometry read through both field maps equals the JSON sample's, manoeuvres and 2019 grades included.
 
-The CSV map's twin (samples/legacy/lowmarsh-results.csv, LOW-2026-0010) is compared in
-test_three_encodings.py; the legacy HL7 sample holds no spirometry yet, so this message is
-written here: the Highcairn feed's layout with the spirometry values of
-samples/10-spirometry-and-dlco.json (invented, fictional).
+The twins of samples/10-spirometry-and-dlco.json in the bundled legacy samples (invented,
+fictional): session LOW-2026-0010 of samples/legacy/lowmarsh-results.csv (the manoeuvres in
+numbered columns) and message HC-26-0199 of samples/legacy/highcairn-results.hl7 (one OBX per
+manoeuvre value, OBX-4 the manoeuvre number). tests/maps/test_three_encodings.py compares the
+whole sessions; this file looks at the spirometry and the grades recomputed from the manoeuvres.
 """
 
 from __future__ import annotations
 
+import pytest
+
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process, process_all
-from tests.maps.conftest import ROOT
+from tests.maps.conftest import CSV_SAMPLE, HL7_SAMPLE, ROOT
 from tests.maps.test_three_encodings import _leaves
 
 TWIN = ROOT / "samples" / "10-spirometry-and-dlco.json"
-MESSAGE = "\r".join(
-    [
-        r"MSH|^~\&|HCPFT|HIGHCAIRN|RESULTS|FENWICK|202603051040||ORU^R01|HCM00099|P|2.3",
-        "PID|1||FICT-1010^^^HCMRN||Fictive^Briar||19680721|F",
-        "OBR|1||HC-26-0199|HCDLCO^Single-breath transfer factor^L|||202603051040-0700",
-        "OBX|1|NM|HCHT^Height^L||164|cm|||||F",
-        "OBX|2|NM|HCDL^TLCO^L||18.3|mL/min/mmHg|||||F",
-        "OBX|3|NM|HCFEV1PRE^FEV1 pre^L||1.92|L|||||F",
-        "OBX|4|NM|HCFVCPRE^FVC pre^L||3.05|L|||||F",
-        "OBX|5|NM|HCFERPRE^FEV1/FVC pre^L||63|%|||||F",
-        "OBX|6|NM|HCFEFPRE^FEF25-75 pre^L||1.21|L/s|||||F",
-        "OBX|7|NM|HCPEFPRE^PEF pre^L||5.4|L/s|||||F",
-        "OBX|8|NM|HCFEV1PST^FEV1 post^L||2.31|L|||||F",
-        "OBX|9|NM|HCFVCPST^FVC post^L||3.24|L|||||F",
-        "OBX|10|NM|HCFERPST^FEV1/FVC post^L||71|%|||||F",
-        "OBX|11|NM|HCFEFPST^FEF25-75 post^L||1.66|L/s|||||F",
-        "OBX|12|NM|HCPEFPST^PEF post^L||6.1|L/s|||||F",
-        "OBX|13|ST|HCBD^Bronchodilator^L||salbutamol||||||F",
-        "OBX|14|NM|HCBDDOSE^Bronchodilator dose^L||400|ug|||||F",
-    ]
-)
+TWINS = [(CSV_SAMPLE, "csv_map", "LOW-2026-0010"), (HL7_SAMPLE, "hl7_map", "HC-26-0199")]
 
 
-def test_the_hl7_map_reads_the_spirometry_of_its_json_twin_field_by_field(hl7_map, tables):
-    """Every spirometry value (value, unit, reported digits, original) and the bronchodilator equal the JSON's."""
-    (outcome,) = [r for r in process_all(MESSAGE.encode(), "spiro.hl7", tables, PipelineSettings(field_map=hl7_map))]
-    assert isinstance(outcome, Outcome)
+def _twin_of(sample, map_name, test_id, tables, request) -> Outcome:
+    fmap = request.getfixturevalue(map_name)
+    outcomes = [r for r in process_all(sample.read_bytes(), sample.name, tables, PipelineSettings(field_map=fmap))]
+    (outcome,) = [r for r in outcomes if isinstance(r, Outcome) and r.session.test_id == test_id]
+    return outcome
+
+
+@pytest.mark.parametrize(("sample", "map_name", "test_id"), TWINS)
+def test_the_maps_read_the_spirometry_of_their_json_twin_field_by_field(sample, map_name, test_id, tables, request):
+    """Every spirometry value and manoeuvre (value, unit, digits, original, acceptability) equals the JSON's."""
+    outcome = _twin_of(sample, map_name, test_id, tables, request)
     expected = process(TWIN.read_bytes(), TWIN.name, tables).session.spirometry
     assert expected is not None and outcome.session.spirometry is not None
-    theirs = expected.model_dump(mode="json")
-    for phase in ("pre", "post"):
-        theirs[phase].pop("manoeuvres")  # a map cannot carry spirometry's manoeuvre lists
-    mine = outcome.session.spirometry.model_dump(mode="json")
-    for phase in ("pre", "post"):
-        assert [] == mine[phase].pop("manoeuvres")
-    assert _leaves(theirs) == _leaves(mine)
+    mine = _leaves(outcome.session.spirometry.model_dump(mode="json"))
+
+    assert _leaves(expected.model_dump(mode="json")) == mine
+    assert "acceptable" == mine["pre.manoeuvres[0].fev1_status"]  # samples/10: the first pre manoeuvre
+    assert "usable" == mine["pre.manoeuvres[2].fvc_status"]
+
+
+@pytest.mark.parametrize(("sample", "map_name", "test_id"), TWINS)
+def test_the_mapped_twins_get_the_2019_grades_of_samples_10(sample, map_name, test_id, tables, request):
+    """The grades recomputed from mapped manoeuvres are those worked out by hand from samples/10's values."""
+    # source: Graham et al., Am J Respir Crit Care Med 2019;200:e70, Table 10 (FEV1 and FVC graded
+    # separately, per phase): A = >= 3 acceptable, the two largest within 0.150 L; B = 2 acceptable
+    # within 0.150 L (limits for patients older than 6 years: born 1968, tested 2026).
+    # Before the bronchodilator: FEV1 1.92, 1.88, 1.85 L all acceptable -> 3, 1.92 - 1.88 = 0.04 L -> A;
+    # FVC 3.05, 2.98 acceptable and 3.01 usable -> 2 acceptable, 3.05 - 2.98 = 0.07 L -> B.
+    # After: FEV1 2.31, 2.27 L acceptable -> 0.04 L -> B; FVC 3.24, 3.19 L acceptable -> 0.05 L -> B.
+    derived = _twin_of(sample, map_name, test_id, tables, request).derived.spirometry
+    assert derived is not None and derived.pre is not None and derived.post is not None
+    grades = [derived.pre.fev1_grade, derived.pre.fvc_grade, derived.post.fev1_grade, derived.post.fvc_grade]
+    assert None not in grades
+
+    assert [("A", 3, 0), ("B", 2, 1), ("B", 2, 0), ("B", 2, 0)] == [
+        (g.grade, g.acceptable, g.usable) for g in grades if g is not None
+    ]
+    assert [True, True, True, True] == [g.repeatable for g in grades if g is not None]
