@@ -78,3 +78,4 @@ class Tables:
     hl7: Hl7Tables  # HL7 tables 0001, 0008, 0074, 0103 (mappings/hl7_tables.toml, parsed by bridge.hl7.tables)
     spirometry: SpirometryRules  # the 2019 grades and the spirometry checks' limits (spirometry_grades.toml)
     spirometry_equations: Mapping[EquationSetName, EquationSet]  # GLI Global and GLI-2012
+    lung_volume_equations: EquationSet  # GLI-2021 static lung volumes (Hall 2021)
