@@ -11,7 +11,8 @@ the bundle without importing the parsers.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from types import MappingProxyType
 
 from bridge.hl7.tables import Hl7Tables
 from bridge.science.equation_sets import EquationSet, EquationSetName
@@ -48,6 +49,7 @@ class CodeTable:
     codes: Mapping[str, Code]
     panel: Code
     systems: Mapping[str, str]
+    methods: Mapping[str, Code] = field(default_factory=lambda: MappingProxyType({}))  # by name ([methods])
 
 
 @dataclass(frozen=True, slots=True)
