@@ -17,6 +17,8 @@ from typing import Annotated, Literal
 
 from pydantic import Field
 
+from bridge.lung_volume_record import LungVolumes as LungVolumes
+from bridge.lung_volume_record import LungVolumesDerived as LungVolumesDerived
 from bridge.spirometry_record import Ethnicity as Ethnicity
 from bridge.spirometry_record import Spirometry as Spirometry
 from bridge.spirometry_record import SpirometryDerived as SpirometryDerived
@@ -173,6 +175,7 @@ class Session(Frozen):
     manoeuvres: tuple[Manoeuvre, ...] = ()
     results: Results = Results()
     spirometry: Spirometry | None = None
+    lung_volumes: LungVolumes | None = None  # static lung volumes (TLC, FRC, RV ...) and their method
     # The lab's own status of single values: an HL7 v2.5.1 table 0085 code (as in OBX-11) by the
     # value's path (``results.dlco``, ``manoeuvres[0].reported.dlco``); a value without one is final.
     # mappings/result_status.toml says what each code does (bridge.science.lab_status).
@@ -302,6 +305,7 @@ class Derived(Frozen):
     reference_va: ReferenceValue | None = None
     reference_not_computed: str | None = None
     spirometry: SpirometryDerived | None = None  # None: the session has no spirometry
+    lung_volumes: LungVolumesDerived | None = None  # None: the session has no lung volumes
 
 
 # "ndjson" is the audit's hand-over (the resources of one outcome, one per line): a route of the

@@ -23,7 +23,7 @@ def test_convert_writes_both_outputs_and_reports_the_bad_file(tmp_path, capsys):
     assert ["07-unit-mislabel.json", "08-malformed.json", "09-legacy-hb-wrong-direction.json"] == refused
     bundles = sorted(p.name for p in tmp_path.glob("*.bundle.json"))
     messages = sorted(p.name for p in tmp_path.glob("*.oru.hl7"))
-    assert 7 == len(bundles) == len(messages)
+    assert 8 == len(bundles) == len(messages)
     assert "LOW-2026-0001.bundle.json" in bundles
     assert [] == [p for p in tmp_path.iterdir() if p.name.startswith(".")]  # no temporary files left
 
@@ -124,7 +124,7 @@ def test_demo_runs_end_to_end(capsys):
     out = capsys.readouterr().out
 
     assert 0 == code
-    assert "7 sessions converted, 3 refused" in out
+    assert "8 sessions converted, 3 refused" in out
     assert "HB_ADJUSTMENT_WRONG_DIRECTION" in out
     assert "not a medical device" in out
 

@@ -10,6 +10,7 @@ from typing import Any
 
 from pydantic import BaseModel
 
+from bridge.display.lung_volume_text import lung_volume_lines
 from bridge.display.spirometry_text import spirometry_lines
 from bridge.emit.settings import HEMOGLOBIN_DIMENSION
 from bridge.model import ComparedBasis, Finding, Outcome, Quantity, ReferenceValue, Severity
@@ -153,6 +154,11 @@ def outcome_text(outcome: Outcome, tables: Tables, units: UnitSystem, hb_unit: s
         lines += _row(label, getattr(s.results, name), tables, units, hb_unit)
     lines += _reference_rows(outcome, tables, units, hb_unit)
     lines += spirometry_lines(
+        outcome,
+        lambda q: _text(q, tables, units, hb_unit),
+        lambda q: _brief(q, tables, units, hb_unit),
+    )
+    lines += lung_volume_lines(
         outcome,
         lambda q: _text(q, tables, units, hb_unit),
         lambda q: _brief(q, tables, units, hb_unit),

@@ -17,6 +17,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 from bridge.emit.content import Flag, ReportContent, ResultGroup, ResultItem, Supporting
+from bridge.emit.lung_volume_items import add_lung_volumes
 from bridge.emit.notes import (
     BRIDGE_NAME,
     COMPUTED_NOTE,
@@ -76,6 +77,7 @@ def build_content(
     b.add("tlc", outcome.session.results.tlc)
     b.add("barometric_pressure", outcome.session.conditions.barometric_pressure)
     add_spirometry(b, outcome, tables)  # each spirometry phase a group of its own
+    add_lung_volumes(b, outcome, tables)  # the static lung volumes, a group of their own
     return b.content()
 
 

@@ -90,9 +90,9 @@ def add_spirometry(b: Builder, outcome: Outcome, tables: Tables) -> None:
             b.add(item_key, value, path=f"spirometry.{phase}.results.{key}")
             reference = done.references.get(key)
             if reference is not None:
-                b.items[-1] = _ranged(b, b.items[-1], reference, label, words)
+                b.items[-1] = ranged(b, b.items[-1], reference, label, words)
             if key in covered and key in _REFERENCED:
-                _reference_items(b, item_key, label, words, reference, reference_set, not_computed)
+                reference_items(b, item_key, label, words, reference, reference_set, not_computed)
         if phase == "post":
             for key, label in (("fev1", "FEV1"), ("fvc", "FVC")):
                 change = responses.get(key)
@@ -103,7 +103,7 @@ def add_spirometry(b: Builder, outcome: Outcome, tables: Tables) -> None:
             b.groups.append(ResultGroup(group, b.codes[group]))
 
 
-def _ranged(b: Builder, item: ResultItem, ref: SpirometryReference, label: str, words: str) -> ResultItem:
+def ranged(b: Builder, item: ResultItem, ref: SpirometryReference, label: str, words: str) -> ResultItem:
     """The value with its range (LLN-ULN) and flag from the site's spirometry set."""
     note = (
         f"{label} {words} against {ref.reference_set}: predicted {_say(b, ref.predicted)}, LLN {_say(b, ref.lln)}, "
@@ -119,7 +119,7 @@ def _ranged(b: Builder, item: ResultItem, ref: SpirometryReference, label: str, 
     )
 
 
-def _reference_items(
+def reference_items(
     b: Builder,
     item_key: str,
     label: str,

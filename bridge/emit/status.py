@@ -51,6 +51,7 @@ _LAB_VALUE = MappingProxyType(
             for phase in ("pre", "post")
             for key in ("fev1", "fvc", "fev1_fvc", "fef25_75", "pef")
         },
+        **{f"lv_{key}": f"lung_volumes.{key}" for key in ("tlc", "frc", "rv", "vc", "rv_tlc", "ic", "erv")},
     }
 )
 # Values a computed item rests on that are not items of their own (blood values).

@@ -14,5 +14,7 @@ def export_schema() -> dict[str, Any]:
     schema = Session.model_json_schema(mode="validation")
     schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
     schema["$id"] = SCHEMA_ID
-    schema["title"] = "dlco-result/1: one single-breath DLCO test session, with its spirometry when given"
+    schema["title"] = (
+        "dlco-result/1: one single-breath DLCO test session, with its spirometry and static lung volumes when given"
+    )
     return schema

@@ -25,6 +25,7 @@ from bridge.science.findings import (
     message_quantity,
     relative_difference,
 )
+from bridge.science.lung_volume_checks import LUNG_VOLUME_RULES
 from bridge.science.physiology import ANATOMIC_DEAD_SPACE_ML_PER_KG, COHB_BASELINE_PERCENT
 from bridge.science.quality import DEFAULT_REPEATABILITY
 from bridge.science.spirometry_checks import SPIROMETRY_RULES
@@ -293,6 +294,7 @@ DEFAULT_RULES: tuple[Rule, ...] = (
     check_reference_basis,
     check_predicted_set,
     *SPIROMETRY_RULES,
+    *LUNG_VOLUME_RULES,
 )
 
 

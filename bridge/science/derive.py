@@ -38,6 +38,7 @@ from bridge.science.compared import (
     references,
 )
 from bridge.science.equation_sets import DEFAULT_SPIROMETRY_SET, SpirometrySet
+from bridge.science.lung_volume_derive import derive_lung_volumes
 from bridge.science.quality import (
     DEFAULT_REPEATABILITY,
     Grade,
@@ -169,6 +170,7 @@ def derive(
         reference_basis_fallback=compared.fallback,
         **references(session, age, tables.reference, compared),
         spirometry=derive_spirometry(session, age, tables, spirometry_reference),
+        lung_volumes=derive_lung_volumes(session, age, tables.lung_volume_equations),
     )
 
 

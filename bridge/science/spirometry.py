@@ -58,6 +58,7 @@ class SpirometryRules:
     bronchodilator_percent_of_predicted: float
     ratio_max_difference: float
     rv_tlc_max_difference_percent: float
+    lung_volume_sum_max_difference_l: float  # IC vs TLC - FRC, ERV vs FRC - RV
     plausible: Mapping[str, tuple[float, float]]
 
     def difference_limit(self, adult_l: float, child_l: float, age_years: float, highest: float) -> float:
@@ -193,6 +194,8 @@ class Problem(StrEnum):
     FRC_BELOW_RV = "frc_below_rv"
     FRC_ABOVE_TLC = "frc_above_tlc"
     RV_TLC_DIFFERS = "rv_tlc_differs"
+    IC_DIFFERS = "ic_differs"  # IC unlike TLC - FRC (bridge.science.lung_volumes)
+    ERV_DIFFERS = "erv_differs"  # ERV unlike FRC - RV
 
 
 @dataclass(frozen=True, slots=True)

@@ -11,7 +11,8 @@ the bundle without importing the parsers.
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from types import MappingProxyType
 
 from bridge.hl7.tables import Hl7Tables
 from bridge.science.equation_sets import EquationSet, EquationSetName
@@ -48,6 +49,7 @@ class CodeTable:
     codes: Mapping[str, Code]
     panel: Code
     systems: Mapping[str, str]
+    methods: Mapping[str, Code] = field(default_factory=lambda: MappingProxyType({}))  # by name ([methods])
 
 
 @dataclass(frozen=True, slots=True)
@@ -78,3 +80,4 @@ class Tables:
     hl7: Hl7Tables  # HL7 tables 0001, 0008, 0074, 0103 (mappings/hl7_tables.toml, parsed by bridge.hl7.tables)
     spirometry: SpirometryRules  # the 2019 grades and the spirometry checks' limits (spirometry_grades.toml)
     spirometry_equations: Mapping[EquationSetName, EquationSet]  # GLI Global and GLI-2012
+    lung_volume_equations: EquationSet  # GLI-2021 static lung volumes (Hall 2021)

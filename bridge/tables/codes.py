@@ -2,13 +2,15 @@
 
 A code may carry the standard code of the same concept beside it (``[codes.x.standard]``: a
 SNOMED CT code beside a local one) and the technique it was measured by (``method``, a name in
-``[methods]``: FHIR ``Observation.method``, HL7 v2 OBX-17).
+``[methods]``: FHIR ``Observation.method``, HL7 v2 OBX-17); the methods are kept by name too, for
+results whose technique the record names (the lung volumes' ``method``).
 """
 
 from __future__ import annotations
 
 import re
 from collections.abc import Mapping
+from types import MappingProxyType
 
 from bridge.errors import MappingError
 from bridge.science.table_values import Code, CodeTable
@@ -32,8 +34,9 @@ def code_table(text: str, name: str = "codes.toml") -> CodeTable:
     if "loinc" not in systems or not set(systems) <= set(KNOWN_SYSTEMS):
         raise MappingError(name, "systems", f"the key loinc, and of {', '.join(KNOWN_SYSTEMS[1:])} those codes name")
     names = (*systems, "local")  # a local code's URI comes from the site's settings
-    published = tuple(systems)  # a standard code or a method is never local
-    methods = {key: _code(name, f"methods.{key}", entry, published) for key, entry in data.get("methods", {}).items()}
+    published = tuple(systems)  # a standard code is never local
+    # A method is published where one was found (SNOMED CT), else local, saying where it was looked for.
+    methods = {key: _code(name, f"methods.{key}", entry, names) for key, entry in data.get("methods", {}).items()}
     codes = {}
     for key, entry in data.get("codes", {}).items():
         where = f"codes.{key}"
@@ -51,7 +54,7 @@ def code_table(text: str, name: str = "codes.toml") -> CodeTable:
             standard=_code(name, f"{where}.standard", standard, published) if standard is not None else None,
             method=methods[method] if method is not None else None,
         )
-    return CodeTable(codes, _code(name, "panel", data.get("panel", {}), names), systems)
+    return CodeTable(codes, _code(name, "panel", data.get("panel", {}), names), systems, MappingProxyType(methods))
 
 
 def _code(

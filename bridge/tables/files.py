@@ -18,7 +18,7 @@ from zoneinfo import ZoneInfo
 from bridge.errors import MappingError
 from bridge.hl7.tables import NAME as HL7_TABLES
 from bridge.hl7.tables import Hl7Tables, hl7_tables
-from bridge.science.equation_sets import SETS, EquationSet, EquationSetName
+from bridge.science.equation_sets import DEFAULT_LUNG_VOLUMES, SETS, EquationSet, EquationSetName
 from bridge.science.reference import COEFFICIENTS_TABLE, SPLINES_TABLE, ReferenceEquations
 from bridge.science.spirometry import SpirometryRules
 from bridge.science.units import TRADITIONAL_PER_SI
@@ -77,6 +77,7 @@ def load_tables(folder: Path | None = None, traditional_per_si: float = TRADITIO
         spirometry_equations=MappingProxyType(
             {name: load_equation_set(name, folder) for name in (EquationSetName.GLI_GLOBAL, EquationSetName.GLI_2012)}
         ),
+        lung_volume_equations=load_equation_set(DEFAULT_LUNG_VOLUMES, folder),
     )
 
 

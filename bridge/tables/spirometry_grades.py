@@ -29,6 +29,7 @@ def spirometry_rules(text: str, name: str = NAME) -> SpirometryRules:
             bronchodilator_percent_of_predicted=float(bdr["min_change_percent_of_predicted"]),
             ratio_max_difference=float(data["ratio"]["max_difference"]),
             rv_tlc_max_difference_percent=float(data["lung_volumes"]["max_rv_tlc_difference_percent"]),
+            lung_volume_sum_max_difference_l=float(data["lung_volumes"]["max_sum_difference_l"]),
             plausible=MappingProxyType(plausible),
         )
     except (KeyError, TypeError, ValueError, IndexError, AttributeError) as exc:
