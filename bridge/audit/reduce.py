@@ -192,7 +192,7 @@ class ArchiveReduce:
             counted = ", ".join(f"{label} in {n}" for label, n in sorted(by_label.items()))
             message = (
                 f"{self._post_only_sessions[source]} of the {self._with_post[source]} sessions of this source with "
-                f"post-bronchodilator values lack a pre-bronchodilator value ({counted}), the first here; "
+                f"post-bronchodilator values came without a pre-bronchodilator value ({counted}), the first here; "
                 "ask the lab whether its export leaves pre-bronchodilator values out."
             )
             found.append(
