@@ -3,7 +3,9 @@
 Owns :class:`ArchiveReduce`: rows go in one at a time (in the walk's order: the first findings
 of each check, kept as the page's examples, are the first met); it counts findings by check,
 source and severity, keeps the unit conventions and reference sets per source (with the first
-file of each), and the numbers the plots draw. What the checks across records need
+file of each) and the sessions with a post-bronchodilator value but no pre value, and the numbers
+the plots draw. Which quantities these checks watch is data (``bridge.audit.rows``: ``SERIES``,
+``LAB_SETS``, ``PRE_POST``). What the checks across records need
 of every session (its content hash per test id, its :class:`Visit` per patient) is kept by the
 shell outside memory (``bridge.audit.index``) and handed back, sorted, to
 :meth:`ArchiveReduce.finish`, which returns the archive's own findings, sorted, so that the
