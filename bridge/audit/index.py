@@ -20,12 +20,16 @@ from dataclasses import astuple, dataclass
 from pathlib import Path
 
 from bridge.audit.reduce import Visit, visit_of
-from bridge.audit.rows import Row
+from bridge.audit.rows import SERIES, Row
 
+# A visit's columns: the patient, Visit's fields, its series one column per entry of SERIES (a
+# quantity added there is a column here)
+_TEXTS = ("patient", "performed_at", "file", "record", "source", "test_id", "sex", "birth_date")
+_VISIT = ", ".join((*_TEXTS, *(s.key for s in SERIES)))
+_COLUMNS = ", ".join((*(f"{c} TEXT" for c in _TEXTS), *(f"{s.key} REAL" for s in SERIES)))
 _SCHEMA = (
     "CREATE TABLE contents (source TEXT, test_id TEXT, sha256 TEXT, file TEXT)",
-    "CREATE TABLE visits (patient TEXT, performed_at TEXT, file TEXT, record TEXT, source TEXT, test_id TEXT, "
-    "sex TEXT, birth_date TEXT, dlco REAL)",
+    f"CREATE TABLE visits ({_COLUMNS})",
     "CREATE TABLE records (seq INTEGER PRIMARY KEY, file TEXT, record TEXT, source TEXT, test_id TEXT, "
     "readable INTEGER, held TEXT, ndjson BLOB)",
 )
@@ -75,8 +79,8 @@ class ArchiveIndex:
                 [(row.source, row.test_id, row.sha256, row.file) for row in readable],
             )
             self._conn.executemany(
-                "INSERT INTO visits VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                [(row.patient, *astuple(visit_of(row))) for row in readable],
+                f"INSERT INTO visits VALUES ({', '.join('?' * (len(_TEXTS) + len(SERIES)))})",
+                [(row.patient, *astuple(visit)[:-1], *visit.series) for row in readable for visit in [visit_of(row)]],
             )
 
     def contents(self) -> Iterator[tuple[str, str, dict[str, str]]]:
@@ -90,12 +94,11 @@ class ArchiveIndex:
 
     def patients(self) -> Iterator[tuple[str, list[Visit]]]:
         """Per patient, in order: every visit, ordered as :class:`Visit` orders (time, then file)."""
-        cursor = self._conn.execute(  # the columns after patient are Visit's fields, in order
-            "SELECT patient, performed_at, file, record, source, test_id, sex, birth_date, dlco FROM visits "
-            "ORDER BY patient, performed_at, file, record, source, test_id, sex, birth_date, dlco"
-        )
+        # the columns after patient are Visit's fields, in order, its series spread over the last ones
+        cursor = self._conn.execute(f"SELECT {_VISIT} FROM visits ORDER BY {_VISIT}")  # our own column names
         for patient, group in itertools.groupby(cursor, key=lambda r: r[0]):
-            yield patient, [Visit(*fields[1:]) for fields in group]
+            texts = len(_TEXTS)
+            yield patient, [Visit(*(*fields[1:texts], tuple(fields[texts:]))) for fields in group]
 
     def records(self) -> Iterator[IndexedRecord]:
         """Every row in the walk's order, each saying whether it is the first of its (source, test id)."""

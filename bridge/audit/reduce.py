@@ -3,7 +3,9 @@
 Owns :class:`ArchiveReduce`: rows go in one at a time (in the walk's order: the first findings
 of each check, kept as the page's examples, are the first met); it counts findings by check,
 source and severity, keeps the unit conventions and reference sets per source (with the first
-file of each), and the numbers the plots draw. What the checks across records need
+file of each) and the sessions with a post-bronchodilator value but no pre value, and the numbers
+the plots draw. Which quantities these checks watch is data (``bridge.audit.rows``: ``SERIES``,
+``LAB_SETS``, ``PRE_POST``). What the checks across records need
 of every session (its content hash per test id, its :class:`Visit` per patient) is kept by the
 shell outside memory (``bridge.audit.index``) and handed back, sorted, to
 :meth:`ArchiveReduce.finish`, which returns the archive's own findings, sorted, so that the
@@ -20,7 +22,7 @@ from collections import Counter, defaultdict
 from collections.abc import Collection, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 
-from bridge.audit.rows import AuditFinding, Row
+from bridge.audit.rows import LAB_SETS, SERIES, AuditFinding, Row
 from bridge.emit.outputs import blocked_because
 from bridge.model import Severity
 from bridge.science.units import TRADITIONAL_PER_SI
@@ -31,17 +33,20 @@ BIRTH_DATE_CHANGED = "PATIENT_BIRTH_DATE_CHANGED"
 SERIES_JUMP = "SERIES_UNIT_JUMP"
 UNIT_CONVENTIONS_MIXED = "UNIT_CONVENTIONS_MIXED"
 REFERENCE_SETS_MIXED = "REFERENCE_SETS_MIXED"
+POST_WITHOUT_PRE_IN_SOURCE = "POST_WITHOUT_PRE_IN_SOURCE"
 # The codes of the checks across records: findings like the record checks' (docs/findings.md), so
 # the settings that name finding codes (allow, blocking) must know these too.
 ARCHIVE_CHECKS = (DUPLICATE_TEST_ID, SEX_CHANGED, BIRTH_DATE_CHANGED, SERIES_JUMP, UNIT_CONVENTIONS_MIXED,
-                  REFERENCE_SETS_MIXED)  # fmt: skip
+                  REFERENCE_SETS_MIXED, POST_WITHOUT_PRE_IN_SOURCE)  # fmt: skip
 
-# A DLCO series that moves by the site's SI <-> traditional factor (traditional_per_si: 2.987, or
-# 2.986, bridge.science.units) between consecutive sessions was almost certainly labelled in the
-# wrong unit system at one of them.
+# A series (bridge.audit.rows.SERIES: DLCO, FEV1 and FVC before and after the bronchodilator) that
+# moves by its unit factor between consecutive sessions was almost certainly labelled in the wrong
+# unit at one of them: DLCO by the site's SI <-> traditional factor (traditional_per_si: 2.987, or
+# 2.986, bridge.science.units), a volume by 1000 (millilitres as litres, or the reverse).
 # relative, so that honest change between visits (tens of per cent) on top of a mislabel still shows,
 # while a true tripling or fall to a third between two sessions does not happen (common practice)
 SERIES_JUMP_TOLERANCE = 0.15
+CONVENTIONS = "DLCO unit systems"  # what UNIT_CONVENTIONS_MIXED counts
 EXAMPLES_KEPT = 3  # findings shown per check on the page (the first met; every one is in findings.csv)
 
 
@@ -56,7 +61,7 @@ class Visit:
     test_id: str
     sex: str
     birth_date: str
-    dlco: float | None
+    series: tuple[float | None, ...]  # the values of bridge.audit.rows.SERIES, in its order
 
 
 @dataclass(slots=True)
@@ -85,8 +90,15 @@ class ArchiveReduce:
     by_severity: Counter[str] = field(default_factory=Counter)
     plots: Plots = field(default_factory=Plots)
     _conventions: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
-    _reference_sets: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
-    _first_file: dict[tuple[str, str], str] = field(default_factory=dict)  # (source, convention or set): first file
+    # per LAB_SETS entry, per source, the names met
+    _reference_sets: defaultdict[tuple[str, str], Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
+    _first_file: dict[tuple[str, str, str], str] = field(default_factory=dict)  # (what, source, kind): first file
+    # per source: sessions with a post-bronchodilator value, those of them without a pre value (per
+    # quantity), and the first such session (file, record)
+    _with_post: Counter[str] = field(default_factory=Counter)
+    _post_only: defaultdict[str, Counter[str]] = field(default_factory=lambda: defaultdict(Counter))
+    _post_only_sessions: Counter[str] = field(default_factory=Counter)
+    _first_post_only: dict[str, tuple[str, str]] = field(default_factory=dict)
     # per check, the first findings met, with the patient's name (for the page)
     examples: dict[str, list[tuple[AuditFinding, str]]] = field(default_factory=dict)
     traditional_per_si: float = TRADITIONAL_PER_SI  # the site's factor: what a unit jump in a series is
@@ -99,10 +111,19 @@ class ArchiveReduce:
             return
         self.readable += 1
         self.clean += row.clean
-        for kinds, kind in ((self._conventions, row.dlco_convention), (self._reference_sets, row.reference_set)):
-            if kind:
-                kinds[row.source][kind] += 1
-                self._first_file.setdefault((row.source, kind), row.file)
+        if row.dlco_convention:
+            self._conventions[row.source][row.dlco_convention] += 1
+            self._first_file.setdefault((CONVENTIONS, row.source, row.dlco_convention), row.file)
+        for watched, name in zip(LAB_SETS, row.lab_sets, strict=False):
+            if name:
+                self._reference_sets[(watched.what, row.source)][name] += 1
+                self._first_file.setdefault((watched.what, row.source, name), row.file)
+        if row.with_post:
+            self._with_post[row.source] += 1
+        if row.post_without_pre:
+            self._post_only[row.source].update(row.post_without_pre)
+            self._post_only_sessions[row.source] += 1
+            self._first_post_only.setdefault(row.source, (row.file, row.record))
         self._add_plots(row)
 
     def add_files(self, files: int) -> None:
@@ -152,19 +173,33 @@ class ArchiveReduce:
         return found
 
     def _sources(self) -> list[AuditFinding]:
+        found = self._post_without_pre()
+        kinds_met = [(UNIT_CONVENTIONS_MIXED, CONVENTIONS, source, c) for source, c in self._conventions.items()]
+        kinds_met += [(REFERENCE_SETS_MIXED, what, source, c) for (what, source), c in self._reference_sets.items()]
+        for check, what, source, counts in kinds_met:
+            if len(counts) > 1:
+                first = {k: self._first_file[(what, source, k)] for k in counts}
+                listed = ", ".join(f"{k} ({n}, first in {first[k]})" for k, n in sorted(counts.items()))
+                rarest = min(counts.items(), key=lambda item: (item[1], item[0]))[0]
+                message = f"{len(counts)} {what} within one source: {listed}; check each against the lab's own."
+                # the file to start with: the rarer kind's first
+                found.append(AuditFinding(first[rarest], "", source, "", check, Severity.WARNING.value, message))
+        return found
+
+    def _post_without_pre(self) -> list[AuditFinding]:
+        """Per source, the sessions whose post-bronchodilator value came without its pre value."""
         found = []
-        for kinds, check, what in (
-            (self._conventions, UNIT_CONVENTIONS_MIXED, "DLCO unit systems"),
-            (self._reference_sets, REFERENCE_SETS_MIXED, "reference sets"),
-        ):
-            for source, counts in kinds.items():
-                if len(counts) > 1:
-                    first = self._first_file
-                    listed = ", ".join(f"{k} ({n}, first in {first[(source, k)]})" for k, n in sorted(counts.items()))
-                    rarest = min(counts.items(), key=lambda item: (item[1], item[0]))[0]
-                    message = f"{len(counts)} {what} within one source: {listed}; check each against the lab's own."
-                    file = self._first_file[(source, rarest)]  # the file to start with: the rarer kind's first
-                    found.append(AuditFinding(file, "", source, "", check, Severity.WARNING.value, message))
+        for source, by_label in sorted(self._post_only.items()):
+            file, record = self._first_post_only[source]
+            counted = ", ".join(f"{label} in {n}" for label, n in sorted(by_label.items()))
+            message = (
+                f"{self._post_only_sessions[source]} of the {self._with_post[source]} sessions of this source with "
+                f"post-bronchodilator values came without a pre-bronchodilator value ({counted}), the first here; "
+                "ask the lab whether its export leaves pre-bronchodilator values out."
+            )
+            found.append(
+                AuditFinding(file, record, source, "", POST_WITHOUT_PRE_IN_SOURCE, Severity.WARNING.value, message)
+            )
         return found
 
 
@@ -217,7 +252,8 @@ class Answer:
 
 def visit_of(row: Row) -> Visit:
     """What the patient checks need of one readable row."""
-    return Visit(row.performed_at, row.file, row.record, row.source, row.test_id, row.sex, row.birth_date, row.dlco)
+    series = row.series or (None,) * len(SERIES)
+    return Visit(row.performed_at, row.file, row.record, row.source, row.test_id, row.sex, row.birth_date, series)
 
 
 def _duplicates(contents: Iterable[tuple[str, str, Mapping[str, str]]]) -> list[AuditFinding]:
@@ -258,20 +294,25 @@ def _patients(patients: Iterable[tuple[str, Sequence[Visit]]], traditional_per_s
 
 
 def _jumps(patient: str, visits: Sequence[Visit], traditional_per_si: float) -> list[AuditFinding]:
-    """A DLCO series that moves by about the site's SI/traditional factor between consecutive sessions."""
+    """A series of SERIES that moves by about its unit factor between consecutive sessions."""
     found = []
-    series = [v for v in visits if v.dlco is not None and v.dlco > 0]
-    for before, after in itertools.pairwise(series):
-        assert before.dlco is not None and after.dlco is not None
-        ratio = after.dlco / before.dlco
-        for factor in (traditional_per_si, 1 / traditional_per_si):
-            if abs(ratio / factor - 1) <= SERIES_JUMP_TOLERANCE:
+    for i, watched in enumerate(SERIES):
+        factor = traditional_per_si if watched.factor is None else watched.factor
+        why = (
+            "the mL/min/mmHg per mmol/min/kPa factor"
+            if watched.factor is None
+            else f"a factor of {factor:g} (the unit's thousandth or thousandfold)"
+        )
+        series = [(v, value) for v in visits if (value := v.series[i]) is not None and value > 0]
+        for (before, was), (after, now) in itertools.pairwise(series):
+            ratio = now / was
+            if any(abs(ratio / f - 1) <= SERIES_JUMP_TOLERANCE for f in (factor, 1 / factor)):
                 found.append(
                     AuditFinding(
                         after.file, after.record, after.source, after.test_id, SERIES_JUMP, Severity.ERROR.value,
-                        f"DLCO {after.dlco:.1f} mL/min/mmHg is {ratio:.3f} x the previous session's "
-                        f"{before.dlco:.1f} (test {before.test_id}, {before.file}): about the mL/min/mmHg "
-                        "per mmol/min/kPa factor, so one of the two was probably labelled in the wrong unit.",
+                        f"{watched.label} {now:{watched.digits}} {watched.unit} is {ratio:.3f} x the previous "
+                        f"session's {was:{watched.digits}} (test {before.test_id}, {before.file}): about {why}, "
+                        "so one of the two was probably labelled in the wrong unit.",
                     )
                 )  # fmt: skip
     return found

@@ -14,7 +14,7 @@ from datetime import UTC
 from types import MappingProxyType
 
 from bridge.errors import BlockedByFinding, InputError, ProcessingFailed, UnknownFormat, UnreadableInput
-from bridge.model import Outcome, Quantity, Severity
+from bridge.model import Outcome, Quantity, Session, Severity
 
 SEVERITY_RANK = MappingProxyType({Severity.INFO.value: 0, Severity.WARNING.value: 1, Severity.ERROR.value: 2})
 
@@ -23,6 +23,61 @@ UNREADABLE = "UNREADABLE_INPUT"  # not UTF-8, not JSON, empty, half-written, too
 UNKNOWN_FORMAT = "UNKNOWN_FORMAT"  # no reader recognises it
 INVALID_RECORD = "INVALID_RECORD"  # readable, but a field is missing or impossible
 INTERNAL_ERROR = "INTERNAL_ERROR"  # the bridge failed on it: a defect to report
+
+LITRES_PER_MILLILITRE = 1000  # a volume sent in millilitres but labelled litres, or the reverse
+
+
+@dataclass(frozen=True, slots=True)
+class Series:
+    """A quantity whose series per patient the unit-jump check watches (``bridge.audit.reduce``)."""
+
+    key: str  # its column in the audit's index
+    label: str  # as a finding names it
+    unit: str  # the core's canonical unit of it, as a finding writes it
+    path: tuple[str, ...]  # where it lies in the session, attribute by attribute
+    factor: float | None  # the unit factor a mislabel multiplies it by; None: the site's SI/traditional factor
+    digits: str  # how a finding writes its value
+
+
+@dataclass(frozen=True, slots=True)
+class LabSet:
+    """A reference-set name the lab writes into its records, watched for sets mixed within one lab."""
+
+    what: str  # as a finding names them
+    path: tuple[str, ...]
+
+
+@dataclass(frozen=True, slots=True)
+class PrePost:
+    """A quantity measured before and after a bronchodilator, watched for post values without pre values."""
+
+    label: str
+    pre: tuple[str, ...]
+    post: tuple[str, ...]
+
+
+# What each check across records watches: adding a quantity to a check is one entry of its table
+# (and nothing else: the row, the index and the checks are written from these tables). The lung
+# volumes go here when the record carries them: TLC, FRC, RV and VC (litres) as entries of SERIES
+# with the factor LITRES_PER_MILLILITRE; a reference-set name the lab writes for them, in LAB_SETS.
+SERIES = (
+    Series("dlco", "DLCO", "mL/min/mmHg", ("results", "dlco"), None, ".1f"),
+    Series("fev1_pre", "FEV1 (pre-bronchodilator)", "L", ("spirometry", "pre", "results", "fev1"),
+           LITRES_PER_MILLILITRE, ".4g"),
+    Series("fvc_pre", "FVC (pre-bronchodilator)", "L", ("spirometry", "pre", "results", "fvc"),
+           LITRES_PER_MILLILITRE, ".4g"),
+    Series("fev1_post", "FEV1 (post-bronchodilator)", "L", ("spirometry", "post", "results", "fev1"),
+           LITRES_PER_MILLILITRE, ".4g"),
+    Series("fvc_post", "FVC (post-bronchodilator)", "L", ("spirometry", "post", "results", "fvc"),
+           LITRES_PER_MILLILITRE, ".4g"),
+)  # fmt: skip
+# dlco-result/1 names the reference set of the lab's own predicted values for DLCO only: spirometry's
+# reference values are the site's (spirometry_reference), one set for the whole run.
+LAB_SETS = (LabSet("reference sets", ("results", "predicted", "reference_set")),)
+PRE_POST = (
+    PrePost("FEV1", ("spirometry", "pre", "results", "fev1"), ("spirometry", "post", "results", "fev1")),
+    PrePost("FVC", ("spirometry", "pre", "results", "fvc"), ("spirometry", "post", "results", "fvc")),
+)
 
 
 @dataclass(frozen=True, slots=True, order=True)
@@ -69,8 +124,11 @@ class Row:
     kco: float | None = None
     va: float | None = None
     dlco_convention: str = ""  # "si" or "traditional": the unit system the lab wrote DLCO in
-    reference_set: str = ""
     dlco_percent_predicted: float | None = None
+    series: tuple[float | None, ...] = ()  # the values of SERIES, in its order (empty: none)
+    lab_sets: tuple[str, ...] = ()  # the names of LAB_SETS, in its order ("" where none)
+    post_without_pre: tuple[str, ...] = ()  # the labels of PRE_POST with a post value but no pre value
+    with_post: bool = False  # a post value of PRE_POST is present
 
     @property
     def clean(self) -> bool:
@@ -80,6 +138,21 @@ class Row:
 
 def _value(quantity: Quantity | None) -> float | None:
     return None if quantity is None else quantity.value
+
+
+def _at(session: Session, path: tuple[str, ...]) -> object:
+    """What lies at ``path`` in the session (None where a part is absent)."""
+    found: object = session
+    for name in path:
+        found = getattr(found, name, None)
+        if found is None:
+            return None
+    return found
+
+
+def _series(session: Session) -> tuple[float | None, ...]:
+    values = [_at(session, s.path) for s in SERIES]
+    return tuple(v.value if isinstance(v, Quantity) else None for v in values)
 
 
 def _convention(quantity: Quantity | None) -> str:
@@ -108,7 +181,6 @@ def row_of(outcome: Outcome, file: str, record: str = "", refused: InputError | 
     patient = session.patient
     name = " ".join(part for part in (patient.given, patient.family) if part)
     results = session.results
-    predicted = results.predicted
     return Row(
         file=file,
         source=source,
@@ -128,8 +200,13 @@ def row_of(outcome: Outcome, file: str, record: str = "", refused: InputError | 
         kco=_value(results.kco),
         va=_value(results.va),
         dlco_convention=_convention(results.dlco),
-        reference_set=(predicted.reference_set or "") if predicted is not None else "",
         dlco_percent_predicted=_value(derived.dlco_percent_predicted),
+        series=_series(session),
+        lab_sets=tuple(str(_at(session, s.path) or "") for s in LAB_SETS),
+        post_without_pre=tuple(
+            p.label for p in PRE_POST if _at(session, p.post) is not None and _at(session, p.pre) is None
+        ),
+        with_post=any(_at(session, p.post) is not None for p in PRE_POST),
     )
 
 

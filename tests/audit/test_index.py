@@ -10,11 +10,15 @@ from bridge.audit.rows import Row
 from bridge.cli import main
 from bridge.tables.files import samples_dir
 
+SPIRO = (2.5, 3.25, None, None)  # FEV1 and FVC before the bronchodilator (L), none after
+
 
 def _row(file: str, test_id: str, sha: str, performed_at: str, dlco: float | None = 20.0, **extra: str) -> Row:
+    # the series of bridge.audit.rows.SERIES: DLCO, then FEV1 and FVC before and after the bronchodilator
+    series = (dlco, *SPIRO)
     return Row(
         file=file, source="Lab A", findings=(), test_id=test_id, sha256=sha, patient="sys|P1",
-        sex=extra.get("sex", "female"), birth_date="1970-01-01", performed_at=performed_at, dlco=dlco,
+        sex=extra.get("sex", "female"), birth_date="1970-01-01", performed_at=performed_at, dlco=dlco, series=series,
     )  # fmt: skip
 
 
@@ -50,9 +54,13 @@ def test_visits_come_back_per_patient_in_time_then_file_order(tmp_path: Path):
         (
             "sys|P1",
             [
-                Visit("2021-05-01T09:00:00+00:00", "y.json", "", "Lab A", "T-2", "female", "1970-01-01", None),
-                Visit("2022-05-01T09:00:00+00:00", "x.json", "", "Lab A", "T-1", "male", "1970-01-01", 20.0),
-                Visit("2022-05-01T09:00:00+00:00", "z.json", "", "Lab A", "T-3", "female", "1970-01-01", 20.0),
+                Visit(
+                    "2021-05-01T09:00:00+00:00", "y.json", "", "Lab A", "T-2", "female", "1970-01-01", (None, *SPIRO)
+                ),
+                Visit("2022-05-01T09:00:00+00:00", "x.json", "", "Lab A", "T-1", "male", "1970-01-01", (20.0, *SPIRO)),
+                Visit(
+                    "2022-05-01T09:00:00+00:00", "z.json", "", "Lab A", "T-3", "female", "1970-01-01", (20.0, *SPIRO)
+                ),
             ],
         )
     ] == patients
