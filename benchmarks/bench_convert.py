@@ -50,10 +50,12 @@ from typing import Any
 
 import orjson
 
-from bridge.emit.fhir import bundle_json
+from bridge.emit.fhir import to_bundle
+from bridge.emit.fhir_json import dumps
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
+from bridge.emit.status import resolve
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, Route, process
 from bridge.readers.json_export import read_export
@@ -334,8 +336,8 @@ STAGES = (
     "derive",
     "check",
     "Outcome (sha256 + model)",
-    "build_content (once, shared)",
-    "FHIR (bundle_json)",
+    "build_content + statuses (once, shared)",
+    "FHIR (to_bundle + compact JSON)",
     "HL7 (to_oru+control_id)",
 )
 
@@ -364,10 +366,11 @@ def stage_breakdown(inputs: Sequence[bytes], tables: Tables) -> dict[str, float]
             outcome = Outcome(source=name, source_sha256=digest, session=session, derived=derived, findings=findings)
             t4 = clock()
             content = build_content(outcome, tables, CONTEXT.units)
+            statuses = resolve(outcome, content, tables, CONTEXT)
             t5 = clock()
-            bundle_json(outcome, tables, CONTEXT, content)
+            dumps(to_bundle(outcome, tables, CONTEXT, content, statuses), indent=False)
             t6 = clock()
-            to_oru(outcome, tables, CONTEXT, content).encode()
+            to_oru(outcome, tables, CONTEXT, content, statuses).encode()
             control_id(outcome, CONTEXT)
             t7 = clock()
             marks = (t0, t1, t2, t3, t4, t5, t6, t7)
@@ -510,7 +513,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         result["real_us_per_session_dlco_only"] = round(dlco_only_best / n * 1e6, 1)
         result["real_us_per_session_spirometry_and_dlco"] = result["real_us_per_session"]
     if validators:
-        build_us = stages["FHIR (bundle_json)"], stages["HL7 (to_oru+control_id)"]
+        build_us = stages["FHIR (to_bundle + compact JSON)"], stages["HL7 (to_oru+control_id)"]
         result["validators_ms_per_session"] = {k: round(v, 2) for k, v in validators.items()}
         result["validator_to_build_ratio"] = {
             "fhir": round(validators["fhir_resources_r4b_validate_ms"] * 1e3 / build_us[0]),

@@ -334,14 +334,19 @@ class Carried(Frozen):
 
 
 class Payload(Frozen):
-    """One message built for one outcome: its kind, units, stable id, bytes and what it carries."""
+    """One message built for one outcome: its kind, units, stable id and bytes.
+
+    What it carries, resource by resource, is read from the bytes when the ledger records it
+    (``bridge.emit.manifest.carried``); ``identifiers`` is the one thing the bytes do not say:
+    the identifier of the result each OBX of an ORU^R01 carries, in OBX order.
+    """
 
     kind: OutputKind
     units: Literal["si", "traditional"]
     message_id: str  # stable: the same content gives the same id
     content_type: str
     data: bytes
-    carried: tuple[Carried, ...] = ()
+    identifiers: tuple[str, ...] = ()
 
 
 class Outcome(Frozen):

@@ -146,3 +146,53 @@ def test_what_the_schema_accepts_the_reader_accepts_or_refuses_only_beyond_it(ca
         return
     except (InvalidField, MissingField) as exc:
         assert BEYOND_THE_SCHEMA.search(exc.expected), exc.line()
+
+
+SPIROMETRY = json.loads((ROOT / "samples" / "10-spirometry-and-dlco.json").read_text())
+
+
+def _properties(node: object) -> set[str]:
+    """Every property name anywhere in a JSON Schema."""
+    if isinstance(node, list):
+        return set().union(*(_properties(n) for n in node))
+    if not isinstance(node, dict):
+        return set()
+    own = set(node["properties"]) if isinstance(node.get("properties"), dict) else set()
+    return own.union(*(_properties(v) for v in node.values()))
+
+
+@pytest.mark.parametrize(
+    ("path", "field"),
+    [
+        ("results.dlco", "original"),
+        ("results.va", "decimals"),
+        ("spirometry.pre.results.fev1", "original"),  # a quantity deeper in the record
+    ],
+)
+def test_an_internal_field_is_refused_in_one_line_naming_file_and_field(path, field):
+    """A file that writes a field the bridge fills itself (``original``, ``decimals``) is refused, not believed."""
+    # source: docs/format.md (the format's fields) and JSON Schema draft 2020-12 additionalProperties false,
+    # checked by the jsonschema library on the shipped schema
+    doc = json.loads(json.dumps(SPIROMETRY))
+    node = doc
+    for name in path.split("."):
+        node = node[name]
+    node[field] = {"value": "9.84", "unit": "mmol/min/kPa"} if field == "original" else 5
+    with pytest.raises(InvalidField) as refused:
+        read_export(json.dumps(doc).encode(), "invented.json", TABLES.units)
+
+    line = str(refused.value)
+    assert "\n" not in line
+    assert line.startswith(f"invented.json: {path}.{field}: ")
+    shipped = jsonschema.Draft202012Validator(json.loads(SHIPPED.read_text()))
+    assert not shipped.is_valid(doc)
+    assert shipped.is_valid(SPIROMETRY)
+
+
+def test_the_schema_names_no_field_the_bridge_fills():
+    """The shipped schema describes an export: no ``original`` and no ``decimals`` property anywhere in it."""
+    # source: the jsonschema library reads the same document (its metaschema check above); here its properties
+    names = _properties(json.loads(SHIPPED.read_text()))
+
+    assert {"value", "unit", "test_id", "performed_at"} <= names  # the walk reaches the quantities and the top
+    assert not {"original", "decimals"} & names

@@ -16,7 +16,8 @@ import os
 import sqlite3
 import tempfile
 from collections.abc import Iterator, Sequence
-from dataclasses import astuple, dataclass
+from dataclasses import dataclass, fields
+from operator import attrgetter
 from pathlib import Path
 
 from bridge.audit.reduce import Visit, visit_of
@@ -27,6 +28,10 @@ from bridge.audit.rows import SERIES, Row
 _TEXTS = ("patient", "performed_at", "file", "record", "source", "test_id", "sex", "birth_date")
 _VISIT = ", ".join((*_TEXTS, *(s.key for s in SERIES)))
 _COLUMNS = ", ".join((*(f"{c} TEXT" for c in _TEXTS), *(f"{s.key} REAL" for s in SERIES)))
+# A Visit's fields but its series, as a tuple in order (dataclasses.astuple copies each value
+# recursively: 40 times slower).
+_VISIT_TEXTS = attrgetter(*(f.name for f in fields(Visit) if f.name != "series"))
+
 _SCHEMA = (
     "CREATE TABLE contents (source TEXT, test_id TEXT, sha256 TEXT, file TEXT)",
     f"CREATE TABLE visits ({_COLUMNS})",
@@ -80,7 +85,7 @@ class ArchiveIndex:
             )
             self._conn.executemany(
                 f"INSERT INTO visits VALUES ({', '.join('?' * (len(_TEXTS) + len(SERIES)))})",
-                [(row.patient, *astuple(visit)[:-1], *visit.series) for row in readable for visit in [visit_of(row)]],
+                [(row.patient, *_VISIT_TEXTS(visit), *visit.series) for row in readable for visit in [visit_of(row)]],
             )
 
     def contents(self) -> Iterator[tuple[str, str, dict[str, str]]]:

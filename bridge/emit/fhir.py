@@ -55,12 +55,19 @@ _FLAG_DISPLAY = MappingProxyType({"L": "Low", "N": "Normal", "H": "High"})
 _NOT_APPLICABLE = ("http://terminology.hl7.org/CodeSystem/data-absent-reason", "not-applicable", "Not Applicable")
 
 
-def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> Resource:
+def to_bundle(
+    outcome: Outcome,
+    tables: Tables,
+    context: EmitContext,
+    content: ReportContent | None = None,
+    statuses: Statuses | None = None,
+) -> Resource:
     """The FHIR R4 transaction Bundle for one outcome, as plain dicts (values as Decimal).
 
-    ``content`` is :func:`build_content` of the outcome in ``context.units``; pass it when it
-    is already at hand (another emitter built it), otherwise it is built here. Every dict and
-    list in the result is its own: callers may change them.
+    ``content`` is :func:`build_content` of the outcome in ``context.units`` and ``statuses``
+    :func:`resolve` of it in ``context``; pass them when they are already at hand (another
+    emitter built them), otherwise they are built here. Every dict and list in the result is
+    its own: callers may change them.
     """
     require_aware(context.now)
     if content is None:
@@ -74,7 +81,8 @@ def to_bundle(outcome: Outcome, tables: Tables, context: EmitContext, content: R
         entries.append(_patient_entry(patient))
         patient_url = entries[0]["fullUrl"]
     parts = _Parts.of(outcome, context, patient_url)
-    statuses = resolve(outcome, content, tables, context)
+    if statuses is None:
+        statuses = resolve(outcome, content, tables, context)
     full_urls = {item.key: parts.full_url(item.key) for item in content.items}
     for item in content.items:
         resource = _observation(parts, item, tables, context, full_urls, statuses)

@@ -20,11 +20,18 @@ from bridge.emit.content import ReportContent
 from bridge.emit.fhir import patient_by_identifier, to_bundle
 from bridge.emit.fhir_json import Resource, dumps
 from bridge.emit.settings import EmitContext
+from bridge.emit.status import Statuses
 from bridge.model import Outcome
 from bridge.tables import Tables
 
 
-def ndjson_lines(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> bytes:
+def ndjson_lines(
+    outcome: Outcome,
+    tables: Tables,
+    context: EmitContext,
+    content: ReportContent | None = None,
+    statuses: Statuses | None = None,
+) -> bytes:
     """The resources of one outcome, one JSON object per line in the Bundle's order (each names its type).
 
     Each resource gets ``id`` = its deterministic UUID and references ``Type/id`` instead of
@@ -32,7 +39,7 @@ def ndjson_lines(outcome: Outcome, tables: Tables, context: EmitContext, content
     logical reference by the patient's identifier: a bulk load has no transaction to resolve a
     conditional reference in.
     """
-    bundle = to_bundle(outcome, tables, context, content)
+    bundle = to_bundle(outcome, tables, context, content, statuses)
     local = {e["fullUrl"]: f"{e['resource']['resourceType']}/{_uuid_of(e)}" for e in bundle["entry"]}
     patient = outcome.session.patient
     logical = _Logical(

@@ -49,9 +49,14 @@ def _escape(text: str) -> str:
 def full_url(system: str, value: str) -> str:
     """``urn:uuid:`` + the version-5 UUID of ``system|value`` in the bridge's namespace.
 
-    RFC 4122 section 4.3, as ``uuid.uuid5`` computes it, with the namespace's bytes taken once
-    (``UUID.bytes`` converts from an integer on every access): SHA-1 of namespace + name,
-    the first 16 bytes, version and variant set by ``uuid.UUID``.
+    RFC 4122 section 4.3, as ``uuid.uuid5`` computes it: SHA-1 of namespace + name, its first 16
+    bytes with the version (5, the high nibble of octet 6) and the variant (binary 10, the top
+    bits of octet 8) set, written as 8-4-4-4-12 lower-case hex digits. Done on the bytes: a
+    ``uuid.UUID`` converts to and from an integer, which cost as much as the hash itself.
     """
-    digest = hashlib.sha1(_NAMESPACE_BYTES + f"{system}|{value}".encode(), usedforsecurity=False).digest()
-    return f"urn:uuid:{uuid.UUID(bytes=digest[:16], version=5)}"
+    name = _NAMESPACE_BYTES + f"{system}|{value}".encode()
+    octets = bytearray(hashlib.sha1(name, usedforsecurity=False).digest()[:16])
+    octets[6] = (octets[6] & 0x0F) | 0x50
+    octets[8] = (octets[8] & 0x3F) | 0x80
+    h = octets.hex()
+    return f"urn:uuid:{h[:8]}-{h[8:12]}-{h[12:16]}-{h[16:20]}-{h[20:]}"

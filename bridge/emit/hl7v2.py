@@ -60,17 +60,25 @@ COMMENT_SOURCE = "L"  # HL7 table 0105: ancillary (filler) department is the sou
 UNNAMED = "^^^^^^U"  # XPN-7 name type U (unspecified, HL7 table 0200) when the record has no name
 
 
-def to_oru(outcome: Outcome, tables: Tables, context: EmitContext, content: ReportContent | None = None) -> str:
+def to_oru(
+    outcome: Outcome,
+    tables: Tables,
+    context: EmitContext,
+    content: ReportContent | None = None,
+    statuses: Statuses | None = None,
+) -> str:
     """The ORU^R01 message for one outcome, segments separated by carriage returns.
 
-    ``content`` is :func:`build_content` of the outcome in ``context.units``; pass it when it
-    is already at hand (another emitter built it), otherwise it is built here.
+    ``content`` is :func:`build_content` of the outcome in ``context.units`` and ``statuses``
+    :func:`resolve` of it in ``context``; pass them when they are already at hand (another
+    emitter built them), otherwise they are built here.
     """
     if content is None:
         content = build_content(
             outcome, tables, context.units, context.site.hemoglobin_unit, context.site.charted_predicted
         )
-    statuses = resolve(outcome, content, tables, context)
+    if statuses is None:
+        statuses = resolve(outcome, content, tables, context)
     lab = outcome.session.lab.name
     key = "lab_facilities" if any(name == lab for name, _ in context.site.lab_facilities) else "sending_facility"
     facility = _namespace_setting(key, context.site.facility_of(lab))

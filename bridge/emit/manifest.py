@@ -1,25 +1,42 @@
 """What a payload carries, resource by resource, as sent: the ledger's record of it (pure).
 
-Owns :func:`fhir_carried` (each entry of a transaction Bundle: its identifier, code, value,
-unit, status and the SHA-256 of its compact JSON) and :func:`hl7_carried` (each OBX of an
-ORU^R01: the identifier of the result it carries, its code, OBX-5, OBX-6, OBX-11 and the
-SHA-256 of the segment). The service keeps these per test id and destination so that a
-correction knows what it replaces and what it must withdraw, and reconciliation what to look
-for, after old payloads are pruned. Read from what was built, never rebuilt: the record is what went out.
+Owns :func:`carried`, read from a payload's bytes when the service's ledger records it (a
+``convert`` or an audit never needs it): :func:`fhir_carried` (each entry of a transaction
+Bundle: its identifier, code, value, unit, status and the SHA-256 of its compact JSON) and
+:func:`hl7_carried` (each OBX of an ORU^R01: the identifier of the result it carries, its
+code, OBX-5, OBX-6, OBX-11 and the SHA-256 of the segment). The service keeps these per test
+id and destination so that a correction knows what it replaces and what it must withdraw, and
+reconciliation what to look for, after old payloads are pruned. Read from what was sent, never
+rebuilt: the record is what went out.
 """
 
 from __future__ import annotations
 
 import hashlib
+import json
 from collections.abc import Sequence
 from decimal import Decimal
 from typing import Any
 
 from bridge.emit.fhir_json import Resource, dumps
 from bridge.hl7.text import FIELD_SEPARATOR, split_fields, split_segments
-from bridge.model import Carried
+from bridge.model import Carried, Payload
 
 _COMPONENT = "^"
+
+
+def carried(payload: Payload, identifier_system: str) -> tuple[Carried, ...]:
+    """What ``payload`` carries, read from its bytes: a Bundle's entries, an ORU^R01's OBX (none for NDJSON).
+
+    ``identifier_system``: the site's identifier system of observations, which an OBX does not name.
+    The Bundle is read with its numbers as Decimal, so each resource's compact JSON, and so its
+    digest, is the text that was sent (:func:`bridge.emit.fhir_json.dumps` writes a Decimal's digits).
+    """
+    if payload.kind == "fhir":
+        return fhir_carried(json.loads(payload.data, parse_float=Decimal))
+    if payload.kind == "hl7":
+        return hl7_carried(payload.data.decode("utf-8"), identifier_system, payload.identifiers)
+    return ()
 
 
 def fhir_carried(bundle: Resource) -> tuple[Carried, ...]:

@@ -16,7 +16,6 @@ from bridge.emit.fhir_json import dumps, require_aware
 from bridge.emit.fhir_ndjson import ndjson_lines
 from bridge.emit.hl7v2 import control_id, to_oru
 from bridge.emit.identifiers import observation_identifier
-from bridge.emit.manifest import fhir_carried, hl7_carried
 from bridge.emit.observations import build_content
 from bridge.emit.settings import EmitContext
 from bridge.emit.status import order_groups, resolve
@@ -68,9 +67,10 @@ def refuse_blocked(outcome: Outcome, blocking: Collection[str] = (), allow: Coll
 def payloads(
     outcome: Outcome, tables: Tables, context: EmitContext, kinds: Sequence[OutputKind]
 ) -> tuple[Payload, ...]:
-    """Every requested payload of one outcome, each with what it carries (``bridge.emit.manifest``).
+    """Every requested payload of one outcome (what each carries: ``bridge.emit.manifest.carried``).
 
-    What is emitted (:func:`build_content`) is built once and rendered by each emitter.
+    What is emitted (:func:`build_content`) and the status of each result (:func:`resolve`)
+    are built once and rendered by each emitter.
     """
     if not kinds:
         return ()
@@ -81,33 +81,22 @@ def payloads(
     if not content.items:
         # An ORU^R01 needs at least one OBX, and a report of nothing is no report.
         raise MissingField("results", "at least one result or condition to send (dlco, va, kco, ...)", outcome.source)
+    statuses = resolve(outcome, content, tables, context)
     for kind in kinds:
         if kind == "ndjson":
             require_aware(context.now)
-            data = ndjson_lines(outcome, tables, context, content)
+            data = ndjson_lines(outcome, tables, context, content, statuses)
             stem = file_stem(outcome.session.test_id)
             built.append(Payload(kind=kind, units=context.units, message_id=stem, content_type=FHIR_NDJSON, data=data))
         elif kind == "fhir":
             require_aware(context.now)  # as bundle_json: the time is checked before anything is built
-            stem = f"{file_stem(outcome.session.test_id)}"
-            bundle = to_bundle(outcome, tables, context, content)
-            data = dumps(bundle, indent=False)  # bundle_json's bytes: compact, as sent
-            built.append(
-                Payload(
-                    kind="fhir",
-                    units=context.units,
-                    message_id=stem,
-                    content_type=FHIR_JSON,
-                    data=data,
-                    carried=fhir_carried(bundle),
-                )
-            )
+            data = dumps(to_bundle(outcome, tables, context, content, statuses), indent=False)  # compact, as sent
+            stem = file_stem(outcome.session.test_id)
+            built.append(Payload(kind="fhir", units=context.units, message_id=stem, content_type=FHIR_JSON, data=data))
         else:
-            er7 = to_oru(outcome, tables, context, content)
-            statuses = resolve(outcome, content, tables, context)  # OBX order, as to_oru writes it
-            keys = [key for group in order_groups(content, statuses, tables) for key in group.obx_keys()]
+            er7 = to_oru(outcome, tables, context, content, statuses)
+            keys = [key for group in order_groups(content, statuses, tables) for key in group.obx_keys()]  # OBX order
             prefix = observation_identifier(outcome, "")  # lab slug and test id, once
-            ids = [prefix + key for key in keys]
             built.append(
                 Payload(
                     kind="hl7",
@@ -115,7 +104,7 @@ def payloads(
                     message_id=control_id(outcome, context),
                     content_type=HL7_V2_ER7,
                     data=er7.encode(),
-                    carried=hl7_carried(er7, context.site.observation_system, ids),
+                    identifiers=tuple(prefix + key for key in keys),
                 )
             )
     return tuple(built)

@@ -49,9 +49,8 @@ def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: st
     source goes through the same reported-digits rule, the same normalisation on the tree and
     the same one model validation.
     """
-    tree = _decimals_in_place(tree)
     try:
-        session = Session.model_validate(normalise_tree(tree, catalogue))
+        session = Session.model_validate(normalise_tree(_decimals_in_place(tree), catalogue))
     except ValidationError as exc:
         raise first_validation_error(exc, source) from None
     except InputError as exc:

@@ -40,6 +40,7 @@ from typing import Literal
 
 import orjson
 
+from bridge.emit.manifest import carried
 from bridge.errors import DiskFull, InputError, InvalidField, LedgerError, UnreadableInput
 from bridge.model import Outcome, Payload
 from bridge.pipeline import PipelineSettings, Route, process, process_all
@@ -230,7 +231,8 @@ class Intake:
                 content_sha256=outcome.source_sha256,
                 kind=payload.kind,
                 lab=outcome.session.lab.name,
-                carried=payload.carried,  # kept by the ledger through pruning (what a correction replaces)
+                # kept by the ledger through pruning (what a correction replaces)
+                carried=carried(payload, self.pipeline.emit.observation_system),
             )
             for destination in self.service.destinations
             for payload in (by_route[(destination.payload, destination.units)],)

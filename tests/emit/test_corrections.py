@@ -21,6 +21,7 @@ from hl7apy.parser import parse_message
 from bridge.emit.fhir import to_bundle
 from bridge.emit.fhir_json import dumps
 from bridge.emit.hl7v2 import to_oru
+from bridge.emit.manifest import carried
 from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.model import Outcome
 from bridge.pipeline import Route, process
@@ -33,6 +34,7 @@ NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 LATER = datetime(2026, 3, 11, 9, 30, tzinfo=UTC)
 ROUTES = (Route("fhir", "si"), Route("hl7", "si"))
 CONDITIONAL_CREATE = EmitSettings(patient_reference="conditional-create")
+SYSTEM = EmitSettings().observation_system  # the identifier system the tests' contexts use
 PREFIX = "lowmarsh-respiratory-physiology-lab-fictional.LOW-2026-0001."  # lab slug and test id of sample 01
 
 
@@ -50,7 +52,7 @@ def _without_hb(document: dict[str, Any]) -> bytes:
 
 def _sent(outcome: Outcome) -> tuple[tuple[str, str], ...]:
     """What the original's payloads carried: (identifier, status), as the ledger records it."""
-    return tuple((c.identifier_value, c.status) for p in outcome.payloads for c in p.carried)
+    return tuple((c.identifier_value, c.status) for p in outcome.payloads for c in carried(p, SYSTEM))
 
 
 def _original(tables: Tables) -> Outcome:
@@ -74,11 +76,11 @@ def test_the_original_carries_its_identifiers_and_statuses(tables: Tables) -> No
     """The original's payloads carry every Observation and the report as final, and each OBX as F."""
     original = _original(tables)
     fhir, oru = original.payloads
-    statuses = {(c.resource_type, c.status) for c in fhir.carried}
+    statuses = {(c.resource_type, c.status) for c in carried(fhir, SYSTEM)}
 
     assert {("Observation", "final"), ("DiagnosticReport", "final"), ("Provenance", "")} == statuses
-    assert {"F"} == {c.status for c in oru.carried}
-    assert f"{PREFIX}dlco_hb_adjusted" in {c.identifier_value for c in oru.carried}
+    assert {"F"} == {c.status for c in carried(oru, SYSTEM)}
+    assert f"{PREFIX}dlco_hb_adjusted" in {c.identifier_value for c in carried(oru, SYSTEM)}
 
 
 def test_a_correction_without_hb_withdraws_the_hb_adjusted_dlco_in_fhir(tables: Tables) -> None:
@@ -193,8 +195,8 @@ def test_the_record_of_an_obx_is_its_segment_as_sent(tables: Tables) -> None:
     oru = original.payloads[1]
     segments = [str(s) for s in hl7.parse(oru.data.decode()).segments("OBX")]
 
-    assert [hashlib.sha256(s.encode()).hexdigest() for s in segments] == [c.digest for c in oru.carried]
-    assert [s.split("|")[5] for s in segments] == [c.value for c in oru.carried]
+    assert [hashlib.sha256(s.encode()).hexdigest() for s in segments] == [c.digest for c in carried(oru, SYSTEM)]
+    assert [s.split("|")[5] for s in segments] == [c.value for c in carried(oru, SYSTEM)]
 
 
 def test_the_record_of_a_resource_keeps_the_value_text_as_sent(tables: Tables) -> None:
@@ -207,9 +209,27 @@ def test_the_record_of_a_resource_keeps_the_value_text_as_sent(tables: Tables) -
         for e in sent["entry"]
         if "valueQuantity" in e["resource"]
     }
-    recorded = {c.identifier_value: c.value for c in fhir.carried if c.value is not None}
+    recorded = {c.identifier_value: c.value for c in carried(fhir, SYSTEM) if c.value is not None}
     later = process(json.dumps(_document()).encode(), "first.json", tables, now=LATER, routes=ROUTES).payloads[0]
 
     assert values == recorded
     assert "9.84" == recorded[f"{PREFIX}dlco"]  # the sample's DLCO as written
-    assert [c.digest for c in fhir.carried] != [c.digest for c in later.carried]  # "issued" differs
+    assert [c.digest for c in carried(fhir, SYSTEM)] != [c.digest for c in carried(later, SYSTEM)]  # "issued" differs
+
+
+def test_the_record_of_a_resource_is_its_json_as_sent(tables: Tables) -> None:
+    """Each FHIR record's digest is the SHA-256 of that resource's text exactly as it stands in the sent Bundle."""
+    # source: FIPS 180-4 SHA-256 via hashlib over each entry's "resource" span, located in the sent
+    # text by the standard library's JSON decoder (RFC 8259), not by the bridge's serialiser
+    fhir = _original(tables).payloads[0]
+    text = fhir.data.decode()
+    decoder = json.JSONDecoder()
+    spans, at = [], 0
+    while (found := text.find('"fullUrl":', at)) >= 0:
+        start = text.index('"resource":', found) + len('"resource":')
+        _, at = decoder.raw_decode(text, start)
+        spans.append(text[start:at])
+    records = carried(fhir, SYSTEM)
+
+    assert len(spans) == len(json.loads(text)["entry"]) == len(records)
+    assert [hashlib.sha256(s.encode()).hexdigest() for s in spans] == [c.digest for c in records]

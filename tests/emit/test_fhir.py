@@ -305,6 +305,10 @@ def test_full_urls_are_uuid5_of_identifier(fhir_outcomes, fhir_tables):
 
     assert expected == entry["fullUrl"]
     assert len(urls) == len(set(urls))
+    for each in bundle["entry"]:  # every entry named by an identifier, the same way
+        if "identifier" in each["resource"]:
+            ident = each["resource"]["identifier"][0]
+            assert f"urn:uuid:{uuid.uuid5(namespace, ident['system'] + '|' + ident['value'])}" == each["fullUrl"]
 
 
 def test_issued_time_comes_from_the_context(fhir_outcomes, fhir_tables):
