@@ -17,7 +17,8 @@ from hl7apy.parser import parse_message
 
 from bridge.emit.fhir import bundle_json
 from bridge.emit.hl7v2 import to_oru
-from bridge.emit.settings import EmitContext
+from bridge.emit.manifest import carried
+from bridge.emit.settings import EmitContext, EmitSettings
 from bridge.errors import BlockedByFinding
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, Route, process
@@ -35,6 +36,8 @@ TABLES = load_tables()
 LOINC = "http://loinc.org"
 SNOMED = "http://snomed.info/sct"
 ROUTES = (Route("fhir", "si"), Route("hl7", "si"))
+
+SYSTEM = EmitSettings().observation_system  # the identifier system of the default settings
 
 
 @pytest.fixture(scope="module")
@@ -160,7 +163,7 @@ def test_a_correction_without_erv_withdraws_it():
     """The lab's correction drops ERV: its result sent before goes out entered-in-error (FHIR) and D (HL7)."""
     # source: FHIR R4 CodeSystem observation-status ("entered-in-error"); HL7 v2.5.1 table 0085 (D deletes the OBX)
     original = process(DOCUMENT.read_bytes(), "first.json", TABLES, now=NOW, routes=ROUTES)
-    sent = tuple((c.identifier_value, c.status) for p in original.payloads for c in p.carried)
+    sent = tuple((c.identifier_value, c.status) for p in original.payloads for c in carried(p, SYSTEM))
     doc = json.loads(DOCUMENT.read_text())
     del doc["lung_volumes"]["erv"]
     correction = process(json.dumps(doc).encode(), "second.json", TABLES)

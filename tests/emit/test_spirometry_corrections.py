@@ -16,6 +16,8 @@ from hl7apy.consts import VALIDATION_LEVEL
 from hl7apy.parser import parse_message
 
 from bridge.emit.hl7v2 import to_oru
+from bridge.emit.manifest import carried
+from bridge.emit.settings import EmitSettings
 from bridge.model import Outcome
 from bridge.pipeline import Route, process
 from bridge.tables import Tables
@@ -25,6 +27,8 @@ from tests.emit.test_hl7v2 import ALLOWED_WARNINGS
 
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 ROUTES = (Route("fhir", "si"), Route("hl7", "si"))
+
+SYSTEM = EmitSettings().observation_system  # the identifier system of the default settings
 
 
 def _document() -> dict[str, Any]:
@@ -127,6 +131,6 @@ def test_the_record_of_a_correction_follows_its_obx_order(tables: Tables) -> Non
     oru = correction.payloads[0]
     codes = {str(obx(3)(1)(1)) for obx in hl7.parse(oru.data.decode()).segments("OBX")}
 
-    assert len(list(hl7.parse(oru.data.decode()).segments("OBX"))) == len(oru.carried)
-    assert any(c.identifier_value.endswith(".pef_post") and c.status == "D" for c in oru.carried)
+    assert len(list(hl7.parse(oru.data.decode()).segments("OBX"))) == len(carried(oru, SYSTEM))
+    assert any(c.identifier_value.endswith(".pef_post") and c.status == "D" for c in carried(oru, SYSTEM))
     assert tables.codes.codes["pef_post"].code in codes
