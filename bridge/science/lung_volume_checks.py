@@ -18,7 +18,8 @@ from bridge.model import Derived, Finding, Quantity, Session, Severity
 from bridge.science.findings import finding, finding_with_values, message_quantity
 from bridge.science.lung_volumes import volume_sum_problems
 from bridge.science.normalise import express
-from bridge.science.spirometry import Problem, lung_volume_problems, millilitres_as_litres
+from bridge.science.spirometry import Problem, lung_volume_problems
+from bridge.science.spirometry_checks import wrong_unit
 from bridge.science.table_values import Tables
 
 _VOLUMES = ("tlc", "frc", "rv", "vc", "ic", "erv")  # in litres
@@ -54,30 +55,10 @@ def check_lung_volume_units(session: Session, derived: Derived, tables: Tables) 
     volumes = session.lung_volumes
     if volumes is None:
         return
-    rules = tables.spirometry
     for key in _VOLUMES:
         value: Quantity | None = getattr(volumes, key)
-        if value is None:
-            continue
-        low, high = rules.plausible[key]
-        likely: float | None = None
-        found = millilitres_as_litres(key, value.value, rules)
-        if found is not None:
-            likely = found.likely_value
-        elif 0.0 < value.value < low and low <= value.value * 1000.0 <= high:
-            likely = value.value * 1000.0
-        if likely is None:
-            continue
-        sent = value.original.unit if value.original is not None else value.unit
-        yield finding_with_values(
-            "LUNG_VOLUMES_UNIT_MISLABEL",
-            Severity.ERROR,
-            f"{_PATH}.{key}",
-            f"{key.upper()} {{value}} is outside {low:g}-{high:g} {value.unit}, but {{likely}} is inside: "
-            f"the value was most likely sent in the wrong unit (as {sent}); correct the unit at the source.",
-            value=value,
-            likely=message_quantity(likely, value.unit, 3),
-        )
+        if value is not None:
+            yield from wrong_unit("LUNG_VOLUMES_UNIT_MISLABEL", f"{_PATH}.{key}", key, value, tables)
 
 
 def check_lung_volume_ratios(session: Session, derived: Derived, tables: Tables) -> Iterator[Finding]:

@@ -62,30 +62,38 @@ def _impossible(values: SpirometryValues | SpirometryManoeuvre, path: str) -> It
 
 def _units(results: SpirometryValues, path: str, tables: Tables) -> Iterator[Finding]:
     """A value 1000 times off: millilitres labelled litres (above the range), or litres labelled millilitres."""
-    rules = tables.spirometry
     for key in _KEYS_IN_LITRES:
         value: Quantity | None = getattr(results, key)
-        if value is None:
-            continue
-        low, high = rules.plausible[key]
-        likely: float | None = None
-        found = millilitres_as_litres(key, value.value, rules)
-        if found is not None:
-            likely = found.likely_value
-        elif value.value < low and low <= value.value * 1000.0 <= high:
-            likely = value.value * 1000.0
-        if likely is None:
-            continue
-        sent = value.original.unit if value.original is not None else value.unit
-        yield finding_with_values(
-            "SPIROMETRY_UNIT_MISLABEL",
-            Severity.ERROR,
-            f"{path}.{key}",
-            f"{key.upper()} {{value}} is outside {low:g}-{high:g} {value.unit}, but {{likely}} is inside: "
-            f"the value was most likely sent in the wrong unit (as {sent}); correct the unit at the source.",
-            value=value,
-            likely=message_quantity(likely, value.unit, 3),
-        )
+        if value is not None:
+            yield from wrong_unit("SPIROMETRY_UNIT_MISLABEL", f"{path}.{key}", key, value, tables)
+
+
+def wrong_unit(code: str, path: str, key: str, value: Quantity, tables: Tables) -> Iterator[Finding]:
+    """``value`` of ``key`` outside its plausible range but 1000 times it (or a thousandth) inside: a unit mix-up.
+
+    Shared by spirometry and the static lung volumes, each under its own code; the ranges are the
+    ``[plausible]`` table of ``mappings/spirometry_grades.toml``.
+    """
+    rules = tables.spirometry
+    low, high = rules.plausible[key]
+    likely: float | None = None
+    found = millilitres_as_litres(key, value.value, rules)
+    if found is not None:
+        likely = found.likely_value
+    elif 0.0 < value.value < low and low <= value.value * 1000.0 <= high:
+        likely = value.value * 1000.0
+    if likely is None:
+        return
+    sent = value.original.unit if value.original is not None else value.unit
+    yield finding_with_values(
+        code,
+        Severity.ERROR,
+        path,
+        f"{key.upper()} {{value}} is outside {low:g}-{high:g} {value.unit}, but {{likely}} is inside: "
+        f"the value was most likely sent in the wrong unit (as {sent}); correct the unit at the source.",
+        value=value,
+        likely=message_quantity(likely, value.unit, 3),
+    )
 
 
 def _ratio(results: SpirometryValues, path: str, tables: Tables) -> Iterator[Finding]:
