@@ -11,6 +11,7 @@ from __future__ import annotations
 from collections.abc import Callable
 from types import MappingProxyType
 
+from bridge.display.spirometry_text import reference_text
 from bridge.lung_volume_record import LUNG_VOLUME_KEYS
 from bridge.model import Outcome, Quantity
 
@@ -44,11 +45,7 @@ def lung_volume_lines(outcome: Outcome, text: Callable[[Quantity], str], brief: 
         lines.append(f"    {_LABELS[key]:<32}{text(value)}")
         ref = derived.references.get(key)
         if ref is not None:
-            lines.append(
-                f"    {'':<32}predicted {brief(ref.predicted)}  LLN {brief(ref.lln)}  ULN {brief(ref.uln)}  "
-                f"z {ref.z_score:.2f} ({ref.impairment if ref.flag != 'H' else 'above the ULN'})  "
-                f"{ref.percent_predicted.text()} %"
-            )
+            lines.append(f"    {'':<32}{reference_text(ref, brief)}")
     for key, label in _RECOMPUTED:
         recomputed: Quantity | None = getattr(derived, key)
         if recomputed is not None:

@@ -12,7 +12,13 @@ from __future__ import annotations
 from collections.abc import Callable
 
 from bridge.model import Outcome, Quantity
-from bridge.spirometry_record import BronchodilatorChange, ParameterGrade, PhaseDerived, SpirometryPhase
+from bridge.spirometry_record import (
+    BronchodilatorChange,
+    ParameterGrade,
+    PhaseDerived,
+    SpirometryPhase,
+    SpirometryReference,
+)
 
 _LABELS = (("fev1", "FEV1"), ("fvc", "FVC"), ("fev1_fvc", "FEV1/FVC"), ("fef25_75", "FEF25-75"), ("pef", "PEF"))
 _PHASES = (("pre", "before the bronchodilator"), ("post", "after the bronchodilator"))
@@ -57,17 +63,22 @@ def _phase_lines(
         lines.append(f"      {label:<30}{text(value)}")
         ref = done.references.get(key)
         if ref is not None:
-            lines.append(
-                f"      {'':<30}predicted {brief(ref.predicted)}  LLN {brief(ref.lln)}  ULN {brief(ref.uln)}  "
-                f"z {ref.z_score:.2f} ({ref.impairment if ref.flag != 'H' else 'above the ULN'})  "
-                f"{ref.percent_predicted.text()} %"
-            )
+            lines.append(f"      {'':<30}{reference_text(ref, brief)}")
     if done.fev1_fvc is not None:
         lines.append(f"      {'FEV1/FVC recomputed':<30}{brief(done.fev1_fvc)}")
     for label, graded in (("FEV1", done.fev1_grade), ("FVC", done.fvc_grade)):
         if graded is not None:
             lines.append(f"      {label + ' grade (ATS/ERS 2019)':<30}{_grade_text(graded, brief)}")
     return lines
+
+
+def reference_text(ref: SpirometryReference, brief: Callable[[Quantity], str]) -> str:
+    """One result's reference values on one line: predicted, LLN, ULN, z (its band) and per cent predicted."""
+    band = ref.impairment if ref.flag != "H" else "above the ULN"
+    return (
+        f"predicted {brief(ref.predicted)}  LLN {brief(ref.lln)}  ULN {brief(ref.uln)}  "
+        f"z {ref.z_score:.2f} ({band})  {ref.percent_predicted.text()} %"
+    )
 
 
 def _grade_text(graded: ParameterGrade, brief: Callable[[Quantity], str]) -> str:
