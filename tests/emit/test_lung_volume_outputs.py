@@ -24,7 +24,7 @@ from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, Route, process
 from bridge.tables.files import load_tables
 from tests.core.test_codes_whole_report import loinc_check_digit
-from tests.emit.test_spirometry_outputs import ALLOWED_WARNINGS
+from tests.emit.test_spirometry_outputs import ALLOWED_WARNINGS, _resources
 from tests.fhir_schema import ResourceValidators, load_fhir_schema
 from tests.fhir_schema import errors as schema_errors
 
@@ -48,10 +48,6 @@ def outcome() -> Outcome:
 @pytest.fixture(scope="module")
 def bundle(outcome: Outcome) -> dict[str, Any]:
     return json.loads(bundle_json(outcome, TABLES, EmitContext(now=NOW, units="si")))
-
-
-def _resources(bundle: dict[str, Any], kind: str) -> list[dict[str, Any]]:
-    return [e["resource"] for e in bundle["entry"] if e["resource"]["resourceType"] == kind]
 
 
 def _by_code(bundle: dict[str, Any]) -> dict[str, dict[str, Any]]:
