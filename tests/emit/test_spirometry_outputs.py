@@ -53,6 +53,16 @@ def _resources(bundle: dict[str, Any], kind: str) -> list[dict[str, Any]]:
     return [e["resource"] for e in bundle["entry"] if e["resource"]["resourceType"] == kind]
 
 
+def strict_order_codes(er7: str, tmp_path: Path) -> list[str]:
+    """OBR-4 of each order group, once hl7apy STRICT has validated the message with no warning but the known ones."""
+    # source: HL7 v2.5.1 message structure ORU_R01 as encoded in hl7apy (ORDER_OBSERVATION repeats)
+    report = tmp_path / "report.txt"
+    message = parse_message(er7, validation_level=VALIDATION_LEVEL.STRICT, find_groups=True)
+    assert message.validate(report_file=str(report))
+    assert set() == {line for line in report.read_text().splitlines() if line} - ALLOWED_WARNINGS
+    return [o.obr.obr_4.obr_4_1.value for o in message.oru_r01_patient_result.oru_r01_order_observation]
+
+
 def _by_text(bundle: dict[str, Any]) -> dict[str, dict[str, Any]]:
     return {r["code"]["text"]: r for r in _resources(bundle, "Observation")}
 
@@ -114,12 +124,7 @@ def test_the_oru_has_an_order_group_per_test_group_and_is_strict_valid(outcome, 
     """One ORU: the DLCO OBR first, then an OBR per phase with its OBX, valid under hl7apy STRICT."""
     # source: HL7 v2.5.1 message structure ORU_R01 as encoded in hl7apy (ORDER_OBSERVATION repeats)
     er7 = to_oru(outcome, TABLES, EmitContext(now=NOW))
-    report = tmp_path / "report.txt"
-    message = parse_message(er7, validation_level=VALIDATION_LEVEL.STRICT, find_groups=True)
-    assert message.validate(report_file=str(report))
-    assert set() == {line for line in report.read_text().splitlines() if line} - ALLOWED_WARNINGS
-    orders = message.oru_r01_patient_result.oru_r01_order_observation
-    assert ["81458-2", "SPIRO-PRE", "SPIRO-POST"] == [o.obr.obr_4.obr_4_1.value for o in orders]
+    assert ["81458-2", "SPIRO-PRE", "SPIRO-POST"] == strict_order_codes(er7, tmp_path)
     # source: python-hl7, an independent parser: set ids restart at 1 in each order group
     parsed = hl7.parse(er7)
     obr_set_ids = [str(s[1]) for s in parsed.segments("OBR")]
