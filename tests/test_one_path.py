@@ -53,14 +53,16 @@ folder = "fhir-out"
 
 
 def test_convert_and_watch_write_byte_identical_payloads(tmp_path: Path):
-    """For good samples (sample 10's whole report too), convert's ORU and Bundle equal what the service enqueues."""
+    """For good samples (samples 10 and 11, spirometry and the whole report, too), convert's ORU and Bundle equal what
+    the service enqueues."""
     config = tmp_path / "site.toml"
     config.write_text(SITE, encoding="utf-8")
     settings = load_settings(config, {})
     service = settings.require_service()
     tables = load_tables()
     names = ("01-healthy-adult.json", "03-high-altitude.json", "06-three-manoeuvres.json")
-    samples = [ROOT / "samples" / n for n in (*names, "10-spirometry-and-dlco.json")]  # 10: the whole report
+    # 10: spirometry and DLCO; 11: the whole report (spirometry, static lung volumes and DLCO)
+    samples = [ROOT / "samples" / n for n in (*names, "10-spirometry-and-dlco.json", "11-whole-report.json")]
 
     converted = convert_files(samples, tmp_path / "out", replace(settings, to=("fhir", "hl7")), tables, now=NOW)
     service.inbox.mkdir()
@@ -78,7 +80,7 @@ def test_convert_and_watch_write_byte_identical_payloads(tmp_path: Path):
         for path in written.files
         if not isinstance(outcome, Exception)
     }
-    assert 8 == len(written)  # four samples, two outputs each
+    assert 10 == len(written)  # five samples, two outputs each
     assert written == queued
 
 

@@ -39,10 +39,11 @@ POST_WITHOUT_PRE_IN_SOURCE = "POST_WITHOUT_PRE_IN_SOURCE"
 ARCHIVE_CHECKS = (DUPLICATE_TEST_ID, SEX_CHANGED, BIRTH_DATE_CHANGED, SERIES_JUMP, UNIT_CONVENTIONS_MIXED,
                   REFERENCE_SETS_MIXED, POST_WITHOUT_PRE_IN_SOURCE)  # fmt: skip
 
-# A series (bridge.audit.rows.SERIES: DLCO, FEV1 and FVC before and after the bronchodilator) that
-# moves by its unit factor between consecutive sessions was almost certainly labelled in the wrong
-# unit at one of them: DLCO by the site's SI <-> traditional factor (traditional_per_si: 2.987, or
-# 2.986, bridge.science.units), a volume by 1000 (millilitres as litres, or the reverse).
+# A series (bridge.audit.rows.SERIES: DLCO, FEV1 and FVC before and after the bronchodilator, the
+# static lung volumes TLC, FRC, RV and VC) that moves by its unit factor between consecutive
+# sessions was almost certainly labelled in the wrong unit at one of them: DLCO by the site's
+# SI <-> traditional factor (traditional_per_si: 2.987, or 2.986, bridge.science.units), a volume
+# by 1000 (millilitres as litres, or the reverse).
 # relative, so that honest change between visits (tens of per cent) on top of a mislabel still shows,
 # while a true tripling or fall to a third between two sessions does not happen (common practice)
 SERIES_JUMP_TOLERANCE = 0.15

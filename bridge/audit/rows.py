@@ -70,6 +70,10 @@ SERIES = (
            LITRES_PER_MILLILITRE, ".4g"),
     Series("fvc_post", "FVC (post-bronchodilator)", "L", ("spirometry", "post", "results", "fvc"),
            LITRES_PER_MILLILITRE, ".4g"),
+    Series("tlc", "TLC", "L", ("lung_volumes", "tlc"), LITRES_PER_MILLILITRE, ".4g"),
+    Series("frc", "FRC", "L", ("lung_volumes", "frc"), LITRES_PER_MILLILITRE, ".4g"),
+    Series("rv", "RV", "L", ("lung_volumes", "rv"), LITRES_PER_MILLILITRE, ".4g"),
+    Series("vc", "VC", "L", ("lung_volumes", "vc"), LITRES_PER_MILLILITRE, ".4g"),
 )  # fmt: skip
 # dlco-result/1 names the reference set of the lab's own predicted values for DLCO only: spirometry's
 # reference values are the site's (spirometry_reference), one set for the whole run.

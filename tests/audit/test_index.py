@@ -10,11 +10,12 @@ from bridge.audit.rows import Row
 from bridge.cli import main
 from bridge.tables.files import samples_dir
 
-SPIRO = (2.5, 3.25, None, None)  # FEV1 and FVC before the bronchodilator (L), none after
+# FEV1 and FVC before the bronchodilator (L), none after; then TLC, FRC, RV and VC (L)
+SPIRO = (2.5, 3.25, None, None, 5.8, 3.0, 1.9, 3.9)
 
 
 def _row(file: str, test_id: str, sha: str, performed_at: str, dlco: float | None = 20.0, **extra: str) -> Row:
-    # the series of bridge.audit.rows.SERIES: DLCO, then FEV1 and FVC before and after the bronchodilator
+    # the series of bridge.audit.rows.SERIES: DLCO, FEV1 and FVC before and after the bronchodilator, lung volumes
     series = (dlco, *SPIRO)
     return Row(
         file=file, source="Lab A", findings=(), test_id=test_id, sha256=sha, patient="sys|P1",

@@ -1,5 +1,6 @@
-"""The whole report through the service: samples/10 delivered to a file, over MLLP and over FHIR REST to the
-stand-in is what ``convert`` writes, and a corrected spirometry value goes out as a correction (issue 25.4).
+"""The whole report through the service: samples/10 (spirometry and DLCO) and samples/11 (spirometry, static lung
+volumes and DLCO) delivered to a file, over MLLP and over FHIR REST to the stand-in is what ``convert`` writes, and
+a corrected spirometry or lung-volume value goes out as a correction (issue 25).
 
 The service's own parts run in this process, as ``watch`` runs them (the intake into the ledger, then
 :func:`deliver_due` over the transports ``watch`` builds from the destinations), with the clock fixed
@@ -35,6 +36,7 @@ from bridge.tables.files import load_tables
 from tests.conftest import SAMPLES
 
 SAMPLE = SAMPLES / "10-spirometry-and-dlco.json"
+WHOLE = SAMPLES / "11-whole-report.json"
 NOW = datetime(2026, 3, 10, 12, 0, tzinfo=UTC)
 
 
@@ -98,11 +100,13 @@ def _held(store: ResourceStore) -> list[tuple[str, int, dict[str, Any]]]:
     return [(r.type, r.id, r.body) for r in store.all()]
 
 
-def test_the_three_destinations_get_what_convert_writes(site: Site, tmp_path: Path):
+# sample 10: a pre and a post spirometry panel; sample 11: those and the static lung volumes' panel
+@pytest.mark.parametrize(("sample", "panels"), [(SAMPLE, 2), (WHOLE, 3)], ids=["sample-10", "sample-11"])
+def test_the_three_destinations_get_what_convert_writes(site: Site, tmp_path: Path, sample: Path, panels: int):
     """The file destination's and the MLLP listener's message are convert's ORU byte for byte; the stand-in holds
     from the delivered Bundle exactly what it holds when given convert's Bundle (the same ids, the same bodies)."""
-    site.send(SAMPLE.read_bytes(), SAMPLE.name)
-    converted = convert_files([SAMPLE], tmp_path / "out", replace(site.settings, to=("fhir", "hl7")), load_tables(),
+    site.send(sample.read_bytes(), sample.name)
+    converted = convert_files([sample], tmp_path / "out", replace(site.settings, to=("fhir", "hl7")), load_tables(),
                               now=NOW)  # fmt: skip
     (written,) = [w for _, _, w in converted]
     oru = next(p for p in written.files if p.suffix == ".hl7").read_bytes()
@@ -113,16 +117,15 @@ def test_the_three_destinations_get_what_convert_writes(site: Site, tmp_path: Pa
     assert [oru] == site.messages(site.root / "drop")
     assert [oru] == site.messages(site.root / "stand-in" / "messages")
     assert _held(reference) == _held(site.store)
-    # the spirometry panels are among what was delivered (source: FHIR R4 Observation.hasMember)
-    assert 2 == sum("hasMember" in body for kind, _, body in _held(site.store) if kind == "Observation")
+    # the panels are among what was delivered (source: FHIR R4 Observation.hasMember)
+    assert panels == sum("hasMember" in body for kind, _, body in _held(site.store) if kind == "Observation")
     reference.close()
 
 
-def _pre_fev1(message: bytes) -> tuple[str, str]:
-    """OBX-5 and OBX-11 of the pre-bronchodilator FEV1 (LOINC 20157-4), parsed by python-hl7."""
+def _obx(message: bytes, loinc: str) -> tuple[str, str]:
+    """OBX-5 and OBX-11 of the observation coded ``loinc``, parsed by python-hl7."""
     parsed = hl7.parse(message.decode("utf-8"))
-    # source: LOINC 20157-4 FEV1 --pre bronchodilation; HL7 v2.5.1 ch. 7, OBX-3, OBX-5, OBX-11
-    obx = next(s for s in parsed.segments("OBX") if str(s[3]).startswith("20157-4^"))
+    obx = next(s for s in parsed.segments("OBX") if str(s[3]).startswith(f"{loinc}^"))
     return str(obx[5]), str(obx[11])
 
 
@@ -136,8 +139,28 @@ def test_a_corrected_spirometry_value_is_delivered_as_a_correction(site: Site):
     site.send(json.dumps(document).encode(), "second.json")
     fev1 = [r for r in site.store.all() if r.type == "Observation" and r.body["code"]["coding"][0]["code"] == "20157-4"]
 
-    # source: HL7 v2.5.1 ch. 7, table 0085 observation result status (F final, C correction)
+    # source: LOINC 20157-4 FEV1 --pre bronchodilation; HL7 v2.5.1 ch. 7, OBX-3, OBX-5, OBX-11, table 0085
+    # observation result status (F final, C correction)
     for folder in (site.root / "drop", site.root / "stand-in" / "messages"):
-        assert [("1.92", "F"), ("1.95", "C")] == [_pre_fev1(m) for m in site.messages(folder)]
+        assert [("1.92", "F"), ("1.95", "C")] == [_obx(m, "20157-4") for m in site.messages(folder)]
     # source: FHIR R4 ObservationStatus value set ("corrected"); http.html#cond-update: the one match updated
     assert [("corrected", 2, 1.95)] == [(r.body["status"], r.version, r.body["valueQuantity"]["value"]) for r in fev1]
+
+
+def test_a_corrected_lung_volume_is_delivered_as_a_correction(site: Site):
+    """Sample 11, then its VC changed from 3.40 to 3.5 L under the same test id (VC enters no ratio or sum of the
+    other volumes, so nothing else changes): the second message's VC is 3.5 with OBX-11 C, in the file and over
+    MLLP; the stand-in's VC is updated (version 2) and corrected."""
+    site.send(WHOLE.read_bytes(), "first.json")
+    document = json.loads(WHOLE.read_bytes())
+    document["lung_volumes"]["vc"]["value"] = 3.5
+    site.send(json.dumps(document).encode(), "second.json")
+    # source: LOINC 19867-1 Vital capacity [Volume] Respiratory system
+    vc = [r for r in site.store.all() if r.type == "Observation" and r.body["code"]["coding"][0]["code"] == "19867-1"]
+
+    # source: HL7 v2.5.1 ch. 7, table 0085 observation result status (F final, C correction); OBX-3, OBX-5, OBX-11
+    for folder in (site.root / "drop", site.root / "stand-in" / "messages"):
+        # the value's text as the record wrote it: the sample's 3.40, then json.dumps's 3.5
+        assert [("3.40", "F"), ("3.5", "C")] == [_obx(m, "19867-1") for m in site.messages(folder)]
+    # source: FHIR R4 ObservationStatus value set ("corrected"); http.html#cond-update: the one match updated
+    assert [("corrected", 2, 3.5)] == [(r.body["status"], r.version, r.body["valueQuantity"]["value"]) for r in vc]
