@@ -650,7 +650,7 @@ def _print_kinds(kinds: dict[str, dict[str, Any]]) -> None:
     names = list(kinds)
     print()
     print("three kinds of session, same run (floor with as many Observations as each real output):")
-    print(f"  {'':38}" + "".join(f"{name:>20}" for name in names))
+    print(f"  {'':42}" + "".join(f"{name:>20}" for name in names))
     rows = (
         ("Observations/OBX per session", lambda k: k["observations_per_session"]),
         (
@@ -664,12 +664,12 @@ def _print_kinds(kinds: dict[str, dict[str, Any]]) -> None:
         ("ratio real/floor", lambda k: f"{k['ratio_real_to_floor']}x"),
     )
     for label, value in rows:
-        print(f"  {label:38}" + "".join(f"{value(kinds[name])!s:>20}" for name in names))
+        print(f"  {label:42}" + "".join(f"{value(kinds[name])!s:>20}" for name in names))
     print("  per stage, µs per session:")
     for stage in STAGES:
-        print(f"    {stage:36}" + "".join(f"{kinds[name]['stages_us_per_session'][stage]:>20}" for name in names))
+        print(f"    {stage:40}" + "".join(f"{kinds[name]['stages_us_per_session'][stage]:>20}" for name in names))
     totals = [round(sum(kinds[name]["stages_us_per_session"].values()), 1) for name in names]
-    print(f"    {'total':36}" + "".join(f"{t:>20}" for t in totals))
+    print(f"    {'total':40}" + "".join(f"{t:>20}" for t in totals))
 
 
 if __name__ == "__main__":
