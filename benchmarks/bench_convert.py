@@ -1,11 +1,15 @@
 """Convert generated sessions to both outputs and compare the speed with a floor.
 
-Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--spirometry] [--json]``.
+Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--spirometry | --whole-report] [--json]``.
 
 With ``--spirometry`` every generated session also carries a spirometry section (pre and post a
 bronchodilator, with manoeuvres, after ``samples/10-spirometry-and-dlco.json``), and the same
 run times the real pass twice, over the sessions without and with it: the convert speed per
 session of a DLCO-only and of a spirometry + DLCO session, on the same sessions otherwise.
+With ``--whole-report`` the run times three kinds side by side, each against its own floor and
+with its own per-stage split: DLCO only, spirometry + DLCO (as ``--spirometry``) and the whole
+report (the spirometry and lung volumes of ``samples/11-whole-report.json``, scaled by one factor
+per session); the main figures are then the whole report's.
 
 What it measures, all on one core in one process, with the same generated inputs:
 
