@@ -1,9 +1,11 @@
 """Audit generated sessions and compare the speed with reading the same files and doing nothing.
 
-Run: ``python benchmarks/bench_audit.py [--sessions 20000] [--workers 1,2] [--emit-ndjson]``.
+Run: ``python benchmarks/bench_audit.py [--sessions 20000] [--workers 1,2] [--emit-ndjson] [--whole-report]``.
 
 Generated sessions (``bench_convert.generate``: invented, varied from the bundled samples) are
-written as files, 1,000 to a folder. Each measurement runs in a fresh child process:
+written as files, 1,000 to a folder; with ``--whole-report`` each also carries the spirometry and
+lung volumes of ``samples/11-whole-report.json``, scaled by one factor per session
+(``bench_convert.with_whole_report``). Each measurement runs in a fresh child process:
 
 * **floor**: walk the archive with the audit's own walker and read every file, nothing else
   (one process, one core);
@@ -35,13 +37,14 @@ TARGET_PEAK_MB = 500
 BATCH = 1000
 
 
-def write_archive(root: Path, sessions: int) -> None:
-    from bench_convert import generate  # invented sessions, as the convert benchmark makes them
+def write_archive(root: Path, sessions: int, whole_report: bool = False) -> None:
+    from bench_convert import generate, with_whole_report  # invented sessions, as the convert benchmark makes them
 
     for start in range(0, sessions, BATCH):
         folder = root / f"batch-{start // BATCH:04d}"
         folder.mkdir()
-        for i, data in enumerate(generate(min(BATCH, sessions - start), seed=start + 1)):
+        batch = generate(min(BATCH, sessions - start), seed=start + 1)
+        for i, data in enumerate(with_whole_report(batch, seed=start + 1) if whole_report else batch):
             (folder / f"{start + i:07d}.json").write_bytes(data)
 
 
@@ -116,6 +119,11 @@ def main() -> None:
     parser.add_argument("--sessions", type=int, default=20000)
     parser.add_argument("--workers", default="1,2", help="worker counts to measure, comma-separated")
     parser.add_argument("--emit-ndjson", action="store_true", help="also write the clean sessions as NDJSON")
+    parser.add_argument(
+        "--whole-report",
+        action="store_true",
+        help="give every session the spirometry and lung volumes of samples/11 (scaled), as bench_convert does",
+    )
     parser.add_argument("--child", nargs=3, metavar=("KIND", "ROOT", "WORKERS"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child:
@@ -125,8 +133,9 @@ def main() -> None:
     counts = [int(n) for n in args.workers.split(",")]
     with tempfile.TemporaryDirectory() as folder:
         root = Path(folder)
-        print(f"writing {args.sessions:,} generated sessions ...", flush=True)
-        write_archive(root, args.sessions)
+        kind = "whole-report" if args.whole_report else "DLCO-only"
+        print(f"writing {args.sessions:,} generated {kind} sessions ...", flush=True)
+        write_archive(root, args.sessions, args.whole_report)
         floor = measure("floor", root, 1, False)
         floor_rate = floor["files"] / floor["seconds"]
         print(f"floor (walk + read, 1 process): {floor_rate:,.0f} files/s, peak {floor['peak_mb']:.0f} MB")

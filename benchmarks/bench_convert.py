@@ -1,11 +1,15 @@
 """Convert generated sessions to both outputs and compare the speed with a floor.
 
-Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--spirometry] [--json]``.
+Run: ``python benchmarks/bench_convert.py [--sessions 10000] [--repeat 3] [--spirometry | --whole-report] [--json]``.
 
 With ``--spirometry`` every generated session also carries a spirometry section (pre and post a
 bronchodilator, with manoeuvres, after ``samples/10-spirometry-and-dlco.json``), and the same
 run times the real pass twice, over the sessions without and with it: the convert speed per
 session of a DLCO-only and of a spirometry + DLCO session, on the same sessions otherwise.
+With ``--whole-report`` the run times three kinds side by side, each against its own floor and
+with its own per-stage split: DLCO only, spirometry + DLCO (as ``--spirometry``) and the whole
+report (the spirometry and lung volumes of ``samples/11-whole-report.json``, scaled by one factor
+per session); the main figures are then the whole report's.
 
 What it measures, all on one core in one process, with the same generated inputs:
 
@@ -119,25 +123,44 @@ def generate(count: int, seed: int = SEED) -> list[bytes]:
 
 
 SPIROMETRY_SAMPLE = "10-spirometry-and-dlco.json"
+WHOLE_REPORT_SAMPLE = "11-whole-report.json"
+SCALED = ("fev1", "fvc", "fef25_75", "pef", "tlc", "frc", "rv", "vc", "ic", "erv")  # ratios (FEV1/FVC, RV/TLC) kept
 
 
 def with_spirometry(inputs: Sequence[bytes], seed: int = SEED) -> list[bytes]:
     """The same sessions, each given the spirometry of sample 10 with its volumes and flows scaled."""
+    return _with_sections(inputs, SPIROMETRY_SAMPLE, ("spirometry",), seed)
+
+
+def with_whole_report(inputs: Sequence[bytes], seed: int = SEED) -> list[bytes]:
+    """The same sessions, each given the spirometry and the lung volumes of sample 11, all scaled by one factor."""
+    return _with_sections(inputs, WHOLE_REPORT_SAMPLE, ("spirometry", "lung_volumes"), seed)
+
+
+def _with_sections(inputs: Sequence[bytes], sample: str, keys: Sequence[str], seed: int) -> list[bytes]:
     rng = random.Random(seed + 1)
-    spirometry = orjson.loads((samples_dir() / SPIROMETRY_SAMPLE).read_bytes())["spirometry"]
+    template = orjson.loads((samples_dir() / sample).read_bytes())
     out = []
     for data in inputs:
         doc = orjson.loads(data)
-        section = copy.deepcopy(spirometry)
-        factor = rng.uniform(0.7, 1.3)  # the same factor for FEV1 and FVC: FEV1/FVC stays consistent
-        for phase in (section["pre"], section["post"]):
-            for values in (phase["results"], *phase.get("manoeuvres", ())):
-                for key in ("fev1", "fvc", "fef25_75", "pef"):
-                    if key in values:
-                        values[key]["value"] = round(values[key]["value"] * factor, 2)
-        doc["spirometry"] = section
+        factor = rng.uniform(0.7, 1.3)  # one factor per session: FEV1/FVC and RV/TLC stay consistent
+        for key in keys:
+            section = copy.deepcopy(template[key])
+            for values in _value_groups(section):
+                for name in SCALED:
+                    if name in values:
+                        values[name]["value"] = round(values[name]["value"] * factor, 2)
+            doc[key] = section
         out.append(orjson.dumps(doc))
     return out
+
+
+def _value_groups(section: dict[str, Any]) -> list[dict[str, Any]]:
+    """The dicts of values in a spirometry section (each phase's results and manoeuvres) or lung volumes."""
+    if "pre" not in section:
+        return [section]
+    phases = [section[p] for p in ("pre", "post") if p in section]
+    return [values for phase in phases for values in (phase["results"], *phase.get("manoeuvres", ()))]
 
 
 def _variant(rng: random.Random, i: int, templates: list[dict[str, Any]], three: dict[str, Any]) -> Any:
@@ -441,6 +464,49 @@ def machine() -> dict[str, Any]:
     }
 
 
+def measure_kind(inputs: Sequence[bytes], tables: Tables, repeat: int, subset: int) -> dict[str, Any]:
+    """Real pass, floor (as many Observations as the real output) and per-stage split for these sessions."""
+    # untimed warm-up of the real path: also counts the Observations per session for the floor
+    counts: list[int] = []
+    real_bytes = 0
+    for i, data in enumerate(inputs):
+        fhir, hl7 = convert(data, f"gen-{i}.json", tables)
+        counts.append(hl7.data.count(b"\rOBX|"))
+        real_bytes += len(fhir.data) + len(hl7.data)
+    floor_bytes = sum(len(f) + len(h) for f, h in map(floor_convert, inputs, counts))
+    floor_best, floor_all = best_of(repeat, floor_pass(inputs, counts))
+    real_best, real_all = best_of(repeat, real_pass(inputs, tables))
+    stages = stage_breakdown(inputs[: min(subset, len(inputs))], tables)
+    return {
+        "n": len(inputs),
+        "counts": counts,
+        "real_bytes": real_bytes,
+        "floor_bytes": floor_bytes,
+        "floor_best": floor_best,
+        "floor_all": floor_all,
+        "real_best": real_best,
+        "real_all": real_all,
+        "stages": stages,
+    }
+
+
+def _kind_summary(kind: dict[str, Any]) -> dict[str, Any]:
+    n = kind["n"]
+    return {
+        "real_sessions_per_s": round(n / kind["real_best"]),
+        "floor_sessions_per_s": round(n / kind["floor_best"]),
+        "ratio_real_to_floor": round(kind["real_best"] / kind["floor_best"], 1),
+        "real_us_per_session": round(kind["real_best"] / n * 1e6, 1),
+        "floor_us_per_session": round(kind["floor_best"] / n * 1e6, 1),
+        "observations_per_session": round(statistics.mean(kind["counts"]), 1),
+        "output_kb_per_session": {
+            "real": round(kind["real_bytes"] / n / 1024, 1),
+            "floor": round(kind["floor_bytes"] / n / 1024, 1),
+        },
+        "stages_us_per_session": {k: round(v, 1) for k, v in kind["stages"].items()},
+    }
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--sessions", type=int, default=10_000)
@@ -453,7 +519,15 @@ def main(argv: Sequence[str] | None = None) -> int:
         action="store_true",
         help="give each session a spirometry section (pre and post) and also time the DLCO-only sessions",
     )
+    parser.add_argument(
+        "--whole-report",
+        action="store_true",
+        help="time three kinds side by side: DLCO only, spirometry + DLCO (sample 10) and the whole report"
+        " (sample 11: spirometry, lung volumes and DLCO); the main figures are the whole report's",
+    )
     args = parser.parse_args(argv)
+    if args.spirometry and args.whole_report:
+        parser.error("--whole-report already times the spirometry + DLCO sessions; give one of the two")
     say = (lambda *a: None) if args.json else print
 
     tables = load_tables()
@@ -461,25 +535,25 @@ def main(argv: Sequence[str] | None = None) -> int:
     say(f"generating {args.sessions} sessions (seed {SEED}) ...")
     dlco_only = generate(args.sessions)
     inputs = with_spirometry(dlco_only) if args.spirometry else dlco_only
-
-    # untimed warm-up of the real path: also counts the Observations per session for the floor
-    counts: list[int] = []
-    real_bytes = 0
-    for i, data in enumerate(inputs):
-        fhir, hl7 = convert(data, f"gen-{i}.json", tables)
-        counts.append(hl7.data.count(b"\rOBX|"))
-        real_bytes += len(fhir.data) + len(hl7.data)
-    floor_bytes = sum(len(f) + len(h) for f, h in map(floor_convert, inputs, counts))
-
+    kinds: dict[str, dict[str, Any]] = {}
+    if args.whole_report:
+        say(f"timing three kinds of session, best of {args.repeat} each ...")
+        kinds["DLCO only"] = measure_kind(dlco_only, tables, args.repeat, args.subset)
+        kinds["spirometry + DLCO"] = measure_kind(with_spirometry(dlco_only), tables, args.repeat, args.subset)
+        inputs = with_whole_report(dlco_only)
     say(f"timing, best of {args.repeat} (gc enabled, collected before each pass) ...")
-    floor_best, floor_all = best_of(args.repeat, floor_pass(inputs, counts))
-    real_best, real_all = best_of(args.repeat, real_pass(inputs, tables))
+    main_kind = measure_kind(inputs, tables, args.repeat, args.subset)
+    if args.whole_report:
+        kinds["whole report"] = main_kind
+    counts, stages = main_kind["counts"], main_kind["stages"]
+    real_bytes, floor_bytes = main_kind["real_bytes"], main_kind["floor_bytes"]
+    floor_best, floor_all = main_kind["floor_best"], main_kind["floor_all"]
+    real_best, real_all = main_kind["real_best"], main_kind["real_all"]
     dlco_only_best = best_of(args.repeat, real_pass(dlco_only, tables))[0] if args.spirometry else None
     n = len(inputs)
     real_rate, floor_rate = n / real_best, n / floor_best
     ratio = real_best / floor_best
     subset = inputs[: min(args.subset, n)]
-    stages = stage_breakdown(subset, tables)
     oru_s = oru_per_message(tables)
     missing = missing_validator() if args.validators else None
     validators = validator_costs(inputs[: args.validators], tables) if args.validators and not missing else {}
@@ -512,6 +586,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         result["spirometry"] = True
         result["real_us_per_session_dlco_only"] = round(dlco_only_best / n * 1e6, 1)
         result["real_us_per_session_spirometry_and_dlco"] = result["real_us_per_session"]
+    if kinds:
+        result["kinds"] = {name: _kind_summary(kind) for name, kind in kinds.items()}
     if validators:
         build_us = stages["FHIR (to_bundle + compact JSON)"], stages["HL7 (to_oru+control_id)"]
         result["validators_ms_per_session"] = {k: round(v, 2) for k, v in validators.items()}
@@ -560,6 +636,8 @@ def _print_report(result: dict[str, Any], stages: dict[str, float], validators: 
         f"to_oru on {TEMPLATES[0]}: {result['oru_us_per_message_sample01']} µs per message "
         f"({budget} the {ORU_BUDGET_S * 1e3:g} ms budget)"
     )
+    if "kinds" in result:
+        _print_kinds(result["kinds"])
     if "validators_skipped" in result:
         print()
         print(f"validators skipped: {result['validators_skipped']} (pip install -e '.[test]' to measure them)")
@@ -570,6 +648,32 @@ def _print_report(result: dict[str, Any], stages: dict[str, float], validators: 
         print(f"validators, {result['validator_sessions']} sessions (why they run in tests only):")
         print(f"  fhir.resources R4B Bundle.model_validate: {fhir_ms:7.2f} ms, {ratios['fhir']}x FHIR build")
         print(f"  hl7apy parse_message STRICT:              {hl7_ms:7.2f} ms, {ratios['hl7']}x HL7 build")
+
+
+def _print_kinds(kinds: dict[str, dict[str, Any]]) -> None:
+    names = list(kinds)
+    print()
+    print("three kinds of session, same run (floor with as many Observations as each real output):")
+    print(f"  {'':42}" + "".join(f"{name:>20}" for name in names))
+    rows = (
+        ("Observations/OBX per session", lambda k: k["observations_per_session"]),
+        (
+            "output per session, kB (real/floor)",
+            lambda k: f"{k['output_kb_per_session']['real']}/{k['output_kb_per_session']['floor']}",
+        ),
+        ("real, sessions/s", lambda k: k["real_sessions_per_s"]),
+        ("real, µs per session", lambda k: k["real_us_per_session"]),
+        ("floor, sessions/s", lambda k: k["floor_sessions_per_s"]),
+        ("floor, µs per session", lambda k: k["floor_us_per_session"]),
+        ("ratio real/floor", lambda k: f"{k['ratio_real_to_floor']}x"),
+    )
+    for label, value in rows:
+        print(f"  {label:42}" + "".join(f"{value(kinds[name])!s:>20}" for name in names))
+    print("  per stage, µs per session:")
+    for stage in STAGES:
+        print(f"    {stage:40}" + "".join(f"{kinds[name]['stages_us_per_session'][stage]:>20}" for name in names))
+    totals = [round(sum(kinds[name]["stages_us_per_session"].values()), 1) for name in names]
+    print(f"    {'total':40}" + "".join(f"{t:>20}" for t in totals))
 
 
 if __name__ == "__main__":
