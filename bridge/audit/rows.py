@@ -71,9 +71,13 @@ SERIES = (
     Series("fvc_post", "FVC (post-bronchodilator)", "L", ("spirometry", "post", "results", "fvc"),
            LITRES_PER_MILLILITRE, ".4g"),
 )  # fmt: skip
-# dlco-result/1 names the reference set of the lab's own predicted values for DLCO only: spirometry's
-# reference values are the site's (spirometry_reference), one set for the whole run.
-LAB_SETS = (LabSet("reference sets", ("results", "predicted", "reference_set")),)
+# The reference set the lab's own report names, per section (dlco-result/1, docs/format.md); the
+# bridge's own reference values are the site's, one set for the whole run, and are not watched.
+LAB_SETS = (
+    LabSet("DLCO reference sets", ("results", "predicted", "reference_set")),  # of its predicted values
+    LabSet("spirometry reference sets", ("spirometry", "reference_set")),
+    LabSet("lung-volume reference sets", ("lung_volumes", "reference_set")),
+)
 PRE_POST = (
     PrePost("FEV1", ("spirometry", "pre", "results", "fev1"), ("spirometry", "post", "results", "fev1")),
     PrePost("FVC", ("spirometry", "pre", "results", "fvc"), ("spirometry", "post", "results", "fvc")),
