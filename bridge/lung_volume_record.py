@@ -32,6 +32,9 @@ class LungVolumes(Frozen):
     """Static lung volumes of the session, as the lab reports them (each optional), and the method."""
 
     method: LungVolumeMethod | None = None  # None: the lab did not say
+    # The reference set the lab's own report used for lung volumes ("ECSC 1993"), as the lab names it:
+    # carried and shown, never charted (the bridge's reference values are GLI-2021's).
+    reference_set: Text | None = None
     tlc: Volume | None = None
     frc: Volume | None = None
     rv: Volume | None = None

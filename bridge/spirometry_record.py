@@ -79,6 +79,9 @@ class Bronchodilator(Frozen):
 class Spirometry(Frozen):
     """Spirometry of the session: before (``pre``) and after (``post``) a bronchodilator, and the drug given."""
 
+    # The reference set the lab's own report used for spirometry ("GLI-2012"), as the lab names it:
+    # carried and shown, never charted (the bridge's reference values are the site's setting).
+    reference_set: Text | None = None
     pre: SpirometryPhase | None = None
     post: SpirometryPhase | None = None
     bronchodilator: Bronchodilator | None = None

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 from datetime import date
 from pathlib import Path
 
@@ -27,3 +28,17 @@ def test_check_shows_the_lung_volumes(capsys):
     assert "RV/TLC recomputed               55.3 %" in out
     assert "IC = TLC - FRC                  2.10 L" in out
     assert "ERV = FRC - RV                  1.30 L" in out
+
+
+def test_check_names_the_labs_own_lung_volume_set_beside_the_bridges(tmp_path, capsys):
+    """lung_volumes.reference_set (docs/format.md) is shown beside GLI-2021, whose values stay charted."""
+    doc = json.loads(SAMPLE.read_text())
+    doc["lung_volumes"]["reference_set"] = "ECSC 1993"
+    path = tmp_path / "named.json"
+    path.write_text(json.dumps(doc))
+
+    assert 0 == main(["check", str(path)])
+    out = capsys.readouterr().out
+
+    assert "lung volumes (body plethysmography; reference values GLI-2021 (Hall 2021)" in out
+    assert "computed by dlco-bridge; the lab's report used ECSC 1993)" in out

@@ -66,3 +66,19 @@ def test_check_json_carries_the_z_scores_pyspiro_gives(tmp_path, capsys):
     age = (date(2026, 3, 2) - date(1981, 1, 15)).days / 365.25
     theirs = float(GLI_2012().zscore(1, age, 178.0, 1, GLI_2012.Parameters["FEV1"].value, 2.5))
     assert abs(theirs - ours) < 0.006
+
+
+def test_check_names_the_labs_own_spirometry_set_beside_the_bridges(tmp_path, capsys):
+    """spirometry.reference_set (docs/format.md) is shown beside the site's set, never instead of it."""
+    doc = json.loads((ROOT / "samples" / "10-spirometry-and-dlco.json").read_text())
+    doc["spirometry"]["reference_set"] = "GLI-2012"
+    path = tmp_path / "named.json"
+    path.write_text(json.dumps(doc))
+
+    assert 0 == main(["check", str(ROOT / "samples" / "10-spirometry-and-dlco.json")])
+    plain = next(line for line in capsys.readouterr().out.splitlines() if line.startswith("  spirometry ("))
+    assert 0 == main(["check", str(path)])
+    named = next(line for line in capsys.readouterr().out.splitlines() if line.startswith("  spirometry ("))
+
+    assert "the lab's report used" not in plain
+    assert plain.removesuffix(")") + "; the lab's report used GLI-2012)" == named

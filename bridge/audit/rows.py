@@ -57,9 +57,7 @@ class PrePost:
 
 
 # What each check across records watches: adding a quantity to a check is one entry of its table
-# (and nothing else: the row, the index and the checks are written from these tables). The lung
-# volumes go here when the record carries them: TLC, FRC, RV and VC (litres) as entries of SERIES
-# with the factor LITRES_PER_MILLILITRE; a reference-set name the lab writes for them, in LAB_SETS.
+# (and nothing else: the row, the index and the checks are written from these tables).
 SERIES = (
     Series("dlco", "DLCO", "mL/min/mmHg", ("results", "dlco"), None, ".1f"),
     Series("fev1_pre", "FEV1 (pre-bronchodilator)", "L", ("spirometry", "pre", "results", "fev1"),
@@ -75,9 +73,13 @@ SERIES = (
     Series("rv", "RV", "L", ("lung_volumes", "rv"), LITRES_PER_MILLILITRE, ".4g"),
     Series("vc", "VC", "L", ("lung_volumes", "vc"), LITRES_PER_MILLILITRE, ".4g"),
 )  # fmt: skip
-# dlco-result/1 names the reference set of the lab's own predicted values for DLCO only: spirometry's
-# reference values are the site's (spirometry_reference), one set for the whole run.
-LAB_SETS = (LabSet("reference sets", ("results", "predicted", "reference_set")),)
+# The reference set the lab's own report names, per section (dlco-result/1, docs/format.md); the
+# bridge's own reference values are the site's, one set for the whole run, and are not watched.
+LAB_SETS = (
+    LabSet("DLCO reference sets", ("results", "predicted", "reference_set")),  # of its predicted values
+    LabSet("spirometry reference sets", ("spirometry", "reference_set")),
+    LabSet("lung-volume reference sets", ("lung_volumes", "reference_set")),
+)
 PRE_POST = (
     PrePost("FEV1", ("spirometry", "pre", "results", "fev1"), ("spirometry", "post", "results", "fev1")),
     PrePost("FVC", ("spirometry", "pre", "results", "fvc"), ("spirometry", "post", "results", "fvc")),

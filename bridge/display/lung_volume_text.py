@@ -1,9 +1,9 @@
 """The lung-volume part of the ``check`` report: each volume against GLI-2021, the method, what was recomputed (pure).
 
 Owns the lines ``bridge.display.check_report`` shows for a session's static lung volumes: the
-method, the values the lab reported (as sent, when the unit differs), each compared with GLI-2021
-(predicted, LLN, ULN, z-score and band, per cent predicted), and RV/TLC, IC and ERV recomputed from
-the volumes.
+method (and the lab's own reference set, when the record names one), the values the lab reported
+(as sent, when the unit differs), each compared with GLI-2021 (predicted, LLN, ULN, z-score and
+band, per cent predicted), and RV/TLC, IC and ERV recomputed from the volumes.
 """
 
 from __future__ import annotations
@@ -37,7 +37,8 @@ def lung_volume_lines(outcome: Outcome, text: Callable[[Quantity], str], brief: 
     if volumes is None or derived is None:
         return []
     method = _METHODS[volumes.method] if volumes.method is not None else "method not given"
-    lines = [f"  lung volumes ({method}; reference values {derived.reference_set}, computed by dlco-bridge)"]
+    lab = f"; the lab's report used {volumes.reference_set}" if volumes.reference_set is not None else ""
+    lines = [f"  lung volumes ({method}; reference values {derived.reference_set}, computed by dlco-bridge{lab})"]
     for key in LUNG_VOLUME_KEYS:
         value: Quantity | None = getattr(volumes, key)
         if value is None:

@@ -2,9 +2,9 @@
 
 Owns the lines ``bridge.display.check_report`` shows for a session's spirometry: the values the lab
 reported before and after the bronchodilator (as sent, when the unit differs), each compared with
-the site's spirometry set (predicted, LLN, ULN, z-score and band, per cent predicted), FEV1/FVC
-recomputed, the ATS/ERS 2019 grade and repeatability of FEV1 and FVC, and the ERS/ATS 2022
-bronchodilator response.
+the site's spirometry set (the lab's own set named beside it, when the record names one; predicted,
+LLN, ULN, z-score and band, per cent predicted), FEV1/FVC recomputed, the ATS/ERS 2019 grade and
+repeatability of FEV1 and FVC, and the ERS/ATS 2022 bronchodilator response.
 """
 
 from __future__ import annotations
@@ -32,7 +32,8 @@ def spirometry_lines(outcome: Outcome, text: Callable[[Quantity], str], brief: C
     spiro, derived = outcome.session.spirometry, outcome.derived.spirometry
     if spiro is None or derived is None:
         return []
-    lines = [f"  spirometry (reference values {derived.reference_set}, computed by dlco-bridge)"]
+    lab = f"; the lab's report used {spiro.reference_set}" if spiro.reference_set is not None else ""
+    lines = [f"  spirometry (reference values {derived.reference_set}, computed by dlco-bridge{lab})"]
     for name, title in _PHASES:
         phase: SpirometryPhase | None = getattr(spiro, name)
         done: PhaseDerived | None = getattr(derived, name)

@@ -10,8 +10,8 @@ five invented patients of one invented lab, two sessions each a year apart, ever
   3.24 ``L`` in the second is no jump (the same volume), so nothing is planted there: a control;
 - patient 3, second session: the pre-bronchodilator phase left out (a post value without its pre).
 
-(Reference sets mixed within a lab are not planted for spirometry: ``dlco-result/1`` carries no
-reference set of the lab's for spirometry, whose reference values are the site's one ``spirometry_reference``.)
+(Reference sets mixed within a lab, ``spirometry.reference_set``, are planted in
+``tests/audit/test_planted_reference_sets.py``.)
 """
 
 from __future__ import annotations

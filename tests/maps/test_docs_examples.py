@@ -96,8 +96,9 @@ def _checked(example: Example, tmp_path: Path, capsys: pytest.CaptureFixture[str
 
 
 def test_the_page_has_the_examples_it_describes():
-    """The page shows a CSV map, an HL7 map, a map with fields from several columns and its date-only variant."""
-    assert 4 == len(EXAMPLES)
+    """The page shows a CSV map, an HL7 map, a map with fields from several columns and its date-only variant,
+    and a map of lung volumes and the lab's reference sets."""
+    assert 5 == len(EXAMPLES)
     used = {id(e.sample) for e in EXAMPLES if isinstance(e.sample, str)}
     samples = [body for _, lang, body in _blocks() if lang in ("csv", "hl7")]
     assert len(samples) == len(used)  # every sample on the page is read by a map
@@ -194,3 +195,18 @@ def test_the_error_lines_the_page_quotes_are_the_bridges(tmp_path, capsys):
         said.append(capsys.readouterr().err.strip().replace(str(sample), "x.csv").replace(str(map_file), "m.toml"))
     offset = example.sample.encode("latin-1").index(b"\xe9")  # source: ISO/IEC 8859-1 code table (é is 0xE9)
     assert (quoted, f"byte {offset}:") == (said, said[1].split(" ", 1)[1][: len(f"byte {offset}:")])
+
+
+def test_the_lung_volume_example_reads_the_volumes_and_the_labs_sets(tmp_path, capsys):
+    """The page's lung-volume map: TM-1 names both sets and its volumes; TM-2 names none and gives TLC alone."""
+    (example,) = [e for e in EXAMPLES if "lung_volumes.reference_set" in e.map_text]
+    code, doc = _checked(example, tmp_path, capsys)
+    first, second = _fields(doc, 0), _fields(doc, 1)
+    keys = ("spirometry.reference_set", "lung_volumes.reference_set", "lung_volumes.method", "lung_volumes.tlc",
+            "lung_volumes.frc", "lung_volumes.rv", "lung_volumes.rv_tlc")  # fmt: skip
+    # by hand from the page's CSV: 7600 mL = 7.600 L (the digits written kept), 0,55 as a fraction = 55 %
+    assert (0, ["GLI-2012", "ECSC 1993", "plethysmography", "7.600 L", "5.500 L", "4.200 L", "55 %"]) == (
+        code,
+        [first[k] for k in keys],
+    )
+    assert ["(empty)", "(empty)", "(empty)", "6.900 L", "(empty)", "(empty)", "(empty)"] == [second[k] for k in keys]
