@@ -238,10 +238,10 @@ def test_schema_documents_with_catalogue_units_are_refused_or_emitted_valid(case
 
 @pytest.mark.parametrize(
     "strategy, least_emitted, examples",
-    # Structural mutations reach the emitters rarely (about 4 %): 300 examples measure that share
-    # steadily; at 100 a change of the format's keys alone moved it across 3 %.
+    # Structural mutations reach the emitters rarely (about 3 %, since a number given as a date is
+    # refused): 600 examples measure that share steadily; at 300 it sat on 3 % and one example moved it.
     [
-        (structural_mutations(), 0.03, 300),
+        (structural_mutations(), 0.025, 600),
         (targeted_mutations(), 0.2, 100),
         (schema_documents(catalogue=True), 0.2, 100),
     ],
