@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import difflib
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Any
@@ -10,6 +11,7 @@ from pydantic import ValidationError
 
 from bridge.errors import InputError, InvalidField, MissingField, UnreadableInput
 from bridge.model import Session
+from bridge.tables.canonical_fields import canonical_fields
 
 
 @dataclass(frozen=True, slots=True)
@@ -98,7 +100,22 @@ def _expectation(error: Any) -> str:
     if kind == "value_error":  # our own validators (bridge.model) say what they expected
         return f"{error['msg'].removeprefix('Value error, ')}, got {got}"
     base = _EXPECTATIONS.get(kind, error["msg"])
-    return base if kind in ("missing", "extra_forbidden") else f"{base}, got {got}"
+    if kind == "extra_forbidden":
+        return _closest_field(tuple(error["loc"])) or base
+    return base if kind == "missing" else f"{base}, got {got}"
+
+
+def _closest_field(loc: tuple[int | str, ...]) -> str | None:
+    """``no such field; did you mean ...?`` when a field of the same object is spelt alike."""
+    *parent, name = [part for part in loc if isinstance(part, str)]
+    prefix = ".".join(parent)
+    siblings = {
+        path[len(prefix) + 1 :].split(".")[0] if prefix else path.split(".")[0]
+        for path in canonical_fields()
+        if not prefix or path.startswith(prefix + ".")
+    }
+    close = difflib.get_close_matches(name, sorted(siblings), n=1)
+    return f"no such field; did you mean {close[0]!r}? (docs/format.md)" if close else None
 
 
 def shown(value: Any) -> str:

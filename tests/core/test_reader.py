@@ -89,6 +89,17 @@ CASES = {
         "results.dlco_pred",
         "no such field",
     ),
+    # common practice: a misspelt key is named with the field of the same object it most resembles
+    "misspelt section": (
+        _mutated(lambda d: d.update(lung_volume={})),
+        "lung_volume",
+        "no such field; did you mean 'lung_volumes'?",
+    ),
+    "misspelt field of a section": (
+        _mutated(lambda d: d["patient"].update(birth_dat="1980-01-01")),
+        "patient.birth_dat",
+        "no such field; did you mean 'birth_date'?",
+    ),
     # common practice: no lung or lab gives a DLCO above 1000 mL/min/mmHg (adults are 10-50); such
     # a number is corrupt and must be refused before any arithmetic overflows on it
     # The limit is said in the unit the file used: 1000 mL/min/mmHg / 2.987 = 334.8 mmol/min/kPa
