@@ -10,12 +10,11 @@ stdlib, pydantic and ``bridge.values``.
 
 from __future__ import annotations
 
+from dataclasses import field
 from typing import Annotated, Literal
 
-from pydantic import Field
-
 from bridge.spirometry_record import SpirometryReference
-from bridge.values import Frozen, Measure, Quantity, Text
+from bridge.values import Measure, Quantity, Text, record
 
 Volume = Annotated[Quantity, Measure("volume", "L")]
 Percentage = Annotated[Quantity, Measure("fraction", "%")]
@@ -28,7 +27,8 @@ LUNG_VOLUME_METHODS: tuple[LungVolumeMethod, ...] = ("plethysmography", "nitroge
 LUNG_VOLUME_KEYS = ("tlc", "frc", "rv", "vc", "rv_tlc", "ic", "erv")
 
 
-class LungVolumes(Frozen):
+@record
+class LungVolumes:
     """Static lung volumes of the session, as the lab reports them (each optional), and the method."""
 
     method: LungVolumeMethod | None = None  # None: the lab did not say
@@ -44,7 +44,8 @@ class LungVolumes(Frozen):
     erv: Volume | None = None
 
 
-class LungVolumesDerived(Frozen):
+@record
+class LungVolumesDerived:
     """Lung volumes recomputed: the ratios and differences of the reported volumes, and the reference values."""
 
     reference_set: Text  # GLI-2021, by title
@@ -52,5 +53,5 @@ class LungVolumesDerived(Frozen):
     ic: Quantity | None = None  # TLC - FRC, L
     erv: Quantity | None = None  # FRC - RV, L
     # By key (LUNG_VOLUME_KEYS): the measured value against GLI-2021 (RV/TLC in per cent).
-    references: dict[str, SpirometryReference] = Field(default_factory=dict)
+    references: dict[str, SpirometryReference] = field(default_factory=dict)
     reference_not_computed: str | None = None  # why some or all reference values are missing

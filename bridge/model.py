@@ -1,9 +1,11 @@
 """The canonical record: one single-breath DLCO test session of one patient.
 
 Owns the shape of the data every reader produces and every emitter consumes. Every quantity
-is a :class:`Quantity` (value + unit, with the value and unit it arrived with). Models are
-frozen; steps return new values with ``model_copy(update=...)``. Imports only the stdlib and
-pydantic: no I/O, no clock.
+is a :class:`Quantity` (value + unit, with the value and unit it arrived with). Every part is
+plain immutable data (:func:`bridge.values.record`: a frozen dataclass with slots), validated once
+where it comes in (:func:`bridge.values.read_as`, also the JSON Schema's source) and never again;
+steps return new values with ``dataclasses.replace``. Imports only the stdlib and pydantic: no
+I/O, no clock.
 
 Each quantity field declares its *dimension* and *canonical unit* with a :class:`Measure`
 annotation; ``bridge.science.normalise`` reads these to convert every quantity to the canonical unit.
@@ -12,6 +14,7 @@ annotation; ``bridge.science.normalise`` reads these to convert every quantity t
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import field
 from enum import StrEnum
 from typing import Annotated, Literal
 
@@ -25,7 +28,6 @@ from bridge.spirometry_record import SpirometryDerived as SpirometryDerived
 from bridge.values import DATE_PATTERN as DATE_PATTERN
 from bridge.values import DATE_TIME_PATTERN as DATE_TIME_PATTERN
 from bridge.values import Filled as Filled
-from bridge.values import Frozen as Frozen
 from bridge.values import IsoDate as IsoDate
 from bridge.values import IsoDateTime as IsoDateTime
 from bridge.values import Measure as Measure
@@ -35,6 +37,8 @@ from bridge.values import Text as Text
 from bridge.values import Uri as Uri
 from bridge.values import filled_fields as filled_fields
 from bridge.values import number_text as number_text
+from bridge.values import read_as as read_as
+from bridge.values import record as record
 
 # Annotated quantity kinds: the dimension and the unit the core keeps each one in.
 # The core computes in traditional units because the equations of the standards are written so.
@@ -60,12 +64,14 @@ class Sex(StrEnum):
     UNKNOWN = "unknown"
 
 
-class Lab(Frozen):
+@record
+class Lab:
     name: Text
     site: Text | None = None
 
 
-class Patient(Frozen):
+@record
+class Patient:
     id: Text
     id_system: Uri
     family: Text | None = None
@@ -86,7 +92,8 @@ class SampleGasHandling(StrEnum):
     HEATED_WET = "heated_wet"
 
 
-class Method(Frozen):
+@record
+class Method:
     """Device-neutral description of how the test was done."""
 
     analyser: Literal["classical", "rapid"] = "classical"
@@ -95,7 +102,8 @@ class Method(Frozen):
     inspired_volume_condition: Literal["ATPD", "BTPS"] = "ATPD"
 
 
-class Conditions(Frozen):
+@record
+class Conditions:
     barometric_pressure: Pressure | None = None
     altitude: Altitude | None = None
     hemoglobin: Haemoglobin | None = None
@@ -105,14 +113,16 @@ class Conditions(Frozen):
     alveolar_co2_fraction: GasFraction | None = None
 
 
-class ManoeuvreReport(Frozen):
+@record
+class ManoeuvreReport:
     """What the device itself computed for one manoeuvre."""
 
     dlco: DiffusingCapacity | None = None
     va: Volume | None = None
 
 
-class Manoeuvre(Frozen):
+@record
+class Manoeuvre:
     inspired_volume: Volume
     vital_capacity: Volume | None = None
     breath_hold_time: Duration
@@ -126,13 +136,15 @@ class Manoeuvre(Frozen):
     reported: ManoeuvreReport = ManoeuvreReport()
 
 
-class ReferenceLimits(Frozen):
+@record
+class ReferenceLimits:
     dlco: DiffusingCapacity | None = None
     kco: TransferCoefficient | None = None
     va: Volume | None = None
 
 
-class Predicted(Frozen):
+@record
+class Predicted:
     """Predicted values as the lab reported them, and the reference set they came from."""
 
     reference_set: Text | None = None
@@ -147,7 +159,8 @@ class Predicted(Frozen):
     lower_limits: ReferenceLimits | None = None
 
 
-class Results(Frozen):
+@record
+class Results:
     dlco: DiffusingCapacity | None = None
     va: Volume | None = None
     kco: TransferCoefficient | None = None
@@ -161,7 +174,8 @@ StatusPath = Annotated[str, Field(pattern=r"^[a-z_]+(\[\d+\])?(\.[a-z][a-z0-9_]*
 StatusCode = Annotated[str, Field(pattern=r"^[A-Z]$")]
 
 
-class Session(Frozen):
+@record
+class Session:
     """One DLCO test session: the hub every reader produces and every emitter consumes."""
 
     format: Literal["dlco-result/1"]
@@ -179,12 +193,14 @@ class Session(Frozen):
     # The lab's own status of single values: an HL7 v2.5.1 table 0085 code (as in OBX-11) by the
     # value's path (``results.dlco``, ``manoeuvres[0].reported.dlco``); a value without one is final.
     # mappings/result_status.toml says what each code does (bridge.science.lab_status).
-    lab_status: dict[StatusPath, StatusCode] = Field(
-        default_factory=dict,
-        description="The lab's status of single values, by path (results.dlco): a code of HL7 v2.5.1 table 0085 "
-        "(OBX-11); a value without one is final. docs/format.md says what each code does.",
-        json_schema_extra={"additionalProperties": False},
-    )
+    lab_status: Annotated[
+        dict[StatusPath, StatusCode],
+        Field(
+            description="The lab's status of single values, by path (results.dlco): a code of HL7 v2.5.1 table 0085 "
+            "(OBX-11); a value without one is final. docs/format.md says what each code does.",
+            json_schema_extra={"additionalProperties": False},
+        ),
+    ] = field(default_factory=dict)
 
 
 class Severity(StrEnum):
@@ -193,7 +209,8 @@ class Severity(StrEnum):
     ERROR = "error"
 
 
-class Finding(Frozen):
+@record
+class Finding:
     """A data-quality or consistency observation: collected, never raised.
 
     ``code`` is stable (documented in docs/findings.md), ``path`` points into the record,
@@ -208,7 +225,7 @@ class Finding(Frozen):
     path: str
     message: str
     template: str | None = None
-    values: dict[str, Quantity] = Field(default_factory=dict)
+    values: dict[str, Quantity] = field(default_factory=dict)
 
     def text(self, show: Callable[[Quantity], str] | None = None) -> str:
         """The message with each quantity written by ``show`` (value and unit); ``message`` without it."""
@@ -217,7 +234,8 @@ class Finding(Frozen):
         return self.template.format_map({name: show(q) for name, q in self.values.items()})
 
 
-class ManoeuvreAssessment(Frozen):
+@record
+class ManoeuvreAssessment:
     """What the bridge recomputed for one manoeuvre."""
 
     index: int
@@ -232,7 +250,8 @@ class ManoeuvreAssessment(Frozen):
 ComparedBasis = Literal["measured", "pressure_adjusted", "hb_adjusted", "hb_and_pressure_adjusted"]
 
 
-class ReferenceValue(Frozen):
+@record
+class ReferenceValue:
     """One result compared with a reference set: predicted, limits of normal, z-score, band (canonical units).
 
     ``compared`` is the value the z-score and per cent predicted rest on: the measured value, or
@@ -246,7 +265,7 @@ class ReferenceValue(Frozen):
     predicted: Quantity
     lln: Quantity
     uln: Quantity
-    z_score: float = Field(allow_inf_nan=False)
+    z_score: float
     percent_predicted: Quantity
     impairment: Literal["normal", "mild", "moderate", "severe"]
     flag: Literal["L", "N", "H"]
@@ -257,7 +276,8 @@ class ReferenceValue(Frozen):
         return "above the ULN" if self.flag == "H" else self.impairment
 
 
-class Derived(Frozen):
+@record
+class Derived:
     """Values the bridge recomputed from the record, in canonical units."""
 
     age_years: float
@@ -314,7 +334,8 @@ OutputKind = Literal["fhir", "hl7", "ndjson"]
 OUTPUT_KINDS: tuple[OutputKind, ...] = ("fhir", "hl7")
 
 
-class Carried(Frozen):
+@record
+class Carried:
     """One resource (FHIR) or OBX segment (HL7 v2) of a payload, as sent: what the ledger keeps of it.
 
     ``value`` is the value's text exactly as sent, ``status`` the status as sent (FHIR
@@ -333,7 +354,8 @@ class Carried(Frozen):
     digest: str
 
 
-class Payload(Frozen):
+@record
+class Payload:
     """One message built for one outcome: its kind, units, stable id and bytes.
 
     What it carries, resource by resource, is read from the bytes when the ledger records it
@@ -349,7 +371,8 @@ class Payload(Frozen):
     identifiers: tuple[str, ...] = ()
 
 
-class Outcome(Frozen):
+@record
+class Outcome:
     """The result of the pipeline for one input: the record, what was derived and found, the payloads."""
 
     source: str

@@ -17,7 +17,7 @@ from __future__ import annotations
 
 import hashlib
 from collections.abc import Callable, Iterator, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timedelta
 from typing import Annotated
 
@@ -219,7 +219,7 @@ def _with_unmapped(outcome: Outcome, unmapped: Sequence[str], map_name: str) -> 
         )
         for where in unmapped
     )
-    return outcome.model_copy(update={"findings": outcome.findings + found})
+    return replace(outcome, findings=outcome.findings + found)
 
 
 def _check_size(data: bytes, source: str, settings: PipelineSettings) -> None:
@@ -295,7 +295,7 @@ def _emit(
     built = [made[route] for route in asked]
     if settings.validate_outputs:
         _validate(built, outcome)
-    return outcome.model_copy(update={"payloads": tuple(built), "correction": correction})
+    return replace(outcome, payloads=tuple(built), correction=correction)
 
 
 def _validate(built: Sequence[Payload], outcome: Outcome) -> None:

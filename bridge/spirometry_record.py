@@ -11,12 +11,11 @@ only the stdlib, pydantic and ``bridge.values``.
 
 from __future__ import annotations
 
+from dataclasses import field
 from enum import StrEnum
 from typing import Annotated, Literal
 
-from pydantic import Field
-
-from bridge.values import Frozen, Measure, Quantity, Text
+from bridge.values import Measure, Quantity, Text, record
 
 Volume = Annotated[Quantity, Measure("volume", "L")]
 Percentage = Annotated[Quantity, Measure("fraction", "%")]
@@ -41,7 +40,8 @@ class Ethnicity(StrEnum):
 ManoeuvreStatus = Literal["acceptable", "usable", "not_usable"]
 
 
-class SpirometryValues(Frozen):
+@record
+class SpirometryValues:
     """The values of one set of forced expirations (before or after the bronchodilator), as the lab reports them."""
 
     fev1: Volume | None = None
@@ -51,7 +51,8 @@ class SpirometryValues(Frozen):
     pef: Flow | None = None
 
 
-class SpirometryManoeuvre(Frozen):
+@record
+class SpirometryManoeuvre:
     """One forced expiration: its values and the lab's acceptability of its FEV1 and FVC (graded separately)."""
 
     fev1: Volume | None = None
@@ -62,21 +63,24 @@ class SpirometryManoeuvre(Frozen):
     fvc_status: ManoeuvreStatus | None = None
 
 
-class SpirometryPhase(Frozen):
+@record
+class SpirometryPhase:
     """The reported values of one phase (before or after the bronchodilator) and its manoeuvres."""
 
     results: SpirometryValues = SpirometryValues()
     manoeuvres: tuple[SpirometryManoeuvre, ...] = ()
 
 
-class Bronchodilator(Frozen):
+@record
+class Bronchodilator:
     """The bronchodilator given between the two phases."""
 
     drug: Text
     dose: DrugDose | None = None
 
 
-class Spirometry(Frozen):
+@record
+class Spirometry:
     """Spirometry of the session: before (``pre``) and after (``post``) a bronchodilator, and the drug given."""
 
     # The reference set the lab's own report used for spirometry ("GLI-2012"), as the lab names it:
@@ -93,7 +97,8 @@ class Spirometry(Frozen):
 SPIROMETRY_KEYS = ("fev1", "fvc", "fev1_fvc", "fef25_75", "pef")
 
 
-class SpirometryReference(Frozen):
+@record
+class SpirometryReference:
     """One spirometry value against its reference equations (canonical units; FEV1/FVC in %)."""
 
     reference_set: Text
@@ -101,13 +106,14 @@ class SpirometryReference(Frozen):
     predicted: Quantity
     lln: Quantity
     uln: Quantity
-    z_score: float = Field(allow_inf_nan=False)
+    z_score: float
     percent_predicted: Quantity
     impairment: Literal["normal", "mild", "moderate", "severe"]
     flag: Literal["L", "N", "H"]
 
 
-class ParameterGrade(Frozen):
+@record
+class ParameterGrade:
     """The 2019 grade of FEV1 or FVC in one phase, from the lab's acceptability of each manoeuvre."""
 
     grade: str  # A-F, or U
@@ -117,16 +123,18 @@ class ParameterGrade(Frozen):
     repeatable: bool | None = None  # None: fewer than two acceptable values
 
 
-class PhaseDerived(Frozen):
+@record
+class PhaseDerived:
     """What the bridge recomputed for one phase (pre or post)."""
 
     fev1_fvc: Quantity | None = None  # FEV1/FVC recomputed from the reported volumes, in %
     fev1_grade: ParameterGrade | None = None  # None: no manoeuvre with the lab's status
     fvc_grade: ParameterGrade | None = None
-    references: dict[str, SpirometryReference] = Field(default_factory=dict)  # by key (SPIROMETRY_KEYS)
+    references: dict[str, SpirometryReference] = field(default_factory=dict)  # by key (SPIROMETRY_KEYS)
 
 
-class BronchodilatorChange(Frozen):
+@record
+class BronchodilatorChange:
     """The change of FEV1 or FVC after the bronchodilator, relative to the predicted value (ERS/ATS 2022)."""
 
     change: Quantity  # post - pre, L
@@ -134,7 +142,8 @@ class BronchodilatorChange(Frozen):
     significant: bool
 
 
-class SpirometryDerived(Frozen):
+@record
+class SpirometryDerived:
     """Spirometry recomputed: per phase, the reference set used, and the bronchodilator response."""
 
     reference_set: Text  # the site's spirometry equations (GLI Global or GLI-2012), by title

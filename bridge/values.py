@@ -4,19 +4,29 @@ Owns :class:`Quantity` (value, UCUM unit, reported decimals, the :class:`Origina
 unit), the :class:`Measure` annotation a quantity field declares its dimension and canonical
 unit with, :data:`Text` and :data:`Uri` (refusing what no output can carry), :data:`IsoDate` and
 :data:`IsoDateTime` (RFC 3339 text, as the published schema says), the :class:`Filled` annotation
-of what the bridge fills itself, and the frozen base of every record model. ``bridge.model``
+of what the bridge fills itself, and :func:`record`, which makes a class a part of the record
+(plain immutable data) with :func:`read_as`, the one validation at the edge. ``bridge.model``
 builds the record from these and re-exports them. Imports only the stdlib and pydantic.
 """
 
 from __future__ import annotations
 
 import re
-from dataclasses import dataclass
+from collections.abc import Callable
+from dataclasses import dataclass, field
 from datetime import date
 from functools import partial
-from typing import Annotated
+from typing import Annotated, Any, Literal, TypeVar, dataclass_transform, get_args, get_origin, get_type_hints
 
-from pydantic import AfterValidator, AwareDatetime, BaseModel, BeforeValidator, ConfigDict, Field, GetJsonSchemaHandler
+from pydantic import (
+    AfterValidator,
+    AwareDatetime,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    GetJsonSchemaHandler,
+    TypeAdapter,
+)
 from pydantic.json_schema import JsonSchemaValue
 from pydantic_core import CoreSchema, PydanticOmit
 
@@ -88,15 +98,82 @@ class Filled:
         raise PydanticOmit  # the field is left out of the schema, as pydantic's SkipJsonSchema does
 
 
-def filled_fields(model: type[BaseModel]) -> frozenset[str]:
-    """The fields of ``model`` marked :class:`Filled`."""
-    return frozenset(n for n, info in model.model_fields.items() if any(isinstance(m, Filled) for m in info.metadata))
+def filled_fields(cls: type[Any]) -> frozenset[str]:
+    """The fields of the record type ``cls`` marked :class:`Filled`."""
+    hints = field_types(cls)
+    return frozenset(name for name, hint in hints.items() if any(isinstance(m, Filled) for m in _metadata(hint)))
 
 
-class Frozen(BaseModel):
-    """Base for every record model: immutable, strict about unknown keys."""
+def _metadata(hint: Any) -> tuple[Any, ...]:
+    return tuple(getattr(hint, "__metadata__", ()))
 
-    model_config = ConfigDict(frozen=True, extra="forbid")
+
+_RECORD_CONFIG = ConfigDict(extra="forbid")  # what pydantic refuses when it reads a record at the edge
+T = TypeVar("T")
+R = TypeVar("R")
+
+
+@dataclass_transform(frozen_default=True, kw_only_default=True, field_specifiers=(field,))
+def record(cls: type[T]) -> type[T]:
+    """Make ``cls`` a part of the record: plain immutable data (a frozen dataclass with slots).
+
+    Inside the core a record is built and read as plain data, never validated again; the edge
+    reads one with :func:`read_as`, which checks every field's type and bounds (pydantic) and
+    refuses unknown keys.
+    """
+    cls.__pydantic_config__ = _RECORD_CONFIG  # type: ignore[attr-defined]
+    return dataclass(frozen=True, slots=True, kw_only=True)(cls)
+
+
+def once_per_type(build: Callable[[type[Any]], R]) -> Callable[[type[Any]], R]:
+    """``build`` run once per record type, its result kept (``functools.cache``, which mypy refuses a class for)."""
+    kept: dict[type[Any], R] = {}
+
+    def once(cls: type[Any]) -> R:
+        if cls not in kept:
+            kept[cls] = build(cls)
+        return kept[cls]
+
+    return once
+
+
+@once_per_type
+def _adapter(cls: type[Any]) -> TypeAdapter[Any]:
+    return TypeAdapter(cls)
+
+
+def read_as(cls: type[T], data: object) -> T:
+    """``data`` (plain dicts and lists) read as a record of type ``cls``; raises pydantic's ValidationError."""
+    read: T = _adapter(cls).validate_python(data)
+    return read
+
+
+def plain(value: object, mode: Literal["python", "json"] = "python") -> Any:
+    """A record (or a part of one) as plain dicts and lists, in field order; ``json``: JSON-ready values."""
+    return _adapter(type(value)).dump_python(value, mode=mode)
+
+
+def record_schema(cls: type[Any]) -> dict[str, Any]:
+    """The JSON Schema (validation mode) of what :func:`read_as` accepts for ``cls``."""
+    return _adapter(cls).json_schema(mode="validation")
+
+
+@once_per_type
+def field_types(cls: type[Any]) -> dict[str, Any]:
+    """The type of each field of a record type, with its annotations (``Annotated``), in field order."""
+    return get_type_hints(cls, include_extras=True)
+
+
+def measure_of(hint: Any) -> Measure | None:
+    """The :class:`Measure` of a field's type, also where it sits inside ``Optional[Annotated[...]]``."""
+    for item in getattr(hint, "__metadata__", ()):
+        if isinstance(item, Measure):
+            return item
+    for arg in get_args(hint):
+        found = measure_of(arg) if get_origin(arg) is Annotated else None
+        if found is not None:
+            return found
+    return None
 
 
 @dataclass(frozen=True, slots=True)
@@ -108,23 +185,25 @@ class Measure:
     signed: bool = False  # may the value be negative (altitude below sea level, temperature)
 
 
-class Original(Frozen):
+@record
+class Original:
     """The value and unit exactly as the source wrote them (the value as text keeps its digits)."""
 
     value: str
     unit: str
 
 
-class Quantity(Frozen):
+@record
+class Quantity:
     """A value with its UCUM unit; an export writes ``{"value": 21.4, "unit": "mL/min/mm[Hg]"}``.
 
     The bridge fills (:class:`Filled`) ``decimals``, the digits the source reported after the point (7.460
     is emitted as 7.460; ``None`` when computed here), and ``original``, the value and unit as written.
     """
 
-    value: float = Field(allow_inf_nan=False, strict=True)  # a JSON number only: not true, not "9.84"
-    unit: str = Field(min_length=1)
-    decimals: Annotated[int | None, Filled()] = Field(default=None, ge=0, le=12)
+    value: Annotated[float, Field(allow_inf_nan=False, strict=True)]  # a JSON number only: not true, not "9.84"
+    unit: Annotated[str, Field(min_length=1)]
+    decimals: Annotated[int | None, Filled(), Field(ge=0, le=12)] = None
     original: Annotated[Original | None, Filled()] = None
 
     def text(self) -> str:

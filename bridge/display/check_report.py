@@ -6,9 +6,8 @@ or traditional units. Pure: returns strings and dicts; the CLI prints them.
 
 from __future__ import annotations
 
+from dataclasses import fields, is_dataclass
 from typing import Any
-
-from pydantic import BaseModel
 
 from bridge.display.lung_volume_text import lung_volume_lines
 from bridge.display.spirometry_text import spirometry_lines
@@ -19,6 +18,7 @@ from bridge.science.normalise import express
 from bridge.science.unit_text import for_people
 from bridge.science.units import UnitSystem
 from bridge.tables import Tables
+from bridge.values import plain
 
 CAUTION = (
     "dlco-bridge is not a medical device: it normalises, recomputes and flags data. "
@@ -208,7 +208,7 @@ def outcome_json(outcome: Outcome, tables: Tables, units: UnitSystem, hb_unit: s
             q = shown(node, tables, units, hb_unit)
             out: dict[str, Any] = {"value": float(q.text()), "unit": q.unit}
             if node.original is not None:
-                out["original"] = node.original.model_dump()
+                out["original"] = plain(node.original)
             return out
         if isinstance(node, dict):
             return {k: convert(v) for k, v in node.items() if v is not None}
@@ -241,8 +241,8 @@ def _shallow(model: Any) -> Any:
     """Model -> dict keeping Quantity objects (so they can be shown in the chosen units)."""
     if isinstance(model, Quantity):
         return model
-    if isinstance(model, BaseModel):
-        return {name: _shallow(getattr(model, name)) for name in type(model).model_fields}
+    if is_dataclass(model):
+        return {f.name: _shallow(getattr(model, f.name)) for f in fields(model)}
     if isinstance(model, tuple):
         return [_shallow(v) for v in model]
     if isinstance(model, dict):

@@ -11,11 +11,10 @@ refused by the gate, unreadable), taken from the pipeline's own decision, with t
 
 from __future__ import annotations
 
+import json
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, is_dataclass
 from typing import Any
-
-from pydantic import BaseModel
 
 from bridge.errors import BlockedByFinding, InputError
 from bridge.model import Outcome, Quantity, Session
@@ -23,6 +22,7 @@ from bridge.readers.mapped import Cell, MappedRecord
 from bridge.science.unit_text import for_people
 from bridge.tables.canonical_fields import MANOEUVRES, canonical_fields
 from bridge.tables.field_map_model import FieldMap
+from bridge.values import plain
 
 SHOWN_RECORDS = 3  # records shown field by field; the rest are counted
 # What convert would do with a record, as the pipeline decided it.
@@ -88,8 +88,8 @@ def _shown(value: Any, people: bool) -> str:
         return "(empty)"
     if isinstance(value, Quantity):  # UCUM for machines (--json), the trade's spelling for people
         return f"{value.text()} {for_people(value.unit) if people else value.unit}"
-    if isinstance(value, BaseModel):
-        return value.model_dump_json()
+    if is_dataclass(value):
+        return json.dumps(plain(value, "json"), separators=(",", ":"), ensure_ascii=False)
     return str(value.value if hasattr(value, "value") and not isinstance(value, float | int) else value)
 
 
@@ -134,7 +134,7 @@ def map_check_json(check: MapCheck, people: bool = False) -> dict[str, object]:
         else:
             entry["test_id"] = result.session.test_id
             entry["fields"] = [_row(c, result.session, people) for c in record.cells]
-            entry["findings"] = [f.model_dump(mode="json") for f in result.findings]
+            entry["findings"] = [plain(f, "json") for f in result.findings]
             if isinstance(decided, InputError):
                 entry["refused"] = decided.line()
         records.append(entry)

@@ -64,8 +64,8 @@ _EXPECTATIONS = MappingProxyType(
         "datetime_parsing": "an ISO 8601 date-time with offset",
         "datetime_from_date_parsing": "an ISO 8601 date-time with offset",
         "timezone_aware": "a date-time with a UTC offset (e.g. 2026-03-02T09:15:00+01:00)",
-        "extra_forbidden": "no such field (check the spelling against docs/format.md)",
-        "model_type": "an object",
+        "unexpected_keyword_argument": "no such field (check the spelling against docs/format.md)",
+        "dataclass_type": "an object",
         "dict_type": "an object",
         "tuple_type": "a list",
         "list_type": "a list",
@@ -100,7 +100,7 @@ def _expectation(error: Any) -> str:
     if kind == "value_error":  # our own validators (bridge.model) say what they expected
         return f"{error['msg'].removeprefix('Value error, ')}, got {got}"
     base = _EXPECTATIONS.get(kind, error["msg"])
-    if kind == "extra_forbidden":
+    if kind == "unexpected_keyword_argument":
         return _closest_field(tuple(error["loc"])) or base
     return base if kind == "missing" else f"{base}, got {got}"
 

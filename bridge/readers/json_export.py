@@ -11,13 +11,14 @@ from __future__ import annotations
 
 import json
 from collections.abc import Iterator
+from dataclasses import fields
 from decimal import Decimal
 from typing import Any
 
 from pydantic import ValidationError
 
 from bridge.errors import InputError, InvalidField, MissingField, UnknownFormat, UnreadableInput
-from bridge.model import Quantity, Results, Session, filled_fields
+from bridge.model import Quantity, Results, Session, filled_fields, read_as
 from bridge.readers.common import Record, decode_text, field_path, first_validation_error, shown
 from bridge.science.normalise import normalise_tree
 from bridge.science.units import MAX_DECIMALS, UnitCatalogue
@@ -50,7 +51,7 @@ def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: st
     the same one model validation.
     """
     try:
-        session = Session.model_validate(normalise_tree(_decimals_in_place(tree), catalogue))
+        session = read_as(Session, normalise_tree(_decimals_in_place(tree), catalogue))
     except ValidationError as exc:
         raise first_validation_error(exc, source) from None
     except InputError as exc:
@@ -60,7 +61,7 @@ def session_from_tree(tree: dict[str, Any], catalogue: UnitCatalogue, source: st
 
 
 # What a session reports: every result but the lab's predicted values (read from the model).
-RESULT_FIELDS = tuple(name for name in Results.model_fields if name != "predicted")
+RESULT_FIELDS = tuple(f.name for f in fields(Results) if f.name != "predicted")
 
 
 def refuse_impossible(session: Session, source: str = "") -> None:

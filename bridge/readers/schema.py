@@ -5,13 +5,14 @@ from __future__ import annotations
 from typing import Any
 
 from bridge.model import Session
+from bridge.values import record_schema
 
 SCHEMA_ID = "urn:dlco-bridge:schema:dlco-result:1"
 
 
 def export_schema() -> dict[str, Any]:
     """JSON Schema (draft 2020-12) for one ``dlco-result/1`` document."""
-    schema = Session.model_json_schema(mode="validation")
+    schema = record_schema(Session)
     schema["$schema"] = "https://json-schema.org/draft/2020-12/schema"
     schema["$id"] = SCHEMA_ID
     schema["title"] = (

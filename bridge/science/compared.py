@@ -141,21 +141,29 @@ def no_hb_adjustment(session: Session) -> str:
     return "the haemoglobin reported is not a positive number"
 
 
-def references(
-    session: Session, age: float, equations: ReferenceEquations, compared: Compared
-) -> dict[str, ReferenceValue | str | None]:
-    """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none.
+@dataclass(frozen=True, slots=True)
+class References:
+    """The ``reference_*`` fields of :class:`Derived`: GLI-2017 values of DLCO, KCO and VA, or why none."""
+
+    dlco: ReferenceValue | None = None
+    kco: ReferenceValue | None = None
+    va: ReferenceValue | None = None
+    not_computed: str | None = None
+
+
+def references(session: Session, age: float, equations: ReferenceEquations, compared: Compared) -> References:
+    """GLI-2017 values of DLCO, KCO and VA, or why none.
 
     DLCO and KCO are compared as ``compared`` holds them (the site's reference_basis); VA as measured.
     """
     r = session.results
     va_basis: ComparedBasis | None = "measured" if r.va is not None else None
     wanted = (
-        ("reference_dlco", Parameter.DLCO, "DLCO", compared.dlco, compared.dlco_basis),
-        ("reference_kco", Parameter.KCO_TRAD, "KCO", compared.kco, compared.kco_basis),
-        ("reference_va", Parameter.VA, "VA", r.va, va_basis),
+        ("dlco", Parameter.DLCO, "DLCO", compared.dlco, compared.dlco_basis),
+        ("kco", Parameter.KCO_TRAD, "KCO", compared.kco, compared.kco_basis),
+        ("va", Parameter.VA, "VA", r.va, va_basis),
     )
-    fields: dict[str, ReferenceValue | str | None] = {}
+    found_values: dict[str, ReferenceValue] = {}
     reasons: list[str] = []
     for name, parameter, label, value, basis in wanted:
         if value is None or basis is None:
@@ -168,10 +176,9 @@ def references(
         if isinstance(found, OutsideRange):
             reasons.append(f"{label}: {found.reason}")
         else:
-            fields[name] = found
-    if reasons:
-        fields["reference_not_computed"] = "; ".join(dict.fromkeys(reasons))
-    return fields
+            found_values[name] = found
+    not_computed = "; ".join(dict.fromkeys(reasons)) if reasons else None
+    return References(**found_values, not_computed=not_computed)
 
 
 def _reference(

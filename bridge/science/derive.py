@@ -142,6 +142,7 @@ def derive(
     if predicted is not None:
         basis = compared.dlco_basis or compared.kco_basis or "measured"
         lab_basis = at_altitude(basis) if predicted.altitude_adjusted else basis
+    gli = references(session, age, tables.reference, compared)
     return Derived(
         age_years=round(age, 2),
         kco=kco,
@@ -168,7 +169,10 @@ def derive(
         kco_basis=compared.kco_basis,
         lab_basis=lab_basis,
         reference_basis_fallback=compared.fallback,
-        **references(session, age, tables.reference, compared),
+        reference_dlco=gli.dlco,
+        reference_kco=gli.kco,
+        reference_va=gli.va,
+        reference_not_computed=gli.not_computed,
         spirometry=derive_spirometry(session, age, tables, spirometry_reference),
         lung_volumes=derive_lung_volumes(session, age, tables.lung_volume_equations),
     )

@@ -16,10 +16,8 @@ from __future__ import annotations
 
 import re
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import MISSING, dataclass, fields, is_dataclass, replace
 from typing import Any, Literal
-
-from pydantic import BaseModel
 
 from bridge.errors import InvalidField
 from bridge.model import Finding, Session, Severity
@@ -92,7 +90,7 @@ def apply_lab_status(
             findings.append(_finding(WITHDRAWN_CODE, Severity.WARNING, path, text))
         else:
             findings.append(_finding(NOT_SENT_CODE, Severity.INFO, path, f"{said}: not sent."))
-    return session.model_copy(update={"lab_status": kept}), tuple(findings)
+    return replace(session, lab_status=kept), tuple(findings)
 
 
 def _finding(code: str, severity: Severity, path: str, message: str) -> Finding:
@@ -115,7 +113,7 @@ def _value_at(session: Session, path: str, source: str) -> Any:
     for name, index in _steps(path, source):
         if node is None:
             return None
-        if not isinstance(node, BaseModel) or name not in type(node).model_fields or name == "lab_status":
+        if not is_dataclass(node) or name not in _field_names(type(node)) or name == "lab_status":
             raise InvalidField("lab_status", f"a path to a value of the record (results.dlco), got {path!r}", source)
         node = getattr(node, name)
         if index is not None:
@@ -136,13 +134,23 @@ def _without(session: Session, path: str, code: str, source: str) -> Session:
             if not rest:
                 raise InvalidField("lab_status", f"a path to one value of a manoeuvre, got {path!r}", source)
             items[index] = drop(items[index], rest)
-            return model.model_copy(update={name: tuple(items)})
+            return replace(model, **{name: tuple(items)})
         if rest:
-            return model.model_copy(update={name: drop(current, rest)})
-        if type(model).model_fields[name].is_required():
+            return replace(model, **{name: drop(current, rest)})
+        if _is_required(type(model), name):
             expected = f"a status that lets the record keep the value (it is required), got {code!r}"
             raise InvalidField(f"lab_status.{path}", expected, source)
-        return model.model_copy(update={name: None})
+        return replace(model, **{name: None})
 
     result: Session = drop(session, _steps(path, source))
     return result
+
+
+def _field_names(cls: type[Any]) -> frozenset[str]:
+    return frozenset(f.name for f in fields(cls))
+
+
+def _is_required(cls: type[Any], name: str) -> bool:
+    """Whether the record type ``cls`` has no default for field ``name``."""
+    found = next(f for f in fields(cls) if f.name == name)
+    return found.default is MISSING and found.default_factory is MISSING

@@ -10,18 +10,19 @@ Also owns :func:`express`, the inverse step emitters use to show a quantity in a
 
 from __future__ import annotations
 
-from functools import cache
-from typing import Annotated, Any, get_args, get_origin
+from dataclasses import is_dataclass
+from typing import Any, get_args, get_origin
 
-from pydantic import BaseModel, ValidationError
+from pydantic import ValidationError
 
 from bridge.errors import InvalidField, UnitError
-from bridge.model import Measure, Quantity, Session
+from bridge.model import Measure, Quantity, Session, read_as
 from bridge.science.unit_text import for_people
 from bridge.science.units import UnitCatalogue, UnitDef, decimals_after_conversion
+from bridge.values import field_types, measure_of, once_per_type
 
 # A plan entry: field name, and either its Measure, a nested model class, or a tuple of them.
-_Step = tuple[str, Measure | type[BaseModel], bool]
+_Step = tuple[str, Measure | type[Any], bool]
 
 
 def normalise_tree(tree: dict[str, Any], catalogue: UnitCatalogue) -> dict[str, Any]:
@@ -37,7 +38,7 @@ def normalise_tree(tree: dict[str, Any], catalogue: UnitCatalogue) -> dict[str, 
     return _normalise_node(tree, Session, catalogue, "")
 
 
-def _normalise_node(node: dict[str, Any], model: type[BaseModel], units: UnitCatalogue, path: str) -> dict[str, Any]:
+def _normalise_node(node: dict[str, Any], model: type[Any], units: UnitCatalogue, path: str) -> dict[str, Any]:
     copy = dict(node)
     for name, kind, is_tuple in plan_of(model):
         value = node.get(name)
@@ -47,7 +48,7 @@ def _normalise_node(node: dict[str, Any], model: type[BaseModel], units: UnitCat
         if isinstance(kind, Measure):
             if type(value) is dict:
                 try:  # the model's own reading: the step takes exactly what the model would take
-                    quantity = Quantity.model_validate(value)
+                    quantity = read_as(Quantity, value)
                 except ValidationError:
                     continue  # the model's validation names the problem
                 copy[name] = canonical_fields(quantity, kind, units, where)
@@ -142,36 +143,23 @@ def _dimension(measure: Measure) -> str:
     return measure.dimension.replace("_", " ") + f" (e.g. {for_people(measure.canonical_unit)})"
 
 
-@cache
-def plan_of(cls: type[BaseModel]) -> tuple[_Step, ...]:
-    """Which fields of a model hold quantities or nested models (computed once per class)."""
+@once_per_type
+def plan_of(cls: type[Any]) -> tuple[_Step, ...]:
+    """Which fields of a record type hold quantities or nested records (computed once per class)."""
     steps: list[_Step] = []
-    for name, info in cls.model_fields.items():
-        measure = _measure(info.metadata, info.annotation)
+    for name, hint in field_types(cls).items():
+        measure = measure_of(hint)
         if measure is not None:
             steps.append((name, measure, False))
             continue
-        nested, is_tuple = _nested_model(info.annotation)
+        nested, is_tuple = _nested_model(hint)
         if nested is not None:
             steps.append((name, nested, is_tuple))
     return tuple(steps)
 
 
-def _measure(metadata: list[Any], annotation: Any) -> Measure | None:
-    """The Measure of a field, also when it sits inside ``Optional[Annotated[...]]``."""
-    for item in metadata:
-        if isinstance(item, Measure):
-            return item
-    for arg in get_args(annotation):
-        if get_origin(arg) is Annotated:
-            found = _measure(list(arg.__metadata__), None)
-            if found is not None:
-                return found
-    return None
-
-
-def _nested_model(annotation: Any) -> tuple[type[BaseModel] | None, bool]:
-    if isinstance(annotation, type) and issubclass(annotation, BaseModel):
+def _nested_model(annotation: Any) -> tuple[type[Any] | None, bool]:
+    if isinstance(annotation, type) and is_dataclass(annotation):
         return (annotation, False) if annotation is not Quantity else (None, False)
     args = get_args(annotation)
     if get_origin(annotation) is tuple and args:

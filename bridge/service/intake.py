@@ -167,7 +167,7 @@ class Intake:
             raise refused[0] if refused else InvalidField("(file)", "at least one session", path.name)
         messages = [m for outcome in good for m in self._messages(outcome)]
         correction = any(o.correction for o in good)
-        return good[0].model_copy(update={"correction": correction}), messages, refused
+        return replace(good[0], correction=correction), messages, refused
 
     def _quarantine_records(self, path: Path, sha: str, refused: list[InputError]) -> None:
         """One ``<name>.<n>.error.json`` per refused record (naming its row or message); the file is archived."""

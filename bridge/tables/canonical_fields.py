@@ -10,15 +10,16 @@ from __future__ import annotations
 
 import types
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, is_dataclass
 from datetime import date, datetime
 from functools import cache
 from types import MappingProxyType
 from typing import Annotated, Any, Literal, Union, get_args, get_origin
 
-from pydantic import AwareDatetime, BaseModel
+from pydantic import AwareDatetime
 
-from bridge.model import Measure, Quantity, Session, Sex
+from bridge.model import Quantity, Session, Sex
+from bridge.values import field_types, measure_of
 
 FieldKind = Literal["quantity", "number", "date", "datetime", "sex", "text"]
 MANOEUVRES = "manoeuvres"  # canonical fields under this prefix are read once per manoeuvre
@@ -48,20 +49,20 @@ def canonical_fields() -> Mapping[str, CanonicalField]:
     return MappingProxyType(found)
 
 
-def _walk(model: type[BaseModel], prefix: str, found: dict[str, CanonicalField], item_of: str | None = None) -> None:
-    for name, info in model.model_fields.items():
+def _walk(model: type[Any], prefix: str, found: dict[str, CanonicalField], item_of: str | None = None) -> None:
+    for name, hint in field_types(model).items():
         path = prefix + name
-        measure = _measure(info.metadata, info.annotation)
+        measure = measure_of(hint)
         if measure is not None:
             found[path] = CanonicalField(
                 path, "quantity", measure.dimension, measure.canonical_unit, _in_manoeuvre(path), item_of
             )
             continue
-        bare = _bare(info.annotation)
+        bare = _bare(hint)
         inner = item_of
         if get_origin(bare) is tuple:  # a list: its items' fields, each read once per item
             bare, inner = _bare(get_args(bare)[0]), path
-        if isinstance(bare, type) and issubclass(bare, BaseModel) and bare is not Quantity:
+        if isinstance(bare, type) and is_dataclass(bare) and bare is not Quantity:
             _walk(bare, path + ".", found, inner)
         else:
             found[path] = CanonicalField(path, _kind(bare), per_manoeuvre=_in_manoeuvre(path), item_of=inner)
@@ -93,15 +94,3 @@ def _bare(annotation: Any) -> Any:
             annotation = next(a for a in get_args(annotation) if a is not type(None))
         else:
             return annotation
-
-
-def _measure(metadata: list[Any], annotation: Any) -> Measure | None:
-    for item in metadata:
-        if isinstance(item, Measure):
-            return item
-    bare = annotation
-    while get_origin(bare) in (Union, types.UnionType):
-        bare = next(a for a in get_args(bare) if a is not type(None))
-    if get_origin(bare) is Annotated:
-        return next((m for m in bare.__metadata__ if isinstance(m, Measure)), None)
-    return None

@@ -11,6 +11,7 @@ from bridge.model import Measure, Quantity, Session
 from bridge.science.normalise import canonical_fields, express, normalise_tree
 from bridge.science.units import UnitCatalogue, decimals_after_conversion
 from bridge.tables.files import load_tables
+from bridge.values import plain, read_as
 
 UNITS = load_tables().units
 DLCO = Measure("diffusing_capacity", "mL/min/mm[Hg]")
@@ -18,7 +19,7 @@ DLCO = Measure("diffusing_capacity", "mL/min/mm[Hg]")
 
 def normalise_quantity(quantity: Quantity, measure: Measure, catalogue: UnitCatalogue, path: str) -> Quantity:
     """One quantity in its canonical unit, as every reader's normalising step builds it."""
-    return Quantity.model_validate(canonical_fields(quantity, measure, catalogue, path))
+    return read_as(Quantity, canonical_fields(quantity, measure, catalogue, path))
 
 
 def test_si_value_is_kept_as_original(sample_outcomes):
@@ -105,7 +106,7 @@ def test_converted_rounding_step_is_never_coarser(decimals, pair):
 def test_normalising_twice_changes_nothing(sample_outcomes):
     """A read session's own tree, normalised again and validated, is the same session (every sample)."""
     for outcome in sample_outcomes.values():
-        again = Session.model_validate(normalise_tree(outcome.session.model_dump(), UNITS))
+        again = read_as(Session, normalise_tree(plain(outcome.session), UNITS))
 
         assert outcome.session == again
 

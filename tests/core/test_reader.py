@@ -90,6 +90,11 @@ CASES = {
         "no such field",
     ),
     # common practice: a misspelt key is named with the field of the same object it most resembles
+    "section not an object": (
+        _mutated(lambda d: d.update(patient="P-1")),
+        "patient",
+        "an object, got 'P-1'",
+    ),
     "misspelt section": (
         _mutated(lambda d: d.update(lung_volume={})),
         "lung_volume",

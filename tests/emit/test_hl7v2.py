@@ -16,6 +16,7 @@ import dataclasses
 import json
 import os
 import re
+from dataclasses import replace
 from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
 
@@ -58,8 +59,8 @@ DELIMITER_NAME = "Mac^Amp&Pipe|Tilde~Back\\slash"
 
 
 def _with_patient(outcome: Outcome, **update: str | None) -> Outcome:
-    patient = outcome.session.patient.model_copy(update=update)
-    return outcome.model_copy(update={"session": outcome.session.model_copy(update={"patient": patient})})
+    patient = replace(outcome.session.patient, **update)
+    return replace(outcome, session=replace(outcome.session, patient=patient))
 
 
 def _strict(er7: str, report: Path) -> object:
@@ -391,9 +392,9 @@ def test_multiline_note_stays_one_segment(sample_outcomes, tables, tmp_path):
     outcome = sample_outcomes[STEMS[0]]
     session = outcome.session
     results = session.results
-    predicted = results.predicted.model_copy(update={"reference_set": "Set A\nline two|x"})
-    session = session.model_copy(update={"results": results.model_copy(update={"predicted": predicted})})
-    er7 = to_oru(outcome.model_copy(update={"session": session}), tables, GOLDEN_CONTEXT)
+    predicted = replace(results.predicted, reference_set="Set A\nline two|x")
+    session = replace(session, results=replace(results, predicted=predicted))
+    er7 = to_oru(replace(outcome, session=session), tables, GOLDEN_CONTEXT)
 
     _strict(er7, tmp_path / "report.txt")
 
@@ -513,7 +514,7 @@ SITE_CONTEXT = dataclasses.replace(
 
 
 def _with_placer(outcome: Outcome, placer: str) -> Outcome:
-    return outcome.model_copy(update={"session": outcome.session.model_copy(update={"placer_order_number": placer})})
+    return replace(outcome, session=replace(outcome.session, placer_order_number=placer))
 
 
 def test_order_and_lab_identity_field_by_field(sample_outcomes, tables, tmp_path):
@@ -615,7 +616,7 @@ def test_two_sessions_of_one_file_get_their_own_control_ids(sample_outcomes):
     # source: HL7 v2.5.1 ch. 2, MSH-10: unique per message from one sender; a receiver (and the
     # outbox) drops a repeated id as a duplicate, so the second session would be lost
     outcome = sample_outcomes["01-healthy-adult"]
-    other = outcome.model_copy(update={"session": outcome.session.model_copy(update={"test_id": "OTHER-1"})})
+    other = replace(outcome, session=replace(outcome.session, test_id="OTHER-1"))
     context = EmitContext(now=NOW)
 
     assert outcome.source_sha256 == other.source_sha256  # the same file

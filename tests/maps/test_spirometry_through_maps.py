@@ -13,6 +13,7 @@ import pytest
 
 from bridge.model import Outcome
 from bridge.pipeline import PipelineSettings, process, process_all
+from bridge.values import plain
 from tests.maps.conftest import CSV_SAMPLE, HL7_SAMPLE, ROOT
 from tests.maps.test_three_encodings import _leaves
 
@@ -33,9 +34,9 @@ def test_the_maps_read_the_spirometry_of_their_json_twin_field_by_field(sample, 
     outcome = _twin_of(sample, map_name, test_id, tables, request)
     expected = process(TWIN.read_bytes(), TWIN.name, tables).session.spirometry
     assert expected is not None and outcome.session.spirometry is not None
-    mine = _leaves(outcome.session.spirometry.model_dump(mode="json"))
+    mine = _leaves(plain(outcome.session.spirometry, "json"))
 
-    assert _leaves(expected.model_dump(mode="json")) == mine
+    assert _leaves(plain(expected, "json")) == mine
     assert "acceptable" == mine["pre.manoeuvres[0].fev1_status"]  # samples/10: the first pre manoeuvre
     assert "usable" == mine["pre.manoeuvres[2].fvc_status"]
 

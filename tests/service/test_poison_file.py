@@ -14,6 +14,7 @@ import json
 import logging
 import time
 from collections.abc import Callable, Iterator
+from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -232,14 +233,14 @@ def with_condition(name: str, **update: object) -> Processor:
         conditions = outcome.session.conditions
         quantity = getattr(conditions, name)
         assert quantity is not None
-        changed = conditions.model_copy(update={name: quantity.model_copy(update=update)})
-        outcome = outcome.model_copy(update={"session": outcome.session.model_copy(update={"conditions": changed})})
+        changed = replace(conditions, **{name: replace(quantity, **update)})
+        outcome = replace(outcome, session=replace(outcome.session, conditions=changed))
         built = [
             payload
             for route in routes
             for payload in payloads(outcome, tables, settings.emit.context(now, route.units), (route.kind,))
         ]
-        return outcome.model_copy(update={"payloads": tuple(built)})
+        return replace(outcome, payloads=tuple(built))
 
     return processor
 
