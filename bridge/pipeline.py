@@ -86,6 +86,11 @@ class PipelineSettings:
     # the spirometry equations: GLI Global or GLI-2012
     spirometry_reference: Annotated[SpirometrySet, check(choice, SPIROMETRY_SETS)] = DEFAULT_SPIROMETRY_SET
 
+    def reading_with(self, fmap: FieldMap | None) -> PipelineSettings:
+        """These settings reading through ``fmap``: themselves when it is already theirs (settings are
+        validated when built, so one file after another does not build and check them anew)."""
+        return self if fmap is self.field_map else replace(self, field_map=fmap)
+
     def repeatability_for(self, fmap: FieldMap | None) -> str:
         """The criterion for inputs read through ``fmap`` (None: dlco-result/1 JSON): the map's, else the site's."""
         return fmap.repeatability if fmap is not None and fmap.repeatability is not None else self.repeatability

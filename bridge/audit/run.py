@@ -25,7 +25,7 @@ import time
 from collections import deque
 from collections.abc import Iterable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from datetime import datetime
 from multiprocessing import forkserver
 from pathlib import Path
@@ -118,7 +118,7 @@ def audit_file(path: str, job: Job, tables: Tables) -> list[Row]:
 
     def work(data: bytes) -> Iterator[tuple[Outcome | InputError, bool]]:
         maps = _maps(job.map_default, job.map_patterns, job.traditional_per_si)
-        pipeline = replace(job.pipeline, field_map=maps.for_file(os.path.basename(path)))
+        pipeline = job.pipeline.reading_with(maps.for_file(os.path.basename(path)))
         many = pipeline.field_map is not None
         for result in process_all(data, path, tables, pipeline, now=job.now, routes=routes, gate=True):
             yield result, many  # a record of the file (numbered when the file may hold many)

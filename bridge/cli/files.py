@@ -63,7 +63,7 @@ def run_inputs(
     for path in paths:
         # The record names its input by file name, as the service does; errors name the path given.
         # A field map may find many sessions in one file: one result each.
-        pipeline = replace(settings.pipeline, field_map=maps.for_file(path.name))
+        pipeline = settings.pipeline.reading_with(maps.for_file(path.name))
         work = functools.partial(process_all, source=path.name, tables=tables, settings=pipeline)
         read = each_input(path, settings.pipeline.max_input_bytes, functools.partial(work, now=now, routes=routes))
         for result in read:

@@ -157,7 +157,7 @@ class Intake:
         """Every session a map finds in the file: the first good outcome (the ledger's test id), all
         good sessions' messages, and the refused records. No good session refuses the file; a map
         with ``on_bad_record = "refuse"`` refuses it at its first bad record (raised by the pipeline)."""
-        pipeline = replace(self.pipeline, field_map=fmap)
+        pipeline = self.pipeline.reading_with(fmap)
         results = list(process_all(data, path.name, self.tables, pipeline, now=now, routes=self.routes,
                                    is_correction=self._is_correction,
                                    sent_before=self.ledger.sent_before))  # fmt: skip
