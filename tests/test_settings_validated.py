@@ -72,3 +72,17 @@ def test_the_models_are_frozen_and_read_text_as_the_environment_gives_it():
     assert 2.5 == service.stable_seconds
     with pytest.raises(dataclasses.FrozenInstanceError):
         service.stable_seconds = 1.0  # type: ignore[misc]
+
+
+def test_settings_reading_through_a_map_keep_every_other_setting():
+    """The same map gives the same settings object; another map, the same settings but the map."""
+    # common practice: a validated immutable value is reused, never rebuilt for each use
+    from bridge.tables.files import load_field_map, load_tables
+
+    fmap = load_field_map(Path(__file__).parents[1] / "mappings" / "maps" / "lowmarsh-csv.toml", load_tables())
+    site = PipelineSettings(allow=frozenset({"COHB_RAISED"}), repeatability="2005")
+    mapped = site.reading_with(fmap)
+
+    assert site.reading_with(None) is site
+    assert mapped.reading_with(fmap) is mapped
+    assert (mapped.field_map, dataclasses.replace(mapped, field_map=None)) == (fmap, site)
