@@ -21,6 +21,7 @@ from typing import Any, Literal
 
 from bridge.errors import InvalidField
 from bridge.model import Finding, Session, Severity
+from bridge.values import field_types
 
 StatusAction = Literal["final", "preliminary", "not_sent", "withdraw"]
 STATUS_ACTIONS: tuple[StatusAction, ...] = ("final", "preliminary", "not_sent", "withdraw")
@@ -113,7 +114,7 @@ def _value_at(session: Session, path: str, source: str) -> Any:
     for name, index in _steps(path, source):
         if node is None:
             return None
-        if not is_dataclass(node) or name not in _field_names(type(node)) or name == "lab_status":
+        if not is_dataclass(node) or name not in field_types(type(node)) or name == "lab_status":
             raise InvalidField("lab_status", f"a path to a value of the record (results.dlco), got {path!r}", source)
         node = getattr(node, name)
         if index is not None:
@@ -144,10 +145,6 @@ def _without(session: Session, path: str, code: str, source: str) -> Session:
 
     result: Session = drop(session, _steps(path, source))
     return result
-
-
-def _field_names(cls: type[Any]) -> frozenset[str]:
-    return frozenset(f.name for f in fields(cls))
 
 
 def _is_required(cls: type[Any], name: str) -> bool:
