@@ -153,6 +153,11 @@ def plain(value: object, mode: Literal["python", "json"] = "python") -> Any:
     return _adapter(type(value)).dump_python(value, mode=mode)
 
 
+def compact_json(value: object) -> str:
+    """A record (or a part of one) as compact JSON text, as pydantic writes it."""
+    return _adapter(type(value)).dump_json(value).decode()
+
+
 def record_schema(cls: type[Any]) -> dict[str, Any]:
     """The JSON Schema (validation mode) of what :func:`read_as` accepts for ``cls``."""
     return _adapter(cls).json_schema(mode="validation")

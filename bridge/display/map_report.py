@@ -11,7 +11,6 @@ refused by the gate, unreadable), taken from the pipeline's own decision, with t
 
 from __future__ import annotations
 
-import json
 from collections.abc import Sequence
 from dataclasses import dataclass, is_dataclass
 from typing import Any
@@ -22,7 +21,7 @@ from bridge.readers.mapped import Cell, MappedRecord
 from bridge.science.unit_text import for_people
 from bridge.tables.canonical_fields import MANOEUVRES, canonical_fields
 from bridge.tables.field_map_model import FieldMap
-from bridge.values import plain
+from bridge.values import compact_json, plain
 
 SHOWN_RECORDS = 3  # records shown field by field; the rest are counted
 # What convert would do with a record, as the pipeline decided it.
@@ -89,7 +88,7 @@ def _shown(value: Any, people: bool) -> str:
     if isinstance(value, Quantity):  # UCUM for machines (--json), the trade's spelling for people
         return f"{value.text()} {for_people(value.unit) if people else value.unit}"
     if is_dataclass(value):
-        return json.dumps(plain(value, "json"), separators=(",", ":"), ensure_ascii=False)
+        return compact_json(value)
     return str(value.value if hasattr(value, "value") and not isinstance(value, float | int) else value)
 
 
